@@ -1,0 +1,182 @@
+"""The map data model: a 2-D :class:`xarray.DataArray` of a two-gate sweep.
+
+Conventions (shared by every module):
+
+* ``data[iy, ix]``: the **last dimension is x**, the first is y;
+* dimension names are the gate names; coordinates are float64 volts with
+  ``units="V"`` and the file's unit in ``original_units``;
+* the measured quantity keeps its name (``DataArray.name``) and unit
+  (``attrs["units"]``); the source file is ``attrs["source"]``;
+* axes may decrease and have unequal steps: all geometry is done in volts;
+* missing points (an interrupted sweep) are NaN.
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass
+from typing import Any, Mapping
+
+import numpy as np
+import xarray as xr
+
+from .errors import InputError, PartialSweepWarning
+from .units import to_volts
+
+__all__ = ["MapAxes", "make_map", "validate_map", "map_axes", "x_gate", "y_gate"]
+
+
+@dataclass(frozen=True)
+class MapAxes:
+    """Voltage axes of a map, in volts, in the stored order.
+
+    Attributes
+    ----------
+    x, y : ndarray, shape (nx,), (ny,)
+        Gate voltages along x (last dimension) and y (first dimension), V.
+    x_gate, y_gate : str
+        Gate names.
+    """
+
+    x: np.ndarray
+    y: np.ndarray
+    x_gate: str
+    y_gate: str
+
+    @property
+    def dx(self) -> float:
+        """Median signed x step, V."""
+        return float(np.median(np.diff(self.x))) if self.x.size > 1 else float("nan")
+
+    @property
+    def dy(self) -> float:
+        """Median signed y step, V."""
+        return float(np.median(np.diff(self.y))) if self.y.size > 1 else float("nan")
+
+
+def x_gate(da: xr.DataArray) -> str:
+    """Name of the gate on x (the last dimension)."""
+    return str(da.dims[-1])
+
+
+def y_gate(da: xr.DataArray) -> str:
+    """Name of the gate on y (the first dimension)."""
+    return str(da.dims[0])
+
+
+def map_axes(da: xr.DataArray) -> MapAxes:
+    """Return the voltage axes of ``da`` as a :class:`MapAxes` record."""
+    xg, yg = x_gate(da), y_gate(da)
+    return MapAxes(
+        x=np.asarray(da[xg].values, dtype=np.float64),
+        y=np.asarray(da[yg].values, dtype=np.float64),
+        x_gate=xg,
+        y_gate=yg,
+    )
+
+
+def make_map(
+    signal: np.ndarray,
+    x: np.ndarray,
+    y: np.ndarray,
+    *,
+    x_gate: str = "x",
+    y_gate: str = "y",
+    name: str = "signal",
+    units: str = "a.u.",
+    x_units: str = "V",
+    y_units: str = "V",
+    source: str | None = None,
+    attrs: Mapping[str, Any] | None = None,
+) -> xr.DataArray:
+    """Build a map in the stabtool data model.
+
+    Parameters
+    ----------
+    signal : array_like, shape (ny, nx)
+        Measured quantity, ``signal[iy, ix]``.
+    x, y : array_like, shape (nx,), (ny,)
+        Gate voltages in ``x_units`` / ``y_units``; converted to volts.
+    x_gate, y_gate : str
+        Gate names, used as dimension names.
+    name, units : str
+        Name and unit of the measured quantity.
+    x_units, y_units : str
+        Units of ``x`` and ``y`` as given (kept as ``original_units``).
+    source : str, optional
+        Path of the file the map came from.
+    attrs : mapping, optional
+        Further attributes of the map.
+
+    Returns
+    -------
+    xarray.DataArray
+        Dims ``(y_gate, x_gate)``, coordinates in volts.
+    """
+    if x_gate == y_gate:
+        raise InputError(source, f"x and y gates have the same name {x_gate!r}")
+    data = np.asarray(signal, dtype=np.float64)
+    xv = to_volts(x, x_units)
+    yv = to_volts(y, y_units)
+    da = xr.DataArray(
+        data,
+        dims=(y_gate, x_gate),
+        coords={
+            y_gate: (y_gate, yv, {"units": "V", "original_units": y_units or "V"}),
+            x_gate: (x_gate, xv, {"units": "V", "original_units": x_units or "V"}),
+        },
+        name=name,
+        attrs={"units": units, **(dict(attrs) if attrs else {})},
+    )
+    if source is not None:
+        da.attrs["source"] = str(source)
+    return da
+
+
+def _check_axis(values: np.ndarray, gate: str, source: str | None) -> None:
+    if values.size < 2:
+        raise InputError(source, f"axis {gate!r} has {values.size} point(s); a map needs at least 2")
+    if not np.all(np.isfinite(values)):
+        raise InputError(source, f"axis {gate!r} holds non-finite voltages")
+    steps = np.diff(values)
+    if not (np.all(steps > 0) or np.all(steps < 0)):
+        raise InputError(
+            source,
+            f"axis {gate!r} is not monotonic (steps change sign or repeat); "
+            "a sweep axis must strictly increase or decrease",
+        )
+
+
+def validate_map(da: xr.DataArray, *, source: str | None = None) -> xr.DataArray:
+    """Check that ``da`` is a usable map; return it unchanged.
+
+    Raises :class:`~stabtool.errors.InputError` for 1-D or 3-D data, bad axes,
+    all-NaN or constant maps; warns :class:`PartialSweepWarning` when points
+    are missing.
+    """
+    src = source if source is not None else da.attrs.get("source")
+    if not isinstance(da, xr.DataArray):
+        raise InputError(src, f"expected an xarray.DataArray, got {type(da).__name__}")
+    if da.ndim != 2:
+        raise InputError(
+            src,
+            f"expected 2-D data (y, x), got {da.ndim}-D with dims {tuple(map(str, da.dims))}",
+        )
+    for dim in da.dims:
+        if dim not in da.coords:
+            raise InputError(src, f"dimension {dim!r} has no voltage coordinate")
+        _check_axis(np.asarray(da[dim].values, dtype=np.float64), str(dim), src)
+    values = np.asarray(da.values, dtype=np.float64)
+    finite = np.isfinite(values)
+    if not finite.any():
+        raise InputError(src, "the map holds no finite values (all NaN)")
+    if np.nanmax(values) == np.nanmin(values):
+        raise InputError(src, "the map is constant; there is nothing to analyse")
+    missing = 1.0 - finite.mean()
+    if missing > 0:
+        warnings.warn(
+            f"{src or 'map'}: {100 * missing:.1f} % of the points are missing (NaN)",
+            PartialSweepWarning,
+            stacklevel=2,
+        )
+    return da
