@@ -1,0 +1,126 @@
+"""Helpers shared by the readers and writers: atomic writes, name suggestions,
+attributes that survive a file round trip."""
+
+from __future__ import annotations
+
+import contextlib
+import difflib
+import json
+import os
+import tempfile
+from collections.abc import Iterable, Iterator, Mapping
+from pathlib import Path
+from typing import IO, Any
+
+import numpy as np
+
+from ..errors import InputError
+
+__all__ = [
+    "JSON_ATTRS_KEY",
+    "atomic_write",
+    "decode_attrs",
+    "encode_attrs",
+    "fmt_number",
+    "suggest",
+]
+
+#: Attribute listing the names of attributes stored as JSON text in a file.
+JSON_ATTRS_KEY = "stabtool_json_attrs"
+
+
+@contextlib.contextmanager
+def atomic_write(path: str | os.PathLike[str], *, mode: str = "w") -> Iterator[tuple[str, IO[Any] | None]]:
+    """Write ``path`` atomically: a temp file in the same folder, then ``os.replace``.
+
+    Yields ``(tmp_path, handle)``; ``handle`` is an open file for ``mode`` in
+    ``"w"``/``"wb"`` or ``None`` for ``mode="path"`` (the caller writes
+    ``tmp_path`` itself). On any error the temp file is removed and an existing
+    ``path`` is left untouched.
+    """
+    target = Path(path)
+    folder = target.parent if str(target.parent) else Path(".")
+    if not folder.is_dir():
+        raise InputError(path, f"cannot write: folder {str(folder)!r} does not exist")
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp" + target.suffix, dir=folder)
+    except OSError as exc:
+        raise InputError(path, f"cannot write: {exc.strerror or exc}") from None
+    handle: IO[Any] | None = None
+    try:
+        if mode == "path":
+            os.close(fd)
+        else:
+            handle = os.fdopen(fd, mode) if "b" in mode else os.fdopen(fd, mode, encoding="utf-8", newline="")
+        yield tmp, handle
+        if handle is not None:
+            handle.flush()
+            os.fsync(handle.fileno())
+            handle.close()
+        os.replace(tmp, target)
+    except BaseException:
+        if handle is not None and not handle.closed:
+            handle.close()
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        raise
+
+
+def suggest(name: str, choices: Iterable[str]) -> str:
+    """``"; did you mean 'x'?"`` for close names (difflib), else ``""``."""
+    close = difflib.get_close_matches(str(name), [str(c) for c in choices], n=3, cutoff=0.5)
+    if not close:
+        return ""
+    return "; did you mean " + " or ".join(repr(c) for c in close) + "?"
+
+
+def _jsonable(value: Any) -> Any:
+    from .jsonio import to_jsonable
+
+    return to_jsonable(value)
+
+
+def encode_attrs(attrs: Mapping[str, Any]) -> dict[str, Any]:
+    """Attributes a NetCDF file can hold: dicts, lists of mixed type, bools and
+    ``None`` become JSON text, listed in ``attrs[JSON_ATTRS_KEY]``."""
+    out: dict[str, Any] = {}
+    encoded: list[str] = []
+    for key, value in attrs.items():
+        if key == JSON_ATTRS_KEY:
+            continue
+        if isinstance(value, (str, int, float, np.integer, np.floating)) and not isinstance(value, bool) or isinstance(value, np.ndarray) and value.dtype.kind in "iuf" and value.ndim <= 1:
+            out[key] = value
+        elif (
+            isinstance(value, (list, tuple))
+            and value
+            and all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in value)
+        ):
+            out[key] = np.asarray(value, dtype=np.float64)
+        else:
+            out[key] = json.dumps(_jsonable(value))
+            encoded.append(str(key))
+    if encoded:
+        out[JSON_ATTRS_KEY] = json.dumps(encoded)
+    return out
+
+
+def decode_attrs(attrs: Mapping[str, Any]) -> dict[str, Any]:
+    """Inverse of :func:`encode_attrs`."""
+    out = dict(attrs)
+    listed = out.pop(JSON_ATTRS_KEY, None)
+    if listed is None:
+        return out
+    try:
+        names = json.loads(listed)
+    except (TypeError, ValueError):
+        return out
+    for key in names:
+        if key in out and isinstance(out[key], str):
+            with contextlib.suppress(ValueError):
+                out[key] = json.loads(out[key])
+    return out
+
+
+def fmt_number(value: float) -> str:
+    """Shortest text that reads back as the same float (``repr``)."""
+    return repr(float(value))
