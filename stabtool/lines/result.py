@@ -42,6 +42,14 @@ class TransitionLine:
     step_sign : int
         +1 when the signal rises as the line is crossed towards more
         electrons, −1 when it falls, 0 when unknown.
+    refined : bool
+        True when the line was refined from sub-pixel profile fits; False
+        when only the Hough/TLS fit of edge pixels is available.
+    bend_chi2 : float
+        Drop of χ² (2 degrees of freedom) when quadratic and cubic terms are
+        added to the straight-line fit of the crossing points; large values
+        mean the line bends (e.g. rounded triple points with strong tunnel
+        coupling). NaN when not measured.
     """
 
     family: FamilyName
@@ -56,6 +64,8 @@ class TransitionLine:
     width_stderr_V: float = float("nan")
     n_points: int = 0
     step_sign: int = 0
+    refined: bool = False
+    bend_chi2: float = float("nan")
 
     @property
     def length_V(self) -> float:
@@ -136,6 +146,67 @@ class LineDetection:
     def family(self, name: str) -> LineFamily:
         """The family called ``name`` (empty if none was found)."""
         return self.families.get(name, LineFamily(name=name, slope=float("nan"), slope_stderr=float("nan")))  # type: ignore[arg-type]
+
+    @property
+    def slopes(self) -> dict[str, float]:
+        """Family slopes dV_y/dV_x (NaN for a family not found)."""
+        return {n: self.family(n).slope for n in ("dot1", "dot2", "interdot")}
+
+    def plot(self, ax=None, data=None, *, show_edges: bool = False):  # noqa: ANN001
+        """Draw the map with every line, one colour per family, and a legend.
+
+        Parameters
+        ----------
+        ax : matplotlib Axes, optional
+            Axes to draw on (a new figure otherwise).
+        data : xarray.DataArray or ndarray, optional
+            Map to draw underneath (default: the processed map kept in the result).
+        show_edges : bool
+            Overlay the edge pixels.
+
+        Returns
+        -------
+        matplotlib Axes
+        """
+        import matplotlib.pyplot as plt
+
+        if ax is None:
+            _, ax = plt.subplots(figsize=(6, 5))
+        x, y = self.axes.x, self.axes.y
+        img = None
+        if data is not None:
+            img = np.asarray(getattr(data, "values", data), float)
+        elif self.processed is not None:
+            img = self.processed
+        extent = (x[0] - self.axes.dx / 2, x[-1] + self.axes.dx / 2, y[0] - self.axes.dy / 2, y[-1] + self.axes.dy / 2)
+        if img is not None:
+            ax.imshow(img, origin="lower", extent=extent, aspect="auto", cmap="gray", interpolation="nearest")
+        if show_edges and self.edges is not None:
+            iy, ix = np.nonzero(self.edges)
+            ax.plot(x[ix], y[iy], ",", color="yellow", alpha=0.5)
+        colours = {"dot1": "tab:red", "dot2": "tab:blue", "interdot": "tab:green", "unassigned": "tab:gray"}
+        groups = [(n, self.family(n).lines, self.family(n).slope) for n in ("dot1", "dot2", "interdot")]
+        groups.append(("unassigned", self.unassigned, float("nan")))
+        for name, lines, slope in groups:
+            label = f"{name} ({len(lines)})" + (f", slope {slope:.4g}" if np.isfinite(slope) else "")
+            for k, ln in enumerate(lines):
+                ax.plot([ln.start[0], ln.end[0]], [ln.start[1], ln.end[1]], "-", color=colours[name],
+                        lw=2 if name != "unassigned" else 1, alpha=0.9, label=label if k == 0 else None)
+        for j in self.jumps:
+            ax.axhline(j.y, color="orange", ls="--", lw=1, label="charge jump" if j is self.jumps[0] else None)
+        ax.set_xlim(min(extent[:2]), max(extent[:2]))
+        ax.set_ylim(min(extent[2:]), max(extent[2:]))
+        if x[0] > x[-1]:
+            ax.invert_xaxis()
+        if y[0] > y[-1]:
+            ax.invert_yaxis()
+        ax.set_xlabel(f"{self.axes.x_gate} (V)")
+        ax.set_ylabel(f"{self.axes.y_gate} (V)")
+        verdict = "ok" if self.quality.ok else "doubtful"
+        ax.set_title(f"transition lines: {verdict}, SNR {self.snr:.1f}")
+        if ax.get_legend_handles_labels()[0]:
+            ax.legend(loc="upper right", fontsize=7, framealpha=0.8)
+        return ax
 
     def all_lines(self) -> list[TransitionLine]:
         """Every line, family by family, then the unassigned ones."""

@@ -1,0 +1,205 @@
+"""The line-detection pipeline: one configured, reusable, picklable object."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, fields, replace
+
+import numpy as np
+import xarray as xr
+
+from ..errors import InputError
+from ..preprocess._checks import check_map
+from ..preprocess.background import _row_offsets_core
+from ..preprocess.noise import _noise_core
+from ..quality import Quality
+from ._geometry import steps
+from ._merge import drop_duplicates, merge_collinear
+from .edges import DEFAULT_HIGH_SIGMAS, DEFAULT_LOW_SIGMAS, _edge_core
+from .families import classify_lines, pixel_angle_deg
+from .hough import _segments_core, segment_to_line
+from .jumps import _jumps_core
+from .refine import RefinedLine, refine_segments
+from .result import ChargeJump, LineDetection, LineFamily, TransitionLine
+from .verdict import assess_quality, family_slope
+
+__all__ = ["LineDetector", "detect_lines"]
+
+
+@dataclass(frozen=True)
+class LineDetector:
+    """Configured line-detection pipeline; call it on a map.
+
+    Parameters
+    ----------
+    sigma_px : float
+        Gaussian σ of the edge detector, pixels.
+    low_sigmas, high_sigmas : float
+        Hysteresis thresholds in noise σ of a gradient component.
+    min_length_px : float
+        Shortest segment kept, pixels.
+    max_gap_px : float
+        Largest gap inside a segment, pixels.
+    tolerance_px : float
+        Perpendicular distance of edge pixels from a Hough line, pixels.
+    angle_step_deg : float
+        Hough angle bin, degrees (refined afterwards).
+    profile_halfwidth_px : int
+        Half-length of the step profiles fitted across each line, pixels.
+    max_profiles : int
+        Most profiles per line.
+    detect_jumps : bool
+        Look for charge jumps and exclude the rows at each jump.
+    min_snr : float
+        Lines with a median step height below ``min_snr`` noise σ make the
+        verdict doubtful.
+
+    Examples
+    --------
+    >>> det = LineDetector(sigma_px=2.0)
+    >>> det  # doctest: +ELLIPSIS
+    LineDetector(sigma_px=2.0, ...)
+    """
+
+    sigma_px: float = 1.5
+    low_sigmas: float = DEFAULT_LOW_SIGMAS
+    high_sigmas: float = DEFAULT_HIGH_SIGMAS
+    min_length_px: float = 8.0
+    max_gap_px: float = 3.0
+    tolerance_px: float = 1.5
+    angle_step_deg: float = 0.5
+    profile_halfwidth_px: int = 6
+    max_profiles: int = 80
+    detect_jumps: bool = True
+    min_snr: float = 3.0
+
+    def __post_init__(self) -> None:
+        for f in fields(self):
+            v = getattr(self, f.name)
+            if f.name == "detect_jumps":
+                if not isinstance(v, bool):
+                    raise InputError(f.name, f"must be True or False, got {v!r}")
+                continue
+            if not (isinstance(v, (int, float)) and np.isfinite(v) and v > 0):
+                raise InputError(f.name, f"must be a positive number, got {v!r}")
+        if self.low_sigmas > self.high_sigmas:
+            raise InputError("low_sigmas", f"must not exceed high_sigmas ({self.high_sigmas}), got {self.low_sigmas}")
+
+    def __repr__(self) -> str:
+        args = ", ".join(f"{f.name}={getattr(self, f.name)!r}" for f in fields(self))
+        return f"LineDetector({args})"
+
+    def __call__(self, da: xr.DataArray) -> LineDetection:
+        """Detect, sort and refine the transition lines of ``da``."""
+        axes = check_map(da)
+        values = np.asarray(da.values, dtype=np.float64)
+        return _detect_core(values, axes, self)
+
+
+def _detect_core(values: np.ndarray, axes, cfg: LineDetector) -> LineDetection:
+    ny = values.shape[0]
+    quality = Quality()
+    finite = np.isfinite(values)
+    missing = 1.0 - finite.mean()
+    if missing > 0:
+        quality = quality.with_warning(f"{100 * missing:.1f} % of the points are missing (NaN); analysed the rest",
+                                       doubtful=missing > 0.5)
+    noise = _noise_core(values)
+    if not (np.isfinite(noise) and noise > 0):
+        rng = np.nanpercentile(values, [1, 99])
+        noise = max(1e-3 * float(rng[1] - rng[0]), np.finfo(float).tiny)
+    work = values - _row_offsets_core(values)[:, None]
+    # charge jumps
+    jumps: list[ChargeJump] = []
+    excluded: list[int] = []
+    if cfg.detect_jumps:
+        for r, s in _jumps_core(work):
+            jumps.append(ChargeJump(row=r, y=float(axes.y[r]), shift_x_V=float(s * axes.dx)))
+            excluded.extend([r - 1, r])
+    excluded_rows = np.array(sorted({r for r in excluded if 0 <= r < ny}), dtype=int)
+    if excluded_rows.size:
+        work = work.copy()
+        work[excluded_rows] = np.nan
+    if len(jumps) > 3:
+        quality = quality.with_warning(
+            f"{len(jumps)} charge jumps (pattern shifts along x) found: the map looks unstable "
+            "(telegraph switching of a charge trap?)")
+    elif jumps:
+        quality = quality.with_warning(
+            f"{len(jumps)} charge jump(s) at row(s) {', '.join(str(j.row) for j in jumps)}: "
+            "the rows at each jump were excluded and the pieces analysed separately", doubtful=False)
+    # edges and segments
+    edges, *_ = _edge_core(work, cfg.sigma_px, noise, cfg.low_sigmas, cfg.high_sigmas)
+    segs = _segments_core(edges, min_length_px=cfg.min_length_px, max_gap_px=cfg.max_gap_px,
+                          tolerance_px=cfg.tolerance_px, angle_step_deg=cfg.angle_step_deg, max_lines=400)
+    segs = merge_collinear(segs)
+    coarse = [segment_to_line(s, axes) for s in segs]
+    names = classify_lines(coarse, axes)
+    along = []
+    for line, name in zip(coarse, names):
+        if name == "dot1":
+            along.append(True)
+        elif name == "dot2":
+            along.append(False)
+        else:
+            along.append(abs(pixel_angle_deg(line, axes)) > 45.0)
+    refined: list[RefinedLine] = refine_segments(segs, work, axes, families=names, along_x=along,
+                                                 halfwidth_px=int(cfg.profile_halfwidth_px),
+                                                 max_points=int(cfg.max_profiles), edges=edges)
+    # second pass: classify again with the refined slopes
+    # weak lines among strong ones are sensor texture, not transitions: a dot
+    # line whose fitted step is below a quarter of the median one is dropped
+    hs = np.array([r.step_height for r in refined if r.refined and r.line.slope < 0])
+    if hs.size >= 4:
+        ref_h = float(np.median(hs))
+        refined = [r for r in refined
+                   if not (r.line.slope < 0 and (not r.refined or r.step_height < 0.25 * ref_h))]
+    lines = [r.line for r in refined]
+    names2 = classify_lines(lines, axes)
+    lines = [replace(l, family=n) for l, n in zip(lines, names2)]  # type: ignore[arg-type]
+    keep_lines = drop_duplicates(lines, steps(axes))
+    keep_ids = {id(l) for l in keep_lines}
+    mask_keep = [id(l) in keep_ids for l in lines]
+    refined = [r for r, k in zip(refined, mask_keep) if k]
+    names2 = [n for n, k in zip(names2, mask_keep) if k]
+    lines = [l for l, k in zip(lines, mask_keep) if k]
+    families: dict[str, LineFamily] = {}
+    unassigned: list[TransitionLine] = []
+    for fam in ("dot1", "dot2", "interdot"):
+        members = [replace(l, family=fam) for l, n in zip(lines, names2) if n == fam]
+        key = (lambda l: l.y0) if fam == "dot2" else (lambda l: l.x0)
+        members.sort(key=key)
+        s, se, _ = family_slope(members)
+        families[fam] = LineFamily(name=fam, slope=s, slope_stderr=se, lines=tuple(members))  # type: ignore[arg-type]
+    unassigned = [replace(l, family="unassigned") for l, n in zip(lines, names2) if n == "unassigned"]
+    heights = np.array([r.step_height for r, n in zip(refined, names2) if n in ("dot1", "dot2") and r.refined])
+    snr = float(np.median(heights) / noise) if heights.size else float("nan")
+    quality = assess_quality(families, tuple(unassigned), snr=snr, min_snr=cfg.min_snr,
+                             excluded_fraction=excluded_rows.size / ny, quality=quality)
+    return LineDetection(axes=axes, families=families, unassigned=tuple(unassigned), jumps=tuple(jumps),
+                         excluded_rows=excluded_rows, noise_level=float(noise), snr=snr, quality=quality,
+                         processed=work, edges=edges)
+
+
+def detect_lines(da: xr.DataArray, **options) -> LineDetection:
+    """Detect the transition lines of a map with a :class:`LineDetector`.
+
+    Parameters
+    ----------
+    da : xarray.DataArray, shape (ny, nx)
+        A map in the stabtool data model (volts on both axes).
+    **options
+        Keyword options of :class:`LineDetector`.
+
+    Returns
+    -------
+    LineDetection
+    """
+    valid = {f.name for f in fields(LineDetector)}
+    bad = [k for k in options if k not in valid]
+    if bad:
+        import difflib
+
+        hint = difflib.get_close_matches(bad[0], sorted(valid), n=1)
+        extra = f"; did you mean {hint[0]!r}?" if hint else f"; valid options: {', '.join(sorted(valid))}"
+        raise InputError(bad[0], f"unknown option of detect_lines{extra}")
+    return LineDetector(**options)(da)

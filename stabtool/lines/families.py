@@ -1,0 +1,127 @@
+"""Sorting line segments into dot1, dot2 and interdot families from the physics.
+
+Physics used (constant-interaction model, van der Wiel et al., Rev. Mod.
+Phys. 75, 1 (2003), doi:10.1103/RevModPhys.75.1): both dot lines have
+negative slopes dV_y/dV_x, the interdot line a positive one; lines of one
+family are parallel; dot1 is the steeper of the two negative families. No
+fixed angle windows: the two negative families are found by splitting the
+length-weighted distribution of angles where the between-class variance is
+largest (N. Otsu, IEEE Trans. Syst. Man Cybern. 9, 62 (1979),
+doi:10.1109/TSMC.1979.4310076).
+"""
+
+from __future__ import annotations
+
+from typing import Sequence
+
+import numpy as np
+
+from ..mapdata import MapAxes
+from ._geometry import steps
+from .result import TransitionLine
+
+__all__ = ["classify_lines", "pixel_angle_deg"]
+
+
+def pixel_angle_deg(line: TransitionLine, axes: MapAxes) -> float:
+    """Angle of a line from the x axis in the isotropic pixel frame, degrees in (−90, 90]."""
+    if np.isinf(line.slope):
+        return 90.0
+    dx, dy = steps(axes)
+    s_px = line.slope * (dx / dy)
+    return float(np.degrees(np.arctan(s_px)))
+
+
+def _otsu_split(a: np.ndarray, w: np.ndarray) -> tuple[float, float]:
+    """Best threshold and separation score (gap / pooled spread) for 1-D weighted data."""
+    o = np.argsort(a)
+    a, w = a[o], w[o]
+    best, thr = -1.0, float("nan")
+    W = w.sum()
+    for k in range(1, a.size):
+        w0, w1 = w[:k].sum(), w[k:].sum()
+        if w0 < 0.05 * W or w1 < 0.05 * W:
+            continue
+        m0, m1 = (w[:k] * a[:k]).sum() / w0, (w[k:] * a[k:]).sum() / w1
+        v0 = (w[:k] * (a[:k] - m0) ** 2).sum() / w0
+        v1 = (w[k:] * (a[k:] - m1) ** 2).sum() / w1
+        score = abs(m1 - m0) / np.sqrt(0.5 * (v0 + v1) + 1.0)
+        if score > best:
+            best, thr = score, 0.5 * (a[k - 1] + a[k])
+    return thr, best
+
+
+def _members(a: np.ndarray, w: np.ndarray, sel: np.ndarray, floor_deg: float) -> np.ndarray:
+    """Members of one cluster: within max(floor, 3 robust σ) of its weighted median."""
+    if not sel.any():
+        return sel
+    vals, ww = a[sel], w[sel]
+    o = np.argsort(vals)
+    cw = np.cumsum(ww[o])
+    med = vals[o][np.searchsorted(cw, 0.5 * cw[-1])]
+    spread = 1.4826 * np.median(np.abs(vals - med))
+    tol = max(floor_deg, 3.0 * spread)
+    return sel & (np.abs(a - med) <= tol)
+
+
+def classify_lines(lines: Sequence[TransitionLine], axes: MapAxes, *, tolerance_deg: float = 4.0) -> list[str]:
+    """Family name for each line: "dot1", "dot2", "interdot" or "unassigned".
+
+    Parameters
+    ----------
+    lines : sequence of TransitionLine
+        Segments with slopes in volts (any family field).
+    axes : MapAxes
+    tolerance_deg : float
+        Smallest accepted deviation of a member from its family's angle
+        (pixel frame), degrees; the actual tolerance is the larger of this
+        and three robust standard deviations of the family.
+
+    Returns
+    -------
+    list of str
+    """
+    n = len(lines)
+    out = ["unassigned"] * n
+    if n == 0:
+        return out
+    s = np.array([ln.slope for ln in lines])
+    ang = np.array([pixel_angle_deg(ln, axes) for ln in lines])
+    length_px = np.array([max(ln.n_points, 1) for ln in lines], float)
+    # "negative" in volts: the sign of the slope dV_y/dV_x
+    neg = s < 0
+    a = np.abs(ang)  # 0..90 in the pixel frame
+    names = np.array(out, dtype=object)
+    if neg.sum() >= 1:
+        an, wn = a[neg], length_px[neg]
+        if neg.sum() >= 2:
+            thr, score = _otsu_split(an, wn)
+        else:
+            thr, score = float("nan"), 0.0
+        idx = np.nonzero(neg)[0]
+        if np.isfinite(thr) and score > 3.0:
+            hi = np.zeros(n, bool)
+            lo = np.zeros(n, bool)
+            hi[idx[an > thr]] = True
+            lo[idx[an <= thr]] = True
+            groups = [hi, lo]
+        else:
+            g = np.zeros(n, bool)
+            g[idx] = True
+            groups = [g]
+        # steepness in volts decides dot1 versus dot2
+        steep = [np.median(np.abs(s[g])) for g in groups]
+        if len(groups) == 2:
+            order = np.argsort(steep)[::-1]
+            labels = {int(order[0]): "dot1", int(order[1]): "dot2"}
+        else:
+            dx, dy = steps(axes)
+            labels = {0: "dot1" if steep[0] > abs(dy / dx) else "dot2"}
+        for k, g in enumerate(groups):
+            mem = _members(a, length_px, g, tolerance_deg)
+            names[mem] = labels[k]
+    pos = s > 0
+    if pos.any():
+        mem = _members(a, length_px, pos, tolerance_deg)
+        names[mem] = "interdot"
+    return [str(v) for v in names]

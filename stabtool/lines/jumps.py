@@ -1,0 +1,109 @@
+"""Charge jumps: rows of the slow axis where the whole pattern shifts."""
+
+from __future__ import annotations
+
+import numpy as np
+import xarray as xr
+from scipy import ndimage as ndi
+
+from ..mapdata import MapAxes
+from ..preprocess._checks import check_map
+from ..preprocess._nan import fill_nan
+from .result import ChargeJump
+
+__all__ = ["detect_charge_jumps"]
+
+
+def _jumps_core(values: np.ndarray, block: int = 4, min_shift_px: float = 2.0) -> list[tuple[int, float]]:
+    ny, nx = values.shape
+    if ny < 4 * block or nx < 16:
+        return []
+    img = fill_nan(values)
+    gx = np.abs(ndi.gaussian_filter1d(img, 1.0, axis=1, order=1))
+    valid_rows = np.isfinite(values).mean(1) > 0.8
+    csum = np.cumsum(np.vstack([np.zeros(nx), gx]), axis=0)
+    max_lag = max(4, nx // 8)
+    lags = np.full(ny, np.nan)
+    score = np.zeros(ny)
+    i = np.arange(block, ny - block + 1)
+    vr = np.concatenate([[0], np.cumsum(valid_rows.astype(int))])
+    good = ((vr[i] - vr[i - block]) == block) & ((vr[i + block] - vr[i]) == block)
+    i = i[good]
+    if i.size:
+        before = (csum[i] - csum[i - block]) / block
+        after = (csum[i + block] - csum[i]) / block
+        a = before - before.mean(1, keepdims=True)
+        b = after - after.mean(1, keepdims=True)
+        fa = np.fft.rfft(a, 2 * nx, axis=1)
+        fb = np.fft.rfft(b, 2 * nx, axis=1)
+        cc = np.fft.irfft(np.conj(fa) * fb, 2 * nx, axis=1)
+        lagv = np.r_[np.arange(0, max_lag + 1), np.arange(-max_lag, 0)]
+        vals = cc[:, lagv]
+        k = np.argmax(vals, axis=1)
+        best = vals[np.arange(i.size), k]
+        lag = lagv[k].astype(float)
+        # parabolic sub-pixel peak
+        inner = (np.abs(lagv[k]) < max_lag)
+        y0 = cc[np.arange(i.size), lagv[k] - 1]
+        y1 = cc[np.arange(i.size), lagv[k]]
+        y2 = cc[np.arange(i.size), (lagv[k] + 1) % (2 * nx)]
+        den = y0 - 2 * y1 + y2
+        corr = np.where(inner & (den < 0), 0.5 * (y0 - y2) / np.where(den < 0, den, -1.0), 0.0)
+        lag = lag + corr
+        norm = np.sqrt((a * a).sum(1) * (b * b).sum(1))
+        with np.errstate(invalid="ignore", divide="ignore"):
+            rel = np.where(norm > 0, best / norm, 0.0)
+            gain = np.where((norm > 0) & (rel > 0.5), (best - cc[:, 0]) / norm, 0.0)
+        lags[i] = lag
+        score[i] = gain
+    fin = np.isfinite(lags)
+    if fin.sum() < 8:
+        return []
+    base = np.median(lags[fin])
+    spread = 1.4826 * np.median(np.abs(lags[fin] - base))
+    thr = max(min_shift_px, 5 * spread)
+    dev = np.abs(lags - base)
+    cand = np.nonzero(fin & (dev > thr) & (score > 0.25))[0]
+    out: list[tuple[int, float]] = []
+    # a jump spreads over ±block rows of the sliding comparison: keep local maxima
+    for i in cand:
+        lo, hi = max(0, i - block), min(ny, i + block + 1)
+        win = np.where(np.isfinite(dev[lo:hi]), dev[lo:hi], -1)
+        if dev[i] >= win.max():
+            if not out or i - out[-1][0] > block:
+                out.append((int(i), float(lags[i] - base)))
+    return out
+
+
+def detect_charge_jumps(da: xr.DataArray, *, block_rows: int = 4, min_shift_px: float = 2.0) -> tuple[ChargeJump, ...]:
+    """Find rows after which the whole pattern is shifted along x.
+
+    Parameters
+    ----------
+    da : xarray.DataArray, shape (ny, nx)
+        The map (row offsets may remain; only x-derivatives are used).
+    block_rows : int
+        Rows averaged before and after each candidate row.
+    min_shift_px : float
+        Smallest shift reported, pixels along x.
+
+    Returns
+    -------
+    tuple of ChargeJump
+        ``row`` is the first row after the jump; ``shift_x_V`` the apparent
+        shift along x in volts (signed, from the x axis step).
+
+    Notes
+    -----
+    For every row, the mean |∂s/∂x| profile of the ``block_rows`` rows before
+    is cross-correlated (FFT) with that of the rows after; the lag of the
+    maximum is compared with the median lag over the map (the slow drift of
+    the sloped lines). Lags beyond ``max(min_shift_px, 5 robust σ)`` mark a
+    jump. Using |∂s/∂x| makes the test independent of row offsets and of the
+    sensor polarity (common practice, no source). A trap that switches back
+    within a few rows (telegraph noise) shows as two jumps of opposite sign.
+    """
+    axes: MapAxes = check_map(da)
+    vals = np.asarray(da.values, dtype=np.float64)
+    found = _jumps_core(vals, int(block_rows), float(min_shift_px))
+    return tuple(ChargeJump(row=r, y=float(axes.y[r]), shift_x_V=float(s * axes.dx)) for r, s in found)

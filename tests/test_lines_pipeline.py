@@ -1,0 +1,195 @@
+"""Line detection on constant-interaction maps with known slopes.
+
+Truth: slopes dV_y/dV_x of the constant-interaction model, s1 = −α11/α12,
+s2 = −α21/α22 with α = Cdd⁻¹ Cdg (van der Wiel et al., Rev. Mod. Phys. 75, 1
+(2003)), computed by stabtool.physics.ci; ground states by brute-force minimisation of
+U(N) = ½ (eN − Cdg V)ᵀ Cdd⁻¹ (eN − Cdg V) over N in [0, 11]² (written here). The sensor is rendered here (a Lorentzian
+Coulomb peak swept across the map, so the step polarity flips), independent
+of the detector's code.
+"""
+
+from __future__ import annotations
+
+import pickle
+
+import numpy as np
+import pytest
+from scipy import ndimage as ndi
+
+from stabtool.errors import InputError
+from stabtool.lines import LineDetection, LineDetector, detect_lines
+from stabtool.mapdata import make_map
+from stabtool.physics.ci import double_dot_slopes, lever_arm_matrix
+from stabtool.physics.constants import E_AC
+
+#: two device presets (aF): a symmetric one (references.md worked example) and a
+#: strongly cross-coupled, asymmetric one
+PRESETS = {
+    "kestrel": (np.array([[10.0, 3.0], [2.5, 9.0]]), np.array([[80.0, -15.0], [-15.0, 80.0]])),
+    "heron": (np.array([[7.0, 3.2], [1.6, 11.0]]), np.array([[70.0, -12.0], [-12.0, 95.0]])),
+}
+
+
+def ground_state(cdg, cdd, v, offsets_e):
+    """Brute-force ground state N (n, 2) at voltages v (n, 2), offset charges in e."""
+    inv = np.linalg.inv(cdd)
+    q = v @ cdg.T + E_AC * offsets_e  # induced charge, aC
+    grid = np.array([(a, b) for a in range(12) for b in range(12)], float)
+    d = E_AC * grid[None, :, :] - q[:, None, :]
+    u = 0.5 * np.einsum("nki,ij,nkj->nk", d, inv, d)
+    return grid[np.argmin(u, axis=1)]
+
+
+def render(preset="kestrel", *, shape=(128, 128), snr=10.0, rng=0, x=(0.0, 0.08), y=(0.0, 0.08),
+           blur_px=0.7, row_noise=0.0, jump=None, telegraph=0.0):
+    cdg, cdd = PRESETS[preset]
+    g = np.random.default_rng(rng)
+    ny, nx = shape
+    xv, yv = np.linspace(*x, nx), np.linspace(*y, ny)
+    X, Y = np.meshgrid(xv, yv)
+    V = np.stack([X, Y], -1)
+    offs = np.zeros((ny, 2))
+    if jump is not None:  # (row, offset charge on dot1, e)
+        offs[jump[0]:, 0] += jump[1]
+    if telegraph:
+        state, rows = 0, []
+        for i in range(ny):
+            if g.random() < 1 / 12:
+                state ^= 1
+            rows.append(state)
+        offs[:, 0] += telegraph * np.array(rows)
+    N = np.empty((ny, nx, 2))
+    for i in range(ny):
+        N[i] = ground_state(cdg, cdd, V[i], offsets_e=offs[i])
+    occ = ndi.gaussian_filter(0.6 * N[..., 0] + 0.4 * N[..., 1], blur_px)
+    span_x, span_y = x[1] - x[0], y[1] - y[0]
+    eps = occ - 0.4 * (X - x[0]) / span_x - 0.4 * (Y - y[0]) / span_y
+    q0 = 0.5 * (eps.max() + eps.min())
+    sig = 1.0 / (1.0 + (eps - q0) ** 2 / 4.0)
+    step = np.median(np.abs(np.diff(sig, axis=1))[np.abs(np.diff(N[..., 0], axis=1)) > 0])
+    data = sig + g.normal(0.0, step / snr, shape)
+    if row_noise:
+        data += np.cumsum(g.normal(0, row_noise * step, ny))[:, None]
+    truth = double_dot_slopes(lever_arm_matrix(cdg, cdd))
+    return make_map(data, xv, yv, x_gate="PA", y_gate="PB", units="mV"), truth
+
+
+def rel_errors(res: LineDetection, truth) -> np.ndarray:
+    return np.array([abs(res.family("dot1").slope / truth.dot1 - 1), abs(res.family("dot2").slope / truth.dot2 - 1)])
+
+
+@pytest.mark.regression
+@pytest.mark.parametrize("preset", ["kestrel", "heron"])
+def test_clean_maps_slopes_within_half_percent(preset):
+    errs = []
+    # 192 px over the same voltage range: sharp (unresolved) steps are located
+    # to a pixel, so the slope precision grows with the pixels per segment
+    for seed in (0, 1):
+        da, truth = render(preset, shape=(192, 192), snr=10, rng=seed)
+        res = detect_lines(da)
+        errs.append(rel_errors(res, truth))
+        assert len(res.family("dot1")) >= 3 and len(res.family("dot2")) >= 3
+    assert np.median(np.concatenate(errs)) <= 0.005
+
+
+@pytest.mark.regression
+def test_snr3_slopes_within_two_percent():
+    errs = []
+    for seed in (0, 1, 2, 3):
+        da, truth = render("kestrel", shape=(192, 192), snr=3, rng=seed)
+        res = detect_lines(da)
+        e = rel_errors(res, truth)
+        errs.append(e)
+        if e.max() > 0.02:  # a map whose slope is off must not be called ok
+            assert not res.quality.ok
+    assert np.median(np.concatenate(errs)) <= 0.02
+
+
+@pytest.mark.regression
+def test_decreasing_axes_give_the_same_slopes():
+    da, truth = render("kestrel", snr=10, rng=3)
+    flipped = da.isel(PA=slice(None, None, -1), PB=slice(None, None, -1))
+    res = detect_lines(flipped)
+    assert np.all(rel_errors(res, truth) <= 0.02)
+
+
+@pytest.mark.regression
+def test_anisotropic_steps_slopes_in_volts():
+    # 160 x points over 60 mV, 96 y points over 90 mV: steps differ by 2.5x
+    da, truth = render("kestrel", shape=(96, 160), snr=10, rng=4, x=(0.0, 0.06), y=(0.0, 0.09))
+    res = detect_lines(da)
+    assert np.all(rel_errors(res, truth) <= 0.02)
+
+
+@pytest.mark.regression
+def test_partial_sweep_with_trailing_and_isolated_nans():
+    da, truth = render("kestrel", snr=10, rng=5)
+    vals = da.values.copy()
+    vals[100:] = np.nan
+    vals[np.random.default_rng(0).integers(0, 100, 40), np.random.default_rng(1).integers(0, 128, 40)] = np.nan
+    res = detect_lines(da.copy(data=vals))
+    # 22 % of the rows are gone, so fewer and shorter dot2 segments: 3 %
+    assert np.all(rel_errors(res, truth) <= 0.03)
+    assert any("missing" in w for w in res.quality.warnings)
+
+
+@pytest.mark.regression
+def test_charge_jump_is_found_and_slopes_survive():
+    da, truth = render("kestrel", snr=10, rng=6, jump=(64, 0.45))
+    res = detect_lines(da)
+    assert any(abs(j.row - 64) <= 2 for j in res.jumps)
+    assert any("charge jump" in w for w in res.quality.warnings)
+    assert np.all(rel_errors(res, truth) <= 0.02)
+
+
+@pytest.mark.regression
+def test_telegraph_noise_makes_no_false_families():
+    da, truth = render("kestrel", snr=10, rng=7, telegraph=0.3)
+    res = detect_lines(da)
+    # either the slopes are still right, or the verdict says the map is doubtful
+    ok_slopes = np.all(rel_errors(res, truth) <= 0.02)
+    assert ok_slopes or not res.quality.ok
+    # no long line may have a slope outside the three physical families
+    s = [ln.slope for ln in res.unassigned if ln.length_V > 0.02]
+    assert len(s) <= 2
+
+
+@pytest.mark.regression
+def test_row_offsets_1_over_f():
+    da, truth = render("heron", snr=10, rng=8, row_noise=0.5)
+    res = detect_lines(da)
+    assert np.all(rel_errors(res, truth) <= 0.02)
+
+
+def test_pure_noise_is_doubtful():
+    da = make_map(np.random.default_rng(0).normal(size=(64, 64)), np.linspace(0, 1, 64), np.linspace(0, 1, 64))
+    res = detect_lines(da)
+    assert not res.quality.ok
+
+
+def test_detector_is_picklable_and_has_a_readable_repr():
+    det = LineDetector(sigma_px=2.0)
+    assert pickle.loads(pickle.dumps(det)) == det
+    assert repr(det).startswith("LineDetector(sigma_px=2.0,")
+
+
+def test_bad_options_and_inputs_raise_one_line_errors():
+    with pytest.raises(InputError, match="did you mean 'sigma_px'"):
+        detect_lines(render(shape=(32, 32))[0], sigma=2)
+    with pytest.raises(InputError, match="must be a positive number"):
+        LineDetector(min_length_px=-1)
+    da = make_map(np.zeros((4, 40)) + np.arange(40), np.arange(40.0), np.arange(4.0))
+    with pytest.raises(InputError, match="at least 8"):
+        detect_lines(da)
+
+
+def test_plot_draws_families_with_legend(tmp_path):
+    import matplotlib.pyplot as plt
+
+    da, _ = render(snr=10, rng=0)
+    res = detect_lines(da)
+    ax = res.plot(data=da)
+    labels = [t.get_text() for t in ax.get_legend().get_texts()]
+    assert any(l.startswith("dot1") for l in labels) and any(l.startswith("dot2") for l in labels)
+    ax.figure.savefig(tmp_path / "lines.png")
+    plt.close(ax.figure)
