@@ -16,6 +16,22 @@ from .errors import (
     StabtoolWarning,
 )
 from .mapdata import MapAxes, make_map, map_axes, validate_map
+from .lines import LineDetection, LineDetector, detect_lines
+from .io import load, save_json, save_map
+from .arrays import (
+    PairMeasurement,
+    VirtualGateMatrix,
+    assemble_virtual_gates,
+    check_limits,
+    physical_to_virtual,
+    virtual_sweep,
+    virtual_to_physical,
+)
+from .calibrate import LeverArmCalibration, calibrate_traces, read_lever_arm_file
+from .fit.fermi import FermiStepFit, fit_fermi_step
+from .analysis import AnalysisResult, Analyzer, analyze
+from .io.traces import load_traces
+from .batch import BatchReport, DriftResult, make_overnight_sample, measure_drift, run_batch
 
 try:
     __version__ = _version("stabtool")
@@ -34,4 +50,31 @@ __all__ = [
     "make_map",
     "map_axes",
     "validate_map",
+    "Analyzer",
+    "AnalysisResult",
+    "analyze",
+    "load",
+    "save_map",
+    "save_json",
+    "PairMeasurement",
+    "VirtualGateMatrix",
+    "assemble_virtual_gates",
+    "check_limits",
+    "physical_to_virtual",
+    "virtual_sweep",
+    "virtual_to_physical",
+    "LeverArmCalibration",
+    "calibrate_traces",
+    "read_lever_arm_file",
+    "FermiStepFit",
+    "fit_fermi_step",
+    "load_traces",
+    "run_batch",
+    "BatchReport",
+    "measure_drift",
+    "DriftResult",
+    "make_overnight_sample",
+    "LineDetection",
+    "LineDetector",
+    "detect_lines",
 ]

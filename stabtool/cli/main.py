@@ -25,6 +25,13 @@ from ..errors import StabtoolError, StabtoolWarning
 #: Modules of :mod:`stabtool.cli` that provide a sub-command, in help order.
 COMMANDS: list[str] = [
     "info",
+    "analyze",
+    "batch",
+    "drift",
+    "bench",
+    "virtual_gates",
+    "simulate",
+    "calibrate",
 ]
 
 EXIT_OK = 0

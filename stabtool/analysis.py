@@ -1,0 +1,671 @@
+"""The analysis pipeline: map → lines → model numbers → energy scale → charge states.
+
+One configured, picklable object (:class:`Analyzer`) runs every stage; the
+CLI (``stabtool analyze``) and the batch runner use the same object. The
+result (:class:`AnalysisResult`) is frozen, serialises to the JSON object of
+the project's conventions (``to_json``) and to a NetCDF-ready
+:class:`xarray.Dataset` (``to_dataset``), and plots itself (``save_plot``).
+
+References
+----------
+W. G. van der Wiel et al., Rev. Mod. Phys. 75, 1 (2003),
+doi:10.1103/RevModPhys.75.1 (constant-interaction model).
+"""
+
+from __future__ import annotations
+
+import os
+import time
+import warnings
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import xarray as xr
+
+from .errors import InputError, QualityWarning
+from .fit.charge_states import ChargeStates, label_charge_states
+from .fit.model import DiagramFit, fit_diagram
+from .lines.result import LineDetection
+from .mapdata import validate_map
+from .physics import FERMI_FWHM_FACTOR, lever_arm_from_width
+from .quality import Quality
+
+__all__ = ["REFERENCE_AGREEMENT", "AnalysisResult", "Analyzer", "EnergyScale", "analyze"]
+
+#: Relative disagreement between two energy references above which quality fails.
+REFERENCE_AGREEMENT = 0.10
+#: Thermal lines narrower than this many pixels (FWHM) are resolution-limited.
+MIN_FWHM_PX = 3.0
+
+
+def _nan_to_none(obj: Any) -> Any:
+    """Recursively turn NaN/inf and numpy scalars into JSON-friendly values."""
+    if isinstance(obj, dict):
+        return {k: _nan_to_none(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_nan_to_none(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return _nan_to_none(obj.tolist())
+    if isinstance(obj, (np.bool_, bool)):
+        return bool(obj)
+    if isinstance(obj, (np.integer,)):
+        return int(obj)
+    if isinstance(obj, (float, np.floating)):
+        return float(obj) if np.isfinite(obj) else None
+    return obj
+
+
+@dataclass(frozen=True)
+class EnergyScale:
+    """Lever arms α11, α22 and what fixed them.
+
+    Attributes
+    ----------
+    alpha_diag, alpha_diag_error : ndarray, shape (2,)
+        α11, α22 (eV/V) and standard errors; NaN when undetermined.
+    reference : str or None
+        "electron_temperature", "lever_arm", "lever_arm_file" (comma-joined
+        when several were combined), or None.
+    details : dict
+        Per-reference values, for the JSON output.
+    quality : Quality
+    """
+
+    alpha_diag: np.ndarray = field(default_factory=lambda: np.full(2, np.nan))
+    alpha_diag_error: np.ndarray = field(default_factory=lambda: np.full(2, np.nan))
+    reference: str | None = None
+    details: dict = field(default_factory=dict)
+    quality: Quality = field(default_factory=Quality)
+
+
+@dataclass(frozen=True)
+class AnalysisResult:
+    """Everything ``stabtool analyze`` reports about one map.
+
+    Attributes
+    ----------
+    data : xarray.DataArray
+        The analysed map.
+    detection : LineDetection or None
+        Lines found (None when detection itself failed).
+    diagram : DiagramFit
+        Virtual gates, ΔV, δ, Cdg with errors.
+    scale : EnergyScale
+        Lever-arm scale and the reference that fixed it.
+    charge_states : ChargeStates or None
+    refinement : object or None
+        Global constant-interaction fit of the map (:mod:`stabtool.fit.refine`).
+    quality : Quality
+    timings_s : dict
+        Seconds per stage.
+    """
+
+    data: xr.DataArray
+    detection: LineDetection | None
+    diagram: DiagramFit
+    scale: EnergyScale
+    charge_states: ChargeStates | None
+    refinement: Any
+    quality: Quality
+    timings_s: dict = field(default_factory=dict)
+
+    # ----------------------------------------------------------------- numbers
+    @property
+    def x_gate(self) -> str:
+        return str(self.data.dims[-1])
+
+    @property
+    def y_gate(self) -> str:
+        return str(self.data.dims[0])
+
+    @property
+    def lever_arm(self) -> np.ndarray:
+        """α = diag(α11, α22) · M, shape (2, 2); NaN without an energy reference."""
+        return self.scale.alpha_diag[:, None] * self.diagram.vg_matrix
+
+    @property
+    def lever_arm_error(self) -> np.ndarray:
+        a = self.scale.alpha_diag[:, None]
+        sa = self.scale.alpha_diag_error[:, None]
+        m, sm = self.diagram.vg_matrix, self.diagram.vg_matrix_error
+        return np.sqrt((sa * m) ** 2 + (a * sm) ** 2)
+
+    @property
+    def charging_energy_meV(self) -> dict:
+        """E_C1 = α11 ΔV1, E_C2 = α22 ΔV2, E_Cm = mean of α11 δ1 and α22 δ2 (meV)."""
+        return self._charging()[0]
+
+    @property
+    def charging_energy_error_meV(self) -> dict:
+        return self._charging()[1]
+
+    def _charging(self) -> tuple[dict, dict]:
+        a, sa = self.scale.alpha_diag, self.scale.alpha_diag_error
+        dv, sdv = self.diagram.addition_V, self.diagram.addition_V_error
+        dm, sdm = self.diagram.mutual_V, self.diagram.mutual_V_error
+        ec = 1e3 * a * dv
+        sec = 1e3 * np.sqrt((sa * dv) ** 2 + (a * sdv) ** 2)
+        ecm_each = 1e3 * a * dm
+        secm_each = 1e3 * np.sqrt((sa * dm) ** 2 + (a * sdm) ** 2)
+        if self.diagram.mutual_resolved:
+            ecm = float(np.mean(ecm_each))
+            secm = float(np.sqrt(np.sum(secm_each**2)) / 2)
+        else:
+            ecm, secm = float("nan"), float("nan")
+        return (
+            {"dot1": float(ec[0]), "dot2": float(ec[1]), "mutual": ecm},
+            {"dot1": float(sec[0]), "dot2": float(sec[1]), "mutual": secm},
+        )
+
+    @property
+    def triple_points(self) -> np.ndarray:
+        """Triple points (x, y) in volts, shape (k, 2), predicted by the fitted lattice inside the map.
+
+        The pair of cell (N1, N2) lies at ``V' = (ΔV1 (N1 − ½) + δ1 N2 + c1,
+        ΔV2 (N2 + ½) + δ2 (N1 − 1) + c2)`` and that point plus ``(δ1, δ2)``
+        (the two ends of the interdot segment). Empty when the fit failed.
+        """
+        d = self.diagram
+        lat = d.lattice
+        if not d.ok or lat is None or not d.mutual_resolved:
+            return np.zeros((0, 2))
+        dv, dm, c = d.addition_V, d.mutual_V, d.offsets_V
+        minv = np.linalg.inv(d.vg_matrix)
+        labels = np.vstack([lat.labels1, lat.labels2])
+        lo, hi = labels.min(axis=0) - 1, labels.max(axis=0) + 1
+        x = np.asarray(self.data[self.data.dims[-1]].values, float)
+        y = np.asarray(self.data[self.data.dims[0]].values, float)
+        pts = []
+        for n1 in range(int(lo[0]), int(hi[0]) + 1):
+            for n2 in range(int(lo[1]), int(hi[1]) + 1):
+                a = np.array([dv[0] * (n1 - 0.5) + dm[0] * n2 + c[0], dv[1] * (n2 + 0.5) + dm[1] * (n1 - 1) + c[1]])
+                for vp in (a, a + dm):
+                    px, py = minv @ vp
+                    if x.min() <= px <= x.max() and y.min() <= py <= y.max():
+                        pts.append((px, py))
+        return np.array(pts, float).reshape(-1, 2)
+
+    # ------------------------------------------------------------------ output
+    def to_json(self) -> dict:
+        """The JSON object of ``stabtool analyze --json`` (NaN → null)."""
+        d = self.diagram
+        scaled = bool(d.ok and np.any(np.isfinite(self.scale.alpha_diag)))
+        la = self.lever_arm if scaled else None
+        la_err = self.lever_arm_error if scaled else None
+        ec, ec_err = self._charging()
+        if not scaled:
+            ec = {k: None for k in ec}
+            ec_err = {k: None for k in ec_err}
+        energy_reference = self.scale.reference if scaled else None
+        out: dict[str, Any] = {
+            "x_gate": self.x_gate,
+            "y_gate": self.y_gate,
+            "slopes": dict(d.slopes),
+            "slope_errors": dict(d.slope_errors),
+            "virtual_gate_matrix": d.vg_matrix,
+            "addition_voltages_V": {"dot1": d.addition_V[0], "dot2": d.addition_V[1]},
+            "mutual_shifts_V": (
+                {"dot1": d.mutual_V[0], "dot2": d.mutual_V[1]}
+                if d.mutual_resolved
+                else {"dot1": None, "dot2": None}
+            ),
+            "gate_capacitance_aF": d.cdg_aF,
+            "lever_arm": la,
+            "charging_energy_meV": ec,
+            "energy_reference": energy_reference,
+            "quality": self.quality.to_dict(),
+            # extras
+            "virtual_gate_matrix_error": d.vg_matrix_error,
+            "addition_voltages_V_error": {"dot1": d.addition_V_error[0], "dot2": d.addition_V_error[1]},
+            "mutual_shifts_V_error": (
+                {"dot1": d.mutual_V_error[0], "dot2": d.mutual_V_error[1]}
+                if d.mutual_resolved
+                else {"dot1": None, "dot2": None}
+            ),
+            "gate_capacitance_aF_error": d.cdg_aF_error,
+            "lever_arm_error": la_err,
+            "charging_energy_meV_error": ec_err,
+            "lever_arm_ratio": {"value": d.alpha_ratio, "error": d.alpha_ratio_error},
+            "energy_reference_details": self.scale.details,
+            "cell_spread_V": self._spreads(),
+            "lines": self._lines_json(),
+            "triple_points_V": self.triple_points,
+            "charge_states": self.charge_states.to_json() if self.charge_states is not None else None,
+            "refinement": self.refinement.to_json() if self.refinement is not None else None,
+            "timings_s": self.timings_s,
+        }
+        return _nan_to_none(out)
+
+    def _spreads(self) -> dict:
+        lat = self.diagram.lattice
+        if lat is None:
+            return {"addition": {"dot1": None, "dot2": None}, "mutual": {"dot1": None, "dot2": None}}
+        return {
+            "addition": {"dot1": lat.addition_spread_V[0], "dot2": lat.addition_spread_V[1]},
+            "mutual": {"dot1": lat.mutual_spread_V[0], "dot2": lat.mutual_spread_V[1]},
+        }
+
+    def _lines_json(self) -> list[dict]:
+        out = []
+        lat = self.diagram.lattice
+        for fam, lines in (("dot1", self.diagram.lines1), ("dot2", self.diagram.lines2), ("interdot", self.diagram.interdot)):
+            for k, ln in enumerate(lines):
+                rec = {
+                    "family": fam, "x0": ln.x0, "y0": ln.y0, "slope": ln.slope, "slope_error": ln.slope_stderr,
+                    "start": list(ln.start), "end": list(ln.end), "width_V": ln.width_V,
+                }
+                if lat is not None and fam != "interdot":
+                    grp = self.diagram.line_groups[0 if fam == "dot1" else 1]
+                    if grp[k] >= 0:
+                        lab = (lat.labels1 if fam == "dot1" else lat.labels2)[grp[k]]
+                        rec["label"] = [int(lab[0]), int(lab[1])]
+                    else:
+                        rec["label"] = None
+                out.append(rec)
+        return out
+
+    def to_dataset(self) -> xr.Dataset:
+        """The map and all results in one Dataset (results as JSON-able attrs and arrays)."""
+        import json
+
+        da = self.data
+        ds = xr.Dataset({str(da.name or "signal"): da})
+        if self.charge_states is not None:
+            lab = self.charge_states.labels
+            ds["n1"] = (da.dims, lab[..., 0].astype(np.int32), {"long_name": "dot1 occupation"})
+            ds["n2"] = (da.dims, lab[..., 1].astype(np.int32), {"long_name": "dot2 occupation"})
+        ds["virtual_gate_matrix"] = (("virtual_gate", "gate"), self.diagram.vg_matrix)
+        ds["virtual_gate_matrix_error"] = (("virtual_gate", "gate"), self.diagram.vg_matrix_error)
+        ds["gate_capacitance_aF"] = (("dot", "gate"), self.diagram.cdg_aF, {"units": "aF"})
+        ds["gate_capacitance_aF_error"] = (("dot", "gate"), self.diagram.cdg_aF_error, {"units": "aF"})
+        ds["lever_arm"] = (("dot", "gate"), self.lever_arm)
+        ds = ds.assign_coords(dot=["dot1", "dot2"], gate=[self.x_gate, self.y_gate],
+                              virtual_gate=[f"{self.x_gate}'", f"{self.y_gate}'"])
+        ds.attrs["analysis_json"] = json.dumps(self.to_json())
+        ds.attrs["quality_ok"] = int(self.quality.ok)
+        return ds
+
+    def summary(self) -> str:
+        """Readable multi-line text summary."""
+        from .report.text import summary_text
+
+        return summary_text(self)
+
+    def save_plot(self, path: str | os.PathLike[str], **kwargs: Any) -> None:
+        """Write a PNG: map, line families, triple points, charge states, key numbers."""
+        from .report.plot import save_plot
+
+        save_plot(self, path, **kwargs)
+
+
+# --------------------------------------------------------------------- scale
+def _weighted(values: Sequence[float], errors: Sequence[float]) -> tuple[float, float]:
+    v = np.asarray(values, float)
+    e = np.asarray(errors, float)
+    ok = np.isfinite(v) & (v > 0)
+    v, e = v[ok], e[ok]
+    if v.size == 0:
+        return float("nan"), float("nan")
+    if v.size >= 3:
+        med = np.median(v)
+        mad = 1.4826 * np.median(np.abs(v - med))
+        keep = np.abs(v - med) <= max(4 * mad, 1e-3 * med)
+        v, e = v[keep], e[keep]
+    spread = float(np.std(v, ddof=1) / np.sqrt(v.size)) if v.size > 1 else float("nan")
+    if np.all(np.isfinite(e) & (e > 0)):
+        w = 1 / e**2
+        mean = float(np.sum(w * v) / np.sum(w))
+        err = float(np.sqrt(1 / np.sum(w)))
+        return mean, max(err, spread) if np.isfinite(spread) else err
+    return float(np.mean(v)), spread if np.isfinite(spread) else 0.1 * float(np.mean(v))
+
+
+def _widths_from_map(da: xr.DataArray, fit: DiagramFit, which: int, *, max_lines: int = 12) -> tuple[float, float]:
+    """Fermi width across the dot lines, fitted on the map.
+
+    For every line used by the fit, the cuts along the dot's own gate (rows for
+    dot1, columns for dot2) through the central 70 % of the segment are
+    aligned on the line and stacked (each cut minus its mean); one Fermi step
+    on a linear background (:func:`stabtool.fit.fermi.fit_fermi_step`) is
+    fitted per line. Returns the weighted mean width and its standard error (V).
+    """
+    from .fit.fermi import fit_fermi_step
+
+    x = np.asarray(da[da.dims[-1]].values, float)
+    y = np.asarray(da[da.dims[0]].values, float)
+    z = np.asarray(da.values, float)
+    fam_lines = fit.lines1 if which == 0 else fit.lines2
+    grp = fit.line_groups[which]
+    used = [ln for k, ln in enumerate(fam_lines) if k < grp.size and grp[k] >= 0]  # lines used by the fit
+    lines = sorted(used, key=lambda ln: -ln.length_V)[:max_lines]
+    half = 0.35 * fit.addition_V[which]
+    ws, es = [], []
+    for ln in lines:
+        vs, ss = [], []
+        c0, c1 = (ln.start[1], ln.end[1]) if which == 0 else (ln.start[0], ln.end[0])
+        lo, hi = min(c0, c1), max(c0, c1)
+        lo, hi = lo + 0.15 * (hi - lo), hi - 0.15 * (hi - lo)
+        cross = y if which == 0 else x
+        for k in np.nonzero((cross >= lo) & (cross <= hi))[0]:
+            if which == 0:
+                centre = float(ln.x_at(y[k]))
+                sel = np.abs(x - centre) <= half
+                v, sig = x[sel] - centre, z[k, sel]
+            else:
+                centre = float(ln.y_at(x[k]))
+                sel = np.abs(y - centre) <= half
+                v, sig = y[sel] - centre, z[sel, k]
+            ok = np.isfinite(sig)
+            if ok.sum() < 6:
+                continue
+            vs.append(v[ok])
+            ss.append(sig[ok] - np.mean(sig[ok]))
+        if len(vs) < 3:
+            continue
+        try:
+            res = fit_fermi_step(np.concatenate(vs), np.concatenate(ss), background="linear")
+        except InputError:
+            continue
+        if res and np.isfinite(res.width_V) and res.width_V > 0 and np.isfinite(res.width_stderr_V):
+            ws.append(res.width_V)
+            es.append(res.width_stderr_V)
+    return _weighted(ws, es)
+
+
+def _scale(
+    da: xr.DataArray,
+    fit: DiagramFit,
+    *,
+    temperature_K: float | None,
+    lever_arm: tuple[float, ...] | None,
+    lever_arm_file: str | None,
+) -> EnergyScale:
+    q = Quality()
+    estimates: list[tuple[str, np.ndarray, np.ndarray]] = []
+    details: dict[str, Any] = {}
+    ratio, ratio_err = fit.alpha_ratio, fit.alpha_ratio_error  # α11/α22
+    ax_steps = (abs(float(np.median(np.diff(da[da.dims[-1]].values)))), abs(float(np.median(np.diff(da[da.dims[0]].values)))))
+
+    def complete(name: str, a: np.ndarray, e: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        a, e = a.copy(), e.copy()
+        for i in range(2):
+            if not np.isfinite(a[i]) and np.isfinite(a[1 - i]):
+                if np.isfinite(ratio):
+                    a[i] = a[1 - i] / ratio if i == 1 else a[1 - i] * ratio
+                    e[i] = a[i] * np.hypot(e[1 - i] / a[1 - i], ratio_err / ratio)
+                else:
+                    nonlocal q
+                    q = q.with_warning(
+                        f"{name}: α{i + 1}{i + 1} needs a reference of its own (mutual shifts unresolved)"
+                    )
+        return a, e
+
+    if temperature_K is not None and fit.ok:
+        ws, es = np.full(2, np.nan), np.full(2, np.nan)
+        for i in range(2):
+            lines = fit.lines1 if i == 0 else fit.lines2
+            w, e = _widths_from_map(da, fit, i)
+            source = "Fermi fits on stacked map cuts"
+            if not np.isfinite(w):
+                w_l = [ln.width_V for ln in lines]
+                e_l = [ln.width_stderr_V for ln in lines]
+                w, e = _weighted(w_l, e_l)
+                source = "detected lines"
+            ws[i], es[i] = w, e
+            if np.isfinite(w):
+                fwhm_px = FERMI_FWHM_FACTOR * w / ax_steps[i]
+                if fwhm_px < MIN_FWHM_PX:
+                    q = q.with_warning(
+                        f"dot{i + 1} lines are {fwhm_px:.1f} px wide (FWHM): resolution-limited, "
+                        "no lever arm from the temperature"
+                    )
+                    details[f"width_dot{i + 1}_V_resolution_limited"] = w
+                    ws[i], es[i] = np.nan, np.nan
+                    continue
+                details[f"width_dot{i + 1}_V"] = w
+                details[f"width_dot{i + 1}_V_error"] = e
+                details["width_source"] = source
+        a: np.ndarray = np.array([lever_arm_from_width(wi, temperature_K) if np.isfinite(wi) else np.nan for wi in ws])
+        e_a: np.ndarray = a * es / ws
+        if np.all(np.isfinite(a)) and np.isfinite(ratio):
+            # thermal widths give α11/α22 = w2/w1; the diagram gives δ2/δ1
+            r_w = a[0] / a[1]
+            r_err = r_w * np.hypot(e_a[0] / a[0], e_a[1] / a[1])
+            dev = abs(r_w - ratio) / ratio
+            details["lever_arm_ratio_from_widths"] = r_w
+            if dev > REFERENCE_AGREEMENT and abs(r_w - ratio) > 3 * np.hypot(r_err, ratio_err):
+                q = q.with_warning(
+                    f"line widths give α11/α22 = {r_w:.3f} but the diagram gives {ratio:.3f}: "
+                    "lines broader than thermal (tunnel coupling, noise) on one dot?"
+                )
+        a, e_a = complete("electron temperature", a, e_a)
+        if np.any(np.isfinite(a)):
+            estimates.append(("electron_temperature", a, e_a))
+            details["electron_temperature_K"] = temperature_K
+    if lever_arm is not None:
+        la = tuple(float(v) for v in lever_arm)
+        a_u = np.array([la[0], la[1] if len(la) > 1 else np.nan])
+        e_u = 0.0 * a_u  # a user-given value is taken as exact
+        if len(la) > 1 and np.isfinite(ratio):
+            dev = abs(la[0] / la[1] - ratio) / ratio
+            if dev > REFERENCE_AGREEMENT and abs(la[0] / la[1] - ratio) > 3 * ratio_err:
+                q = q.with_warning(
+                    f"given lever arms have α11/α22 = {la[0] / la[1]:.3f} but the diagram gives {ratio:.3f}"
+                )
+        a_u, e_u = complete("lever arm", a_u, e_u)
+        estimates.append(("lever_arm", a_u, e_u))
+    if lever_arm_file is not None:
+        a_f, e_f = _lever_arm_from_file(lever_arm_file, da)
+        a_f, e_f = complete("lever-arm file", a_f, e_f)
+        estimates.append(("lever_arm_file", a_f, e_f))
+        details["lever_arm_file"] = os.fspath(lever_arm_file)
+    if not estimates:
+        return EnergyScale(details=details, quality=q)
+    for name, a_est, e_est in estimates:
+        details[f"alpha_from_{name}"] = np.asarray(a_est).tolist()
+        details[f"alpha_from_{name}_error"] = np.asarray(e_est).tolist()
+    # compare references pairwise
+    for i in range(len(estimates)):
+        for j in range(i + 1, len(estimates)):
+            ni, ai, ei = estimates[i]
+            nj, aj, ej = estimates[j]
+            for k in range(2):
+                if np.isfinite(ai[k]) and np.isfinite(aj[k]):
+                    dev = abs(ai[k] - aj[k]) / aj[k]
+                    if dev > REFERENCE_AGREEMENT and abs(ai[k] - aj[k]) > 3 * np.hypot(ei[k], ej[k]):
+                        q = q.with_warning(
+                            f"references disagree on α{k + 1}{k + 1}: {ni} gives {ai[k]:.4g}, {nj} gives {aj[k]:.4g}"
+                        )
+    # the user's own lever arm wins, then a file, then the temperature
+    order = {"lever_arm": 0, "lever_arm_file": 1, "electron_temperature": 2}
+    best_name, best_a, best_e = min(estimates, key=lambda t: order[t[0]])
+    if not np.all(np.isfinite(best_a)):
+        q = q.with_warning(f"{best_name}: only one lever arm determined; α and E_C of the other dot are null")
+    return EnergyScale(alpha_diag=np.asarray(best_a, float), alpha_diag_error=np.asarray(best_e, float),
+                       reference=best_name, details=details, quality=q)
+
+
+def _lever_arm_from_file(path: str, da: xr.DataArray) -> tuple[np.ndarray, np.ndarray]:
+    try:
+        from .calibrate import read_lever_arm_file  # type: ignore[attr-defined]
+    except ImportError as exc:  # pragma: no cover - depends on another module's progress
+        raise InputError(path, "lever-arm files cannot be read yet (stabtool.calibrate missing)") from exc
+    rec = read_lever_arm_file(path)
+    rec_quality = getattr(rec, "quality", None)
+    if rec_quality is not None and not rec_quality.ok:
+        warnings.warn(f"{path}: the lever-arm calibration is doubtful: {'; '.join(rec_quality.warnings[:2])}",
+                      QualityWarning, stacklevel=3)
+    gates = [str(da.dims[-1]), str(da.dims[0])]
+    a, e = np.full(2, np.nan), np.full(2, np.nan)
+    # accept a mapping gate -> value or gate -> (value, error), or an object with .lever_arms
+    table: Any = getattr(rec, "lever_arms", rec)
+    errs = getattr(rec, "lever_arm_errors", None) or {}
+    for i, g in enumerate(gates):
+        if g in table:
+            val = table[g]
+            if isinstance(val, (tuple, list)):
+                a[i], e[i] = float(val[0]), float(val[1])
+            else:
+                a[i] = float(getattr(val, "value", val))
+                e[i] = float(getattr(val, "error", errs.get(g, 0.0)))
+    if not np.any(np.isfinite(a)):
+        raise InputError(path, f"no lever arm for gate {gates[0]!r} or {gates[1]!r} in the file")
+    return a, e
+
+
+# ------------------------------------------------------------------ pipeline
+def _default_detector(da: xr.DataArray) -> LineDetection:
+    from . import lines as _lines
+
+    for name in ("detect_lines", "detect", "find_lines"):
+        func = getattr(_lines, name, None)
+        if callable(func):
+            return func(da)
+    raise RuntimeError("no line detector available in stabtool.lines")
+
+
+class Analyzer:
+    """Configured analysis pipeline; call it on a map.
+
+    Parameters
+    ----------
+    electron_temperature_K : float, optional
+        Electron temperature; the lever arms follow from the thermal widths
+        of the lines, ``α_ii = k_B T_e / (e w_i)``.
+    lever_arm : float or (float, float), optional
+        Known lever arm α11 (and α22) of the dots' plunger gates (x, y), eV/V.
+        With only α11, α22 follows from α11/α22 = δ2/δ1.
+    lever_arm_file : path, optional
+        Calibration file read by :func:`stabtool.calibrate.read_lever_arm_file`.
+    refine : bool
+        Fit the constant-interaction model to the map itself after the line
+        fit (checks the model, tightens the estimates).
+    detector : callable, optional
+        ``detector(da) -> LineDetection``; default: the line detector of
+        :mod:`stabtool.lines`.
+
+    Examples
+    --------
+    >>> an = Analyzer(electron_temperature_K=0.1)          # doctest: +SKIP
+    >>> res = an(da); res.to_json()["virtual_gate_matrix"]  # doctest: +SKIP
+    """
+
+    def __init__(
+        self,
+        *,
+        electron_temperature_K: float | None = None,
+        lever_arm: float | Sequence[float] | None = None,
+        lever_arm_file: str | os.PathLike[str] | None = None,
+        refine: bool = True,
+        detector: Callable[[xr.DataArray], LineDetection] | None = None,
+    ) -> None:
+        if electron_temperature_K is not None:
+            t = float(electron_temperature_K)
+            if not (np.isfinite(t) and t > 0):
+                raise InputError("electron_temperature_K", f"expected a positive temperature in K, got {electron_temperature_K!r}")
+            electron_temperature_K = t
+        if lever_arm is not None:
+            raw: tuple[Any, ...] = (lever_arm,) if np.isscalar(lever_arm) else tuple(lever_arm)  # type: ignore[arg-type]
+            try:
+                vals = tuple(float(v) for v in raw)
+            except (TypeError, ValueError):
+                vals = ()
+            if not (1 <= len(vals) <= 2) or not all(np.isfinite(v) and 0 < v <= 1 for v in vals):
+                raise InputError("lever_arm", f"expected one or two lever arms in (0, 1] eV/V, got {lever_arm!r}")
+            lever_arm = vals
+        self.electron_temperature_K = electron_temperature_K
+        self.lever_arm = lever_arm
+        self.lever_arm_file = None if lever_arm_file is None else os.fspath(lever_arm_file)
+        self.refine = bool(refine)
+        self.detector = detector
+
+    def __repr__(self) -> str:
+        det = "default" if self.detector is None else getattr(self.detector, "__name__", repr(self.detector))
+        return (
+            f"Analyzer(electron_temperature_K={self.electron_temperature_K!r}, lever_arm={self.lever_arm!r}, "
+            f"lever_arm_file={self.lever_arm_file!r}, refine={self.refine!r}, detector={det})"
+        )
+
+    def analyze_file(self, path: str | os.PathLike[str], **load_kwargs: Any) -> AnalysisResult:
+        """Load ``path`` with :func:`stabtool.io.load` and analyse it."""
+        from .io import load
+
+        return self(load(path, **load_kwargs))
+
+    def __call__(self, da: xr.DataArray) -> AnalysisResult:
+        validate_map(da)
+        timings: dict[str, float] = {}
+        t0 = time.perf_counter()
+        detector = self.detector or _default_detector
+        q = Quality()
+        detection: LineDetection | None
+        try:
+            detection = detector(da)
+        except Exception as exc:
+            if isinstance(exc, InputError):
+                raise
+            detection = None
+            q = q.with_warning(f"line detection failed: {type(exc).__name__}: {exc}")
+        timings["detect"] = time.perf_counter() - t0
+        t1 = time.perf_counter()
+        if detection is not None:
+            fit = fit_diagram(detection, data=da)
+            # the lines are re-checked and re-measured on the map by the fitter: the
+            # detector's own doubts are kept as notes when the fit succeeded
+            for w in detection.quality.warnings:
+                q = q.with_warning(f"detector: {w}", doubtful=not fit.ok)
+            if not detection.quality.ok and not fit.ok:
+                q = q.with_warning("line detection doubtful")
+        else:
+            from .lines.result import LineDetection as _LD  # empty detection
+            from .mapdata import map_axes
+
+            fit = fit_diagram(_LD(axes=map_axes(da), families={}, unassigned=(), jumps=(),
+                                  excluded_rows=np.zeros(0, int), noise_level=np.nan, snr=np.nan, quality=Quality()))
+        q = q.merge(fit.quality)
+        timings["model"] = time.perf_counter() - t1
+        states = None
+        refinement = None
+        x = np.asarray(da[da.dims[-1]].values, float)
+        y = np.asarray(da[da.dims[0]].values, float)
+        if fit.ok and fit.lattice is not None:
+            lat = fit.lattice
+            lowest = (int(lat.labels1[:, 0].min()), int(lat.labels2[:, 1].min()))
+            snr = detection.snr if detection is not None and np.isfinite(detection.snr) else 10.0
+            states = label_charge_states(
+                x, y, fit.vg_matrix, addition_V=fit.addition_V, mutual_V=np.maximum(fit.mutual_V, 0.0),
+                offsets_V=fit.offsets_V, lowest_line=lowest, snr=snr, valid=np.isfinite(np.asarray(da.values)),
+            )
+            if self.refine:
+                t2 = time.perf_counter()
+                try:
+                    from .fit.refine import refine_model
+
+                    refinement = refine_model(da, fit, charge_states=states)
+                    q = q.merge(refinement.quality)
+                except ImportError:
+                    refinement = None
+                timings["refine"] = time.perf_counter() - t2
+        t3 = time.perf_counter()
+        scale = _scale(da, fit, temperature_K=self.electron_temperature_K, lever_arm=self.lever_arm,
+                       lever_arm_file=self.lever_arm_file)
+        q = q.merge(scale.quality)
+        timings["scale"] = time.perf_counter() - t3
+        timings["total"] = time.perf_counter() - t0
+        if not q.ok:
+            warnings.warn(
+                f"{da.attrs.get('source', 'map')}: analysis doubtful: {'; '.join(q.warnings[:3])}",
+                QualityWarning, stacklevel=2,
+            )
+        return AnalysisResult(data=da, detection=detection, diagram=fit, scale=scale, charge_states=states,
+                              refinement=refinement, quality=q, timings_s=timings)
+
+
+def analyze(da_or_path: xr.DataArray | str | os.PathLike[str], **kwargs: Any) -> AnalysisResult:
+    """Analyse a map (DataArray or file path) with an :class:`Analyzer` built from ``kwargs``."""
+    an = Analyzer(**kwargs)
+    if isinstance(da_or_path, xr.DataArray):
+        return an(da_or_path)
+    return an.analyze_file(da_or_path)

@@ -1,0 +1,86 @@
+"""``stabtool analyze FILE``: lines, virtual gates, capacitances, lever arms, charge states.
+
+Runs the :class:`~stabtool.analysis.Analyzer` on one map and prints a text
+summary, or with ``--json`` the JSON object of the project's conventions.
+``--plot`` writes a PNG, ``--save`` the map and all results as NetCDF (both
+written atomically). Exit 0 whenever the analysis ran, even when its quality
+verdict is false; exit 2 with one line for input that cannot be read.
+"""
+
+from __future__ import annotations
+
+import argparse
+from typing import Any
+
+__all__ = ["register", "run"]
+
+
+def _lever_arm(text: str) -> tuple[float, ...]:
+    try:
+        vals = tuple(float(t) for t in text.split(","))
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected A11 or A11,A22 (numbers in eV/V), got {text!r}") from None
+    if not 1 <= len(vals) <= 2 or not all(0 < v <= 1 for v in vals):
+        raise argparse.ArgumentTypeError(f"expected one or two lever arms in (0, 1] eV/V, got {text!r}")
+    return vals
+
+
+def _temperature(text: str) -> float:
+    try:
+        t = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a temperature in K, got {text!r}") from None
+    if not t > 0:
+        raise argparse.ArgumentTypeError(f"expected a positive temperature in K, got {text!r}")
+    return t
+
+
+def run(args: argparse.Namespace) -> int:
+    """Analyse ``args.file``; return the exit code."""
+    from ..analysis import Analyzer
+    from ..io import dumps, load
+
+    da = load(args.file, var=args.var, x=args.x, y=args.y)
+    analyzer = Analyzer(
+        electron_temperature_K=args.electron_temperature,
+        lever_arm=args.lever_arm,
+        lever_arm_file=args.lever_arm_file,
+        refine=not args.no_refine,
+    )
+    res = analyzer(da)
+    if args.plot:
+        res.save_plot(args.plot)
+    if args.save:
+        from ..io import save_map
+
+        save_map(res.to_dataset(), args.save)
+    if args.json:
+        print(dumps(res.to_json()))
+    else:
+        print(res.summary())
+    return 0
+
+
+def register(subparsers: Any) -> None:
+    """Add the ``analyze`` sub-command."""
+    p = subparsers.add_parser(
+        "analyze",
+        help="virtual gates, gate capacitances, lever arms, charging energies and charge states of one map",
+        description=__doc__.split("\n\n")[1] if __doc__ else None,
+    )
+    p.add_argument("file", metavar="FILE", help="map file (.nc, .h5, .csv, .tsv, .txt, .npz)")
+    p.add_argument("--x", default=None, metavar="GATE", help="gate to put on x (plunger of dot1)")
+    p.add_argument("--y", default=None, metavar="GATE", help="gate to put on y (plunger of dot2)")
+    p.add_argument("--var", default=None, metavar="NAME", help="measured quantity to read")
+    ref = p.add_mutually_exclusive_group()
+    ref.add_argument("--electron-temperature", type=_temperature, default=None, metavar="K",
+                     help="electron temperature: lever arms from the thermal line widths")
+    ref.add_argument("--lever-arm", type=_lever_arm, default=None, metavar="A11[,A22]",
+                     help="known lever arm(s) of the x (and y) gate, eV/V")
+    ref.add_argument("--lever-arm-file", default=None, metavar="FILE", help="lever-arm calibration file")
+    p.add_argument("--json", action="store_true", help="print the result as one JSON object")
+    p.add_argument("--plot", default=None, metavar="OUT.png", help="write a figure of the analysis")
+    p.add_argument("--save", default=None, metavar="OUT.nc", help="write the map and all results (NetCDF)")
+    p.add_argument("--no-refine", action="store_true", help="skip the global model fit to the map")
+    p.add_argument("--quiet", action="store_true", help="do not print warnings")
+    p.set_defaults(func=run)

@@ -1,0 +1,577 @@
+"""From detected transition lines to the constant-interaction model numbers.
+
+Slopes give the virtual-gate matrix ``M = [[1, −1/s1], [−s2, 1]]``; in
+virtual coordinates the lattice fit (:mod:`stabtool.fit.lattice`) gives the
+addition voltages ``ΔV`` and mutual shifts ``δ``; then
+``Cdg = e · D⁻¹ · M`` with ``D = [[ΔV1, δ1], [δ2, ΔV2]]`` and
+``α11/α22 = δ2/δ1``. Every number carries a standard error propagated from
+the line fits (slope errors, position errors scaled by the fit's reduced
+chi-square) through the Jacobian.
+
+References
+----------
+W. G. van der Wiel et al., "Electron transport through double quantum dots",
+Rev. Mod. Phys. 75, 1 (2003), doi:10.1103/RevModPhys.75.1.
+T. Hensgens et al., Nature 548, 70 (2017), doi:10.1038/nature23022
+(virtual gates).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field, replace
+from typing import Any
+
+import numpy as np
+
+from ..lines.result import LineDetection, LineFamily, TransitionLine
+from ..physics import cdg_from_diagram
+from ..quality import Quality
+from .contrast import line_contrast, map_noise
+from .lattice import FamilySegments, LatticeFit, fit_lattice, merge_fragments
+from .relocate import relocate_family
+from .uncertainty import propagate
+
+__all__ = ["DiagramFit", "fit_diagram", "predicted_lines", "to_virtual"]
+
+#: Relative per-cell spread of ΔV or δ above which spacings count as inconsistent.
+MAX_CELL_SPREAD = 0.10
+#: Largest standard error of an off-diagonal virtual-gate element for an ok verdict
+#: (3σ stays within the 0.02 accuracy goal at SNR 3).
+MAX_VG_ERROR = 0.0067
+#: Largest relative standard error of any Cdg element for an ok verdict (the stated errors
+#: run about twice the errors measured on generator maps; checked by the SNR-sweep test).
+MAX_CDG_REL_ERROR = 0.015
+#: δ must exceed this many standard errors to count as resolved.
+MUTUAL_SIGMAS = 3.0
+
+
+def to_virtual(m: np.ndarray, x: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Virtual coordinates ``V' = M V`` of points ``(x, y)`` (V)."""
+    x = np.asarray(x, float)
+    y = np.asarray(y, float)
+    return m[0, 0] * x + m[0, 1] * y, m[1, 0] * x + m[1, 1] * y
+
+
+@dataclass(frozen=True)
+class DiagramFit:
+    """Model numbers read off a double-dot diagram (no energy scale).
+
+    Attributes
+    ----------
+    ok : bool
+        False when the model could not be determined (``quality`` says why).
+    slopes, slope_errors : dict
+        ``{"dot1", "dot2", "interdot"}``: dV_y/dV_x and one standard error.
+    params : ndarray, shape (6,)
+        ``(M12, M21, ΔV1, δ1, ΔV2, δ2)``; ``param_cov`` its (6, 6) covariance.
+    vg_matrix, vg_matrix_error : ndarray, shape (2, 2)
+    addition_V, addition_V_error, mutual_V, mutual_V_error : ndarray, shape (2,)
+    offsets_V : ndarray, shape (2,)
+        ``(c1, c2)`` of the lattice (V', relative label origin).
+    cdg_aF, cdg_aF_error : ndarray, shape (2, 2)
+    alpha_ratio, alpha_ratio_error : float
+        ``α11/α22 = δ2/δ1``; NaN when δ is unresolved.
+    mutual_resolved : bool
+        Both δ exceed ``MUTUAL_SIGMAS`` standard errors.
+    lattice : LatticeFit
+        Fit on the merged lines (collinear fragments joined).
+    line_groups : (ndarray, ndarray)
+        Index of the merged dot1 / dot2 line that each detected line belongs to.
+    lines1, lines2, interdot : tuple of TransitionLine
+    quality : Quality
+    """
+
+    ok: bool
+    slopes: dict
+    slope_errors: dict
+    params: np.ndarray
+    param_cov: np.ndarray
+    vg_matrix: np.ndarray
+    vg_matrix_error: np.ndarray
+    addition_V: np.ndarray
+    addition_V_error: np.ndarray
+    mutual_V: np.ndarray
+    mutual_V_error: np.ndarray
+    offsets_V: np.ndarray
+    cdg_aF: np.ndarray
+    cdg_aF_error: np.ndarray
+    alpha_ratio: float
+    alpha_ratio_error: float
+    mutual_resolved: bool
+    lattice: LatticeFit | None
+    line_groups: tuple[np.ndarray, np.ndarray] = field(default_factory=lambda: (np.zeros(0, int), np.zeros(0, int)))
+    lines1: tuple[TransitionLine, ...] = field(default_factory=tuple)
+    lines2: tuple[TransitionLine, ...] = field(default_factory=tuple)
+    interdot: tuple[TransitionLine, ...] = field(default_factory=tuple)
+    quality: Quality = field(default_factory=Quality)
+
+    def __bool__(self) -> bool:
+        return self.ok
+
+    @property
+    def diagram_matrix(self) -> np.ndarray:
+        """``D = [[ΔV1, δ1], [δ2, ΔV2]]`` (V)."""
+        return np.array([[self.addition_V[0], self.mutual_V[0]], [self.mutual_V[1], self.addition_V[1]]])
+
+
+def _inv_slope(line: TransitionLine) -> tuple[float, float]:
+    """dx/dy of a line and its standard error."""
+    s = line.slope
+    if np.isinf(s):
+        return 0.0, float(line.slope_stderr) if np.isfinite(line.slope_stderr) else np.nan
+    return 1.0 / s, abs(line.slope_stderr) / s**2
+
+
+def _family_slope(lines, fam_slope: float, fam_err: float, *, steep: bool) -> tuple[float, float]:
+    """Family slope as (dx/dy for steep families | dy/dx otherwise, error)."""
+    if np.isfinite(fam_slope) and np.isfinite(fam_err) and fam_err > 0:
+        if steep:
+            if np.isinf(fam_slope) or fam_slope == 0:
+                return 0.0, fam_err
+            return 1.0 / fam_slope, fam_err / fam_slope**2
+        return fam_slope, fam_err
+    vals, errs = [], []
+    for ln in lines:
+        if steep:
+            v, e = _inv_slope(ln)
+        else:
+            v, e = ln.slope, ln.slope_stderr
+        if np.isfinite(v):
+            vals.append(v)
+            errs.append(e if np.isfinite(e) and e > 0 else np.nan)
+    if not vals:
+        return np.nan, np.nan
+    vals_a, errs_a = np.array(vals), np.array(errs)
+    if np.all(np.isfinite(errs_a)):
+        w = 1.0 / errs_a**2
+        mean = float(np.sum(w * vals_a) / np.sum(w))
+        err = float(np.sqrt(1.0 / np.sum(w)))
+        if vals_a.size > 1:
+            err = max(err, float(np.std(vals_a, ddof=1) / np.sqrt(vals_a.size)))
+        return mean, err
+    mean = float(np.mean(vals_a))
+    err = float(np.std(vals_a, ddof=1) / np.sqrt(vals_a.size)) if vals_a.size > 1 else np.nan
+    return mean, err
+
+
+def _segments(lines, m: np.ndarray, which: int) -> FamilySegments:
+    pos, err, lo, hi, lever = [], [], [], [], []
+    for ln in lines:
+        u0, v0 = to_virtual(m, ln.x0, ln.y0)
+        us, vs = to_virtual(m, np.array([ln.start[0], ln.end[0]]), np.array([ln.start[1], ln.end[1]]))
+        s = ln.slope
+        pe = ln.position_stderr if np.isfinite(ln.position_stderr) else np.nan
+        if which == 0:
+            # shift perpendicular by d moves x at fixed y by d·sqrt(1+s²)/|s|
+            fac = 1.0 if np.isinf(s) else np.sqrt(1 + s * s) / max(abs(s), 1e-12)
+            pos.append(float(u0))
+            lo.append(float(np.min(vs)))
+            hi.append(float(np.max(vs)))
+            lever.append(ln.y0)
+        else:
+            fac = np.inf if np.isinf(s) else np.sqrt(1 + s * s)
+            pos.append(float(v0))
+            lo.append(float(np.min(us)))
+            hi.append(float(np.max(us)))
+            lever.append(ln.x0)
+        err.append(pe * fac)
+    return FamilySegments(
+        pos=np.array(pos), pos_err=np.array(err), lo=np.array(lo), hi=np.array(hi), lever=np.array(lever)
+    )
+
+
+def _reliable(lines, fam_value: float, *, steep: bool) -> tuple[np.ndarray, int]:
+    """Indices of the lines to use: well fitted and on the family slope.
+
+    A line is set aside when its position error exceeds 5× the lower quartile
+    of the family's errors, or when its direction differs from the family's
+    by more than 3 of its own standard errors plus 1° (common practice, no source).
+    """
+    k = len(lines)
+    idx = np.arange(k)
+    if k < 3:
+        return idx, 0
+    pe = np.array([ln.position_stderr for ln in lines], float)
+    keep = np.ones(k, bool)
+    if np.all(np.isfinite(pe)) and np.all(pe > 0):
+        keep &= pe <= 5.0 * np.percentile(pe, 25)
+    fam_angle = np.degrees(np.arctan(1.0 / fam_value)) if steep else np.degrees(np.arctan(fam_value))
+    for i, ln in enumerate(lines):
+        if steep:
+            val, err = _inv_slope(ln)
+            ang = np.degrees(np.arctan(1.0 / val)) if val != 0 else 90.0
+            d_ang = np.degrees(err / (1 + val**2)) if np.isfinite(err) else 0.0
+        else:
+            val, err = ln.slope, ln.slope_stderr
+            ang = np.degrees(np.arctan(val))
+            d_ang = np.degrees(err / (1 + val**2)) if np.isfinite(err) else 0.0
+        diff = abs((ang - fam_angle + 90.0) % 180.0 - 90.0)
+        if diff > 3 * d_ang + 1.0:
+            keep[i] = False
+    if keep.sum() < 2:
+        return idx, 0
+    return idx[keep], int(k - keep.sum())
+
+
+def _full_groups(groups: np.ndarray, used: np.ndarray, k: int) -> np.ndarray:
+    """Merged-line index of every detected line (−1 for lines set aside)."""
+    out = -np.ones(k, int)
+    out[used] = groups
+    return out
+
+
+def _derived(p: np.ndarray) -> np.ndarray:
+    """Flat vector of derived numbers from ``(M12, M21, ΔV1, δ1, ΔV2, δ2)``."""
+    m = np.array([[1.0, p[0]], [p[1], 1.0]])
+    cdg = cdg_from_diagram(np.array([p[2], p[4]]), np.array([p[3], p[5]]), m)
+    ratio = p[5] / p[3] if p[3] != 0 else np.nan
+    s1 = -1.0 / p[0] if p[0] != 0 else np.inf
+    s2 = -p[1]
+    # interdot slope: s3 = −(α11 − α21)/(α12 − α22) with α = diag(α11, α22) M, α11/α22 = ratio
+    a11, a22 = ratio, 1.0
+    den = a11 * p[0] - a22
+    s3 = -(a11 - a22 * p[1]) / den if den != 0 else np.inf
+    return np.concatenate([cdg.ravel(), [ratio, s1, s2, s3]])
+
+
+def _empty_fit(reason: str, slopes: dict, slope_errors: dict, lines1, lines2, inter, q: Quality) -> DiagramFit:
+    nan2 = np.full(2, np.nan)
+    nan22 = np.full((2, 2), np.nan)
+    return DiagramFit(
+        ok=False, slopes=slopes, slope_errors=slope_errors, params=np.full(6, np.nan),
+        param_cov=np.full((6, 6), np.nan), vg_matrix=nan22, vg_matrix_error=nan22.copy(),
+        addition_V=nan2, addition_V_error=nan2.copy(), mutual_V=nan2.copy(), mutual_V_error=nan2.copy(),
+        offsets_V=nan2.copy(), cdg_aF=nan22.copy(), cdg_aF_error=nan22.copy(), alpha_ratio=np.nan,
+        alpha_ratio_error=np.nan, mutual_resolved=False, lattice=None, lines1=tuple(lines1),
+        lines2=tuple(lines2), interdot=tuple(inter), quality=q.with_warning(reason),
+    )
+
+
+def _fit_once(
+    detection: LineDetection, *, data: Any = None, relocate: bool = True, err_floor_px: float = 0.1
+) -> DiagramFit:
+    """Virtual gates, addition voltages, mutual shifts and Cdg from detected lines.
+
+    Parameters
+    ----------
+    detection : LineDetection
+        Lines sorted into the families ``dot1``, ``dot2`` and ``interdot``,
+        in volts.
+    data : xarray.DataArray, optional
+        The map; when given, every line must show a significant signal step
+        across it (:func:`stabtool.fit.contrast.line_contrast`) to be used.
+    relocate : bool
+        With ``data``, re-measure the lines of each family on the map with a
+        common slope (:func:`stabtool.fit.relocate.relocate_family`).
+    err_floor_px : float
+        Position error floor in pixels (added in quadrature), so that lines
+        with understated errors do not dominate.
+
+    Returns
+    -------
+    DiagramFit
+        Tests false (``quality`` says why) when a family is missing or the
+        honeycomb cell cannot be determined; never raises for a doubtful map.
+
+    Notes
+    -----
+    The slopes fix ``M``; positions in virtual coordinates are fitted by the
+    lattice model; the covariance of ``(M12, M21, ΔV1, δ1, ΔV2, δ2)`` includes
+    the dependence of the positions on ``M`` (``∂V'_1/∂M12 = y``,
+    ``∂V'_2/∂M21 = x``) and is propagated to ``Cdg`` and ``α11/α22`` through
+    a numerical Jacobian.
+    """
+    q = Quality()
+    f1, f2, f3 = detection.family("dot1"), detection.family("dot2"), detection.family("interdot")
+    lines1, lines2, inter = tuple(f1.lines), tuple(f2.lines), tuple(f3.lines)
+    inv1, inv1_err = _family_slope(lines1, f1.slope, f1.slope_stderr, steep=True)
+    s2, s2_err = _family_slope(lines2, f2.slope, f2.slope_stderr, steep=False)
+    s3, s3_err = (f3.slope, f3.slope_stderr) if len(f3) else (np.nan, np.nan)
+    if len(f3) and not np.isfinite(s3):
+        s3, s3_err = _family_slope(inter, np.nan, np.nan, steep=False)
+    s1 = (1.0 / inv1 if inv1 != 0 else np.inf) if np.isfinite(inv1) else np.nan
+    s1_err = inv1_err * s1**2 if np.isfinite(inv1_err) and np.isfinite(s1) else np.nan
+    slopes = {"dot1": s1, "dot2": s2, "interdot": s3}
+    slope_errors = {"dot1": s1_err, "dot2": s2_err, "interdot": s3_err}
+    if not lines1 or not lines2:
+        missing = [n for n, ls in (("dot1", lines1), ("dot2", lines2)) if not ls]
+        return _empty_fit(f"missing line family: {', '.join(missing)}", slopes, slope_errors, lines1, lines2, inter, q)
+    if not np.isfinite(inv1) or not np.isfinite(s2):
+        return _empty_fit("slopes undetermined", slopes, slope_errors, lines1, lines2, inter, q)
+    if not (np.isfinite(inv1_err) and np.isfinite(s2_err)):
+        q = q.with_warning("slope errors unknown (single line in a family): uncertainties understated")
+    used1, n_drop1 = _reliable(lines1, inv1, steep=True)
+    used2, n_drop2 = _reliable(lines2, s2, steep=False)
+    if data is not None:
+        z = np.asarray(data.values, float)
+        xa = np.asarray(data[data.dims[-1]].values, float)
+        ya = np.asarray(data[data.dims[0]].values, float)
+        kept = []
+        for which, (used, lines) in enumerate(((used1, lines1), (used2, lines2))):
+            con = line_contrast(z, xa, ya, [lines[i] for i in used], which=which)
+            kept.append(used[con.keep] if con.keep.sum() >= 2 else used)
+        n_drop1 += len(used1) - len(kept[0])
+        n_drop2 += len(used2) - len(kept[1])
+        used1, used2 = kept
+    # family slopes from the lines actually used (the detector's may include spurious ones)
+    inv1, inv1_err = _family_slope([lines1[i] for i in used1], np.nan, np.nan, steep=True)
+    s2, s2_err = _family_slope([lines2[i] for i in used2], np.nan, np.nan, steep=False)
+    if data is not None and relocate:
+        noise = map_noise(z)
+        new_lines = [list(lines1), list(lines2)]
+        new_used = []
+        results = []
+        for which, (used, init) in enumerate(((used1, inv1), (used2, s2))):
+            rel = relocate_family(z, xa, ya, [new_lines[which][i] for i in used], which=which, initial=init,
+                                  noise=noise)
+            results.append(rel)
+            if rel.ok:
+                keep = []
+                for i, ln in zip(used, rel.lines):
+                    new_lines[which][i] = ln
+                    if np.isfinite(ln.position_stderr):
+                        keep.append(i)
+                new_used.append(np.array(keep, int) if len(keep) >= 2 else used)
+            else:
+                new_used.append(used)
+        if results[0].ok and results[1].ok:
+            lines1, lines2 = tuple(new_lines[0]), tuple(new_lines[1])
+            used1, used2 = new_used
+            inv1, inv1_err = results[0].inv_or_slope, results[0].stderr
+            s2, s2_err = results[1].inv_or_slope, results[1].stderr
+        else:
+            q = q.with_warning("lines could not be re-measured on the map; slopes from the detector", doubtful=False)
+    s1 = (1.0 / inv1 if inv1 != 0 else np.inf) if np.isfinite(inv1) else np.nan
+    s1_err = inv1_err * s1**2 if np.isfinite(inv1_err) and np.isfinite(s1) else np.nan
+    slopes.update(dot1=s1, dot2=s2)
+    slope_errors.update(dot1=s1_err, dot2=s2_err)
+    m12, m21 = -inv1, -s2
+    m = np.array([[1.0, m12], [m21, 1.0]])
+    for name, nd, nt in (("dot1", n_drop1, len(lines1)), ("dot2", n_drop2, len(lines2))):
+        if nd:
+            q = q.with_warning(
+                f"{nd} of {nt} {name} segments set aside (poorly fitted, off the family slope or without a step in the map)",
+                doubtful=nt - nd < 2,
+            )
+    if abs(np.linalg.det(m)) < 0.05:
+        return _empty_fit(
+            f"dot1 and dot2 lines are nearly parallel (slopes {s1:.3g}, {s2:.3g})",
+            slopes, slope_errors, lines1, lines2, inter, q,
+        )
+    seg1, seg2 = _segments([lines1[i] for i in used1], m, 0), _segments([lines2[i] for i in used2], m, 1)
+    ax = detection.axes
+    px = float(np.hypot(abs(ax.dx), abs(ax.dy))) if np.isfinite(ax.dx) else 0.0
+    inter_ext = None
+    if inter:
+        ext = []
+        for ln in inter:
+            us, vs = to_virtual(m, np.array([ln.start[0], ln.end[0]]), np.array([ln.start[1], ln.end[1]]))
+            ext.append((abs(us[1] - us[0]), abs(vs[1] - vs[0])))
+        inter_ext = tuple(np.median(np.array(ext), axis=0))
+    groups = []
+    merged = []
+    for seg in (seg1, seg2):
+        perr = seg.pos_err[np.isfinite(seg.pos_err)]
+        tol = max(1.5 * px, 3.0 * float(np.median(perr)) if perr.size else 0.0)
+        mseg, grp = merge_fragments(seg, tol_V=tol, gap_V=8 * px)
+        merged.append(mseg)
+        groups.append(grp)
+    seg1, seg2 = merged
+    lat = fit_lattice(seg1, seg2, interdot_extent=inter_ext, err_floor_V=err_floor_px * px)
+    if not lat:
+        return _empty_fit(lat.reason, slopes, slope_errors, lines1, lines2, inter, q)
+    p = np.array([m12, m21, lat.addition_V[0], lat.mutual_V[0], lat.addition_V[1], lat.mutual_V[1]])
+    cov = np.zeros((6, 6))
+    cov_m = np.diag([np.nan_to_num(inv1_err) ** 2, np.nan_to_num(s2_err) ** 2])
+    cov[:2, :2] = cov_m
+    idx = [0, 1, 3, 4]  # (ΔV1, δ1, ΔV2, δ2) inside the lattice's 6-vector
+    g = lat.grad_m[idx]  # (4, 2)
+    lat_cov = lat.cov[np.ix_(idx, idx)]
+    lat_cov = np.nan_to_num(lat_cov)
+    cov[2:, 2:] = lat_cov + g @ cov_m @ g.T
+    cov[2:, :2] = g @ cov_m
+    cov[:2, 2:] = (g @ cov_m).T
+    mutual = lat.mutual_V.copy()
+    resolved = True
+    for i in range(2):
+        if not np.isfinite(mutual[i]):
+            q = q.with_warning(f"δ{i + 1} undetermined: no dot{i + 1} lines in two charge bands and no interdot segment")
+            resolved = False
+            mutual[i] = 0.0
+            cov[3 + 2 * i, 3 + 2 * i] = (0.3 * lat.addition_V[i]) ** 2
+    p[3], p[5] = mutual
+    merr = np.sqrt(np.diag(cov)[[3, 5]])
+    if resolved and not np.all(np.abs(mutual) > MUTUAL_SIGMAS * merr):
+        resolved = False
+        q = q.with_warning(
+            "mutual shifts δ not resolved (weak interdot coupling): α11/α22 undetermined from the diagram",
+            doubtful=False,
+        )
+    values, errors = propagate(_derived, p, cov)
+    cdg, cdg_err = values[:4].reshape(2, 2), errors[:4].reshape(2, 2)
+    ratio, ratio_err = (values[4], errors[4]) if resolved else (np.nan, np.nan)
+    # interdot slope: the model's s3 = −(α11 − α21)/(α12 − α22) when it is better determined
+    # than the detected interdot segments (short, few)
+    if resolved and np.isfinite(values[7]) and not (np.isfinite(s3_err) and s3_err <= errors[7]):
+        slopes["interdot"], slope_errors["interdot"] = float(values[7]), float(errors[7])
+    vg_err = np.array([[0.0, np.sqrt(cov[0, 0])], [np.sqrt(cov[1, 1]), 0.0]])
+    add_err = np.sqrt(np.diag(cov)[[2, 4]])
+    # consistency of the lattice
+    for i, name in enumerate(("dot1", "dot2")):
+        spread = lat.addition_spread_V[i]
+        if np.isfinite(spread) and spread > MAX_CELL_SPREAD * lat.addition_V[i]:
+            q = q.with_warning(
+                f"{name} addition voltage varies from cell to cell by {100 * spread / lat.addition_V[i]:.0f} % "
+                "(not periodic; reported value is the fitted mean)"
+            )
+        res = lat.residuals1 if i == 0 else lat.residuals2
+        if res.size and np.max(np.abs(res)) > 0.2 * lat.addition_V[i]:
+            q = q.with_warning(f"{name} lines do not fit one charge lattice (residual {np.max(np.abs(res)) * 1e3:.3g} mV)")
+        if add_err[i] > 0.05 * lat.addition_V[i]:
+            q = q.with_warning(f"{name} addition voltage uncertain ({100 * add_err[i] / lat.addition_V[i]:.0f} %)")
+    if np.any(lat.addition_V <= 0):
+        q = q.with_warning("non-positive addition voltage: line labelling failed")
+    if np.any(np.abs(mutual) >= lat.addition_V):
+        q = q.with_warning("mutual shift larger than the addition voltage: inconsistent lattice")
+    rel_cdg = np.abs(cdg_err / np.where(cdg != 0, np.abs(cdg), np.nan))
+    if not np.all(rel_cdg <= MAX_CDG_REL_ERROR):
+        q = q.with_warning(
+            f"gate capacitances uncertain (up to {100 * np.nanmax(rel_cdg):.1f} % on an element; "
+            f"ok needs ≤ {100 * MAX_CDG_REL_ERROR:.1f} % on every element)"
+        )
+    if np.nanmax(vg_err) > MAX_VG_ERROR:
+        q = q.with_warning(f"virtual-gate matrix uncertain (error up to {np.nanmax(vg_err):.3f})")
+    return DiagramFit(
+        ok=True,
+        slopes={k: float(v) for k, v in slopes.items()},
+        slope_errors={k: float(v) for k, v in slope_errors.items()},
+        params=p,
+        param_cov=cov,
+        vg_matrix=m,
+        vg_matrix_error=vg_err,
+        addition_V=lat.addition_V.copy(),
+        addition_V_error=add_err,
+        mutual_V=mutual,
+        mutual_V_error=merr,
+        offsets_V=lat.offsets_V.copy(),
+        cdg_aF=cdg,
+        cdg_aF_error=cdg_err,
+        alpha_ratio=float(ratio),
+        alpha_ratio_error=float(ratio_err),
+        mutual_resolved=resolved,
+        lattice=lat,
+        line_groups=(_full_groups(groups[0], used1, len(lines1)), _full_groups(groups[1], used2, len(lines2))),
+        lines1=lines1,
+        lines2=lines2,
+        interdot=inter,
+        quality=q,
+    )
+
+
+def _clip_segment(p0: np.ndarray, p1: np.ndarray, box: tuple[float, float, float, float]):
+    """Liang–Barsky clipping of the segment p0 → p1 to (xmin, xmax, ymin, ymax); None if outside."""
+    x0, y0 = p0
+    dx, dy = p1[0] - x0, p1[1] - y0
+    t0, t1 = 0.0, 1.0
+    for pp, qq in ((-dx, x0 - box[0]), (dx, box[1] - x0), (-dy, y0 - box[2]), (dy, box[3] - y0)):
+        if pp == 0:
+            if qq < 0:
+                return None
+            continue
+        t = qq / pp
+        if pp < 0:
+            t0 = max(t0, t)
+        else:
+            t1 = min(t1, t)
+    if t1 - t0 < 1e-9:
+        return None
+    return (x0 + t0 * dx, y0 + t0 * dy), (x0 + t1 * dx, y0 + t1 * dy), t1 - t0
+
+
+def predicted_lines(fit: DiagramFit, axes: Any, *, min_fraction: float = 0.4) -> dict[str, tuple[TransitionLine, ...]]:
+    """Every dot1 / dot2 segment the fitted lattice predicts inside the map window.
+
+    Segments run between the predicted triple points (module docstring of
+    :mod:`stabtool.fit.lattice`); those with less than ``min_fraction`` of
+    their length inside the window are left out.
+    """
+    lat = fit.lattice
+    if lat is None:
+        return {"dot1": (), "dot2": ()}
+    dv, dm, c = fit.addition_V, fit.mutual_V, fit.offsets_V
+    minv = np.linalg.inv(fit.vg_matrix)
+    box = (float(np.min(axes.x)), float(np.max(axes.x)), float(np.min(axes.y)), float(np.max(axes.y)))
+    labels = np.vstack([lat.labels1, lat.labels2])
+    lo, hi = labels.min(axis=0) - 1, labels.max(axis=0) + 1
+    out: dict[str, list[TransitionLine]] = {"dot1": [], "dot2": []}
+    for n1 in range(int(lo[0]), int(hi[0]) + 1):
+        for n2 in range(int(lo[1]), int(hi[1]) + 1):
+            u = dv[0] * (n1 - 0.5) + dm[0] * n2 + c[0]
+            v_lo = dv[1] * (n2 - 0.5) + dm[1] * n1 + c[1]
+            v_hi = dv[1] * (n2 + 0.5) + dm[1] * (n1 - 1) + c[1]
+            v = dv[1] * (n2 - 0.5) + dm[1] * n1 + c[1]
+            u_lo = dv[0] * (n1 - 0.5) + dm[0] * n2 + c[0]
+            u_hi = dv[0] * (n1 + 0.5) + dm[0] * (n2 - 1) + c[0]
+            for name, a, b in (("dot1", (u, v_lo), (u, v_hi)), ("dot2", (u_lo, v), (u_hi, v))):
+                pa, pb = minv @ np.asarray(a), minv @ np.asarray(b)
+                seg = _clip_segment(pa, pb, box)
+                if seg is None or seg[2] < min_fraction:
+                    continue
+                (xa, ya), (xb, yb), _ = seg
+                slope = (pb[1] - pa[1]) / (pb[0] - pa[0]) if pb[0] != pa[0] else np.inf
+                out[name].append(TransitionLine(
+                    family=name,  # type: ignore[arg-type]
+                    x0=0.5 * (xa + xb), y0=0.5 * (ya + yb), slope=float(slope),
+                    slope_stderr=float("nan"), position_stderr=float("nan"), start=(xa, ya), end=(xb, yb),
+                ))
+    return {k: tuple(v) for k, v in out.items()}
+
+
+def fit_diagram(
+    detection: LineDetection, *, data: Any = None, relocate: bool = True, err_floor_px: float = 0.1
+) -> DiagramFit:
+    """Virtual gates, addition voltages, mutual shifts and Cdg from detected lines.
+
+    Parameters
+    ----------
+    detection : LineDetection
+        Lines sorted into the families ``dot1``, ``dot2`` and ``interdot``, in volts.
+    data : xarray.DataArray, optional
+        The map; when given, lines are checked for a signal step and
+        re-measured on it, and a second pass re-measures every segment the
+        first lattice predicts (also those the detector missed or split),
+        keeping the pass with the smaller virtual-gate error.
+    relocate : bool
+        Re-measure lines on the map (needs ``data``).
+    err_floor_px : float
+        Position error floor in pixels.
+
+    Returns
+    -------
+    DiagramFit
+        Tests false (``quality`` says why) when a family is missing or the cell
+        cannot be determined; never raises for a doubtful map.
+
+    Notes
+    -----
+    See :func:`_fit_once` for one pass: slopes fix ``M``; positions in
+    virtual coordinates are fitted by the lattice model; the covariance of
+    ``(M12, M21, ΔV1, δ1, ΔV2, δ2)`` includes ``∂V'_1/∂M12 = y`` and
+    ``∂V'_2/∂M21 = x`` and is propagated to ``Cdg`` and ``α11/α22``.
+    """
+    first = _fit_once(detection, data=data, relocate=relocate, err_floor_px=err_floor_px)
+    if data is None or not relocate or not first.ok:
+        return first
+    pred = predicted_lines(first, detection.axes)
+    if len(pred["dot1"]) < 2 or len(pred["dot2"]) < 2:
+        return first
+    fams = dict(detection.families)
+    for name in ("dot1", "dot2"):
+        fams[name] = LineFamily(name=name, slope=float("nan"), slope_stderr=float("nan"),  # type: ignore[arg-type]
+                                lines=pred[name])
+    second = _fit_once(replace(detection, families=fams), data=data, relocate=True, err_floor_px=err_floor_px)
+    if not second.ok:
+        return first
+    e1 = float(np.nanmax(first.vg_matrix_error))
+    e2 = float(np.nanmax(second.vg_matrix_error))
+    return second if e2 < e1 else first

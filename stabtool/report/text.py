@@ -1,0 +1,70 @@
+"""Readable text summary of an analysis result."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+__all__ = ["fmt_pm", "summary_text"]
+
+
+def fmt_pm(value: float | None, error: float | None, *, scale: float = 1.0, unit: str = "", digits: int = 4) -> str:
+    """``value ± error unit`` (or ``n/a``), values multiplied by ``scale``."""
+    if value is None or not np.isfinite(value):
+        return "n/a"
+    v = value * scale
+    if error is None or not np.isfinite(error):
+        return f"{v:.{digits}g}{(' ' + unit) if unit else ''}"
+    return f"{v:.{digits}g} ± {error * scale:.2g}{(' ' + unit) if unit else ''}"
+
+
+def summary_text(res: Any) -> str:
+    """Multi-line summary of an :class:`~stabtool.analysis.AnalysisResult`."""
+    j = res.to_json()
+    d = res.diagram
+    lines = [f"map: {res.data.attrs.get('source', res.data.name or 'map')}  (x = {res.x_gate}, y = {res.y_gate})"]
+    lines.append(f"lines: dot1 {len(d.lines1)}, dot2 {len(d.lines2)}, interdot {len(d.interdot)}")
+    for fam in ("dot1", "dot2", "interdot"):
+        lines.append(f"  slope {fam:8s} {fmt_pm(d.slopes[fam], d.slope_errors[fam])}")
+    m, me = d.vg_matrix, d.vg_matrix_error
+    lines.append("virtual-gate matrix M (V' = M V):")
+    for i in range(2):
+        lines.append("  [" + ", ".join(fmt_pm(m[i, k], me[i, k]) for k in range(2)) + "]")
+    lines.append(
+        f"addition voltages: dot1 {fmt_pm(d.addition_V[0], d.addition_V_error[0], scale=1e3, unit='mV')}, "
+        f"dot2 {fmt_pm(d.addition_V[1], d.addition_V_error[1], scale=1e3, unit='mV')}"
+    )
+    if d.mutual_resolved:
+        lines.append(
+            f"mutual shifts: dot1 {fmt_pm(d.mutual_V[0], d.mutual_V_error[0], scale=1e3, unit='mV')}, "
+            f"dot2 {fmt_pm(d.mutual_V[1], d.mutual_V_error[1], scale=1e3, unit='mV')}"
+        )
+    else:
+        lines.append("mutual shifts: unresolved")
+    c, ce = d.cdg_aF, d.cdg_aF_error
+    lines.append("gate capacitances Cdg (aF), rows dots, columns (x, y):")
+    for i in range(2):
+        lines.append("  [" + ", ".join(fmt_pm(c[i, k], ce[i, k]) for k in range(2)) + "]")
+    if j["lever_arm"] is not None:
+        la, lae = res.lever_arm, res.lever_arm_error
+        lines.append(f"lever arms (eV/V), reference: {res.scale.reference}:")
+        for i in range(2):
+            lines.append("  [" + ", ".join(fmt_pm(la[i, k], lae[i, k]) for k in range(2)) + "]")
+        ec, ece = res.charging_energy_meV, res.charging_energy_error_meV
+        lines.append(
+            "charging energies: " + ", ".join(f"{k} {fmt_pm(ec[k], ece[k], unit='meV')}" for k in ("dot1", "dot2", "mutual"))
+        )
+    else:
+        lines.append("lever arms, charging energies: n/a (no energy reference; give --electron-temperature or --lever-arm)")
+    cs = res.charge_states
+    if cs is not None:
+        kind = ["absolute" if a else "relative" for a in cs.absolute]
+        lines.append(f"charge states: N1 {kind[0]}, N2 {kind[1]}" + ("; few-electron regime" if cs.few_electron else ""))
+    if res.refinement is not None:
+        r = res.refinement
+        lines.append(f"model fit to the map: residual / noise = {r.residual_ratio:.2f}")
+    lines.append(f"quality: {'ok' if res.quality.ok else 'DOUBTFUL'}")
+    for w in res.quality.warnings:
+        lines.append(f"  - {w}")
+    return "\n".join(lines)

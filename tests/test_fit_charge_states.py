@@ -1,0 +1,54 @@
+"""Charge-state labels against the constant-interaction ground state (stabtool.fit.charge_states)."""
+
+import numpy as np
+from _fit import WORKED, truth_from_capacitances
+
+from stabtool.fit.charge_states import ground_state_labels, label_charge_states
+from stabtool.physics import E_AC
+
+
+def _brute_force(t, x, y):
+    """argmin_N ½ (eN − Cdg V)ᵀ Cdd⁻¹ (eN − Cdg V) over N ∈ [0, 8]² (conventions file)."""
+    inv = np.linalg.inv(t.cdd)
+    n = np.array([(a, b) for a in range(9) for b in range(9)], float)
+    xx, yy = np.meshgrid(x, y)
+    q = np.stack([xx, yy], -1) @ t.cdg.T  # aC
+    d = E_AC * n[:, None, None, :] - q[None]
+    u = 0.5 * np.einsum("kyxi,ij,kyxj->kyx", d, inv, d)
+    return n[np.argmin(u, axis=0)].astype(int)
+
+
+def test_labels_match_the_ci_ground_state():
+    t = truth_from_capacitances(**WORKED)
+    x = np.linspace(-0.005, 0.06, 90)
+    y = np.linspace(-0.005, 0.06, 80)
+    truth = _brute_force(t, x, y)
+    xx, yy = np.meshgrid(x, y)
+    u = xx + t.m[0, 1] * yy
+    v = t.m[1, 0] * xx + yy
+    # lines at V' = ΔV (N − ½) + δ N_other with no offset for this Cdg V convention
+    lab = ground_state_labels(u, v, addition_V=t.addition_V, mutual_V=t.mutual_V, offsets_V=np.zeros(2),
+                              n_min=(0, 0))
+    assert np.mean(np.all(lab == truth, axis=-1)) > 0.999
+
+
+def test_empty_corner_gives_absolute_occupations():
+    t = truth_from_capacitances(**WORKED)
+    x = np.linspace(-0.04, 0.06, 100)
+    y = np.linspace(-0.04, 0.06, 100)
+    # lowest detected lines have label 3 (lattice labels are relative); the map
+    # extends > 2 cells below them, so they are the 0 → 1 transitions
+    off = np.array([-3 * t.addition_V[0] - 3 * t.mutual_V[0], -3 * t.addition_V[1] - 3 * t.mutual_V[1]])
+    cs = label_charge_states(x, y, t.m, addition_V=t.addition_V, mutual_V=t.mutual_V, offsets_V=off,
+                             lowest_line=(4, 4), snr=50.0)
+    assert cs.absolute == (True, True)
+    assert cs.labels.min() == 0
+    assert cs.few_electron
+    assert all(0 < c <= 1 for c in cs.confidence)
+    # a window whose lowest corner lies just below its lowest lines: labels stay relative
+    xs, ys = x[50:], y[50:]
+    free = ground_state_labels(xs[0] + t.m[0, 1] * ys[0], t.m[1, 0] * xs[0] + ys[0], addition_V=t.addition_V,
+                               mutual_V=t.mutual_V, offsets_V=off)
+    cs2 = label_charge_states(xs, ys, t.m, addition_V=t.addition_V, mutual_V=t.mutual_V, offsets_V=off,
+                              lowest_line=(int(free[0]) + 1, int(free[1]) + 1), snr=50.0)
+    assert cs2.absolute == (False, False)

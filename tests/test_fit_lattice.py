@@ -1,0 +1,53 @@
+"""Charge-lattice labelling and cell fit (stabtool.fit.lattice)."""
+
+import numpy as np
+import pytest
+from _fit import WORKED, honeycomb_detection, truth_from_capacitances
+
+from stabtool.fit.lattice import FamilySegments, fit_lattice, merge_fragments
+from stabtool.fit.model import fit_diagram
+
+AXIS = np.linspace(-0.01, 0.07, 200)
+
+
+def test_labels_step_by_one_between_neighbouring_lines():
+    t = truth_from_capacitances(**WORKED)
+    fit = fit_diagram(honeycomb_detection(t, x=AXIS, y=AXIS, offset_V=(0.01, 0.012)))
+    lat = fit.lattice
+    # each dot1 line: position = ΔV1 (N1 − ½) + δ1 N2 + c1 exactly (CI model, van der Wiel 2003)
+    pred = lat.addition_V[0] * (lat.labels1[:, 0] - 0.5) + lat.mutual_V[0] * lat.labels1[:, 1] + lat.offsets_V[0]
+    np.testing.assert_allclose(pred, pred - lat.residuals1, atol=1e-9)
+    assert np.max(np.abs(lat.residuals1)) < 1e-8
+    # per-cell spreads vanish for a periodic diagram
+    assert lat.addition_spread_V[0] == pytest.approx(0.0, abs=1e-9)
+
+
+def test_missing_lines_do_not_change_the_cell():
+    t = truth_from_capacitances(**WORKED)
+    det = honeycomb_detection(t, x=AXIS, y=AXIS, offset_V=(0.01, 0.012))
+    fam = det.families["dot1"]
+    # drop every third dot1 segment (a detector that misses lines)
+    from dataclasses import replace
+
+    thinned = replace(fam, lines=tuple(ln for k, ln in enumerate(fam.lines) if k % 3 != 1))
+    det2 = replace(det, families={**det.families, "dot1": thinned})
+    fit = fit_diagram(det2)
+    assert fit.ok
+    np.testing.assert_allclose(fit.addition_V, t.addition_V, rtol=1e-6)
+
+
+def test_merge_fragments_joins_collinear_pieces():
+    seg = FamilySegments(pos=np.array([1.0, 1.0001, 2.0]), pos_err=np.array([0.01, 0.01, 0.01]),
+                         lo=np.array([0.0, 0.6, 0.0]), hi=np.array([0.5, 1.0, 1.0]), lever=np.zeros(3))
+    merged, groups = merge_fragments(seg, tol_V=0.001, gap_V=0.2)
+    assert len(merged) == 2
+    assert groups[0] == groups[1] != groups[2]
+    assert merged.lo.min() == 0.0 and merged.hi.max() == 1.0
+
+
+def test_too_few_lines_fail_with_reason():
+    seg = FamilySegments(pos=np.array([1.0]), pos_err=np.array([0.01]), lo=np.array([0.0]),
+                         hi=np.array([1.0]), lever=np.zeros(1))
+    lat = fit_lattice(seg, seg)
+    assert not lat
+    assert "too few lines" in lat.reason

@@ -1,0 +1,86 @@
+"""Lines → virtual gates, addition voltages, mutual shifts and Cdg (stabtool.fit.model).
+
+The line sets are the exact constant-interaction honeycomb (tests/_fit.py,
+van der Wiel et al., Rev. Mod. Phys. 75, 1 (2003)), so every number has a
+closed-form truth.
+"""
+
+import numpy as np
+import pytest
+from _fit import WORKED, honeycomb_detection, truth_from_capacitances
+
+from stabtool.fit.model import fit_diagram
+from stabtool.lines.result import LineDetection
+from stabtool.physics import E_AC
+
+AXIS = np.linspace(-0.01, 0.07, 200)
+
+
+def test_worked_virtual_gate_example():
+    # shared references, "N dots, lever arms and virtual gates" [computed from the formulas]:
+    # Cdg = [[10, 3], [2.5, 9]] aF, C11 = C22 = 80 aF, Cm = 15 aF
+    t = truth_from_capacitances(**WORKED)
+    fit = fit_diagram(honeycomb_detection(t, x=AXIS, y=AXIS, offset_V=(0.01, 0.012)))
+    assert fit.ok, fit.quality
+    assert fit.slopes["dot1"] == pytest.approx(-2.2333, abs=1e-4)
+    assert fit.slopes["dot2"] == pytest.approx(-0.45752, abs=1e-5)
+    assert fit.slopes["interdot"] == pytest.approx(1.2500, abs=1e-4)
+    np.testing.assert_allclose(fit.vg_matrix, [[1, 0.44776], [0.45752, 1]], atol=1e-5)
+    np.testing.assert_allclose(fit.addition_V, [15.304e-3, 16.755e-3], rtol=1e-4)
+    # Cdg = e D⁻¹ M recovers the capacitances the lines were drawn from
+    np.testing.assert_allclose(fit.cdg_aF, [[10, 3], [2.5, 9]], rtol=1e-6)
+    # α11/α22 = δ2/δ1 = C22/C11-weighted ratio of the worked lever arms 0.13563/0.12389
+    assert fit.alpha_ratio == pytest.approx(0.13563 / 0.12389, rel=1e-4)
+
+
+def test_van_der_wiel_double_dot_example():
+    # shared references, van der Wiel et al. RMP 75, 1 (2003): Cg = 10 aF, Cm = 20 aF,
+    # C1 = C2 = 80 aF, no cross capacitance → ΔV_g1 = 16.022 mV, ΔV_g1^m = 4.005 mV
+    t = truth_from_capacitances([[10.0, 0.0], [0.0, 10.0]], 80.0, 80.0, 20.0)
+    ax = np.linspace(-0.005, 0.075, 160)
+    fit = fit_diagram(honeycomb_detection(t, x=ax, y=ax, offset_V=(0.004, 0.006)))
+    assert fit.ok, fit.quality
+    assert fit.addition_V[0] == pytest.approx(16.022e-3, rel=1e-4)
+    assert fit.mutual_V[0] == pytest.approx(4.005e-3, rel=1e-3)
+    assert fit.mutual_V[0] == pytest.approx(E_AC * 20 / (10 * 80), rel=1e-9)
+    # without cross capacitances the mutual capacitance alone couples the gates:
+    # α12/α11 = Cm/C2 = E_Cm/E_C1 = 0.25 (same reference)
+    np.testing.assert_allclose(fit.vg_matrix, [[1, 0.25], [0.25, 1]], atol=1e-9)
+    assert fit.alpha_ratio == pytest.approx(1.0, rel=1e-6)
+
+
+@pytest.mark.regression
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_noisy_lines_errors_cover_truth(seed):
+    # 1 % slope noise and 0.1 mV position noise on every line (seeded)
+    t = truth_from_capacitances(**WORKED)
+    det = honeycomb_detection(t, x=AXIS, y=AXIS, offset_V=(0.01, 0.012), slope_noise=0.01,
+                              pos_noise_V=1e-4, rng=seed)
+    fit = fit_diagram(det)
+    assert fit.ok, fit.quality
+    dm = np.abs(fit.vg_matrix - t.m)
+    assert dm.max() < 0.005
+    assert np.all(dm[[0, 1], [1, 0]] < 4 * fit.vg_matrix_error[[0, 1], [1, 0]])
+    np.testing.assert_allclose(fit.cdg_aF[[0, 1], [0, 1]], np.diag(t.cdg), rtol=0.02)
+    assert np.all(np.abs(fit.cdg_aF - t.cdg) < 4 * fit.cdg_aF_error + 1e-9)
+    assert np.all(np.abs(fit.addition_V - t.addition_V) < 4 * fit.addition_V_error)
+
+
+def test_missing_family_is_a_value_not_an_exception():
+    t = truth_from_capacitances(**WORKED)
+    det = honeycomb_detection(t, x=AXIS, y=AXIS)
+    only1 = LineDetection(axes=det.axes, families={"dot1": det.families["dot1"]}, unassigned=(), jumps=(),
+                          excluded_rows=det.excluded_rows, noise_level=0.0, snr=np.inf, quality=det.quality)
+    fit = fit_diagram(only1)
+    assert not fit.ok
+    assert any("dot2" in w for w in fit.quality.warnings)
+    assert np.all(np.isnan(fit.cdg_aF))
+
+
+def test_weak_mutual_coupling_leaves_ratio_undetermined():
+    # Cm = 0.2 aF: δ ≈ 0.03 mV, far below the 1 mV position noise of the lines
+    t = truth_from_capacitances([[10.0, 3.0], [2.5, 9.0]], 80.0, 80.0, 0.2)
+    det = honeycomb_detection(t, x=AXIS, y=AXIS, offset_V=(0.01, 0.012), pos_noise_V=1e-3, rng=3)
+    fit = fit_diagram(det)
+    assert not fit.mutual_resolved
+    assert np.isnan(fit.alpha_ratio)
