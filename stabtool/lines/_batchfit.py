@@ -35,6 +35,9 @@ class BatchFit:
     height_err: np.ndarray
     ssr: np.ndarray
     ok: np.ndarray
+    a: np.ndarray | None = None  # baseline offset and slope of the model (None when not kept)
+    b: np.ndarray | None = None
+    interpolated: np.ndarray | None = None  # u0 from the half-height interpolation (refine.py)
 
 
 def _basis(u, u0, w, kind):
@@ -129,4 +132,4 @@ def fit_profiles(u: np.ndarray, y: np.ndarray, mask: np.ndarray, *, kind: str = 
         & (np.abs(p[:, 2]) > 3 * err[:, 2]) & (err[:, 3] < 2.0)
     )
     return BatchFit(u0=p[:, 3], u0_err=err[:, 3], width=w, width_err=w * err[:, 4], height=p[:, 2],
-                    height_err=err[:, 2], ssr=ssr, ok=ok)
+                    height_err=err[:, 2], ssr=ssr, ok=ok, a=p[:, 0].copy(), b=p[:, 1].copy())

@@ -15,6 +15,7 @@ from ..quality import Quality
 from ._geometry import steps
 from ._merge import drop_duplicates, merge_collinear
 from .edges import DEFAULT_HIGH_SIGMAS, DEFAULT_LOW_SIGMAS, _edge_core
+from ._family import family_fit
 from .families import classify_lines, pixel_angle_deg
 from .hough import _segments_core, segment_to_line
 from .jumps import _jumps_core
@@ -164,11 +165,30 @@ def _detect_core(values: np.ndarray, axes, cfg: LineDetector) -> LineDetection:
     lines = [l for l, k in zip(lines, mask_keep) if k]
     families: dict[str, LineFamily] = {}
     unassigned: list[TransitionLine] = []
+    fits = {}
+    for fam, other in (("dot1", "dot2"), ("dot2", "dot1")):
+        mem = [r for r, n in zip(refined, names2) if n == fam]
+        oth = [l for l, n in zip(lines, names2) if n == other]
+        fits[fam] = family_fit(mem, oth, axes, steep=fam == "dot1")
+        f = fits[fam]
+        if f is not None and f.bend_used:
+            shift = abs(f.slope / f.straight_slope - 1)
+            quality = quality.with_warning(
+                f"{fam} lines bend towards the triple points (strong interdot tunnel coupling?): the "
+                f"straight-line slope {f.straight_slope:.4g} is biased; reporting {f.slope:.4g} from a fit "
+                f"with 1/distance bending terms ({100 * shift:.1f} % apart), itself uncertain")
     for fam in ("dot1", "dot2", "interdot"):
         members = [replace(l, family=fam) for l, n in zip(lines, names2) if n == fam]
         key = (lambda l: l.y0) if fam == "dot2" else (lambda l: l.x0)
         members.sort(key=key)
         s, se, _ = family_slope(members)
+        jf = fits.get(fam)
+        if jf is not None and (jf.bend_used or (np.isfinite(jf.slope_stderr) and np.isfinite(se)
+                                                and jf.slope_stderr <= se
+                                                and abs(jf.slope - s) <= 3 * np.hypot(se, jf.slope_stderr))):
+            # the joint fit of all members (one shared slope) when it agrees with the
+            # line-by-line mean and is more precise; otherwise the robust mean of lines
+            s, se = jf.slope, jf.slope_stderr
         families[fam] = LineFamily(name=fam, slope=s, slope_stderr=se, lines=tuple(members))  # type: ignore[arg-type]
     unassigned = [replace(l, family="unassigned") for l, n in zip(lines, names2) if n == "unassigned"]
     heights = np.array([r.step_height for r, n in zip(refined, names2) if n in ("dot1", "dot2") and r.refined])

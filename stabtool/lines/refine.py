@@ -24,6 +24,10 @@ class RefinedLine:
     step_height: float  # median |h| of the profile fits, signal units (NaN if not refined)
     refined: bool
     shape: str  # "step", "peak" or "none"
+    #: accepted crossing points (t, p, σ) in volts: t along the line's slow
+    #: coordinate (y when ``along_x``), p the crossing along the profile axis
+    points: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
+    along_x: bool = True
 
 
 def _profiles(values: np.ndarray, seg: PixelSegment, along_x: bool, halfwidth: int, max_points: int, trim: float,
@@ -185,8 +189,8 @@ def refine_segments(
         if okrows.sum() < 4:
             continue
         blocks.append((k, rows[okrows], centre[okrows], u[okrows], y[okrows], mask[okrows]))
-    out = [RefinedLine(line=segment_to_line(s, axes, family=f), step_height=float("nan"), refined=False, shape="none")
-           for s, f in zip(segs, families)]
+    out = [RefinedLine(line=segment_to_line(s, axes, family=f), step_height=float("nan"), refined=False, shape="none",
+                       along_x=bool(a)) for s, f, a in zip(segs, families, along_x)]
     extra: list[RefinedLine] = []
     if not blocks:
         return out
@@ -195,6 +199,8 @@ def refine_segments(
     M = np.vstack([b[5] for b in blocks])
     bounds = np.cumsum([0] + [b[1].size for b in blocks])
     fits = {shapes[0]: fit_profiles(U, Y, M, kind=shapes[0], halfwidth=hw)}
+    if shapes[0] == "step":
+        fits["step"] = _interpolated_crossings(fits["step"], U, Y, M, hw)
     if len(shapes) > 1:
         # other shapes only for lines the first one fits poorly (fewer than 70 % usable profiles)
         poor = np.zeros(U.shape[0], bool)
@@ -230,6 +236,45 @@ def refine_segments(
     return out + extra
 
 
+def _interpolated_crossings(fit: BatchFit, U: np.ndarray, Y: np.ndarray, M: np.ndarray, hw: int) -> BatchFit:
+    """Sub-pixel crossings of unresolved steps from the half-height level between two samples.
+
+    For a step narrower than a sample (fitted w < 0.7 px) the Fermi fit
+    fixes u0 only to the interval between the two samples around it. The
+    sample values carry more: after removing the fitted baseline and
+    dividing by the height, the normalised signal F goes from 0 to 1, and
+    any smearing (sensor bandwidth, thermal width, filtering) leaves
+    intermediate values next to the step; the crossing of F = ½ by linear
+    interpolation between the two bracketing samples is then sub-pixel. For
+    a perfectly sharp step it falls back to the midpoint. Errors: the noise
+    of the two samples propagated through the interpolation, at least
+    0.1 px (common practice for sub-pixel edge location, no source).
+    """
+    if fit.a is None:
+        return fit
+    n = U.shape[0]
+    sharp = fit.width < 0.7
+    k = np.floor(fit.u0).astype(int)
+    j0 = np.clip(k + hw, 0, U.shape[1] - 2)
+    rows = np.arange(n)
+    h = np.where(np.abs(fit.height) > 0, fit.height, np.nan)
+    F0 = (Y[rows, j0] - fit.a - fit.b * U[rows, j0]) / h
+    F1 = (Y[rows, j0 + 1] - fit.a - fit.b * U[rows, j0 + 1]) / h
+    den = F1 - F0
+    # noise of one sample in units of the height, from the profile residuals
+    dof = np.maximum(M.sum(1) - 5, 1)
+    sn = np.sqrt(fit.ssr / dof) / np.abs(h)
+    # at low SNR the interpolation is noisier than the pixel quantisation (1/√12 px): midpoint kept
+    good = sharp & M[rows, j0] & M[rows, j0 + 1] & np.isfinite(den) & (den > 0.3) & (sn < 0.2)
+    frac = np.clip((0.5 - F0) / np.where(good, den, 1.0), 0.0, 1.0)
+    u_new = np.where(good, U[rows, j0] + frac, fit.u0)
+    e_new = np.where(good, np.maximum(sn * np.sqrt((1 - frac) ** 2 + frac**2) / np.where(good, den, 1.0), 0.1),
+                     fit.u0_err)
+    from dataclasses import replace as _replace
+
+    return _replace(fit, u0=u_new, u0_err=e_new, interpolated=good)
+
+
 def _line_from_crossings(base, rows, centre, fit, sl, axes, along_x, kind):
     """Straight line through the crossing points (a list: empty when the fit failed)."""
     ok = fit.ok[sl]
@@ -245,14 +290,15 @@ def _line_from_crossings(base, rows, centre, fit, sl, axes, along_x, kind):
     # midpoint makes the crossings a digital straight line, whose slope is
     # fixed far better than by noise-jittered centres (A. Rosenfeld, IEEE
     # Trans. Comput. C-23, 1264 (1974), doi:10.1109/T-C.1974.223845)
-    sharp = fit.width[sl][ok] < 0.7
+    interp = fit.interpolated[sl][ok] if fit.interpolated is not None else np.zeros(u0.size, bool)
+    sharp = (fit.width[sl][ok] < 0.7) & ~interp
     u0 = np.where(sharp, np.floor(u0) + 0.5, u0)
     p_v = idx_to_volts(centre[ok] + u0, pcoord)
     t_v = idx_to_volts(rows[ok].astype(float), tcoord)
     widths_ok = fit.width[sl][ok]
     # an unresolved step (w below ~0.7 px) fixes its crossing only to within the
     # pixel: floor the error at the quantisation rms 1/√12 px (common practice, no source)
-    floor = np.where(widths_ok < 0.7, 1.0 / np.sqrt(12.0), 0.05)
+    floor = np.where(sharp, 1.0 / np.sqrt(12.0), np.where(interp, 0.1, 0.05))
     sig_v = np.maximum(u0e, floor) * abs(pstep)
     widths, heights = fit.width[sl][ok], fit.height[sl][ok]
     pieces = [np.arange(t_v.size)]
@@ -320,4 +366,5 @@ def _fit_piece(base, t_v, p_v, sig_v, wpx_all, h_all, along_x, pstep, kind):
                    position_stderr=float(pos_err), start=start, end=end, width_V=float(width),
                    width_stderr_V=float(width_err), n_points=int(keep.sum()), step_sign=sign, refined=True,
                    bend_chi2=float(bend))
-    return RefinedLine(line=line, step_height=float(np.median(np.abs(h))), refined=True, shape=kind)
+    return RefinedLine(line=line, step_height=float(np.median(np.abs(h))), refined=True, shape=kind,
+                       points=(t_v[keep], p_v[keep], sig_v[keep]), along_x=bool(along_x))

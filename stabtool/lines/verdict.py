@@ -74,7 +74,7 @@ def assess_quality(
     fewer than 20 % of the rows excluded. A missing interdot family is
     reported but is not doubtful (charge sensors often do not resolve it).
     """
-    q = quality or Quality()
+    q = quality if quality is not None else Quality()
     for name in ("dot1", "dot2"):
         fam = families.get(name)
         n = len(fam) if fam is not None else 0

@@ -1,0 +1,151 @@
+"""Family slopes from joint fits of the crossing points of all members (private)."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Sequence
+
+import numpy as np
+
+from ..mapdata import MapAxes
+from ._geometry import steps
+from .joint import JointFit, LinePoints, bending_significance, fit_family
+from .refine import RefinedLine
+from .result import TransitionLine
+
+#: F-test p-value below which the vertex-bending terms count as detected.
+BEND_P = 1e-3
+#: points this close to a vertex (px, or fraction of the segment) are left out of the joint fits
+VERTEX_GAP_PX = 2.0
+VERTEX_GAP_FRAC = 0.03
+#: straight and bent family slopes differing by more than this many σ of their difference: bending detected
+BEND_Z = 3.0
+
+
+@dataclass(frozen=True)
+class FamilyFit:
+    """Slope of one dot family (dV_y/dV_x) with its error and the bending diagnosis."""
+
+    slope: float
+    slope_stderr: float
+    straight_slope: float
+    bend_p: float
+    bend_used: bool
+    n_lines: int
+    bent_slope: float = float("nan")
+    bent_stderr: float = float("nan")
+    bend_z: float = float("nan")
+
+
+def _point_dir(lines: Sequence[TransitionLine]) -> tuple[np.ndarray, np.ndarray]:
+    s = np.array([l.slope for l in lines], float)
+    p = np.array([[l.x0, l.y0] for l in lines], float).reshape(-1, 2)
+    d = np.where(np.isinf(s)[:, None], np.array([0.0, 1.0]), np.stack([np.ones_like(s), np.where(np.isinf(s), 0.0, s)], 1))
+    return p, d
+
+
+def vertex_positions(r: RefinedLine, others: Sequence[TransitionLine], axes: MapAxes) -> tuple[float, float]:
+    """Positions (in the line's t coordinate, V) of the honeycomb vertices at both ends of ``r``.
+
+    A vertex is where the line meets a line of the other dot family whose
+    segment ends close by (within 30 % of this segment's length + 4 px);
+    NaN when no such line is found.
+    """
+    if r.points is None or not others:
+        return float("nan"), float("nan")
+    t = r.points[0]
+    sx, sy = (abs(v) for v in steps(axes))
+    tstep = sy if r.along_x else sx
+    lo, hi = float(t.min()), float(t.max())
+    span = hi - lo
+    pa, da = _point_dir([r.line])
+    pb, db = _point_dir(others)
+    cross = da[0, 0] * db[:, 1] - da[0, 1] * db[:, 0]
+    w = pb - pa
+    with np.errstate(divide="ignore", invalid="ignore"):
+        u = (w[:, 0] * db[:, 1] - w[:, 1] * db[:, 0]) / cross
+    P = pa + u[:, None] * da  # intersections (x, y), V
+    tau = P[:, 1] if r.along_x else P[:, 0]
+    # distance (pixel frame) from each intersection to the other segment
+    a = np.array([[o.start[0] / sx, o.start[1] / sy] for o in others])
+    b = np.array([[o.end[0] / sx, o.end[1] / sy] for o in others])
+    q = P / np.array([sx, sy])
+    d = b - a
+    L2 = np.maximum((d * d).sum(1), 1e-300)
+    lam = np.clip(((q - a) * d).sum(1) / L2, 0.0, 1.0)
+    dist = np.hypot(*(q - a - lam[:, None] * d).T)
+    near = np.isfinite(tau) & (dist <= 0.3 * span / tstep + 4)
+    below = near & (tau >= lo - 0.5 * span) & (tau <= lo + 0.05 * span)
+    above = near & (tau >= hi - 0.05 * span) & (tau <= hi + 0.5 * span) & ~below
+    va = float(tau[below][np.argmin(np.abs(lo - tau[below]))]) if below.any() else float("nan")
+    vb = float(tau[above][np.argmin(np.abs(tau[above] - hi))]) if above.any() else float("nan")
+    return va, vb
+
+
+def family_fit(members: Sequence[RefinedLine], others: Sequence[TransitionLine], axes: MapAxes, *,
+               steep: bool) -> FamilyFit | None:
+    """Joint slope of a dot family; adds vertex-bending terms when they are significant.
+
+    Points within ``max(3 px, 15 % of the segment)`` of a vertex are left
+    out of both fits (the 1/ε form of the bending holds away from the
+    anticrossing itself).
+    """
+    rs = [r for r in members if r.refined and r.points is not None and r.points[0].size >= 4]
+    if len(rs) < 2:
+        return None
+    along = rs[0].along_x
+    rs = [r for r in rs if r.along_x == along]
+    if len(rs) < 2:
+        return None
+    # lines whose own slope is far from the others' (a misassigned or broken
+    # segment) are left out, as in family_slope: 4 robust σ
+    if len(rs) >= 4:
+        s_l = np.array([r.line.slope for r in rs])
+        e_l = np.array([r.line.slope_stderr for r in rs])
+        v, ve = (1.0 / s_l, e_l / s_l**2) if steep else (s_l, e_l)
+        med = np.median(v)
+        rsig = 1.4826 * np.median(np.abs(v - med))
+        keep = np.abs(v - med) <= 4 * max(rsig, 1e-12) + 2 * ve
+        if keep.sum() >= 3:
+            rs = [r for r, k in zip(rs, keep) if k]
+    sx, sy = (abs(v) for v in steps(axes))
+    tstep = sy if along else sx
+    lps, full = [], []
+    for r in rs:
+        t, p, s = r.points
+        va, vb = vertex_positions(r, others, axes)
+        gap = max(VERTEX_GAP_PX * tstep, VERTEX_GAP_FRAC * np.ptp(t))
+        ok = np.ones(t.size, bool)
+        for v in (va, vb):
+            if np.isfinite(v):
+                ok &= np.abs(t - v) >= gap
+        if ok.sum() < 4:
+            ok[:] = True
+            va = vb = float("nan")
+        lps.append(LinePoints(t=t[ok], p=p[ok], sig=s[ok], vertices=(va, vb)))
+        full.append(LinePoints(t=t, p=p, sig=s))
+    straight_all = fit_family(full, bend=False)
+    straight = fit_family(lps, bend=False)
+    if straight is None or straight_all is None:
+        return None
+    bent = fit_family(lps, bend=True)
+    pval = bending_significance(straight, bent) if bent is not None else 1.0
+    z = float("nan")
+    if bent is not None and bent.bend_terms > 0:
+        # the straight fit is nested in the bent one: σ of the difference is √(σ_b² − σ_s²)
+        var = bent.slope_stderr**2 - straight.slope_stderr**2
+        z = abs(bent.slope - straight.slope) / np.sqrt(max(var, 1e-3 * bent.slope_stderr**2))
+    use = bent is not None and bent.bend_terms > 0 and (pval < BEND_P or z > BEND_Z)
+    chosen: JointFit = bent if use else straight_all  # type: ignore[assignment]
+
+    def conv(f: JointFit) -> tuple[float, float]:
+        C, sC = f.slope, f.slope_stderr
+        if along:  # x(y): dV_y/dV_x = 1/C
+            return (1.0 / C if C != 0 else np.inf), (sC / C**2 if C != 0 else np.inf)
+        return C, sC
+
+    s, se = conv(chosen)
+    s0, _ = conv(straight_all)
+    sb, sbe = conv(bent) if bent is not None and bent.bend_terms > 0 else (float("nan"), float("nan"))
+    return FamilyFit(slope=float(s), slope_stderr=float(se), straight_slope=float(s0), bend_p=float(pval),
+                     bend_used=bool(use), n_lines=len(rs), bent_slope=float(sb), bent_stderr=float(sbe), bend_z=float(z))
