@@ -1,0 +1,68 @@
+"""Accuracy regression: a small fixed-seed subset of ``stabtool bench`` with the real analysis.
+
+A few generator maps (several presets, clean and noisy, one artefact) go
+through the full analysis with the true electron temperature as energy
+reference; every number must lie within the bounds of the fitter issue
+(stabtool.bench.bounds: virtual-gate elements 0.005 at SNR ≥ 10 and 0.02
+below, Cdg 2 %, lever arms 5 % for lines ≥ 3 px wide, charging energies 5 %),
+and no map may be a silent failure. No timing is asserted.
+"""
+
+from __future__ import annotations
+
+import pytest
+
+from stabtool.bench.bounds import FITTER_BOUNDS
+from stabtool.bench.grid import BenchCase
+from stabtool.bench.run import run_bench
+
+pytest.importorskip("stabtool.analysis", reason="the analysis pipeline is not in this tree yet")
+
+#: (preset, SNR, artefact, seed): clean maps of three presets, one noisy map, one with 1/f noise.
+CASES = (
+    ("si-sige-double", 30.0, "none", 11),
+    ("gaas-double", 30.0, "none", 12),
+    ("si-mos-double", 10.0, "none", 13),
+    ("ge-double", 10.0, "one-over-f", 14),
+    ("si-sige-double", 3.0, "none", 15),
+)
+
+
+@pytest.fixture(scope="module")
+def outcomes():
+    cases = [
+        BenchCase(index=i, snr=snr, preset=preset, artefact=art, seed=seed, size_px=112)
+        for i, (preset, snr, art, seed) in enumerate(CASES)
+    ]
+    return run_bench(cases, workers=1).outcomes
+
+
+def _id(case):
+    return f"{case[0]}-snr{case[1]:g}-{case[2]}"
+
+
+@pytest.mark.regression
+@pytest.mark.parametrize("i", range(len(CASES)), ids=[_id(c) for c in CASES])
+def test_every_number_within_the_fitter_bounds(outcomes, i):
+    o = outcomes[i]
+    assert o.ran, o.message
+    limits = FITTER_BOUNDS.for_snr(o.case.snr)
+    for group, limit in limits.items():
+        g = o.comparison.groups[group]
+        assert g.complete, f"{o.case.label}: {group} not reported ({o.warnings})"
+        err = g.abs if group == "virtual_gate" else g.rel
+        assert err <= limit, f"{o.case.label}: {group} error {err:.4g} > {limit:g}"
+
+
+@pytest.mark.regression
+@pytest.mark.parametrize("i", range(len(CASES)), ids=[_id(c) for c in CASES])
+def test_no_silent_failure(outcomes, i):
+    o = outcomes[i]
+    assert not o.silent.silent, f"{o.case.label}: {'; '.join(o.silent.reasons)}"
+
+
+@pytest.mark.regression
+def test_clean_maps_are_reported_ok(outcomes):
+    for o in outcomes:
+        if o.case.snr >= FITTER_BOUNDS.clean_snr and o.case.artefact == "none":
+            assert o.ok, f"{o.case.label}: {o.warnings}"
