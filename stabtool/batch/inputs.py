@@ -1,0 +1,136 @@
+"""Turn the INPUTS of a batch (files, folders, globs) into a list of map files.
+
+Folders are searched recursively for files with a supported suffix; hidden
+files and folders (a name starting with ``.``, such as a batch's own
+``.records``) are skipped. Files named explicitly are kept whatever their
+suffix, so a wrong file becomes a failed row instead of vanishing silently.
+Globs follow :func:`glob.glob` with ``recursive=True`` (``**`` allowed).
+"""
+
+from __future__ import annotations
+
+import glob
+import os
+import re
+from pathlib import Path
+from typing import Iterable, Sequence
+
+from ..errors import InputError
+
+__all__ = ["SUPPORTED_SUFFIXES", "discover_inputs", "natural_key"]
+
+#: File suffixes a folder search picks up (the formats :func:`stabtool.io.load` reads).
+SUPPORTED_SUFFIXES: tuple[str, ...] = (".nc", ".h5", ".hdf5", ".csv", ".tsv", ".npz")
+
+_GLOB_CHARS = re.compile(r"[*?\[]")
+
+
+def natural_key(name: str) -> tuple:
+    """Sort key that orders ``run2`` before ``run10`` (digits compared as numbers)."""
+    parts = re.split(r"(\d+)", name)
+    return tuple((0, int(p), "") if p.isdigit() else (1, 0, p.lower()) for p in parts if p)
+
+
+def _supported_suffixes() -> tuple[str, ...]:
+    try:  # the loaders may declare their own list
+        from .. import io as _io
+
+        suffixes = getattr(_io, "SUPPORTED_SUFFIXES", None)
+        if suffixes:
+            return tuple(s.lower() for s in suffixes)
+    except Exception:  # noqa: BLE001 - a missing or broken io package must not stop discovery
+        pass
+    return SUPPORTED_SUFFIXES
+
+
+def _is_hidden(path: Path, root: Path) -> bool:
+    rel = path.relative_to(root)
+    return any(part.startswith(".") for part in rel.parts)
+
+
+def _walk_folder(folder: Path, suffixes: tuple[str, ...]) -> list[Path]:
+    found = [
+        p
+        for p in folder.rglob("*")
+        if p.is_file() and p.suffix.lower() in suffixes and not _is_hidden(p, folder)
+    ]
+    return sorted(found, key=lambda p: natural_key(str(p.relative_to(folder))))
+
+
+def discover_inputs(
+    inputs: Sequence[str | os.PathLike[str]],
+    *,
+    suffixes: Iterable[str] | None = None,
+    exclude: Iterable[str | os.PathLike[str]] = (),
+) -> list[Path]:
+    """Expand files, folders and globs into an ordered list of distinct files.
+
+    Parameters
+    ----------
+    inputs : sequence of str or path
+        Files, folders (searched recursively) or glob patterns, in the order
+        the user gave them.
+    suffixes : iterable of str, optional
+        Suffixes picked up in folders and globs (default: every format the
+        loaders read, see :data:`SUPPORTED_SUFFIXES`).
+    exclude : iterable of path, optional
+        Folders whose content is never picked up (the batch's output folder).
+
+    Returns
+    -------
+    list of pathlib.Path
+        Each file once (by resolved path), in input order; within a folder or
+        a glob, natural order of the file names.
+
+    Raises
+    ------
+    InputError
+        When no input is given, a path does not exist, a glob matches nothing,
+        or nothing at all is found.
+    """
+    if not inputs:
+        raise InputError("INPUTS", "no input given; name files, folders or glob patterns")
+    sfx = tuple(s.lower() for s in suffixes) if suffixes is not None else _supported_suffixes()
+    excluded = [Path(e).resolve() for e in exclude]
+    seen: set[Path] = set()
+    out: list[Path] = []
+
+    def add(path: Path) -> None:
+        resolved = path.resolve()
+        if resolved in seen:
+            return
+        if any(resolved == ex or ex in resolved.parents for ex in excluded):
+            return
+        seen.add(resolved)
+        out.append(path)
+
+    for item in inputs:
+        text = os.fspath(item)
+        path = Path(text)
+        if path.is_dir():
+            for p in _walk_folder(path, sfx):
+                add(p)
+        elif path.is_file():
+            add(path)
+        elif _GLOB_CHARS.search(text):
+            matches = sorted(glob.glob(text, recursive=True), key=natural_key)
+            files = []
+            for m in matches:
+                mp = Path(m)
+                if mp.is_dir():
+                    files.extend(_walk_folder(mp, sfx))
+                elif mp.is_file() and mp.suffix.lower() in sfx:
+                    files.append(mp)
+            if not files:
+                raise InputError(text, "the pattern matches no map file "
+                                 f"(suffixes {', '.join(sfx)})")
+            for p in files:
+                add(p)
+        else:
+            raise InputError(text, "no such file or folder")
+    if not out:
+        raise InputError(
+            " ".join(os.fspath(i) for i in inputs),
+            f"no map file found (looked for {', '.join(sfx)})",
+        )
+    return out

@@ -1,0 +1,496 @@
+"""Durable, resumable storage of batch results.
+
+Layout of a batch output folder ``DIR``::
+
+    DIR/.records/<hash>.json   one record per map, written once, atomically
+    DIR/.records/batch.json    the analysis settings the batch was started with
+    DIR/plots/<stem>-<hash8>.png
+    DIR/results.csv            the table, rebuilt atomically from the records
+    DIR/results.nc             the same table as NetCDF (dimension ``map``)
+
+A record is the single source of truth: the tables are derived from the
+records and can always be rebuilt. Every file is written to a temporary name
+in the same folder and moved into place with :func:`os.replace`, which is
+atomic on POSIX and Windows, so a kill at any instant (even SIGKILL) leaves
+either the old or the new complete file, never half of one. Records are keyed
+by the SHA-256 of the file content, so a resumed batch skips exactly the maps
+already finished, whatever their path, and never writes a map twice.
+"""
+
+from __future__ import annotations
+
+import csv
+import hashlib
+import io
+import json
+import math
+import os
+import tempfile
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Iterable, Mapping, Sequence
+
+import numpy as np
+
+from ..errors import InputError
+
+__all__ = [
+    "STATUSES",
+    "BatchRecord",
+    "ResultStore",
+    "content_hash",
+    "atomic_write_bytes",
+    "atomic_write_text",
+    "flatten_result",
+    "records_table",
+    "write_csv",
+    "write_netcdf",
+]
+
+#: Status of a row: the analysis ran and is trusted, ran but is doubtful, or failed.
+STATUSES = ("ok", "doubtful", "failed")
+
+#: Columns every table starts with, in this order.
+BASE_COLUMNS = (
+    "file",
+    "hash",
+    "status",
+    "reason",
+    "time",
+    "x_gate",
+    "y_gate",
+    "warnings",
+    "plot",
+    "elapsed_s",
+)
+
+_MAX_ARRAY_CELLS = 16
+_UMASK = os.umask(0)
+os.umask(_UMASK)
+_FILE_MODE = 0o666 & ~_UMASK  # what open() would give; mkstemp alone gives 0600
+
+#: Columns always stored as text, even when empty.
+_TEXT_COLUMNS = frozenset({"file", "hash", "status", "reason", "time", "x_gate", "y_gate",
+                           "warnings", "plot"})  # numeric lists up to 4x4 become columns; longer ones are counted only
+
+
+def content_hash(path: str | os.PathLike[str], *, chunk: int = 1 << 20) -> str:
+    """SHA-256 of a file's bytes, first 16 hex digits (64 bits).
+
+    Raises
+    ------
+    InputError
+        When the file cannot be read.
+    """
+    h = hashlib.sha256()
+    try:
+        with open(path, "rb") as fh:
+            while True:
+                block = fh.read(chunk)
+                if not block:
+                    break
+                h.update(block)
+    except OSError as exc:
+        raise InputError(path, f"cannot be read ({exc.strerror or exc})") from None
+    return h.hexdigest()[:16]
+
+
+def atomic_write_bytes(path: str | os.PathLike[str], data: bytes, *, fsync: bool = True) -> None:
+    """Write ``data`` to ``path`` so that readers see the old or the new file, never a part.
+
+    The bytes go to a temporary file in the same folder, which is flushed
+    (and fsync'ed unless ``fsync=False``) and then moved over ``path`` with
+    :func:`os.replace`.
+    """
+    target = Path(path)
+    fd, tmp = tempfile.mkstemp(prefix=".tmp-", suffix=target.suffix, dir=target.parent)
+    try:
+        os.chmod(tmp, _FILE_MODE)
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            if fsync:
+                os.fsync(fh.fileno())
+        os.replace(tmp, target)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
+
+
+def atomic_write_text(path: str | os.PathLike[str], text: str, *, fsync: bool = True) -> None:
+    """UTF-8 text version of :func:`atomic_write_bytes`."""
+    atomic_write_bytes(path, text.encode("utf-8"), fsync=fsync)
+
+
+def _jsonable(value: Any) -> Any:
+    """Convert numpy scalars/arrays and tuples to plain JSON types; NaN/inf to None."""
+    if isinstance(value, Mapping):
+        return {str(k): _jsonable(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_jsonable(v) for v in value]
+    if isinstance(value, np.ndarray):
+        return _jsonable(value.tolist())
+    if isinstance(value, (bool, np.bool_)):
+        return bool(value)
+    if isinstance(value, (int, np.integer)):
+        return int(value)
+    if isinstance(value, (float, np.floating)):
+        v = float(value)
+        return v if math.isfinite(v) else None
+    if value is None or isinstance(value, str):
+        return value
+    return str(value)
+
+
+@dataclass(frozen=True)
+class BatchRecord:
+    """Outcome of one map in a batch.
+
+    Attributes
+    ----------
+    file : str
+        Path of the map file as found from the inputs.
+    hash : str
+        Content hash (:func:`content_hash`), the record's key.
+    status : {"ok", "doubtful", "failed"}
+        ``ok``: the analysis ran and its quality verdict is ok; ``doubtful``:
+        it ran but the verdict is not ok; ``failed``: it did not run.
+    reason : str or None
+        One-line reason of a failure, or None.
+    order : int
+        Position of the file in the input order.
+    time : str or None
+        Time of the sweep (ISO 8601) when the file says it, else None.
+    plot : str or None
+        Path of the annotated plot, relative to the output folder.
+    elapsed_s : float
+        Wall time of the analysis in the worker, s.
+    result : dict or None
+        The JSON of ``stabtool analyze --json`` for this map.
+    info : dict or None
+        Device, gates, voltage window and shape of the map, when the
+        pipeline's result exposes the map (used to find repeated sweeps).
+    """
+
+    file: str
+    hash: str
+    status: str
+    reason: str | None = None
+    order: int = 0
+    time: str | None = None
+    plot: str | None = None
+    elapsed_s: float = float("nan")
+    result: dict | None = None
+    info: dict | None = None
+
+    def __post_init__(self) -> None:
+        if self.status not in STATUSES:
+            raise ValueError(f"status must be one of {STATUSES}, got {self.status!r}")
+
+    def to_dict(self) -> dict:
+        """Plain-JSON form (NaN becomes null)."""
+        return _jsonable(
+            {
+                "file": self.file,
+                "hash": self.hash,
+                "status": self.status,
+                "reason": self.reason,
+                "order": self.order,
+                "time": self.time,
+                "plot": self.plot,
+                "elapsed_s": self.elapsed_s,
+                "result": self.result,
+                "info": self.info,
+            }
+        )
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any]) -> "BatchRecord":
+        """Inverse of :meth:`to_dict`."""
+        elapsed = d.get("elapsed_s")
+        return cls(
+            file=str(d["file"]),
+            hash=str(d["hash"]),
+            status=str(d["status"]),
+            reason=d.get("reason"),
+            order=int(d.get("order") or 0),
+            time=d.get("time"),
+            plot=d.get("plot"),
+            elapsed_s=float("nan") if elapsed is None else float(elapsed),
+            result=d.get("result"),
+            info=d.get("info"),
+        )
+
+    def row(self) -> dict[str, Any]:
+        """The record as one flat table row (see :func:`flatten_result`)."""
+        flat = flatten_result(self.result or {})
+        warnings = flat.pop("quality.warnings", None)
+        row: dict[str, Any] = {
+            "file": self.file,
+            "hash": self.hash,
+            "status": self.status,
+            "reason": self.reason,
+            "time": self.time,
+            "x_gate": flat.pop("x_gate", None),
+            "y_gate": flat.pop("y_gate", None),
+            "warnings": warnings,
+            "plot": self.plot,
+            "elapsed_s": self.elapsed_s if math.isfinite(self.elapsed_s) else None,
+        }
+        row.update(flat)
+        return row
+
+
+def flatten_result(result: Mapping[str, Any], prefix: str = "") -> dict[str, Any]:
+    """Flatten an analysis JSON into ``{column: scalar}``.
+
+    Rules: nested objects join their keys with ``.`` (``slopes.dot1``);
+    numeric lists of at most 16 cells become one column per cell with the
+    indices appended (``virtual_gate_matrix.0.1``); lists of strings are
+    joined with `` | `` (``quality.warnings``); other lists (line lists,
+    charge-state tables) are replaced by their length (``lines.n``).
+
+    Parameters
+    ----------
+    result : mapping
+        The JSON object of one map.
+    prefix : str
+        Prefix of the column names (used in the recursion).
+
+    Returns
+    -------
+    dict
+        Column name → bool, int, float, str or None.
+    """
+    out: dict[str, Any] = {}
+    for key, value in result.items():
+        name = f"{prefix}{key}"
+        if isinstance(value, Mapping):
+            out.update(flatten_result(value, prefix=f"{name}."))
+        elif isinstance(value, (list, tuple, np.ndarray)):
+            out.update(_flatten_list(name, value))
+        else:
+            out[name] = _jsonable(value)
+    return out
+
+
+def _flatten_list(name: str, value: Any) -> dict[str, Any]:
+    items = list(value.tolist() if isinstance(value, np.ndarray) else value)
+    if all(isinstance(v, str) for v in items):
+        return {name: " | ".join(items)}
+    try:
+        arr = np.asarray(items, dtype=object)
+    except Exception:  # noqa: BLE001 - ragged lists are just counted
+        arr = None
+    numeric = (
+        arr is not None
+        and arr.size <= _MAX_ARRAY_CELLS
+        and arr.dtype == object
+        and all(v is None or isinstance(v, (bool, int, float, np.number)) for v in arr.ravel())
+    )
+    if numeric and arr is not None and arr.ndim >= 1:
+        return {
+            name + "." + ".".join(str(i) for i in idx): _jsonable(arr[idx])
+            for idx in np.ndindex(arr.shape)
+        }
+    return {f"{name}.n": len(items)}
+
+
+def records_table(records: Iterable[BatchRecord]) -> tuple[list[str], list[dict[str, Any]]]:
+    """Rows of the results table, sorted by input order then file name.
+
+    Returns
+    -------
+    columns : list of str
+        :data:`BASE_COLUMNS` first, then every other column in order of first
+        appearance.
+    rows : list of dict
+        One per record.
+    """
+    recs = sorted(records, key=lambda r: (r.order, r.file))
+    rows = [r.row() for r in recs]
+    columns = list(BASE_COLUMNS)
+    seen = set(columns)
+    for row in rows:
+        for key in row:
+            if key not in seen:
+                seen.add(key)
+                columns.append(key)
+    return columns, rows
+
+
+def _cell(value: Any) -> str:
+    if value is None:
+        return ""
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, float):
+        return repr(value) if math.isfinite(value) else ""
+    return str(value)
+
+
+def write_csv(path: str | os.PathLike[str], records: Iterable[BatchRecord]) -> None:
+    """Write the results table as CSV, atomically."""
+    columns, rows = records_table(records)
+    buf = io.StringIO()
+    writer = csv.writer(buf, lineterminator="\n")
+    writer.writerow(columns)
+    for row in rows:
+        writer.writerow([_cell(row.get(c)) for c in columns])
+    atomic_write_text(path, buf.getvalue())
+
+
+def _column_array(values: Sequence[Any]) -> np.ndarray:
+    present = [v for v in values if v is not None]
+    if present and all(isinstance(v, (bool, np.bool_)) for v in present):
+        return np.array([np.nan if v is None else float(v) for v in values])
+    if all(isinstance(v, (int, float, np.number)) and not isinstance(v, bool) for v in present):
+        return np.array([np.nan if v is None else float(v) for v in values], dtype=np.float64)
+    return np.array(["" if v is None else _cell(v) for v in values], dtype=object)
+
+
+def write_netcdf(path: str | os.PathLike[str], records: Iterable[BatchRecord]) -> None:
+    """Write the results table as NetCDF (one variable per column, dimension ``map``), atomically.
+
+    Numeric and boolean columns are float64 with NaN for missing values
+    (booleans as 0/1, marked ``boolean="true"``); other columns are strings
+    with "" for missing values.
+    """
+    import xarray as xr
+
+    columns, rows = records_table(records)
+    data_vars = {}
+    for c in columns:
+        values = [row.get(c) for row in rows]
+        if c in _TEXT_COLUMNS:
+            arr = np.array(["" if v is None else str(v) for v in values], dtype=object)
+        else:
+            arr = _column_array(values)
+        attrs = {}
+        present = [v for v in values if v is not None]
+        if present and all(isinstance(v, bool) for v in present):
+            attrs["boolean"] = "true"
+        data_vars[c] = ("map", arr, attrs)
+    ds = xr.Dataset(
+        data_vars,
+        attrs={
+            "title": "stabtool batch results",
+            "caution": CAUTION,
+        },
+    )
+    target = Path(path)
+    fd, tmp = tempfile.mkstemp(prefix=".tmp-", suffix=".nc", dir=target.parent)
+    os.close(fd)
+    try:
+        os.chmod(tmp, _FILE_MODE)
+        ds.to_netcdf(tmp, engine="h5netcdf")
+        os.replace(tmp, target)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
+
+
+#: The caution printed with every batch summary.
+CAUTION = (
+    "These results are estimates from automated image analysis. Check every gate "
+    "voltage against the device's safe limits and follow your lab's procedures "
+    "before applying any virtual-gate matrix or setting to a device."
+)
+
+
+class ResultStore:
+    """The records of one batch output folder.
+
+    Parameters
+    ----------
+    out_dir : path
+        The batch output folder (created if missing).
+
+    Notes
+    -----
+    Only the process that runs the batch writes here; workers return their
+    results (and plot bytes) to it. Reading tolerates anything a kill can
+    leave behind: stray temporary files are ignored and removed.
+    """
+
+    RECORDS = ".records"
+    SETTINGS = "batch.json"
+
+    def __init__(self, out_dir: str | os.PathLike[str]) -> None:
+        self.out_dir = Path(out_dir)
+        self.records_dir = self.out_dir / self.RECORDS
+        self.plots_dir = self.out_dir / "plots"
+
+    def __repr__(self) -> str:
+        return f"ResultStore({str(self.out_dir)!r})"
+
+    def create(self) -> None:
+        """Make the folders."""
+        self.records_dir.mkdir(parents=True, exist_ok=True)
+        self.plots_dir.mkdir(parents=True, exist_ok=True)
+        for folder in (self.out_dir, self.records_dir, self.plots_dir, self.out_dir / "drift"):
+            for stray in folder.glob(".tmp-*"):  # left by a kill between write and rename
+                try:
+                    stray.unlink()
+                except OSError:
+                    pass
+
+    def has_records(self) -> bool:
+        """True when the folder holds records of an earlier batch."""
+        return self.records_dir.is_dir() and any(
+            not p.name.startswith(".") for p in self.records_dir.glob("*.json")
+        )
+
+    # settings -----------------------------------------------------------
+    def read_settings(self) -> dict | None:
+        """The settings saved by :meth:`write_settings`, or None."""
+        path = self.records_dir / self.SETTINGS
+        try:
+            return json.loads(path.read_text(encoding="utf-8"))
+        except (OSError, ValueError):
+            return None
+
+    def write_settings(self, settings: Mapping[str, Any]) -> None:
+        """Save the analysis settings of this batch (checked on ``--resume``)."""
+        atomic_write_text(self.records_dir / self.SETTINGS, json.dumps(_jsonable(settings), indent=1))
+
+    # records --------------------------------------------------------------
+    def record_path(self, key: str) -> Path:
+        return self.records_dir / f"{key}.json"
+
+    def write(self, record: BatchRecord) -> None:
+        """Store one record atomically (replacing an earlier one with the same hash)."""
+        atomic_write_text(self.record_path(record.hash), json.dumps(record.to_dict()))
+
+    def write_plot(self, name: str, data: bytes) -> str:
+        """Store plot bytes atomically under ``plots/``; return the path relative to DIR."""
+        atomic_write_bytes(self.plots_dir / name, data, fsync=False)
+        return f"plots/{name}"
+
+    def load(self) -> dict[str, BatchRecord]:
+        """Every stored record, keyed by content hash."""
+        out: dict[str, BatchRecord] = {}
+        if not self.records_dir.is_dir():
+            return out
+        for path in self.records_dir.glob("*.json"):
+            if path.name == self.SETTINGS or path.name.startswith("."):
+                continue
+            try:
+                rec = BatchRecord.from_dict(json.loads(path.read_text(encoding="utf-8")))
+            except (OSError, ValueError, KeyError, TypeError):
+                continue  # cannot happen with atomic writes; never fatal
+            out[rec.hash] = rec
+        return out
+
+    def write_tables(self, records: Iterable[BatchRecord], *, netcdf: bool = True) -> None:
+        """Rebuild ``results.csv`` (and ``results.nc``) from ``records``, atomically."""
+        recs = list(records)
+        write_csv(self.out_dir / "results.csv", recs)
+        if netcdf:
+            write_netcdf(self.out_dir / "results.nc", recs)

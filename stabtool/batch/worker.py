@@ -1,0 +1,157 @@
+"""What a worker does with one map: analyse it, render its plot, report back.
+
+Runs in a worker process (local pool or dask worker). It loads its own file,
+so the parent never holds the maps; it returns only a small dict (numbers,
+the one-line failure reason, and the PNG bytes), so the parent is the only
+writer of the output folder and the workers need no access to it.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import tempfile
+import time
+import warnings
+from typing import Any, Callable, Mapping
+
+from ..errors import InputError
+from .store import _jsonable
+
+__all__ = ["analyze_one", "one_line_reason", "sweep_time", "map_info"]
+
+#: Attribute names that may carry the start time of a sweep, in order of preference.
+TIME_KEYS = ("time", "start_time", "timestamp", "datetime", "date", "started")
+
+
+def one_line_reason(exc: BaseException) -> str:
+    """A one-line description of why a map failed."""
+    if isinstance(exc, InputError):
+        return exc.fault
+    text = " ".join(str(exc).split())
+    return f"{type(exc).__name__}: {text}" if text else type(exc).__name__
+
+
+def sweep_time(result: Any, payload: Mapping[str, Any]) -> str | None:
+    """Start time of the sweep, when the result or its map attributes say it."""
+    sources: list[Mapping[str, Any]] = [payload]
+    for attr in ("attrs", "map_attrs", "metadata"):
+        value = getattr(result, attr, None)
+        if isinstance(value, Mapping):
+            sources.append(value)
+    data = _result_map(result)
+    if data is not None:
+        sources.append(data.attrs)
+    for src in sources:
+        for key in TIME_KEYS:
+            value = src.get(key)
+            if value not in (None, ""):
+                return str(value)
+    return None
+
+
+def _result_map(result: Any) -> Any:
+    """The analysed map held by a result (``.data`` or ``.map``), or None."""
+    for attr in ("data", "map"):
+        value = getattr(result, attr, None)
+        if value is not None and hasattr(value, "dims") and isinstance(getattr(value, "attrs", None), Mapping):
+            return value
+    return None
+
+
+def map_info(result: Any) -> dict[str, Any] | None:
+    """Device, gates, voltage window and shape of the analysed map (for grouping sweeps)."""
+    da = _result_map(result)
+    if da is None or getattr(da, "ndim", 0) != 2:
+        return None
+    try:
+        import numpy as np
+
+        y, x = (np.asarray(da[d].values, dtype=float) for d in da.dims)
+        return {
+            "device": str(da.attrs.get("device", "")),
+            "x_gate": str(da.dims[1]),
+            "y_gate": str(da.dims[0]),
+            "window_V": [float(x.min()), float(x.max()), float(y.min()), float(y.max())],
+            "shape": [int(da.shape[0]), int(da.shape[1])],
+        }
+    except Exception:  # noqa: BLE001 - the info is optional
+        return None
+
+
+def _status(payload: Mapping[str, Any]) -> str:
+    quality = payload.get("quality")
+    if isinstance(quality, Mapping) and quality.get("ok") is True:
+        return "ok"
+    return "doubtful"
+
+
+def _render_plot(result: Any) -> bytes:
+    fd, tmp = tempfile.mkstemp(prefix="stabtool-plot-", suffix=".png")
+    os.close(fd)
+    try:
+        result.save_plot(tmp)
+        with open(tmp, "rb") as fh:
+            return fh.read()
+    finally:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+
+
+def analyze_one(
+    analyzer: Callable[[str], Any] | Any, path: str, *, plot: bool = True
+) -> dict[str, Any]:
+    """Analyse one file; never raise for a bad map.
+
+    Parameters
+    ----------
+    analyzer : object with ``analyze_file(path)``, or a callable ``path -> result``
+        The configured pipeline. Its result must provide ``to_json()`` (the
+        JSON of ``stabtool analyze --json``) and ``save_plot(path)``.
+    path : str
+        Map file.
+    plot : bool
+        Render the annotated plot.
+
+    Returns
+    -------
+    dict
+        ``status`` ("ok", "doubtful", "failed"), ``reason`` (one line or
+        None), ``result`` (plain-JSON dict or None), ``time`` (str or None),
+        ``elapsed_s`` (float) and ``png`` (bytes or None).
+    """
+    t0 = time.perf_counter()
+    out: dict[str, Any] = {
+        "status": "failed",
+        "reason": None,
+        "result": None,
+        "time": None,
+        "elapsed_s": math.nan,
+        "png": None,
+        "info": None,
+    }
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # verdicts travel in quality.warnings, not on stderr
+        try:
+            run = getattr(analyzer, "analyze_file", None) or analyzer
+            result = run(path)
+            payload = _jsonable(dict(result.to_json()))
+        except Exception as exc:  # noqa: BLE001 - a bad map is a failed row, never a crash
+            out["reason"] = one_line_reason(exc)
+            out["elapsed_s"] = time.perf_counter() - t0
+            return out
+        out["result"] = payload
+        out["status"] = _status(payload)
+        if not isinstance(payload.get("quality"), Mapping):
+            out["reason"] = "the analysis gave no quality verdict"
+        out["time"] = sweep_time(result, payload)
+        out["info"] = map_info(result)
+        if plot:
+            try:
+                out["png"] = _render_plot(result)
+            except Exception as exc:  # noqa: BLE001 - a plot failure keeps the numbers
+                out["reason"] = f"plot not written: {one_line_reason(exc)}"
+    out["elapsed_s"] = time.perf_counter() - t0
+    return out

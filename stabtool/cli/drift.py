@@ -1,0 +1,63 @@
+"""'stabtool drift INPUTS... --out DIR': drift and jumps across repeated sweeps.
+
+INPUTS are repeated sweeps of the same two gates (files, folders or globs).
+They are put in time order (the sweeps' time attribute, else the file
+names), each is registered to the first by phase correlation in volts, and
+the pattern offset versus time is written to DIR as 'drift.csv',
+'drift.json' and 'drift.png', with the sudden jumps, the slow drift rate
+and a quality verdict.
+
+Exit codes: 0 the drift was measured (check the verdict), 2 bad input.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+from pathlib import Path
+from typing import Any
+
+__all__ = ["register", "run"]
+
+
+def run(args: argparse.Namespace) -> int:
+    """Measure the drift; print the verdict; return 0 (or 2 via InputError)."""
+    from ..batch.drift import measure_drift
+    from ..batch.inputs import discover_inputs
+
+    out = Path(args.out)
+    if out.exists() and not out.is_dir():
+        from ..errors import InputError
+
+        raise InputError(args.out, "--out must be a folder, but a file of that name exists")
+    paths = discover_inputs(args.inputs, exclude=[out])
+    res = measure_drift([str(p) for p in paths], upsample=args.upsample,
+                        jump_threshold=args.jump_threshold)
+    written = res.write_outputs(out)
+    if args.json:
+        print(json.dumps(res.to_json(), indent=1))
+    elif not args.quiet:
+        print(f"{len(res.files)} sweeps of {res.x_gate}/{res.y_gate}: {res.verdict()}")
+        last_x, last_y = 1e3 * res.offset_x_V[-1], 1e3 * res.offset_y_V[-1]
+        print(f"last sweep offset: ({last_x:+.3f}, {last_y:+.3f}) mV; "
+              f"written {', '.join(str(p) for p in written.values())}")
+    return 0
+
+
+def register(subparsers: Any) -> None:
+    """Add the ``drift`` sub-command."""
+    p = subparsers.add_parser(
+        "drift",
+        help="pattern drift and jumps across repeated sweeps of the same gates",
+        description=__doc__.split("\n\n")[1] if __doc__ else None,
+        epilog="Exit codes: 0 drift measured (check the verdict), 2 bad input.",
+    )
+    p.add_argument("inputs", nargs="+", metavar="INPUT", help="repeated sweeps: files, folders or globs")
+    p.add_argument("--out", required=True, metavar="DIR", help="output folder")
+    p.add_argument("--upsample", type=int, default=20, metavar="N",
+                   help="registration precision 1/N pixel (default 20)")
+    p.add_argument("--jump-threshold", type=float, default=6.0, metavar="Z",
+                   help="a jump is a sweep-to-sweep step beyond Z robust standard deviations (default 6)")
+    p.add_argument("--json", action="store_true", help="print the drift JSON on stdout")
+    p.add_argument("--quiet", action="store_true", help="print nothing (the files are still written)")
+    p.set_defaults(func=run)

@@ -1,0 +1,120 @@
+"""Batch storage: content hashes, atomic records, flat tables in CSV and NetCDF."""
+
+from __future__ import annotations
+
+import csv
+import hashlib
+import json
+
+import numpy as np
+import pytest
+import xarray as xr
+
+from stabtool.batch.store import (
+    BatchRecord,
+    ResultStore,
+    atomic_write_text,
+    content_hash,
+    flatten_result,
+)
+from stabtool.errors import InputError
+
+
+def test_content_hash_is_the_sha256_of_the_bytes_whatever_the_name(tmp_path):
+    data = b"PA,PB,I\n0,0,1\n" * 1000
+    (tmp_path / "a.csv").write_bytes(data)
+    (tmp_path / "b.csv").write_bytes(data)
+    expected = hashlib.sha256(data).hexdigest()[:16]  # reference: hashlib
+    assert content_hash(tmp_path / "a.csv") == expected == content_hash(tmp_path / "b.csv")
+    (tmp_path / "b.csv").write_bytes(data + b"1")
+    assert content_hash(tmp_path / "b.csv") != expected
+
+
+def test_content_hash_of_a_missing_file_is_an_input_error(tmp_path):
+    with pytest.raises(InputError, match="cannot be read"):
+        content_hash(tmp_path / "gone.nc")
+
+
+def test_atomic_write_replaces_whole_files_and_leaves_no_temporary(tmp_path):
+    target = tmp_path / "t.json"
+    atomic_write_text(target, "old")
+    atomic_write_text(target, "new content")
+    assert target.read_text() == "new content"
+    assert [p.name for p in tmp_path.iterdir()] == ["t.json"]
+
+
+def test_flatten_result_names_columns_by_path_and_keeps_matrices_cell_by_cell():
+    res = {
+        "x_gate": "PA",
+        "slopes": {"dot1": -2.5, "dot2": -0.4, "interdot": None},
+        "virtual_gate_matrix": [[1.0, 0.4], [0.45, 1.0]],
+        "quality": {"ok": False, "warnings": ["few lines", "noisy"]},
+        "lines": [{"slope": 1}, {"slope": 2}, {"slope": 3}],
+        "value": np.float32(0.5),
+        "bad": float("nan"),
+    }
+    flat = flatten_result(res)
+    assert flat["slopes.dot1"] == -2.5 and flat["slopes.interdot"] is None
+    assert flat["virtual_gate_matrix.0.1"] == 0.4 and flat["virtual_gate_matrix.1.0"] == 0.45
+    assert flat["quality.warnings"] == "few lines | noisy"
+    assert flat["quality.ok"] is False
+    assert flat["lines.n"] == 3
+    assert flat["value"] == pytest.approx(0.5) and isinstance(flat["value"], float)
+    assert flat["bad"] is None  # NaN is "unknown", stored as an empty cell
+
+
+def _rec(i: int, status: str = "ok", **result) -> BatchRecord:
+    base = {"x_gate": "PA", "y_gate": "PB", "slopes": {"dot1": -2.0 - i},
+            "quality": {"ok": status == "ok", "warnings": [] if status == "ok" else ["doubt"]}}
+    base.update(result)
+    return BatchRecord(file=f"m{i}.nc", hash=f"{i:016x}", status=status, order=i,
+                       result=None if status == "failed" else base,
+                       reason="corrupt" if status == "failed" else None, elapsed_s=0.1)
+
+
+def test_records_round_trip_and_tables_hold_one_row_per_record(tmp_path):
+    store = ResultStore(tmp_path)
+    store.create()
+    recs = [_rec(2), _rec(0, "doubtful"), _rec(1, "failed")]
+    for r in recs:
+        store.write(r)
+    loaded = store.load()
+    assert set(loaded) == {r.hash for r in recs}
+    assert loaded[recs[0].hash] == recs[0]
+    store.write_tables(loaded.values())
+    with open(tmp_path / "results.csv", newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert [r["file"] for r in rows] == ["m0.nc", "m1.nc", "m2.nc"]  # input order
+    assert [r["status"] for r in rows] == ["doubtful", "failed", "ok"]
+    assert rows[1]["reason"] == "corrupt" and rows[1]["slopes.dot1"] == ""
+    assert float(rows[2]["slopes.dot1"]) == -4.0
+    assert rows[0]["warnings"] == "doubt"
+    ds = xr.open_dataset(tmp_path / "results.nc", engine="h5netcdf")
+    assert list(ds["file"].values) == ["m0.nc", "m1.nc", "m2.nc"]
+    np.testing.assert_allclose(ds["slopes.dot1"].values, [-2.0, np.nan, -4.0])
+    assert ds["hash"].values[2] == recs[0].hash
+
+
+def test_a_record_is_rewritten_in_place_not_duplicated(tmp_path):
+    store = ResultStore(tmp_path)
+    store.create()
+    store.write(_rec(0, "failed"))
+    store.write(_rec(0, "ok"))
+    loaded = store.load()
+    assert len(loaded) == 1 and next(iter(loaded.values())).status == "ok"
+    assert json.loads(store.record_path(_rec(0).hash).read_text())["status"] == "ok"
+
+
+def test_stray_temporary_files_from_a_kill_are_ignored_and_removed(tmp_path):
+    store = ResultStore(tmp_path)
+    store.create()
+    store.write(_rec(0))
+    (store.records_dir / ".tmp-abc.json").write_text('{"file": "half')
+    assert len(store.load()) == 1
+    store.create()
+    assert not list(store.records_dir.glob(".tmp-*"))
+
+
+def test_unknown_status_is_rejected():
+    with pytest.raises(ValueError, match="status"):
+        BatchRecord(file="a", hash="b", status="great")

@@ -1,0 +1,120 @@
+"""Drift across a night: ordering, offsets versus time, jumps, slow drift, verdict, CLI."""
+
+from __future__ import annotations
+
+import json
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from stabtool.batch.drift import measure_drift, order_sweeps
+from stabtool.cli.main import main
+from stabtool.errors import InputError
+from stabtool.io import save_map
+
+sys.path.insert(0, str(Path(__file__).parent))
+from test_drift_registration import steps, sweep
+
+RATE_PX_PER_H = (0.6, -0.4)  # slow drift, pixels per hour
+JUMP_PX = (3.0, 1.5)  # sudden jump before sweep JUMP_AT, pixels
+JUMP_AT = 5
+N = 8
+
+
+def night(*, jump=True, rate=RATE_PX_PER_H, n=N, seed=100):
+    """Sweeps every 30 min with a known pattern offset; returns maps and offsets (V)."""
+    ref = sweep(seed=seed)
+    sx, sy = steps(ref)
+    maps, truth = [], []
+    for k in range(n):
+        hours = 0.5 * k
+        px = np.array(rate) * hours + (np.array(JUMP_PX) if jump and k >= JUMP_AT else 0.0)
+        off = (px[0] * sx, px[1] * sy)
+        da = sweep(off, seed=seed + k)
+        da.attrs["time"] = f"2026-11-30T{22 + (30 * k) // 60:02d}:{(30 * k) % 60:02d}:00" if k < 4 \
+            else f"2026-12-01T{(30 * k) // 60 - 2:02d}:{(30 * k) % 60:02d}:00"
+        da.attrs["source"] = f"sweep_{k:02d}.nc"
+        maps.append(da)
+        truth.append(off)
+    return maps, np.array(truth), (sx, sy)
+
+
+@pytest.mark.regression
+def test_offsets_jump_and_drift_rate_are_recovered_from_a_shuffled_night():
+    maps, truth, (sx, sy) = night()
+    order = [3, 0, 7, 5, 1, 6, 2, 4]  # given out of order: the time attribute decides
+    res = measure_drift([maps[i] for i in order])
+    assert res.files == tuple(f"sweep_{k:02d}.nc" for k in range(N))
+    assert res.time_unit == "h"
+    np.testing.assert_allclose(res.t, 0.5 * np.arange(N), atol=1e-12)
+    np.testing.assert_allclose(res.offset_x_V, truth[:, 0] - truth[0, 0], atol=0.25 * sx)
+    np.testing.assert_allclose(res.offset_y_V, truth[:, 1] - truth[0, 1], atol=0.25 * sy)
+    assert [j.index for j in res.jumps] == [JUMP_AT]
+    assert res.jumps[0].size_x_V == pytest.approx(JUMP_PX[0] * sx, abs=0.4 * sx)
+    assert res.jumps[0].size_y_V == pytest.approx(JUMP_PX[1] * sy, abs=0.4 * sy)
+    assert res.rate_x_V == pytest.approx(RATE_PX_PER_H[0] * sx, abs=0.15 * sx)
+    assert res.rate_y_V == pytest.approx(RATE_PX_PER_H[1] * sy, abs=0.15 * sy)
+    assert res.significant_drift
+    assert res.quality.ok, res.quality.warnings
+    assert any("jump" in w for w in res.quality.warnings)  # reported, not doubtful
+
+
+@pytest.mark.regression
+def test_a_stable_device_shows_no_jump_and_no_resolved_drift():
+    maps, _, _ = night(jump=False, rate=(0.0, 0.0), n=5, seed=200)
+    res = measure_drift(maps)
+    assert res.jumps == ()
+    assert not res.significant_drift
+    assert "stable" in res.verdict()
+    assert res.quality.ok
+
+
+def test_unrelated_maps_are_doubtful_not_a_confident_drift():
+    rng = np.random.default_rng(0)
+    ref = sweep(seed=1)
+    noise = [ref.copy(data=rng.normal(size=ref.shape)) for _ in range(3)]
+    res = measure_drift([ref, *noise], order="given")
+    assert not res.quality.ok
+    assert any("register poorly" in w for w in res.quality.warnings)
+
+
+def test_without_times_sweeps_are_ordered_by_natural_file_name():
+    labels = ["run10.nc", "run2.nc", "run1.nc"]
+    assert order_sweeps(labels, [None, None, None]) == [2, 1, 0]
+    times = ["2026-11-30T23:00:00", "2026-11-30T22:00:00", None]
+    assert order_sweeps(labels, times) == [2, 1, 0]  # one time missing: file names decide
+    assert order_sweeps(labels, times[:2] + ["2026-11-30T21:00:00"]) == [2, 1, 0]
+
+
+def test_fewer_than_two_sweeps_is_an_input_error():
+    with pytest.raises(InputError, match="at least 2 sweeps"):
+        measure_drift([sweep(seed=1)])
+
+
+@pytest.mark.regression
+def test_cli_writes_csv_json_png_and_reports_the_jump(tmp_path, capsys):
+    maps, truth, (sx, _) = night(n=7, seed=300)
+    folder = tmp_path / "night"
+    folder.mkdir()
+    for k, da in enumerate(maps):
+        save_map(da, folder / f"sweep_{k:02d}{'.nc' if k % 2 else '.npz'}")
+    code = main(["drift", str(folder), "--out", str(tmp_path / "out")])
+    assert code == 0
+    out = capsys.readouterr().out
+    assert "7 sweeps of PA/PB" in out and "1 jump" in out
+    data = json.loads((tmp_path / "out" / "drift.json").read_text())
+    last = data["sweeps"][-1]
+    assert last["offset_x_mV"] == pytest.approx(1e3 * (truth[-1, 0] - truth[0, 0]), abs=1e3 * 0.25 * sx)
+    assert [j["index"] for j in data["jumps"]] == [JUMP_AT]
+    csv_lines = (tmp_path / "out" / "drift.csv").read_text().splitlines()
+    assert len(csv_lines) == 8 and csv_lines[0].startswith("file,time,t_h,offset_x_mV")
+    assert (tmp_path / "out" / "drift.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_cli_names_the_faulty_input(tmp_path, capsys):
+    code = main(["drift", str(tmp_path / "nothing_here"), "--out", str(tmp_path / "out")])
+    assert code == 2
+    err = capsys.readouterr().err
+    assert "nothing_here" in err and "no such file" in err
