@@ -25,22 +25,23 @@ import io
 import json
 import math
 import os
-import tempfile
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Iterable, Mapping, Sequence
+from typing import Any
 
 import numpy as np
 
 from ..errors import InputError
+from ..io.atomic import atomic_write, atomic_write_bytes, atomic_write_text
 
 __all__ = [
     "STATUSES",
     "BatchRecord",
     "ResultStore",
-    "content_hash",
     "atomic_write_bytes",
     "atomic_write_text",
+    "content_hash",
     "flatten_result",
     "records_table",
     "write_csv",
@@ -65,9 +66,6 @@ BASE_COLUMNS = (
 )
 
 _MAX_ARRAY_CELLS = 16
-_UMASK = os.umask(0)
-os.umask(_UMASK)
-_FILE_MODE = 0o666 & ~_UMASK  # what open() would give; mkstemp alone gives 0600
 
 #: Columns always stored as text, even when empty.
 _TEXT_COLUMNS = frozenset({"file", "hash", "status", "reason", "time", "x_gate", "y_gate",
@@ -93,36 +91,6 @@ def content_hash(path: str | os.PathLike[str], *, chunk: int = 1 << 20) -> str:
     except OSError as exc:
         raise InputError(path, f"cannot be read ({exc.strerror or exc})") from None
     return h.hexdigest()[:16]
-
-
-def atomic_write_bytes(path: str | os.PathLike[str], data: bytes, *, fsync: bool = True) -> None:
-    """Write ``data`` to ``path`` so that readers see the old or the new file, never a part.
-
-    The bytes go to a temporary file in the same folder, which is flushed
-    (and fsync'ed unless ``fsync=False``) and then moved over ``path`` with
-    :func:`os.replace`.
-    """
-    target = Path(path)
-    fd, tmp = tempfile.mkstemp(prefix=".tmp-", suffix=target.suffix, dir=target.parent)
-    try:
-        os.chmod(tmp, _FILE_MODE)
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            if fsync:
-                os.fsync(fh.fileno())
-        os.replace(tmp, target)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
-
-
-def atomic_write_text(path: str | os.PathLike[str], text: str, *, fsync: bool = True) -> None:
-    """UTF-8 text version of :func:`atomic_write_bytes`."""
-    atomic_write_bytes(path, text.encode("utf-8"), fsync=fsync)
 
 
 def _jsonable(value: Any) -> Any:
@@ -208,7 +176,7 @@ class BatchRecord:
         )
 
     @classmethod
-    def from_dict(cls, d: Mapping[str, Any]) -> "BatchRecord":
+    def from_dict(cls, d: Mapping[str, Any]) -> BatchRecord:
         """Inverse of :meth:`to_dict`."""
         elapsed = d.get("elapsed_s")
         return cls(
@@ -381,19 +349,8 @@ def write_netcdf(path: str | os.PathLike[str], records: Iterable[BatchRecord]) -
             "caution": CAUTION,
         },
     )
-    target = Path(path)
-    fd, tmp = tempfile.mkstemp(prefix=".tmp-", suffix=".nc", dir=target.parent)
-    os.close(fd)
-    try:
-        os.chmod(tmp, _FILE_MODE)
+    with atomic_write(path, mode="path") as (tmp, _):
         ds.to_netcdf(tmp, engine="h5netcdf")
-        os.replace(tmp, target)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
 
 
 #: The caution printed with every batch summary.

@@ -6,15 +6,12 @@ from __future__ import annotations
 import contextlib
 import difflib
 import json
-import os
-import tempfile
-from collections.abc import Iterable, Iterator, Mapping
-from pathlib import Path
-from typing import IO, Any
+from collections.abc import Iterable, Mapping
+from typing import Any
 
 import numpy as np
 
-from ..errors import InputError
+from .atomic import atomic_write
 
 __all__ = [
     "JSON_ATTRS_KEY",
@@ -27,43 +24,6 @@ __all__ = [
 
 #: Attribute listing the names of attributes stored as JSON text in a file.
 JSON_ATTRS_KEY = "stabtool_json_attrs"
-
-
-@contextlib.contextmanager
-def atomic_write(path: str | os.PathLike[str], *, mode: str = "w") -> Iterator[tuple[str, IO[Any] | None]]:
-    """Write ``path`` atomically: a temp file in the same folder, then ``os.replace``.
-
-    Yields ``(tmp_path, handle)``; ``handle`` is an open file for ``mode`` in
-    ``"w"``/``"wb"`` or ``None`` for ``mode="path"`` (the caller writes
-    ``tmp_path`` itself). On any error the temp file is removed and an existing
-    ``path`` is left untouched.
-    """
-    target = Path(path)
-    folder = target.parent if str(target.parent) else Path(".")
-    if not folder.is_dir():
-        raise InputError(path, f"cannot write: folder {str(folder)!r} does not exist")
-    try:
-        fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp" + target.suffix, dir=folder)
-    except OSError as exc:
-        raise InputError(path, f"cannot write: {exc.strerror or exc}") from None
-    handle: IO[Any] | None = None
-    try:
-        if mode == "path":
-            os.close(fd)
-        else:
-            handle = os.fdopen(fd, mode) if "b" in mode else os.fdopen(fd, mode, encoding="utf-8", newline="")
-        yield tmp, handle
-        if handle is not None:
-            handle.flush()
-            os.fsync(handle.fileno())
-            handle.close()
-        os.replace(tmp, target)
-    except BaseException:
-        if handle is not None and not handle.closed:
-            handle.close()
-        with contextlib.suppress(OSError):
-            os.unlink(tmp)
-        raise
 
 
 def suggest(name: str, choices: Iterable[str]) -> str:
