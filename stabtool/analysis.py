@@ -19,7 +19,7 @@ import time
 import warnings
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import xarray as xr
@@ -32,12 +32,22 @@ from .mapdata import validate_map
 from .physics import FERMI_FWHM_FACTOR, lever_arm_from_width
 from .quality import Quality
 
-__all__ = ["REFERENCE_AGREEMENT", "AnalysisResult", "Analyzer", "EnergyScale", "analyze"]
+if TYPE_CHECKING:
+    from .fit.diamond_map import DiamondAnalysisResult
 
-#: Relative disagreement between two energy references above which quality fails.
+__all__ = ["LEVER_ARM_AGREEMENT", "REFERENCE_AGREEMENT", "AnalysisResult", "Analyzer", "EnergyScale", "analyze"]
+
+#: Relative disagreement of the width ratio (or a given α11/α22) with δ2/δ1 above which quality fails.
 REFERENCE_AGREEMENT = 0.10
+#: Relative disagreement between two lever-arm references above which quality fails (the 5 % goal).
+LEVER_ARM_AGREEMENT = 0.05
 #: Thermal lines narrower than this many pixels (FWHM) are resolution-limited.
 MIN_FWHM_PX = 3.0
+#: Virtual-gate goal on clean maps (SNR ≥ CLEAN_SNR) and the SNR that makes a map clean.
+CLEAN_VG_BOUND = 0.005
+CLEAN_SNR = 10.0
+#: Expected virtual-gate bias from the interdot tunnel coupling above which quality fails.
+MAX_TUNNEL_VG_BIAS = 0.004
 
 
 def _nan_to_none(obj: Any) -> Any:
@@ -71,6 +81,9 @@ class EnergyScale:
     details : dict
         Per-reference values, for the JSON output.
     quality : Quality
+    full_alpha, full_alpha_error : ndarray, shape (2, 2)
+        Whole lever-arm matrix when the reference measures it directly (bias
+        triangles); used when the diagram fit failed (e.g. a transport map).
     """
 
     alpha_diag: np.ndarray = field(default_factory=lambda: np.full(2, np.nan))
@@ -78,6 +91,8 @@ class EnergyScale:
     reference: str | None = None
     details: dict = field(default_factory=dict)
     quality: Quality = field(default_factory=Quality)
+    full_alpha: np.ndarray = field(default_factory=lambda: np.full((2, 2), np.nan))
+    full_alpha_error: np.ndarray = field(default_factory=lambda: np.full((2, 2), np.nan))
 
 
 @dataclass(frozen=True)
@@ -100,6 +115,12 @@ class AnalysisResult:
     quality : Quality
     timings_s : dict
         Seconds per stage.
+    tunnel : TunnelCoupling or None
+        Interdot tunnel coupling (:mod:`stabtool.fit.tunnel`); None when T_e
+        or the lever arms are unknown.
+    coupling : CouplingRatio or None
+        Scale-free t/E_Cm from the interdot line width and the virtual-gate
+        bias it implies.
     """
 
     data: xr.DataArray
@@ -110,6 +131,8 @@ class AnalysisResult:
     refinement: Any
     quality: Quality
     timings_s: dict = field(default_factory=dict)
+    tunnel: Any = None
+    coupling: Any = None
 
     # ----------------------------------------------------------------- numbers
     @property
@@ -122,11 +145,19 @@ class AnalysisResult:
 
     @property
     def lever_arm(self) -> np.ndarray:
-        """α = diag(α11, α22) · M, shape (2, 2); NaN without an energy reference."""
+        """α = diag(α11, α22) · M, shape (2, 2); NaN without an energy reference.
+
+        Without a diagram fit, the matrix measured by the reference itself
+        (bias triangles), if any.
+        """
+        if not self.diagram.ok and np.all(np.isfinite(self.scale.full_alpha)):
+            return self.scale.full_alpha
         return self.scale.alpha_diag[:, None] * self.diagram.vg_matrix
 
     @property
     def lever_arm_error(self) -> np.ndarray:
+        if not self.diagram.ok and np.all(np.isfinite(self.scale.full_alpha)):
+            return self.scale.full_alpha_error
         a = self.scale.alpha_diag[:, None]
         sa = self.scale.alpha_diag_error[:, None]
         m, sm = self.diagram.vg_matrix, self.diagram.vg_matrix_error
@@ -191,7 +222,8 @@ class AnalysisResult:
     def to_json(self) -> dict:
         """The JSON object of ``stabtool analyze --json`` (NaN → null)."""
         d = self.diagram
-        scaled = bool(d.ok and np.any(np.isfinite(self.scale.alpha_diag)))
+        scaled = bool((d.ok and np.any(np.isfinite(self.scale.alpha_diag)))
+                      or np.all(np.isfinite(self.scale.full_alpha)))
         la = self.lever_arm if scaled else None
         la_err = self.lever_arm_error if scaled else None
         ec, ec_err = self._charging()
@@ -234,6 +266,11 @@ class AnalysisResult:
             "triple_points_V": self.triple_points,
             "charge_states": self.charge_states.to_json() if self.charge_states is not None else None,
             "refinement": self.refinement.to_json() if self.refinement is not None else None,
+            "tunnel_coupling_ueV": self.tunnel.value_ueV if self.tunnel is not None else None,
+            "tunnel_coupling_ueV_error": self.tunnel.error_ueV if self.tunnel is not None else None,
+            "tunnel_coupling_upper_limit_ueV": self.tunnel.upper_limit_ueV if self.tunnel is not None else None,
+            "tunnel_coupling_details": self.tunnel.to_json() if self.tunnel is not None else None,
+            "tunnel_to_mutual_ratio": self.coupling.to_json() if self.coupling is not None else None,
             "timings_s": self.timings_s,
         }
         return _nan_to_none(out)
@@ -381,6 +418,7 @@ def _scale(
     temperature_K: float | None,
     lever_arm: tuple[float, ...] | None,
     lever_arm_file: str | None,
+    triangles: Any = None,
 ) -> EnergyScale:
     q = Quality()
     estimates: list[tuple[str, np.ndarray, np.ndarray]] = []
@@ -461,6 +499,27 @@ def _scale(
         a_f, e_f = complete("lever-arm file", a_f, e_f)
         estimates.append(("lever_arm_file", a_f, e_f))
         details["lever_arm_file"] = os.fspath(lever_arm_file)
+    if triangles is not None:
+        if triangles:
+            a_t = np.diag(np.array(triangles.lever_arm, float)).copy()
+            e_t = np.diag(np.array(triangles.lever_arm_stderr, float)).copy()
+            # one triangle: no scatter; take the thermal-rounding estimate (or 3 %) as the error
+            rel = triangles.thermal_bias_rel if np.isfinite(triangles.thermal_bias_rel) else 0.03
+            e_t = np.where(np.isfinite(e_t), np.hypot(e_t, rel * a_t), rel * a_t)
+            estimates.append(("bias_triangles", a_t, e_t))
+            details["bias_triangles_lever_arm"] = np.array(triangles.lever_arm).tolist()
+            details["bias_triangles_n"] = len(triangles.triangles)
+            details["bias_V"] = triangles.bias_V
+            for w in triangles.quality.warnings:
+                q = q.with_warning(f"bias triangles: {w}", doubtful=not triangles.quality.ok)
+        else:
+            q = q.with_warning("bias triangles: " + ("; ".join(triangles.quality.warnings[:2]) or "none found"))
+    full = np.full((2, 2), np.nan), np.full((2, 2), np.nan)
+    if triangles:
+        a_full = np.array(triangles.lever_arm, float)
+        e_full = np.array(triangles.lever_arm_stderr, float)
+        rel = triangles.thermal_bias_rel if np.isfinite(triangles.thermal_bias_rel) else 0.03
+        full = a_full, np.where(np.isfinite(e_full), np.hypot(e_full, rel * a_full), rel * a_full)
     if not estimates:
         return EnergyScale(details=details, quality=q)
     for name, a_est, e_est in estimates:
@@ -474,17 +533,17 @@ def _scale(
             for k in range(2):
                 if np.isfinite(ai[k]) and np.isfinite(aj[k]):
                     dev = abs(ai[k] - aj[k]) / aj[k]
-                    if dev > REFERENCE_AGREEMENT and abs(ai[k] - aj[k]) > 3 * np.hypot(ei[k], ej[k]):
+                    if dev > LEVER_ARM_AGREEMENT and abs(ai[k] - aj[k]) > 3 * np.hypot(ei[k], ej[k]):
                         q = q.with_warning(
                             f"references disagree on α{k + 1}{k + 1}: {ni} gives {ai[k]:.4g}, {nj} gives {aj[k]:.4g}"
                         )
     # the user's own lever arm wins, then a file, then the temperature
-    order = {"lever_arm": 0, "lever_arm_file": 1, "electron_temperature": 2}
+    order = {"lever_arm": 0, "lever_arm_file": 1, "bias_triangles": 2, "electron_temperature": 3}
     best_name, best_a, best_e = min(estimates, key=lambda t: order[t[0]])
     if not np.all(np.isfinite(best_a)):
         q = q.with_warning(f"{best_name}: only one lever arm determined; α and E_C of the other dot are null")
     return EnergyScale(alpha_diag=np.asarray(best_a, float), alpha_diag_error=np.asarray(best_e, float),
-                       reference=best_name, details=details, quality=q)
+                       reference=best_name, details=details, quality=q, full_alpha=full[0], full_alpha_error=full[1])
 
 
 def _lever_arm_from_file(path: str, da: xr.DataArray) -> tuple[np.ndarray, np.ndarray]:
@@ -542,6 +601,18 @@ class Analyzer:
     refine : bool
         Fit the constant-interaction model to the map itself after the line
         fit (checks the model, tightens the estimates).
+    bias_mV : float, optional
+        Source–drain bias of a double-dot transport map: the bias triangles
+        give the lever arms (energy reference "bias_triangles",
+        :func:`stabtool.fit.bias_triangles.fit_bias_triangles`).
+    mode : {"auto", "stability", "diamonds"}
+        "diamonds" analyses a Coulomb-diamond map (gate on x, bias on y;
+        :mod:`stabtool.fit.diamond_map`); "auto" does so when the y axis is
+        named like a bias (contains "bias", "sd" or "vsd", unit a voltage),
+        otherwise the map is a charge-stability diagram.
+    tunnel_coupling : bool
+        Fit the interdot tunnel coupling on the polarisation lines when T_e
+        and the lever arms are known (:mod:`stabtool.fit.tunnel`).
     detector : callable, optional
         ``detector(da) -> LineDetection``; default: the line detector of
         :mod:`stabtool.lines`.
@@ -559,8 +630,18 @@ class Analyzer:
         lever_arm: float | Sequence[float] | None = None,
         lever_arm_file: str | os.PathLike[str] | None = None,
         refine: bool = True,
+        tunnel_coupling: bool = True,
+        bias_mV: float | None = None,
+        mode: str = "auto",
         detector: Callable[[xr.DataArray], LineDetection] | None = None,
     ) -> None:
+        if mode not in ("auto", "stability", "diamonds"):
+            raise InputError("mode", f"expected 'auto', 'stability' or 'diamonds', got {mode!r}")
+        if bias_mV is not None:
+            b = float(bias_mV)
+            if not (np.isfinite(b) and b != 0):
+                raise InputError("bias_mV", f"expected a non-zero source-drain bias in mV, got {bias_mV!r}")
+            bias_mV = b
         if electron_temperature_K is not None:
             t = float(electron_temperature_K)
             if not (np.isfinite(t) and t > 0):
@@ -579,23 +660,32 @@ class Analyzer:
         self.lever_arm = lever_arm
         self.lever_arm_file = None if lever_arm_file is None else os.fspath(lever_arm_file)
         self.refine = bool(refine)
+        self.tunnel_coupling = bool(tunnel_coupling)
+        self.bias_mV = bias_mV
+        self.mode = mode
         self.detector = detector
 
     def __repr__(self) -> str:
         det = "default" if self.detector is None else getattr(self.detector, "__name__", repr(self.detector))
         return (
             f"Analyzer(electron_temperature_K={self.electron_temperature_K!r}, lever_arm={self.lever_arm!r}, "
-            f"lever_arm_file={self.lever_arm_file!r}, refine={self.refine!r}, detector={det})"
+            f"lever_arm_file={self.lever_arm_file!r}, refine={self.refine!r}, "
+            f"tunnel_coupling={self.tunnel_coupling!r}, bias_mV={self.bias_mV!r}, mode={self.mode!r}, "
+            f"detector={det})"
         )
 
-    def analyze_file(self, path: str | os.PathLike[str], **load_kwargs: Any) -> AnalysisResult:
+    def analyze_file(self, path: str | os.PathLike[str], **load_kwargs: Any) -> AnalysisResult | DiamondAnalysisResult:
         """Load ``path`` with :func:`stabtool.io.load` and analyse it."""
         from .io import load
 
         return self(load(path, **load_kwargs))
 
-    def __call__(self, da: xr.DataArray) -> AnalysisResult:
+    def __call__(self, da: xr.DataArray) -> AnalysisResult | DiamondAnalysisResult:
         validate_map(da)
+        from .fit.diamond_map import analyze_diamond_map, is_bias_axis
+
+        if self.mode == "diamonds" or (self.mode == "auto" and is_bias_axis(da)):
+            return analyze_diamond_map(da)
         timings: dict[str, float] = {}
         t0 = time.perf_counter()
         detector = self.detector or _default_detector
@@ -615,7 +705,9 @@ class Analyzer:
             # the lines are re-checked and re-measured on the map by the fitter: the
             # detector's own doubts are kept as notes when the fit succeeded
             for w in detection.quality.warnings:
-                q = q.with_warning(f"detector: {w}", doubtful=not fit.ok)
+                # lines bending towards the triple points (strong tunnel coupling) bias the
+                # common-slope re-measurement too (seen: |ΔM| = 0.018 at t = 60 µeV, GaAs preset)
+                q = q.with_warning(f"detector: {w}", doubtful=not fit.ok or "bend" in w)
             if not detection.quality.ok and not fit.ok:
                 q = q.with_warning("line detection doubtful")
         else:
@@ -625,6 +717,30 @@ class Analyzer:
             fit = fit_diagram(_LD(axes=map_axes(da), families={}, unassigned=(), jumps=(),
                                   excluded_rows=np.zeros(0, int), noise_level=np.nan, snr=np.nan, quality=Quality()))
         q = q.merge(fit.quality)
+        if fit.ok and detection is not None and np.isfinite(detection.snr) and detection.snr >= CLEAN_SNR:
+            # a clean map promises |ΔM| ≤ 0.005: ok needs that bound to be at least 2 stated σ
+            # (on generator maps the stated σ is ≈ the true scatter on the hardest preset)
+            sm = float(np.nanmax(fit.vg_matrix_error))
+            if sm > CLEAN_VG_BOUND / 2:
+                q = q.with_warning(
+                    f"virtual-gate matrix error {sm:.4f} is more than half the {CLEAN_VG_BOUND} goal of a "
+                    f"clean map (SNR {detection.snr:.0f})"
+                )
+        coupling = None
+        if fit.ok and fit.mutual_resolved:
+            from .fit.tunnel import BIAS_PER_T_OVER_ECM, coupling_to_mutual_ratio
+
+            w_l = [ln.width_V for ln in fit.lines1 if np.isfinite(ln.width_V) and ln.width_V > 0]
+            x_step = abs(float(np.median(np.diff(np.asarray(da[da.dims[-1]].values, float)))))
+            coupling = coupling_to_mutual_ratio(da, fit, thermal_width_V=float(np.median(w_l)) if w_l else 0.25 * x_step)
+            bias = coupling.expected_vg_bias
+            # flag only a clearly broad line (3σ above the threshold): noise also widens a single cut
+            low = BIAS_PER_T_OVER_ECM * (coupling.value - 3 * coupling.error) if np.isfinite(bias) else np.nan
+            if np.isfinite(low) and low > MAX_TUNNEL_VG_BIAS:
+                q = q.with_warning(
+                    f"broad interdot lines (t/E_Cm ≈ {coupling.value:.2f}): the dot lines are pushed apart near "
+                    f"the triple points, virtual gates biased by up to ≈ {bias:.3f}"
+                )
         timings["model"] = time.perf_counter() - t1
         states = None
         refinement = None
@@ -649,10 +765,34 @@ class Analyzer:
                     refinement = None
                 timings["refine"] = time.perf_counter() - t2
         t3 = time.perf_counter()
+        triangles = None
+        if self.bias_mV is not None:
+            from .fit.bias_triangles import fit_bias_triangles
+
+            triangles = fit_bias_triangles(da, bias_V=1e-3 * self.bias_mV,
+                                           electron_temperature_K=self.electron_temperature_K)
         scale = _scale(da, fit, temperature_K=self.electron_temperature_K, lever_arm=self.lever_arm,
-                       lever_arm_file=self.lever_arm_file)
+                       lever_arm_file=self.lever_arm_file, triangles=triangles)
         q = q.merge(scale.quality)
         timings["scale"] = time.perf_counter() - t3
+        tunnel = None
+        if (self.tunnel_coupling and self.electron_temperature_K is not None and fit.ok
+                and np.all(np.isfinite(scale.alpha_diag))):
+            t4 = time.perf_counter()
+            from .fit.tunnel import tunnel_coupling_from_map
+
+            alpha = scale.alpha_diag[:, None] * fit.vg_matrix
+            vg_err = fit.vg_matrix_error.copy()
+            if coupling is not None and np.isfinite(coupling.expected_vg_bias):
+                # the tunnel-coupling bias of M (not in its stated error) moves the detuning scale too
+                off = ~np.eye(2, dtype=bool)
+                vg_err[off] = np.hypot(vg_err[off], coupling.expected_vg_bias)
+            alpha_err = np.sqrt((scale.alpha_diag_error[:, None] * fit.vg_matrix) ** 2
+                                + (scale.alpha_diag[:, None] * vg_err) ** 2)
+            tunnel = tunnel_coupling_from_map(da, fit, lever_arm=alpha, lever_arm_error=alpha_err,
+                                              electron_temperature_K=self.electron_temperature_K)
+            q = q.merge(tunnel.quality)
+            timings["tunnel"] = time.perf_counter() - t4
         timings["total"] = time.perf_counter() - t0
         if not q.ok:
             warnings.warn(
@@ -660,10 +800,10 @@ class Analyzer:
                 QualityWarning, stacklevel=2,
             )
         return AnalysisResult(data=da, detection=detection, diagram=fit, scale=scale, charge_states=states,
-                              refinement=refinement, quality=q, timings_s=timings)
+                              refinement=refinement, quality=q, timings_s=timings, tunnel=tunnel, coupling=coupling)
 
 
-def analyze(da_or_path: xr.DataArray | str | os.PathLike[str], **kwargs: Any) -> AnalysisResult:
+def analyze(da_or_path: xr.DataArray | str | os.PathLike[str], **kwargs: Any) -> AnalysisResult | DiamondAnalysisResult:
     """Analyse a map (DataArray or file path) with an :class:`Analyzer` built from ``kwargs``."""
     an = Analyzer(**kwargs)
     if isinstance(da_or_path, xr.DataArray):

@@ -110,7 +110,9 @@ def test_no_ok_result_beyond_bounds_while_snr_falls():
                 if j["quality"]["ok"]:
                     n_ok += 1
                     for k, v in err.items():
-                        assert v <= OK_BOUNDS[k], (preset, snr, seed, k, v)
+                        # the goal on the virtual-gate elements is 0.005 on clean maps (SNR ≥ 10)
+                        bound = 0.005 if k == "vg" and (snr is None or snr >= 10) else OK_BOUNDS[k]
+                        assert v <= bound, (preset, snr, seed, k, v)
         assert not any(verdicts[-4:]), preset  # SNR ≤ 1: never ok
     assert n_ok >= 3  # the verdict is not always false
 

@@ -46,6 +46,8 @@ def run(args: argparse.Namespace) -> int:
         lever_arm=args.lever_arm,
         lever_arm_file=args.lever_arm_file,
         refine=not args.no_refine,
+        bias_mV=args.bias_mV,
+        mode=args.mode,
     )
     res = analyzer(da)
     if args.plot:
@@ -72,12 +74,18 @@ def register(subparsers: Any) -> None:
     p.add_argument("--x", default=None, metavar="GATE", help="gate to put on x (plunger of dot1)")
     p.add_argument("--y", default=None, metavar="GATE", help="gate to put on y (plunger of dot2)")
     p.add_argument("--var", default=None, metavar="NAME", help="measured quantity to read")
-    ref = p.add_mutually_exclusive_group()
+    # several references may be given together: they are compared (disagreement ⇒ quality false)
+    ref = p.add_argument_group("energy references")
     ref.add_argument("--electron-temperature", type=_temperature, default=None, metavar="K",
                      help="electron temperature: lever arms from the thermal line widths")
     ref.add_argument("--lever-arm", type=_lever_arm, default=None, metavar="A11[,A22]",
                      help="known lever arm(s) of the x (and y) gate, eV/V")
     ref.add_argument("--lever-arm-file", default=None, metavar="FILE", help="lever-arm calibration file")
+    ref.add_argument("--bias-mV", type=float, default=None, metavar="MV",
+                     help="source-drain bias of a double-dot transport map: lever arms from the bias triangles")
+    p.add_argument("--mode", choices=("auto", "stability", "diamonds"), default="auto",
+                   help="map kind; 'auto' treats a map whose y axis is named like a bias (bias, sd, vsd) "
+                        "as Coulomb diamonds")
     p.add_argument("--json", action="store_true", help="print the result as one JSON object")
     p.add_argument("--plot", default=None, metavar="OUT.png", help="write a figure of the analysis")
     p.add_argument("--save", default=None, metavar="OUT.nc", help="write the map and all results (NetCDF)")

@@ -43,6 +43,16 @@ class RelocatedFamily:
         Crossing points used.
     residual_V : float
         Robust rms distance of the points from their lines (along the scan axis), V.
+    between_lines_stderr : float
+        Standard error of the common slope from the scatter of the lines' own
+        slopes (inverse-variance mean of per-line slopes; NaN with < 3 lines).
+    bend_V, bend_stderr_V : float
+        Common S-shaped bend of the lines (coefficient of ``u³ − 3u/5``,
+        ``u`` ∈ [−1, 1] along each segment, orthogonal to offset and slope),
+        as the displacement at the segment ends along the scan axis, V, and its
+        standard error. Lines that bend towards the triple points (strong
+        interdot tunnel coupling) bias the common slope; a significant bend
+        says so.
     """
 
     ok: bool
@@ -51,6 +61,9 @@ class RelocatedFamily:
     stderr: float
     n_points: int
     residual_V: float
+    between_lines_stderr: float = float("nan")
+    bend_V: float = float("nan")
+    bend_stderr_V: float = float("nan")
 
 
 def _to_v(idx: np.ndarray | float, axis: np.ndarray) -> np.ndarray:
@@ -227,6 +240,36 @@ def relocate_family(
         sigma = float(np.sqrt(ss / dof))
         sigma = max(sigma, 0.02 * step)
         b_err = sigma / np.sqrt(den)
+        # the lines' own slopes: their scatter is an independent check of b_err
+        b_i, w_i = [], []
+        for (s, c), mk in zip(pts, masks):
+            if mk.sum() >= 5:
+                cm, sm = c[mk].mean(), s[mk].mean()
+                d_i = float(np.sum((c[mk] - cm) ** 2))
+                if d_i > 0:
+                    b_i.append(float(np.sum((c[mk] - cm) * (s[mk] - sm)) / d_i))
+                    w_i.append(d_i / sigma**2)
+        # S-shaped bend shared by the family, orthogonal to each line's offset and slope
+        gg = gr = 0.0
+        for (s, c), mk in zip(pts, masks):
+            if mk.sum() >= 8:
+                cc, ss_ = c[mk], s[mk]
+                half = 0.5 * (cc.max() - cc.min())
+                if half <= 0:
+                    continue
+                u = (cc - 0.5 * (cc.max() + cc.min())) / half
+                basis = np.stack([np.ones_like(u), u], axis=1)
+                g = u**3 - 0.6 * u
+                g = g - basis @ np.linalg.lstsq(basis, g, rcond=None)[0]
+                r = ss_ - ss_.mean() - b * (cc - cc.mean())
+                gg += float(g @ g)
+                gr += float(g @ r)
+        bend, bend_err = (gr / gg * 0.4, sigma / np.sqrt(gg) * 0.4) if gg > 0 else (float("nan"), float("nan"))
+        between = float("nan")
+        if len(b_i) >= 3:
+            bi, wi = np.array(b_i), np.array(w_i)
+            mean_i = float(np.sum(wi * bi) / np.sum(wi))
+            between = float(np.sqrt(np.sum(wi * (bi - mean_i) ** 2) / (bi.size - 1) / np.sum(wi)))
         new: list[tuple[float, float, int] | None] = []
         for ln, (s, c), mk in zip(lines, pts, masks):
             if mk.sum() < 3:
@@ -272,4 +315,5 @@ def relocate_family(
         out.append(replace(ln, x0=float(x0), y0=float(y0), slope=float(slope), slope_stderr=float(slope_err),
                            position_stderr=float(perp), start=start, end=end, n_points=n))
     ok = n_used >= 6 and np.isfinite(b_err)
-    return RelocatedFamily(ok, tuple(out), float(b), float(b_err), n_used, float(sigma))
+    return RelocatedFamily(ok, tuple(out), float(b), float(b_err), n_used, float(sigma), between,
+                           float(bend), float(bend_err))

@@ -36,6 +36,11 @@ def _key_numbers(res: Any) -> str:
         rows.append(f"α11 = {fmt_pm(la[0, 0], le[0, 0], digits=3)}, α22 = {fmt_pm(la[1, 1], le[1, 1], digits=3)} eV/V")
         rows.append(f"E_C = {fmt_pm(ec['dot1'], ece['dot1'], digits=3)}, {fmt_pm(ec['dot2'], ece['dot2'], digits=3)} meV")
         rows.append(f"scale from: {res.scale.reference}")
+        tc = getattr(res, "tunnel", None)
+        if tc is not None and tc:
+            rows.append(f"t = {fmt_pm(tc.value_ueV, tc.error_ueV, digits=3)} µeV (gap 2t)")
+        elif tc is not None and np.isfinite(tc.upper_limit_ueV):
+            rows.append(f"t < {tc.upper_limit_ueV:.3g} µeV (2σ)")
     else:
         rows.append("no energy reference")
     rows.append("quality: " + ("ok" if res.quality.ok else "DOUBTFUL"))

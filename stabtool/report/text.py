@@ -57,6 +57,14 @@ def summary_text(res: Any) -> str:
         )
     else:
         lines.append("lever arms, charging energies: n/a (no energy reference; give --electron-temperature or --lever-arm)")
+    tc = getattr(res, "tunnel", None)
+    if tc is not None:
+        if tc:
+            lines.append(f"interdot tunnel coupling t (gap 2t): {fmt_pm(tc.value_ueV, tc.error_ueV, unit='µeV')}")
+        elif np.isfinite(tc.upper_limit_ueV):
+            lines.append(f"interdot tunnel coupling t (gap 2t): < {tc.upper_limit_ueV:.3g} µeV (2σ, not resolved)")
+        else:
+            lines.append("interdot tunnel coupling: not measured")
     cs = res.charge_states
     if cs is not None:
         kind = ["absolute" if a else "relative" for a in cs.absolute]

@@ -1,0 +1,85 @@
+"""Interdot tunnel coupling inside ``analyze`` (stabtool.fit.tunnel).
+
+Truth: stabtool.simulate (tunnel-coupled two-level occupations, gap 2t,
+Ω = √(ε² + 4t²); DiCarlo et al., Phys. Rev. Lett. 92, 226801 (2004), formula
+from memory). Bound from the specification: t within 10 %.
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pytest
+
+from stabtool.analysis import Analyzer
+from stabtool.physics.polarisation import polarisation_fwhm_eV
+from stabtool.simulate import quick_double_dot
+
+
+def _analyse(*, t_ueV, snr, seed, temperature_K=0.1):
+    sm = quick_double_dot("gaas-double", snr=snr, rng=seed, temperature_K=temperature_K,
+                          tunnel_coupling_ueV=t_ueV, shape=(160, 160))
+    a = np.array(sm.truth.lever_arm)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        res = Analyzer(electron_temperature_K=temperature_K, lever_arm=(a[0, 0], a[1, 1]), refine=False)(sm.data)
+    return sm, res.to_json()
+
+
+@pytest.mark.regression
+def test_resolved_tunnel_coupling_within_10_percent():
+    sm, j = _analyse(t_ueV=60.0, snr=None, seed=0)
+    a = np.array(sm.truth.lever_arm)
+    step = abs(float(np.diff(sm.data[sm.data.dims[-1]].values)[0]))
+    # the polarisation line spans several pixels along the detuning gradient
+    fwhm_V = polarisation_fwhm_eV(60e-6, 0.1) / np.hypot(*(a[0] - a[1]))
+    assert fwhm_V / step > 3
+    assert j["tunnel_coupling_ueV"] == pytest.approx(60.0, rel=0.10)
+    assert j["tunnel_coupling_ueV_error"] > 0
+    assert j["tunnel_coupling_upper_limit_ueV"] is None
+
+
+@pytest.mark.regression
+def test_thermally_broadened_interdot_line_gives_an_upper_limit_not_a_value():
+    """t = 3 µeV at 100 mK (k_B T = 8.6 µeV, from scipy.constants): not resolvable."""
+    _, j = _analyse(t_ueV=3.0, snr=10.0, seed=1)
+    if j["tunnel_coupling_ueV"] is not None:  # a value is only acceptable if it is right
+        assert j["tunnel_coupling_ueV"] == pytest.approx(3.0, rel=0.10)
+    else:
+        assert j["tunnel_coupling_upper_limit_ueV"] > 3.0
+        assert any("not resolved" in w for w in j["quality"]["warnings"])
+
+
+def test_no_temperature_means_no_tunnel_coupling():
+    sm = quick_double_dot("gaas-double", snr=None, rng=0, shape=(96, 96))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        j = Analyzer(lever_arm=0.07, refine=False)(sm.data).to_json()
+    assert j["tunnel_coupling_ueV"] is None and j["tunnel_coupling_details"] is None
+
+
+@pytest.mark.regression
+def test_strong_tunnel_coupling_that_biases_the_virtual_gates_turns_quality_false():
+    """t = 40 µeV, E_Cm = 0.32 meV: lines repelled near the triple points bias M by ≈ 0.009 (> 0.005)."""
+    sm = quick_double_dot("gaas-double", snr=None, rng=0, temperature_K=0.1, tunnel_coupling_ueV=40.0,
+                          shape=(160, 160))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        j = Analyzer(refine=False)(sm.data).to_json()
+    err = np.max(np.abs(np.array(j["virtual_gate_matrix"]) - np.array(sm.truth.virtual_gate_matrix)))
+    ratio = 40e-3 / sm.truth.charging_energy_meV["mutual"]
+    assert j["tunnel_to_mutual_ratio"]["value"] == pytest.approx(ratio, rel=0.25)
+    if err > 0.005:
+        assert not j["quality"]["ok"]
+        assert any("broad interdot lines" in w for w in j["quality"]["warnings"])
+
+
+@pytest.mark.regression
+def test_sharp_interdot_lines_raise_no_coupling_warning():
+    sm = quick_double_dot("ge-double", snr=None, rng=1)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        j = Analyzer(refine=False)(sm.data).to_json()
+    assert not any("broad interdot lines" in w for w in j["quality"]["warnings"])
+    assert j["tunnel_to_mutual_ratio"]["value"] is None
