@@ -26,6 +26,7 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
+from ..io.atomic import atomic_savefig
 from ..quality import Quality
 from .diamonds import CoulombDiamondFit, fit_coulomb_diamonds
 
@@ -143,18 +144,10 @@ class DiamondAnalysisResult:
         ax.set_xlabel(f"{self.x_gate} (mV)")
         ax.set_ylabel(f"{self.y_gate} (mV)")
         ax.set_title(self.summary().splitlines()[1] if self.fit else "no diamond fitted")
-        import tempfile
-
-        folder = os.path.dirname(os.path.abspath(os.fspath(path)))
-        fd, tmp = tempfile.mkstemp(suffix=".png", dir=folder)
-        os.close(fd)
         try:
-            fig.savefig(tmp, dpi=110, format="png")
-            os.replace(tmp, path)
+            atomic_savefig(fig, path, dpi=110)
         finally:
             plt.close(fig)
-            if os.path.exists(tmp):
-                os.remove(tmp)
 
 
 def analyze_diamond_map(da: xr.DataArray) -> DiamondAnalysisResult:

@@ -3,11 +3,11 @@
 from __future__ import annotations
 
 import os
-import tempfile
 from typing import Any
 
 import numpy as np
 
+from ..io.atomic import atomic_savefig
 from .text import fmt_pm
 
 __all__ = ["FAMILY_COLOURS", "plot_result", "save_plot"]
@@ -117,13 +117,7 @@ def save_plot(res: Any, path: str | os.PathLike[str], **kwargs: Any) -> None:
 
     path = os.fspath(path)
     fig = plot_result(res, **kwargs)
-    folder = os.path.dirname(os.path.abspath(path))
-    fd, tmp = tempfile.mkstemp(suffix=".png", dir=folder)
-    os.close(fd)
     try:
-        fig.savefig(tmp, format="png")
-        os.replace(tmp, path)
+        atomic_savefig(fig, path)
     finally:
         plt.close(fig)
-        if os.path.exists(tmp):
-            os.remove(tmp)
