@@ -28,7 +28,7 @@ from .errors import InputError, QualityWarning
 from .fit.charge_states import ChargeStates, label_charge_states
 from .fit.model import DiagramFit, fit_diagram
 from .lines.result import LineDetection
-from .mapdata import validate_map
+from .mapdata import validate_map, x_gate, y_gate
 from .physics import FERMI_FWHM_FACTOR, lever_arm_from_width
 from .quality import Quality
 
@@ -137,11 +137,11 @@ class AnalysisResult:
     # ----------------------------------------------------------------- numbers
     @property
     def x_gate(self) -> str:
-        return str(self.data.dims[-1])
+        return x_gate(self.data)
 
     @property
     def y_gate(self) -> str:
-        return str(self.data.dims[0])
+        return y_gate(self.data)
 
     @property
     def lever_arm(self) -> np.ndarray:

@@ -27,6 +27,7 @@ import numpy as np
 import xarray as xr
 
 from ..io.atomic import atomic_savefig
+from ..mapdata import x_gate, y_gate
 from ..quality import Quality
 from .diamonds import CoulombDiamondFit, fit_coulomb_diamonds
 
@@ -58,11 +59,11 @@ class DiamondAnalysisResult:
 
     @property
     def x_gate(self) -> str:
-        return str(self.data.dims[-1])
+        return x_gate(self.data)
 
     @property
     def y_gate(self) -> str:
-        return str(self.data.dims[0])
+        return y_gate(self.data)
 
     def to_json(self) -> dict:
         f = self.fit
