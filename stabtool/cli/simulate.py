@@ -33,6 +33,22 @@ def _fixed(items: list[str] | None) -> dict[str, float]:
     return out
 
 
+def _direction(text: str | None, flag: str) -> dict[str, float] | None:
+    """``"P1=1,P2=-0.3"`` → {"P1": 1.0, "P2": -0.3}."""
+    if text is None:
+        return None
+    out: dict[str, float] = {}
+    for item in text.split(","):
+        if "=" not in item:
+            raise InputError(flag, f"expected GATE=COEFF[,GATE=COEFF...], got {text!r}")
+        gate, value = item.split("=", 1)
+        try:
+            out[gate.strip()] = float(value)
+        except ValueError:
+            raise InputError(flag, f"{value!r} in {text!r} is not a number") from None
+    return out
+
+
 def run(args: argparse.Namespace) -> int:
     """Build the device, render, write; return 0."""
     from ..io import save_map
@@ -57,14 +73,20 @@ def run(args: argparse.Namespace) -> int:
         default_x, default_y, temperature = inf.x_gate, inf.y_gate, inf.temperature_K
     if args.temperature is not None:
         temperature = args.temperature
-    xg = args.x or default_x
-    yg = args.y or default_y
+    x_dir = _direction(getattr(args, "x_virtual", None), "--x-virtual")
+    y_dir = _direction(getattr(args, "y_virtual", None), "--y-virtual")
+    xg = args.x or ("vx" if x_dir else default_x)
+    yg = args.y or ("vy" if y_dir else default_y)
     fixed = _fixed(args.fix)
+    window_dev = dev
+    virtual = {n: d for n, d in ((xg, x_dir), (yg, y_dir)) if d is not None}
+    if virtual:
+        window_dev = dev.with_virtual_gates(virtual)
     scale = 1e-3 if args.units == "mV" else 1.0
     if args.x_range is None or args.y_range is None:
         if dev.n_dots < 2:
             raise InputError("--x-range", "a single-dot device needs explicit --x-range and --y-range")
-        auto_x, auto_y = double_dot_window(dev, x_gate=xg, y_gate=yg, electrons=args.electrons, fixed_V=fixed)
+        auto_x, auto_y = double_dot_window(window_dev, x_gate=xg, y_gate=yg, electrons=args.electrons, fixed_V=fixed)
     xr_ = tuple(v * scale for v in args.x_range) if args.x_range else auto_x
     yr_ = tuple(v * scale for v in args.y_range) if args.y_range else auto_y
     art = Artefacts(
@@ -93,6 +115,8 @@ def run(args: argparse.Namespace) -> int:
         artefacts=art,
         fixed_V=fixed,
         bias_mV=args.bias,
+        x_direction=x_dir,
+        y_direction=y_dir,
         rng=args.seed,
     )
     save_map(sm.data, args.out)
@@ -134,6 +158,9 @@ def register(subparsers: Any) -> None:
     p.add_argument("--json", action="store_true", help="print the truth as JSON on stdout")
     p.add_argument("--x", metavar="GATE", help="gate on x (fast axis)")
     p.add_argument("--y", metavar="GATE", help="gate on y (slow axis)")
+    p.add_argument("--x-virtual", metavar="GATE=C,...", help="sweep a virtual gate on x: physical gates and "
+                   "coefficients, e.g. P1=1,P2=-0.3 (--x names it; default vx)")
+    p.add_argument("--y-virtual", metavar="GATE=C,...", help="sweep a virtual gate on y (--y names it; default vy)")
     p.add_argument("--x-range", nargs=2, type=float, metavar=("START", "STOP"), help="x sweep range")
     p.add_argument("--y-range", nargs=2, type=float, metavar=("START", "STOP"), help="y sweep range")
     p.add_argument("--units", choices=("V", "mV"), default="V", help="unit of the ranges (default V)")

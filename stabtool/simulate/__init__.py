@@ -15,6 +15,7 @@ occupations, sensor / charge / transport read-out) → noise and artefacts
 
 from . import presets
 from .artefacts import Artefacts
+from .cells import PlaneCells, plane_cells, rasterize_cells
 from .device import Device
 from .diamonds import DiamondMap, DiamondTruth, coulomb_diamonds
 from .ground_state import brute_force_ground_state, ground_state, relevant_vectors
@@ -30,6 +31,7 @@ __all__ = [
     "DiamondMap",
     "DiamondTruth",
     "LineSegment",
+    "PlaneCells",
     "SensorModel",
     "SyntheticMap",
     "Truth",
@@ -39,8 +41,10 @@ __all__ = [
     "double_dot_window",
     "ground_state",
     "occupations",
+    "plane_cells",
     "presets",
     "quick_double_dot",
+    "rasterize_cells",
     "relevant_vectors",
     "simulate_map",
 ]

@@ -21,7 +21,7 @@ from __future__ import annotations
 import json
 import os
 import tomllib
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Mapping, Sequence
 
@@ -73,6 +73,13 @@ class Device:
     tunnel_pairs : sequence of (i, j), optional
         Dot pairs (indices) with an interdot tunnel coupling; default: the
         neighbours in dot order (i, i+1).
+    virtual_gates : mapping, optional
+        ``{name: {physical gate: coefficient}}``: gate columns that are
+        linear combinations of physical gates (a virtual gate swept in a
+        lab: stepping it by ΔV steps each physical gate g by
+        ``coefficient_g·ΔV``). Their ``cdg_aF`` column must equal the same
+        combination of the physical columns (it may be negative); build them
+        with :meth:`with_virtual_gates`.
 
     Notes
     -----
@@ -89,6 +96,7 @@ class Device:
     name: str = "device"
     description: str = ""
     tunnel_pairs: Sequence[Sequence[int]] | None = None
+    virtual_gates: Mapping[str, Mapping[str, float]] | None = None
     _source: str | None = field(default=None, repr=False, compare=False)
 
     def __post_init__(self) -> None:
@@ -109,6 +117,9 @@ class Device:
         if len(cdd) != n or len(cdd[0]) != n:
             raise InputError(src, f"cdd_aF must be {n}x{n} (one row per dot), got {len(cdd)}x{len(cdd[0])}")
         a_cdg, a_cdd = np.array(cdg), np.array(cdd)
+        virt = self._check_virtual(gates, a_cdg, src)
+        phys = np.array([g not in virt for g in gates], bool)
+        a_cdg = a_cdg[:, phys]
         if np.any(a_cdg < 0):
             raise InputError(src, "cdg_aF holds negative capacitances; every dot-gate capacitance must be >= 0")
         if not np.allclose(a_cdd, a_cdd.T, rtol=1e-9, atol=1e-12):
@@ -147,6 +158,94 @@ class Device:
         object.__setattr__(self, "tunnel_pairs", pairs)
         object.__setattr__(self, "name", str(self.name))
         object.__setattr__(self, "description", str(self.description))
+        object.__setattr__(self, "virtual_gates", virt)
+
+    def _check_virtual(self, gates: tuple[str, ...], cdg: np.ndarray, src: str | None) -> dict[str, dict[str, float]]:
+        """Validate ``virtual_gates`` against the gate list and the capacitance columns."""
+        if not self.virtual_gates:
+            return {}
+        if not isinstance(self.virtual_gates, Mapping):
+            raise InputError(src, "virtual_gates must map a gate name to {physical gate: coefficient}")
+        virt: dict[str, dict[str, float]] = {}
+        for name, comb in self.virtual_gates.items():
+            name = str(name)
+            if name not in gates:
+                raise InputError(src, f"virtual gate {name!r} is not one of gate_names {gates}")
+            if not isinstance(comb, Mapping) or not comb:
+                raise InputError(src, f"virtual gate {name!r} needs {{physical gate: coefficient}}")
+            try:
+                virt[name] = {str(g): float(c) for g, c in comb.items()}
+            except (TypeError, ValueError):
+                raise InputError(src, f"virtual gate {name!r} has a non-numeric coefficient") from None
+        for name, comb in virt.items():
+            for g, c in comb.items():
+                if g not in gates or g in virt:
+                    raise InputError(src, f"virtual gate {name!r}: {g!r} is not a physical gate of the device")
+                if not np.isfinite(c):
+                    raise InputError(src, f"virtual gate {name!r}: coefficient of {g!r} is not finite")
+            col = sum(c * cdg[:, gates.index(g)] for g, c in comb.items())
+            own = cdg[:, gates.index(name)]
+            if not np.allclose(own, col, rtol=1e-9, atol=1e-12 * (1.0 + np.abs(col).max())):
+                raise InputError(
+                    src, f"the cdg_aF column of virtual gate {name!r} is not the combination {comb} of the physical columns"
+                )
+        return virt
+
+    @property
+    def physical_gate_names(self) -> tuple[str, ...]:
+        """Gate names that are not virtual combinations."""
+        virt = self.virtual_gates or {}
+        return tuple(g for g in self.gate_names if g not in virt)
+
+    def gate_direction(self, gate: str) -> np.ndarray:
+        """Physical voltage step per volt of ``gate``, shape (n_gates,) (a unit vector for a physical gate)."""
+        d = np.zeros(self.n_gates)
+        comb = (self.virtual_gates or {}).get(gate)
+        if comb is None:
+            d[self.gate_index(gate)] = 1.0
+        else:
+            for g, c in comb.items():
+                d[self.gate_index(g)] = c
+        return d
+
+    def with_virtual_gates(self, directions: Mapping[str, Mapping[str, float]]) -> "Device":
+        """A copy with extra virtual gate columns ``{name: {physical gate: coefficient}}``.
+
+        The column of a virtual gate is ``Σ_g c_g Cdg[:, g]``, so sweeping it
+        with every other gate fixed is the same as stepping the physical
+        gates along the direction ``c`` (the lever arms, slopes and
+        virtual-gate matrix of the truth follow for that direction).
+        """
+        if not isinstance(directions, Mapping) or not directions:
+            raise InputError("virtual_gates", "expected {name: {physical gate: coefficient}}")
+        cols = []
+        names = []
+        phys = set(self.physical_gate_names)
+        for name, comb in directions.items():
+            name = str(name)
+            if name in self.gate_names:
+                raise InputError("virtual_gates", f"{name!r} is already a gate of the device; choose another name")
+            if not isinstance(comb, Mapping) or not comb:
+                raise InputError("virtual_gates", f"virtual gate {name!r} needs {{physical gate: coefficient}}")
+            for g in comb:
+                if g not in phys:
+                    raise InputError("virtual_gates", f"virtual gate {name!r}: {g!r} is not a physical gate of the device")
+            cols.append(sum(float(c) * self.cdg[:, self.gate_index(g)] for g, c in comb.items()))
+            names.append(name)
+        cdg = np.concatenate([self.cdg, np.stack(cols, axis=1)], axis=1)
+        virt = dict(self.virtual_gates or {})
+        virt.update({n: {str(g): float(c) for g, c in directions[n].items()} for n in names})
+        return Device(
+            cdg_aF=cdg,
+            cdd_aF=self.cdd,
+            gate_names=tuple(self.gate_names) + tuple(names),
+            dot_names=self.dot_names,
+            offset_charge_e=self.offset_charge_e,
+            name=self.name,
+            description=self.description,
+            tunnel_pairs=self.tunnel_pairs,
+            virtual_gates=virt,
+        )
 
     # ------------------------------------------------------------------ arrays
     @property
@@ -269,6 +368,7 @@ class Device:
             "cdd_aF": [list(r) for r in self.cdd_aF],
             "offset_charge_e": list(self.offset_charge_e),  # type: ignore[arg-type]
             "tunnel_pairs": [list(p) for p in self.tunnel_pairs],  # type: ignore[union-attr]
+            **({"virtual_gates": {k: dict(v) for k, v in self.virtual_gates.items()}} if self.virtual_gates else {}),
         }
 
     @classmethod
@@ -282,7 +382,7 @@ class Device:
             raise InputError(source, "a device record must be a table/object")
         known = {
             "name", "description", "gate_names", "dot_names", "cdg_aF", "cdd_aF", "offset_charge_e",
-            "tunnel_pairs", "lever_arm", "charging_energy_meV", "mutual_meV",
+            "tunnel_pairs", "lever_arm", "charging_energy_meV", "mutual_meV", "virtual_gates",
         }
         unknown = sorted(set(d) - known)
         if unknown:
@@ -298,16 +398,19 @@ class Device:
             description=d.get("description", ""),
             tunnel_pairs=d.get("tunnel_pairs"),
         )
+        if d.get("virtual_gates"):
+            common["virtual_gates"] = d["virtual_gates"]
         try:
             if "cdg_aF" in d or "cdd_aF" in d:
                 if "cdg_aF" not in d or "cdd_aF" not in d:
                     raise InputError(source, "a device record needs both 'cdg_aF' and 'cdd_aF'")
                 return cls(cdg_aF=d["cdg_aF"], cdd_aF=d["cdd_aF"], _source=source, **common)
             if "lever_arm" in d and "charging_energy_meV" in d:
+                virt = common.pop("virtual_gates", None)
                 dev = cls.from_lever_arms(
                     d["lever_arm"], d["charging_energy_meV"], mutual_meV=d.get("mutual_meV"), **common
                 )
-                return dev
+                return replace(dev, virtual_gates=virt) if virt else dev
         except InputError as exc:
             if exc.source is None or exc.source != source:
                 raise InputError(source, exc.fault if exc.source is None else str(exc)) from None

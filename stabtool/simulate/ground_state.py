@@ -29,7 +29,10 @@ Algorithm
    on a straight line, so after solving the first column the state changes
    are located exactly by an event scan over the Voronoi-relevant moves
    (no search at interior pixels); the certificate of step 3 is then run on
-   the result as a safety net.
+   the result as a safety net. For three or more dots on linear axes the
+   map is instead built from its exact cells (convex polygons, one per
+   state; :mod:`.cells`), which costs per cell rather than per row and
+   event; the row scan is the fall-back.
 
 Without the ``N ≥ 0`` constraint the result is therefore provably exact at
 every pixel. Where the constraint is active (near full depletion) the same
@@ -106,6 +109,30 @@ def ci_energy(n: np.ndarray, n0: np.ndarray, ec_eV: np.ndarray) -> np.ndarray:
     """
     d = np.asarray(n, float) - np.asarray(n0, float)
     return 0.5 * np.einsum("...i,ij,...j->...", d, np.asarray(ec_eV, float), d)
+
+
+def row_min(a: np.ndarray) -> np.ndarray:
+    """``a.min(axis=1)``; for few columns, column by column (much faster in NumPy)."""
+    if a.shape[1] > 16:  # wide rows: the contiguous reduction wins
+        return a.min(axis=1)
+    out = a[:, 0].copy()
+    for k in range(1, a.shape[1]):
+        np.minimum(out, a[:, k], out=out)
+    return out
+
+
+def state_keys(n: np.ndarray) -> np.ndarray:
+    """One int64 key per state for states stacked along the last axis (mixed radix, states ≥ 0 or not)."""
+    nd = n.shape[-1]
+    cols = [n[..., i] for i in range(nd)]
+    lo = [int(c.min()) for c in cols]
+    span = [int(c.max()) - l + 1 for c, l in zip(cols, lo)]
+    key = np.zeros(n.shape[:-1], np.int64)
+    radix = 1
+    for c, l, sp in zip(cols, lo, span):
+        key += (c - l) * radix
+        radix *= sp
+    return key
 
 
 def basic_moves(n_dots: int) -> np.ndarray:
@@ -200,6 +227,18 @@ def excitation_energies(g: np.ndarray, n0: np.ndarray, ec: np.ndarray, moves: np
     moves : ndarray, shape (K, n), int
     """
     p, nd = g.shape
+    if moves.shape[0] > 24:
+        # many moves (long arrays): one BLAS product is cheaper than column loops
+        mf = moves.astype(float)
+        du = (g - n0) @ (ec @ mf.T)
+        du += 0.5 * np.einsum("ki,ij,kj->k", mf, ec, mf)
+        for i in range(nd):
+            neg = np.flatnonzero(moves[:, i] < 0)
+            for t in np.unique(-moves[neg, i]):  # N_i below t cannot take these moves
+                rows = np.flatnonzero(g[:, i] < t)
+                if rows.size:
+                    du[np.ix_(rows, neg[-moves[neg, i] == t])] = np.inf
+        return du
     grad = np.empty((p, nd))
     diff = g - n0
     for i in range(nd):

@@ -20,6 +20,11 @@ the thermal polarisation ``P(ε) = ½[1 + (ε/Ω) tanh(Ω/2k_BT)]``
 candidate states is diagonalised and the thermal density matrix gives the
 occupations; elsewhere the Boltzmann average is used.
 
+Only pixels and states within ``averaging_cut`` = 30 k_BT + 40 t of the
+ground state are averaged (a state above it weighs < e⁻³⁰ ≈ 1e−13); the
+pixels are found by block subdivision (:func:`near_transition_mask`), so the
+cost follows the length of the transition lines, not the area of the map.
+
 References
 ----------
 L. DiCarlo et al., "Differential charge sensing and charge delocalization in
@@ -33,11 +38,133 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .ground_state import basic_moves, excitation_energies
+from .ground_state import basic_moves, excitation_energies, row_min
 
-__all__ = ["candidate_moves", "Occupations", "occupations"]
+__all__ = ["candidate_moves", "Occupations", "occupations", "averaging_cut", "near_transition_mask"]
 
 _N_QUANTUM = 8
+
+
+def averaging_cut(kT_eV: float, tunnel_eV: float = 0.0) -> float:
+    """Excitation energy (eV) above which a pixel needs no averaging: ``30 k_BT + 40 t``.
+
+    ``exp(−30) ≈ 1e−13`` of a charge is below any read-out resolution.
+    """
+    return 30.0 * kT_eV + 40.0 * tunnel_eV
+
+
+def near_transition_mask(
+    n0: np.ndarray,
+    ground: np.ndarray,
+    ec_eV: np.ndarray,
+    *,
+    cut_eV: float,
+    block: int = 16,
+    finest: int = 2,
+) -> np.ndarray:
+    """Pixels of a plane sweep that lie within ``cut_eV`` of a transition.
+
+    Parameters
+    ----------
+    n0 : ndarray, shape (ny, nx, n_dots)
+        Induced charges; must be affine in the pixel indices (a sweep of two
+        gates on linear axes).
+    ground : ndarray, shape (ny, nx, n_dots), int
+        Exact ground states.
+    ec_eV : ndarray, shape (n_dots, n_dots)
+    cut_eV : float
+        See :func:`averaging_cut`.
+    block : int
+        Size of the first blocks in pixels (halved at each level).
+    finest : int
+        Blocks are split down to this size. With 2 (default) the pixels of
+        the last undecided blocks are tested one by one and the mask is
+        exact; with a larger value those blocks are returned whole (a
+        superset, for a caller that tests its pixels anyway).
+
+    Returns
+    -------
+    ndarray, shape (ny, nx), bool
+        True where some candidate excitation ``U(G + d) − U(G)`` (d a move
+        of :func:`candidate_moves`) is below ``cut_eV``, i.e. where the
+        thermal (and tunnel) average is needed: exactly those pixels for
+        ``finest=2``, a superset otherwise; never fewer.
+
+    Notes
+    -----
+    Block subdivision: a rectangular block whose four corners share the
+    ground state ``G`` holds ``G`` at every pixel. Proof: the set of gate
+    voltages where ``G`` is the ground state, ``{V : U(G, V) ≤ U(N', V) for
+    all N' ≥ 0}``, is an intersection of half-spaces because
+    ``U(G, V) − U(N', V)`` is affine in ``V``; it is convex, and the pixels
+    of the block lie in the convex hull of its corners (the sweep is affine
+    in the pixel indices). For fixed ``G`` the excitation energy
+    ``ΔU_d = U(G + d) − U(G)`` of each move is affine too (``+∞`` when
+    ``G + d`` has a negative entry), so ``min_d ΔU_d`` is concave and its
+    minimum over the block is reached at a corner. Hence a block whose
+    corners share ``G`` and have ``min_d ΔU_d ≥ cut`` needs no averaging
+    anywhere. Other blocks are split in four down to 2 × 2 pixels, whose
+    pixels are tested one by one. The cost scales with the length of the
+    transition lines times the cut width, not with the area of the map.
+    """
+    ny, nx, nd = ground.shape
+    ec = np.asarray(ec_eV, float)
+    n0f = np.asarray(n0, float).reshape(-1, nd)
+    gf = ground.reshape(-1, nd)
+    moves = basic_moves(nd)
+    dmin = np.full(ny * nx, np.nan)
+
+    want = np.zeros(ny * nx, bool)
+
+    def far_at(flat_idx: np.ndarray) -> np.ndarray:
+        want[flat_idx] = True
+        want[~np.isnan(dmin)] = False
+        todo = np.flatnonzero(want)
+        if todo.size:
+            dmin[todo] = row_min(excitation_energies(gf[todo], n0f[todo], ec, moves))
+            want[todo] = False
+        return dmin[flat_idx] >= cut_eV
+
+    cover = np.zeros((ny + 1, nx + 1), np.int64)  # 2-D difference array of the far blocks
+    pixel_far = None
+    b = max(2, int(block))
+    r0, c0 = np.meshgrid(np.arange(0, max(ny - 1, 1), b), np.arange(0, max(nx - 1, 1), b), indexing="ij")
+    r0, c0 = r0.ravel(), c0.ravel()
+    while r0.size:
+        r1, c1 = np.minimum(r0 + b, ny - 1), np.minimum(c0 + b, nx - 1)
+        if b <= max(2, finest) and finest > 2:
+            break  # remaining blocks stay "near" (superset)
+        if b <= 2:
+            # last level: every pixel of the remaining blocks on its own
+            dr, dc = np.meshgrid(np.arange(3), np.arange(3), indexing="ij")
+            rr = np.minimum(r0[:, None] + dr.ravel()[None, :], r1[:, None]).ravel()
+            cc = np.minimum(c0[:, None] + dc.ravel()[None, :], c1[:, None]).ravel()
+            idx = rr * nx + cc
+            far_px = idx[far_at(idx)]
+            pixel_far = np.zeros(ny * nx, bool)
+            pixel_far[far_px] = True
+            break
+        corners = np.stack([r0 * nx + c0, r0 * nx + c1, r1 * nx + c0, r1 * nx + c1], axis=1)
+        far = far_at(corners.ravel()).reshape(-1, 4)
+        gc = gf[corners]  # (B, 4, nd)
+        same = np.all(gc == gc[:, :1], axis=(1, 2))
+        done = same & far.all(axis=1)
+        for rs, cs, sign in ((r0, c0, 1), (r0, c1 + 1, -1), (r1 + 1, c0, -1), (r1 + 1, c1 + 1, 1)):
+            np.add.at(cover, (rs[done], cs[done]), sign)
+        r0, c0, r1, c1 = r0[~done], c0[~done], r1[~done], c1[~done]
+        h = b // 2
+        # split in four (sub-blocks that start beyond the block's far edge are dropped)
+        sub_r = np.concatenate([r0, r0 + h, r0, r0 + h])
+        sub_c = np.concatenate([c0, c0, c0 + h, c0 + h])
+        lim_r = np.concatenate([r1, r1, r1, r1])
+        lim_c = np.concatenate([c1, c1, c1, c1])
+        ok = (sub_r < lim_r) & (sub_c < lim_c)
+        r0, c0 = sub_r[ok], sub_c[ok]
+        b = h
+    covered = np.cumsum(np.cumsum(cover, axis=0), axis=1)[:ny, :nx] > 0
+    if pixel_far is not None:
+        covered |= pixel_far.reshape(ny, nx)
+    return ~covered
 
 
 def candidate_moves(n_dots: int) -> np.ndarray:
@@ -69,6 +196,7 @@ def occupations(
     kT_eV: float,
     tunnel_eV: float = 0.0,
     tunnel_pairs: tuple[tuple[int, int], ...] = (),
+    near: np.ndarray | None = None,
 ) -> Occupations:
     """Mean occupations at temperature ``kT_eV`` with interdot tunnel coupling ``tunnel_eV``.
 
@@ -85,6 +213,10 @@ def occupations(
         Interdot tunnel coupling t, eV (``Ω = √(ε² + 4t²)``).
     tunnel_pairs : tuple of (i, j)
         Dot pairs that are tunnel coupled.
+    near : ndarray of bool, shape (...), optional
+        Pixels that may lie within :func:`averaging_cut` of a transition
+        (:func:`near_transition_mask`); the others are taken as proven
+        far and keep their ground state. Default: every pixel is tested.
     """
     shape = np.shape(n0)
     nd = shape[-1]
@@ -97,15 +229,34 @@ def occupations(
     mf = moves.astype(float)
     # only pixels with an excited state within 30 kT (+ 40 t) need averaging:
     # exp(-30) ≈ 1e-13 of a charge is below any read-out resolution
-    cut = 30.0 * kT_eV + 40.0 * tunnel_eV
-    du_all = excitation_energies(g, flat, ec, moves[1:])
-    near = np.nonzero(du_all.min(axis=1) < cut)[0]
-    du = np.zeros((near.size, moves.shape[0]))
-    du[:, 1:] = du_all[near]
-    gn = g[near]
+    cut = averaging_cut(kT_eV, tunnel_eV)
+    if near is None:
+        cand = np.arange(g.shape[0])
+    else:
+        cand = np.flatnonzero(np.asarray(near, bool).reshape(-1))
+    du_all = excitation_energies(g[cand], flat[cand], ec, moves[1:])
+    keep = row_min(du_all) < cut
+    near = cand[keep]
     mean = g.astype(float)
     if near.size == 0:
         return Occupations(mean=mean.reshape(shape), ground=g.reshape(shape))
+    if tunnel_eV <= 0 or not tunnel_pairs:
+        # classical Boltzmann average over the moves below the cut (the others
+        # weigh < exp(−30) each): ⟨N⟩ = G + Σ_d w_d d / (1 + Σ_d w_d)
+        sub = du_all if keep.all() else du_all[keep]
+        pix, mv = np.nonzero(sub < cut)
+        w = np.exp(sub[pix, mv] * (-1.0 / kT_eV))
+        z = np.bincount(pix, weights=w, minlength=near.size) + 1.0
+        out = g[near].astype(float)
+        for i in range(nd):
+            di = moves[1:, i].astype(float)[mv]
+            nz = di != 0
+            out[:, i] += np.bincount(pix[nz], weights=w[nz] * di[nz], minlength=near.size) / z
+        mean[near] = out
+        return Occupations(mean=mean.reshape(shape), ground=g.reshape(shape))
+    du = np.zeros((near.size, moves.shape[0]))
+    du[:, 1:] = du_all[keep]
+    gn = g[near]
     quantum = np.zeros(near.size, bool)
     if tunnel_eV > 0 and tunnel_pairs:
         coupled = np.zeros((moves.shape[0], moves.shape[0]), bool)
@@ -123,9 +274,17 @@ def occupations(
             )
     classical = ~quantum
     if kT_eV > 0 and classical.any():
-        w = np.exp(du[classical] * (-1.0 / kT_eV))  # du ≥ 0 up to rounding; exp(-inf) = 0
-        w /= w.sum(axis=1, keepdims=True)
-        mean[near[classical]] = gn[classical] + w @ mf
+        # Boltzmann weights relative to the ground state (weight 1, move 0):
+        # ⟨N⟩ = G + Σ_d w_d d / (1 + Σ_d w_d); du ≥ 0 up to rounding, exp(-inf) = 0
+        w = du[:, 1:] if classical.all() else du[classical][:, 1:]
+        w *= -1.0 / kT_eV
+        np.exp(w, out=w)
+        z = w.sum(axis=1)
+        z += 1.0
+        shift = w @ mf[1:]
+        shift /= z[:, None]
+        shift += gn if classical.all() else gn[classical]
+        mean[near if classical.all() else near[classical]] = shift
     return Occupations(mean=mean.reshape(shape), ground=g.reshape(shape))
 
 

@@ -31,9 +31,10 @@ from ..errors import InputError
 from ..mapdata import make_map
 from ..physics.constants import E_AC, KB_EV_PER_K
 from .artefacts import Artefacts, pink_noise, telegraph_series
+from .cells import ground_state_plane
 from .device import Device
-from .ground_state import _descend, basic_moves, ground_state_from_induced, ground_state_rows
-from .occupation import occupations
+from .ground_state import _descend, basic_moves, ground_state_from_induced, ground_state_rows, state_keys
+from .occupation import averaging_cut, near_transition_mask, occupations
 from .sensor import SensorModel, sensor_signal
 from .transport import double_dot_current
 from .truth import TRUTH_ATTR, Truth, double_dot_truth, line_segments, select_dots
@@ -125,13 +126,32 @@ def charge_state_map(
     return _ground_map(device, x, y, x_gate, y_gate, fixed)
 
 
+def _uniform(a: np.ndarray) -> bool:
+    if a.size < 3:
+        return True
+    d = np.diff(a)
+    return bool(np.allclose(d, d[0], rtol=1e-9, atol=1e-12 * (np.abs(a).max() + 1e-300)))
+
+
 def _ground_map(device: Device, x: np.ndarray, y: np.ndarray, x_gate: str, y_gate: str, fixed: Mapping[str, float]) -> np.ndarray:
+    """Exact ground states of the sweep, shape (len(y), len(x), n_dots).
+
+    Two dots: row event scan with the six relevant moves (exact by itself).
+    More dots on linear axes: the exact cells of the plane
+    (:mod:`.cells`), cost set by the number of cells; the row scan with its
+    Voronoi certificate is the fall-back.
+    """
     first = _induced(device, x[:1], y, x_gate, y_gate, fixed)[:, 0, :]
     if x.size > 1:
         step = device.cdg[:, device.gate_index(x_gate)] / E_AC * (x[1] - x[0])
     else:
         step = np.zeros(device.n_dots)
-    return ground_state_rows(first, step, x.size, device.ec_eV)
+    if device.n_dots >= 3 and x.size > 1 and y.size > 1 and _uniform(x) and _uniform(y):
+        step_y = device.cdg[:, device.gate_index(y_gate)] / E_AC * (y[1] - y[0])
+        g = ground_state_plane(first[0], step, step_y, (y.size, x.size), device.ec_eV)
+        if g is not None:
+            return g
+    return ground_state_rows(first, step, x.size, device.ec_eV, certify=False)
 
 
 def _latch(
@@ -170,7 +190,8 @@ def _latch(
 def _step_height(signal_of: Any, ground: np.ndarray) -> float:
     """Median |signal(A) − signal(B)| at pixels where the ground state changes along x."""
     a, b = ground[:, :-1], ground[:, 1:]
-    diff = np.any(a != b, axis=-1)
+    key = state_keys(ground)
+    diff = key[:, 1:] != key[:, :-1]
     if not diff.any():
         return float("nan")
     iy, ix = np.nonzero(diff)
@@ -195,6 +216,8 @@ def simulate_map(
     fixed_V: Mapping[str, float] | None = None,
     bias_mV: float = 0.0,
     transport_gamma_ueV: float = 2.0,
+    x_direction: Mapping[str, float] | None = None,
+    y_direction: Mapping[str, float] | None = None,
     rng: Any = 0,
 ) -> SyntheticMap:
     """Render a two-gate charge-stability map of ``device`` with known truth.
@@ -224,6 +247,14 @@ def simulate_map(
         Source–drain bias for the transport read-out, mV.
     transport_gamma_ueV : float
         Energy width of the elastic interdot resonance in transport, µeV.
+    x_direction, y_direction : mapping, optional
+        Sweep a virtual gate on x (y): ``{physical gate: coefficient}``, e.g.
+        ``{"P1": 1.0, "P2": -0.3}``; ``x_gate`` (``y_gate``) is then the new
+        virtual gate's name (not a gate of ``device``). Stepping the axis by
+        ΔV steps each physical gate by ``coefficient·ΔV`` around ``fixed_V``.
+        The truth (lever arms, slopes, virtual-gate matrix, lines) is that
+        of the effective gate directions; the device stored in the truth
+        carries the virtual gates (:meth:`Device.with_virtual_gates`).
     rng : int or numpy.random.Generator
         Seed of the three generator steps.
 
@@ -231,6 +262,13 @@ def simulate_map(
     -------
     SyntheticMap
     """
+    if not isinstance(device, Device):
+        raise InputError("device", f"expected a Device, got {type(device).__name__}")
+    virtual = {n: d for n, d in ((x_gate, x_direction), (y_gate, y_direction)) if d is not None}
+    if virtual:
+        if x_gate == y_gate:
+            raise InputError("y_gate", f"x and y gates are both {x_gate!r}")
+        device = device.with_virtual_gates(virtual)
     if not isinstance(device, Device):
         raise InputError("device", f"expected a Device, got {type(device).__name__}")
     if x_gate == y_gate:
@@ -270,11 +308,14 @@ def simulate_map(
     # --------------------------------------------------- 2. noiseless render
     n0 = _induced(device, x, y, x_gate, y_gate, fixed)
     ground = _ground_map(device, x, y, x_gate, y_gate, fixed)
-    occ = occupations(n0, ec, ground, kT_eV=kT, tunnel_eV=t_eV, tunnel_pairs=pairs)
+    near = None
+    if kT > 0 or t_eV > 0:
+        near = near_transition_mask(n0, ground, ec, cut_eV=averaging_cut(kT, t_eV), finest=4)
+    occ = occupations(n0, ec, ground, kT_eV=kT, tunnel_eV=t_eV, tunnel_pairs=pairs, near=near)
     xc, yc = 0.5 * (x[0] + x[-1]), 0.5 * (y[0] + y[-1])
     ref_n = ground[ny // 2, nx // 2].astype(float)
     kappa = sens.couplings(nd)
-    lam_all = sens.crosstalks(device.n_gates) * (1.0 - sens.compensation)
+    lam_all = _sensor_crosstalk(sens, device) * (1.0 - sens.compensation)
     lam_x, lam_y = lam_all[device.gate_index(x_gate)], lam_all[device.gate_index(y_gate)]
     phi_gate = sens.working_point_fwhm * sens.peak_fwhm_mV + 1e3 * (
         lam_x * (x[None, :] - xc) + lam_y * (y[:, None] - yc)
@@ -446,6 +487,16 @@ def simulate_map(
         },
     )
     return SyntheticMap(data=da, truth=truth, clean=np.asarray(clean))
+
+
+def _sensor_crosstalk(sens: SensorModel, device: Device) -> np.ndarray:
+    """Sensor crosstalk per gate column, V/V: given for the physical gates, combined for virtual ones."""
+    virt = device.virtual_gates or {}
+    if not virt:
+        return sens.crosstalks(device.n_gates)
+    phys = device.physical_gate_names
+    lam = dict(zip(phys, sens.crosstalks(len(phys))))
+    return np.array([lam[g] if g in lam else sum(c * lam[p] for p, c in virt[g].items()) for g in device.gate_names])
 
 
 def _phi_per_signal(sens: SensorModel, phi_gate: np.ndarray) -> np.ndarray:

@@ -28,7 +28,7 @@ from typing import Any, Sequence
 import numpy as np
 
 from ..errors import InputError
-from ..physics.lineshape import coulomb_peak
+from ..physics.lineshape import _SECH2_HALF, coulomb_peak
 
 __all__ = ["SensorModel", "sensor_signal"]
 
@@ -149,8 +149,47 @@ def sensor_detuning_mV(
 def sensor_signal(sensor: SensorModel, phi_mV: np.ndarray, *, amplitude_scale: np.ndarray | float = 1.0) -> np.ndarray:
     """Signal of the sensor at detuning ``phi_mV`` (comb of Coulomb peaks)."""
     p = sensor.peak_spacing_mV
-    k0 = np.rint(phi_mV / p)
-    out = np.zeros(np.shape(phi_mV))
+    phi = np.asarray(phi_mV, float)
+    k0 = np.rint(phi / p)
+    if sensor.shape != "sech2":
+        out = np.zeros(np.shape(phi))
+        for dk in (-1.0, 0.0, 1.0):
+            out += coulomb_peak(phi - (k0 + dk) * p, sensor.peak_fwhm_mV, shape=sensor.shape)
+        return sensor.baseline + sensor.amplitude * amplitude_scale * out
+    # sech² peaks: cosh⁻²(a) = 4q/(1 + q)² with q = exp(−2|a|) (the same
+    # function as physics.lineshape.coulomb_peak, to rounding). With
+    # d0 = φ − k0·p ∈ [−p/2, p/2] and E = exp(−2 s d0): q(k0) = E or 1/E,
+    # q(k0 − 1) = E·c, q(k0 + 1) = c/E with c = exp(−2 s p): one exp per pixel.
+    scale = _SECH2_HALF / sensor.peak_fwhm_mV
+    d0 = phi - k0 * p
+    if scale * p < 300.0:  # E stays far from overflow
+        e = d0 * (-2.0 * scale)
+        np.exp(e, out=e)
+        c = float(np.exp(-2.0 * scale * p))
+        inv = 1.0 / e
+        q0 = np.where(d0 >= 0, e, inv)
+        out = _sech2_of_q(q0)
+        out += _sech2_of_q(e * c)
+        out += _sech2_of_q(inv * c)
+        return sensor.baseline + sensor.amplitude * amplitude_scale * out
+    out = np.zeros(np.shape(phi))
     for dk in (-1.0, 0.0, 1.0):
-        out += coulomb_peak(phi_mV - (k0 + dk) * p, sensor.peak_fwhm_mV, shape=sensor.shape)
+        a = d0 - dk * p if dk else d0.copy()
+        np.abs(a, out=a)
+        a *= -2.0 * scale
+        np.exp(a, out=a)
+        den = a + 1.0
+        den *= den
+        a *= 4.0
+        a /= den
+        out += a
     return sensor.baseline + sensor.amplitude * amplitude_scale * out
+
+
+def _sech2_of_q(q: np.ndarray) -> np.ndarray:
+    """``4q/(1 + q)²`` (= cosh⁻²(a) for q = exp(−2|a|)); overwrites and returns ``q``."""
+    den = q + 1.0
+    den *= den
+    q *= 4.0
+    q /= den
+    return q

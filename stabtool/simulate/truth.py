@@ -185,62 +185,90 @@ def line_segments(
     cx, cy = cdg[:, gx] / E_AC, cdg[:, gy] / E_AC
     xlo, xhi = float(np.min(x)), float(np.max(x))
     ylo, yhi = float(np.min(y)), float(np.max(y))
-    pairs = _neighbour_pairs(ground)
+    pa, pb = _neighbour_pairs(ground)
+    if pa.shape[0] == 0:
+        return ()
     rel = relevant_vectors(ec).astype(float)
     xc, yc = 0.5 * (xlo + xhi), 0.5 * (ylo + yhi)
+    a, b = pa.astype(float), pb.astype(float)
+    npair, nd = a.shape
+    # competitors of every pair: b first, then a + v for every relevant v
+    comp = a[:, None, :] + rel[None, :, :]
+    valid = np.all(comp >= 0, axis=2) & ~np.all(comp == b[:, None, :], axis=2)
+    cs = np.concatenate([b[:, None, :], comp], axis=1)  # (P, m, n)
+    valid = np.concatenate([np.ones((npair, 1), bool), valid], axis=1)
+    # U(a) − U(c) = k0 + kx x + ky y for each competitor c
+    d = a[:, None, :] - cs
+    ed = d @ ec
+    ua = np.einsum("pi,ij,pj->p", a, ec, a)
+    uc = np.einsum("pmi,pmi->pm", cs @ ec, cs)  # BLAS product first: einsum of three operands is slow
+    k0 = 0.5 * (ua[:, None] - uc) - ed @ n0c
+    kx, ky = -(ed @ cx), -(ed @ cy)
+    nrm = np.hypot(kx[:, 0], ky[:, 0])
+    okn = nrm > 0
+    nrm_s = np.where(okn, nrm, 1.0)
+    f = k0[:, 0] + kx[:, 0] * xc + ky[:, 0] * yc
+    p0x = xc - f * kx[:, 0] / nrm_s**2
+    p0y = yc - f * ky[:, 0] / nrm_s**2
+    ux, uy = -ky[:, 0] / nrm_s, kx[:, 0] / nrm_s
+    # constraints c0 + c1 s <= 0 along the line p0 + s u (invalid competitors: 0·s − 1 <= 0)
+    c0 = np.concatenate(
+        [
+            np.stack([xlo - p0x, p0x - xhi, ylo - p0y, p0y - yhi], axis=1),
+            np.where(valid[:, 1:], k0[:, 1:] + kx[:, 1:] * p0x[:, None] + ky[:, 1:] * p0y[:, None], -1.0),
+        ],
+        axis=1,
+    )
+    c1 = np.concatenate(
+        [
+            np.stack([-ux, ux, -uy, uy], axis=1),
+            np.where(valid[:, 1:], kx[:, 1:] * ux[:, None] + ky[:, 1:] * uy[:, None], 0.0),
+        ],
+        axis=1,
+    )
+    flat = np.abs(c1) < 1e-300
+    dead = np.any(flat & (c0 > 1e-15), axis=1) | ~okn
+    with np.errstate(divide="ignore", invalid="ignore"):
+        sv = -c0 / c1
+    hi = np.min(np.where((c1 > 0) & ~flat, sv, np.inf), axis=1)
+    lo = np.max(np.where((c1 < 0) & ~flat, sv, -np.inf), axis=1)
+    keep = ~dead & (hi > lo)
+    s0 = np.stack([p0x + lo * ux, p0y + lo * uy], axis=1)
+    s1 = np.stack([p0x + hi * ux, p0y + hi * uy], axis=1)
+    swap = (s1[:, 0] < s0[:, 0]) | ((s1[:, 0] == s0[:, 0]) & (s1[:, 1] < s0[:, 1]))
+    s0, s1 = np.where(swap[:, None], s1, s0), np.where(swap[:, None], s0, s1)
     out = []
-    for a_t, b_t in pairs:
-        a, b = np.array(a_t, float), np.array(b_t, float)
-        # U(a) − U(c) = k0 + kx x + ky y for c = b and every competitor a + v
-        comp = a + rel
-        ok = np.all(comp >= 0, axis=1) & ~np.all(comp == b, axis=1)
-        cs = np.concatenate([b[None, :], comp[ok]], axis=0)
-        d = a[None, :] - cs  # (m, n)
-        ed = d @ ec
-        k0 = 0.5 * (a @ ec @ a - np.einsum("mi,ij,mj->m", cs, ec, cs)) - ed @ n0c
-        kx, ky = -(ed @ cx), -(ed @ cy)
-        nrm = np.hypot(kx[0], ky[0])
-        if nrm == 0:
-            continue
-        f = k0[0] + kx[0] * xc + ky[0] * yc
-        p0 = np.array([xc - f * kx[0] / nrm**2, yc - f * ky[0] / nrm**2])
-        u = np.array([-ky[0], kx[0]]) / nrm
-        # constraints c0 + c1 s <= 0 along the line p0 + s u
-        c0 = np.concatenate([[xlo - p0[0], p0[0] - xhi, ylo - p0[1], p0[1] - yhi], (k0 + kx * p0[0] + ky * p0[1])[1:]])
-        c1 = np.concatenate([[-u[0], u[0], -u[1], u[1]], (kx * u[0] + ky * u[1])[1:]])
-        flat = np.abs(c1) < 1e-300
-        if np.any(flat & (c0 > 1e-15)):
-            continue
-        with np.errstate(divide="ignore", invalid="ignore"):
-            sv = -c0 / c1
-        hi = float(np.min(sv[(c1 > 0) & ~flat], initial=np.inf))
-        lo = float(np.max(sv[(c1 < 0) & ~flat], initial=-np.inf))
-        if not hi > lo:
-            continue
-        s0, s1 = p0 + lo * u, p0 + hi * u
-        if s1[0] < s0[0] or (s1[0] == s0[0] and s1[1] < s0[1]):
-            s0, s1 = s1, s0
-        dd = b - a
-        dots = tuple(device.dot_names[i] for i in np.nonzero(dd)[0])
+    names = device.dot_names
+    for k in np.flatnonzero(keep):
+        dd = pb[k] - pa[k]
         out.append(
             LineSegment(
                 family=_family(dd, i1, i2),
-                dots=dots,
-                start=(float(s0[0]), float(s0[1])),
-                end=(float(s1[0]), float(s1[1])),
-                states=(a_t, b_t),
+                dots=tuple(names[i] for i in np.nonzero(dd)[0]),
+                start=(float(s0[k, 0]), float(s0[k, 1])),
+                end=(float(s1[k, 0]), float(s1[k, 1])),
+                states=(tuple(int(v) for v in pa[k]), tuple(int(v) for v in pb[k])),
             )
         )
     return tuple(out)
 
 
-def _neighbour_pairs(ground: np.ndarray) -> list[tuple[tuple[int, ...], tuple[int, ...]]]:
-    """Sorted unique pairs of different states that touch along x or y."""
+def _neighbour_pairs(ground: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Sorted unique pairs of different states that touch along x or y.
+
+    Returns
+    -------
+    a, b : ndarray, shape (P, n_dots), int
+        The two states of each pair (``key(a) < key(b)``, sorted by key).
+    """
     nd = ground.shape[-1]
-    lo = ground.reshape(-1, nd).min(axis=0)
-    span = ground.reshape(-1, nd).max(axis=0) - lo + 1
+    cols = [ground[..., i] for i in range(nd)]  # per-column reductions: fast in NumPy
+    lo = np.array([int(c.min()) for c in cols], np.int64)
+    span = np.array([int(c.max()) for c in cols], np.int64) - lo + 1
     radix = np.concatenate([[1], np.cumprod(span[:-1])]).astype(np.int64)
-    key = (ground - lo) @ radix
+    key = np.zeros(ground.shape[:-1], np.int64)
+    for i in range(nd):  # elementwise: integer matmul has no BLAS
+        key += (cols[i] - lo[i]) * radix[i]
     total = int(np.prod(span))
     found = []
     for ka, kb in ((key[:, 1:], key[:, :-1]), (key[1:, :], key[:-1, :])):
@@ -249,14 +277,10 @@ def _neighbour_pairs(ground: np.ndarray) -> list[tuple[tuple[int, ...], tuple[in
         found.append(np.minimum(a, b) * total + np.maximum(a, b))
     codes = np.unique(np.concatenate(found))
 
-    def state(k: int) -> tuple[int, ...]:
-        digits = []
-        for r in span:
-            digits.append(int(k % r))
-            k //= r
-        return tuple(int(v) for v in np.array(digits) + lo)
+    def state(k: np.ndarray) -> np.ndarray:
+        return (k[:, None] // radix[None, :]) % span[None, :] + lo[None, :]
 
-    return [(state(int(c // total)), state(int(c % total))) for c in codes]
+    return state(codes // total), state(codes % total)
 
 
 @dataclass(frozen=True)
