@@ -19,10 +19,12 @@ from .mapdata import MapAxes, make_map, map_axes, validate_map
 from .lines import LineDetection, LineDetector, detect_lines
 from .io import load, save_json, save_map
 from .arrays import (
+    ArrayDescription,
     PairMeasurement,
     VirtualGateMatrix,
     assemble_virtual_gates,
     check_limits,
+    plan_pair_maps,
     physical_to_virtual,
     virtual_sweep,
     virtual_to_physical,
@@ -58,7 +60,9 @@ __all__ = [
     "save_json",
     "PairMeasurement",
     "VirtualGateMatrix",
+    "ArrayDescription",
     "assemble_virtual_gates",
+    "plan_pair_maps",
     "check_limits",
     "physical_to_virtual",
     "virtual_sweep",

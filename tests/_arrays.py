@@ -15,7 +15,7 @@ import numpy as np
 from stabtool.arrays import PairMeasurement
 from stabtool.physics.ci import lever_arm_matrix, virtual_gate_matrix
 from stabtool.physics.constants import E_AC
-from stabtool.simulate import Device, presets
+from stabtool.simulate import Device, SensorModel, presets
 
 #: Lever arm of the sensor dot to its own gate (about), eV/V, and its charging energy (about), meV
 #: (invented, inside the Si/SiGe ranges of the references file).
@@ -60,6 +60,31 @@ def array_with_sensor(n: int) -> Device:
         name=f"{base.name}+sensor",
         description=base.description + "; plus an invented sensor dot S on gate SG",
     )
+
+
+#: Peak shift of the charge sensor per electron on the nearest dots, mV, and its decay per dot of
+#: distance (invented; inside the 0.1–1 FWHM range quoted in stabtool.simulate.SensorModel).
+SENSOR_SHIFT_MV = 0.6
+SENSOR_SHIFT_DECAY = 0.65
+
+
+def sensor_model(dev: Device, *, every: int = 4) -> SensorModel:
+    """Charge read-out whose peak shift per electron falls with the distance to the nearest sensor.
+
+    Arrays are built with a charge sensor per few dots (common practice, no
+    source): here one beside each group of ``every`` dots, between its two
+    middle dots — for 4 dots that is the sensor dot S itself; for 8 dots S
+    (modelled as a dot, between dots 4 and 5) plus two read-out sensors
+    between dots 2–3 and 6–7 that are not modelled as dots. The dots nearest
+    a sensor and S shift the read-out peak by ``SENSOR_SHIFT_MV``, every
+    further dot by ``× SENSOR_SHIFT_DECAY``. (The generator's default indexes
+    the shift by dot number, which would make S, the last dot, invisible.)
+    """
+    n = dev.n_dots - 1
+    sites = [n / 2 - 0.5] + [k + every / 2 - 0.5 for k in range(0, n, every)]
+    dist = np.min([np.abs(np.arange(n) - s) for s in sites], axis=0) - 0.5
+    shift = np.append(SENSOR_SHIFT_MV * SENSOR_SHIFT_DECAY**dist, SENSOR_SHIFT_MV)
+    return SensorModel(coupling_mV=tuple(float(v) for v in shift))
 
 
 def truth_matrix(dev: Device) -> np.ndarray:

@@ -206,3 +206,33 @@ def test_implausibly_large_coupling_is_flagged() -> None:
     assert not vgm.quality.ok
     assert any("implausible" in w and "vP4<-P2 = 0.93 from p2p4.json" in w for w in vgm.quality.warnings)
     assert assemble_virtual_gates([PairMeasurement("P2", "P4", 0.11, 0.01, 0.45, 0.01)]).quality.ok
+
+
+def test_doubtful_map_is_left_out_where_an_ok_map_measured_the_same_element() -> None:
+    """Hand-computed: the ok maps give 0.30 ± 0.01 and 0.32 ± 0.01 for vP1<-P2 → mean 0.31; the
+    doubtful map's 0.50 is left out and listed, and the result stays ok."""
+    from stabtool.quality import Quality
+
+    maps = [
+        PairMeasurement("P1", "P2", 0.30, 0.01, 0.40, 0.01, source="a"),
+        PairMeasurement("P1", "P2", 0.32, 0.01, 0.40, 0.01, source="b"),
+        PairMeasurement("P1", "P2", 0.50, 0.01, 0.40, 0.01, source="bad",
+                        quality=Quality(ok=False, warnings=("charge jump",))),
+    ]
+    vgm = assemble_virtual_gates(maps)
+    assert vgm.element("P1", "P2") == pytest.approx(0.31, abs=1e-12)
+    assert vgm.n_estimates[0, 1] == 2
+    assert sorted((r.estimate.source, r.reason) for r in vgm.rejected) == [("bad", "doubtful map"),
+                                                                           ("bad", "doubtful map")]
+    assert vgm.quality.ok, vgm.quality.warnings
+    kept = assemble_virtual_gates(maps, reject_doubtful=False)
+    assert kept.n_estimates[0, 1] == 3 and not kept.quality.ok
+
+
+def test_implausible_estimate_is_left_out_of_the_mean() -> None:
+    maps = [PairMeasurement("P2", "P4", 0.11, 0.01, 0.93, 0.01, source="x"),
+            PairMeasurement("P2", "P4", 0.12, 0.01, 0.45, 0.01, source="y")]
+    vgm = assemble_virtual_gates(maps)
+    assert vgm.element("P4", "P2") == pytest.approx(0.45, abs=1e-12)
+    assert [(str(r.estimate.value), r.reason) for r in vgm.rejected] == [("0.93", "implausible")]
+    assert any("implausible" in w for w in vgm.quality.warnings)

@@ -1,5 +1,6 @@
 """Dot arrays: the N×M virtual-gate matrix from pairwise two-gate maps.
 
+* :mod:`.plan` — which pairwise maps to measure (windows, other gates parked);
 * :mod:`.measurement` — one analysed map reduced to the two elements it measures;
 * :mod:`.assemble` — combination into the full matrix, with consistency statistics;
 * :mod:`.convert` — virtual ↔ physical voltages, sweeps, corners, gate limits;
@@ -9,6 +10,7 @@
 from .assemble import (
     CAUTION,
     ElementEstimate,
+    Rejection,
     VirtualGateMatrix,
     assemble_virtual_gates,
     virtual_name,
@@ -25,13 +27,17 @@ from .convert import (
 )
 from .export import matrix_to_dict, read_matrix_json, write_matrix_csv, write_matrix_json
 from .measurement import PairMeasurement, pair_from_analysis, pair_from_map, read_pair_json
+from .plan import ArrayDescription, PairMapPlan, plan_pair_maps, prior_couplings
 
 __all__ = [
     "CAUTION",
+    "ArrayDescription",
     "ElementEstimate",
     "LimitCheck",
     "LimitViolation",
+    "PairMapPlan",
     "PairMeasurement",
+    "Rejection",
     "SweepCorner",
     "VirtualGateMatrix",
     "VirtualSweep",
@@ -41,6 +47,8 @@ __all__ = [
     "pair_from_analysis",
     "pair_from_map",
     "physical_to_virtual",
+    "plan_pair_maps",
+    "prior_couplings",
     "read_matrix_json",
     "read_pair_json",
     "virtual_name",

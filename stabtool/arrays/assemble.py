@@ -32,6 +32,7 @@ from .measurement import PairMeasurement
 __all__ = [
     "CAUTION",
     "ElementEstimate",
+    "Rejection",
     "VirtualGateMatrix",
     "assemble_virtual_gates",
     "virtual_name",
@@ -78,6 +79,27 @@ class ElementEstimate:
     source: str
 
 
+@dataclass(frozen=True)
+class Rejection:
+    """An estimate left out of the combination, and why.
+
+    Attributes
+    ----------
+    estimate : ElementEstimate
+    reason : str
+        ``"implausible"`` (|M| ≥ :data:`IMPLAUSIBLE`) or ``"doubtful map"``
+        (the map's analysis was not ok and maps that are ok measured the
+        same element).
+    """
+
+    estimate: ElementEstimate
+    reason: str
+
+    def __str__(self) -> str:
+        e = self.estimate
+        return f"{virtual_name(e.plunger)}<-{e.gate} = {e.value:.3g} from {e.source or '?'} ({self.reason})"
+
+
 @dataclass(frozen=True, eq=False)
 class VirtualGateMatrix:
     """Virtual-gate matrix of an array with uncertainties and consistency statistics.
@@ -109,7 +131,10 @@ class VirtualGateMatrix:
     estimates : tuple of ElementEstimate
         Every estimate that went in.
     maps : tuple of PairMeasurement
-        The maps used.
+        The maps given.
+    rejected : tuple of Rejection
+        Estimates left out (implausible, or from a doubtful map when ok maps
+        measured the same element).
     quality : Quality
         ``ok`` is False if an element is unmeasured, maps disagree beyond
         chance, or an input map was doubtful.
@@ -130,6 +155,7 @@ class VirtualGateMatrix:
     p_value: np.ndarray
     estimates: tuple[ElementEstimate, ...] = ()
     maps: tuple[PairMeasurement, ...] = ()
+    rejected: tuple[Rejection, ...] = ()
     quality: Quality = field(default_factory=Quality)
     caution: str = CAUTION
 
@@ -253,6 +279,7 @@ def assemble_virtual_gates(
     sensors: Sequence[str] = (),
     gates: Sequence[str] | None = None,
     inconsistency_p: float = 0.01,
+    reject_doubtful: bool = True,
 ) -> VirtualGateMatrix:
     """Assemble the array's virtual-gate matrix from pairwise measurements.
 
@@ -279,6 +306,13 @@ def assemble_virtual_gates(
         chance); the whole matrix is flagged when the p-value of the total
         χ² is below ``inconsistency_p``. Uncertainties are scaled by the
         Birge ratio wherever it exceeds 1, flagged or not.
+    reject_doubtful : bool
+        Leave out the estimates of maps whose analysis is not ok wherever an
+        ok map measured the same element (listed in ``rejected``). Where only
+        doubtful maps measured an element they are used, and the matrix is
+        not ok. Estimates with |M| ≥ :data:`IMPLAUSIBLE` are always left out
+        (a dot couples most to its own plunger: such lines are probably
+        another dot's).
 
     Returns
     -------
@@ -332,13 +366,15 @@ def assemble_virtual_gates(
     n_r, n_c = len(rows), len(cols)
     quality = Quality()
     estimates: list[ElementEstimate] = []
+    doubtful_src: set[int] = set()  # id() of estimates from maps that are not ok
+    rejected: list[Rejection] = []
     unused: list[str] = []
     implausible: list[str] = []
     for m in ms:
         if not m.quality.ok:
             first = m.quality.warnings[0] if m.quality.warnings else "no reason given"
             quality = quality.with_warning(f"{m.source or m.x_gate + '/' + m.y_gate}: the analysis of this map "
-                                           f"is flagged doubtful ({first})")
+                                           f"is flagged doubtful ({first})", doubtful=not reject_doubtful)
         for row_gate, col_gate, val, err in (
             (m.x_gate, m.y_gate, m.m_xy, m.m_xy_err),
             (m.y_gate, m.x_gate, m.m_yx, m.m_yx_err),
@@ -349,16 +385,43 @@ def assemble_virtual_gates(
                 continue
             if not math.isfinite(val):
                 continue
+            est = ElementEstimate(row_gate, col_gate, float(val), float(err),
+                                  m.source or f"{m.x_gate}/{m.y_gate}")
             if abs(val) >= IMPLAUSIBLE:
-                implausible.append(f"{virtual_name(row_gate)}<-{col_gate} = {val:.3g} from "
-                                   f"{m.source or m.x_gate + '/' + m.y_gate}")
-            estimates.append(ElementEstimate(row_gate, col_gate, float(val), float(err), m.source))
+                implausible.append(f"{virtual_name(row_gate)}<-{col_gate} = {val:.3g} from {est.source}")
+                rejected.append(Rejection(est, "implausible"))
+                continue
+            if not m.quality.ok:
+                doubtful_src.add(id(est))
+            estimates.append(est)
     if unused:
         quality = quality.with_warning("not used: " + "; ".join(unused), doubtful=False)
     if implausible:
         quality = quality.with_warning(
             "implausible cross-coupling(s) " + "; ".join(implausible) + f" (|M| >= {IMPLAUSIBLE}: a dot "
-            "couples most to its own plunger, so these lines probably belong to another dot)")
+            "couples most to its own plunger, so these lines probably belong to another dot); left out",
+            doubtful=False)  # an element left without estimate is flagged as unmeasured below
+    if reject_doubtful:
+        groups: dict[tuple[str, str], list[ElementEstimate]] = {}
+        for e in estimates:
+            groups.setdefault((e.plunger, e.gate), []).append(e)
+        kept: list[ElementEstimate] = []
+        only_doubtful: list[str] = []
+        for (p, g), es in groups.items():
+            ok_es = [e for e in es if id(e) not in doubtful_src]
+            if ok_es:
+                kept.extend(ok_es)
+                rejected.extend(Rejection(e, "doubtful map") for e in es if id(e) in doubtful_src)
+            else:
+                kept.extend(es)
+                if any(id(e) in doubtful_src for e in es):
+                    only_doubtful.append(f"{virtual_name(p)}<-{g}")
+        estimates = kept
+        if only_doubtful:
+            quality = quality.with_warning(
+                "measured only by maps whose analysis is doubtful (used anyway): " + ", ".join(only_doubtful))
+    if rejected:
+        quality = quality.with_warning("left out: " + "; ".join(str(r) for r in rejected), doubtful=False)
 
     matrix = np.zeros((n_r, n_c))
     unc = np.full((n_r, n_c), np.nan)
@@ -448,5 +511,6 @@ def assemble_virtual_gates(
         p_value=pval,
         estimates=tuple(estimates),
         maps=tuple(ms),
+        rejected=tuple(rejected),
         quality=quality,
     )

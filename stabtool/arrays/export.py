@@ -96,6 +96,9 @@ def matrix_to_dict(vgm: VirtualGateMatrix) -> dict[str, Any]:
         "unmeasured": [{"virtual_gate": virtual_name(p), "physical_gate": g} for p, g in vgm.unmeasured],
         "sensor_compensation": comp,
         "maps_used": [m.to_dict() for m in vgm.maps],
+        "rejected": [{"virtual_gate": virtual_name(r.estimate.plunger), "physical_gate": r.estimate.gate,
+                      "value": _f(r.estimate.value), "sigma": _f(r.estimate.sigma), "map": r.estimate.source,
+                      "reason": r.reason} for r in vgm.rejected],
         "quality": vgm.quality.to_dict(),
         "caution": vgm.caution,
     }

@@ -198,6 +198,8 @@ def _table(vgm: VirtualGateMatrix) -> str:
                      f"Birge ratio {vgm.overall_birge_ratio:.3g}, p = {vgm.overall_p_value:.3g}")
     else:
         lines.append("consistency between maps: no element measured twice")
+    if vgm.rejected:
+        lines.append("left out of the combination: " + "; ".join(str(r) for r in vgm.rejected))
     if vgm.unmeasured:
         lines.append("unmeasured (set to 0): " + ", ".join(f"v{p}<-{g}" for p, g in vgm.unmeasured))
     for s in vgm.sensor_gates:
