@@ -79,3 +79,32 @@ def test_uncoupled_lines_are_not_called_bent():
     res, errs = _gaas(0.0, 0)
     assert not any("bend towards" in w for w in res.quality.warnings)
     assert np.all(errs <= 0.005)
+
+
+def test_closed_form_offsets_match_the_full_design_least_squares():
+    # reference: numpy.linalg.lstsq on the full weighted design (one offset column
+    # per line, shared slope and bending columns); eliminating the offsets by
+    # within-line centring (Frisch–Waugh–Lovell) must give the same slope and
+    # offsets, and the slope variance (X^T W X)^-1_00
+    pts = _lines(-0.3, bend=0.004, sigma=0.01, rng=7)
+    fit = fit_family(pts, bend=True, n_clip=1e9)
+    rows, y, w = [], [], []
+    for k, lp in enumerate(pts):
+        X = np.zeros((lp.t.size, 1 + len(pts) + 2))
+        X[:, 0] = lp.t - lp.t.mean()
+        X[:, 1 + k] = 1.0
+        span = np.ptp(lp.t)
+        X[:, -2] = span / (lp.t - lp.vertices[0])
+        X[:, -1] = span / (lp.t - lp.vertices[1])
+        rows.append(X)
+        y.append(lp.p)
+        w.append(1 / lp.sig**2)
+    X, y, w = np.vstack(rows), np.concatenate(y), np.concatenate(w)
+    sw = np.sqrt(w)
+    beta = np.linalg.lstsq(X * sw[:, None], y * sw, rcond=None)[0]
+    cov = np.linalg.inv((X.T * w) @ X)
+    r = (y - X @ beta) * sw
+    chi2r = (r @ r) / (y.size - X.shape[1])
+    assert fit.slope == pytest.approx(beta[0], rel=1e-9, abs=1e-12)
+    assert np.allclose(fit.offsets, beta[1 : 1 + len(pts)], rtol=1e-9, atol=1e-12)
+    assert fit.slope_stderr == pytest.approx(np.sqrt(cov[0, 0] * max(chi2r, 1.0)), rel=1e-6)

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 
 from ._geometry import tls_fit
@@ -74,37 +76,30 @@ def drop_duplicates(lines: list, px_scale: tuple[float, float], *, max_distance_
     ``max_distance_px`` of each other in the pixel frame; the one with more
     crossing points (then the smaller slope error) is kept.
     """
+    n = len(lines)
+    if n < 2:
+        return list(lines)
     sx, sy = abs(px_scale[0]), abs(px_scale[1])
-    pts = []
-    for ln in lines:
-        a = np.array([ln.start[0] / sx, ln.start[1] / sy])
-        b = np.array([ln.end[0] / sx, ln.end[1] / sy])
-        pts.append((a, b))
-    rank = sorted(range(len(lines)), key=lambda i: (-lines[i].n_points, lines[i].slope_stderr))
+    a = np.array([[ln.start[0] / sx, ln.start[1] / sy] for ln in lines])
+    b = np.array([[ln.end[0] / sx, ln.end[1] / sy] for ln in lines])
+    fam = np.array([str(ln.family) for ln in lines])
+    # 9 sample points of every line i, projected on every line j (all pairs at once)
+    ts = np.linspace(0, 1, 9)
+    P = a[:, None, :] + ts[None, :, None] * (b - a)[:, None, :]  # (i, 9, 2)
+    u = b - a
+    L = np.hypot(u[:, 0], u[:, 1])
+    uu = u / np.where(L > 0, L, 1.0)[:, None]
+    rel = P[:, None, :, :] - a[None, :, None, :]  # (i, j, 9, 2)
+    tt = (rel * uu[None, :, None, :]).sum(-1)
+    dist = np.abs(rel[..., 0] * -uu[None, :, None, 1] + rel[..., 1] * uu[None, :, None, 0])
+    inside = (tt >= -1) & (tt <= L[None, :, None] + 1)
+    with np.errstate(all="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        med = np.nanmedian(np.where(inside, dist, np.nan), axis=2)
+    dup = (fam[:, None] == fam[None, :]) & (L[None, :] > 0) & (inside.sum(2) >= 3) & (med <= max_distance_px)
+    rank = sorted(range(n), key=lambda i: (-lines[i].n_points, lines[i].slope_stderr))
     kept: list[int] = []
     for i in rank:
-        a, b = pts[i]
-        dup = False
-        for j in kept:
-            if lines[j].family != lines[i].family:
-                continue
-            c, d = pts[j]
-            u = d - c
-            L = np.hypot(*u)
-            if L == 0:
-                continue
-            u = u / L
-            # sample points of i, keep those that project inside j
-            ts = np.linspace(0, 1, 9)
-            P = a[None, :] + ts[:, None] * (b - a)[None, :]
-            tt = (P - c) @ u
-            inside = (tt >= -1) & (tt <= L + 1)
-            if inside.sum() < 3:
-                continue
-            dist = np.abs((P[inside] - c) @ np.array([-u[1], u[0]]))
-            if np.median(dist) <= max_distance_px:
-                dup = True
-                break
-        if not dup:
+        if not any(dup[i, j] for j in kept):
             kept.append(i)
     return [lines[i] for i in sorted(kept)]

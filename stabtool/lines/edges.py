@@ -80,7 +80,20 @@ def _block_median(a: np.ndarray, block: int) -> np.ndarray:
     cx = (np.arange(bx) + 0.5) * block - 0.5
     iy = np.clip(np.interp(np.arange(ny), cy, np.arange(by)), 0, by - 1)
     ix = np.clip(np.interp(np.arange(nx), cx, np.arange(bx)), 0, bx - 1)
-    return ndi.map_coordinates(med, np.meshgrid(iy, ix, indexing="ij"), order=1, mode="nearest")
+    # bilinear interpolation is separable: two small interpolation matrices
+    return _interp_matrix(iy, by) @ med @ _interp_matrix(ix, bx).T
+
+
+def _interp_matrix(pos: np.ndarray, n: int) -> np.ndarray:
+    """Rows of linear-interpolation weights at fractional positions ``pos`` in [0, n − 1]."""
+    W = np.zeros((pos.size, n))
+    i0 = np.clip(np.floor(pos).astype(int), 0, n - 1)
+    i1 = np.minimum(i0 + 1, n - 1)
+    f = pos - i0
+    r = np.arange(pos.size)
+    W[r, i0] += 1.0 - f
+    W[r, i1] += f
+    return W
 
 
 def _nms(gx: np.ndarray, gy: np.ndarray, mag: np.ndarray) -> np.ndarray:

@@ -74,13 +74,6 @@ def _hough_peaks(h: np.ndarray, angles: np.ndarray, dists: np.ndarray, min_votes
     return angles[cand[1][order]], dists[cand[0][order]]
 
 
-def _split_runs(t: np.ndarray, max_gap: float) -> list[np.ndarray]:
-    order = np.argsort(t)
-    ts = t[order]
-    breaks = np.nonzero(np.diff(ts) > max_gap)[0]
-    return np.split(order, breaks + 1)
-
-
 def _segments_core(
     edges: np.ndarray,
     *,
@@ -100,22 +93,36 @@ def _segments_core(
     px, py = cols.astype(float), rows.astype(float)
     free = np.ones(px.size, dtype=bool)
     segs: list[PixelSegment] = []
-    n_done = 0
-    for ang, dist in zip(pk_ang, pk_dist):
+    chunk = 64
+    near_all = None
+    for k, (ang, dist) in enumerate(zip(pk_ang, pk_dist)):
         if len(segs) >= max_lines or not free.any():
             break
-        n_done += 1
         c, s = np.cos(ang), np.sin(ang)
-        # hough_line: dist = col*cos(angle) + row*sin(angle)
-        near = free & (np.abs(px * c + py * s - dist) <= tolerance_px)
-        idx = np.nonzero(near)[0]
+        if k % chunk == 0:
+            # pixels near the next peaks' lines, all at once
+            # (hough_line: dist = col*cos(angle) + row*sin(angle))
+            # (only the still free pixels: claimed ones never come back)
+            fidx = np.nonzero(free)[0]
+            ca, sa = np.cos(pk_ang[k : k + chunk]), np.sin(pk_ang[k : k + chunk])
+            near_all = np.abs(np.outer(ca, px[fidx]) + np.outer(sa, py[fidx]) - pk_dist[k : k + chunk, None]) <= tolerance_px
+            # free pixels only get fewer: an upper bound that skips most weak peaks at once
+            bound = near_all.sum(1)
+        if bound[k % chunk] < min_votes:
+            continue
+        idx = fidx[near_all[k % chunk] & free[fidx]]
         if idx.size < min_votes:
             continue
         t = -px[idx] * s + py[idx] * c
-        for run in _split_runs(t, max_gap_px):
-            sel = idx[run]
-            if sel.size < min_votes or np.ptp(t[run]) < min_length_px - 2:
-                continue
+        order = np.argsort(t)
+        ts = t[order]
+        br = np.nonzero(np.diff(ts) > max_gap_px)[0] + 1
+        starts = np.concatenate([[0], br])
+        ends = np.concatenate([br, [ts.size]])
+        # only runs long enough in pixels and in extent are examined
+        good = (ends - starts >= min_votes) & (ts[ends - 1] - ts[starts] >= min_length_px - 2)
+        for st, en in zip(starts[good], ends[good]):
+            sel = idx[order[st:en]]
             cx, cy, u, rms = tls_fit(px[sel], py[sel])
             # one re-collection around the refined line, inside the run's span
             tt = (px - cx) * u[0] + (py - cy) * u[1]

@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 import xarray as xr
 from scipy import ndimage as ndi
+from scipy.fft import irfft, next_fast_len, rfft
 
 from ..mapdata import MapAxes
 from ..preprocess._checks import check_map
@@ -34,9 +35,12 @@ def _jumps_core(values: np.ndarray, block: int = 4, min_shift_px: float = 2.0) -
         after = (csum[i + block] - csum[i]) / block
         a = before - before.mean(1, keepdims=True)
         b = after - after.mean(1, keepdims=True)
-        fa = np.fft.rfft(a, 2 * nx, axis=1)
-        fb = np.fft.rfft(b, 2 * nx, axis=1)
-        cc = np.fft.irfft(np.conj(fa) * fb, 2 * nx, axis=1)
+        # zero padding to nx + max_lag makes the circular correlation linear for
+        # every lag examined (|lag| ≤ max_lag)
+        L = next_fast_len(nx + max_lag + 2, real=True)
+        fa = rfft(a, L, axis=1)
+        fb = rfft(b, L, axis=1)
+        cc = irfft(np.conj(fa) * fb, L, axis=1)
         lagv = np.r_[np.arange(0, max_lag + 1), np.arange(-max_lag, 0)]
         vals = cc[:, lagv]
         k = np.argmax(vals, axis=1)
@@ -46,7 +50,7 @@ def _jumps_core(values: np.ndarray, block: int = 4, min_shift_px: float = 2.0) -
         inner = (np.abs(lagv[k]) < max_lag)
         y0 = cc[np.arange(i.size), lagv[k] - 1]
         y1 = cc[np.arange(i.size), lagv[k]]
-        y2 = cc[np.arange(i.size), (lagv[k] + 1) % (2 * nx)]
+        y2 = cc[np.arange(i.size), (lagv[k] + 1) % L]
         den = y0 - 2 * y1 + y2
         corr = np.where(inner & (den < 0), 0.5 * (y0 - y2) / np.where(den < 0, den, -1.0), 0.0)
         lag = lag + corr

@@ -71,7 +71,11 @@ def _row_offsets_core(values: np.ndarray) -> np.ndarray:
         warnings.simplefilter("ignore", RuntimeWarning)
         fin = np.isfinite(d)
         cnt = fin.sum(axis=1)
-        med = np.where(cnt >= 3, np.nanmedian(np.where(fin, d, np.nan), axis=1) if d.size else 0.0, 0.0)
+        if d.size and fin.all():
+            rowmed = np.median(d, axis=1)  # no NaN: the plain median is far faster
+        else:
+            rowmed = np.nanmedian(np.where(fin, d, np.nan), axis=1) if d.size else 0.0
+        med = np.where(cnt >= 3, rowmed, 0.0)
     med = np.nan_to_num(med)
     steps[1:] = med
     off = np.cumsum(steps)
