@@ -171,12 +171,43 @@ def refine_segments(
     shapes: tuple[str, ...] = ("step", "peak"),
     edges: np.ndarray | None = None,
     end_trim: float = 0.0,
+    widen: int = 2,
 ) -> list[RefinedLine]:
     """:func:`refine_segment` for many segments, with all profiles fitted in one batch.
 
     ``edges`` (the edge map, optional) lets each profile stop short of a
-    neighbouring line.
+    neighbouring line. Segments whose profiles do not give a line are fitted
+    again with profiles ``widen`` times longer (up to two more passes): a
+    thermally broadened step (Fermi width ≳ 1 px, i.e. a 10–90 % rise over
+    ≳ 4 px) cannot be told from the linear baseline ``a + b u`` inside a short
+    window, so its height, and with it the significance test, is lost. The
+    longer window still stops at a neighbouring line's edge. Only segments
+    that fail at the fine window are refitted (coarse-to-fine fallback,
+    common practice, no source), so sharp lines keep their first-pass
+    result unchanged; the refits use the step shape only, because the peak
+    shape fitted to a broad step gives crossings on its flanks and lines of
+    the wrong slope sign.
     """
+    hw = int(halfwidth_px)
+    out = _refine_once(segs, values, axes, families=families, along_x=along_x, halfwidth_px=hw,
+                       max_points=max_points, shapes=shapes, edges=edges, end_trim=end_trim)
+    n = len(segs)
+    head, extra = out[:n], out[n:]
+    for _ in range(2 if widen > 1 else 0):
+        redo = [k for k in range(n) if not head[k].refined]
+        if not redo:
+            break
+        hw *= int(widen)
+        again = _refine_once([segs[k] for k in redo], values, axes, families=[families[k] for k in redo],
+                             along_x=[along_x[k] for k in redo], halfwidth_px=hw, max_points=max_points,
+                             shapes=("step",), edges=edges, end_trim=end_trim)
+        for j, k in enumerate(redo):
+            head[k] = again[j]
+        extra = extra + again[len(redo):]
+    return head + extra
+
+
+def _refine_once(segs, values, axes, *, families, along_x, halfwidth_px, max_points, shapes, edges, end_trim):
     hw = int(halfwidth_px)
     blocks = []
     for k, seg in enumerate(segs):
