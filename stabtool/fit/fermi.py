@@ -486,7 +486,6 @@ def _second_step(x, y, wt, nbg, p, xstep, cost1) -> tuple[float, float] | None:
     sweep, separated by more than three summed widths, the smaller at least
     25 % of the larger and 6 standard errors.
     """
-    x0 = p[0]
     n = x.size
     widths = np.geomspace(max(0.5 * xstep, 1e-4), 1.0 / 6.0, 8)
     centres = np.linspace(-0.97, 0.97, min(61, max(31, n // 3)))

@@ -326,7 +326,6 @@ def _line_from_crossings(base, rows, centre, fit, sl, axes, along_x, kind):
     u0 = np.where(sharp, np.floor(u0) + 0.5, u0)
     p_v = idx_to_volts(centre[ok] + u0, pcoord)
     t_v = idx_to_volts(rows[ok].astype(float), tcoord)
-    widths_ok = fit.width[sl][ok]
     # an unresolved step (w below ~0.7 px) fixes its crossing only to within the
     # pixel: floor the error at the quantisation rms 1/√12 px (common practice, no source)
     floor = np.where(sharp, 1.0 / np.sqrt(12.0), np.where(interp, 0.1, 0.05))
