@@ -12,20 +12,9 @@ import pytest
 from stabtool.physics.constants import E_AC
 from stabtool.simulate import Device, ground_state
 
+from _simulate import random_device
+
 gs = importlib.import_module("stabtool.simulate.ground_state")
-
-
-def random_device(n, rng):
-    """A physical random device: Cdd an M-matrix with total ≥ sum of parts."""
-    cm = np.zeros((n, n))
-    for i in range(n):
-        for j in range(i + 1, n):
-            near = abs(i - j) == 1
-            cm[i, j] = cm[j, i] = rng.uniform(2, 30) if near else rng.uniform(0, 6)
-    cg = rng.uniform(0, 4, (n, n + 1))
-    cg[np.arange(n), np.arange(n)] = rng.uniform(5, 15, n)
-    ctot = cg.sum(1) + cm.sum(1) + rng.uniform(5, 60, n)
-    return cg, np.diag(ctot) - cm
 
 
 @pytest.mark.parametrize("n", [1, 2, 3, 4, 5, 8])
