@@ -27,6 +27,7 @@ import numpy as np
 import xarray as xr
 
 from ..errors import InputError
+from ..io.atomic import atomic_savefig
 from ..mapdata import map_axes, validate_map
 from ..quality import Quality
 
@@ -272,7 +273,7 @@ class DriftResult:
         fig.suptitle(f"Pattern drift {self.x_gate}/{self.y_gate} [{status}]\n{self.verdict()}",
                      fontsize=9)
         fig.tight_layout()
-        fig.savefig(os.fspath(path), format="png")
+        atomic_savefig(fig, path)
 
     def write_outputs(self, out_dir: str | os.PathLike[str], *, stem: str = "drift") -> dict[str, Path]:
         """Write ``<stem>.csv``, ``<stem>.json`` and ``<stem>.png`` into ``out_dir``."""

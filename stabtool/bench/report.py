@@ -26,6 +26,7 @@ from typing import Any
 
 import numpy as np
 
+from ..io.atomic import atomic_savefig
 from .bounds import FITTER_BOUNDS, FitterBounds
 from .compare import GROUP_LABELS, GROUPS
 from .grid import ARTEFACT_LABELS, ARTEFACTS, PRESETS, SNRS
@@ -406,7 +407,7 @@ def plot_errors(summary: Mapping[str, Any], path: str | os.PathLike[str], *,
     if title:
         fig.suptitle(title)
     p = Path(path)
-    fig.savefig(p, dpi=110)
+    atomic_savefig(fig, p, dpi=110)
     plt.close(fig)
     return p
 
@@ -457,7 +458,7 @@ def plot_coverage(summary: Mapping[str, Any], path: str | os.PathLike[str], *, t
     if title:
         fig.suptitle(title)
     p = Path(path)
-    fig.savefig(p, dpi=110)
+    atomic_savefig(fig, p, dpi=110)
     plt.close(fig)
     return p
 
@@ -499,7 +500,7 @@ def plot_artefacts(outcomes: Sequence[CaseOutcome], path: str | os.PathLike[str]
     if title:
         fig.suptitle(title)
     p = Path(path)
-    fig.savefig(p, dpi=110)
+    atomic_savefig(fig, p, dpi=110)
     plt.close(fig)
     return p
 

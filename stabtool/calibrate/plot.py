@@ -8,6 +8,7 @@ from pathlib import Path
 
 import numpy as np
 
+from ..io.atomic import atomic_savefig
 from ..io.traces import Trace1D
 from ..physics.constants import KB_OVER_E
 from ..physics.thermal import saturated_temperature
@@ -91,6 +92,6 @@ def plot_calibration(
             tax.set_title("traces scaled by their fitted width", fontsize=10)
     fig.tight_layout()
     out = Path(path)
-    fig.savefig(out, dpi=120)
+    atomic_savefig(fig, out, dpi=120)
     plt.close(fig)
     return out
