@@ -446,7 +446,7 @@ class Device:
         except tomllib.TOMLDecodeError as exc:
             raise InputError(source, f"not valid TOML: {exc}") from None
         if "device" in d and isinstance(d["device"], Mapping) and "gate_names" not in d:
-            d = d["device"]
+            return cls.from_dict(d["device"], source=source)
         return cls.from_dict(d, source=source)
 
     def save(self, path: str | os.PathLike[str]) -> Path:

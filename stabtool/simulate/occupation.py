@@ -128,8 +128,8 @@ def near_transition_mask(
     cover = np.zeros((ny + 1, nx + 1), np.int64)  # 2-D difference array of the far blocks
     pixel_far = None
     b = max(2, int(block))
-    r0, c0 = np.meshgrid(np.arange(0, max(ny - 1, 1), b), np.arange(0, max(nx - 1, 1), b), indexing="ij")
-    r0, c0 = r0.ravel(), c0.ravel()
+    grid_r, grid_c = np.meshgrid(np.arange(0, max(ny - 1, 1), b), np.arange(0, max(nx - 1, 1), b), indexing="ij")
+    r0, c0 = grid_r.ravel(), grid_c.ravel()
     while r0.size:
         r1, c1 = np.minimum(r0 + b, ny - 1), np.minimum(c0 + b, nx - 1)
         if b <= max(2, finest) and finest > 2:

@@ -104,7 +104,7 @@ def _array(n: int) -> Device:
         cdd_aF=cdd,
         gate_names=tuple(f"P{i + 1}" for i in range(n)),
         dot_names=tuple(f"D{i + 1}" for i in range(n)),
-        offset_charge_e=offsets,
+        offset_charge_e=offsets.tolist(),
         name=f"linear-array-{n}",
         description="Si/SiGe-like linear array from capacitances: plunger 3.5 aF, cross ratios 0.3/0.08, "
         "mutual 6 aF (neighbours), total 32 aF (E_C ~ 5 meV); ranges from memory "

@@ -244,7 +244,7 @@ def line_segments(
         out.append(
             LineSegment(
                 family=_family(dd, i1, i2),
-                dots=tuple(names[i] for i in np.nonzero(dd)[0]),
+                dots=tuple(names[int(i)] for i in np.nonzero(dd)[0]),
                 start=(float(s0[k, 0]), float(s0[k, 1])),
                 end=(float(s1[k, 0]), float(s1[k, 1])),
                 states=(tuple(int(v) for v in pa[k]), tuple(int(v) for v in pb[k])),
@@ -366,6 +366,7 @@ class Truth:
         """Inverse of :meth:`to_json` (charge state given separately)."""
         if isinstance(d, str):
             d = json.loads(d)
+        assert not isinstance(d, str)
         keys = (
             "x_gate", "y_gate", "dot1", "dot2", "slopes", "virtual_gate_matrix", "addition_voltages_V",
             "mutual_shifts_V", "gate_capacitance_aF", "lever_arm", "charging_energy_meV",
