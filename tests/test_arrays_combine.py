@@ -236,3 +236,20 @@ def test_implausible_estimate_is_left_out_of_the_mean() -> None:
     assert vgm.element("P4", "P2") == pytest.approx(0.45, abs=1e-12)
     assert [(str(r.estimate.value), r.reason) for r in vgm.rejected] == [("0.93", "implausible")]
     assert any("implausible" in w for w in vgm.quality.warnings)
+
+
+def test_single_map_elements_take_the_overall_birge_ratio_when_the_maps_disagree() -> None:
+    """Maps a, b, c (above: total χ² = 68/9 for 4 dof, p = 0.109, Birge ratio sqrt(17/9)) plus a
+    map d that alone measures M[P2-dot, P3] = 0.35 ± 0.01 and M[P3-dot, P2] = 0.33 ± 0.02.
+    Flagged at inconsistency_p = 0.2: d's errors, which no χ² can check, are scaled by
+    sqrt(17/9) (hand computation); at the default 0.01 the total is not flagged and they stay."""
+    d = PairMeasurement("P2", "P3", 0.35, 0.01, 0.33, 0.02, source="d")
+    flagged = assemble_virtual_gates(_three_maps() + [d], inconsistency_p=0.2)
+    b = math.sqrt(17 / 9)
+    assert flagged.element("P2", "P3") == pytest.approx(0.35, abs=1e-15)
+    np.testing.assert_allclose(flagged.uncertainty[1, 2], 0.01 * b, rtol=1e-12)
+    np.testing.assert_allclose(flagged.uncertainty[2, 1], 0.02 * b, rtol=1e-12)
+    np.testing.assert_allclose(flagged.uncertainty[0, 1], 1 / 90, rtol=1e-12)  # its own Birge ratio
+    assert any("measured by one map only are scaled" in w for w in flagged.quality.warnings)
+    calm = assemble_virtual_gates(_three_maps() + [d])
+    np.testing.assert_allclose(calm.uncertainty[1, 2], 0.01, rtol=1e-12)

@@ -1,7 +1,8 @@
 """Full pipeline on generator arrays: planned pair maps → Analyzer → assembled matrix.
 
 The maps follow :func:`stabtool.arrays.plan_pair_maps`, as a lab would plan
-them: every plunger–plunger pair and every plunger–sensor pair, each window
+them: every plunger–plunger pair and every plunger–sensor pair (weakly coupled
+pairs on tilted axes, so that no line lies along an axis), each window
 as wide as possible (≤ ±1.5 addition voltages) while the other dots stay
 parked in their charge cell (predicted from a generic prior of the
 couplings, not from the truth), the other gates held at the operating point
@@ -54,13 +55,15 @@ def _pipeline(n: int, pairs=None, both_orientations: bool = False):
     sensor = sensor_model(dev)
     maps = []
     for p in plan_pair_maps(desc, pairs=pairs, both_orientations=both_orientations):
-        sm = simulate_map(dev, x_gate=p.x_gate, y_gate=p.y_gate, x_range_V=p.x_range_V,
+        sm = simulate_map(dev, x_gate=p.x_axis, y_gate=p.y_axis, x_range_V=p.x_range_V,
                           y_range_V=p.y_range_V, shape=(PIXELS, PIXELS), temperature_K=0.1,
                           tunnel_coupling_ueV=10.0, fixed_V=p.fixed_V, artefacts=Artefacts(snr=SNR), sensor=sensor,
+                          x_direction=p.x_direction if p.tilted else None,
+                          y_direction=p.y_direction if p.tilted else None,
                           rng=100 * idx[p.x_gate] + idx[p.y_gate])
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            maps.append(pair_from_map(sm.data, analyzer=analyzer, source=p.name))
+            maps.append(pair_from_map(sm.data, analyzer=analyzer, source=p.name, directions=p.directions))
     vgm = assemble_virtual_gates(maps, plungers=list(desc.plungers), sensors=list(desc.sensors))
     return dev, vgm
 
@@ -101,20 +104,48 @@ def test_pipeline_not_ok_when_wrong_4_dots(array4) -> None:
     assert np.all(err[finite] <= 5 * sig[finite]), np.round(np.where(finite, err / np.where(finite, sig, 1), 0), 1)
 
 
+@pytest.fixture(scope="module")
+def array8():
+    return _pipeline(8, both_orientations=True)
+
+
 @pytest.mark.slow
 @pytest.mark.regression
-@pytest.mark.xfail(
-    strict=True,
-    reason="8 dots + sensor: worst element 0.020 > 0.01 (11 of 72 off-diagonals); near-horizontal or "
-    "near-vertical lines of weakly coupled far pairs are missed or split by the detector",
-)
-def test_pipeline_matrix_within_bound_8_dots() -> None:
-    """Every pair in both orientations (72 maps), so the stated errors are tested too."""
-    dev, vgm = _pipeline(8, both_orientations=True)
+def test_pipeline_matrix_within_bound_8_dots(array8) -> None:
+    """Every pair in both orientations (72 maps), weakly coupled pairs on tilted axes."""
+    dev, vgm = array8
     err = np.abs(vgm.matrix - truth_matrix(dev))
     if err.max() > 0.01:
         assert not vgm.quality.ok
     assert err.max() <= 0.01, _describe(dev, vgm)
+
+
+@pytest.mark.slow
+@pytest.mark.regression
+def test_pipeline_maps_agree_within_stated_errors_8_dots(array8) -> None:
+    """Honesty of the stated errors where it can be tested: each of the 72 off-diagonal elements
+    is measured twice, by maps whose detector sees its lines turned by 90°; the total χ² of the
+    two estimates about their mean must be plausible for the stated errors (p > 0.001, χ²
+    distribution from scipy.stats inside the assembly) and the Birge ratio in [0.6, 1.6]."""
+    _, vgm = array8
+    assert vgm.total_dof >= 70
+    assert vgm.overall_p_value > 0.001, f"Birge ratio {vgm.overall_birge_ratio:.2f}"
+    assert 0.6 <= vgm.overall_birge_ratio <= 1.6
+
+
+@pytest.mark.slow
+@pytest.mark.regression
+def test_pipeline_truth_within_5_sigma_8_dots(array8) -> None:
+    """The truth lies within 5 stated standard errors for every element (the elements measured by
+    one orientation only would hide a bias common to both; here each is measured twice). Residual
+    risk: a dot's lines shifted by less than a pixel at each transition of the other swept dot (the
+    sensor dot's charging steps on vP2<-SG) are not split by the fitter, and the staircase enters
+    the slope as a bias of up to δ/ΔV of the pair."""
+    dev, vgm = array8
+    err = np.abs(vgm.matrix - truth_matrix(dev))
+    sig = vgm.uncertainty
+    finite = np.isfinite(sig) & (sig > 0)
+    assert np.all(err[finite] <= 5 * sig[finite]), np.round(np.where(finite, err / np.where(finite, sig, 1), 0), 1)
 
 
 @pytest.mark.regression

@@ -33,10 +33,10 @@ def _charges_over(dev, plan, k=21):
     xs = np.linspace(*plan.x_range_V, k)
     ys = np.linspace(*plan.y_range_V, k)
     v = np.empty((k, k, len(names)))
-    for g, val in plan.fixed_V.items():
-        v[..., names.index(g)] = val
-    v[..., names.index(plan.x_gate)] = xs[None, :]
-    v[..., names.index(plan.y_gate)] = ys[:, None]
+    for iy, yv in enumerate(ys):
+        for ix, xv in enumerate(xs):
+            volts = plan.physical_voltages(xv, yv)
+            v[iy, ix] = [volts[g] for g in names]
     return ground_state(dev, v)
 
 
@@ -47,9 +47,13 @@ def test_plan_covers_every_pair_and_holds_the_rest_at_the_operating_point() -> N
     assert [p.name for p in plans] == ["P1-P2", "P1-P3", "P1-P4", "P2-P3", "P2-P4", "P3-P4",
                                        "P1-SG", "P2-SG", "P3-SG", "P4-SG"]
     for p in plans:
-        assert set(p.fixed_V) == set(dev.gate_names) - {p.x_gate, p.y_gate}
-        for g, v in p.fixed_V.items():
-            assert v == pytest.approx(desc.operating_point_V[g], abs=0)
+        centre = p.physical_voltages(float(np.mean(p.x_range_V)), float(np.mean(p.y_range_V)))
+        assert set(centre) == set(dev.gate_names)
+        for g, v in centre.items():
+            assert v == pytest.approx(desc.operating_point_V[g], abs=1e-12), (p.name, g)
+        corner = p.corners()[0]
+        for g in set(dev.gate_names) - {p.x_gate, p.y_gate}:
+            assert corner[g] == pytest.approx(desc.operating_point_V[g], abs=0)
         assert 0.7 <= min(p.half_width) and max(p.half_width) <= 1.5
 
 

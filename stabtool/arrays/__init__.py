@@ -26,7 +26,13 @@ from .convert import (
     virtual_to_physical,
 )
 from .export import matrix_to_dict, read_matrix_json, write_matrix_csv, write_matrix_json
-from .measurement import PairMeasurement, pair_from_analysis, pair_from_map, read_pair_json
+from .measurement import (
+    PairMeasurement,
+    pair_from_analysis,
+    pair_from_map,
+    read_pair_json,
+    untilt_elements,
+)
 from .plan import ArrayDescription, PairMapPlan, plan_pair_maps, prior_couplings
 
 __all__ = [
@@ -51,6 +57,7 @@ __all__ = [
     "prior_couplings",
     "read_matrix_json",
     "read_pair_json",
+    "untilt_elements",
     "virtual_name",
     "virtual_sweep",
     "virtual_to_physical",

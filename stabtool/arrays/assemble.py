@@ -305,7 +305,9 @@ def assemble_virtual_gates(
         correction, so that a large array does not raise false alarms by
         chance); the whole matrix is flagged when the p-value of the total
         χ² is below ``inconsistency_p``. Uncertainties are scaled by the
-        Birge ratio wherever it exceeds 1, flagged or not.
+        Birge ratio wherever it exceeds 1, flagged or not; when the whole
+        matrix is flagged, the uncertainties of elements measured by one map
+        only (which no χ² can check) are scaled by the overall Birge ratio.
     reject_doubtful : bool
         Leave out the estimates of maps whose analysis is not ok wherever an
         ok map measured the same element (listed in ``rejected``). Where only
@@ -482,10 +484,19 @@ def assemble_virtual_gates(
         total_chi2 = float(np.nansum(np.where(dof > 0, chi2, 0.0)))
         p_total = float(stats.chi2.sf(total_chi2, total_dof))
         if p_total < inconsistency_p:
+            b_all = math.sqrt(total_chi2 / total_dof)
+            single = (n_est == 1) & np.isfinite(unc) & (unc > 0)
+            scaled = ""
+            if single.any():
+                # elements measured once cannot be checked by themselves: the elements measured
+                # more than once show by how much the maps' stated errors are too small
+                unc[single] *= b_all
+                scaled = (f"; the uncertainties of the {int(single.sum())} element(s) measured by one map only "
+                          f"are scaled by this Birge ratio")
             quality = quality.with_warning(
                 f"maps disagree overall beyond their stated errors (chi2={total_chi2:.3g} for {total_dof} dof, "
-                f"Birge ratio {math.sqrt(total_chi2 / total_dof):.3g}, p={p_total:.2g}); the stated "
-                "uncertainties of the maps are probably too small")
+                f"Birge ratio {b_all:.3g}, p={p_total:.2g}); the stated "
+                "uncertainties of the maps are probably too small" + scaled)
     if no_error:
         quality = quality.with_warning("no uncertainty available for " + ", ".join(no_error))
 

@@ -11,6 +11,19 @@ virtual-gate matrix (see :mod:`stabtool.physics.virtual_gates`):
 These are the off-diagonal elements of the 2×2 ``virtual_gate_matrix`` of
 ``stabtool analyze --json``. For a map of a plunger against the sensor gate,
 "dot2" is the sensor dot.
+
+A map may be swept along tilted axes (see :mod:`stabtool.arrays.plan`): the
+x sweep parameter u steps the gates by ``a = (a_x, a_y)`` per volt, the y
+parameter v by ``b = (b_x, b_y)``. The analysis then measures the matrix in
+(u, v), ``M_uv = M A`` restricted to the pair (``A = [a b]``, columns), and
+:func:`untilt_elements` gives back the physical elements:
+
+    ``M[dot(x), y] = (m a_x − b_x)/(b_y − m a_y)``,  ``m = M_uv[dot(x), v]``;
+    ``M[dot(y), x] = (m′ b_y − a_y)/(a_x − m′ b_x)``, ``m′ = M_uv[dot(y), u]``,
+
+with first-order errors ``det A/(b_y − m a_y)²·σ_m`` and
+``det A/(a_x − m′ b_x)²·σ_m′`` (change of basis of the row vectors, common
+linear algebra, no source).
 """
 
 from __future__ import annotations
@@ -27,7 +40,10 @@ from ..errors import InputError
 from ..physics.virtual_gates import element_from_x_dot_slope, element_from_y_dot_slope
 from ..quality import Quality
 
-__all__ = ["PairMeasurement", "pair_from_analysis", "pair_from_map", "read_pair_json"]
+__all__ = ["PairMeasurement", "pair_from_analysis", "pair_from_map", "read_pair_json", "untilt_elements"]
+
+#: Map attribute that may describe tilted sweep axes: ``{axis: {gate: coefficient}}`` (or its JSON text).
+SWEEP_DIRECTIONS_ATTR = "stabtool_sweep_directions"
 
 # Keys under which an analysis may store the element errors of its 2×2 matrix.
 _MATRIX_ERROR_KEYS = (
@@ -138,7 +154,12 @@ def _matrix_errors(obj: Mapping[str, Any]) -> Any:
     return None
 
 
-def pair_from_analysis(obj: Mapping[str, Any], *, source: str = "") -> PairMeasurement:
+def pair_from_analysis(
+    obj: Mapping[str, Any],
+    *,
+    source: str = "",
+    directions: Mapping[str, Mapping[str, float]] | None = None,
+) -> PairMeasurement:
     """Reduce an analysis result (the JSON object of ``stabtool analyze --json``) to a pair.
 
     Parameters
@@ -151,11 +172,17 @@ def pair_from_analysis(obj: Mapping[str, Any], *, source: str = "") -> PairMeasu
         ``slope_errors``.
     source : str
         File name used in messages.
+    directions : mapping, optional
+        ``{axis name: {gate: coefficient}}`` for a map swept along tilted
+        axes (:attr:`stabtool.arrays.PairMapPlan.directions`); the result is
+        converted to the two physical gates (:func:`untilt_elements`). Axes
+        not listed are physical gates.
 
     Raises
     ------
     InputError
-        When the object lacks the gate names or any usable coupling.
+        When the object lacks the gate names or any usable coupling, or the
+        directions do not describe two independent combinations of two gates.
     """
     src = source or None
     if not isinstance(obj, Mapping):
@@ -201,10 +228,85 @@ def pair_from_analysis(obj: Mapping[str, Any], *, source: str = "") -> PairMeasu
     if not (math.isfinite(m_xy) or math.isfinite(m_yx)):
         raise InputError(src, f"no cross-coupling could be read for gates {xg!r}/{yg!r} "
                          "(virtual_gate_matrix and slopes are null)")
-    return PairMeasurement(
+    pm = PairMeasurement(
         x_gate=xg, y_gate=yg, m_xy=m_xy, m_xy_err=m_xy_err, m_yx=m_yx, m_yx_err=m_yx_err,
         source=source, quality=quality,
     )
+    if directions and (xg in directions or yg in directions):
+        pm = _untilt(pm, directions, src)
+    return pm
+
+
+def untilt_elements(
+    m_uv_xy: float,
+    m_uv_xy_err: float,
+    m_uv_yx: float,
+    m_uv_yx_err: float,
+    *,
+    a: tuple[float, float],
+    b: tuple[float, float],
+) -> tuple[float, float, float, float]:
+    """Physical elements of a pair from the elements measured on tilted axes.
+
+    Parameters
+    ----------
+    m_uv_xy, m_uv_xy_err : float
+        ``M_uv[dot(x), v]`` (normalised on u) and its standard error.
+    m_uv_yx, m_uv_yx_err : float
+        ``M_uv[dot(y), u]`` (normalised on v) and its standard error.
+    a, b : (float, float)
+        Steps of the (x, y) gates per volt of the u (x axis) and v (y axis)
+        sweep parameters; ``a = (1, 0), b = (0, 1)`` for a plain map.
+
+    Returns
+    -------
+    (m_xy, m_xy_err, m_yx, m_yx_err) : floats
+        ``M[dot(x), y]``, ``M[dot(y), x]`` and their first-order errors (NaN
+        where the input is NaN or the conversion is singular).
+    """
+    ax, ay = (float(v) for v in a)
+    bx, by = (float(v) for v in b)
+    det = ax * by - ay * bx
+    if not math.isfinite(det) or det == 0.0:
+        raise InputError("directions", "the two sweep directions are parallel (no 2-D map)")
+    nan = float("nan")
+    m_xy = e_xy = m_yx = e_yx = nan
+    den = by - m_uv_xy * ay
+    if math.isfinite(m_uv_xy) and den != 0.0:
+        m_xy = (m_uv_xy * ax - bx) / den
+        e_xy = abs(det) / den**2 * abs(m_uv_xy_err) if math.isfinite(m_uv_xy_err) else nan
+    den = ax - m_uv_yx * bx
+    if math.isfinite(m_uv_yx) and den != 0.0:
+        m_yx = (m_uv_yx * by - ay) / den
+        e_yx = abs(det) / den**2 * abs(m_uv_yx_err) if math.isfinite(m_uv_yx_err) else nan
+    return m_xy, e_xy, m_yx, e_yx
+
+
+def _untilt(pm: PairMeasurement, directions: Mapping[str, Mapping[str, float]], src: Any) -> PairMeasurement:
+    """Convert a pair measured on axes named in ``directions`` to its physical gates."""
+    dirs = {}
+    for axis in (pm.x_gate, pm.y_gate):
+        d = directions.get(axis, {axis: 1.0})
+        if not isinstance(d, Mapping) or not d:
+            raise InputError(src, f"sweep direction of axis {axis!r} must be {{gate: coefficient}}")
+        try:
+            dirs[axis] = {str(g): float(c) for g, c in d.items()}
+        except (TypeError, ValueError):
+            raise InputError(src, f"sweep direction of axis {axis!r} has a non-numeric coefficient") from None
+    dx, dy = dirs[pm.x_gate], dirs[pm.y_gate]
+    gates = list(dict.fromkeys(list(dx) + list(dy)))
+    if len(gates) != 2:
+        raise InputError(src, f"tilted axes {pm.x_gate!r}/{pm.y_gate!r} must combine exactly two gates, "
+                         f"got {', '.join(gates)}")
+    xg = max(dx, key=lambda g: abs(dx[g]))
+    yg = gates[1] if gates[0] == xg else gates[0]
+    if abs(dy.get(yg, 0.0)) <= abs(dy.get(xg, 0.0)):
+        raise InputError(src, f"axis {pm.y_gate!r} must move {yg!r} more than {xg!r}")
+    a = (dx.get(xg, 0.0), dx.get(yg, 0.0))
+    b = (dy.get(xg, 0.0), dy.get(yg, 0.0))
+    m_xy, e_xy, m_yx, e_yx = untilt_elements(pm.m_xy, pm.m_xy_err, pm.m_yx, pm.m_yx_err, a=a, b=b)
+    return PairMeasurement(x_gate=xg, y_gate=yg, m_xy=m_xy, m_xy_err=e_xy, m_yx=m_yx, m_yx_err=e_yx,
+                           source=pm.source, quality=pm.quality)
 
 
 def read_pair_json(path: str | os.PathLike[str]) -> PairMeasurement:
@@ -221,7 +323,13 @@ def read_pair_json(path: str | os.PathLike[str]) -> PairMeasurement:
     return pair_from_analysis(obj, source=str(p))
 
 
-def pair_from_map(da: Any, *, analyzer: Any = None, source: str | None = None) -> PairMeasurement:
+def pair_from_map(
+    da: Any,
+    *,
+    analyzer: Any = None,
+    source: str | None = None,
+    directions: Mapping[str, Mapping[str, float]] | None = None,
+) -> PairMeasurement:
     """Analyse a map (2-D DataArray) and reduce the result to a :class:`PairMeasurement`.
 
     Parameters
@@ -232,6 +340,10 @@ def pair_from_map(da: Any, *, analyzer: Any = None, source: str | None = None) -
         The configured pipeline (default ``Analyzer()``).
     source : str, optional
         Name used in messages (default ``da.attrs["source"]``).
+    directions : mapping, optional
+        Sweep directions of tilted axes (see :func:`pair_from_analysis`).
+        Default: the map's attribute ``stabtool_sweep_directions`` (a mapping
+        or its JSON text), if present.
     """
     if analyzer is None:
         from ..analysis import Analyzer
@@ -242,4 +354,14 @@ def pair_from_map(da: Any, *, analyzer: Any = None, source: str | None = None) -
     if isinstance(obj, str):
         obj = json.loads(obj)
     src = source if source is not None else str(da.attrs.get("source", f"{da.dims[-1]}/{da.dims[0]} map"))
-    return pair_from_analysis(obj, source=src)
+    if directions is None:
+        attr = getattr(da, "attrs", {}).get(SWEEP_DIRECTIONS_ATTR)
+        if isinstance(attr, str):
+            try:
+                attr = json.loads(attr)
+            except json.JSONDecodeError:
+                raise InputError(src, f"attribute {SWEEP_DIRECTIONS_ATTR} is not valid JSON") from None
+        if attr is not None and not isinstance(attr, Mapping):
+            raise InputError(src, f"attribute {SWEEP_DIRECTIONS_ATTR} must be {{axis: {{gate: coefficient}}}}")
+        directions = attr
+    return pair_from_analysis(obj, source=src, directions=directions)

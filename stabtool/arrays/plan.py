@@ -17,7 +17,23 @@ neighbour map); then each axis alone is widened as far as the other dots
 allow (long lines help the slopes of the nearly vertical/horizontal lines of
 weakly coupled gates). The prediction includes the relief when a swept dot
 gains an electron (``E_Cm/E_C`` of the parked dot). The other gates are held
-at the operating point. Pairs whose
+at the operating point.
+
+Weakly coupled pairs (far apart in the array, or a plunger and a distant
+sensor gate) have lines within a degree or two of the sweep axes. The crossing
+points of lines sharper than a pixel are quantised by the pixel grid in the
+same way along the whole of such a line, so its slope comes out biased towards
+the axis by many of its stated errors (8-dot generator array, 100 px maps at
+100 mK: elements of 0.013–0.08 read as 0.000–0.06, up to 35 stated σ; finer
+pixels shrink the bias but not the ratio to the stated error, broad lines at
+0.6 K remove it). Those pairs are therefore swept along tilted axes — the y
+axis also steps the x gate by up to ``tilt`` per volt (and vice versa) — so
+that their lines cross the pixel grid at an angle like a neighbour pair's
+(≥ 7° from both axes on the generator arrays, instead of 0.5°); the exact 2×2
+change of basis
+(:func:`stabtool.arrays.measurement.untilt_elements`) gives back the physical
+elements. Sweeping combinations of gates is how virtual-gate sweeps are run
+in any case (common practice, no source). Pairs whose
 window must shrink below ``min_half_width`` (fewer than one line of each swept
 dot on each side of the centre) are kept but carry a note: expect lines of
 another dot in that map, and do not trust it alone.
@@ -93,17 +109,26 @@ class PairMapPlan:
     Attributes
     ----------
     x_gate, y_gate : str
-        Swept gates (x fast).
+        The two physical gates of the pair (x fast). The map measures
+        ``M[dot(x), y]`` and ``M[dot(y), x]``.
     x_range_V, y_range_V : (float, float)
-        Sweep ranges, V.
+        Sweep ranges of the two axes, V. For physical axes (no tilt) these
+        are the gate voltages; for tilted axes they are offsets ``u``, ``v``
+        of the sweep parameters around the operating point (see
+        :meth:`physical_voltages`).
     fixed_V : dict gate → V
-        Voltages of every other gate during the map.
+        Voltages of every gate that is not swept as itself: the other gates,
+        and, for tilted axes, also the operating point of x and y.
     half_width : (float, float)
         Half-widths in addition voltages of the two swept dots.
     worst_excursion : float
         Largest predicted ``|u_d|`` of another dot (in its addition voltages).
     note : str
         Empty, or why the map may hold lines of another dot.
+    x_direction, y_direction : dict gate → coefficient
+        Physical gate steps per volt of the x (y) sweep parameter:
+        ``{x_gate: 1}`` (``{y_gate: 1}``) for a plain map; a tilted axis also
+        moves the other gate of the pair, e.g. ``{"P1": 1, "P8": 0.25}``.
     """
 
     x_gate: str
@@ -114,14 +139,59 @@ class PairMapPlan:
     half_width: tuple[float, float]
     worst_excursion: float
     note: str = ""
+    x_direction: dict[str, float] = field(default_factory=dict)
+    y_direction: dict[str, float] = field(default_factory=dict)
 
     @property
     def name(self) -> str:
         """``"<x>-<y>"``."""
         return f"{self.x_gate}-{self.y_gate}"
 
+    @property
+    def tilted(self) -> bool:
+        """True when a sweep axis moves both gates of the pair."""
+        return any(len(d) > 1 for d in (self.x_direction, self.y_direction))
 
-_GRID = np.linspace(-1.0, 1.0, 201)
+    @property
+    def x_axis(self) -> str:
+        """Name of the x sweep axis: the gate itself, or ``"<x>_tilt_<y>"`` in a tilted map
+        (a sweep parameter, offset from the operating point; unique to the pair, because the
+        same gate is tilted by other amounts in other maps)."""
+        return f"{self.x_gate}_tilt_{self.y_gate}" if self.tilted else self.x_gate
+
+    @property
+    def y_axis(self) -> str:
+        """Name of the y sweep axis: the gate itself, or ``"<y>_tilt_<x>"`` in a tilted map."""
+        return f"{self.y_gate}_tilt_{self.x_gate}" if self.tilted else self.y_gate
+
+    @property
+    def directions(self) -> dict[str, dict[str, float]]:
+        """``{axis name: {physical gate: coefficient}}`` of both axes (the input of
+        :func:`stabtool.arrays.pair_from_map` / :func:`~stabtool.arrays.pair_from_analysis`)."""
+        return {self.x_axis: dict(self.x_direction or {self.x_gate: 1.0}),
+                self.y_axis: dict(self.y_direction or {self.y_gate: 1.0})}
+
+    def physical_voltages(self, x: float, y: float) -> dict[str, float]:
+        """Every gate's physical voltage at sweep position (x, y) of this map, V.
+
+        Plain axes: x and y are the gate voltages. Tilted axes:
+        ``V_g = fixed_V[g] + x_direction[g]·x + y_direction[g]·y``.
+        """
+        out = dict(self.fixed_V)
+        if not self.tilted:
+            out[self.x_gate], out[self.y_gate] = float(x), float(y)
+            return out
+        for d, val in ((self.x_direction, x), (self.y_direction, y)):
+            for g, c in d.items():
+                out[g] = out.get(g, 0.0) + float(c) * float(val)
+        return out
+
+    def corners(self) -> tuple[dict[str, float], ...]:
+        """Physical voltages at the four corners of the window (check them against gate limits)."""
+        return tuple(self.physical_voltages(x, y) for y in self.y_range_V for x in self.x_range_V)
+
+
+_GRID = np.linspace(-1.0, 1.0, 121)
 
 
 def _count(v: np.ndarray) -> np.ndarray:
@@ -133,32 +203,37 @@ def _count(v: np.ndarray) -> np.ndarray:
 class _Excursion:
     """Predicted excursion of the parked dots over a window (half-widths in addition voltages).
 
-    ``u_d = a_d·vx + b_d·vy − ra_d·n(vx) − rb_d·n(vy)`` on a grid of the window, with
-    ``n`` the swept dot's signed number of transitions; returns (max |u|, index of that dot).
+    Every dot k's potential, in its own addition voltages, moves by
+    ``φ_k = A_k·hx·gx + B_k·hy·gy`` over the window (``gx, gy ∈ [−1, 1]``);
+    a parked dot d sees ``u_d = φ_d − r_di·n(φ_i) − r_dj·n(φ_j)`` with ``n``
+    the swept dots' signed number of transitions. Returns (max |u|, index of that dot).
     """
 
     others: list[int]
-    a: np.ndarray
-    b: np.ndarray
-    ra: np.ndarray
-    rb: np.ndarray
+    swept: tuple[int, int]
+    a: np.ndarray  # A_k for every row k
+    b: np.ndarray  # B_k for every row k
+    rel: np.ndarray  # (n_rows, n_rows) mutual relief
 
     def __call__(self, hx: float, hy: float) -> tuple[float, int]:
         if not self.others:
             return 0.0, -1
-        vx, vy = hx * _GRID, hy * _GRID
-        u = (self.a[:, None, None] * vx[None, None, :] + self.b[:, None, None] * vy[None, :, None]
-             - self.ra[:, None, None] * _count(vx)[None, None, :]
-             - self.rb[:, None, None] * _count(vy)[None, :, None])
+        gx, gy = _GRID[None, :], _GRID[:, None]
+        i, j = self.swept
+        ni = _count(self.a[i] * hx * gx + self.b[i] * hy * gy)
+        nj = _count(self.a[j] * hx * gx + self.b[j] * hy * gy)
+        o = np.asarray(self.others)
+        u = (self.a[o, None, None] * hx * gx[None] + self.b[o, None, None] * hy * gy[None]
+             - self.rel[o, i, None, None] * ni[None] - self.rel[o, j, None, None] * nj[None])
         worst = np.abs(u).reshape(len(self.others), -1).max(axis=1)
         return float(worst.max()), self.others[int(np.argmax(worst))]
 
 
 def _grow(fits: Callable[[float], bool], lo: float, hi: float) -> float:
-    """Largest value in [lo, hi] for which ``fits`` holds (``fits(lo)`` assumed; bisection, 2⁻³⁰ of the span)."""
+    """Largest value in [lo, hi] for which ``fits`` holds (``fits(lo)`` assumed; bisection, 2⁻²⁰ of the span)."""
     if fits(hi):
         return hi
-    for _ in range(30):
+    for _ in range(20):
         mid = 0.5 * (lo + hi)
         lo, hi = (mid, hi) if fits(mid) else (lo, mid)
     return lo
@@ -211,6 +286,7 @@ def plan_pair_maps(
     min_half_width: float = 0.7,
     margin: float = 0.42,
     both_orientations: bool = False,
+    tilt: float = 0.25,
 ) -> tuple[PairMapPlan, ...]:
     """Plan one map per gate pair: windows and fixed voltages that park the other dots.
 
@@ -234,6 +310,19 @@ def plan_pair_maps(
         twice the maps, but every element is measured twice by maps in which
         the detector sees its lines turned by 90°, so the assembly's χ² tests
         whether the stated errors hold.
+    tilt : float
+        Weakly coupled pairs are swept on tilted axes: where the prior
+        coupling ``m = M0[dot(x), y]`` is below ``tilt``, the y axis also steps
+        x by ``tilt − m`` per volt (``y_direction = {x: tilt − m, y: 1}``), so
+        that dot(x)'s lines look like those of a pair coupled by about
+        ``tilt``; likewise the x axis steps y where ``M0[dot(y), x] < tilt``.
+        Otherwise the lines
+        of such a pair lie within a degree or two of an axis, where the
+        crossing points of sharp lines are quantised by the pixel grid in a
+        way that does not average out along the line (the slopes come out
+        biased towards the axis, by many of their stated errors). 0: plain
+        axes for every pair. :func:`~stabtool.arrays.pair_from_map` converts
+        the tilted map's elements back to the physical gates.
 
     Returns
     -------
@@ -258,6 +347,8 @@ def plan_pair_maps(
             raise InputError(name, f"no value for gate(s) {', '.join(missing)}")
     if not 0.0 < margin < 0.5:
         raise InputError("margin", f"must be in (0, 0.5), got {margin}")
+    if not 0.0 <= tilt < 1.0:
+        raise InputError("tilt", f"must be in [0, 1), got {tilt}")
     if not 0.0 < min_half_width <= max_half_width:
         raise InputError("min_half_width", "need 0 < min_half_width <= max_half_width")
     m0 = desc.prior if desc.prior is not None else prior_couplings(desc.positions, rows, sensors=desc.sensors)
@@ -288,12 +379,17 @@ def plan_pair_maps(
             raise InputError("pairs", f"pair ({x!r}, {y!r}) is not two different plunger/sensor gates")
         i, j = idx[x], idx[y]
         others = [d for d in range(len(rows)) if d not in (i, j)]
+        # tilted axes where a family would lie within a few degrees of an axis: the lines of dot(x)
+        # get slope −(1 + tilt·M[x,y])/(M[x,y] + tilt) instead of −1/M[x,y] (y axis moves x too),
+        # likewise dot(y) with the x axis moving y
+        t_y = max(tilt - m0[i, j], 0.0)  # coefficient of x on the y axis (for dot(x)'s lines)
+        t_x = max(tilt - m0[j, i], 0.0)  # coefficient of y on the x axis (for dot(y)'s lines)
+        ax, ay, bx, by = 1.0, t_x, t_y, 1.0
         exc = _Excursion(
-            others=others,
-            a=np.array([m0[d, i] * add[i] / add[d] for d in others]),
-            b=np.array([m0[d, j] * add[j] / add[d] for d in others]),
-            ra=np.array([rel[d, i] for d in others]),
-            rb=np.array([rel[d, j] for d in others]),
+            others=others, swept=(i, j),
+            a=(m0[:, i] * ax + m0[:, j] * ay) * add[i] / add,
+            b=(m0[:, i] * bx + m0[:, j] * by) * add[j] / add,
+            rel=rel,
         )
         h = _grow(lambda v, e=exc: e(v, v)[0] <= margin, 0.0, max_half_width)
         note = ""
@@ -302,18 +398,24 @@ def plan_pair_maps(
             note = (f"window limited by dot {rows[k]}: a window of ±{min_half_width:g} addition voltages "
                     "probably shows its lines too")
             h = min_half_width
-        # then widen each axis alone as far as the other dots allow (long lines help the slopes
-        # of nearly vertical/horizontal lines of weakly coupled gates)
+        # then widen each axis alone as far as the other dots allow (long lines help the slopes)
         limit = max(margin, exc(h, h)[0])
         hx = _grow(lambda v, e=exc, h=h, lim=limit: e(v, h)[0] <= lim, h, max_half_width)
         hy = _grow(lambda v, e=exc, hx=hx, lim=limit: e(hx, v)[0] <= lim, h, max_half_width)
         ex = exc(hx, hy)[0]
-        fixed = {g: float(v) for g, v in desc.operating_point_V.items() if g not in (x, y)}
         cx, cy = float(desc.operating_point_V[x]), float(desc.operating_point_V[y])
+        if t_x or t_y:
+            fixed = {g: float(v) for g, v in desc.operating_point_V.items()}
+            xr, yr = (-hx * add[i], hx * add[i]), (-hy * add[j], hy * add[j])
+            xd = {x: 1.0, y: float(t_x)} if t_x else {x: 1.0}
+            yd = {x: float(t_y), y: 1.0} if t_y else {y: 1.0}
+        else:
+            fixed = {g: float(v) for g, v in desc.operating_point_V.items() if g not in (x, y)}
+            xr, yr = (cx - hx * add[i], cx + hx * add[i]), (cy - hy * add[j], cy + hy * add[j])
+            xd, yd = {x: 1.0}, {y: 1.0}
         out.append(PairMapPlan(
-            x_gate=x, y_gate=y,
-            x_range_V=(cx - hx * add[i], cx + hx * add[i]),
-            y_range_V=(cy - hy * add[j], cy + hy * add[j]),
+            x_gate=x, y_gate=y, x_range_V=xr, y_range_V=yr,
             fixed_V=fixed, half_width=(hx, hy), worst_excursion=ex, note=note,
+            x_direction=xd, y_direction=yd,
         ))
     return tuple(out)

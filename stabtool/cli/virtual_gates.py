@@ -74,6 +74,10 @@ def register(subparsers: Any) -> None:
                    help="allowed physical range of a gate; the sweep corners are checked; repeatable")
     p.add_argument("--sweep-csv", metavar="OUT.csv",
                    help="write the physical voltages of every point of the --sweep (long CSV)")
+    p.add_argument("--axis", action="append", default=[], metavar="NAME=G1:C1,G2:C2",
+                   help="a tilted sweep axis of the inputs: axis NAME stepped gate G1 by C1 and G2 by C2 "
+                   "per volt (e.g. P1_tilt_P8=P1:1,P8:0.23); maps on such axes are converted to the physical "
+                   "gates; repeatable")
     p.add_argument("--x", dest="x_gate", metavar="GATE", help="for map inputs: gate on x")
     p.add_argument("--y", dest="y_gate", metavar="GATE", help="for map inputs: gate on y")
     p.add_argument("--var", metavar="NAME", help="for map inputs: measured variable")
@@ -120,6 +124,27 @@ def _parse_range(spec: str, param: str) -> tuple[str, float, float, int]:
     return name, lo, hi, n
 
 
+def _parse_axes(specs: list[str]) -> dict[str, dict[str, float]]:
+    """``NAME=G1:C1,G2:C2`` → ``{NAME: {G1: C1, G2: C2}}``."""
+    out: dict[str, dict[str, float]] = {}
+    for spec in specs:
+        name, value = _split(spec, "--axis")
+        comb: dict[str, float] = {}
+        for part in (t.strip() for t in value.split(",") if t.strip()):
+            gate, sep, coef = part.partition(":")
+            try:
+                c = float(coef)
+            except ValueError:
+                c = float("nan")
+            if not sep or not gate.strip() or not np.isfinite(c):
+                raise InputError("--axis", f"{spec!r}: expected {name}=GATE:COEFFICIENT[,GATE:COEFFICIENT]")
+            comb[gate.strip()] = c
+        if not comb:
+            raise InputError("--axis", f"{spec!r}: no gate given")
+        out[name] = comb
+    return out
+
+
 def _names(text: str | None) -> list[str] | None:
     return None if text is None else [t.strip() for t in text.split(",") if t.strip()]
 
@@ -142,7 +167,7 @@ def _analyse_map(path: Path, args: argparse.Namespace) -> PairMeasurement:
 
     kwargs = {k: v for k, v in (("x", args.x_gate), ("y", args.y_gate), ("var", args.var)) if v}
     da = load(path, **kwargs)
-    return pair_from_map(da, source=str(path))
+    return pair_from_map(da, source=str(path), directions=_parse_axes(args.axis) or None)
 
 
 def _read_inputs(args: argparse.Namespace) -> VirtualGateMatrix:
@@ -159,7 +184,7 @@ def _read_inputs(args: argparse.Namespace) -> VirtualGateMatrix:
                     raise InputError(path, "a saved matrix must be the only input (it is used as is)")
                 saved = matrix_from_dict(obj, source=str(path))
                 continue
-            pairs.append(pair_from_analysis(obj, source=str(path)))
+            pairs.append(pair_from_analysis(obj, source=str(path), directions=_parse_axes(args.axis) or None))
         else:
             pairs.append(_analyse_map(path, args))
     if saved is not None:
