@@ -12,6 +12,7 @@ import pytest
 
 from stabtool.physics.constants import E_AC, KB_EV_PER_K
 from stabtool.simulate import presets
+from stabtool.simulate.cells import ground_state_plane as cells_ground_state_plane
 from stabtool.simulate.cells import plane_cells, rasterize_cells
 from stabtool.simulate.occupation import averaging_cut, near_transition_mask, occupations
 from stabtool.simulate.quick import double_dot_window
@@ -48,6 +49,56 @@ def test_cells_of_a_plane_sweep_match_brute_force(n):
         )
         assert area == pytest.approx((nx - 1) * (ny - 1), rel=1e-9)
         assert {tuple(s) for s in brute.reshape(-1, n).tolist()} <= {tuple(s) for s in cells.states.tolist()}
+
+
+@pytest.mark.parametrize("box_max", [4096, 1])
+def test_eight_dot_random_device_map_matches_brute_force(monkeypatch, box_max):
+    # box_max = 1 forces the path without the candidate box (grid seeds, certificate rounds)
+    cells_mod = importlib.import_module("stabtool.simulate.cells")
+    monkeypatch.setattr(cells_mod, "_BOX_MAX", box_max)
+    rng = np.random.default_rng(808)
+    _, cdd = random_device(8, rng)
+    ec = E_AC * np.linalg.inv(cdd)
+    ny, nx = 30, 34
+    origin = rng.uniform(-0.2, 0.4, 8)
+    du = rng.uniform(0.0, 0.2, 8) * 1.8 / nx
+    dw = rng.uniform(0.0, 0.2, 8) * 1.8 / ny
+    du[3], dw[4] = 1.8 / nx, 1.8 / ny  # the middle pair is swept across several lines
+    ours = cells_mod.ground_state_plane(origin, du, dw, (ny, nx), ec)
+    n0 = origin + np.arange(nx)[None, :, None] * du + np.arange(ny)[:, None, None] * dw
+    brute = gs.brute_force_ground_state(n0, ec, np.zeros(8), np.full(8, 3))
+    assert brute.max() < 3  # the window held the minimum
+    assert len({tuple(s) for s in brute.reshape(-1, 8).tolist()}) > 8  # several cells
+    np.testing.assert_array_equal(ours, brute)
+
+
+def test_exact_ties_go_to_the_lexicographically_smallest_state():
+    # Dyadic E_C, induced charges and steps make every energy exact in floating point, so a
+    # pixel can sit exactly on a cell boundary. Brute-force enumeration in lexicographic order
+    # with argmin then returns the first (smallest) degenerate state; the cells must agree.
+    ec = np.array([[4.0, 1.0, 0.5], [1.0, 4.0, 1.0], [0.5, 1.0, 4.0]]) / 256  # eV
+    su = np.array([1 / 32, 1 / 128, 0.0])
+    sw = np.array([1 / 128, 1 / 32, 1 / 256])
+    ny, nx = 24, 32
+    row, col = 12, 20
+    n_here, v = np.array([1, 1, 1]), np.array([0, 0, 1])
+    # shift n0 along dot 3 so that U(N) = U(N + v) at the pixel: ½vᵀEv + vᵀE(N − n0) = 0
+    base = np.array([0.25, 0.25, 0.75])
+    n0_pix = base + col * su + row * sw
+    shift = (0.5 * v @ ec @ v + v @ ec @ (n_here - n0_pix)) / ec[2, 2]
+    n00 = base + np.array([0.0, 0.0, shift])
+    n0 = n00 + np.arange(nx)[None, :, None] * su + np.arange(ny)[:, None, None] * sw
+    states = np.stack(np.meshgrid(*[np.arange(5)] * 3, indexing="ij"), axis=-1).reshape(-1, 3)
+    energy = gs.ci_energy(states, n0[row, col], ec)
+    degenerate = states[energy == energy.min()]
+    np.testing.assert_array_equal(degenerate, [[1, 1, 1], [1, 1, 2]])  # an exact two-fold tie
+    brute = gs.brute_force_ground_state(n0, ec, np.zeros(3), np.full(3, 4))
+    assert brute.max() < 4
+    ours = cells_ground_state_plane(n00, su, sw, (ny, nx), ec)
+    np.testing.assert_array_equal(ours[row, col], [1, 1, 1])
+    np.testing.assert_array_equal(ours, brute)
+    cells = plane_cells(n00, su, sw, (ny, nx), ec)
+    np.testing.assert_array_equal(rasterize_cells(cells), brute)
 
 
 def test_eight_dot_preset_map_from_cells_matches_brute_force():

@@ -83,6 +83,31 @@ def test_relevant_vector_count_for_a_generic_lattice_is_voronoi_maximum():
         assert len({tuple(v) for v in rel.tolist()}) == rel.shape[0]
 
 
+@pytest.mark.parametrize("n", [3, 4])
+def test_relevant_vectors_follow_voronois_coset_rule(n):
+    # Voronoi's theorem (Conway & Sloane, ch. 2 and 21): a nonzero lattice vector v is
+    # relevant iff ±v are the only shortest vectors of its coset v + 2Z^n. Reference: every
+    # vector of the box [-3, 3]^n (far larger than the shortest coset vectors of these
+    # well-conditioned lattices), grouped by coset.
+    rng = np.random.default_rng(40 + n)
+    for _ in range(3):
+        _, cdd = random_device(n, rng)
+        ec = E_AC * np.linalg.inv(cdd)
+        box = np.stack(np.meshgrid(*[np.arange(-3, 4)] * n, indexing="ij"), axis=-1).reshape(-1, n)
+        norm = np.einsum("ki,ij,kj->k", box, ec, box)
+        coset = (box & 1) @ (1 << np.arange(n))
+        expected, lam = set(), 0.0
+        for c in range(1, 2**n):
+            members = np.flatnonzero(coset == c)
+            lam = max(lam, norm[members].min())
+            shortest = members[norm[members] <= norm[members].min() * (1 + 1e-9)]
+            if shortest.size == 2:
+                expected |= {tuple(box[k]) for k in shortest}
+        # the box holds every vector as short as the longest coset minimum: |v_i| ≤ sqrt(λ (E⁻¹)_ii)
+        assert np.all(np.sqrt(lam * np.diag(np.linalg.inv(ec))) < 4)
+        assert {tuple(v) for v in gs.relevant_vectors(ec).tolist()} == expected
+
+
 def test_ground_state_with_device_uses_offsets():
     dev = Device(cdg_aF=[[10.0]], cdd_aF=[[40.0]], gate_names=["PG"], dot_names=["D"], offset_charge_e=[0.5])
     # n0 = C_g V / e + q0; the 0→1 transition is at n0 = ½, i.e. V = 0 here

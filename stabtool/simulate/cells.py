@@ -1,40 +1,49 @@
-"""Ground-state cells of a plane sweep: exact polygons, then pixels.
+"""Ground-state cells of a plane sweep: the lower envelope of energy planes.
 
 In a sweep of two gates on linear axes the induced charge is affine in the
 pixel position ``p = (u, w)`` (u = column, w = row, both continuous):
-``n₀(p) = n₀₀ + u·s_x + w·s_y``. For a fixed charge state ``N`` and a move
-``v`` the energy change
+``n₀(p) = n₀₀ + u·s_u + w·s_w``. Up to a term common to every state, the
+energy of the charge state ``N`` is then a plane over the pixel plane,
 
-    ΔU_v(N; p) = U(N + v, p) − U(N, p) = ½ vᵀE_C v + vᵀE_C (N − n₀(p))
+    U_N(u, w) = c_N − u·a_N − w·b_N,
+    c_N = ½ NᵀE_C N − NᵀE_C n₀₀,  a_N = NᵀE_C s_u,  b_N = NᵀE_C s_w,
 
-is therefore affine in ``p``, and the region where ``N`` is the ground state,
-``{p : U(N, p) ≤ U(N', p) for all N' ≥ 0}``, is an intersection of
-half-planes: a convex polygon (its *cell*). The map is a tiling of the
-window by such cells, so it is found without visiting the pixels:
+and the ground-state map is the lower envelope of these planes: a tiling of
+the window by convex polygons (the *cells*), one per state. It is found
+without visiting the pixels:
 
-1. the ground state at one corner pixel is found by the pixel-wise search
-   of :mod:`.ground_state` (descent plus Voronoi certificate);
-2. the cell of a state ``N`` is the window rectangle clipped by the
-   half-planes ``ΔU_v(N; p) ≥ 0`` for every Voronoi-relevant vector ``v``
-   with ``N + v ≥ 0`` (Voronoi's theorem: they decide whether ``N`` is the
-   closest lattice point; constraints that hold at the four window corners
-   hold in the whole window, by convexity, and are skipped; the rest are
-   applied most-violated first until every remaining one holds at every
-   vertex of the polygon, which proves it holds on the polygon);
-3. each edge of a cell that comes from a move ``v`` is shared with the cell
-   of ``N + v`` (crossing a facet of a Voronoi cell enters the neighbour's
-   cell), so a breadth-first walk from the corner's state visits every cell
-   that meets the window;
-4. the cell areas must add up to the window area (otherwise the result is
-   rejected and the caller falls back to the row scan); then every pixel
-   row is cut at the cells' chords (exact intersections of the row with
-   the polygon edges) and filled.
+1. candidates: the exact ground states at the four window corners (greedy
+   descent with every Voronoi-relevant vector, exact when it stops) and
+   every state of the box they span, when it is small (else the ground
+   states on a 9 × 9 grid of the window);
+2. envelope: the halfspaces ``z ≤ U_N(u, w)``, the window edges and a floor
+   bound a 3-D convex polytope whose upper facets are the cells. It is
+   computed as the convex hull of the polar-dual points (Qhull through
+   ``scipy.spatial.ConvexHull``; Barber et al. 1996): each hull facet is a
+   vertex of the polytope and names the planes that meet there. Candidates
+   that own no cell are dropped (adding states only lowers the envelope);
+3. certificate: at every vertex of every cell, no Voronoi-relevant move
+   ``v`` (with ``N + v ≥ 0``) lowers the energy. ``ΔU_v(N; p)`` is affine in
+   ``p``, so it then holds on the whole cell, and by Voronoi's theorem (a
+   lattice point is the closest one iff no relevant vector improves it) the
+   cell's state is the true ground state on all of it. The minimum over the
+   cell's bounding box rules out most moves at once; the rest are evaluated
+   at the vertices. A vertex that fails gives a better state (descent from
+   ``N + v`` there), which joins the candidates, and steps 2–3 repeat until
+   every vertex passes;
+4. the pixels: every pixel row is cut where it crosses the cells' left
+   edges and filled run by run (:func:`_labels`).
 
-The cost scales with the number of cells, not with the number of pixels or
-with the size of a brute-force window of states. Where the constraint
-``N ≥ 0`` is active (near full depletion) step 2 uses the relevant vectors
-that keep ``N + v ≥ 0``, the same local rule as the row scan; both are
-checked against brute-force enumeration in the tests.
+The cost scales with the number of candidates and cells, not with the
+number of pixels times states. Where the constraint ``N ≥ 0`` is active
+(near full depletion) the certificate uses the relevant vectors that keep
+``N + v ≥ 0``, the same local rule as the row scan of :mod:`.ground_state`;
+both are checked against brute-force enumeration in the tests.
+
+Ties: a pixel that lies on a cell boundary (within 1e-7 pixel) is decided by
+its energies; states within ``_TOL`` of the lowest count as degenerate, and
+the lexicographically smallest of them is taken (the first one in the
+enumeration order of :func:`~.ground_state.brute_force_ground_state`).
 
 References
 ----------
@@ -42,14 +51,16 @@ W. G. van der Wiel et al., Rev. Mod. Phys. 75, 1 (2003),
 doi:10.1103/RevModPhys.75.1 (constant-interaction model).
 J. H. Conway and N. J. A. Sloane, "Sphere Packings, Lattices and Groups",
 Springer (1999), ch. 2 and 21 (Voronoi cells, relevant vectors).
-I. E. Sutherland and G. W. Hodgman, "Reentrant polygon clipping",
-Commun. ACM 17, 32 (1974), doi:10.1145/360767.360802 (polygon clipping).
+C. B. Barber, D. P. Dobkin and H. Huhdanpaa, "The Quickhull algorithm for
+convex hulls", ACM Trans. Math. Softw. 22, 469 (1996),
+doi:10.1145/235815.235821 (Qhull, halfspace intersection).
 """
 
 from __future__ import annotations
 
-from collections import deque
-from dataclasses import dataclass
+from dataclasses import dataclass, field
+from functools import lru_cache
+from itertools import pairwise
 
 import numpy as np
 
@@ -57,8 +68,12 @@ from .ground_state import _TOL, relevant_vectors
 
 __all__ = ["PlaneCells", "plane_cells", "rasterize_cells", "ground_state_plane"]
 
-_EDGE = -1  # label of a window edge
-_PER_ROUND = 6  # constraints clipped per vectorised check
+_BOX_MAX = 4096  # candidate box (states) handed to Qhull in one go
+_ROUNDS = 40  # certificate rounds before giving up (the caller falls back)
+_GRID = 9  # seed grid (per axis) when the corner box is too large
+_EPS_ROW = 1e-9  # pixels: a vertex this close to a row lies on it
+_EPS_TIE = 1e-7  # pixels: a pixel this close to a cell boundary is decided by its energies
+_BLAS_ONE_THREAD = 200_000  # m·n·k below which OpenBLAS runs a product on one thread
 
 
 @dataclass(frozen=True)
@@ -75,49 +90,392 @@ class PlaneCells:
     neighbours : tuple of (int, int)
         Pairs of cell indices that share an edge of positive length.
     shape : (ny, nx)
+    planes : ndarray, shape (S, 3)
+        ``(c, a, b)`` of each cell's energy ``U = c − u·a − w·b`` (eV, up to a
+        constant common to all states).
     """
 
     states: np.ndarray
     polygons: tuple[np.ndarray, ...]
     neighbours: tuple[tuple[int, int], ...]
     shape: tuple[int, int]
+    planes: np.ndarray = field(default_factory=lambda: np.zeros((0, 3)))
 
 
-def _clip(poly: list[tuple[float, float, int]], vals: list[float], label: int) -> list[tuple[float, float, int]]:
-    """Sutherland–Hodgman step: keep the part of a convex polygon where ``vals ≥ 0``.
+@dataclass(frozen=True)
+class _Setup:
+    """Per-device constants of the certificate (relevant vectors and their energies)."""
 
-    ``poly`` holds (u, w, label of the edge leaving this vertex); ``vals`` the
-    constraint at each vertex (affine, so the crossing is interpolated).
+    rel: np.ndarray  # (K, n) int
+    ev: np.ndarray  # (K, n): E_C v for every relevant v
+    evt: np.ndarray  # (n, K): the same, as columns
+    h: np.ndarray  # (K,): ½ vᵀE_C v
+    need: np.ndarray  # (n,): N_i below this may leave N ≥ 0 with some v
+    below: np.ndarray  # (n, max need + 1, K) bool: [i, t] = move k takes N_i = t below zero
+    rel16: np.ndarray  # (K, n) int16: the relevant vectors (small integers)
+
+
+@lru_cache(maxsize=32)
+def _setup_cached(key: bytes, n: int) -> _Setup:
+    ec = np.frombuffer(key, dtype=float).reshape(n, n)
+    rel = relevant_vectors(ec)
+    relf = rel.astype(float)
+    ev = relf @ ec
+    need = np.maximum(-rel.min(axis=0), 0)
+    t = np.arange(int(need.max()) + 1)
+    below = rel.T[:, None, :] + t[None, :, None] < 0  # (n, t, K); False for t ≥ need_i
+    rel16 = np.clip(rel, -16000, 16000).astype(np.int16)  # entries are a few units at most
+    return _Setup(rel, ev, np.ascontiguousarray(ev.T), 0.5 * np.einsum("kj,kj->k", ev, relf), need, below, rel16)
+
+
+def _setup(ec: np.ndarray) -> _Setup:
+    ec = np.ascontiguousarray(ec, dtype=float)
+    return _setup_cached(ec.tobytes(), ec.shape[0])
+
+
+def _invalid_moves(states: np.ndarray, st: _Setup) -> np.ndarray | None:
+    """(S, K) bool: move k would take state s below zero (None if no state is that low)."""
+    if not np.any(states < st.need):
+        return None
+    t = np.minimum(states, st.need)
+    return st.below[np.arange(states.shape[1]), t].any(axis=1)
+
+
+def _matmul(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """``a @ b`` in row blocks small enough for a single BLAS thread.
+
+    A threaded product of this size gains little and, on a loaded machine,
+    can wait milliseconds for its worker threads.
     """
-    out: list[tuple[float, float, int]] = []
-    k = len(poly)
-    for i in range(k):
-        pu, pw, pl = poly[i]
-        qu, qw, _ = poly[(i + 1) % k]
-        vp, vq = vals[i], vals[(i + 1) % k]
-        inp, inq = vp >= 0.0, vq >= 0.0
-        if inp:
-            out.append((pu, pw, pl))
-            if not inq:
-                t = vp / (vp - vq)
-                out.append((pu + t * (qu - pu), pw + t * (qw - pw), label))
-        elif inq:
-            t = vp / (vp - vq)
-            out.append((pu + t * (qu - pu), pw + t * (qw - pw), pl))
+    rows = max(1, _BLAS_ONE_THREAD // max(1, a.shape[1] * b.shape[1]))
+    if a.shape[0] <= rows:
+        return a @ b
+    out = np.empty((a.shape[0], b.shape[1]))
+    for s in range(0, a.shape[0], rows):
+        np.matmul(a[s : s + rows], b, out=out[s : s + rows])
     return out
 
 
-def _seed_state(n0: np.ndarray, ec: np.ndarray, rel: np.ndarray, ev: np.ndarray, h: np.ndarray) -> np.ndarray:
-    """Ground state at one point: descent with every relevant vector (Voronoi: exact when it stops)."""
-    n = np.maximum(np.rint(n0), 0).astype(np.int64)
+def _descend_points(n: np.ndarray, n0: np.ndarray, st: _Setup) -> np.ndarray:
+    """Greedy descent with every relevant vector, in place (exact ground state when it stops)."""
     for _ in range(10000):
-        du = h + (n - n0) @ ev.T
-        du[np.any(n + rel < 0, axis=1)] = np.inf
-        j = int(np.argmin(du))
-        if du[j] >= -_TOL:
+        du = _matmul(n - n0, st.evt)
+        du += st.h
+        bad = _invalid_moves(n, st)
+        if bad is not None:
+            du[bad] = np.inf
+        k = np.argmin(du, axis=1)
+        imp = du[np.arange(k.size), k] < -_TOL
+        if not imp.any():
             break
-        n = n + rel[j]
+        n[imp] += st.rel[k[imp]]
     return n
+
+
+def _planes(states: np.ndarray, n0_00: np.ndarray, su: np.ndarray, sw: np.ndarray, ec: np.ndarray) -> np.ndarray:
+    """``(c, a, b)`` of ``U_N = c − u·a − w·b`` for every state, shape (S, 3)."""
+    sf = states.astype(float)
+    es = sf @ ec
+    out = np.empty((states.shape[0], 3))
+    out[:, 0] = 0.5 * np.einsum("ki,ki->k", es, sf) - es @ n0_00
+    out[:, 1] = es @ su
+    out[:, 2] = es @ sw
+    return out
+
+
+def _energy_at(planes: np.ndarray, uv: np.ndarray) -> np.ndarray:
+    """Energy of every plane at every point, shape (S, P)."""
+    pts = np.empty((3, uv.shape[0]))
+    pts[0] = 1.0
+    pts[1] = -uv[:, 0]
+    pts[2] = -uv[:, 1]
+    return _matmul(planes, pts)
+
+
+def _envelope(planes: np.ndarray, shape: tuple[int, int]) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
+    """Vertices of the lower envelope of ``planes`` over the window.
+
+    Returns
+    -------
+    (uv, vertex, cell) or None
+        ``uv`` (V, 2) vertex positions in pixels; ``vertex``, ``cell`` (P,):
+        one entry per (vertex, cell whose plane passes through it). None if
+        Qhull fails.
+
+    Notes
+    -----
+    The halfspaces ``z ≤ U_N(u, w)``, the window and a floor below the
+    envelope bound a convex polytope. By polar duality about an interior
+    point ``x₀`` each halfspace ``Aᵢx ≤ gᵢ`` becomes the point
+    ``Aᵢ / (gᵢ − Aᵢx₀)``, and each facet ``n·p + d = 0`` of the convex hull of
+    these points becomes the vertex ``x₀ − n/d`` where the facet's halfspaces
+    meet (the construction behind Qhull's halfspace intersection).
+    """
+    from scipy.spatial import ConvexHull, QhullError
+
+    ny, nx = shape
+    umax, wmax = float(nx - 1), float(ny - 1)
+    m = planes.shape[0]
+    # halfspaces A x ≤ g with x = (s, t, z), s = u/umax, t = w/wmax: the planes
+    # z ≤ c − a s − b t taken relative to the first plane (a plane common to all
+    # states does not move the envelope) and scaled to O(1) for Qhull, then the
+    # window 0 ≤ s, t ≤ 1 and a floor below the envelope
+    rows = planes - planes[0]
+    rows *= np.array([1.0, umax, wmax])
+    scale = float(np.abs(rows).max())
+    if scale > 0:
+        rows /= scale
+    cc = rows[:, 0]
+    amat = np.empty((m + 5, 3))
+    amat[:m, :2] = rows[:, 1:]
+    amat[:m, 2] = 1.0
+    amat[m:] = [[-1, 0, 0], [1, 0, 0], [0, -1, 0], [0, 1, 0], [0, 0, -1]]
+    low = float((cc - np.maximum(rows[:, 1], 0.0) - np.maximum(rows[:, 2], 0.0)).min()) - 1.0  # below every corner
+    x0 = np.array([0.5, 0.5, 0.5 * (float((cc - 0.5 * rows[:, 1] - 0.5 * rows[:, 2]).min()) + low)])  # inside
+    slack = np.concatenate([cc, [0.0, 1.0, 0.0, 1.0, -low]])
+    slack -= amat @ x0
+    try:
+        hull = ConvexHull(amat / slack[:, None], qhull_options="Qt")
+    except (QhullError, ValueError):
+        return None
+    eq = hull.equations
+    simp = hull.simplices
+    if np.any(eq[:, 3] >= 0):
+        return None
+    top = simp.max(axis=1) != m + 4  # not on the floor (the floor has the largest index)
+    simp, eq = simp[top], eq[top]
+    st = x0[:2] - eq[:, :2] / eq[:, 3:]
+    np.clip(st, 0.0, 1.0, out=st)
+    edge = simp >= m  # on a window edge: put the vertex exactly there
+    if edge.any():
+        r, c = np.nonzero(edge)
+        j = simp[r, c] - m
+        st[r, j // 2] = (j % 2).astype(float)
+    st *= np.array([umax, wmax])
+    flat = simp.ravel()
+    keep = flat < m
+    return st, np.repeat(np.arange(simp.shape[0]), 3)[keep], flat[keep]
+
+
+def _box(corner: np.ndarray) -> np.ndarray | None:
+    """Every state between the element-wise min and max of ``corner`` (lexicographic order), or None if large."""
+    lo, hi = corner.min(axis=0), corner.max(axis=0)
+    span = hi - lo + 1
+    if float(np.prod(span.astype(float))) > _BOX_MAX:
+        return None
+    idx = np.arange(int(np.prod(span)), dtype=np.int64)
+    out = np.empty((idx.size, corner.shape[1]), np.int64)
+    for i in range(corner.shape[1] - 1, -1, -1):
+        out[:, i] = lo[i] + idx % span[i]
+        idx //= span[i]
+    return out
+
+
+def _polygons(uv: np.ndarray, vid: np.ndarray, cid: np.ndarray, n_cells: int) -> tuple[np.ndarray, np.ndarray]:
+    """Cell vertices sorted counter-clockwise: (points (P, 2), start offsets (S + 1,))."""
+    p = uv[vid]
+    cnt = np.bincount(cid, minlength=n_cells)
+    inv = 1.0 / np.maximum(cnt, 1)
+    cu = np.bincount(cid, weights=p[:, 0], minlength=n_cells) * inv
+    cw = np.bincount(cid, weights=p[:, 1], minlength=n_cells) * inv
+    ang = np.arctan2(p[:, 1] - cw[cid], p[:, 0] - cu[cid])
+    order = np.argsort(cid * 8.0 + ang)  # angle in (−π, π]: cells stay apart
+    return p[order], np.concatenate([[0], np.cumsum(cnt)])
+
+
+def _certificate_failures(
+    states: np.ndarray, pts: np.ndarray, starts: np.ndarray, sweep: tuple[np.ndarray, np.ndarray, np.ndarray],
+    st: _Setup,
+) -> np.ndarray:
+    """Better states found at the cell vertices that fail the Voronoi test, shape (F, n) (F = 0: certified).
+
+    ``ΔU_v(N; p) = α − u·β − w·γ`` with ``α = ½vᵀE_Cv + vᵀE_C(N − n₀₀)``,
+    ``β = vᵀE_C s_u``, ``γ = vᵀE_C s_w``. Its minimum over a cell's bounding
+    box rules most moves out at once; the rest are evaluated at the vertices.
+    """
+    n0_00, su, sw = sweep
+    m, nd = states.shape
+    cnt = np.diff(starts)
+    beta, gamma = st.ev @ su, st.ev @ sw
+    # [N − n₀₀, −u_max, −u_min, −w_max, −w_min, 1] · [E_C v; β⁺; β⁻; γ⁺; γ⁻; ½vᵀE_Cv] = min of ΔU over the box
+    lhs = np.empty((m, nd + 5))
+    np.subtract(states, n0_00, out=lhs[:, :nd])
+    lhs[:, nd] = np.maximum.reduceat(pts[:, 0], starts[:-1])
+    lhs[:, nd + 1] = np.minimum.reduceat(pts[:, 0], starts[:-1])
+    lhs[:, nd + 2] = np.maximum.reduceat(pts[:, 1], starts[:-1])
+    lhs[:, nd + 3] = np.minimum.reduceat(pts[:, 1], starts[:-1])
+    lhs[:, nd : nd + 4] *= -1.0
+    lhs[:, nd + 4] = 1.0
+    rhs = np.concatenate(
+        [st.evt, np.maximum(beta, 0)[None], np.minimum(beta, 0)[None], np.maximum(gamma, 0)[None],
+         np.minimum(gamma, 0)[None], st.h[None]]
+    )
+    ci, vi = np.divmod(np.flatnonzero(_matmul(lhs, rhs) < -_TOL), rhs.shape[1])
+    if ci.size == 0:
+        return np.zeros((0, states.shape[1]), np.int64)
+    ok = (np.minimum(states, 16000).astype(np.int16)[ci] + st.rel16[vi]).min(axis=1) >= 0  # N + v ≥ 0
+    ci, vi = ci[ok], vi[ok]
+    if ci.size == 0:
+        return np.zeros((0, states.shape[1]), np.int64)
+    kmax = int(cnt.max())
+    vidx = starts[:-1, None] + np.minimum(np.arange(kmax)[None, :], cnt[:, None] - 1)  # padded with the last vertex
+    pu, pw = pts[vidx[ci], 0], pts[vidx[ci], 1]
+    alpha = np.einsum("ij,ij->i", states[ci] - n0_00, st.ev[vi]) + st.h[vi]
+    vals = alpha[:, None] - pu * beta[vi][:, None] - pw * gamma[vi][:, None]
+    j = np.argmin(vals, axis=1)
+    r = np.arange(j.size)
+    fail = vals[r, j] < -_TOL
+    if not fail.any():
+        return np.zeros((0, states.shape[1]), np.int64)
+    p_u, p_w = pu[r, j][fail], pw[r, j][fail]
+    better = states[ci[fail]] + st.rel[vi[fail]]
+    return _descend_points(better, n0_00 + p_u[:, None] * su + p_w[:, None] * sw, st)
+
+
+def _solve(
+    n0_00: np.ndarray, step_u: np.ndarray, step_w: np.ndarray, shape: tuple[int, int], ec: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray] | None:
+    """Certified envelope: (states, planes, polygon points, polygon starts) of the cells, or None."""
+    ny, nx = shape
+    st = _setup(ec)
+    corners = np.array([[0.0, 0.0], [nx - 1.0, 0.0], [0.0, ny - 1.0], [nx - 1.0, ny - 1.0]])
+    n0c = n0_00 + corners[:, :1] * step_u + corners[:, 1:] * step_w
+    seed = _descend_points(np.maximum(np.rint(n0c), 0).astype(np.int64), n0c, st)
+    box = _box(seed)
+    if box is None:
+        # many states: start from the ground states on a grid; the rounds below add the rest
+        g = np.linspace(0.0, 1.0, _GRID)
+        grid = np.stack(np.meshgrid(g * (nx - 1), g * (ny - 1)), axis=-1).reshape(-1, 2)
+        n0g = n0_00 + grid[:, :1] * step_u + grid[:, 1:] * step_w
+        states = np.unique(_descend_points(np.maximum(np.rint(n0g), 0).astype(np.int64), n0g, st), axis=0)
+        planes = _planes(states, n0_00, step_u, step_w, ec)
+    else:
+        states = box
+        planes = _planes(box, n0_00, step_u, step_w, ec)
+    for _ in range(_ROUNDS):
+        env = _envelope(planes, shape)
+        if env is None:
+            return None
+        uv, vid, cid = env
+        # keep the states that own a cell: a state above the envelope stays above it
+        used, cid = np.unique(cid, return_inverse=True)
+        states, planes = states[used], planes[used]
+        pts, starts = _polygons(uv, vid, cid.ravel(), used.size)
+        better = _certificate_failures(states, pts, starts, (n0_00, step_u, step_w), st)
+        if better.shape[0] == 0:
+            return states, planes, pts, starts
+        known = {tuple(s) for s in states.tolist()}
+        new = [s for s in {tuple(b) for b in better.tolist()} if s not in known]
+        if not new:
+            return None  # a better state is already a candidate: the envelope is inaccurate
+        new_arr = np.array(sorted(new), np.int64)
+        states = np.concatenate([states, new_arr])
+        planes = np.concatenate([planes, _planes(new_arr, n0_00, step_u, step_w, ec)])
+    return None
+
+
+def _lexicographic_rank(states: np.ndarray) -> np.ndarray:
+    order = np.lexsort(states.T[::-1])
+    rank = np.empty(order.size, np.int64)
+    rank[order] = np.arange(order.size)
+    return rank
+
+
+def _by_energy(planes: np.ndarray, rank: np.ndarray, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
+    """Cell index of the lowest energy at the given pixels (ties: lexicographically smallest state)."""
+    e = planes[:, 0] - cols[:, None] * planes[:, 1] - rows[:, None] * planes[:, 2]
+    tie = e <= e.min(axis=1, keepdims=True) + _TOL
+    return np.argmin(np.where(tie, rank, rank.size), axis=1)
+
+
+def _labels(
+    pts: np.ndarray, starts: np.ndarray, planes: np.ndarray, rank: np.ndarray, shape: tuple[int, int]
+) -> np.ndarray:
+    """Cell index of every pixel, shape (ny·nx,), from the counter-clockwise cell polygons.
+
+    Along a pixel row the cells' chords tile the window, so pixel ``c`` belongs
+    to the cell whose chord starts last at or before ``c``. The chord starts
+    are the crossings of the row with the cells' left edges (counter-clockwise:
+    the edges that go down); each marks its first pixel, the latest start wins
+    a pixel marked twice, and the row is filled run by run. Pixels on a
+    boundary (a start within ``_EPS_TIE`` of the pixel, two starts that close
+    to each other, or a horizontal edge on the row) are decided by energy.
+    """
+    ny, nx = shape
+    n_cells = starts.size - 1
+    cnt = np.diff(starts)
+    cell_of = np.repeat(np.arange(n_cells), cnt)
+    nxt = np.arange(pts.shape[0]) + 1
+    nz = cnt > 0
+    nxt[starts[1:][nz] - 1] = starts[:-1][nz]  # closing edge of each polygon
+    pu, pw = pts[:, 0], pts[:, 1]
+    qu, qw = pu[nxt], pw[nxt]
+    dw = qw - pw
+    e = np.flatnonzero(dw < -1e-12)  # left edges
+    lo = np.maximum(np.ceil(qw[e] - _EPS_ROW), 0).astype(np.int64)
+    hi = np.minimum(np.floor(pw[e] + _EPS_ROW), ny - 1).astype(np.int64)
+    k = np.maximum(hi - lo + 1, 0)
+    ee = np.repeat(e, k)
+    row = np.repeat(lo, k) + (np.arange(int(k.sum())) - np.repeat(np.cumsum(k) - k, k))
+    t = np.clip((row - pw[ee]) / dw[ee], 0.0, 1.0)
+    start = pu[ee] + t * (qu[ee] - pu[ee])
+    col = np.maximum(np.ceil(start - _EPS_TIE), 0).astype(np.int64)
+    inside = col < nx
+    row, col, start, cell = row[inside], col[inside], start[inside], cell_of[ee[inside]]
+    key = row * nx + col
+    # sort by pixel, then by start (start − col + 1 lies in [0, 1 + ε); starts this close are flagged below)
+    order = np.argsort(key * 4.0 + (start - col + 1.0))
+    key, start, cell = key[order], start[order], cell[order]
+    last = np.ones(key.size, bool)
+    last[:-1] = key[1:] != key[:-1]
+    close = np.zeros(key.size, bool)  # two cells start within _EPS_TIE of each other
+    close[1:] = ~last[:-1] & (start[1:] - start[:-1] < _EPS_TIE)
+    on_pixel = (start != 0.0) & (np.abs(start - np.rint(start)) < _EPS_TIE)
+    fix = [key[last & (close | on_pixel)]]
+    key, cell = key[last], cell[last]
+    # every row must begin with a chord at column 0; rows that do not are decided by energy
+    row_ok = np.zeros(ny, bool)
+    row_ok[key[key % nx == 0] // nx] = True
+    # (nearly) horizontal edges lying on a row, other than the window's own edges
+    flat_h = np.flatnonzero((np.abs(dw) <= 1e-6) & ~((pw == qw) & ((pw == 0.0) | (pw == ny - 1.0))))
+    if flat_h.size:
+        wr = np.rint(pw[flat_h])
+        on_row = (np.abs(pw[flat_h] - wr) < _EPS_TIE) & (np.abs(qw[flat_h] - wr) < _EPS_TIE) & (wr >= 0) & (wr < ny)
+        for j in np.flatnonzero(on_row):
+            i = flat_h[j]
+            c0 = max(int(np.floor(min(pu[i], qu[i]))), 0)
+            c1 = min(int(np.ceil(max(pu[i], qu[i]))), nx - 1)
+            fix.append(int(wr[j]) * nx + np.arange(c0, c1 + 1))
+    if not row_ok.all():
+        bad = np.flatnonzero(~row_ok)
+        keep = row_ok[key // nx]
+        key = np.concatenate([key[keep], bad * nx])
+        cell = np.concatenate([cell[keep], np.zeros(bad.size, np.int64)])
+        order = np.argsort(key, kind="stable")
+        key, cell = key[order], cell[order]
+        fix.append((bad[:, None] * nx + np.arange(nx)).ravel())
+    lengths = np.diff(np.append(key, ny * nx))
+    label = np.repeat(cell, lengths)
+    pix = np.unique(np.concatenate(fix)) if len(fix) > 1 else fix[0]
+    if pix.size:
+        label[pix] = _by_energy(planes, rank, (pix // nx).astype(float), (pix % nx).astype(float))
+    return label
+
+
+def _neighbours(pts: np.ndarray, starts: np.ndarray) -> tuple[tuple[int, int], ...]:
+    """Pairs of cells that share two distinct vertices (an edge of positive length)."""
+    cell = np.repeat(np.arange(starts.size - 1), np.diff(starts))
+    _, vkey = np.unique(np.round(pts * 1e7), axis=0, return_inverse=True)
+    by_vertex: dict[int, set[int]] = {}
+    for v, c in zip(vkey.ravel().tolist(), cell.tolist()):
+        by_vertex.setdefault(v, set()).add(c)
+    count: dict[tuple[int, int], int] = {}
+    for cs in by_vertex.values():
+        srt = sorted(cs)
+        for i in range(len(srt)):
+            for j in range(i + 1, len(srt)):
+                count[(srt[i], srt[j])] = count.get((srt[i], srt[j]), 0) + 1
+    return tuple(sorted(k for k, c in count.items() if c >= 2))
 
 
 def plane_cells(
@@ -132,185 +490,61 @@ def plane_cells(
     step_u, step_w : ndarray, shape (n,)
         Change of the induced charge per column and per row.
     shape : (ny, nx)
+        At least 2 × 2 pixels.
     ec_eV : ndarray, shape (n, n)
 
     Returns
     -------
     PlaneCells or None
-        None when the cells do not tile the window (the caller must fall back
+        None when the envelope cannot be certified (the caller must fall back
         to another method).
     """
     ny, nx = (int(v) for v in shape)
-    ec = np.asarray(ec_eV, float)
-    n0_00 = np.asarray(n0_00, float)
-    rel = relevant_vectors(ec)
-    relf = rel.astype(float)
-    ev = relf @ ec  # (K, n)
-    h = 0.5 * np.einsum("kj,kj->k", ev, relf)
-    bu, bw = -(ev @ np.asarray(step_u, float)), -(ev @ np.asarray(step_w, float))
-    bvec = np.stack([bu, bw])  # (2, K)
-    umax, wmax = float(nx - 1), float(ny - 1)
-    corners = np.array([[0.0, 0.0], [umax, 0.0], [umax, wmax], [0.0, wmax]])
-    corner_lin = corners[:, :1] * bu + corners[:, 1:] * bw  # (4, K)
-    evt = ev.T.copy()
-    need = -rel.min(axis=0)
-    window_area = umax * wmax
-    tol = _TOL
-
-    seed = _seed_state(n0_00, ec, rel, ev, h)
-    index: dict[tuple[int, ...], int] = {tuple(seed.tolist()): 0}
-    states = [seed]
-    polys: list[np.ndarray] = []
-    edges: set[tuple[int, int]] = set()
-    queue = deque([0])
-    total = 0.0
-    max_cells = 4 * (nx + ny) * (nx + ny) + 64
-    # moves that formed cell edges so far: tried first (cheap), then every
-    # remaining constraint is checked at the vertices
-    valid_cache: dict[tuple[int, ...], np.ndarray] = {}
-    where = {tuple(v): k for k, v in enumerate(rel.tolist())}
-    opposite = np.array([where[tuple((-v).tolist())] for v in rel], np.int64)  # index of −v
-    entry: dict[int, int] = {}  # cell → constraint of the facet it was entered through
-    learned = np.zeros(rel.shape[0], bool)
-    learned[np.count_nonzero(rel, axis=1) <= 2] = True
-    while queue:
-        ci = queue.popleft()
-        n = states[ci]
-        a = h + (n - n0_00) @ evt  # ΔU_v at pixel (0, 0), (K,)
-        at_corners = a + corner_lin
-        active = at_corners.min(axis=0) < -tol
-        if np.any(n < need):
-            key = tuple(np.minimum(n, need).tolist())
-            ok = valid_cache.get(key)
-            if ok is None:
-                ok = valid_cache[key] = ~np.any(n + rel < 0, axis=1)
-            active &= ok
-        poly: list[tuple[float, float, int]] = [(0.0, 0.0, _EDGE), (umax, 0.0, _EDGE), (umax, wmax, _EDGE), (0.0, wmax, _EDGE)]
-        pts = corners
-        back = entry.get(ci)
-        if back is not None and active[back]:
-            # the facet shared with the cell it was found from is a true edge: cut it first
-            aj, uj, wj = float(a[back]), float(bu[back]), float(bw[back])
-            poly = _clip(poly, [aj + uj * p[0] + wj * p[1] for p in poly], back)
-            pts = np.array([(p[0], p[1]) for p in poly]) if len(poly) >= 3 else corners
-        for subset in (active & learned, active):
-            sel = np.flatnonzero(subset)
-            if sel.size == 0 or len(poly) < 3:
-                continue
-            a_s, b_s = a[sel], bvec[:, sel]
-            for _ in range(sel.size + 1):
-                mins = (pts @ b_s).min(axis=0)
-                mins += a_s
-                bad = np.flatnonzero(mins < -tol)
-                if bad.size == 0:
-                    break
-                if bad.size > _PER_ROUND:  # the most violated few, clipped in turn
-                    bad = bad[np.argpartition(mins[bad], _PER_ROUND - 1)[:_PER_ROUND]]
-                for j in bad[np.argsort(mins[bad])].tolist():
-                    k_ = int(sel[j])
-                    aj, uj, wj = float(a[k_]), float(bu[k_]), float(bw[k_])
-                    vals = [aj + uj * p[0] + wj * p[1] for p in poly]
-                    if min(vals) >= -tol:
-                        continue  # already cut away by an earlier clip of this round
-                    learned[k_] = True
-                    poly = _clip(poly, vals, k_)
-                    if len(poly) < 3:
-                        break
-                if len(poly) < 3:
-                    break
-                pts = np.array([(p[0], p[1]) for p in poly])
-        if len(poly) < 3:
-            polys.append(np.zeros((0, 2)))
-            continue
-        polys.append(np.array([(p[0], p[1]) for p in poly]))
-        k = len(poly)
-        area = 0.0
-        for i in range(k):
-            pu_i, pw_i, lab = poly[i]
-            qu, qw, _ = poly[(i + 1) % k]
-            area += pu_i * qw - qu * pw_i  # shoelace
-            if lab == _EDGE:
-                continue
-            du, dw = qu - pu_i, qw - pw_i
-            if du * du + dw * dw < 1e-18:
-                continue
-            nb = tuple((n + rel[lab]).tolist())
-            nj = index.get(nb)
-            if nj is None:
-                nj = len(states)
-                index[nb] = nj
-                states.append(np.array(nb, np.int64))
-                queue.append(nj)
-                entry[nj] = opposite[lab]
-                if nj > max_cells:
-                    return None
-            edges.add((min(ci, nj), max(ci, nj)))
-        total += 0.5 * abs(area)
-    if not abs(total - window_area) <= 1e-7 * max(window_area, 1.0):
+    if ny < 2 or nx < 2:
         return None
-    return PlaneCells(
-        states=np.array(states, np.int64).reshape(len(states), -1),
-        polygons=tuple(polys),
-        neighbours=tuple(sorted(edges)),
-        shape=(ny, nx),
-    )
+    ec = np.asarray(ec_eV, float)
+    res = _solve(np.asarray(n0_00, float), np.asarray(step_u, float), np.asarray(step_w, float), (ny, nx), ec)
+    if res is None:
+        return None
+    states, planes, pts, starts = res
+    polys = tuple(pts[a:b].copy() for a, b in pairwise(starts.tolist()))
+    return PlaneCells(states=states, polygons=polys, neighbours=_neighbours(pts, starts), shape=(ny, nx), planes=planes)
 
 
 def rasterize_cells(cells: PlaneCells) -> np.ndarray | None:
-    """Ground state at every pixel from the cells, shape (ny, nx, n_dots); None if a row is not covered.
+    """Ground state at every pixel from the cells, shape (ny, nx, n_dots).
 
-    Each cell cuts every pixel row it meets in one chord ``[u_lo, u_hi]``
-    (exact intersections with its edges); the first pixel of the chord is
-    marked with the cell and the marks are carried along the row.
+    Each cell cuts every pixel row it meets in one chord; the rows are
+    filled chord by chord (:func:`_labels`). Pixels within 1e-7 pixel of a
+    chord end are decided by their energies (ties: the lexicographically
+    smallest state). Returns None if the cells carry no energy planes
+    (``planes``) for their states.
     """
     ny, nx = cells.shape
-    eps = 1e-9  # pixels; a pixel this close to a boundary is a tie
-    keep = [i for i, p in enumerate(cells.polygons) if p.shape[0] >= 3]
-    if not keep:
+    if cells.planes.shape[0] != cells.states.shape[0]:
         return None
-    kmax = max(cells.polygons[i].shape[0] for i in keep)
-    # pad every polygon to kmax vertices by repeating its last vertex (zero-length edges)
-    poly = np.empty((len(keep), kmax, 2))
-    for r, i in enumerate(keep):
-        p = cells.polygons[i]
-        poly[r, : p.shape[0]] = p
-        poly[r, p.shape[0] :] = p[-1]
-    w0 = np.maximum(np.ceil(poly[:, :, 1].min(axis=1) - eps), 0).astype(np.int64)
-    w1 = np.minimum(np.floor(poly[:, :, 1].max(axis=1) + eps), ny - 1).astype(np.int64)
-    count = np.maximum(w1 - w0 + 1, 0)
-    owner = np.repeat(np.arange(len(keep)), count)  # one entry per (cell, row)
-    rows = (np.arange(owner.size) - np.repeat(np.cumsum(count) - count, count) + w0[owner]).astype(float)
-    p = poly[owner]  # (R, kmax, 2)
-    q = np.roll(p, -1, axis=1)
-    dw = q[..., 1] - p[..., 1]
-    slant = np.abs(dw) > 1e-300
-    t = np.clip((rows[:, None] - p[..., 1]) / np.where(slant, dw, 1.0), 0.0, 1.0)
-    u = p[..., 0] + t * (q[..., 0] - p[..., 0])
-    hit = (rows[:, None] >= np.minimum(p[..., 1], q[..., 1]) - eps) & (
-        rows[:, None] <= np.maximum(p[..., 1], q[..., 1]) + eps
-    )
-    u_lo = np.where(slant, u, np.minimum(p[..., 0], q[..., 0]))  # horizontal edges: both ends
-    u_hi = np.where(slant, u, np.maximum(p[..., 0], q[..., 0]))
-    left = np.min(np.where(hit, u_lo, np.inf), axis=1)
-    right = np.max(np.where(hit, u_hi, -np.inf), axis=1)
-    c0 = np.maximum(np.ceil(left - eps), 0)
-    c1 = np.minimum(np.floor(right + eps), nx - 1)
-    ok = c0 <= c1
-    mark = np.full((ny, nx), -1, np.int64)
-    mark[rows[ok].astype(np.int64), c0[ok].astype(np.int64)] = np.asarray(keep)[owner[ok]]
-    if np.any(mark[:, 0] < 0):
+    cnt = np.array([p.shape[0] if p.shape[0] >= 3 else 0 for p in cells.polygons], np.int64)
+    pts = np.concatenate([p for p in cells.polygons if p.shape[0] >= 3] or [np.zeros((0, 2))])
+    starts = np.concatenate([[0], np.cumsum(cnt)])
+    label = _labels(pts, starts, cells.planes, _lexicographic_rank(cells.states), (ny, nx))
+    if label.size != ny * nx:
         return None
-    pos = np.where(mark >= 0, np.arange(nx)[None, :], 0)
-    np.maximum.accumulate(pos, axis=1, out=pos)
-    label = np.take_along_axis(mark, pos, axis=1)
-    return cells.states[label]
+    return np.take(cells.states, label, axis=0).reshape(ny, nx, -1)
 
 
 def ground_state_plane(
     n0_00: np.ndarray, step_u: np.ndarray, step_w: np.ndarray, shape: tuple[int, int], ec_eV: np.ndarray
 ) -> np.ndarray | None:
     """Ground states of a plane sweep from its cells, shape (ny, nx, n); None if the cells fail."""
-    cells = plane_cells(n0_00, step_u, step_w, shape, ec_eV)
-    if cells is None:
+    ny, nx = (int(v) for v in shape)
+    if ny < 2 or nx < 2:
         return None
-    return rasterize_cells(cells)
+    ec = np.asarray(ec_eV, float)
+    res = _solve(np.asarray(n0_00, float), np.asarray(step_u, float), np.asarray(step_w, float), (ny, nx), ec)
+    if res is None:
+        return None
+    states, planes, pts, starts = res
+    label = _labels(pts, starts, planes, _lexicographic_rank(states), (ny, nx))
+    if label.size != ny * nx:
+        return None
+    return np.take(states, label, axis=0).reshape(ny, nx, -1)

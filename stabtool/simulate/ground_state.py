@@ -29,10 +29,15 @@ Algorithm
    on a straight line, so after solving the first column the state changes
    are located exactly by an event scan over the Voronoi-relevant moves
    (no search at interior pixels); the certificate of step 3 is then run on
-   the result as a safety net. For three or more dots on linear axes the
-   map is instead built from its exact cells (convex polygons, one per
-   state; :mod:`.cells`), which costs per cell rather than per row and
-   event; the row scan is the fall-back.
+   the result as a safety net. For two or more dots on linear axes the
+   map is instead built from its exact cells (the lower envelope of the
+   states' energy planes, one convex polygon per state; :mod:`.cells`),
+   which costs per candidate state and cell rather than per row and event;
+   the row scan is the fall-back.
+
+The relevant vectors themselves are found once per device by a
+Fincke–Pohst enumeration of the ellipsoid that must contain them
+(:func:`_ellipsoid_points`).
 
 Without the ``N ≥ 0`` constraint the result is therefore provably exact at
 every pixel. Where the constraint is active (near full depletion) the same
@@ -47,6 +52,9 @@ J. H. Conway and N. J. A. Sloane, "Sphere Packings, Lattices and Groups",
 Springer (1999), ch. 2 and 21 (Voronoi cells, relevant vectors);
 E. Agrell, T. Eriksson, A. Vardy and K. Zeger, "Closest point search in
 lattices", IEEE Trans. Inf. Theory 48, 2201 (2002), doi:10.1109/TIT.2002.800499.
+U. Fincke and M. Pohst, "Improved methods for calculating vectors of short
+length in a lattice, including a complexity analysis", Math. Comp. 44, 463
+(1985), doi:10.1090/S0025-5718-1985-0777278-8 (enumeration in an ellipsoid).
 """
 
 from __future__ import annotations
@@ -145,34 +153,63 @@ def basic_moves(n_dots: int) -> np.ndarray:
     return np.concatenate(moves, axis=0)
 
 
+def _ellipsoid_points(a: np.ndarray, lam: float, *, limit: float = 3e6) -> np.ndarray | None:
+    """Every integer ``v`` with ``vᵀ a v ≤ lam`` (Fincke–Pohst enumeration, vectorised by level).
+
+    With ``a = RᵀR`` (Cholesky), ``vᵀav = Σ_i R_ii² (v_i + Σ_{j>i} R_ij v_j / R_ii)²``; the
+    coordinates are fixed from the last to the first, and at each level the
+    admissible range of ``v_i`` follows from the norm left over. None if more
+    than ``limit`` partial vectors would be needed.
+    """
+    n = a.shape[0]
+    r = np.linalg.cholesky(a).T  # upper triangular, a = rᵀ r
+    d = np.diag(r)
+    mu = r / d[:, None]  # mu[i, j] = R_ij / R_ii
+    pts = np.zeros((1, 0), np.int64)  # fixed coordinates i+1..n−1
+    left = np.array([lam])  # norm still available
+    for i in range(n - 1, -1, -1):
+        centre = -(pts @ mu[i, i + 1 :]) if pts.shape[1] else np.zeros(pts.shape[0])
+        half = np.sqrt(np.maximum(left, 0.0)) / d[i]
+        lo = np.ceil(centre - half - 1e-9).astype(np.int64)
+        hi = np.floor(centre + half + 1e-9).astype(np.int64)
+        k = np.maximum(hi - lo + 1, 0)
+        total = int(k.sum())
+        if total > limit:
+            return None
+        parent = np.repeat(np.arange(pts.shape[0]), k)
+        vi = np.repeat(lo, k) + (np.arange(total) - np.repeat(np.cumsum(k) - k, k))
+        left = left[parent] - d[i] ** 2 * (vi - centre[parent]) ** 2
+        keep = left >= -1e-9 * lam
+        pts = np.concatenate([vi[keep, None], pts[parent[keep]]], axis=1)
+        left = left[keep]
+    return pts
+
+
 @lru_cache(maxsize=64)
 def _relevant_cached(ec_key: tuple[tuple[float, ...], ...]) -> np.ndarray:
     a = np.array(ec_key, float)
     n = a.shape[0]
     scale = float(np.max(np.diag(a)))
     a = a / scale
-    ainv_diag = np.diag(np.linalg.inv(a))
     # Upper bound of the minimum norm in each coset c + 2Z^n: the shortest
     # vector with entries in {-1, 0, 1} and parity c (3^n vectors, once).
     small = np.array(list(itertools.product((-1, 0, 1), repeat=n)), dtype=np.int64)
     small = small[np.any(small != 0, axis=1)]
-    snorm = np.einsum("ki,ij,kj->k", small, a, small)
+    sf = small.astype(float)
+    snorm = np.einsum("ki,ki->k", sf @ a, sf)
     spar = (small & 1) @ (1 << np.arange(n))
     lam_c = np.full(2**n, np.inf)
     np.minimum.at(lam_c, spar, snorm)
     lam_max = float(np.max(lam_c[1:]))
-    # Any v with vᵀAv ≤ λ has |v_i| ≤ sqrt(λ (A⁻¹)_ii): the box below contains
-    # every candidate, so the enumeration is exhaustive (a proof, not a guess).
-    bound = np.floor(np.sqrt(lam_max * ainv_diag) + 1e-9).astype(int)
-    total = float(np.prod(2 * bound + 1))
-    if total > 3e6:
+    # Every shortest coset vector lies in the ellipsoid vᵀAv ≤ λ_max; it is
+    # enumerated exhaustively (a proof, not a guess).
+    grid = _ellipsoid_points(a, lam_max * (1 + 1e-9) + 1e-12)
+    if grid is None:
         raise InputError(
             "cdd_aF",
-            f"the charging-energy matrix is too ill-conditioned for the exact ground-state search "
-            f"({total:.3g} candidate vectors); check the capacitances",
+            "the charging-energy matrix is too ill-conditioned for the exact ground-state search "
+            "(more than 3e6 candidate vectors); check the capacitances",
         )
-    axes = [np.arange(-b, b + 1, dtype=np.int64) for b in bound]
-    grid = np.stack(np.meshgrid(*axes, indexing="ij"), axis=-1).reshape(-1, n)
     gf = grid.astype(float)
     norm = np.einsum("kj,kj->k", gf @ a, gf)
     parity = (grid & 1) @ (1 << np.arange(n, dtype=np.int64))
@@ -205,9 +242,12 @@ def relevant_vectors(ec_eV: np.ndarray) -> np.ndarray:
     Notes
     -----
     Voronoi's theorem: a nonzero lattice vector ``v`` is relevant iff ``±v``
-    are the only shortest vectors of the coset ``v + 2ℤⁿ``. Each coset's
-    shortest vectors are found by exhaustive enumeration in a box whose size
-    follows from ``|v_i| ≤ sqrt(λ (E_C⁻¹)_ii)`` (Conway & Sloane 1999).
+    are the only shortest vectors of the coset ``v + 2ℤⁿ``. An upper bound
+    ``λ`` of every coset's minimum comes from the vectors with entries in
+    {−1, 0, 1}; every lattice vector with ``vᵀE_C v ≤ λ`` is then enumerated
+    exhaustively (Fincke & Pohst 1985), grouped by coset, and the cosets with
+    exactly two shortest vectors give the relevant ones (Conway & Sloane
+    1999). Cached per matrix.
     """
     a = np.asarray(ec_eV, float)
     return _relevant_cached(tuple(tuple(float(v) for v in row) for row in a))

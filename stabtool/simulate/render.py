@@ -136,17 +136,18 @@ def _uniform(a: np.ndarray) -> bool:
 def _ground_map(device: Device, x: np.ndarray, y: np.ndarray, x_gate: str, y_gate: str, fixed: Mapping[str, float]) -> np.ndarray:
     """Exact ground states of the sweep, shape (len(y), len(x), n_dots).
 
-    Two dots: row event scan with the six relevant moves (exact by itself).
-    More dots on linear axes: the exact cells of the plane
-    (:mod:`.cells`), cost set by the number of cells; the row scan with its
-    Voronoi certificate is the fall-back.
+    Two or more dots on linear axes: the exact cells of the plane
+    (:mod:`.cells`, lower envelope of the states' energy planes with a
+    Voronoi certificate), cost set by the number of candidate states and
+    cells. Otherwise, and as the fall-back: the row event scan of
+    :func:`.ground_state.ground_state_rows`.
     """
     first = _induced(device, x[:1], y, x_gate, y_gate, fixed)[:, 0, :]
     if x.size > 1:
         step = device.cdg[:, device.gate_index(x_gate)] / E_AC * (x[1] - x[0])
     else:
         step = np.zeros(device.n_dots)
-    if device.n_dots >= 3 and x.size > 1 and y.size > 1 and _uniform(x) and _uniform(y):
+    if device.n_dots >= 2 and x.size > 1 and y.size > 1 and _uniform(x) and _uniform(y):
         step_y = device.cdg[:, device.gate_index(y_gate)] / E_AC * (y[1] - y[0])
         g = ground_state_plane(first[0], step, step_y, (y.size, x.size), device.ec_eV)
         if g is not None:
