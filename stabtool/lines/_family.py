@@ -53,13 +53,31 @@ def vertex_positions(r: RefinedLine, others: Sequence[TransitionLine], axes: Map
     """
     if r.points is None or not others:
         return float("nan"), float("nan")
-    t = r.points[0]
+    tab = _others_table(others, axes)
+    return _vertex_positions(r, tab)
+
+
+def _others_table(others: Sequence[TransitionLine], axes: MapAxes) -> dict:
+    """What :func:`vertex_positions` needs of the other family's lines, computed once."""
     sx, sy = (abs(v) for v in steps(axes))
+    pb, db = _point_dir(others)
+    a = np.array([[o.start[0] / sx, o.start[1] / sy] for o in others])
+    b = np.array([[o.end[0] / sx, o.end[1] / sy] for o in others])
+    d = b - a
+    return {"sx": sx, "sy": sy, "pb": pb, "db": db, "a": a, "d": d,
+            "L2": np.maximum((d * d).sum(1), 1e-300), "scale": np.array([sx, sy])}
+
+
+def _vertex_positions(r: RefinedLine, tab: dict) -> tuple[float, float]:
+    if r.points is None:
+        return float("nan"), float("nan")
+    t = r.points[0]
+    sx, sy = tab["sx"], tab["sy"]
     tstep = sy if r.along_x else sx
     lo, hi = float(t.min()), float(t.max())
     span = hi - lo
     pa, da = _point_dir([r.line])
-    pb, db = _point_dir(others)
+    pb, db = tab["pb"], tab["db"]
     cross = da[0, 0] * db[:, 1] - da[0, 1] * db[:, 0]
     w = pb - pa
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -67,11 +85,8 @@ def vertex_positions(r: RefinedLine, others: Sequence[TransitionLine], axes: Map
     P = pa + u[:, None] * da  # intersections (x, y), V
     tau = P[:, 1] if r.along_x else P[:, 0]
     # distance (pixel frame) from each intersection to the other segment
-    a = np.array([[o.start[0] / sx, o.start[1] / sy] for o in others])
-    b = np.array([[o.end[0] / sx, o.end[1] / sy] for o in others])
-    q = P / np.array([sx, sy])
-    d = b - a
-    L2 = np.maximum((d * d).sum(1), 1e-300)
+    a, d, L2 = tab["a"], tab["d"], tab["L2"]
+    q = P / tab["scale"]
     lam = np.clip(((q - a) * d).sum(1) / L2, 0.0, 1.0)
     dist = np.hypot(*(q - a - lam[:, None] * d).T)
     near = np.isfinite(tau) & (dist <= 0.3 * span / tstep + 4)
@@ -111,9 +126,10 @@ def family_fit(members: Sequence[RefinedLine], others: Sequence[TransitionLine],
     sx, sy = (abs(v) for v in steps(axes))
     tstep = sy if along else sx
     lps, full = [], []
+    tab = _others_table(others, axes) if others else None
     for r in rs:
         t, p, s = r.points
-        va, vb = vertex_positions(r, others, axes)
+        va, vb = _vertex_positions(r, tab) if tab is not None else (float("nan"), float("nan"))
         gap = max(VERTEX_GAP_PX * tstep, VERTEX_GAP_FRAC * np.ptp(t))
         ok = np.ones(t.size, bool)
         for v in (va, vb):
@@ -125,7 +141,9 @@ def family_fit(members: Sequence[RefinedLine], others: Sequence[TransitionLine],
         lps.append(LinePoints(t=t[ok], p=p[ok], sig=s[ok], vertices=(va, vb)))
         full.append(LinePoints(t=t, p=p, sig=s))
     straight_all = fit_family(full, bend=False)
-    straight = fit_family(lps, bend=False)
+    # with no point near a vertex left out, the two straight fits see the same points
+    trimmed = any(lp.t.size != f.t.size for lp, f in zip(lps, full))
+    straight = fit_family(lps, bend=False) if trimmed else straight_all
     if straight is None or straight_all is None:
         return None
     bent = fit_family(lps, bend=True)

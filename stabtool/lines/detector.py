@@ -10,7 +10,7 @@ import xarray as xr
 from ..errors import InputError
 from ..preprocess._checks import check_map
 from ..preprocess.background import _row_offsets_core
-from ..preprocess.noise import _noise_core
+from ..preprocess.noise import MAX_NOISE_SAMPLES, _noise_core
 from ..quality import Quality
 from ._geometry import steps
 from ._merge import drop_duplicates, merge_collinear
@@ -104,7 +104,7 @@ def _detect_core(values: np.ndarray, axes, cfg: LineDetector) -> LineDetection:
     if missing > 0:
         quality = quality.with_warning(f"{100 * missing:.1f} % of the points are missing (NaN); analysed the rest",
                                        doubtful=missing > 0.5)
-    noise = _noise_core(values)
+    noise = _noise_core(values, MAX_NOISE_SAMPLES)
     if not (np.isfinite(noise) and noise > 0):
         rng = np.nanpercentile(values, [1, 99])
         noise = max(1e-3 * float(rng[1] - rng[0]), np.finfo(float).tiny)

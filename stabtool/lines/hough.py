@@ -2,10 +2,10 @@
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import ndimage as ndi
 from skimage.transform import hough_line
 
 from ..errors import InputError
@@ -64,10 +64,57 @@ class PixelSegment:
         return float(sig / (np.sqrt(n) * max(spread, 1e-9)))
 
 
+def _tls(px: np.ndarray, py: np.ndarray):
+    """Total-least-squares line through points: centre, unit direction, perpendicular rms.
+
+    :func:`stabtool.lines._geometry.tls_fit` (unweighted) with the 2×2
+    eigenproblem solved in closed form (it runs once or twice per segment).
+    """
+    n = px.size
+    cx, cy = px.sum() / n, py.sum() / n
+    dx, dy = px - cx, py - cy
+    a, b, c = float((dx * dx).sum()) / n, float((dx * dy).sum()) / n, float((dy * dy).sum()) / n
+    half = 0.5 * (a - c)
+    root = math.hypot(half, b)
+    lam_max = 0.5 * (a + c) + root
+    lam_min = 0.5 * (a + c) - root
+    ux, uy = (lam_max - c, b) if a >= c else (b, lam_max - a)
+    norm = math.hypot(ux, uy)
+    if not norm > 0:
+        return tls_fit(px, py)
+    ux, uy = ux / norm, uy / norm
+    if ux < 0 or (ux == 0 and uy < 0):
+        ux, uy = -ux, -uy
+    return cx, cy, np.array([ux, uy]), math.sqrt(max(lam_min, 0.0))
+
+
+def _max_filter5(a: np.ndarray) -> np.ndarray:
+    """5×5 moving maximum of a non-negative 2-D array, zero outside it.
+
+    The same as ``scipy.ndimage.maximum_filter(a, size=(5, 5), mode="constant")``
+    for ``a >= 0``, as two separable passes of shifted maxima.
+    """
+    out = a
+    for axis in (0, 1):
+        n = out.shape[axis]
+        pad = [(0, 0), (0, 0)]
+        pad[axis] = (2, 2)
+        p = np.pad(out, pad)
+        sl = [slice(None), slice(None)]
+        sl[axis] = slice(0, n)
+        m = p[tuple(sl)].copy()
+        for k in range(1, 5):
+            sl[axis] = slice(k, k + n)
+            np.maximum(m, p[tuple(sl)], out=m)
+        out = m
+    return out
+
+
 def _hough_peaks(h: np.ndarray, angles: np.ndarray, dists: np.ndarray, min_votes: int, max_peaks: int):
     """Local maxima of the accumulator (5 distance × 5 angle bins, angle wrapping), strongest first."""
+    h = h.astype(np.int32) if h.size and h.max() < 2**31 - 1 else h
     hp = np.concatenate([h[::-1, -2:], h, h[::-1, :2]], axis=1)  # θ = ±90° wrap with ρ → −ρ
-    mx = ndi.maximum_filter(hp, size=(5, 5), mode="constant")[:, 2:-2]
+    mx = _max_filter5(hp)[:, 2:-2]
     cand = np.nonzero((h >= mx) & (h >= min_votes))
     votes = h[cand]
     order = np.argsort(-votes, kind="stable")[: 2 * max_peaks]
@@ -92,52 +139,79 @@ def _segments_core(
     pk_ang, pk_dist = _hough_peaks(h, angles, dists, min_votes, max_lines)
     px, py = cols.astype(float), rows.astype(float)
     free = np.ones(px.size, dtype=bool)
+    n_free = px.size
     segs: list[PixelSegment] = []
     chunk = 64
-    near_all = None
-    for k, (ang, dist) in enumerate(zip(pk_ang, pk_dist)):
-        if len(segs) >= max_lines or not free.any():
+    reach_px = 3 * tolerance_px + 2
+    for k0 in range(0, pk_ang.size, chunk):
+        if len(segs) >= max_lines or n_free == 0:
             break
-        c, s = np.cos(ang), np.sin(ang)
-        if k % chunk == 0:
-            # pixels near the next peaks' lines, all at once
-            # (hough_line: dist = col*cos(angle) + row*sin(angle))
-            # (only the still free pixels: claimed ones never come back)
-            fidx = np.nonzero(free)[0]
-            ca, sa = np.cos(pk_ang[k : k + chunk]), np.sin(pk_ang[k : k + chunk])
-            near_all = np.abs(np.outer(ca, px[fidx]) + np.outer(sa, py[fidx]) - pk_dist[k : k + chunk, None]) <= tolerance_px
-            # free pixels only get fewer: an upper bound that skips most weak peaks at once
-            bound = near_all.sum(1)
-        if bound[k % chunk] < min_votes:
-            continue
-        idx = fidx[near_all[k % chunk] & free[fidx]]
-        if idx.size < min_votes:
-            continue
-        t = -px[idx] * s + py[idx] * c
-        order = np.argsort(t)
-        ts = t[order]
-        br = np.nonzero(np.diff(ts) > max_gap_px)[0] + 1
-        starts = np.concatenate([[0], br])
-        ends = np.concatenate([br, [ts.size]])
-        # only runs long enough in pixels and in extent are examined
-        good = (ends - starts >= min_votes) & (ts[ends - 1] - ts[starts] >= min_length_px - 2)
-        for st, en in zip(starts[good], ends[good]):
-            sel = idx[order[st:en]]
-            cx, cy, u, rms = tls_fit(px[sel], py[sel])
-            # one re-collection around the refined line, inside the run's span
-            tt = (px - cx) * u[0] + (py - cy) * u[1]
-            dd = -(px - cx) * u[1] + (py - cy) * u[0]
-            span = (tt >= tt[sel].min() - 1) & (tt <= tt[sel].max() + 1)
-            sel2 = np.nonzero(free & span & (np.abs(dd) <= tolerance_px))[0]
-            if sel2.size >= sel.size:
-                sel = sel2
-                cx, cy, u, rms = tls_fit(px[sel], py[sel])
-            tt = (px[sel] - cx) * u[0] + (py[sel] - cy) * u[1]
-            if tt.max() - tt.min() < min_length_px - 1:
+        # signed distances of the free pixels from the next peaks' lines, all at
+        # once (hough_line: dist = col*cos(angle) + row*sin(angle)); claimed
+        # pixels never come back
+        fidx = np.nonzero(free)[0]
+        ca, sa = np.cos(pk_ang[k0 : k0 + chunk]), np.sin(pk_ang[k0 : k0 + chunk])
+        dist_all = np.abs(np.outer(ca, px[fidx]) + np.outer(sa, py[fidx]) - pk_dist[k0 : k0 + chunk, None])
+        near_all = dist_all <= tolerance_px
+        lfree = np.ones(fidx.size, dtype=bool)  # free[fidx], kept up to date
+        # peaks without a long enough run among the pixels free now never get
+        # one (claims only split and shorten runs): found for the whole chunk
+        # at once, with a hair of slack so that rounding never drops a peak
+        jj, ff = np.nonzero(near_all)
+        viable = np.zeros(ca.size, dtype=bool)
+        if jj.size:
+            tq = -px[fidx[ff]] * sa[jj] + py[fidx[ff]] * ca[jj]
+            o = np.lexsort((tq, jj))
+            jj, tq = jj[o], tq[o]
+            cut = np.nonzero((np.diff(jj) != 0) | (np.diff(tq) > max_gap_px + 1e-9))[0] + 1
+            rs, re = np.r_[0, cut], np.r_[cut, jj.size]
+            long_run = (re - rs >= min_votes) & (tq[re - 1] - tq[rs] >= min_length_px - 2 - 1e-9)
+            viable[jj[rs[long_run]]] = True
+        # free pixels near each peak's line, kept up to date as pixels are claimed
+        count = near_all.sum(1)
+        for j in range(ca.size):
+            if len(segs) >= max_lines or n_free == 0:
+                break
+            if count[j] < min_votes or not viable[j]:
                 continue
-            free[sel] = False
-            segs.append(PixelSegment(float(cx), float(cy), float(u[0]), float(u[1]),
-                                     float(tt.min()), float(tt.max()), int(sel.size), rms))
+            c, s = ca[j], sa[j]
+            idx = fidx[near_all[j] & lfree]
+            # free pixels within reach of this peak's runs once refitted: the
+            # refitted line stays within the tolerance band of the Hough line
+            # along the run, so 3 tolerances + 2 px hold every pixel it can
+            # collect (the re-collection below scans these, not all pixels)
+            reach = fidx[(dist_all[j] <= reach_px) & lfree]
+            rx, ry = px[reach], py[reach]
+            t = -px[idx] * s + py[idx] * c
+            order = np.argsort(t)
+            ts = t[order]
+            br = np.nonzero(np.diff(ts) > max_gap_px)[0] + 1
+            starts = np.concatenate([[0], br])
+            ends = np.concatenate([br, [ts.size]])
+            # only runs long enough in pixels and in extent are examined
+            good = (ends - starts >= min_votes) & (ts[ends - 1] - ts[starts] >= min_length_px - 2)
+            for st, en in zip(starts[good], ends[good]):
+                sel = idx[order[st:en]]
+                cx, cy, u, rms = _tls(px[sel], py[sel])
+                # one re-collection around the refined line, inside the run's span
+                ts_ = (px[sel] - cx) * u[0] + (py[sel] - cy) * u[1]
+                tt = (rx - cx) * u[0] + (ry - cy) * u[1]
+                dd = -(rx - cx) * u[1] + (ry - cy) * u[0]
+                span = (tt >= ts_.min() - 1) & (tt <= ts_.max() + 1)
+                sel2 = reach[free[reach] & span & (np.abs(dd) <= tolerance_px)]
+                if sel2.size >= sel.size:
+                    sel = sel2
+                    cx, cy, u, rms = _tls(px[sel], py[sel])
+                tt = (px[sel] - cx) * u[0] + (py[sel] - cy) * u[1]
+                if tt.max() - tt.min() < min_length_px - 1:
+                    continue
+                free[sel] = False
+                n_free -= sel.size
+                loc = np.searchsorted(fidx, sel)
+                lfree[loc] = False
+                count -= near_all[:, loc].sum(1)
+                segs.append(PixelSegment(float(cx), float(cy), float(u[0]), float(u[1]),
+                                         float(tt.min()), float(tt.max()), int(sel.size), rms))
     return segs
 
 

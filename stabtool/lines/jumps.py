@@ -19,10 +19,10 @@ def _jumps_core(values: np.ndarray, block: int = 4, min_shift_px: float = 2.0) -
     ny, nx = values.shape
     if ny < 4 * block or nx < 16:
         return []
-    img = fill_nan(values)
+    finite = np.isfinite(values)
+    img = values if finite.all() else fill_nan(values)
     gx = np.abs(ndi.gaussian_filter1d(img, 1.0, axis=1, order=1))
-    valid_rows = np.isfinite(values).mean(1) > 0.8
-    csum = np.cumsum(np.vstack([np.zeros(nx), gx]), axis=0)
+    valid_rows = finite.mean(1) > 0.8
     max_lag = max(4, nx // 8)
     lags = np.full(ny, np.nan)
     score = np.zeros(ny)
@@ -31,18 +31,31 @@ def _jumps_core(values: np.ndarray, block: int = 4, min_shift_px: float = 2.0) -
     good = ((vr[i] - vr[i - block]) == block) & ((vr[i + block] - vr[i]) == block)
     i = i[good]
     if i.size:
-        before = (csum[i] - csum[i - block]) / block
-        after = (csum[i + block] - csum[i]) / block
-        a = before - before.mean(1, keepdims=True)
-        b = after - after.mean(1, keepdims=True)
+        # mean |∂s/∂x| of the `block` rows from row j on, for every j: the
+        # rows before row i are block i − block, the rows after it block i
+        # (a sum of `block` shifted slices: rows are contiguous, a cumulative
+        # sum down the columns is not)
+        nb = ny - block + 1
+        blocks = gx[:nb].copy()
+        for k in range(1, block):
+            blocks += gx[k : k + nb]
+        blocks /= block
+        blocks -= blocks.mean(1, keepdims=True)
         # zero padding to nx + max_lag makes the circular correlation linear for
         # every lag examined (|lag| ≤ max_lag)
         L = next_fast_len(nx + max_lag + 2, real=True)
-        fa = rfft(a, L, axis=1)
-        fb = rfft(b, L, axis=1)
-        cc = irfft(np.conj(fa) * fb, L, axis=1)
+        fblk = rfft(blocks, L, axis=1)
+        power = (blocks * blocks).sum(1)
+        if i.size == ny - 2 * block + 1:  # every row usable: the blocks are two slices
+            prod = np.conj(fblk[: ny - 2 * block + 1])
+            prod *= fblk[block:]
+        else:
+            prod = np.conj(fblk[i - block])
+            prod *= fblk[i]
+        cc = irfft(prod, L, axis=1)
         lagv = np.r_[np.arange(0, max_lag + 1), np.arange(-max_lag, 0)]
-        vals = cc[:, lagv]
+        # lags 0 … max_lag, then −max_lag … −1 (the first maximum in this order wins)
+        vals = np.concatenate([cc[:, : max_lag + 1], cc[:, L - max_lag :]], axis=1)
         k = np.argmax(vals, axis=1)
         best = vals[np.arange(i.size), k]
         lag = lagv[k].astype(float)
@@ -54,7 +67,7 @@ def _jumps_core(values: np.ndarray, block: int = 4, min_shift_px: float = 2.0) -
         den = y0 - 2 * y1 + y2
         corr = np.where(inner & (den < 0), 0.5 * (y0 - y2) / np.where(den < 0, den, -1.0), 0.0)
         lag = lag + corr
-        norm = np.sqrt((a * a).sum(1) * (b * b).sum(1))
+        norm = np.sqrt(power[i - block] * power[i])
         with np.errstate(invalid="ignore", divide="ignore"):
             rel = np.where(norm > 0, best / norm, 0.0)
             gain = np.where((norm > 0) & (rel > 0.5), (best - cc[:, 0]) / norm, 0.0)

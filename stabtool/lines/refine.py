@@ -30,82 +30,174 @@ class RefinedLine:
     along_x: bool = True
 
 
-def _profiles(values: np.ndarray, seg: PixelSegment, along_x: bool, halfwidth: int, max_points: int, trim: float,
-              edges: np.ndarray | None = None):
-    """Extract profiles across the segment, one per row (along_x) or column."""
-    (sx, sy), (ex, ey) = seg.start_px, seg.end_px
+def _all_profiles(values: np.ndarray, segs, along_x, halfwidth: int, max_points: int, trims,
+                  edges: np.ndarray | None = None):
+    """Profiles across every segment at once, one per row (along_x) or column of each.
+
+    Returns ``(seg_id, rows, centre, u, y, mask)`` with one entry (row) per
+    profile, segments in order, or None when no segment has a profile.
+    """
     ny, nx = values.shape
-    if along_x:
-        a0, a1, b0, b1 = sy, ey, sx, ex  # param = row, position = column
-        n_par, n_pos = ny, nx
-    else:
-        a0, a1, b0, b1 = sx, ex, sy, ey
-        n_par, n_pos = nx, ny
-    lo, hi = min(a0, a1) + trim, max(a0, a1) - trim
-    rows = np.arange(int(np.ceil(lo)), int(np.floor(hi)) + 1)
-    rows = rows[(rows >= 0) & (rows < n_par)]
-    if rows.size == 0 or a1 == a0:
+    ids, rows_l, a0s, b0s, gs = [], [], [], [], []
+    for k, seg in enumerate(segs):
+        (sx, sy), (ex, ey) = seg.start_px, seg.end_px
+        if along_x[k]:
+            a0, a1, b0, b1 = sy, ey, sx, ex  # param = row, position = column
+            n_par = ny
+        else:
+            a0, a1, b0, b1 = sx, ex, sy, ey
+            n_par = nx
+        if a1 == a0:
+            continue
+        lo, hi = min(a0, a1) + trims[k], max(a0, a1) - trims[k]
+        r0, r1 = max(int(np.ceil(lo)), 0), min(int(np.floor(hi)), n_par - 1)
+        if r1 < r0:
+            continue
+        rows = np.arange(r0, r1 + 1)
+        if rows.size > max_points:
+            rows = rows[np.linspace(0, rows.size - 1, max_points).round().astype(int)]
+        ids.append(np.full(rows.size, k))
+        rows_l.append(rows)
+        a0s.append(a0)
+        b0s.append(b0)
+        gs.append((b1 - b0) / (a1 - a0))
+    if not rows_l:
         return None
-    if rows.size > max_points:
-        rows = rows[np.linspace(0, rows.size - 1, max_points).round().astype(int)]
-    pred = b0 + (rows - a0) * (b1 - b0) / (a1 - a0)
+    seg_id = np.concatenate(ids)
+    rows = np.concatenate(rows_l)
+    sizes = [r.size for r in rows_l]
+    a0v, b0v, gv = (np.repeat(np.array(v, float), sizes) for v in (a0s, b0s, gs))
+    alx = np.asarray(along_x, bool)[seg_id]
+    pred = b0v + (rows - a0v) * gv
     centre = np.round(pred).astype(int)
     offs = np.arange(-halfwidth, halfwidth + 1)
     pos = centre[:, None] + offs[None, :]
+    n_pos = (ny + (nx - ny) * alx.astype(int))[:, None]  # nx along x, else ny
     inside = (pos >= 0) & (pos < n_pos)
     posc = np.clip(pos, 0, n_pos - 1)
-    if along_x:
-        y = values[rows[:, None], posc]
-    else:
-        y = values[posc, rows[:, None]]
+    flat = np.where(alx[:, None], rows[:, None] * nx + posc, posc * nx + rows[:, None])
+    y = values.ravel()[flat]
     mask = inside & np.isfinite(y)
     if edges is not None:
         # a profile must cross one line only: samples beyond ±2 px that hit
         # another edge (a neighbouring line, a triple point) are left out
-        e = edges[rows[:, None], posc] if along_x else edges[posc, rows[:, None]]
+        e = edges.ravel()[flat]
         far = np.abs(offs)[None, :] > 2
         hit = e & far & inside
         # cut the profile at the first foreign edge on each side
         left = np.where(hit & (offs[None, :] < 0), offs[None, :], -10**6).max(1)
         right = np.where(hit & (offs[None, :] > 0), offs[None, :], 10**6).min(1)
         mask &= (offs[None, :] > left[:, None] + 1) & (offs[None, :] < right[:, None] - 1)
-    u = offs[None, :].astype(float) + np.zeros((rows.size, 1))
-    return rows, centre, u, y, mask
+    u = np.broadcast_to(offs[None, :].astype(float), y.shape)
+    return seg_id, rows, centre, u, y, mask
 
 
-def _robust_line_fit(t: np.ndarray, p: np.ndarray, sig: np.ndarray, n_clip: float = 3.5):
-    """Weighted fit p = A + C (t − t̄) with iterative clipping; returns A, C, errors, inliers, t̄."""
-    keep = np.isfinite(t) & np.isfinite(p) & np.isfinite(sig) & (sig > 0)
-    tm = float(np.mean(t[keep])) if keep.any() else 0.0
-    res = None
+def _row_median(v: np.ndarray, valid: np.ndarray) -> np.ndarray:
+    """Median of each row of ``v`` (m, p) over the entries marked ``valid`` (NaN for an empty row)."""
+    s = np.sort(np.where(valid, v, np.inf), axis=1)
+    c = valid.sum(1)
+    lo = np.clip((c - 1) // 2, 0, None)
+    hi = np.clip(c // 2, 0, v.shape[1] - 1)
+    r = np.arange(v.shape[0])
+    with np.errstate(invalid="ignore"):
+        med = (s[r, lo] + s[r, hi]) / 2
+    return np.where(c > 0, med, np.nan)
+
+
+def _robust_line_fits(t: np.ndarray, p: np.ndarray, sig: np.ndarray, valid: np.ndarray, n_clip: float = 3.5):
+    """Weighted fits ``p = A + C (t − t̄)`` of many point sets with iterative clipping.
+
+    ``t``, ``p``, ``sig`` (m, q) hold one point set per row, ``valid`` marks
+    its points. Per row: 3.5 robust σ clipping (scale at least 1, i.e. the
+    stated errors) until the kept set no longer changes (at most 6 passes);
+    the covariance is scaled by ``max(χ²_red, 1)``.
+
+    Returns ``(beta (m, 2), cov (m, 2, 2), keep (m, q), t̄ (m,), ok (m,))``;
+    rows with fewer than four kept points are not ``ok``.
+    """
+    with np.errstate(invalid="ignore"):
+        fin = valid & np.isfinite(t) & np.isfinite(p)
+        keep = fin & np.isfinite(sig) & (sig > 0)
+    m = t.shape[0]
+    cnt0 = keep.sum(1)
+    tm = np.where(cnt0 > 0, np.where(keep, t, 0.0).sum(1) / np.maximum(cnt0, 1), 0.0)
+    x = np.where(fin, t - tm[:, None], 0.0)
+    pz = np.where(fin, p, 0.0)
+    sz = np.where(keep, sig, 1.0)
+    inv_s2 = 1.0 / sz**2
+    alive = np.ones(m, bool)
+    ok = np.ones(m, bool)
+    beta = np.full((m, 2), np.nan)
+    cov = np.full((m, 2, 2), np.nan)
+    res_keep = keep.copy()
     for _ in range(6):
-        if keep.sum() < 4:
-            return None
-        w = 1.0 / sig[keep] ** 2
-        X = np.stack([np.ones(keep.sum()), t[keep] - tm], 1)
-        XtW = X.T * w
-        cov = np.linalg.inv(XtW @ X)
-        beta = cov @ (XtW @ p[keep])
-        r = (p - beta[0] - beta[1] * (t - tm)) / sig
-        rk = r[keep]
-        scale = 1.4826 * np.median(np.abs(rk - np.median(rk)))
-        scale = max(scale, 1.0)
-        new = keep & (np.abs(r) <= n_clip * scale)
-        new &= np.isfinite(t) & np.isfinite(p)
-        if np.array_equal(new, keep):
-            res = (beta, cov, keep, rk)
+        cnt = keep.sum(1)
+        small = alive & (cnt < 4)
+        ok &= ~small
+        alive &= ~small
+        if not alive.any():
             break
-        keep = new
-        res = (beta, cov, keep, rk)
-    if res is None or res[2].sum() < 4:
-        return None
-    beta, cov, keep, _ = res
-    w = 1.0 / sig[keep] ** 2
-    X = np.stack([np.ones(keep.sum()), t[keep] - tm], 1)
-    r = p[keep] - X @ beta
-    chi2r = float((w * r**2).sum() / max(keep.sum() - 2, 1))
-    cov = cov * max(chi2r, 1.0)
-    return beta, cov, keep, tm
+        w = np.where(keep, inv_s2, 0.0)
+        S0, S1, S2 = w.sum(1), (w * x).sum(1), (w * x * x).sum(1)
+        B0, B1 = (w * pz).sum(1), (w * x * pz).sum(1)
+        with np.errstate(all="ignore"):
+            det = S0 * S2 - S1 * S1
+            c00, c01, c11 = S2 / det, -S1 / det, S0 / det
+            b0 = c00 * B0 + c01 * B1
+            b1 = c01 * B0 + c11 * B1
+            r = (pz - b0[:, None] - b1[:, None] * x) / sz
+        med = _row_median(r, keep)
+        mad = _row_median(np.abs(r - med[:, None]), keep)
+        scale = np.maximum(1.4826 * mad, 1.0)
+        with np.errstate(invalid="ignore"):
+            new = keep & (np.abs(r) <= n_clip * scale[:, None]) & fin
+        beta[alive] = np.stack([b0, b1], 1)[alive]
+        cov[alive] = np.stack([np.stack([c00, c01], 1), np.stack([c01, c11], 1)], 1)[alive]
+        res_keep[alive] = new[alive]
+        same = (new == keep).all(1)
+        alive &= ~same
+        keep = np.where(alive[:, None], new, keep)
+    cnt = res_keep.sum(1)
+    ok &= cnt >= 4
+    w = np.where(res_keep, inv_s2, 0.0)
+    with np.errstate(all="ignore"):
+        r = pz - beta[:, :1] - beta[:, 1:] * x
+        chi2r = (w * r * r).sum(1) / np.maximum(cnt - 2, 1)
+    cov = cov * np.maximum(chi2r, 1.0)[:, None, None]
+    return beta, cov, res_keep, tm, ok
+
+
+def _bend_chi2s(t: np.ndarray, p: np.ndarray, sig: np.ndarray, keep: np.ndarray) -> np.ndarray:
+    """Drop of χ² when quadratic and cubic terms join a straight-line fit (2 dof), per row.
+
+    ``t`` is centred; rows with fewer than 8 kept points give NaN.
+    """
+    m = t.shape[0]
+    out = np.full(m, np.nan)
+    cnt = keep.sum(1)
+    rows = np.nonzero(cnt >= 8)[0]
+    if rows.size == 0:
+        return out
+    t, p, sig, keep = t[rows], p[rows], sig[rows], keep[rows]
+    span = np.where(keep, t, -np.inf).max(1) - np.where(keep, t, np.inf).min(1)
+    x = np.where(keep, t, 0.0) / np.maximum(span, 1e-300)[:, None]
+    w = np.where(keep, 1.0 / np.where(keep, sig, 1.0) ** 2, 0.0)
+    pz = np.where(keep, p, 0.0)
+
+    def chi2(deg: int) -> np.ndarray:
+        X = np.stack([x**k for k in range(deg + 1)], 1)  # (r, deg+1, q)
+        XW = X * w[:, None, :]
+        A = XW @ X.transpose(0, 2, 1)
+        b = (XW @ pz[:, :, None])[..., 0]
+        try:
+            beta = np.linalg.solve(A, b[..., None])[..., 0]
+        except np.linalg.LinAlgError:
+            beta = np.stack([np.linalg.lstsq(A[i], b[i], rcond=None)[0] for i in range(A.shape[0])])
+        r = pz - (beta[:, :, None] * X).sum(1)
+        return (w * r * r).sum(1)
+
+    out[rows] = np.maximum(chi2(1) - chi2(3), 0.0)
+    return out
 
 
 def refine_segment(
@@ -209,36 +301,33 @@ def refine_segments(
 
 def _refine_once(segs, values, axes, *, families, along_x, halfwidth_px, max_points, shapes, edges, end_trim):
     hw = int(halfwidth_px)
-    blocks = []
-    for k, seg in enumerate(segs):
-        trim = max(2.0, end_trim * seg.length_px)
-        ext = _profiles(values, seg, along_x[k], hw, max_points, trim, edges)
-        if ext is None:
-            continue
-        rows, centre, u, y, mask = ext
-        okrows = (mask.sum(1) >= hw + 2) & mask[:, hw - 1 : hw + 2].all(1)
-        if okrows.sum() < 4:
-            continue
-        blocks.append((k, rows[okrows], centre[okrows], u[okrows], y[okrows], mask[okrows]))
     out = [RefinedLine(line=segment_to_line(s, axes, family=f), step_height=float("nan"), refined=False, shape="none",
                        along_x=bool(a)) for s, f, a in zip(segs, families, along_x)]
     extra: list[RefinedLine] = []
-    if not blocks:
+    trims = [max(2.0, end_trim * s.length_px) for s in segs]
+    ext = _all_profiles(values, segs, along_x, hw, max_points, trims, edges)
+    if ext is None:
         return out
-    U = np.vstack([b[3] for b in blocks])
-    Y = np.vstack([b[4] for b in blocks])
-    M = np.vstack([b[5] for b in blocks])
-    bounds = np.cumsum([0] + [b[1].size for b in blocks])
+    seg_id, rows, centre, U, Y, M = ext
+    okrows = (M.sum(1) >= hw + 2) & M[:, hw - 1 : hw + 2].all(1)
+    enough = np.bincount(seg_id[okrows], minlength=len(segs)) >= 4
+    sel = okrows & enough[seg_id]
+    if not sel.any():
+        return out
+    seg_id, rows, centre, U, Y, M = seg_id[sel], rows[sel], centre[sel], U[sel], Y[sel], M[sel]
+    # one block of consecutive profiles per segment
+    blk_seg, starts = np.unique(seg_id, return_index=True)
+    nb = blk_seg.size
+    blk = np.searchsorted(blk_seg, seg_id)
+    pos = np.arange(seg_id.size) - starts[blk]
+    width_max = int(pos.max()) + 1
+    n_prof = np.bincount(blk, minlength=nb)
     fits = {shapes[0]: fit_profiles(U, Y, M, kind=shapes[0], halfwidth=hw)}
     if shapes[0] == "step":
         fits["step"] = _interpolated_crossings(fits["step"], U, Y, M, hw)
     if len(shapes) > 1:
         # other shapes only for lines the first one fits poorly (fewer than 70 % usable profiles)
-        poor = np.zeros(U.shape[0], bool)
-        for j in range(len(blocks)):
-            sl = slice(bounds[j], bounds[j + 1])
-            if fits[shapes[0]].ok[sl].mean() < 0.7:
-                poor[sl] = True
+        poor = (np.bincount(blk, weights=fits[shapes[0]].ok, minlength=nb) / n_prof < 0.7)[blk]
         for kind in shapes[1:]:
             if poor.any():
                 sub = fit_profiles(U[poor], Y[poor], M[poor], kind=kind, halfwidth=hw)
@@ -250,20 +339,100 @@ def _refine_once(segs, values, axes, *, families, along_x, halfwidth_px, max_poi
                 ssr[poor] = sub.ssr
                 ok[poor] = sub.ok
                 fits[kind] = BatchFit(ssr=ssr, ok=ok, **full)
-    for j, (k, rows, centre, *_rest) in enumerate(blocks):
-        sl = slice(bounds[j], bounds[j + 1])
-        best = None
-        for kind, f in fits.items():
-            okk = f.ok[sl]
-            nok = int(okk.sum())
-            score = float(np.median(f.ssr[sl][okk])) if nok >= 4 else np.inf
-            if best is None or (nok >= 0.8 * best[2] and score < best[1]) or nok > 1.25 * best[2]:
-                best = (kind, score, nok)
-        kind = best[0]
-        res = _line_from_crossings(out[k].line, rows, centre, fits[kind], sl, axes, along_x[k], kind)
-        if res:
-            out[k] = res[0]
-            extra.extend(res[1:])
+
+    def pad(v, fill):
+        a = np.full((nb, width_max), fill, dtype=np.asarray(v).dtype)
+        a[blk, pos] = v
+        return a
+
+    # per block: the shape with (many more) usable profiles or, with about as many, the lower median residual
+    kinds = list(fits)
+    best_k = np.zeros(nb, int)
+    best_s = np.full(nb, np.inf)
+    best_n = np.zeros(nb)
+    for i, kind in enumerate(kinds):
+        f = fits[kind]
+        nok = np.bincount(blk, weights=f.ok, minlength=nb)
+        score = np.where(nok >= 4, _row_median(pad(f.ssr, np.inf), pad(f.ok, False)), np.inf)
+        better = ((nok >= 0.8 * best_n) & (score < best_s)) | (nok > 1.25 * best_n) if i else np.ones(nb, bool)
+        best_k = np.where(better, i, best_k)
+        best_s = np.where(better, score, best_s)
+        best_n = np.where(better, nok, best_n)
+    kp = best_k[blk]
+
+    def chosen(field):
+        vals = [getattr(fits[k], field) for k in kinds]
+        if field == "interpolated":
+            vals = [v if v is not None else np.zeros(U.shape[0], bool) for v in vals]
+        return np.choose(kp, vals) if len(vals) > 1 else vals[0]
+
+    ok, u0, u0e = chosen("ok"), chosen("u0"), chosen("u0_err")
+    width, height, interp = chosen("width"), chosen("height"), chosen("interpolated")
+    # crossing points in volts (see _line_from_crossings in the Notes of refine_segment)
+    alx = np.asarray(along_x, bool)[seg_id]
+    sx_, sy_ = steps(axes)
+    pstep = np.where(alx, sx_, sy_)
+    # an unresolved step lies somewhere between the two samples around it; the
+    # midpoint makes the crossings a digital straight line, whose slope is
+    # fixed far better than by noise-jittered centres (A. Rosenfeld, IEEE
+    # Trans. Comput. C-23, 1264 (1974), doi:10.1109/T-C.1974.223845)
+    with np.errstate(invalid="ignore"):
+        sharp = (width < 0.7) & ~interp
+        u0 = np.where(sharp, np.floor(u0) + 0.5, u0)
+    cu = centre + u0
+    rf = rows.astype(float)
+    p_v = np.where(alx, idx_to_volts(cu, axes.x), idx_to_volts(cu, axes.y))
+    t_v = np.where(alx, idx_to_volts(rf, axes.y), idx_to_volts(rf, axes.x))
+    # an unresolved step (w below ~0.7 px) fixes its crossing only to within the
+    # pixel: floor the error at the quantisation rms 1/√12 px (common practice, no source)
+    floor = np.where(sharp, 1.0 / np.sqrt(12.0), np.where(interp, 0.1, 0.05))
+    sig_v = np.maximum(u0e, floor) * np.abs(pstep)
+    ok = ok & np.isfinite(u0)
+    T, P, S, V = pad(t_v, np.nan), pad(p_v, np.nan), pad(sig_v, np.nan), pad(ok, False)
+    nok = V.sum(1)
+    beta, cov, keep, tm, fit_ok = _robust_line_fits(T, P, S, V)
+    fit_ok &= nok >= 4
+    bend = _bend_chi2s(T - tm[:, None], P, S, keep & fit_ok[:, None])
+    Wpx, H = pad(width, np.nan), pad(height, np.nan)
+    w_med = _row_median(Wpx, keep)
+    w_mad = 1.4826 * _row_median(np.abs(Wpx - w_med[:, None]), keep)
+    h_abs = _row_median(np.abs(H), keep)
+    h_med = _row_median(H, keep)
+    t_lo = np.where(keep, T, np.inf).min(1)
+    t_hi = np.where(keep, T, -np.inf).max(1)
+    n_keep = keep.sum(1)
+    for j in np.nonzero(fit_ok)[0]:
+        k = int(blk_seg[j])
+        kind = kinds[best_k[j]]
+        A, C = float(beta[j, 0]), float(beta[j, 1])
+        sA, sC = float(np.sqrt(cov[j, 0, 0])), float(np.sqrt(cov[j, 1, 1]))
+        along = bool(along_x[k])
+        step_p = sx_ if along else sy_
+        if along:
+            slope = 1.0 / C if C != 0 else np.inf
+            slope_err = sC / C**2 if C != 0 else np.inf
+            x0, y0 = A, float(tm[j])
+            start = (A + C * (t_lo[j] - tm[j]), t_lo[j])
+            end = (A + C * (t_hi[j] - tm[j]), t_hi[j])
+        else:
+            slope, slope_err = C, sC
+            x0, y0 = float(tm[j]), A
+            start = (t_lo[j], A + C * (t_lo[j] - tm[j]))
+            end = (t_hi[j], A + C * (t_hi[j] - tm[j]))
+        pos_err = sA / np.sqrt(1.0 + C**2)
+        if kind == "step" and w_med[j] >= 0.5:
+            wv = float(w_med[j]) * abs(step_p)
+            wv_err = 1.2533 * max(float(w_mad[j]), 1e-12) / np.sqrt(n_keep[j]) * abs(step_p)
+        else:
+            wv, wv_err = float("nan"), float("nan")
+        sign = int(np.sign(h_med[j]) * np.sign(step_p)) if kind == "step" else 0
+        line = replace(out[k].line, x0=float(x0), y0=float(y0), slope=float(slope), slope_stderr=float(slope_err),
+                       position_stderr=float(pos_err), start=(float(start[0]), float(start[1])),
+                       end=(float(end[0]), float(end[1])), width_V=float(wv), width_stderr_V=float(wv_err),
+                       n_points=int(n_keep[j]), step_sign=sign, refined=True, bend_chi2=float(bend[j]))
+        kj = keep[j]
+        out[k] = RefinedLine(line=line, step_height=float(h_abs[j]), refined=True, shape=kind,
+                             points=(T[j][kj], P[j][kj], S[j][kj]), along_x=along)
     return out + extra
 
 
@@ -304,97 +473,3 @@ def _interpolated_crossings(fit: BatchFit, U: np.ndarray, Y: np.ndarray, M: np.n
     from dataclasses import replace as _replace
 
     return _replace(fit, u0=u_new, u0_err=e_new, interpolated=good)
-
-
-def _line_from_crossings(base, rows, centre, fit, sl, axes, along_x, kind):
-    """Straight line through the crossing points (a list: empty when the fit failed)."""
-    ok = fit.ok[sl]
-    if ok.sum() < 4:
-        return []
-    sx_, sy_ = steps(axes)
-    if along_x:
-        pcoord, tcoord, pstep = axes.x, axes.y, sx_
-    else:
-        pcoord, tcoord, pstep = axes.y, axes.x, sy_
-    u0, u0e = fit.u0[sl][ok], fit.u0_err[sl][ok]
-    # an unresolved step lies somewhere between the two samples around it; the
-    # midpoint makes the crossings a digital straight line, whose slope is
-    # fixed far better than by noise-jittered centres (A. Rosenfeld, IEEE
-    # Trans. Comput. C-23, 1264 (1974), doi:10.1109/T-C.1974.223845)
-    interp = fit.interpolated[sl][ok] if fit.interpolated is not None else np.zeros(u0.size, bool)
-    sharp = (fit.width[sl][ok] < 0.7) & ~interp
-    u0 = np.where(sharp, np.floor(u0) + 0.5, u0)
-    p_v = idx_to_volts(centre[ok] + u0, pcoord)
-    t_v = idx_to_volts(rows[ok].astype(float), tcoord)
-    # an unresolved step (w below ~0.7 px) fixes its crossing only to within the
-    # pixel: floor the error at the quantisation rms 1/√12 px (common practice, no source)
-    floor = np.where(sharp, 1.0 / np.sqrt(12.0), np.where(interp, 0.1, 0.05))
-    sig_v = np.maximum(u0e, floor) * abs(pstep)
-    widths, heights = fit.width[sl][ok], fit.height[sl][ok]
-    pieces = [np.arange(t_v.size)]
-    out = []
-    for idx in pieces:
-        r = _fit_piece(base, t_v[idx], p_v[idx], sig_v[idx], widths[idx], heights[idx], along_x, pstep, kind)
-        if r is not None:
-            out.append(r)
-    out.sort(key=lambda r: -r.line.n_points)
-    return out
-
-
-def _bend_chi2(t: np.ndarray, p: np.ndarray, sig: np.ndarray) -> float:
-    """Drop of χ² when quadratic and cubic terms join a straight-line fit (2 dof)."""
-    if t.size < 8:
-        return float("nan")
-    x = t / max(np.ptp(t), 1e-300)
-    w = 1.0 / sig**2
-
-    def chi2(deg: int) -> float:
-        X = np.stack([x**k for k in range(deg + 1)], 1)
-        A = (X.T * w) @ X
-        beta = np.linalg.lstsq(A, (X.T * w) @ p, rcond=None)[0]
-        r = p - X @ beta
-        return float((w * r * r).sum())
-
-    return max(chi2(1) - chi2(3), 0.0)
-
-
-def _fit_piece(base, t_v, p_v, sig_v, wpx_all, h_all, along_x, pstep, kind):
-    fitres = _robust_line_fit(t_v, p_v, sig_v)
-    if fitres is None:
-        return None
-    beta, cov, keep, tm = fitres
-    A, C = beta
-    sA, sC = np.sqrt(cov[0, 0]), np.sqrt(cov[1, 1])
-    if along_x:
-        slope = 1.0 / C if C != 0 else np.inf
-        slope_err = sC / C**2 if C != 0 else np.inf
-        x0, y0 = A, tm
-    else:
-        slope, slope_err = C, sC
-        x0, y0 = tm, A
-    pos_err = sA / np.sqrt(1.0 + C**2)
-    bend = _bend_chi2(t_v[keep] - tm, p_v[keep], sig_v[keep])
-    tk = t_v[keep]
-    t_lo, t_hi = tk.min(), tk.max()
-    if along_x:
-        start = (float(A + C * (t_lo - tm)), float(t_lo))
-        end = (float(A + C * (t_hi - tm)), float(t_hi))
-    else:
-        start = (float(t_lo), float(A + C * (t_lo - tm)))
-        end = (float(t_hi), float(A + C * (t_hi - tm)))
-    wpx = wpx_all[keep]
-    w_med = float(np.median(wpx))
-    if kind == "step" and w_med >= 0.5:
-        width = w_med * abs(pstep)
-        mad = 1.4826 * np.median(np.abs(wpx - w_med))
-        width_err = 1.2533 * max(mad, 1e-12) / np.sqrt(wpx.size) * abs(pstep)
-    else:
-        width, width_err = float("nan"), float("nan")
-    h = h_all[keep]
-    sign = int(np.sign(np.median(h)) * np.sign(pstep)) if kind == "step" else 0
-    line = replace(base, x0=float(x0), y0=float(y0), slope=float(slope), slope_stderr=float(slope_err),
-                   position_stderr=float(pos_err), start=start, end=end, width_V=float(width),
-                   width_stderr_V=float(width_err), n_points=int(keep.sum()), step_sign=sign, refined=True,
-                   bend_chi2=float(bend))
-    return RefinedLine(line=line, step_height=float(np.median(np.abs(h))), refined=True, shape=kind,
-                       points=(t_v[keep], p_v[keep], sig_v[keep]), along_x=bool(along_x))

@@ -72,7 +72,14 @@ def _row_offsets_core(values: np.ndarray) -> np.ndarray:
         fin = np.isfinite(d)
         cnt = fin.sum(axis=1)
         if d.size and fin.all():
-            rowmed = np.median(d, axis=1)  # no NaN: the plain median is far faster
+            # no NaN: the plain median (in place on the scratch differences) is far faster
+            h = d.shape[1] // 2
+            if d.shape[1] % 2:
+                d.partition(h, axis=1)
+                rowmed = d[:, h].copy()
+            else:
+                d.partition([h - 1, h], axis=1)
+                rowmed = (d[:, h - 1] + d[:, h]) / 2
         else:
             rowmed = np.nanmedian(np.where(fin, d, np.nan), axis=1) if d.size else 0.0
         med = np.where(cnt >= 3, rowmed, 0.0)
