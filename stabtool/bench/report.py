@@ -28,6 +28,7 @@ import numpy as np
 
 from ..io.atomic import atomic_savefig
 from .bounds import FITTER_BOUNDS, FitterBounds
+from .pulls import summarise_pulls
 from .compare import GROUP_LABELS, GROUPS
 from .grid import ARTEFACT_LABELS, ARTEFACTS, PRESETS, SNRS
 from .run import BenchRun, CaseOutcome
@@ -95,6 +96,7 @@ def summarise_outcomes(outcomes: Sequence[CaseOutcome]) -> dict[str, Any]:
                 },
             }
     ratios = [o.speed_ratio for o in outcomes if o.ran]
+    pull_stats = summarise_pulls(o.pulls for o in outcomes)
     return {
         "n": n,
         "speed_ratio": error_stats(ratios).to_dict(),
@@ -105,6 +107,7 @@ def summarise_outcomes(outcomes: Sequence[CaseOutcome]) -> dict[str, Any]:
         "silent_failure_rate_of_ok": _frac(n_silent, n_ok),
         "groups": groups,
         "elements": elements,
+        "pulls": {g: ps.to_dict() for g, ps in pull_stats.items()},
     }
 
 
@@ -211,6 +214,7 @@ def _case_record(o: CaseOutcome) -> dict[str, Any]:
             for g, ge in o.comparison.groups.items()
         },
         "timings_s": dict(o.timings),
+        "pulls": {g: dict(v) for g, v in o.pulls.items()},
         "cpu_seconds": o.cpu_seconds,
         "info": dict(o.info),
     }
@@ -545,6 +549,9 @@ def _rows(block: Mapping[str, Any], head: str, fmt_key) -> list[list[str]]:
     return rows
 
 
+_PULL_LABELS = {"virtual_gate": "VG", "cdg": "Cdg", "lever_arm": "α", "charging_energy": "E_C"}
+
+
 def format_table(summary: Mapping[str, Any]) -> str:
     """Compact text table: per SNR and per artefact, plus the speed line.
 
@@ -594,6 +601,10 @@ def format_table(summary: Mapping[str, Any]) -> str:
             f"{sp['cpu_seconds_per_map']:.2f} s CPU per map (generation included); "
             f"on {sp['workers']} idle core(s) ≈ {sp['idle_wall_estimate_seconds']:.0f} s"
         )
+    pulls = summary.get("overall", {}).get("pulls")
+    if pulls:
+        bits = [f"{_PULL_LABELS.get(g, g)} {_pull(ps.get('rms'))} (n={ps.get('n')})" for g, ps in pulls.items()]
+        out.append("stated errors, rms pull (estimate − truth)/σ, honest ≈ 1: " + ", ".join(bits))
     out.append("cells: median/p95 of the worst element per map, then coverage; "
                "VG absolute, others relative; silent = quality ok but beyond the fitter bound")
     return "\n".join(out)
@@ -636,3 +647,9 @@ def write_report(
         plot_artefacts(run.outcomes, out / "bench_artefacts.png", bounds=bounds, title=title),
     ]
     return doc, paths
+
+
+def _pull(v: Any) -> str:
+    if v is None or (isinstance(v, float) and not math.isfinite(v)):
+        return "—"
+    return f"{v:.2f}"

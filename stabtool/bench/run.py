@@ -46,6 +46,7 @@ import xarray as xr
 from ..errors import InputError
 from .compare import Comparison, compare_with_truth
 from .grid import BenchCase
+from .pulls import pulls_of
 from .stats import SilentVerdict, silent_failure
 
 __all__ = [
@@ -95,6 +96,9 @@ class CaseOutcome:
         CPU time of the whole case in its worker (generation included).
     info : dict
         Facts about the map (temperature, thermal line width in pixels, ...).
+    pulls : dict
+        ``{group: {element: (estimate − truth)/stated σ}}``
+        (:func:`stabtool.bench.pulls.pulls_of`; NaN where not reported).
     """
 
     case: BenchCase
@@ -107,6 +111,7 @@ class CaseOutcome:
     timings: dict[str, float] = field(default_factory=dict)
     cpu_seconds: float = math.nan
     info: dict[str, Any] = field(default_factory=dict)
+    pulls: dict[str, dict[str, float]] = field(default_factory=dict)
 
     @property
     def speed_ratio(self) -> float:
@@ -319,6 +324,7 @@ def run_case(
         timings["canny_hough"], timings["canny_hough_cpu"] = _canny_hough_times(
             np.asarray(synthetic.data.values))
     comparison = compare_with_truth(result_js, truth)
+    pulls = pulls_of(result_js, truth)
     verdict = silent_failure(comparison, ok=ok, snr=case.snr)
     return CaseOutcome(
         case=case,
@@ -331,6 +337,7 @@ def run_case(
         timings=timings,
         cpu_seconds=time.process_time() - cpu0,
         info=info,
+        pulls=pulls,
     )
 
 

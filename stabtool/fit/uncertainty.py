@@ -13,10 +13,11 @@ uncertainty).
 from __future__ import annotations
 
 from collections.abc import Callable
+from typing import Any
 
 import numpy as np
 
-__all__ = ["numeric_jacobian", "propagate"]
+__all__ = ["error_verdict", "numeric_jacobian", "propagate"]
 
 
 def numeric_jacobian(
@@ -65,3 +66,64 @@ def propagate(
     with np.errstate(invalid="ignore"):
         err = np.sqrt(np.where(var >= 0, var, np.nan))
     return value, err.reshape(value.shape)
+
+
+#: Warnings of :func:`stabtool.fit.model.fit_diagram` that depend only on the stated errors
+#: (re-evaluated by :func:`error_verdict` whenever the errors change).
+_ERROR_WARNING_PREFIXES = (
+    "gate capacitances uncertain",
+    "virtual-gate matrix uncertain",
+    "dot1 addition voltage uncertain",
+    "dot2 addition voltage uncertain",
+)
+
+
+def _pct(value: float, bound: float) -> str:
+    """A percentage with enough digits that a value above ``bound`` never prints as equal to it."""
+    for digits in (1, 2, 3, 4):
+        a, b = f"{100 * value:.{digits}f}", f"{100 * bound:.{digits}f}"
+        if (value > bound) == (float(a) > float(b)) and a != b:
+            return a
+    return f"{100 * value:.4g}"
+
+
+def error_verdict(fit: Any) -> Any:
+    """Quality of a diagram fit with its error-based checks redone on its current errors.
+
+    The checks of :func:`stabtool.fit.model.fit_diagram` that read only the
+    stated errors (Cdg relative error ≤ ``MAX_CDG_REL_ERROR``, virtual-gate
+    error ≤ ``MAX_VG_ERROR``, addition-voltage error ≤ 5 %) are removed from
+    ``fit.quality`` and evaluated again, with messages that print enough
+    digits for an exceeded bound never to look met (``1.54 % > 1.5 %``, not
+    ``1.5 % … ≤ 1.5 %``). The other warnings and their verdicts are kept.
+
+    Parameters
+    ----------
+    fit : DiagramFit
+
+    Returns
+    -------
+    Quality
+    """
+    from .model import MAX_CDG_REL_ERROR, MAX_VG_ERROR
+
+    q = fit.quality.without(lambda w: w.startswith(_ERROR_WARNING_PREFIXES))
+    if not fit.ok:
+        return fit.quality
+    for i, name in enumerate(("dot1", "dot2")):
+        rel = fit.addition_V_error[i] / fit.addition_V[i]
+        if rel > 0.05:
+            q = q.with_warning(f"{name} addition voltage uncertain ({_pct(rel, 0.05)} % > 5 %)")
+    cdg, err = np.asarray(fit.cdg_aF, float), np.asarray(fit.cdg_aF_error, float)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        rel_cdg = np.abs(err / np.where(cdg != 0, np.abs(cdg), np.nan))
+    if not np.all(rel_cdg <= MAX_CDG_REL_ERROR):
+        worst = float(np.nanmax(rel_cdg)) if np.any(np.isfinite(rel_cdg)) else float("nan")
+        q = q.with_warning(
+            f"gate capacitances uncertain (up to {_pct(worst, MAX_CDG_REL_ERROR)} % on an element; "
+            f"ok needs ≤ {100 * MAX_CDG_REL_ERROR:g} % on every element)"
+        )
+    vg = float(np.nanmax(fit.vg_matrix_error))
+    if not vg <= MAX_VG_ERROR:
+        q = q.with_warning(f"virtual-gate matrix uncertain (error up to {vg:.4f}; ok needs ≤ {MAX_VG_ERROR:g})")
+    return q
