@@ -11,12 +11,26 @@ t(batch, 1 worker) / t(bare). The goal for the full size is N=1000, S=200
 in ≤ 60 s with 2 workers; the projected time for N=1000 is printed for a
 reduced N.
 
+CPU times (this process plus its worker processes) are printed next to the
+wall times, with the load average: on a machine shared with other jobs the
+wall times and the scaling ratio say more about the other jobs than about
+the batch, while the CPU seconds per map do not depend on them.
+
 Usage: python scripts/bench_batch.py [--n 1000] [--size 200] [--data DIR] [--no-plots]
 """
 
 from __future__ import annotations
 
+import os
+
+# One BLAS/OpenMP thread in this process too, as in the batch's worker processes: the
+# in-process runs (1 worker, bare) are then comparable with the pool, and idle BLAS
+# threads do not burn CPU on these small matrices. A value set by the user is kept.
+for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_var, "1")
+
 import argparse
+import resource
 import shutil
 import tempfile
 import time
@@ -37,6 +51,13 @@ def make_maps(folder: Path, n: int, size: int) -> list[Path]:
             save_map(sm.data, p)
         paths.append(p)
     return paths
+
+
+def cpu_now() -> float:
+    """CPU seconds of this process and of its finished (reaped) child processes."""
+    own = resource.getrusage(resource.RUSAGE_SELF)
+    kids = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return own.ru_utime + own.ru_stime + kids.ru_utime + kids.ru_stime
 
 
 def bare(paths: list[Path], analyzer, plots: bool, scratch: Path) -> float:
@@ -76,30 +97,43 @@ def main() -> None:
         # warm the file cache and this process's imports, so both runs start alike
         run_batch(paths[:1], analyzer, tmp / "warm", workers=1, progress=False, plots=plots)
         times = {}
+        cpus = {}
+        parent = {}
         reports = {}
+        load0 = os.getloadavg()[0]
         for workers in (1, 2):
             out = tmp / f"out{workers}"
-            t = time.perf_counter()
+            t, c, p = time.perf_counter(), cpu_now(), time.process_time()
             reports[workers] = run_batch(paths, analyzer, out, workers=workers, progress=False,
                                          plots=plots)
             times[workers] = time.perf_counter() - t
+            cpus[workers] = cpu_now() - c
+            parent[workers] = time.process_time() - p
+        c = cpu_now()
         t_bare = None if args.no_bare else bare(paths, analyzer, plots, tmp)
+        cpu_bare = cpu_now() - c
+        load1 = os.getloadavg()[0]
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
 
-    print(f"{'workers':>7} {'wall (s)':>9} {'maps/s':>8} {'ok':>5} {'doubtful':>9} {'failed':>7}")
+    print(f"{'workers':>7} {'wall (s)':>9} {'maps/s':>8} {'CPU (s)':>8} {'CPU/map':>8} {'ok':>5} {'doubtful':>9} "
+          f"{'failed':>7}")
     for w in (1, 2):
         r = reports[w]
-        print(f"{w:>7} {times[w]:>9.1f} {args.n / times[w]:>8.2f} {r.n_ok:>5} {r.n_doubtful:>9} "
-              f"{r.n_failed:>7}")
+        print(f"{w:>7} {times[w]:>9.1f} {args.n / times[w]:>8.2f} {cpus[w]:>8.1f} {cpus[w] / args.n:>8.3f} "
+              f"{r.n_ok:>5} {r.n_doubtful:>9} {r.n_failed:>7}")
     ratio = times[1] / times[2]
-    print(f"scaling ratio t(1)/t(2) = {ratio:.2f} (goal >= 1.8)")
+    print(f"scaling ratio t(1)/t(2) = {ratio:.2f} (goal >= 1.8); CPU(2 workers)/CPU(1 worker) = "
+          f"{cpus[2] / cpus[1]:.2f}; load average {load0:.1f} -> {load1:.1f} on {os.cpu_count()} CPUs")
+    print(f"2 workers: the parent process (records, plots, tables, summary) used {parent[2]:.1f} s CPU "
+          f"({1000 * parent[2] / args.n:.0f} ms per map), the workers {cpus[2] - parent[2]:.1f} s")
     if t_bare is not None:
-        print(f"bare pipeline, no batch: {t_bare:.1f} s; batch overhead t(batch,1)/t(bare) = "
-              f"{times[1] / t_bare:.2f}")
+        print(f"bare pipeline, no batch: {t_bare:.1f} s ({cpu_bare:.1f} s CPU); batch overhead "
+              f"t(batch,1)/t(bare) = {times[1] / t_bare:.2f} (CPU {cpus[1] / cpu_bare:.2f})")
     per_map = times[2] / args.n
     print(f"with 2 workers: {per_map:.3f} s per map -> {1000 * per_map:.0f} s projected for 1000 maps "
           f"of {args.size}² (goal <= 60 s)")
+    print(f"from CPU time, on 2 otherwise idle cores: {1000 * cpus[2] / args.n / 2:.0f} s for 1000 maps")
 
 
 if __name__ == "__main__":

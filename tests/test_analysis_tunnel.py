@@ -83,3 +83,21 @@ def test_sharp_interdot_lines_raise_no_coupling_warning():
         j = Analyzer(refine=False)(sm.data).to_json()
     assert not any("broad interdot lines" in w for w in j["quality"]["warnings"])
     assert j["tunnel_to_mutual_ratio"]["value"] is None
+
+
+@pytest.mark.parametrize("t_ueV, temperature_K", [(20.0, 0.1), (3.0, 0.5), (0.0, 0.1), (60.0, 0.05)])
+def test_analytic_jacobian_of_the_polarisation_line_matches_finite_differences(t_ueV, temperature_K):
+    """∂g/∂(s0, t, g0, δg, slope) of the fitted model against scipy's central differences."""
+    from scipy.optimize._numdiff import approx_derivative
+
+    from stabtool.fit.polarisation import _jacobian, _model
+
+    s = np.linspace(-1.5e-3, 1.5e-3, 121)
+    p = np.array([1.2e-4, t_ueV, 0.3, -0.8, 40.0])
+    a_eps = 0.06
+    jac = _jacobian(s, p, a_eps, temperature_K)
+    # central differences with steps small against the line width (k_B T / a_eps ≈ 0.1 mV)
+    num = approx_derivative(lambda q: _model(s, q, a_eps, temperature_K), p, method="3-point",
+                            rel_step=np.array([1e-6, 1e-6, 1e-6, 1e-6, 1e-6]), abs_step=np.array([1e-9, 1e-5, 1e-7, 1e-7, 1e-5]))
+    scale = np.max(np.abs(num), axis=0) + 1e-12
+    np.testing.assert_allclose(jac / scale, num / scale, atol=1e-5)

@@ -118,3 +118,17 @@ def test_stray_temporary_files_from_a_kill_are_ignored_and_removed(tmp_path):
 def test_unknown_status_is_rejected():
     with pytest.raises(ValueError, match="status"):
         BatchRecord(file="a", hash="b", status="great")
+
+
+def test_a_record_row_is_flattened_once_and_handed_out_as_a_copy():
+    res = {"x_gate": "PA", "y_gate": "PB", "slopes": {"dot1": -2.5, "dot2": np.float64("nan")},
+           "virtual_gate_matrix": np.array([[1.0, 0.4], [0.3, 1.0]]), "quality": {"ok": False, "warnings": ["a", "b"]}}
+    rec = BatchRecord(file="m.nc", hash="0" * 16, status="doubtful", result=res)
+    row = rec.row()
+    # the flat columns are those of flatten_result (numpy types to plain JSON, NaN to None)
+    assert row["slopes.dot1"] == -2.5 and row["slopes.dot2"] is None
+    assert row["virtual_gate_matrix.0.1"] == 0.4 and type(row["virtual_gate_matrix.0.1"]) is float
+    assert row["warnings"] == "a | b" and row["x_gate"] == "PA"
+    row["slopes.dot1"] = 0.0  # a caller editing its row does not change the record's
+    assert rec.row()["slopes.dot1"] == -2.5
+    assert rec == BatchRecord(file="m.nc", hash="0" * 16, status="doubtful", result=res)

@@ -1,6 +1,7 @@
 """Charge-state labels against the constant-interaction ground state (stabtool.fit.charge_states)."""
 
 import numpy as np
+import pytest
 from _fit import WORKED, truth_from_capacitances
 
 from stabtool.fit.charge_states import ground_state_labels, label_charge_states
@@ -52,3 +53,22 @@ def test_empty_corner_gives_absolute_occupations():
     cs2 = label_charge_states(xs, ys, t.m, addition_V=t.addition_V, mutual_V=t.mutual_V, offsets_V=off,
                               lowest_line=(int(free[0]) + 1, int(free[1]) + 1), snr=50.0)
     assert cs2.absolute == (False, False)
+
+
+def test_regions_list_every_state_with_its_pixel_count_and_centroid():
+    t = truth_from_capacitances(**WORKED)
+    x = np.linspace(-0.005, 0.06, 70)
+    y = np.linspace(-0.005, 0.06, 60)
+    valid = np.ones((60, 70), bool)
+    valid[50:, 40:] = False  # an interrupted sweep: unmeasured pixels belong to no region
+    cs = label_charge_states(x, y, t.m, addition_V=t.addition_V, mutual_V=t.mutual_V, offsets_V=np.zeros(2),
+                             lowest_line=(1, 1), valid=valid)
+    xx, yy = np.meshgrid(x, y)
+    # reference: numpy's unique over label pairs, centroids by boolean masks
+    keys, counts = np.unique(cs.labels[valid], axis=0, return_counts=True)
+    assert [(r["n1"], r["n2"]) for r in cs.regions] == [tuple(k) for k in keys]
+    for r, k, c in zip(cs.regions, keys, counts):
+        sel = np.all(cs.labels == k, axis=-1) & valid
+        assert r["pixels"] == c
+        assert r["x"] == pytest.approx(xx[sel].mean(), rel=1e-12)
+        assert r["y"] == pytest.approx(yy[sel].mean(), rel=1e-12)

@@ -84,3 +84,37 @@ def test_weak_mutual_coupling_leaves_ratio_undetermined():
     fit = fit_diagram(det)
     assert not fit.mutual_resolved
     assert np.isnan(fit.alpha_ratio)
+
+
+def _hinkley_split_by_hand(prof, noise):
+    """Change point of one profile, written out loop by loop (D. V. Hinkley, Biometrika 57, 1 (1970))."""
+    n = len(prof)
+    stat = []
+    for k in range(1, n):
+        left, right = np.mean(prof[:k]), np.mean(prof[k:])
+        stat.append(abs(left - right) * np.sqrt(k * (n - k) / n))
+    j = int(np.argmax(stat))
+    if stat[j] < 3.5 * noise:
+        return np.nan
+    pos = j + 0.5
+    if 0 < j < len(stat) - 1:
+        a, b, c = stat[j - 1], stat[j], stat[j + 1]
+        if a - 2 * b + c < 0:
+            pos += float(np.clip(0.5 * (a - c) / (a - 2 * b + c), -0.5, 0.5))
+    return pos
+
+
+def test_all_profiles_at_once_give_the_change_point_of_each():
+    from stabtool.fit.relocate import _split_rows
+
+    rng = np.random.default_rng(7)
+    n = 12
+    steps = rng.uniform(1.5, 10.5, 200)
+    heights = rng.choice([-1.0, 0.0, 0.3, 1.0], 200)  # no step, weak and clear steps of either sign
+    profs = heights[:, None] * (np.arange(n)[None, :] > steps[:, None]) + rng.normal(0, 0.1, (200, n))
+    got = _split_rows(profs, 0.1)
+    want = np.array([_hinkley_split_by_hand(p, 0.1) for p in profs])
+    np.testing.assert_allclose(got, want, rtol=0, atol=1e-12)
+    assert np.isnan(got[heights == 0]).all()  # pure noise: no significant step
+    clear = np.abs(heights) == 1
+    assert np.all(np.abs(got[clear] - (np.floor(steps[clear]) + 0.5)) <= 1.0)

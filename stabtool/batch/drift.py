@@ -15,6 +15,7 @@ for the same transition).
 
 from __future__ import annotations
 
+import itertools
 import json
 import math
 import os
@@ -609,6 +610,67 @@ def _load(item: xr.DataArray | str | os.PathLike[str]) -> tuple[xr.DataArray, st
         return load(item), os.fspath(item)
 
 
+#: Sweeps per parallel registration task of :func:`measure_drift` (at least 4 tasks are made).
+DRIFT_CHUNK = 32
+
+
+@dataclass(frozen=True)
+class _RangeRegistration:
+    """Registrations of consecutive sweeps of a series (see :func:`_register_range`)."""
+
+    labels: list[str]
+    times: list[str | None]
+    rows: list[tuple[float, float, float, float]]  # (dx, dy) px to the first sweep, match, overlap
+    chain: list[tuple[float, float]]  # (dx, dy) px to the previous sweep (NaN for the first two)
+    ref_x: np.ndarray
+    ref_y: np.ndarray
+    x_gate: str
+    y_gate: str
+
+
+def _register_range(first: Any, before: Any, chunk: Sequence[Any], start: int, *, upsample: int,
+                    smooth_px: float) -> _RangeRegistration:
+    """Register the sweeps ``chunk`` (positions ``start, start + 1, …`` of the series) to ``first``.
+
+    ``first`` is the series' first sweep (the reference and its voltage grid),
+    ``before`` the sweep at position ``start − 1`` (None for ``start ≤ 1``),
+    needed for the sweep-to-sweep registration of ``chunk[0]``. At most three
+    feature images are held at once.
+    """
+    ref_da, ref_label = _load(first)
+    ref, ref_x, ref_y = _prepare(ref_da, None, None, smooth_px=smooth_px, label=ref_label)
+    del ref_da
+    prev = ref
+    if start >= 2:
+        da, label = _load(before)
+        prev, _, _ = _prepare(da, ref_x, ref_y, smooth_px=smooth_px, label=label)
+        del da
+    out = _RangeRegistration([], [], [], [], ref_x, ref_y, ref.x_gate, ref.y_gate)
+    nan2 = (math.nan, math.nan)
+    for k, item in enumerate(chunk, start):
+        if k == 0:
+            out.labels.append(ref_label)
+            out.times.append(ref.time)
+            out.rows.append((0.0, 0.0, 1.0, 1.0))
+            out.chain.append(nan2)
+            continue
+        da, label = _load(item)
+        cur, _, _ = _prepare(da, ref_x, ref_y, smooth_px=smooth_px, label=label)
+        del da
+        out.labels.append(label)
+        out.times.append(cur.time)
+        _check_gates(ref, cur)
+        dy, dx, match, overlap = _register_images(ref.img, cur.img, upsample=upsample)
+        out.rows.append((dx, dy, match, overlap))
+        if k >= 2:
+            sy, sx, _, _ = _register_images(prev.img, cur.img, upsample=upsample)
+            out.chain.append((sx, sy))
+        else:
+            out.chain.append(nan2)
+        prev = cur
+    return out
+
+
 def measure_drift(
     maps: Sequence[xr.DataArray | str | os.PathLike[str]],
     *,
@@ -617,6 +679,7 @@ def measure_drift(
     smooth_px: float = 1.0,
     jump_threshold: float = 6.0,
     min_match: float = 0.3,
+    executor: Any = None,
 ) -> DriftResult:
     """Pattern offset of each sweep relative to the first, with jumps and slow drift.
 
@@ -638,6 +701,9 @@ def measure_drift(
     min_match : float
         Sweeps whose aligned derivative images correlate less than this with
         the reference make the result doubtful.
+    executor : concurrent.futures.Executor, optional
+        Register chunks of consecutive sweeps in parallel on it (e.g. the
+        batch's process pool); the result is the same as without.
 
     Returns
     -------
@@ -674,34 +740,31 @@ def measure_drift(
             del da
         idx = order_sweeps(labels, times)
         items = [items[i] for i in idx]
-    ref_x = ref_y = None
-    ref: _Prepared | None = None
-    prev: _Prepared | None = None
-    rows: list[tuple[float, float, float, float]] = []
+    n = len(items)
+    if executor is None:
+        parts = [_register_range(items[0], None, items, 0, upsample=upsample, smooth_px=smooth_px)]
+    else:
+        # chunks of consecutive sweeps; each loads the first sweep (and its own predecessor) again
+        n_chunks = max(1, min(n, max(4, -(-n // DRIFT_CHUNK))))
+        bounds = np.linspace(0, n, n_chunks + 1).round().astype(int)
+        futures = [executor.submit(_register_range, items[0], items[a - 1] if a >= 2 else None, items[a:b], int(a),
+                                   upsample=upsample, smooth_px=smooth_px)
+                   for a, b in itertools.pairwise(bounds) if b > a]
+        parts = [f.result() for f in futures]
+    files = [lab for p in parts for lab in p.labels]
+    tlist = [tm for p in parts for tm in p.times]
+    rows = [r for p in parts for r in p.rows]
+    chain = [c for p in parts for c in p.chain]
+    ref_x, ref_y = parts[0].ref_x, parts[0].ref_y
+    x_gate, y_gate = parts[0].x_gate, parts[0].y_gate
     chain_bad: list[str] = []
-    files: list[str] = []
-    tlist: list[str | None] = []
-    for k, it in enumerate(items):
-        da, label = _load(it)
-        cur, ref_x, ref_y = _prepare(da, ref_x, ref_y, smooth_px=smooth_px, label=label)
-        del da
-        files.append(label)
-        tlist.append(cur.time)
-        if ref is None:
-            ref = cur
-            rows.append((0.0, 0.0, 1.0, 1.0))
-            prev = cur
-            continue
-        _check_gates(ref, cur)
-        dy, dx, match, overlap = _register_images(ref.img, cur.img, upsample=upsample)
-        rows.append((dx, dy, match, overlap))
-        if prev is not None and k >= 2:
-            sy, sx, _, _ = _register_images(prev.img, cur.img, upsample=upsample)
-            px, py = rows[-2][0], rows[-2][1]
-            if math.isfinite(sx) and math.isfinite(dx) and (abs(px + sx - dx) > 1.0 or abs(py + sy - dy) > 1.0):
-                chain_bad.append(Path(label).name)
-        prev = cur
-    assert ref is not None and ref_x is not None and ref_y is not None
+    for k in range(2, n):
+        # registration to the previous sweep must agree with the difference of the direct offsets
+        sx, sy = chain[k]
+        dx, dy = rows[k][0], rows[k][1]
+        px, py = rows[k - 1][0], rows[k - 1][1]
+        if math.isfinite(sx) and math.isfinite(dx) and (abs(px + sx - dx) > 1.0 or abs(py + sy - dy) > 1.0):
+            chain_bad.append(Path(files[k]).name)
     step_x = float(np.median(np.diff(ref_x)))
     step_y = float(np.median(np.diff(ref_y)))
     arr = np.array(rows, dtype=float)
@@ -762,7 +825,7 @@ def measure_drift(
             doubtful=False,
         )
     return DriftResult(
-        x_gate=ref.x_gate, y_gate=ref.y_gate, files=tuple(files), times=tuple(tlist), t=t,
+        x_gate=x_gate, y_gate=y_gate, files=tuple(files), times=tuple(tlist), t=t,
         time_unit=unit, offset_x_V=off[:, 0], offset_y_V=off[:, 1], match=match_arr,
         overlap=overlap_arr, step_x_V=step_x, step_y_V=step_y, jumps=jumps,
         rate_x_V=float(rate[0]), rate_y_V=float(rate[1]),

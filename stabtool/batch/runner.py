@@ -8,8 +8,9 @@ The runner is generic over the pipeline: any picklable object with
 Flow: discover the files, hash them, skip those already recorded (resume),
 send the rest to the workers a few at a time, and store each result the
 moment it arrives (:class:`~stabtool.batch.store.ResultStore`). The tables
-are rebuilt from the records every few seconds and at the end; the summary
-page and the drift analysis are written at the end.
+are rebuilt from the records every few seconds and at the end; the drift
+analysis (on the same, still running worker pool) and the summary page are
+written at the end.
 """
 
 from __future__ import annotations
@@ -149,7 +150,7 @@ def _crashed(reason: str) -> dict:
 
 
 def _run_pool(
-    analyzer: Any, items: Sequence[BatchItem], plot: bool, workers: int
+    analyzer: Any, items: Sequence[BatchItem], plot: bool, workers: int, keep: dict | None = None
 ) -> Iterator[tuple[BatchItem, dict]]:
     """Local process pool with a bounded queue; survives worker crashes.
 
@@ -158,10 +159,12 @@ def _run_pool(
     fresh pool, so only the map that kills a worker again is given up as
     failed. Uses the ``spawn`` start method: the parent may hold threads
     (progress bar, a dask client) that ``fork`` would copy in a broken state.
+    With ``keep``, a healthy pool is left running in ``keep["pool"]`` at the
+    end (its workers are started and warm) for the caller to reuse and shut down.
     """
     ctx = multiprocessing.get_context("spawn")
     with _single_threaded_children():
-        yield from _pool_loop(ctx, analyzer, items, plot, workers)
+        yield from _pool_loop(ctx, analyzer, items, plot, workers, keep)
 
 
 _THREAD_VARS = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
@@ -185,7 +188,7 @@ def _single_threaded_children() -> Iterator[None]:
 
 
 def _pool_loop(
-    ctx: Any, analyzer: Any, items: Sequence[BatchItem], plot: bool, workers: int
+    ctx: Any, analyzer: Any, items: Sequence[BatchItem], plot: bool, workers: int, keep: dict | None = None
 ) -> Iterator[tuple[BatchItem, dict]]:
     pending = list(reversed(items))  # pop() from the end keeps input order
     suspects: list[BatchItem] = []
@@ -199,6 +202,7 @@ def _pool_loop(
         )
         in_flight: dict[cf.Future, BatchItem] = {}
         broken = False
+        finished = False
         try:
             while (queue and not broken) or in_flight:
                 while queue and len(in_flight) < window and not broken:
@@ -225,8 +229,12 @@ def _pool_loop(
                     except Exception as exc:  # noqa: BLE001 - e.g. an unpicklable result
                         res = _crashed(one_line_reason(exc))
                     yield item, res
+            finished = not (queue or in_flight)
         finally:
-            pool.shutdown(wait=True, cancel_futures=True)
+            if keep is not None and finished and not broken and not isolate and not (pending or suspects):
+                keep["pool"] = pool  # healthy and idle: the caller reuses it (drift) and shuts it down
+            else:
+                pool.shutdown(wait=True, cancel_futures=True)
 
 
 # --------------------------------------------------------------------------- the batch
@@ -359,6 +367,7 @@ def run_batch(
     ]
     n_resumed = len(items) - len(todo)
 
+    kept: dict[str, Any] = {}  # the local process pool, kept for the drift registrations
     if scheduler is not None:
         from .cluster import run_on_dask
 
@@ -367,7 +376,7 @@ def run_batch(
     else:
         n = default_workers() if workers is None else int(workers)
         n = min(n, max(1, len(todo)))
-        stream = _run_serial(analyzer, todo, plots) if n == 1 else _run_pool(analyzer, todo, plots, n)
+        stream = _run_serial(analyzer, todo, plots) if n == 1 else _run_pool(analyzer, todo, plots, n, kept)
         workers_used = n
 
     bar = _progress_bar(len(todo), enabled=progress)
@@ -405,13 +414,18 @@ def run_batch(
         if bar is not None:
             bar.close()
 
-    store.write_tables(records.values(), netcdf=netcdf)
-    ordered = tuple(sorted(records.values(), key=lambda r: (r.order, r.file)))
-    drift_result = None
-    if drift:
-        from .summary import drift_for_batch
+    pool = kept.pop("pool", None)
+    try:
+        store.write_tables(records.values(), netcdf=netcdf)
+        ordered = tuple(sorted(records.values(), key=lambda r: (r.order, r.file)))
+        drift_result = None
+        if drift:
+            from .summary import drift_for_batch
 
-        drift_result = drift_for_batch(ordered, out)
+            drift_result = drift_for_batch(ordered, out, executor=pool)
+    finally:
+        if pool is not None:
+            pool.shutdown(wait=True, cancel_futures=True)
     if summary:
         from .summary import write_summary
 

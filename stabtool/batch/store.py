@@ -95,6 +95,15 @@ def content_hash(path: str | os.PathLike[str], *, chunk: int = 1 << 20) -> str:
 
 def _jsonable(value: Any) -> Any:
     """Convert numpy scalars/arrays and tuples to plain JSON types; NaN/inf to None."""
+    t = type(value)  # exact plain types first: they are nearly every leaf of a result
+    if t is float:
+        return value if math.isfinite(value) else None
+    if t is str or t is bool or t is int or value is None:
+        return value
+    if t is dict:
+        return {str(k): _jsonable(v) for k, v in value.items()}
+    if t is list or t is tuple:
+        return [_jsonable(v) for v in value]
     if isinstance(value, Mapping):
         return {str(k): _jsonable(v) for k, v in value.items()}
     if isinstance(value, (list, tuple)):
@@ -108,8 +117,8 @@ def _jsonable(value: Any) -> Any:
     if isinstance(value, (float, np.floating)):
         v = float(value)
         return v if math.isfinite(v) else None
-    if value is None or isinstance(value, str):
-        return value
+    if isinstance(value, str):
+        return str(value)
     return str(value)
 
 
@@ -193,7 +202,18 @@ class BatchRecord:
         )
 
     def row(self) -> dict[str, Any]:
-        """The record as one flat table row (see :func:`flatten_result`)."""
+        """The record as one flat table row (see :func:`flatten_result`).
+
+        Computed once per record and kept (the tables are rebuilt from all
+        records several times during a batch; records are not modified).
+        """
+        cached = self.__dict__.get("_row")
+        if cached is None:
+            cached = self._flat_row()
+            object.__setattr__(self, "_row", cached)  # frozen dataclass: a private memo
+        return dict(cached)
+
+    def _flat_row(self) -> dict[str, Any]:
         flat = flatten_result(self.result or {})
         warnings = flat.pop("quality.warnings", None)
         row: dict[str, Any] = {

@@ -223,13 +223,20 @@ def find_repeated_series(
     return series
 
 
-def drift_for_batch(records: Sequence[BatchRecord], out_dir: str | os.PathLike[str]) -> list:
+#: Series of at least this many sweeps are registered on the batch's worker pool.
+PARALLEL_DRIFT_MIN = 16
+
+
+def drift_for_batch(records: Sequence[BatchRecord], out_dir: str | os.PathLike[str], *,
+                    executor: Any = None) -> list:
     """Drift analysis of every series of repeated sweeps in a batch.
 
     Writes ``drift/<name>.csv|json|png`` per series into ``out_dir`` and
     returns the :class:`~stabtool.batch.drift.DriftResult` list (empty when
     the batch holds no repeated sweeps). A series whose drift cannot be
     measured is skipped with a note in its place, never failing the batch.
+    With ``executor`` (the batch's process pool) the registrations of long
+    series run in parallel (:func:`~stabtool.batch.drift.measure_drift`).
     """
     from .drift import measure_drift
 
@@ -237,7 +244,9 @@ def drift_for_batch(records: Sequence[BatchRecord], out_dir: str | os.PathLike[s
     results = []
     for paths in find_repeated_series(records):
         try:
-            res = measure_drift(paths, order="given")  # already in time order
+            # already in time order; short series are not worth the pool's round trips
+            res = measure_drift(paths, order="given",
+                                executor=executor if len(paths) >= PARALLEL_DRIFT_MIN else None)
         except Exception as exc:  # noqa: BLE001 - drift is an extra; the batch stands
             from ..errors import StabtoolWarning
 

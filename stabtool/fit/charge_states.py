@@ -59,23 +59,28 @@ def ground_state_labels(
     uu = np.asarray(u, float) - offsets_V[0]
     vv = r * (np.asarray(v, float) - offsets_V[1])
     ainv = np.linalg.inv(a)
-    cont = np.stack([uu, vv], -1) @ ainv.T  # continuous minimiser (of F without the ½ terms)
-    base = np.floor(cont).astype(int)
-    best = np.zeros(base.shape, int)
-    best_f = np.full(base.shape[:-1], np.inf)
+    # continuous minimiser (of F without the ½ terms); the ground state is within −1…+2 of its floor
+    b1 = np.floor(ainv[0, 0] * uu + ainv[0, 1] * vv).astype(int)
+    b2 = np.floor(ainv[1, 0] * uu + ainv[1, 1] * vv).astype(int)
+    best1 = np.zeros(b1.shape, int)
+    best2 = np.zeros(b2.shape, int)
+    best_f = np.full(b1.shape, np.inf)
     for da in (-1, 0, 1, 2):
+        n1 = b1 + da
+        if n_min[0] is not None:
+            n1 = np.maximum(n1, n_min[0])
+        f1 = 0.5 * dv1 * n1**2  # terms of F that depend on N1 only
+        g1 = n1 * uu
         for db in (-1, 0, 1, 2):
-            n1 = base[..., 0] + da
-            n2 = base[..., 1] + db
-            if n_min[0] is not None:
-                n1 = np.maximum(n1, n_min[0])
+            n2 = b2 + db
             if n_min[1] is not None:
                 n2 = np.maximum(n2, n_min[1])
-            f = 0.5 * dv1 * n1**2 + d1 * n1 * n2 + 0.5 * r * dv2 * n2**2 - n1 * uu - n2 * vv
+            f = f1 + d1 * n1 * n2 + 0.5 * r * dv2 * n2**2 - g1 - n2 * vv
             better = f < best_f - 1e-15
-            best = np.where(better[..., None], np.stack([n1, n2], -1), best)
+            best1 = np.where(better, n1, best1)
+            best2 = np.where(better, n2, best2)
             best_f = np.where(better, f, best_f)
-    return best
+    return np.stack([best1, best2], -1)
 
 
 @dataclass(frozen=True)
@@ -171,19 +176,27 @@ def label_charge_states(
         lowest_line[0] - 1 if absolute[0] else None,
         lowest_line[1] - 1 if absolute[1] else None,
     )
-    labels = ground_state_labels(u, v, addition_V=addition_V, mutual_V=mutual_V, offsets_V=offsets_V,
-                                 n_min=n_min)
+    if n_min == (None, None):
+        labels = free  # same search, no bound
+    else:
+        labels = ground_state_labels(u, v, addition_V=addition_V, mutual_V=mutual_V, offsets_V=offsets_V,
+                                     n_min=n_min)
     for i in range(2):
         shift = (lowest_line[i] - 1) if absolute[i] else int(labels[..., i][valid].min())
         labels[..., i] -= shift
     regions = []
     flat = labels[valid]
-    keys, counts = np.unique(flat, axis=0, return_counts=True)
-    for (n1, n2), cnt in zip(keys, counts):
-        sel = (labels[..., 0] == n1) & (labels[..., 1] == n2) & valid
-        regions.append(
-            {"n1": int(n1), "n2": int(n2), "x": float(xx[sel].mean()), "y": float(yy[sel].mean()), "pixels": int(cnt)}
-        )
+    if flat.size:
+        # one integer key per state, sorted like (N1, N2): counts and centroids in one pass each
+        lo = flat.min(axis=0)
+        span2 = int(flat[:, 1].max() - lo[1]) + 1
+        key = (flat[:, 0] - lo[0]) * span2 + (flat[:, 1] - lo[1])
+        keys, inverse, counts = np.unique(key, return_inverse=True, return_counts=True)
+        sx = np.bincount(inverse, xx[valid], keys.size)
+        sy = np.bincount(inverse, yy[valid], keys.size)
+        for kk, cnt, cx, cy in zip(keys, counts, sx, sy):
+            regions.append({"n1": int(kk // span2 + lo[0]), "n2": int(kk % span2 + lo[1]), "x": float(cx / cnt),
+                            "y": float(cy / cnt), "pixels": int(cnt)})
     few = bool(all(absolute) and flat.size and np.any(np.all(flat == 0, axis=-1)))
     return ChargeStates(labels=labels, absolute=(absolute[0], absolute[1]), confidence=(conf[0], conf[1]),
                         few_electron=few, regions=tuple(regions))

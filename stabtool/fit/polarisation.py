@@ -10,9 +10,12 @@ detuning lever arm in eV per V along the profile) and
 Notes
 -----
 Start values from a grid over (s0, t) with the linear parameters solved
-exactly at each grid point; then bounded least squares (t ≥ 0). The standard
+exactly at each grid point (all grid points at once, by projection); then
+bounded least squares (t ≥ 0) with the analytic Jacobian. The standard
 error of ``t`` comes from the Jacobian, scaled by the residual variance.
-When ``t`` is not above two standard errors the line is thermally broadened
+When ``t`` is not above two standard errors, or ``t = 0`` fits within
+Δχ² < 4 (near ``t = 0`` the linearised error is meaningless: ``P`` depends
+on ``t²``), the line is thermally broadened
 and only an upper limit ``t + 2σ`` is meaningful: the result says so and is
 marked doubtful.
 
@@ -79,6 +82,75 @@ def _model(s, p, a_eps, temp):
     return g0 + dg * polarisation(a_eps * (s - s0), abs(t_ueV) * 1e-6, temp) + sl * (s - s0)
 
 
+def _polarisation_partials(eps: np.ndarray, t_eV: float, temp: float) -> tuple[np.ndarray, np.ndarray]:
+    """``∂P/∂ε`` (1/eV) and ``∂P/∂t`` (1/eV) of ``P = ½[1 + (ε/Ω) tanh(Ω/2kT)]``, ``Ω = √(ε² + 4t²)``.
+
+    Differentiating the formula of :func:`stabtool.physics.polarisation.polarisation`
+    (T > 0): with ``h = tanh(Ω/2kT)`` and ``σ = 1 − h²``,
+    ``∂P/∂Ω = ½ ε (σ/(2kT Ω) − h/Ω²)``, ``∂Ω/∂ε = ε/Ω``, ``∂Ω/∂t = 4t/Ω`` and
+    ``∂P/∂ε|_Ω = ½ h/Ω``; so ``∂P/∂ε = ½[(4t²/Ω³) h + (ε²/Ω²) σ/(2kT)]`` (the
+    physics module's ``polarisation_derivative``) and ``∂P/∂t = (4t/Ω) ∂P/∂Ω``.
+    Used as the analytic Jacobian of the fit.
+    """
+    kt = KB_EV_PER_K * temp
+    omega = np.sqrt(eps**2 + 4.0 * t_eV**2)
+    x = omega / (2.0 * kt)
+    h = np.tanh(x)
+    sech2 = 1.0 / np.cosh(np.clip(x, -350, 350)) ** 2
+    with np.errstate(invalid="ignore", divide="ignore"):
+        inv = np.where(omega > 0, 1.0 / np.where(omega > 0, omega, 1.0), 0.0)
+        d_eps = 0.5 * (4.0 * t_eV**2 * inv**3 * h + (eps * inv) ** 2 * sech2 / (2.0 * kt))
+        # Ω → 0 (ε = t = 0): P is flat in t there
+        d_omega = 0.5 * eps * (sech2 * inv / (2.0 * kt) - h * inv**2)
+    d_eps = np.where(omega > 0, d_eps, 1.0 / (4.0 * kt))  # the Fermi slope at ε = 0, t = 0
+    return d_eps, 4.0 * t_eV * inv * d_omega
+
+
+def _jacobian(s, p, a_eps, temp):
+    """Analytic Jacobian of :func:`_model` with respect to ``(s0, t_ueV, g0, δg, slope)``, shape (n, 5)."""
+    s0, t_ueV, _g0, dg, sl = p
+    d_eps, d_t = _polarisation_partials(a_eps * (s - s0), abs(t_ueV) * 1e-6, temp)
+    jac = np.empty((s.size, 5))
+    jac[:, 0] = -dg * a_eps * d_eps - sl
+    jac[:, 1] = dg * d_t * 1e-6 * (1.0 if t_ueV >= 0 else -1.0)
+    jac[:, 2] = 1.0
+    jac[:, 3] = polarisation(a_eps * (s - s0), abs(t_ueV) * 1e-6, temp)
+    jac[:, 4] = s - s0
+    return jac
+
+
+def _grid_start(s, g, a, temp, centres, t_grid) -> tuple[float, float, np.ndarray]:
+    """Best (centre, t) of the grid with the linear parameters ``(g0, δg, slope)`` solved exactly.
+
+    For every grid point the cost is the residual of ``g`` on ``[1, P, s − c]``;
+    ``1`` and ``s − c`` span the same space for every centre, so ``g`` and each
+    ``P`` are projected once on the complement of ``span{1, s}`` and the cost is
+    ``|g⊥|² − (P⊥·g⊥)²/|P⊥|²``, for the whole grid at once. Returns the centre,
+    t (µeV) and the linear coefficients of the best point.
+    """
+    n = s.size
+    sc = s - s.mean()
+    q1 = sc / np.sqrt(sc @ sc)
+    gp = g - g.mean()
+    gp = gp - q1 * (q1 @ gp)
+    cost = np.empty((t_grid.size, centres.size))
+    eps = a * (s[None, :] - centres[:, None])  # (n_centres, n)
+    for i, t in enumerate(t_grid):
+        pp = polarisation(eps, t * 1e-6, temp)
+        pp = pp - pp.mean(axis=1, keepdims=True)
+        pp = pp - np.outer(pp @ q1, q1)
+        num = pp @ gp
+        den = np.einsum("ij,ij->i", pp, pp)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            cost[i] = gp @ gp - np.where(den > 1e-300 * n, num**2 / den, 0.0)
+    it, ic = np.unravel_index(int(np.argmin(cost)), cost.shape)  # first minimum, as a (t, c) scan would find
+    c0, t0 = float(centres[ic]), float(t_grid[it])
+    p = polarisation(a * (s - c0), t0 * 1e-6, temp)
+    m = np.stack([np.ones_like(s), p, s - c0], axis=1)
+    coef, *_ = np.linalg.lstsq(m, g, rcond=None)
+    return c0, t0, coef
+
+
 def fit_polarisation_line(
     s_V: np.ndarray,
     signal: np.ndarray,
@@ -128,23 +200,13 @@ def fit_polarisation_line(
     centres = np.linspace(s[0] + 0.05 * span, s[-1] - 0.05 * span, 81)
     t_max = 0.25 * span * a * 1e6
     t_grid = np.concatenate([[0.0], np.geomspace(max(0.05 * kt_ueV, 1e-3), max(t_max, kt_ueV), 14)])
-    best: tuple[float, float, float, np.ndarray] = (np.inf, 0.0, 0.0, np.zeros(3))
-    for t in t_grid:
-        for c in centres:
-            p = polarisation(a * (s - c), t * 1e-6, temp)
-            m = np.stack([np.ones_like(s), p, s - c], axis=1)
-            coef, *_ = np.linalg.lstsq(m, g, rcond=None)
-            r = g - m @ coef
-            cost = float(r @ r)
-            if cost < best[0]:
-                best = (cost, c, t, coef)
-    _, c0, t0, coef = best
+    c0, t0, coef = _grid_start(s, g, a, temp, centres, t_grid)
     p0 = np.array([c0, max(t0, 0.1 * kt_ueV), coef[0], coef[1], coef[2]])
     lo = np.array([s[0], 0.0, -np.inf, -np.inf, -np.inf])
     hi = np.array([s[-1], np.inf, np.inf, np.inf, np.inf])
     xs = np.array([step_s, max(kt_ueV, 1.0), 1.0, 1.0, 1.0])
     sol = optimize.least_squares(lambda p: _model(s, p, a, temp) - g, np.clip(p0, lo, hi), bounds=(lo, hi),
-                                 x_scale=xs, method="trf")
+                                 x_scale=xs, method="trf", jac=lambda p: _jacobian(s, p, a, temp))
     p = sol.x
     dof = max(s.size - 5, 1)
     s2 = 2 * sol.cost / dof
@@ -156,7 +218,7 @@ def fit_polarisation_line(
     q = Quality()
     if abs(p[3]) < 5 * max(noise, 1e-300) / np.sqrt(max(fwhm_V / step_s, 1.0)):
         q = q.with_warning("the polarisation step is not significant above the noise")
-    if not (t_fit > 2 * t_err):
+    if not (t_fit > 2 * t_err) or not _zero_t_excluded(s, g, p, a, temp, sol.cost, s2):
         upper = _upper_limit(s, g, p, a, temp, sol.cost, s2, kt_ueV)
         q = q.with_warning(
             f"tunnel coupling not resolved above the thermal width (k_B T_e = {kt_ueV:.3g} µeV): "
@@ -180,15 +242,34 @@ def fit_polarisation_line(
     )
 
 
+def _fit_at_fixed_t(s, g, start, t, a, temp):
+    """Least squares of ``(s0, g0, δg, slope)`` with ``t`` (µeV) held fixed; ``start`` is a 5-vector."""
+    def res(q):
+        return _model(s, np.array([q[0], t, q[1], q[2], q[3]]), a, temp) - g
+
+    def jac(q):
+        return _jacobian(s, np.array([q[0], t, q[1], q[2], q[3]]), a, temp)[:, [0, 2, 3, 4]]
+
+    return optimize.least_squares(res, np.array([start[0], start[2], start[3], start[4]]), method="lm", jac=jac)
+
+
+def _zero_t_excluded(s, g, p, a, temp, cost0, s2) -> bool:
+    """Whether ``t = 0`` is excluded at 2σ by the profile likelihood (Δχ² ≥ 4).
+
+    ``P`` depends on ``t²``, so near ``t = 0`` the χ² surface is flat to
+    fourth order and the linearised error of ``t`` says nothing: a fit that
+    ends close to the bound has to be compared with the best fit at ``t = 0``.
+    """
+    sol = _fit_at_fixed_t(s, g, p, 0.0, a, temp)
+    return bool(2 * (sol.cost - cost0) / s2 >= 4.0)
+
+
 def _upper_limit(s, g, p, a, temp, cost0, s2, kt_ueV) -> float:
     """Profile-likelihood 2σ upper limit of t: smallest t ≥ t_fit with Δχ² ≥ 4."""
     t_fit = abs(float(p[1]))
     prev = p.copy()
     for t in np.geomspace(max(t_fit, 0.05 * kt_ueV), 50 * kt_ueV + t_fit, 60):
-        def res(q, t=t):
-            return _model(s, np.array([q[0], t, q[1], q[2], q[3]]), a, temp) - g
-
-        sol = optimize.least_squares(res, np.array([prev[0], prev[2], prev[3], prev[4]]), method="lm")
+        sol = _fit_at_fixed_t(s, g, prev, t, a, temp)
         prev = np.array([sol.x[0], t, sol.x[1], sol.x[2], sol.x[3]])
         if 2 * (sol.cost - cost0) / s2 >= 4.0:
             return float(t)

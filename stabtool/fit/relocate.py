@@ -3,7 +3,7 @@
 The lines of one dot family are parallel in the constant-interaction model.
 Along every row (dot1) or column (dot2) crossing a segment, the position of
 the step is the change point of the signal in a window around the predicted
-position (:func:`_split`); all crossing points of the
+position (:func:`_split`, all cuts of a family at once); all crossing points of the
 family are then fitted jointly by least squares with one slope and one
 offset per line, with outlier rejection. This uses every pixel row of every
 line for the slope, which is what the virtual-gate matrix needs.
@@ -83,60 +83,133 @@ def _split(prof: np.ndarray, noise: float) -> float | None:
     ``|mean(left) − mean(right)| · sqrt(k (n − k) / n)`` locates a step in white
     noise (maximum-likelihood change point for one mean shift; D. V. Hinkley,
     Biometrika 57, 1 (1970), doi:10.1093/biomet/57.1.1); the position between
-    the two samples is refined by a parabola through the statistic.
+    the two samples is refined by a parabola through the statistic. One
+    profile; :func:`_split_rows` does the same for many profiles at once.
     """
-    n = prof.size
-    c = np.cumsum(prof)
+    pos = _split_rows(np.asarray(prof, float)[None, :], noise)[0]
+    return None if np.isnan(pos) else float(pos)
+
+
+def _split_rows(profs: np.ndarray, noise: float) -> np.ndarray:
+    """:func:`_split` of every row of ``profs`` (shape (m, n)); NaN where the step is not significant."""
+    m, n = profs.shape
+    if m == 0 or n < 2:
+        return np.full(m, np.nan)
+    c = np.cumsum(profs, axis=1)
     k = np.arange(1, n)
-    left = c[:-1] / k
-    right = (c[-1] - c[:-1]) / (n - k)
+    left = c[:, :-1] / k
+    right = (c[:, -1:] - c[:, :-1]) / (n - k)
     stat = np.abs(left - right) * np.sqrt(k * (n - k) / n)
-    j = int(np.argmax(stat))
-    if stat[j] < 3.5 * noise:
-        return None
+    rows = np.arange(m)
+    j = np.argmax(stat, axis=1)
+    peak = stat[rows, j]
     pos = j + 0.5  # between sample j and j + 1
-    if 0 < j < stat.size - 1:
-        a, b, cc = stat[j - 1], stat[j], stat[j + 1]
-        den = a - 2 * b + cc
-        if den < 0:
-            pos += float(np.clip(0.5 * (a - cc) / den, -0.5, 0.5))
-    return pos
+    inner = (j > 0) & (j < stat.shape[1] - 1)
+    a = stat[rows, np.maximum(j - 1, 0)]
+    cc = stat[rows, np.minimum(j + 1, stat.shape[1] - 1)]
+    den = a - 2 * peak + cc
+    use = inner & (den < 0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        shift = np.clip(0.5 * (a - cc) / np.where(use, den, -1.0), -0.5, 0.5)
+    pos = pos + np.where(use, shift, 0.0)
+    return np.where(peak < 3.5 * noise, np.nan, pos)
 
 
-def _crossings(z, scan_axis, cross_axis, lines, which, b, *, trim, half_px, noise):
-    """Sub-pixel crossing points of every line: lists of (scan, cross) arrays."""
-    pts = []
+def _crossings(zz, scan_axis, cross_axis, spans, mids, b, *, trim, half_px, noise):
+    """Sub-pixel crossing points of every line, flat: (scan V, cross V, line index) arrays.
+
+    ``zz`` (n_cross, n_scan): the map with rows along the cross axis (``z``
+    for dot1, ``z.T`` for dot2). ``spans`` (k, 2): each segment's extent along the cross axis (y for dot1),
+    V; ``mids`` (k, 2): a point of each line as (scan, cross), V. Along every
+    row (dot1) or column (dot2) of the central part of a segment, a window of
+    ``± half_px`` pixels around the position predicted with the slope ``b``
+    is cut and its change point located (:func:`_split_rows`); all cuts of
+    all lines are processed together.
+    """
     n_scan = scan_axis.size
-    for ln in lines:
-        # param along the cross axis (y for dot1)
-        c0, c1 = (ln.start[1], ln.end[1]) if which == 0 else (ln.start[0], ln.end[0])
-        lo, hi = min(c0, c1), max(c0, c1)
+    ci = np.arange(cross_axis.size)
+    line_id, rows, cvals, preds = [], [], [], []
+    n_lines = len(spans)
+    for i in range(n_lines):
+        lo, hi = min(spans[i]), max(spans[i])
         span = hi - lo
         lo, hi = lo + trim * span, hi - trim * span
-        ci = np.arange(cross_axis.size)
         sel = ci[(cross_axis >= lo) & (cross_axis <= hi)]
-        s_list, c_list = [], []
-        mid_c = ln.y0 if which == 0 else ln.x0
-        mid_s = ln.x0 if which == 0 else ln.y0
-        for k in sel:
-            cval = cross_axis[k]
-            pred = mid_s + b * (cval - mid_c)
-            p_idx = float(_to_idx(pred, scan_axis))
-            i0 = int(np.floor(p_idx - half_px))
-            i1 = int(np.ceil(p_idx + half_px)) + 1
-            if i0 < 1 or i1 > n_scan - 1:
-                continue
-            prof = z[k, i0:i1] if which == 0 else z[i0:i1, k]
-            if not np.all(np.isfinite(prof)):
-                continue
-            cen = _split(prof, noise)
-            if cen is None:
-                continue
-            cen += i0
-            s_list.append(float(_to_v(cen, scan_axis)))
-            c_list.append(float(cval))
-        pts.append((np.array(s_list), np.array(c_list)))
-    return pts
+        mid_s, mid_c = mids[i]
+        cv = cross_axis[sel]
+        rows.append(sel)
+        cvals.append(cv)
+        preds.append(mid_s + b * (cv - mid_c))
+        line_id.append(np.full(sel.size, i))
+    if not n_lines:
+        return np.zeros(0), np.zeros(0), np.zeros(0, np.int64)
+    rows_a = np.concatenate(rows)
+    cval_a = np.concatenate(cvals).astype(float)
+    lid = np.concatenate(line_id)
+    p_idx = _to_idx(np.concatenate(preds).astype(float), scan_axis)
+    fin = np.isfinite(p_idx)
+    p_safe = np.where(fin, p_idx, -1e9)
+    i0 = np.floor(p_safe - half_px).astype(np.int64)
+    i1 = np.ceil(p_safe + half_px).astype(np.int64) + 1
+    keep = fin & (i0 >= 1) & (i1 <= n_scan - 1)
+    centre = np.full(rows_a.size, np.nan)
+    lengths = i1 - i0
+    for length in np.unique(lengths[keep]):
+        sel = np.nonzero(keep & (lengths == length))[0]
+        cols = i0[sel, None] + np.arange(length)
+        profs = zz[rows_a[sel, None], cols]
+        good = np.all(np.isfinite(profs), axis=1)
+        sel, profs = sel[good], profs[good]
+        centre[sel] = _split_rows(profs, noise) + i0[sel]
+    ok = np.isfinite(centre)
+    s_all = np.full(rows_a.size, np.nan)
+    s_all[ok] = _to_v(centre[ok], scan_axis)
+    return s_all[ok], cval_a[ok], lid[ok]
+
+
+def _line_means(lid: np.ndarray, n: int, mask: np.ndarray, s: np.ndarray, c: np.ndarray):
+    """Per line: number of masked points and the means of their ``s`` and ``c`` (NaN for empty lines)."""
+    w = mask.astype(float)
+    cnt = np.bincount(lid, w, n)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        cm = np.bincount(lid, w * c, n) / cnt
+        sm = np.bincount(lid, w * s, n) / cnt
+    return cnt, cm, sm
+
+
+def _common_bend(lid: np.ndarray, n: int, use: np.ndarray, c: np.ndarray, r: np.ndarray):
+    """Coefficient of the S-shaped bend ``u³ − 3u/5`` shared by the lines, and its error per unit σ.
+
+    ``u`` ∈ [−1, 1] along each line (from its masked points' extent); the bend
+    term is made orthogonal to each line's offset and slope (least squares on
+    ``[1, u]``) before the residuals ``r`` are projected on it.
+    """
+    if not np.any(use):
+        return float("nan"), float("nan")
+    lo = np.full(n, np.inf)
+    hi = np.full(n, -np.inf)
+    np.minimum.at(lo, lid[use], c[use])
+    np.maximum.at(hi, lid[use], c[use])
+    half = 0.5 * (hi - lo)
+    ok_line = np.isfinite(half) & (half > 0)
+    use = use & ok_line[lid]
+    if not np.any(use):
+        return float("nan"), float("nan")
+    li, cc, rr = lid[use], c[use], r[use]
+    u = (cc - 0.5 * (hi + lo)[li]) / half[li]
+    g = u**3 - 0.6 * u
+    k = np.bincount(li, None, n)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ub = np.bincount(li, u, n) / k
+        gb = np.bincount(li, g, n) / k
+        du = u - ub[li]
+        beta = np.bincount(li, du * (g - gb[li]), n) / np.bincount(li, du * du, n)
+    g = g - gb[li] - beta[li] * du
+    gg = float(g @ g)
+    gr = float(g @ rr)
+    if not gg > 0:
+        return float("nan"), float("nan")
+    return gr / gg, 1.0 / np.sqrt(gg)
 
 
 def relocate_family(
@@ -183,114 +256,65 @@ def relocate_family(
         return min(good, key=lambda t: t.stderr)
     z = np.asarray(z, float)
     lines = list(lines)
+    n_lines_in = len(lines)
     scan_axis, cross_axis = (x, y) if which == 0 else (y, x)
-    if which == 1:
-        z_use = z
-    else:
-        z_use = z
     step = abs(float(np.median(np.diff(scan_axis))))
     half_px = float(half_window_px)
     b = float(initial)
-    offsets: list[tuple[float, float, int] | None] = [None] * len(lines)
-    cur = lines
-    result_pts = None
+    offsets: list[tuple[float, float, int] | None] = [None] * n_lines_in
+    zz = z if which == 0 else z.T  # rows along the cross axis, columns along the scan axis
+    spans = [(ln.start[1], ln.end[1]) if which == 0 else (ln.start[0], ln.end[0]) for ln in lines]
+    mids0 = [(ln.x0, ln.y0) if which == 0 else (ln.y0, ln.x0) for ln in lines]  # (scan, cross)
+    mids = mids0
     sigma = np.nan
     b_err = np.nan
     n_used = 0
+    bend = bend_err = between = float("nan")
     for _ in range(n_iter):
-        pts = _crossings(z_use, scan_axis, cross_axis, cur, which, b, trim=trim, half_px=half_px,
-                         noise=max(noise, 1e-30))
-        masks = [np.ones(p[0].size, bool) for p in pts]
+        # all crossing points of the family in flat arrays, ``lid`` = line index of each point
+        s_all, c_all, lid = _crossings(zz, scan_axis, cross_axis, spans, mids, b, trim=trim, half_px=half_px,
+                                       noise=max(noise, 1e-30))
+        mask = np.ones(s_all.size, bool)
         for _rej in range(3):
-            num = den = 0.0
-            for (s, c), mk in zip(pts, masks):
-                if mk.sum() < 3:
-                    continue
-                cm, sm = c[mk].mean(), s[mk].mean()
-                num += np.sum((c[mk] - cm) * (s[mk] - sm))
-                den += np.sum((c[mk] - cm) ** 2)
+            cnt, cm, sm = _line_means(lid, n_lines_in, mask, s_all, c_all)
+            good_pt = (cnt >= 3)[lid]
+            dc, ds = c_all - cm[lid], s_all - sm[lid]
+            use = mask & good_pt
+            num = float(np.sum(dc[use] * ds[use]))
+            den = float(np.sum(dc[use] ** 2))
             if den <= 0:
                 return RelocatedFamily(False, tuple(lines), initial, np.nan, 0, np.nan)
             b = num / den
-            res_all = []
-            for (s, c), mk in zip(pts, masks):
-                if mk.sum() < 3:
-                    continue
-                cm, sm = c[mk].mean(), s[mk].mean()
-                res_all.append(s - sm - b * (c - cm))
-            r = np.concatenate(res_all) if res_all else np.zeros(0)
+            rr = ds - b * dc
+            r = rr[good_pt]
             mad = 1.4826 * np.median(np.abs(r)) if r.size else 0.0
-            new_masks = []
-            for (s, c), mk in zip(pts, masks):
-                if mk.sum() < 3:
-                    new_masks.append(mk)
-                    continue
-                cm, sm = c[mk].mean(), s[mk].mean()
-                rr = s - sm - b * (c - cm)
-                new_masks.append(np.abs(rr) <= max(3 * mad, 0.05 * step))
-            masks = new_masks
-        n_used = int(sum(mk.sum() for mk, p in zip(masks, pts) if mk.sum() >= 3))
-        n_lines = sum(1 for mk in masks if mk.sum() >= 3)
+            mask = np.where(good_pt, np.abs(rr) <= max(3 * mad, 0.05 * step), mask)
+        cnt, cm, sm = _line_means(lid, n_lines_in, mask, s_all, c_all)
+        good = cnt >= 3
+        use = mask & good[lid]
+        n_used = int(cnt[good].sum())
+        n_lines = int(good.sum())
         dof = max(n_used - n_lines - 1, 1)
-        ss = 0.0
-        for (s, c), mk in zip(pts, masks):
-            if mk.sum() >= 3:
-                cm, sm = c[mk].mean(), s[mk].mean()
-                ss += np.sum((s[mk] - sm - b * (c[mk] - cm)) ** 2)
+        dc, ds = c_all - cm[lid], s_all - sm[lid]
+        rr = ds - b * dc
+        ss = float(np.sum(rr[use] ** 2))
         sigma = float(np.sqrt(ss / dof))
         sigma = max(sigma, 0.02 * step)
         b_err = sigma / np.sqrt(den)
         # the lines' own slopes: their scatter is an independent check of b_err
-        b_i, w_i = [], []
-        for (s, c), mk in zip(pts, masks):
-            if mk.sum() >= 5:
-                cm, sm = c[mk].mean(), s[mk].mean()
-                d_i = float(np.sum((c[mk] - cm) ** 2))
-                if d_i > 0:
-                    b_i.append(float(np.sum((c[mk] - cm) * (s[mk] - sm)) / d_i))
-                    w_i.append(d_i / sigma**2)
-        # S-shaped bend shared by the family, orthogonal to each line's offset and slope
-        gg = gr = 0.0
-        for (s, c), mk in zip(pts, masks):
-            if mk.sum() >= 8:
-                cc, ss_ = c[mk], s[mk]
-                half = 0.5 * (cc.max() - cc.min())
-                if half <= 0:
-                    continue
-                u = (cc - 0.5 * (cc.max() + cc.min())) / half
-                basis = np.stack([np.ones_like(u), u], axis=1)
-                g = u**3 - 0.6 * u
-                g = g - basis @ np.linalg.lstsq(basis, g, rcond=None)[0]
-                r = ss_ - ss_.mean() - b * (cc - cc.mean())
-                gg += float(g @ g)
-                gr += float(g @ r)
-        bend, bend_err = (gr / gg * 0.4, sigma / np.sqrt(gg) * 0.4) if gg > 0 else (float("nan"), float("nan"))
+        d_i = np.bincount(lid[use], dc[use] ** 2, n_lines_in)
+        sxy = np.bincount(lid[use], dc[use] * ds[use], n_lines_in)
+        own = (cnt >= 5) & (d_i > 0)
+        b_i, w_i = sxy[own] / d_i[own], d_i[own] / sigma**2
+        bend, bend_err = _common_bend(lid, n_lines_in, mask & (cnt >= 8)[lid], c_all, rr)
+        bend, bend_err = bend * 0.4, bend_err * sigma * 0.4
         between = float("nan")
-        if len(b_i) >= 3:
-            bi, wi = np.array(b_i), np.array(w_i)
-            mean_i = float(np.sum(wi * bi) / np.sum(wi))
-            between = float(np.sqrt(np.sum(wi * (bi - mean_i) ** 2) / (bi.size - 1) / np.sum(wi)))
-        new: list[tuple[float, float, int] | None] = []
-        for ln, (s, c), mk in zip(lines, pts, masks):
-            if mk.sum() < 3:
-                new.append(None)
-                continue
-            cm, sm = float(c[mk].mean()), float(s[mk].mean())
-            new.append((sm, cm, int(mk.sum())))
-        offsets = new
+        if b_i.size >= 3:
+            mean_i = float(np.sum(w_i * b_i) / np.sum(w_i))
+            between = float(np.sqrt(np.sum(w_i * (b_i - mean_i) ** 2) / (b_i.size - 1) / np.sum(w_i)))
+        offsets = [(float(sm[i]), float(cm[i]), int(cnt[i])) if good[i] else None for i in range(n_lines_in)]
         # next pass: predicted positions from the common slope
-        cur = []
-        for ln, off in zip(lines, offsets):
-            if off is None:
-                cur.append(ln)
-                continue
-            sm, cm, _n = off
-            if which == 0:
-                cur.append(replace(ln, x0=sm, y0=cm))
-            else:
-                cur.append(replace(ln, x0=cm, y0=sm))
-        result_pts = pts
-    del result_pts
+        mids = [(off[0], off[1]) if off is not None else mid for off, mid in zip(offsets, mids0)]
     out = []
     for ln, off in zip(lines, offsets):
         if off is None:
