@@ -1,0 +1,318 @@
+"""Held-out probe: analyse maps that do not come from our own sensor/noise model.
+
+The generator's truth (constant-interaction ground state, thermal occupation)
+is kept, but the read-out and the noise are replaced by models the analysis
+was not tuned on:
+
+* devices: random double dots built from capacitances (gate couplings
+  2–30 aF, cross-couplings 5–50 % of the opposite plunger, mutual capacitance
+  5–40 % of 2·min(C_g), total capacitances +5–120 aF), random electron
+  temperature 30–250 mK, random map shape;
+* sensor transfer of the ideal charge read-out ``q = Σ w_i ⟨N_i⟩``
+  (``readout="charge"``): a peak ``g(d)`` of the detuning
+  ``d = d0 + a·x + b·y ± 0.35·q`` whose operating point drifts linearly over
+  the map (the response sign is random):
+
+  - ``lorentz``: ``1/(1 + d²)``;
+  - ``gauss``: ``exp(−d²/2)``;
+  - ``sech2``: ``sech²(d)`` (thermally broadened Coulomb peak shape);
+  - ``rf``: a rotated I/Q mix ``cos φ · Re r + sin φ · Im r`` of the complex
+    Lorentzian response ``r = 1/(1 − i d)`` (a reflectometry resonator
+    read at a random demodulation phase φ);
+  - ``transport`` (opt-in, ``--sensors``): the generator's double-dot current
+    at a small bias (only the triple points conduct: the analysis is expected
+    to fail, never to report ok);
+
+* noise (white always, the others each with probability ½ unless chosen by
+  ``--noise``): white at SNR 4–60 (SNR = median charge-step height of the
+  transferred signal / white-noise std, the generator's definition), pink 2-D
+  (1/f amplitude spectrum), row random walk (slow-axis offsets), rare spikes,
+  slow gain drift (multiplicative, along the measurement time).
+
+Every map prints one line (errors against the truth, the verdict, the first
+warnings); the summary gives coverage (fraction reported ok), silent failures
+(ok but an error beyond the fitter's bounds: virtual gates 0.005 clean /
+0.02 noisy, Cdg 2 % per element, lever arms 5 %, charging energies 5 %; see
+``stabtool.bench.bounds``), and median errors.
+
+Usage::
+
+    python scripts/probe_heldout.py --seeds 0:24
+    python scripts/probe_heldout.py --seeds 1,10,11 --verbose --out /tmp/probe
+    python scripts/probe_heldout.py --seeds 0:12 --sensors rf --noise pink,drift
+
+The map factory :func:`make_map` and :func:`evaluate` are importable (for
+scratch experiments that patch the analysis).
+"""
+
+from __future__ import annotations
+
+import argparse
+import math
+import os
+import sys
+import time
+import warnings
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+SENSORS = ("lorentz", "gauss", "sech2", "rf")
+ALL_SENSORS = SENSORS + ("transport",)
+NOISES = ("pink", "walk", "spikes", "drift")
+SNRS = (4.0, 8.0, 20.0, 60.0)
+
+# issue bounds of the fitter (same numbers as stabtool.bench.bounds.FITTER_BOUNDS)
+VG_CLEAN, VG_NOISY, CLEAN_SNR = 0.005, 0.02, 10.0
+CDG_REL, LA_REL, EC_REL = 0.02, 0.05, 0.05
+
+
+@dataclass
+class ProbeMap:
+    """One held-out map: data (DataArray), truth (JSON dict) and how it was made."""
+
+    data: Any
+    truth: dict
+    meta: dict = field(default_factory=dict)
+
+
+def _device(r: np.random.Generator):
+    from stabtool.simulate.device import Device
+
+    cg = r.uniform(2, 30, 2)  # aF
+    cx = cg[::-1] * r.uniform(0.05, 0.5, 2)
+    cm = r.uniform(0.05, 0.4) * min(cg) * 2
+    ctot = cg + cx + cm + r.uniform(5, 120, 2)
+    return Device(cdg_aF=[[cg[0], cx[0]], [cx[1], cg[1]]], cdd_aF=[[ctot[0], -cm], [-cm, ctot[1]]],
+                  gate_names=["GX", "GY"], dot_names=["L", "R"])
+
+
+def _pink(r: np.random.Generator, shape: tuple[int, int]) -> np.ndarray:
+    """Unit-std 2-D noise with a 1/f amplitude spectrum (1/f² power)."""
+    ny, nx = shape
+    fy = np.fft.fftfreq(ny)[:, None]
+    fx = np.fft.rfftfreq(nx)[None, :]
+    f = np.hypot(fx, fy)
+    f[0, 0] = np.inf
+    spec = (r.normal(size=f.shape) + 1j * r.normal(size=f.shape)) / f
+    out = np.fft.irfft2(spec, s=shape)
+    return out / out.std()
+
+
+def _transfer(kind: str, d: np.ndarray, phi: float) -> np.ndarray:
+    if kind == "lorentz":
+        return 1.0 / (1.0 + d**2)
+    if kind == "gauss":
+        return np.exp(-0.5 * d**2)
+    if kind == "sech2":
+        return 1.0 / np.cosh(d) ** 2
+    if kind == "rf":
+        resp = 1.0 / (1.0 - 1j * d)
+        return math.cos(phi) * resp.real + math.sin(phi) * resp.imag
+    raise ValueError(f"sensor kind {kind!r}: expected one of {ALL_SENSORS}")
+
+
+def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[str, ...] = SENSORS,
+             noise: tuple[str, ...] | None = None, tunnel_coupling_ueV: float = 0.0) -> ProbeMap:
+    """Build held-out map ``seed`` (deterministic in all arguments).
+
+    Parameters
+    ----------
+    seed : int
+    size : (int, int)
+        Range of the pixel count per axis (each axis drawn independently).
+    sensors : tuple of str
+        Sensor kinds to draw from (see the module docstring).
+    noise : tuple of str or None
+        Extra noise components (subset of ``pink, walk, spikes, drift``);
+        None draws each with probability ½.
+    tunnel_coupling_ueV : float
+        Interdot tunnel coupling of the rendered truth (0 = none).
+    """
+    from stabtool.simulate import simulate_map
+    from stabtool.simulate.quick import double_dot_window
+
+    r = np.random.default_rng([seed, 7919])
+    dev = _device(r)
+    xr_, yr_ = double_dot_window(dev, x_gate="GX", y_gate="GY", electrons=r.uniform(3.5, 6))
+    T = float(r.uniform(0.03, 0.25))
+    ny, nx = (int(v) for v in r.integers(size[0], size[1] + 1, 2))
+    kind = str(r.choice(list(sensors)))
+    extras = tuple(n for n in NOISES if r.random() < 0.5) if noise is None else tuple(noise)
+    snr = float(r.choice(SNRS))
+    phi = float(r.uniform(0, 2 * np.pi))
+    readout = "transport" if kind == "transport" else "charge"
+    kw = dict(bias_mV=0.02) if kind == "transport" else {}
+    sm = simulate_map(dev, x_gate="GX", y_gate="GY", x_range_V=xr_, y_range_V=yr_, shape=(ny, nx),
+                      temperature_K=T, readout=readout, tunnel_coupling_ueV=tunnel_coupling_ueV,
+                      rng=seed, **kw)
+    da = sm.data.copy()
+    q = np.asarray(da.values, float)
+    X, Y = np.meshgrid(np.linspace(0, 1, nx), np.linspace(0, 1, ny))
+    if kind == "transport":
+        sig = q / max(np.nanpercentile(np.abs(q), 99.9), 1e-300)
+        h = 1.0
+    else:
+        detune = (r.uniform(-1.5, 1.5) + r.uniform(-2, 2) * X + r.uniform(-2, 2) * Y
+                  + r.choice([-1, 1]) * 0.35 * q)
+        sig = _transfer(kind, detune, phi)
+        # step height: median signal change at the x-neighbour charge changes
+        dq = np.abs(np.diff(q, axis=1)) > 0.5
+        h = float(np.median(np.abs(np.diff(sig, axis=1))[dq])) if dq.any() else 0.1
+    sigma = h / snr
+    out = sig + r.normal(0, sigma, sig.shape)
+    if "pink" in extras:
+        out = out + 0.5 * sigma * _pink(r, sig.shape)
+    if "walk" in extras:
+        out = out + np.cumsum(r.normal(0, 0.3 * sigma, ny))[:, None]
+    if "spikes" in extras:
+        out = out + (r.random(sig.shape) < 0.001) * r.normal(0, 5 * h, sig.shape)
+    if "drift" in extras:
+        t = (np.arange(ny * nx) / (ny * nx)).reshape(ny, nx)  # measurement time, row-major
+        out = (out - np.median(out)) * (1 + r.uniform(-0.3, 0.3) * t + 0.1 * np.sin(2 * np.pi * r.uniform(0.5, 2) * t))
+    da.values = out
+    da.attrs.pop("stabtool_truth", None)
+    meta = dict(seed=seed, sensor=kind, noise="+".join(("white",) + extras), snr=snr, T=round(T, 3),
+                shape=(ny, nx))
+    return ProbeMap(data=da, truth=sm.truth.to_json(), meta=meta)
+
+
+def _rel(a: Any, b: Any) -> float:
+    if a is None or b is None:
+        return math.nan
+    A, B = np.asarray(a, float), np.asarray(b, float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        e = np.abs(A - B) / np.abs(B)
+    return float(np.nanmax(e)) if np.any(np.isfinite(e)) else math.nan
+
+
+def evaluate(result_json: dict, truth: dict, *, snr: float) -> dict:
+    """Errors of one result against the truth and the silent-failure verdict.
+
+    Virtual gates: largest absolute off-diagonal error; Cdg, lever arms
+    (all elements) and charging energies (E_C1, E_C2, E_Cm): largest
+    element-wise relative error. NaN = not reported (never a failure).
+    """
+    j, t = result_json, truth
+    vg = math.nan
+    if j.get("virtual_gate_matrix") is not None:
+        A, B = np.asarray(j["virtual_gate_matrix"], float), np.asarray(t["virtual_gate_matrix"], float)
+        vg = float(max(abs(A[0, 1] - B[0, 1]), abs(A[1, 0] - B[1, 0])))
+    cdg = _rel(j.get("gate_capacitance_aF"), t.get("gate_capacitance_aF"))
+    la = _rel(j.get("lever_arm"), t.get("lever_arm"))
+    ec = math.nan
+    if j.get("charging_energy_meV") and t.get("charging_energy_meV"):
+        keys = ("dot1", "dot2", "mutual")
+        ec = _rel([j["charging_energy_meV"].get(k) for k in keys], [t["charging_energy_meV"].get(k) for k in keys])
+    vg_bound = VG_CLEAN if snr >= CLEAN_SNR else VG_NOISY
+    beyond = [name for name, e, b in (("vg", vg, vg_bound), ("cdg", cdg, CDG_REL), ("la", la, LA_REL),
+                                      ("ec", ec, EC_REL)) if np.isfinite(e) and e > b]
+    ok = bool(j["quality"]["ok"])
+    return dict(ok=ok, vg=vg, cdg=cdg, la=la, ec=ec, beyond=beyond, silent=ok and bool(beyond))
+
+
+def _fmt(v: float, nd: int = 4) -> str:
+    return "  -   " if not np.isfinite(v) else f"{v:.{nd}f}"
+
+
+def _parse_seeds(text: str) -> list[int]:
+    out: list[int] = []
+    for part in text.split(","):
+        if ":" in part:
+            a, b = part.split(":")
+            out.extend(range(int(a), int(b)))
+        elif part:
+            out.append(int(part))
+    return out
+
+
+def main(argv: list[str] | None = None) -> int:
+    p = argparse.ArgumentParser(description=__doc__.split("\n\n")[0],
+                                formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("--seeds", default="0:24", help="seeds: 'A:B' (B excluded) and/or comma list (default 0:24)")
+    p.add_argument("--size", default="120:260", help="pixel range per axis 'MIN:MAX' (default 120:260)")
+    p.add_argument("--sensors", default=",".join(SENSORS),
+                   help=f"sensor kinds to draw from, of {','.join(ALL_SENSORS)} (default: all but transport)")
+    p.add_argument("--noise", default=None,
+                   help=f"extra noise on every map, subset of {','.join(NOISES)} or 'none' (default: each with p=½)")
+    p.add_argument("--tunnel-ueV", type=float, default=0.0, help="interdot tunnel coupling of the truth (µeV)")
+    p.add_argument("--out", default=None, help="folder for one PNG per map (the analysis plot)")
+    p.add_argument("--verbose", action="store_true", help="print every warning of every map")
+    a = p.parse_args(argv)
+
+    warnings.simplefilter("ignore")
+    from stabtool.analysis import Analyzer
+
+    lo, hi = (int(v) for v in a.size.split(":"))
+    sensors = tuple(s for s in a.sensors.split(",") if s)
+    bad = [s for s in sensors if s not in ALL_SENSORS]
+    if bad:
+        p.error(f"--sensors: unknown kind(s) {bad}; expected some of {ALL_SENSORS}")
+    noise = None if a.noise is None else tuple(n for n in a.noise.split(",") if n and n != "none")
+    if noise and any(n not in NOISES for n in noise):
+        p.error(f"--noise: expected some of {NOISES} or 'none', got {a.noise!r}")
+    if a.out:
+        os.makedirs(a.out, exist_ok=True)
+    rows = []
+    t_all = time.perf_counter()
+    print(f"{'seed':>4} {'sensor':8} {'noise':26} {'snr':>4} {'shape':>9}  ok    vg      cdg     la      ec    "
+          f"  t/s  first doubts (warnings that clear ok are marked '!')")
+    for s in _parse_seeds(a.seeds):
+        pm = make_map(s, size=(lo, hi), sensors=sensors, noise=noise, tunnel_coupling_ueV=a.tunnel_ueV)
+        t0 = time.perf_counter()
+        try:
+            res = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data)
+            j = res.to_json()
+        except Exception as exc:  # a crash is an outcome of the probe, not an error of the script
+            res, j = None, {"quality": {"ok": False, "warnings": [f"CRASH {type(exc).__name__}: {exc}"]}}
+        dt = time.perf_counter() - t0
+        ev = evaluate(j, pm.truth, snr=pm.meta["snr"])
+        ev.update(pm.meta, time=dt)
+        rows.append(ev)
+        ws = list(j["quality"]["warnings"])
+        flags = getattr(res.quality, "doubtful_flags", None) if res is not None else None
+        if flags and len(flags) == len(ws):
+            # what blocks ok first (marked "!"), then the notes
+            ws = ["! " + w for w, f in zip(ws, flags) if f] + [w for w, f in zip(ws, flags) if not f]
+        doubt = ws if a.verbose else [w for w in ws if w.startswith("! ")][:2]
+        m = pm.meta
+        tag = " SILENT-FAIL(" + ",".join(ev["beyond"]) + ")" if ev["silent"] else ""
+        print(f"{s:4d} {m['sensor']:8} {m['noise']:26} {m['snr']:4.0f} {m['shape'][0]:4d}x{m['shape'][1]:<4d} "
+              f"{'OK ' if ev['ok'] else 'no '} {_fmt(ev['vg'])} {_fmt(ev['cdg'])} {_fmt(ev['la'])} {_fmt(ev['ec'])} "
+              f"{dt:5.1f}{tag}  | " + ("\n      - ".join([""] + doubt) if a.verbose else "; ".join(w[:60] for w in doubt)),
+              flush=True)
+        if a.out and res is not None:
+            try:
+                res.save_plot(os.path.join(a.out, f"probe_{s:03d}.png"))
+            except Exception as exc:
+                print(f"      (plot failed: {type(exc).__name__}: {exc})")
+    n = len(rows)
+    if not n:
+        return 0
+    n_ok = sum(r["ok"] for r in rows)
+    n_silent = sum(r["silent"] for r in rows)
+
+    def med(key: str, subset: list[dict]) -> str:
+        v = np.array([r[key] for r in subset], float)
+        v = v[np.isfinite(v)]
+        return f"{np.median(v):.4g} (n={v.size})" if v.size else "-"
+
+    print(f"\nmaps {n}: coverage (ok) {n_ok}/{n} = {n_ok / n:.2f}; silent failures {n_silent}/{n} "
+          f"({', '.join(str(r['seed']) for r in rows if r['silent']) or 'none'}); "
+          f"median analysis time {np.median([r['time'] for r in rows]):.2f} s, total {time.perf_counter() - t_all:.0f} s")
+    for label, sub in (("all", rows), ("ok", [r for r in rows if r["ok"]])):
+        print(f"median errors [{label}]: vg {med('vg', sub)}, cdg {med('cdg', sub)}, la {med('la', sub)}, "
+              f"ec {med('ec', sub)}")
+    within = [r for r in rows if not r["beyond"] and np.isfinite(r["vg"]) and np.isfinite(r["cdg"])]
+    print(f"maps whose reported vg and Cdg are within the bounds: {len(within)}/{n} "
+          f"(of which ok: {sum(r['ok'] for r in within)})")
+    for k in ALL_SENSORS:
+        sub = [r for r in rows if r["sensor"] == k]
+        if sub:
+            print(f"  sensor {k:9}: {len(sub):3d} maps, ok {sum(r['ok'] for r in sub)}, silent {sum(r['silent'] for r in sub)}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
