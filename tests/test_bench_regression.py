@@ -45,7 +45,6 @@ def _id(case):
 #: Strict: when one starts passing, the marker must go.
 KNOWN_OUT_OF_BOUNDS = {
     1: "off-diagonal Cdg error ≈ 2.2 % > 2 % on 3–4 px broad lines (the lattice fit of δ)",
-    2: "broad-line detection finds too few dot2 lines on the hot si-mos map: no virtual-gate result",
     3: "1/f row offsets with weak dot2 steps: dot2 family taken from the wrong lines (error ≈ 0.32)",
     4: "SNR 3 with broad lines: the edge map misses most dot2 lines: no virtual-gate result",
 }

@@ -12,7 +12,7 @@ from stabtool.simulate import quick_double_dot
 @pytest.fixture(scope="module")
 def map_file(tmp_path_factory):
     path = tmp_path_factory.mktemp("analyze") / "kestrel7_PA_PB.nc"
-    save_map(quick_double_dot("si-sige-double", shape=(72, 72), snr=30.0, rng=2).data, path)
+    save_map(quick_double_dot("si-sige-double", shape=(96, 96), snr=30.0, rng=2).data, path)
     return path
 
 

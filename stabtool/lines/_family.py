@@ -97,6 +97,43 @@ def _vertex_positions(r: RefinedLine, tab: dict) -> tuple[float, float]:
     return va, vb
 
 
+def _vertex_positions_all(rs: Sequence[RefinedLine], tab: dict) -> np.ndarray:
+    """:func:`_vertex_positions` of many refined lines (all with points) at once: (m, 2) array."""
+    m = len(rs)
+    out = np.full((m, 2), np.nan)
+    if m == 0:
+        return out
+    sx, sy = tab["sx"], tab["sy"]
+    alx = np.array([r.along_x for r in rs], bool)
+    tstep = np.where(alx, sy, sx)
+    lo = np.array([float(r.points[0].min()) for r in rs])
+    hi = np.array([float(r.points[0].max()) for r in rs])
+    span = hi - lo
+    pa, da = _point_dir([r.line for r in rs])  # (m, 2)
+    pb, db = tab["pb"], tab["db"]  # (o, 2)
+    cross = da[:, None, 0] * db[None, :, 1] - da[:, None, 1] * db[None, :, 0]
+    w = pb[None, :, :] - pa[:, None, :]  # (m, o, 2)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        u = (w[..., 0] * db[None, :, 1] - w[..., 1] * db[None, :, 0]) / cross
+        P = pa[:, None, :] + u[..., None] * da[:, None, :]  # intersections (x, y), V
+        tau = np.where(alx[:, None], P[..., 1], P[..., 0])
+        a, d, L2 = tab["a"], tab["d"], tab["L2"]
+        q = P / tab["scale"]
+        lam = np.clip(((q - a[None]) * d[None]).sum(-1) / L2[None], 0.0, 1.0)
+        rr = q - a[None] - lam[..., None] * d[None]
+        dist = np.hypot(rr[..., 0], rr[..., 1])
+        near = np.isfinite(tau) & (dist <= (0.3 * span / tstep + 4)[:, None])
+        below = near & (tau >= (lo - 0.5 * span)[:, None]) & (tau <= (lo + 0.05 * span)[:, None])
+        above = near & (tau >= (hi - 0.05 * span)[:, None]) & (tau <= (hi + 0.5 * span)[:, None]) & ~below
+        db_ = np.where(below, np.abs(lo[:, None] - tau), np.inf)
+        da_ = np.where(above, np.abs(tau - hi[:, None]), np.inf)
+    rows = np.arange(m)
+    ib, ia = db_.argmin(1), da_.argmin(1)
+    out[:, 0] = np.where(below.any(1), tau[rows, ib], np.nan)
+    out[:, 1] = np.where(above.any(1), tau[rows, ia], np.nan)
+    return out
+
+
 def family_fit(members: Sequence[RefinedLine], others: Sequence[TransitionLine], axes: MapAxes, *,
                steep: bool) -> FamilyFit | None:
     """Joint slope of a dot family; adds vertex-bending terms when they are significant.
@@ -127,9 +164,9 @@ def family_fit(members: Sequence[RefinedLine], others: Sequence[TransitionLine],
     tstep = sy if along else sx
     lps, full = [], []
     tab = _others_table(others, axes) if others else None
-    for r in rs:
+    verts = _vertex_positions_all(rs, tab) if tab is not None else np.full((len(rs), 2), np.nan)
+    for r, (va, vb) in zip(rs, verts):
         t, p, s = r.points
-        va, vb = _vertex_positions(r, tab) if tab is not None else (float("nan"), float("nan"))
         gap = max(VERTEX_GAP_PX * tstep, VERTEX_GAP_FRAC * np.ptp(t))
         ok = np.ones(t.size, bool)
         for v in (va, vb):

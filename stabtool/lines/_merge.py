@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-import warnings
-
 import numpy as np
 
 from ._geometry import tls_fit
@@ -93,13 +91,17 @@ def drop_duplicates(lines: list, px_scale: tuple[float, float], *, max_distance_
     tt = (rel * uu[None, :, None, :]).sum(-1)
     dist = np.abs(rel[..., 0] * -uu[None, :, None, 1] + rel[..., 1] * uu[None, :, None, 0])
     inside = (tt >= -1) & (tt <= L[None, :, None] + 1)
-    with np.errstate(all="ignore"), warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)
-        med = np.nanmedian(np.where(inside, dist, np.nan), axis=2)
-    dup = (fam[:, None] == fam[None, :]) & (L[None, :] > 0) & (inside.sum(2) >= 3) & (med <= max_distance_px)
+    # median over the inside samples (= nanmedian of dist with the others NaN): sort, pick the middle
+    cnt = inside.sum(2)
+    srt = np.sort(np.where(inside, dist, np.inf), axis=2)
+    lo = np.clip((cnt - 1) // 2, 0, 8)[..., None]
+    hi = np.clip(cnt // 2, 0, 8)[..., None]
+    with np.errstate(invalid="ignore"):
+        med = 0.5 * (np.take_along_axis(srt, lo, 2)[..., 0] + np.take_along_axis(srt, hi, 2)[..., 0])
+    dup = (fam[:, None] == fam[None, :]) & (L[None, :] > 0) & (cnt >= 3) & (med <= max_distance_px)
     rank = sorted(range(n), key=lambda i: (-lines[i].n_points, lines[i].slope_stderr))
-    kept: list[int] = []
+    kept = np.zeros(n, bool)
     for i in rank:
-        if not any(dup[i, j] for j in kept):
-            kept.append(i)
-    return [lines[i] for i in sorted(kept)]
+        if not (dup[i] & kept).any():
+            kept[i] = True
+    return [lines[i] for i in np.nonzero(kept)[0]]

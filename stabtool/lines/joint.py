@@ -76,44 +76,55 @@ class JointFit:
 
 
 def _design(lines: Sequence[LinePoints], bend: bool, shared: bool):
-    """Stacked points with the shared columns only (slope, bending terms) and the line index of each point."""
+    """Stacked points with the shared columns only (slope, bending terms) and the line index of each point.
+
+    Lines with fewer than three usable points are left out; bending terms
+    ``span/(t − τ)`` only for lines with at least eight.
+    """
     n_lines = len(lines)
-    ts, ps, ss, lids, bend_cols = [], [], [], [], []
-    tms = np.full(n_lines, np.nan)
-    n_vert = 0
-    for k, lp in enumerate(lines):
-        ok = np.isfinite(lp.t) & np.isfinite(lp.p) & np.isfinite(lp.sig) & (lp.sig > 0)
-        verts = []
-        if bend and ok.sum() >= 8:
-            span = max(float(np.ptp(lp.t[ok])), 1e-300)
-            verts = [(end, tau, span) for end, tau in enumerate(lp.vertices) if np.isfinite(tau)]
-            n_vert += len(verts)
-        if ok.sum() < 3:
-            continue
-        t = lp.t[ok]
-        tms[k] = float(t.mean())
-        ts.append(t)
-        ps.append(lp.p[ok])
-        ss.append(lp.sig[ok])
-        lids.append(np.full(t.size, k))
-        bend_cols.append(verts)
-    if not ts:
+    if n_lines == 0:
         return None
-    n_bend = 2 if shared else n_vert
-    t = np.concatenate(ts)
-    lid = np.concatenate(lids)
-    S = np.zeros((t.size, 1 + n_bend))
-    S[:, 0] = t - tms[lid]
-    row, j = 0, 0
-    for tk, verts in zip(ts, bend_cols):
-        sl = slice(row, row + tk.size)
-        for end, tau, span in verts:
-            S[sl, 1 + (end if shared else j)] = span / (tk - tau)
-            j += 1
-        row += tk.size
+    sizes = np.array([lp.t.size for lp in lines])
+    T = np.concatenate([np.asarray(lp.t, float) for lp in lines])
+    P = np.concatenate([np.asarray(lp.p, float) for lp in lines])
+    SG = np.concatenate([np.asarray(lp.sig, float) for lp in lines])
+    LID = np.repeat(np.arange(n_lines), sizes)
+    with np.errstate(invalid="ignore"):
+        ok = np.isfinite(T) & np.isfinite(P) & np.isfinite(SG) & (SG > 0)
+    cnt = np.bincount(LID[ok], minlength=n_lines)
+    used = cnt >= 3
+    pts = ok & used[LID]
+    if not pts.any():
+        return None
+    t, lid = T[pts], LID[pts]
+    tms = np.full(n_lines, np.nan)
+    tms[used] = np.bincount(lid, t, minlength=n_lines)[used] / cnt[used]
+    cols = [t - tms[lid]]
+    if bend:
+        V = np.array([lp.vertices for lp in lines], float).reshape(n_lines, 2)
+        V[cnt < 8] = np.nan
+        hi = np.full(n_lines, -np.inf)
+        lo = np.full(n_lines, np.inf)
+        np.maximum.at(hi, lid, t)
+        np.minimum.at(lo, lid, t)
+        with np.errstate(invalid="ignore"):
+            span = np.maximum(hi - lo, 1e-300)
+        if shared:
+            for end in (0, 1):
+                has = np.isfinite(V[lid, end])
+                with np.errstate(divide="ignore", invalid="ignore"):
+                    cols.append(np.where(has, span[lid] / (t - V[lid, end]), 0.0))
+        else:
+            for k, end in zip(*np.nonzero(np.isfinite(V))):
+                on = lid == k
+                c = np.zeros(t.size)
+                with np.errstate(divide="ignore"):
+                    c[on] = span[k] / (t[on] - V[k, end])
+                cols.append(c)
+    S = np.stack(cols, 1)
     used_b = np.abs(S[:, 1:]).sum(0) > 0
     S = S[:, np.concatenate([[True], used_b])]
-    return S, np.concatenate(ps), np.concatenate(ss), lid, tms, int(used_b.sum())
+    return S, P[pts], SG[pts], lid, tms, int(used_b.sum())
 
 
 def fit_family(

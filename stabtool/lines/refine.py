@@ -31,7 +31,7 @@ class RefinedLine:
 
 
 def _all_profiles(values: np.ndarray, segs, along_x, halfwidth: int, max_points: int, trims,
-                  edges: np.ndarray | None = None):
+                  edges: np.ndarray | None = None, bounds: np.ndarray | None = None):
     """Profiles across every segment at once, one per row (along_x) or column of each.
 
     Returns ``(seg_id, rows, centre, u, y, mask)`` with one entry (row) per
@@ -50,6 +50,15 @@ def _all_profiles(values: np.ndarray, segs, along_x, halfwidth: int, max_points:
         if a1 == a0:
             continue
         lo, hi = min(a0, a1) + trims[k], max(a0, a1) - trims[k]
+        if bounds is not None:
+            # rows fixed by the vertices (see _vertex_bounds), where known and
+            # not far from the segment's own (else the vertex is doubtful: a
+            # broken segment or a wrong intersection)
+            b_lo, b_hi = bounds[k]
+            if -VERTEX_MAX_EXTEND_PX <= b_lo - lo <= VERTEX_MAX_SHRINK_PX:
+                lo = b_lo
+            if -VERTEX_MAX_SHRINK_PX <= b_hi - hi <= VERTEX_MAX_EXTEND_PX:
+                hi = b_hi
         r0, r1 = max(int(np.ceil(lo)), 0), min(int(np.floor(hi)), n_par - 1)
         if r1 < r0:
             continue
@@ -88,8 +97,147 @@ def _all_profiles(values: np.ndarray, segs, along_x, halfwidth: int, max_points:
         left = np.where(hit & (offs[None, :] < 0), offs[None, :], -10**6).max(1)
         right = np.where(hit & (offs[None, :] > 0), offs[None, :], 10**6).min(1)
         mask &= (offs[None, :] > left[:, None] + 1) & (offs[None, :] < right[:, None] - 1)
+    if CUT_AT_OTHER_LINES and len(segs) > 1:
+        mask &= _clear_of_other_lines(segs, seg_id, rows, centre, alx, offs)
     u = np.broadcast_to(offs[None, :].astype(float), y.shape)
     return seg_id, rows, centre, u, y, mask
+
+
+#: cut each profile where another segment's line (extended by CUT_EXTEND_PX) crosses it
+CUT_AT_OTHER_LINES = True
+CUT_EXTEND_PX = 4.0
+CUT_MARGIN_PX = 1.0
+
+
+def _clear_of_other_lines(segs, seg_id, rows, centre, alx, offs) -> np.ndarray:
+    """(n_profiles, n_samples) mask of the samples on the own side of every other segment's line.
+
+    Near a honeycomb vertex the other family's line passes through the
+    profile window, often within the ±2 px that the edge cut leaves alone,
+    and its step then sits in the baseline of the profile fit, pulling the
+    crossing towards it (with a strongly nonlinear sensor this made straight
+    lines read as bending towards the triple points). Each other segment,
+    extended by ``CUT_EXTEND_PX`` beyond its ends (segments stop a few
+    pixels short of the vertex), is intersected with the profile's row (or
+    column); samples from ``CUT_MARGIN_PX`` before that crossing outwards
+    are left out, and a profile left without its centre samples is dropped
+    by the caller. All other segments count, not only the other dot
+    family's: interdot and unsorted segments are steps too (24 maps of a
+    sensor biased at its peak top, 128² and 200², SNR 10, t = 0: false
+    bending warnings 7 without the cut, 5 cutting at the other dot family
+    only, 3 cutting at all segments).
+    """
+    cx = np.array([s.cx for s in segs]); cy = np.array([s.cy for s in segs])
+    ux = np.array([s.ux for s in segs]); uy = np.array([s.uy for s in segs])
+    t0 = np.array([s.t0 for s in segs]) - CUT_EXTEND_PX
+    t1 = np.array([s.t1 for s in segs]) + CUT_EXTEND_PX
+    n_prof = rows.size
+    right = np.full(n_prof, np.inf)
+    left = np.full(n_prof, -np.inf)
+    # only pairs of segments whose extended bounding boxes come within a profile's reach (a
+    # profile runs ±offs[-1] from its own line, at most VERTEX_MAX_EXTEND_PX beyond the segment)
+    reach = offs[-1] + CUT_MARGIN_PX + VERTEX_MAX_EXTEND_PX + 2.0
+    xa, xb = cx + t0 * ux, cx + t1 * ux
+    ya, yb = cy + t0 * uy, cy + t1 * uy
+    x_lo, x_hi = np.minimum(xa, xb) - reach, np.maximum(xa, xb) + reach
+    y_lo, y_hi = np.minimum(ya, yb) - reach, np.maximum(ya, yb) + reach
+    close = ((x_lo[:, None] <= x_hi[None, :]) & (x_lo[None, :] <= x_hi[:, None])
+             & (y_lo[:, None] <= y_hi[None, :]) & (y_lo[None, :] <= y_hi[:, None]))
+    np.fill_diagonal(close, False)
+    ncand = close.sum(1)
+    if ncand.any():
+        # (profile, other segment) pairs: each profile against its own segment's candidates
+        cand = np.nonzero(close)[1]  # candidates of segment 0, then 1, ... (row-major)
+        start = np.concatenate([[0], np.cumsum(ncand)[:-1]])
+        cnt = ncand[seg_id]
+        pi = np.repeat(np.arange(n_prof), cnt)
+        k = np.arange(pi.size) - np.repeat(np.cumsum(cnt) - cnt, cnt)
+        j = cand[start[seg_id[pi]] + k]
+        a = alx[pi]
+        r = rows[pi].astype(float)
+        # along x: the other line at y = row gives x; along y: at x = column gives y
+        with np.errstate(divide="ignore", invalid="ignore"):
+            t = (r - np.where(a, cy[j], cx[j])) / np.where(a, uy[j], ux[j])
+            d = np.where(a, cx[j], cy[j]) + t * np.where(a, ux[j], uy[j]) - centre[pi]
+            hit = np.isfinite(d) & (t >= t0[j]) & (t <= t1[j]) & (np.abs(d) <= offs[-1] + CUT_MARGIN_PX)
+        pos, neg = hit & (d > 0), hit & (d <= 0)
+        np.minimum.at(right, pi[pos], d[pos])
+        np.maximum.at(left, pi[neg], d[neg])
+    o = offs[None, :]
+    return (o < right[:, None] - CUT_MARGIN_PX) & (o > left[:, None] + CUT_MARGIN_PX)
+
+
+#: profile rows of a dot line end this far (px) from its vertices with the other dot family
+VERTEX_MARGIN_PX = 2.0
+#: largest extension / shortening of a segment's row range by its vertices, px
+VERTEX_MAX_EXTEND_PX = 6.0
+VERTEX_MAX_SHRINK_PX = 3.0
+#: a vertex: the other segment ends within this distance (px) of the intersection, which lies
+#: within twice it beyond this segment's end (or 1 px inside)
+VERTEX_REACH_PX = 4.0
+VERTEX_BOUNDS = True
+
+
+def _vertex_bounds(segs, families, along_x, *, margin_px: float | None = None) -> np.ndarray:
+    """Row (or column) range of each dot line's profiles from its vertices: (n, 2), NaN where none.
+
+    A segment's own ends come from where its edge pixels stop, and near a
+    honeycomb vertex that depends on how the line falls on the pixel grid:
+    the rows next to the ends are kept or lost together with the sign of
+    their pixel-quantisation error, which on short segments (128² maps,
+    10–15 rows) rotates the fitted line by ~1 %. The vertices, intersections
+    with the other dot family's lines (fitted over many pixels), do not
+    depend on that phase; the profiles run from ``margin_px`` inside one
+    vertex to ``margin_px`` inside the other. A vertex counts when the
+    other segment ends within ``VERTEX_REACH_PX`` of the intersection and
+    the intersection lies between twice that beyond this segment's end and
+    1 px inside it (both segments stop a few pixels short of a true vertex;
+    looser rules let long, merged or artefact segments reach across a
+    vertex into the next cell). :func:`_all_profiles` uses a bound only
+    when it lengthens the segment's range by at most
+    ``VERTEX_MAX_EXTEND_PX`` or shortens it by at most
+    ``VERTEX_MAX_SHRINK_PX``.
+    """
+    m = VERTEX_MARGIN_PX if margin_px is None else float(margin_px)
+    n = len(segs)
+    out = np.full((n, 2), np.nan)
+    fam = np.array([str(f) for f in families])
+    if n < 2 or not ((fam == "dot1").any() and (fam == "dot2").any()):
+        return out
+    cx = np.array([s.cx for s in segs]); cy = np.array([s.cy for s in segs])
+    ux = np.array([s.ux for s in segs]); uy = np.array([s.uy for s in segs])
+    t0 = np.array([s.t0 for s in segs]); t1 = np.array([s.t1 for s in segs])
+    alx = np.asarray(along_x, bool)
+    # intersections of every pair of lines (pixel frame): c_i + s u_i = c_j + r u_j
+    cross = ux[:, None] * uy[None, :] - uy[:, None] * ux[None, :]
+    dx, dy = cx[None, :] - cx[:, None], cy[None, :] - cy[:, None]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        s_i = (dx * uy[None, :] - dy * ux[None, :]) / cross  # along line i
+        s_j = (dx * uy[:, None] - dy * ux[:, None]) / cross  # along line j
+    # the other segment ends near the intersection
+    gap_j = np.maximum(np.maximum(t0[None, :] - s_j, s_j - t1[None, :]), 0.0)
+    other = ((fam[:, None] == "dot1") & (fam[None, :] == "dot2")) | ((fam[:, None] == "dot2") & (fam[None, :] == "dot1"))
+    with np.errstate(invalid="ignore"):
+        near = other & np.isfinite(s_i) & (gap_j <= VERTEX_REACH_PX)
+        low = near & (s_i >= (t0 - 2 * VERTEX_REACH_PX)[:, None]) & (s_i <= (t0 + 1.0)[:, None])
+        high = near & (s_i >= (t1 - 1.0)[:, None]) & (s_i <= (t1 + 2 * VERTEX_REACH_PX)[:, None]) & ~low
+    # the vertex nearest to each end, in the segment's profile-row coordinate
+    idx = np.arange(n)
+    drow = np.where(alx, uy, ux)  # d(row)/ds along the segment
+    c_row = np.where(alx, cy, cx)
+    ok_seg = ((fam == "dot1") | (fam == "dot2")) & (np.abs(drow) >= 1e-9)
+    for sel, t_end in ((low, t0), (high, t1)):
+        j = np.where(sel, np.abs(s_i - t_end[:, None]), np.inf).argmin(1)
+        has = sel.any(1) & ok_seg
+        r = c_row + s_i[idx, j] * drow
+        # each vertex bounds the row range on its own side (the end it is nearest to), inside by the margin
+        r_lo_seg = c_row + np.minimum(t0 * drow, t1 * drow)
+        r_hi_seg = c_row + np.maximum(t0 * drow, t1 * drow)
+        with np.errstate(invalid="ignore"):
+            at_lo = np.abs(r - r_lo_seg) <= np.abs(r - r_hi_seg)
+        out[:, 0] = np.where(has & at_lo, r + m, out[:, 0])
+        out[:, 1] = np.where(has & ~at_lo, r - m, out[:, 1])
+    return out
 
 
 def _row_median(v: np.ndarray, valid: np.ndarray) -> np.ndarray:
@@ -281,8 +429,10 @@ def refine_segments(
     the wrong slope sign.
     """
     hw = int(halfwidth_px)
+    # vertices from all segments at once (a refit of a few segments still sees all the others)
+    bounds = _vertex_bounds(segs, families, along_x) if VERTEX_BOUNDS else None
     out = _refine_once(segs, values, axes, families=families, along_x=along_x, halfwidth_px=hw,
-                       max_points=max_points, shapes=shapes, edges=edges, end_trim=end_trim)
+                       max_points=max_points, shapes=shapes, edges=edges, end_trim=end_trim, bounds=bounds)
     n = len(segs)
     head, extra = out[:n], out[n:]
     for _ in range(2 if widen > 1 else 0):
@@ -292,20 +442,22 @@ def refine_segments(
         hw *= int(widen)
         again = _refine_once([segs[k] for k in redo], values, axes, families=[families[k] for k in redo],
                              along_x=[along_x[k] for k in redo], halfwidth_px=hw, max_points=max_points,
-                             shapes=("step",), edges=edges, end_trim=end_trim)
+                             shapes=("step",), edges=edges, end_trim=end_trim,
+                             bounds=None if bounds is None else bounds[redo])
         for j, k in enumerate(redo):
             head[k] = again[j]
         extra = extra + again[len(redo):]
     return head + extra
 
 
-def _refine_once(segs, values, axes, *, families, along_x, halfwidth_px, max_points, shapes, edges, end_trim):
+def _refine_once(segs, values, axes, *, families, along_x, halfwidth_px, max_points, shapes, edges, end_trim,
+                 bounds=None):
     hw = int(halfwidth_px)
     out = [RefinedLine(line=segment_to_line(s, axes, family=f), step_height=float("nan"), refined=False, shape="none",
                        along_x=bool(a)) for s, f, a in zip(segs, families, along_x)]
     extra: list[RefinedLine] = []
     trims = [max(2.0, end_trim * s.length_px) for s in segs]
-    ext = _all_profiles(values, segs, along_x, hw, max_points, trims, edges)
+    ext = _all_profiles(values, segs, along_x, hw, max_points, trims, edges, bounds)
     if ext is None:
         return out
     seg_id, rows, centre, U, Y, M = ext
