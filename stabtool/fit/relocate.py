@@ -8,9 +8,21 @@ family are then fitted jointly by least squares with one slope and one
 offset per line, with outlier rejection. This uses every pixel row of every
 line for the slope, which is what the virtual-gate matrix needs.
 
+When the mutual shift δ is only a pixel or a few, the line detector can merge
+the pieces of one dot line from several charge bands into one segment: a
+staircase whose straight fit has the mean slope ``1/s_eff = 1/s + δ/Δ_band``
+instead of ``s``. :func:`split_at_crossings` cuts such segments where the
+other family's lines (extended) cross them, so that every band piece gets its
+own offset with the slope still shared; with ``groups`` :func:`relocate_family`
+also tests whether one offset per piece describes the points significantly
+better than one offset per original segment (F-test, nested least-squares
+models).
+
 Notes
 -----
-Joint linear fit of parallel lines (common practice, no source). Points farther
+Joint linear fit of parallel lines (common practice, no source). F-test of
+nested linear models: the extra-sum-of-squares test (e.g. N. R. Draper and
+H. Smith, Applied Regression Analysis, 3rd ed., Wiley 1998, ch. 6). Points farther
 than 3 robust standard deviations from their line are dropped (median
 absolute deviation, F. R. Hampel, J. Am. Stat. Assoc. 69, 383 (1974),
 doi:10.1080/01621459.1974.10482962).
@@ -19,12 +31,17 @@ doi:10.1080/01621459.1974.10482962).
 from __future__ import annotations
 
 from dataclasses import dataclass, replace
+from itertools import pairwise
 
 import numpy as np
+from scipy import stats
 
 from ..lines.result import TransitionLine
 
-__all__ = ["RelocatedFamily", "relocate_family"]
+__all__ = ["RelocatedFamily", "SplitFamily", "relocate_family", "split_at_crossings"]
+
+#: Smallest band piece kept by :func:`split_at_crossings`, pixels along the cross axis.
+MIN_PIECE_PX = 8.0
 
 
 @dataclass(frozen=True)
@@ -53,6 +70,14 @@ class RelocatedFamily:
         standard error. Lines that bend towards the triple points (strong
         interdot tunnel coupling) bias the common slope; a significant bend
         says so.
+    staircase_p : float
+        With ``groups``: p-value of the F-test of one offset per group (the
+        merged segments) against one offset per input line (band pieces), on
+        the same points; small values say the merged segments are staircases.
+        NaN when not tested.
+    staircase_jump_V : float
+        With ``groups``: rms offset of the pieces from their group's offset
+        along the scan axis, V (≈ δ/2 for a staircase); NaN when not tested.
     """
 
     ok: bool
@@ -64,6 +89,130 @@ class RelocatedFamily:
     between_lines_stderr: float = float("nan")
     bend_V: float = float("nan")
     bend_stderr_V: float = float("nan")
+    staircase_p: float = float("nan")
+    staircase_jump_V: float = float("nan")
+
+
+@dataclass(frozen=True)
+class SplitFamily:
+    """Segments of one family cut into band pieces at the other family's lines.
+
+    Attributes
+    ----------
+    lines : tuple of TransitionLine
+        The pieces, in input order (an uncut segment is one piece, unchanged).
+    source : ndarray of int, shape (len(lines),)
+        Index of the input segment each piece comes from.
+    n_cut : int
+        Input segments cut into more than one piece.
+    """
+
+    lines: tuple[TransitionLine, ...]
+    source: np.ndarray
+    n_cut: int
+
+
+def _crossing_coords(line: TransitionLine, others, which: int) -> np.ndarray:
+    """Cross-axis coordinate (y for dot1, x for dot2) where the extended ``others`` meet ``line``, V."""
+    def direction(ln):
+        if np.isinf(ln.slope):
+            return np.array([0.0, 1.0])
+        d = np.array([1.0, ln.slope])
+        return d / np.hypot(*d)
+
+    p = np.array([line.x0, line.y0])
+    d = direction(line)
+    out = []
+    for o in others:
+        q = np.array([o.x0, o.y0])
+        e = direction(o)
+        den = d[0] * e[1] - d[1] * e[0]
+        if not np.isfinite(den) or abs(den) < 1e-9:
+            continue
+        w = q - p
+        t = (w[0] * e[1] - w[1] * e[0]) / den
+        pt = p + t * d
+        out.append(pt[1] if which == 0 else pt[0])
+    return np.array(out, float)
+
+
+def split_at_crossings(
+    lines: tuple[TransitionLine, ...] | list[TransitionLine],
+    others: tuple[TransitionLine, ...] | list[TransitionLine],
+    *,
+    which: int,
+    min_piece_V: float,
+    slope: float | None = None,
+) -> SplitFamily:
+    """Cut every segment of a family where the other family's lines (extended) cross it.
+
+    Parameters
+    ----------
+    lines : sequence of TransitionLine
+        The family's segments.
+    others : sequence of TransitionLine
+        The other dot family's segments; each, extended to a full line,
+        marks a charge-band boundary where it crosses a segment.
+    which : {0, 1}
+        0: ``lines`` are dot1 (pieces along y); 1: dot2 (pieces along x).
+    min_piece_V : float
+        Crossings closer than this to a segment end or to each other are not
+        cut (they are the segment's own triple points, or one boundary seen
+        through several lines), V along the cross axis.
+    slope : float, optional
+        dV_y/dV_x given to the pieces of a cut segment (the family slope):
+        the cut segment's own slope is the biased staircase mean.
+
+    Returns
+    -------
+    SplitFamily
+
+    Notes
+    -----
+    In the constant-interaction model a dot1 line jumps by δ1 along x where a
+    dot2 line meets it (van der Wiel et al., Rev. Mod. Phys. 75, 1 (2003));
+    between two such crossings it is straight.
+    """
+    pieces: list[TransitionLine] = []
+    source: list[int] = []
+    n_cut = 0
+    for i, ln in enumerate(lines):
+        ends = (ln.start[1], ln.end[1]) if which == 0 else (ln.start[0], ln.end[0])
+        lo, hi = min(ends), max(ends)
+        cs = np.sort(_crossing_coords(ln, others, which))
+        cs = cs[(cs > lo + min_piece_V) & (cs < hi - min_piece_V)]
+        cuts: list[float] = []
+        k = 0
+        while k < cs.size:  # one cut per cluster of crossings (one band boundary)
+            j = k
+            while j + 1 < cs.size and cs[j + 1] - cs[k] < min_piece_V:
+                j += 1
+            c = float(np.mean(cs[k:j + 1]))
+            if c - (cuts[-1] if cuts else lo) >= min_piece_V and hi - c >= min_piece_V:
+                cuts.append(c)
+            k = j + 1
+        if not cuts:
+            pieces.append(ln)
+            source.append(i)
+            continue
+        n_cut += 1
+        sl = ln.slope if slope is None or not np.isfinite(slope) else float(slope)
+        bounds = [lo, *cuts, hi]
+        for a, b in pairwise(bounds):
+            cm = 0.5 * (a + b)
+            if which == 0:
+                # the piece runs through the segment's own point at its middle height
+                inv = 0.0 if np.isinf(sl) else 1.0 / sl
+                xm = ln.x0 + (cm - ln.y0) * (0.0 if np.isinf(ln.slope) else 1.0 / ln.slope)
+                start, end = (xm + inv * (a - cm), a), (xm + inv * (b - cm), b)
+                x0, y0 = xm, cm
+            else:
+                ym = ln.y0 + (cm - ln.x0) * ln.slope
+                start, end = (a, ym + sl * (a - cm)), (b, ym + sl * (b - cm))
+                x0, y0 = cm, ym
+            pieces.append(replace(ln, x0=float(x0), y0=float(y0), slope=float(sl), start=start, end=end))
+            source.append(i)
+    return SplitFamily(tuple(pieces), np.array(source, int), n_cut)
 
 
 def _to_v(idx: np.ndarray | float, axis: np.ndarray) -> np.ndarray:
@@ -196,7 +345,9 @@ def _common_bend(lid: np.ndarray, n: int, use: np.ndarray, c: np.ndarray, r: np.
     if not np.any(use):
         return float("nan"), float("nan")
     li, cc, rr = lid[use], c[use], r[use]
-    u = (cc - 0.5 * (hi + lo)[li]) / half[li]
+    with np.errstate(invalid="ignore"):  # lines without points have lo = inf, hi = −inf (not used)
+        mid = 0.5 * (hi + lo)
+    u = (cc - mid[li]) / half[li]
     g = u**3 - 0.6 * u
     k = np.bincount(li, None, n)
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -212,6 +363,43 @@ def _common_bend(lid: np.ndarray, n: int, use: np.ndarray, c: np.ndarray, r: np.
     return gr / gg, 1.0 / np.sqrt(gg)
 
 
+def _staircase_test(gid, use, s, c, rss_piece: float, dof_piece: int, lid, n_lines: int,
+                    b: float) -> tuple[float, float]:
+    """F-test of one offset per group against one offset per line (shared slope in both), same points.
+
+    Returns the p-value and the rms offset of the lines from their group's
+    offset along the scan axis, both taken with the per-line fit's slope ``b``
+    (weighted by points), V.
+    """
+    if dof_piece < 1 or not rss_piece > 0 or not np.any(use):
+        return float("nan"), float("nan")
+    g, ss_, cc, li = gid[use], s[use], c[use], lid[use]
+    _, inv = np.unique(g, return_inverse=True)
+    n_g = int(inv.max()) + 1
+    n_p = int(np.unique(li).size)
+    extra = n_p - n_g
+    if extra < 1:
+        return 1.0, 0.0
+    k = np.bincount(inv, None, n_g)
+    dc = cc - (np.bincount(inv, cc, n_g) / k)[inv]
+    ds = ss_ - (np.bincount(inv, ss_, n_g) / k)[inv]
+    den = float(dc @ dc)
+    if not den > 0:
+        return float("nan"), float("nan")
+    bg = float(dc @ ds) / den
+    r = ds - bg * dc
+    rss_g = float(r @ r)
+    f = max(rss_g - rss_piece, 0.0) / extra / (rss_piece / dof_piece)
+    p = float(stats.f.sf(f, extra, dof_piece))
+    # offsets at the per-line slope: line mean minus its group's mean
+    kl = np.bincount(li, None, n_lines)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean_r = np.bincount(li, ds - b * dc, n_lines) / kl
+    okl = kl > 0
+    jump = float(np.sqrt(np.sum(kl[okl] * mean_r[okl] ** 2) / np.sum(kl[okl])))
+    return p, jump
+
+
 def relocate_family(
     z: np.ndarray,
     x: np.ndarray,
@@ -224,6 +412,7 @@ def relocate_family(
     trim: float = 0.15,
     n_iter: int = 2,
     half_window_px: float | None = None,
+    groups: np.ndarray | None = None,
 ) -> RelocatedFamily:
     """Re-measure a family's lines on the map with one common slope.
 
@@ -246,10 +435,16 @@ def relocate_family(
         Half-width of the cut around each predicted crossing, pixels. Default:
         both 5 px and 12 px (for thermally broad lines) are tried and the
         result with the smaller slope error is kept.
+    groups : ndarray of int, shape (len(lines),), optional
+        Coarser grouping of the lines (e.g. :attr:`SplitFamily.source`: the
+        segment each band piece was cut from). The result then carries the
+        F-test of one offset per group against one offset per line
+        (``staircase_p``, ``staircase_jump_V``); the fit itself keeps one
+        offset per line.
     """
     if half_window_px is None:
         tries = [relocate_family(z, x, y, lines, which=which, initial=initial, noise=noise, trim=trim,
-                                 n_iter=n_iter, half_window_px=h) for h in (5.0, 12.0)]
+                                 n_iter=n_iter, half_window_px=h, groups=groups) for h in (5.0, 12.0)]
         good = [t for t in tries if t.ok]
         if not good:
             return tries[0]
@@ -315,6 +510,10 @@ def relocate_family(
         offsets = [(float(sm[i]), float(cm[i]), int(cnt[i])) if good[i] else None for i in range(n_lines_in)]
         # next pass: predicted positions from the common slope
         mids = [(off[0], off[1]) if off is not None else mid for off, mid in zip(offsets, mids0)]
+    stair_p = stair_jump = float("nan")
+    if groups is not None and n_used:
+        stair_p, stair_jump = _staircase_test(np.asarray(groups, int)[lid], use, s_all, c_all, ss, n_used - n_lines - 1,
+                                              lid, n_lines_in, b)
     out = []
     for ln, off in zip(lines, offsets):
         if off is None:
@@ -340,4 +539,4 @@ def relocate_family(
                            position_stderr=float(perp), start=start, end=end, n_points=n))
     ok = n_used >= 6 and np.isfinite(b_err)
     return RelocatedFamily(ok, tuple(out), float(b), float(b_err), n_used, float(sigma), between,
-                           float(bend), float(bend_err))
+                           float(bend), float(bend_err), stair_p, stair_jump)
