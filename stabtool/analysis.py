@@ -361,55 +361,88 @@ def _weighted(values: Sequence[float], errors: Sequence[float]) -> tuple[float, 
     return float(np.mean(v)), spread if np.isfinite(spread) else 0.1 * float(np.mean(v))
 
 
+def _length_order(lengths: Sequence[float]) -> np.ndarray:
+    """Indices from the longest to the shortest; lengths equal to 1e-9 relative keep their order.
+
+    Lengths computed along different paths differ by rounding (1e-15 relative); ranking on
+    the raw values made the choice among equally long lines depend on that noise.
+    """
+    arr = np.asarray(lengths, float)
+    top = float(np.max(np.abs(arr))) if arr.size else 0.0
+    key = np.round(arr / top * 1e9) if top > 0 else arr
+    return np.lexsort((np.arange(arr.size), -key))
+
+
+def _cuts_along_line(x: np.ndarray, y: np.ndarray, z: np.ndarray, ln: Any, which: int,
+                     half: float) -> tuple[np.ndarray, np.ndarray] | None:
+    """Cuts along the dot's own gate through the central 70 % of ``ln``, aligned on it and stacked.
+
+    ``x`` (nx,), ``y`` (ny,), ``z`` (ny, nx): the map. Returns (voltage relative to the line,
+    signal minus each cut's mean) or None with < 3 cuts.
+    """
+    if which == 0:
+        c0, c1 = ln.start[1], ln.end[1]
+        cross, along, zz, at = y, x, z, ln.x_at
+    else:
+        c0, c1 = ln.start[0], ln.end[0]
+        cross, along, zz, at = x, y, z.T, ln.y_at
+    lo, hi = min(c0, c1), max(c0, c1)
+    lo, hi = lo + 0.15 * (hi - lo), hi - 0.15 * (hi - lo)
+    rows = np.nonzero((cross >= lo) & (cross <= hi))[0]
+    if rows.size < 3:
+        return None
+    centre = np.asarray(at(cross[rows]), float).reshape(-1)
+    d = along[None, :] - centre[:, None]
+    sig = zz[rows]
+    ok = (np.abs(d) <= half) & np.isfinite(sig)
+    cnt = ok.sum(axis=1)
+    keep = cnt >= 6
+    if keep.sum() < 3:
+        return None
+    ok &= keep[:, None]
+    mean = np.where(ok, sig, 0.0).sum(axis=1) / np.maximum(cnt, 1)
+    return d[ok], (sig - mean[:, None])[ok]
+
+
 def _widths_from_map(da: xr.DataArray, fit: DiagramFit, which: int, *, max_lines: int = 12) -> tuple[float, float]:
     """Fermi width across the dot lines, fitted on the map.
 
-    For every line used by the fit, the cuts along the dot's own gate (rows for
-    dot1, columns for dot2) through the central 70 % of the segment are
-    aligned on the line and stacked (each cut minus its mean); one Fermi step
-    on a linear background (:func:`stabtool.fit.fermi.fit_fermi_step`) is
-    fitted per line. Returns the weighted mean width and its standard error (V).
+    For every line used by the fit (the ``max_lines`` longest), the cuts along
+    the dot's own gate (rows for dot1, columns for dot2) through the central
+    70 % of the segment are aligned on the line and stacked (each cut minus
+    its mean); one Fermi step on a linear background is fitted per line, all
+    lines at once (:func:`stabtool.fit.fermi.fit_fermi_steps`; a line whose
+    batched fit does not converge is refitted by
+    :func:`stabtool.fit.fermi.fit_fermi_step`). Returns the weighted mean
+    width and its standard error (V).
     """
-    from .fit.fermi import fit_fermi_step
+    from .fit.fermi import fit_fermi_step, fit_fermi_steps
 
-    x = np.asarray(da[da.dims[-1]].values, float)
-    y = np.asarray(da[da.dims[0]].values, float)
-    z = np.asarray(da.values, float)
     fam_lines = fit.lines1 if which == 0 else fit.lines2
     grp = fit.line_groups[which]
     used = [ln for k, ln in enumerate(fam_lines) if k < grp.size and grp[k] >= 0]  # lines used by the fit
-    lines = sorted(used, key=lambda ln: -ln.length_V)[:max_lines]
+    lines = [used[i] for i in _length_order([ln.length_V for ln in used])[:max_lines]]
     half = 0.35 * fit.addition_V[which]
+    x = np.asarray(da[da.dims[-1]].values, float)
+    y = np.asarray(da[da.dims[0]].values, float)
+    z = np.asarray(da.values, float)
+    cuts = [c for c in (_cuts_along_line(x, y, z, ln, which, half) for ln in lines) if c is not None]
+    if not cuts:
+        return float("nan"), float("nan")
+    batch = fit_fermi_steps([c[0] for c in cuts], [c[1] for c in cuts], centre_guess_V=0.0)
     ws, es = [], []
-    for ln in lines:
-        vs, ss = [], []
-        c0, c1 = (ln.start[1], ln.end[1]) if which == 0 else (ln.start[0], ln.end[0])
-        lo, hi = min(c0, c1), max(c0, c1)
-        lo, hi = lo + 0.15 * (hi - lo), hi - 0.15 * (hi - lo)
-        cross = y if which == 0 else x
-        for k in np.nonzero((cross >= lo) & (cross <= hi))[0]:
-            if which == 0:
-                centre = float(ln.x_at(y[k]))
-                sel = np.abs(x - centre) <= half
-                v, sig = x[sel] - centre, z[k, sel]
-            else:
-                centre = float(ln.y_at(x[k]))
-                sel = np.abs(y - centre) <= half
-                v, sig = y[sel] - centre, z[sel, k]
-            ok = np.isfinite(sig)
-            if ok.sum() < 6:
+    for i, (v, s) in enumerate(cuts):
+        if batch.converged[i] or batch.n_points[i] < 10:
+            ok, w, e = bool(batch.success[i]), batch.width_V[i], batch.width_stderr_V[i]
+        else:
+            try:
+                res = fit_fermi_step(v, s, background="linear")
+            except InputError:
                 continue
-            vs.append(v[ok])
-            ss.append(sig[ok] - np.mean(sig[ok]))
-        if len(vs) < 3:
-            continue
-        try:
-            res = fit_fermi_step(np.concatenate(vs), np.concatenate(ss), background="linear")
-        except InputError:
-            continue
-        if res and np.isfinite(res.width_V) and res.width_V > 0 and np.isfinite(res.width_stderr_V):
-            ws.append(res.width_V)
-            es.append(res.width_stderr_V)
+            ok, w, e = bool(res), res.width_V, res.width_stderr_V
+        if ok and np.isfinite(w) and w > 0 and np.isfinite(e):
+            ws.append(float(w))
+            es.append(float(e))
     return _weighted(ws, es)
 
 
@@ -770,36 +803,6 @@ class Analyzer:
                     f"virtual-gate matrix error {sm:.4f} is more than half the {CLEAN_VG_BOUND} goal of a "
                     f"clean map (SNR {snr_clean:.1f})"
                 )
-        coupling = None
-        if fit.ok and fit.mutual_resolved:
-            from .fit.tunnel import BIAS_PER_T_OVER_ECM, coupling_to_mutual_ratio
-
-            w_l = [ln.width_V for ln in fit.lines1 if np.isfinite(ln.width_V) and ln.width_V > 0]
-            x_step = abs(float(np.median(np.diff(np.asarray(da[da.dims[-1]].values, float)))))
-            w_th = float(np.median(w_l)) if w_l else 0.25 * x_step
-            if refinement is not None and refinement.ok and refinement.width_resolved:
-                # the thermal width fitted to the whole map (every dot line at once) beats single lines
-                w_th = float(refinement.params["width_V1"])
-            coupling = coupling_to_mutual_ratio(da, fit, thermal_width_V=w_th)
-            bias = coupling.expected_vg_bias
-            # flag only a clearly broad line (3σ above the threshold): noise also widens a single cut
-            low = BIAS_PER_T_OVER_ECM * (coupling.value - 3 * coupling.error) if np.isfinite(bias) else np.nan
-            if np.isfinite(low) and low > MAX_TUNNEL_VG_BIAS:
-                q = q.with_warning(
-                    f"broad interdot lines (t/E_Cm ≈ {coupling.value:.2f}): the dot lines are pushed apart near "
-                    f"the triple points, virtual gates biased by up to ≈ {bias:.3f}"
-                )
-            high = BIAS_PER_T_OVER_ECM * (coupling.value + 2 * coupling.error) if np.isfinite(bias) else np.nan
-            bends = [w for w in q.warnings if w.startswith("detector:") and "bend" in w]
-            if bends and adopted and np.isfinite(high) and high <= MAX_TUNNEL_VG_BIAS:
-                # the CI model without tunnel coupling describes the map, its M agrees with the lines and
-                # the interdot width (with the fitted thermal width) bounds the bias below the limit:
-                # the bending is thermal rounding of the triple points, kept as a note
-                q = q.without(lambda w: w in bends)
-                for w in bends:
-                    q = q.with_warning(f"{w} [thermal rounding: t/E_Cm ≤ {coupling.value + 2 * coupling.error:.3f} "
-                                       "and the model fit agrees]", doubtful=False)
-        timings["model"] = time.perf_counter() - t1 - timings.get("refine", 0.0)
         t3 = time.perf_counter()
         triangles = None
         if self.bias_mV is not None:
@@ -818,6 +821,42 @@ class Analyzer:
                                             "alpha11_from_refined_width_error": a11 * sw1 / w1})
         q = q.merge(scale.quality)
         timings["scale"] = time.perf_counter() - t3
+        coupling = None
+        if fit.ok and fit.mutual_resolved:
+            from .fit.tunnel import BIAS_PER_T_OVER_ECM, coupling_to_mutual_ratio
+
+            w_l = [ln.width_V for ln in fit.lines1 if np.isfinite(ln.width_V) and ln.width_V > 0]
+            x_step = abs(float(np.median(np.diff(np.asarray(da[da.dims[-1]].values, float)))))
+            w_th = float(np.median(w_l)) if w_l else 0.25 * x_step
+            w_cuts = scale.details.get("width_dot1_V", np.nan)
+            if np.isfinite(w_cuts) and w_cuts > 0:
+                # the Fermi width of the stacked cuts across the dot1 lines (the T_e reference)
+                w_th = float(w_cuts)
+            if refinement is not None and refinement.ok and refinement.width_resolved:
+                # the thermal width fitted to the whole map (every dot line at once) beats single lines
+                w_th = float(refinement.params["width_V1"])
+            coupling = coupling_to_mutual_ratio(da, fit, thermal_width_V=w_th)
+            bias = coupling.expected_vg_bias
+            # flag only a clearly broad line (3σ above the threshold): noise also widens a single cut
+            low = BIAS_PER_T_OVER_ECM * (coupling.value - 3 * coupling.error) if np.isfinite(bias) else np.nan
+            if np.isfinite(low) and low > MAX_TUNNEL_VG_BIAS:
+                q = q.with_warning(
+                    f"broad interdot lines (t/E_Cm ≈ {coupling.value:.2f}): the dot lines are pushed apart near "
+                    f"the triple points, virtual gates biased by up to ≈ {bias:.3f}"
+                )
+            # 2σ bound on t/E_Cm: value + 2σ when resolved, else the upper limit
+            t_high = (coupling.value + 2 * coupling.error) if np.isfinite(bias) else coupling.upper_limit
+            high = BIAS_PER_T_OVER_ECM * t_high if np.isfinite(t_high) else np.nan
+            bends = [w for w in q.warnings if w.startswith("detector:") and "bend" in w]
+            if bends and adopted and np.isfinite(high) and high <= MAX_TUNNEL_VG_BIAS:
+                # the CI model without tunnel coupling describes the map, its M agrees with the lines and
+                # the interdot width (with the fitted thermal width) bounds the bias below the limit:
+                # the bending is thermal rounding of the triple points, kept as a note
+                q = q.without(lambda w: w in bends)
+                for w in bends:
+                    q = q.with_warning(f"{w} [thermal rounding: t/E_Cm ≤ {t_high:.3f} "
+                                       "and the model fit agrees]", doubtful=False)
+        timings["model"] = time.perf_counter() - t1 - timings.get("refine", 0.0) - timings["scale"]
         tunnel = None
         if (self.tunnel_coupling and self.electron_temperature_K is not None and fit.ok
                 and np.all(np.isfinite(scale.alpha_diag))):

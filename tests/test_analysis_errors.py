@@ -98,3 +98,12 @@ def test_quality_without_recomputes_the_verdict():
     assert not q.without(lambda w: w == "note B").ok
     # a verdict built without per-warning flags is never turned ok by dropping warnings
     assert not Quality(ok=False, warnings=("x",)).without(lambda w: True).ok
+
+
+def test_longest_line_order_breaks_ties_by_index_not_rounding_noise():
+    """Lines of equal length (to 1e-9 relative) keep their order; only real differences rank."""
+    from stabtool.analysis import _length_order
+
+    lengths = np.array([0.02, 0.03 + 1e-17, 0.03, 0.03 - 2e-17, 0.01])
+    np.testing.assert_array_equal(_length_order(lengths), [1, 2, 3, 0, 4])
+    np.testing.assert_array_equal(_length_order(lengths[[2, 1, 3, 0, 4]]), [0, 1, 2, 3, 4])

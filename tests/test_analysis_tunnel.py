@@ -101,3 +101,56 @@ def test_analytic_jacobian_of_the_polarisation_line_matches_finite_differences(t
                             rel_step=np.array([1e-6, 1e-6, 1e-6, 1e-6, 1e-6]), abs_step=np.array([1e-9, 1e-5, 1e-7, 1e-7, 1e-5]))
     scale = np.max(np.abs(num), axis=0) + 1e-12
     np.testing.assert_allclose(jac / scale, num / scale, atol=1e-5)
+
+
+@pytest.mark.regression
+def test_hot_map_without_tunnel_coupling_gives_an_upper_limit_not_a_value():
+    """t = 0 at 3 K (k_B T = 259 µeV, E_Cm = 0.95 meV ≈ 3.7 k_B T): the outer charge states are
+    thermally populated near the interdot line and widen it beyond the two-level shape; that
+    and the pixel interpolation must not be read as a tunnel coupling."""
+    sm = quick_double_dot("si-sige-double", snr=30.0, rng=2, temperature_K=3.0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        j = Analyzer(electron_temperature_K=3.0, refine=False)(sm.data).to_json()
+    assert j["tunnel_coupling_ueV"] is None
+    assert j["tunnel_coupling_upper_limit_ueV"] > 0
+    assert not any("broad interdot lines" in w for w in j["quality"]["warnings"])
+    assert not any("interdot lines disagree" in w for w in j["quality"]["warnings"])
+
+
+def test_four_state_model_is_the_polarisation_line_when_the_outer_states_are_empty():
+    """E_Cm ≫ k_B T: ⟨N1 − N2⟩ = 1 − 2P(ε) with P = ½[1 + (ε/Ω) tanh(Ω/2kT)] read at the same
+    points (DiCarlo et al., PRL 92, 226801 (2004), from memory; stabtool.physics.polarisation)."""
+    from stabtool.fit.tunnel import _CutGeometry, _mean_charges
+    from stabtool.physics.constants import KB_EV_PER_K
+    from stabtool.physics.polarisation import polarisation
+
+    temp, t_eV, a_eps = 0.1, 12e-6, 0.05
+    s = np.linspace(-2e-3, 2e-3, 81)
+    one = np.zeros((1, s.size, 4), int)
+    one[0, :, 0] = np.arange(s.size)
+    w = np.zeros((1, s.size, 4))
+    w[0, :, 0] = 1.0  # every point is its own node
+    geo = _CutGeometry(a_eps=a_eps, a_mean=0.01, b=0.02, e_cm=5e-3, kt=KB_EV_PER_K * temp,
+                       node_s=s, node_o=np.zeros_like(s), idx=one, wts=w)
+    n1, n2 = _mean_charges(1e-4, t_eV, geo)
+    eps = -a_eps * (s - 1e-4)  # ε = μ1 − μ2 falls along the cut
+    np.testing.assert_allclose(n1 - n2, 1 - 2 * polarisation(eps, t_eV, temp), atol=1e-9)
+    np.testing.assert_allclose(n1 + n2, 1.0, atol=1e-9)
+
+
+def test_segment_choice_ignores_rounding_noise_in_the_lengths():
+    """Lattice segments have equal lengths; 1e-15 noise must not decide which are fitted."""
+    from stabtool.fit.tunnel import _segment_order
+
+    x = np.linspace(0, 1, 11)
+    y = np.linspace(0, 1, 11)
+    mids = np.array([[0.2, 0.2], [0.5, 0.45], [0.8, 0.8], [0.45, 0.5]])
+    d = np.array([0.05, -0.05])
+    segs = np.stack([mids - d, mids + d], axis=1)
+    base = _segment_order(segs, x, y)
+    rng = np.random.default_rng(0)
+    for _ in range(5):
+        noisy = segs + rng.normal(0, 1e-16, segs.shape)
+        np.testing.assert_array_equal(_segment_order(noisy, x, y), base)
+    assert set(base[:2]) == {1, 3}  # the central segments first

@@ -9,7 +9,7 @@ import pytest
 from scipy import constants
 
 from stabtool.errors import FitError, InputError
-from stabtool.fit.fermi import FermiStepFit, estimate_noise, fit_fermi_step
+from stabtool.fit.fermi import FermiStepFit, estimate_noise, fit_fermi_step, fit_fermi_steps
 from stabtool.physics.thermal import FERMI_FWHM_FACTOR, fermi_occupation
 from stabtool.simulate.traces import TraceTruth, render_trace, simulate_trace
 
@@ -141,3 +141,41 @@ def test_known_sigma_gives_unit_pulls_and_unit_reduced_chi2():
         chi.append(f.reduced_chi2)
     assert np.std(pulls, ddof=1) == pytest.approx(1.0, abs=0.3)
     assert np.mean(chi) == pytest.approx(1.0, abs=0.05)
+
+
+# ----------------------------------------------------------------------------- batched fits
+@pytest.mark.regression
+def test_batched_fits_equal_the_single_trace_fit():
+    """fit_fermi_steps is fit_fermi_step (linear background) on many traces at once.
+
+    Reference: the single-trace fit (scipy least_squares), same model and error definition.
+    """
+    traces = []
+    for seed, step in enumerate([0.5, -0.3, 0.2, 0.4, -0.6]):
+        truth = TraceTruth(step=step, slope=20.0 * (seed - 2))
+        tr = simulate_trace(truth, noise=0.02, rng=seed, n_points=101 + 40 * seed, descending=seed % 2 == 1)
+        traces.append((tr.v, tr.signal))
+    batch = fit_fermi_steps([t[0] for t in traces], [t[1] for t in traces])
+    assert len(batch) == 5
+    for i, (v, sig) in enumerate(traces):
+        one = fit_fermi_step(v, sig, background="linear")
+        assert one and batch.success[i] and batch.converged[i]
+        assert batch.width_V[i] == pytest.approx(one.width_V, rel=1e-5)
+        assert batch.width_stderr_V[i] == pytest.approx(one.width_stderr_V, rel=1e-3)
+        assert batch.centre_V[i] == pytest.approx(one.centre_V, abs=1e-5 * one.width_V)
+        assert batch.step_height[i] == pytest.approx(one.step_height, rel=1e-5)
+        assert batch.reduced_chi2[i] == pytest.approx(one.reduced_chi2, rel=1e-3)
+
+
+def test_batched_fit_rejects_what_the_single_fit_rejects():
+    rng = np.random.default_rng(1)
+    v = np.linspace(0, 1e-3, 300)
+    flat = 1 + 3 * v + rng.normal(0, 0.01, v.size)
+    truth = TraceTruth()
+    unresolved = simulate_trace(truth, noise=0.01, rng=2, span_widths=600, n_points=201)
+    good = simulate_trace(truth, noise=0.01, rng=3)
+    short = (good.v[:8], good.signal[:8])  # fewer than 10 points: not fitted
+    batch = fit_fermi_steps([v, unresolved.v, good.v, short[0]], [flat, unresolved.signal, good.signal, short[1]])
+    assert not fit_fermi_step(v, flat) and not fit_fermi_step(unresolved.v, unresolved.signal)
+    np.testing.assert_array_equal(batch.success, [False, False, True, False])
+    assert np.isnan(batch.width_V[3])

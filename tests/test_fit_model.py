@@ -118,3 +118,22 @@ def test_all_profiles_at_once_give_the_change_point_of_each():
     assert np.isnan(got[heights == 0]).all()  # pure noise: no significant step
     clear = np.abs(heights) == 1
     assert np.all(np.abs(got[clear] - (np.floor(steps[clear]) + 0.5)) <= 1.0)
+
+
+def test_error_checks_are_those_of_error_verdict():
+    """fit_diagram's error-only checks are fit.uncertainty.error_verdict: redoing them changes nothing,
+    and a bound exceeded by a little prints enough digits ("1.54 %", never "1.5 % … ≤ 1.5 %")."""
+    from dataclasses import replace as _replace
+
+    from stabtool.fit.uncertainty import error_verdict
+
+    t = truth_from_capacitances(**WORKED)
+    fit = fit_diagram(honeycomb_detection(t, x=AXIS, y=AXIS, offset_V=(0.01, 0.012), slope_noise=0.01,
+                                         pos_noise_V=1e-4, rng=3))
+    assert fit.ok
+    assert error_verdict(fit).warnings == fit.quality.warnings
+    cdg_err = fit.cdg_aF_error.copy()
+    cdg_err[0, 0] = 0.01537 * abs(fit.cdg_aF[0, 0])  # 1.537 % against the 1.5 % bound
+    worse = _replace(fit, cdg_aF_error=cdg_err)
+    msgs = [w for w in error_verdict(worse).warnings if w.startswith("gate capacitances uncertain")]
+    assert msgs and "1.54 %" in msgs[0]

@@ -37,6 +37,7 @@ Electron Transport, NATO ASI Series E 345 (1997).
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass, field
 from typing import Any, Literal
 
@@ -47,7 +48,7 @@ from ..errors import FitError, InputError
 from ..physics.thermal import FERMI_FWHM_FACTOR, fermi_occupation
 from ..quality import Quality
 
-__all__ = ["FermiStepFit", "estimate_noise", "fit_fermi_step"]
+__all__ = ["FermiStepBatch", "FermiStepFit", "estimate_noise", "fit_fermi_step", "fit_fermi_steps"]
 
 Background = Literal["none", "linear", "quadratic"]
 _NBG = {"none": 0, "linear": 2, "quadratic": 3}
@@ -523,3 +524,256 @@ def _second_step(x, y, wt, nbg, p, xstep, cost1) -> tuple[float, float] | None:
     if (cost1 - sol.cost) * 2 / s2 < 50.0:
         return None
     return (float(min(xa, xb)), float(max(xa, xb)))
+
+
+# ----------------------------------------------------------------------------- batched fits
+@dataclass(frozen=True)
+class FermiStepBatch:
+    """Results of :func:`fit_fermi_steps`: one entry per trace (arrays of shape (k,)).
+
+    Attributes
+    ----------
+    success : ndarray of bool
+        The trace passed the rejection rules of :func:`fit_fermi_step` (except
+        the two-transition test, see :func:`fit_fermi_steps`).
+    converged : ndarray of bool
+        The batched Levenberg–Marquardt iteration converged.
+    centre_V, centre_stderr_V, width_V, width_stderr_V : ndarray
+        Fermi-step centre and width ``w`` with standard errors, V.
+    step_height, step_height_stderr : ndarray
+        Signed step height (low → high gate voltage) and error, signal units.
+    reduced_chi2, noise : ndarray
+        As in :class:`FermiStepFit` (noise from point-to-point differences).
+    n_points : ndarray of int
+    sampling_step_V : ndarray
+    """
+
+    success: np.ndarray
+    converged: np.ndarray
+    centre_V: np.ndarray
+    centre_stderr_V: np.ndarray
+    width_V: np.ndarray
+    width_stderr_V: np.ndarray
+    step_height: np.ndarray
+    step_height_stderr: np.ndarray
+    reduced_chi2: np.ndarray
+    noise: np.ndarray
+    n_points: np.ndarray
+    sampling_step_V: np.ndarray
+
+    def __len__(self) -> int:
+        return int(self.success.size)
+
+
+def _solve_batch(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Solve a batch of small systems ``a x = b`` (a (k, p, p), b (k, p)); a singular one gives NaN."""
+    with np.errstate(all="ignore"):
+        try:
+            return np.linalg.solve(a, b[..., None])[..., 0]
+        except np.linalg.LinAlgError:
+            out = np.full(b.shape, np.nan)
+            for i in range(a.shape[0]):
+                try:
+                    out[i] = np.linalg.solve(a[i], b[i])
+                except np.linalg.LinAlgError:
+                    pass
+            return out
+
+
+def _batch_model(x, p):
+    """Model, tanh and F(1 − F) of ``b0 + b1 x + h F((x − x0)/w)`` on (k, n) samples; p (k, 5)."""
+    x0, lw, h, b0, b1 = (p[:, i : i + 1] for i in range(5))
+    w = np.exp(np.clip(lw, -50.0, 5.0))
+    t = np.tanh((x - x0) * (0.5 / w))
+    f = 0.5 + 0.5 * t
+    return b0 + b1 * x + h * f, f, 0.25 - 0.25 * t * t, w
+
+
+def _batch_jac(x, p, f, q, w):
+    """Transposed Jacobian (k, 5, n) in (x0, ln w, h, b0, b1)."""
+    h = p[:, 2:3]
+    dx0 = -h * q / w
+    return np.stack([dx0, dx0 * (x - p[:, 0:1]), f, np.ones_like(x), x], axis=1)
+
+
+def fit_fermi_steps(
+    v: list[np.ndarray] | tuple[np.ndarray, ...],
+    signal: list[np.ndarray] | tuple[np.ndarray, ...],
+    *,
+    centre_guess_V: np.ndarray | float | None = None,
+    max_iter: int = 40,
+) -> FermiStepBatch:
+    """Fit one Fermi step on a linear background to each of many traces at once.
+
+    Same model, normalisation, error definition (Jacobian covariance scaled by
+    the residual variance) and rejection rules as
+    :func:`fit_fermi_step` with ``background="linear"``, vectorised over the
+    traces: a variable-projection grid over the width at the guessed centre
+    (linear parameters solved exactly), then Levenberg–Marquardt steps with
+    the analytic Jacobian on all traces in parallel (5×5 normal equations per
+    trace). Meant for traces that hold one transition near a known position
+    (cuts aligned on a fitted line); unlike :func:`fit_fermi_step` there is
+    no search for a second step and no grid over the centre.
+
+    Parameters
+    ----------
+    v, signal : sequence of 1-D arrays
+        Gate voltages (V) and signals of each trace (lengths may differ;
+        NaNs are dropped; ≥ 10 finite points each, else that trace fails).
+    centre_guess_V : float or array of shape (k,), optional
+        Start of the step centre (default: the middle of each sweep).
+    max_iter : int
+        Levenberg–Marquardt iterations at most.
+
+    Returns
+    -------
+    FermiStepBatch
+        A trace that did not converge is marked ``converged=False`` (callers
+        may refit it with :func:`fit_fermi_step`).
+
+    References
+    ----------
+    G. H. Golub and V. Pereyra, SIAM J. Numer. Anal. 10, 413 (1973),
+    doi:10.1137/0710036 (variable projection); D. W. Marquardt, J. Soc. Ind.
+    Appl. Math. 11, 431 (1963), doi:10.1137/0111030.
+    """
+    k = len(v)
+    if len(signal) != k:
+        raise InputError("signal", f"expected as many signal traces as voltage traces, got {len(signal)} and {k}")
+    vv, ss = [], []
+    for a, b in zip(v, signal):
+        a = np.asarray(a, float).ravel()
+        b = np.asarray(b, float).ravel()
+        if a.shape != b.shape:
+            raise InputError("signal", f"expected equal lengths, got {a.size} and {b.size}")
+        ok = np.isfinite(a) & np.isfinite(b)
+        vv.append(a[ok])
+        ss.append(b[ok])
+    n_pts = np.array([a.size for a in vv], int)
+    nmax = max(int(n_pts.max()) if k else 0, 1)
+    nan = np.full(k, np.nan)
+    V = np.full((k, nmax), np.inf)
+    S = np.zeros((k, nmax))
+    for i, (a, b) in enumerate(zip(vv, ss)):
+        o = np.argsort(a, kind="stable")
+        V[i, : a.size] = a[o]
+        S[i, : a.size] = b[o]
+    m = np.isfinite(V)
+    usable = n_pts >= 10
+    # --- per-trace normalisation (as fit_fermi_step) --------------------------------------
+    last = np.maximum(n_pts - 1, 0)
+    v_lo = np.where(n_pts > 0, V[:, 0], np.nan)
+    v_hi = np.where(n_pts > 0, V[np.arange(k), last], np.nan)
+    span = v_hi - v_lo
+    usable &= np.isfinite(span) & (span > 0)
+    vc = np.where(usable, 0.5 * (v_lo + v_hi), 0.0)
+    vs = np.where(usable, 0.5 * span, 1.0)
+    dv = np.diff(np.where(m, V, np.nan), axis=1)
+    with np.errstate(invalid="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        step_v = np.nanmedian(np.where(dv > 0, dv, np.nan), axis=1)
+        ds = np.diff(np.where(m, S, np.nan), axis=1)
+        dmed = np.nanmedian(ds, axis=1)
+        noise = 1.4826 * np.nanmedian(np.abs(ds - dmed[:, None]), axis=1) / np.sqrt(2.0)
+        noise = np.where(n_pts >= 4, noise, np.nan)
+        Sm = np.where(m, S, np.nan)
+        ym = np.nanmedian(Sm, axis=1)
+        ys = np.nanstd(Sm, axis=1)
+    usable &= np.isfinite(step_v)
+    ym = np.where(np.isfinite(ym), ym, 0.0)
+    ys = np.where(np.isfinite(ys) & (ys > 0), ys, 1.0)
+    X = np.where(m, (np.where(m, V, 0.0) - vc[:, None]) / vs[:, None], 0.0)
+    Y = np.where(m, (S - ym[:, None]) / ys[:, None], 0.0)
+    wt = (m & usable[:, None]).astype(float)
+    xstep = np.where(usable, step_v / vs, 1.0)
+    if centre_guess_V is None:
+        x0g = np.zeros(k)
+    else:
+        x0g = np.clip((np.broadcast_to(np.asarray(centre_guess_V, float), (k,)) - vc) / vs, -0.9, 0.9)
+        x0g = np.where(np.isfinite(x0g), x0g, 0.0)
+    # --- start: widths grid at the guessed centre, linear parameters exact --------------------
+    nw = 12
+    lo_w = np.maximum(0.5 * xstep, 1e-6)
+    grid_w = lo_w[:, None] * (((2.0 / 3.0) / lo_w)[:, None] ** (np.arange(nw) / (nw - 1)))  # (k, nw)
+    best_cost = np.full(k, np.inf)
+    p = np.zeros((k, 5))
+    sw, sx, sxx = wt.sum(1), (wt * X).sum(1), (wt * X * X).sum(1)
+    sy, sxy, syy = (wt * Y).sum(1), (wt * X * Y).sum(1), (wt * Y * Y).sum(1)
+    for j in range(nw):
+        w = grid_w[:, j : j + 1]
+        F = (0.5 + 0.5 * np.tanh((X - x0g[:, None]) * (0.5 / w))) * wt
+        A = np.empty((k, 3, 3))
+        A[:, 0, 0] = (F * F).sum(1)
+        A[:, 0, 1] = A[:, 1, 0] = F.sum(1)
+        A[:, 0, 2] = A[:, 2, 0] = (F * X).sum(1)
+        A[:, 1, 1], A[:, 1, 2], A[:, 2, 1], A[:, 2, 2] = sw, sx, sx, sxx
+        b = np.stack([(F * Y).sum(1), sy, sxy], axis=1)
+        c = _solve_batch(A + 1e-12 * np.eye(3), b)
+        cost = syy - np.sum(c * b, axis=1)
+        better = np.isfinite(cost) & (cost < best_cost)
+        best_cost = np.where(better, cost, best_cost)
+        p[better] = np.stack([x0g, np.log(w[:, 0]), c[:, 0], c[:, 1], c[:, 2]], axis=1)[better]
+    # --- batched Levenberg–Marquardt ---------------------------------------------------------
+    mod, f, q, w = _batch_model(X, p)
+    r = (mod - Y) * wt
+    cost = np.sum(r * r, axis=1)
+    lam = np.full(k, 1e-3)
+    active = usable & np.isfinite(cost)
+    converged = np.zeros(k, bool)
+    eye = np.eye(5)
+    for _ in range(max_iter):
+        if not np.any(active):
+            break
+        ia = np.nonzero(active)[0]
+        J = _batch_jac(X[ia], p[ia], f[ia], q[ia], w[ia]) * wt[ia, None, :]
+        A = J @ J.transpose(0, 2, 1)
+        g = (J @ r[ia][:, :, None])[:, :, 0]
+        dA = np.einsum("kii->ki", A)
+        step = -_solve_batch(A + lam[ia, None, None] * (dA[:, :, None] * eye) + 1e-30 * eye, g)
+        pt = p[ia] + step
+        pt[:, 1] = np.clip(pt[:, 1], np.log(1e-6), np.log(10.0))
+        mt, ft, qt, wtt = _batch_model(X[ia], pt)
+        rt = (mt - Y[ia]) * wt[ia]
+        ct = np.sum(rt * rt, axis=1)
+        good = np.isfinite(ct) & (ct <= cost[ia])
+        gi = ia[good]
+        rel = (cost[gi] - ct[good]) / np.maximum(cost[gi], 1e-300)
+        p[gi], cost[gi], r[gi], f[gi], q[gi], w[gi] = pt[good], ct[good], rt[good], ft[good], qt[good], wtt[good]
+        lam[gi] = np.maximum(lam[gi] / 3.0, 1e-9)
+        lam[ia[~good]] *= 4.0
+        small = np.all(np.abs(step[good][:, :3]) <= 1e-7 * (1.0 + np.abs(pt[good][:, :3])), axis=1) | (rel < 1e-12)
+        done = gi[small]
+        converged[done] = True
+        active[done] = False
+        stuck = ia[~good][lam[ia[~good]] > 1e8]
+        converged[stuck] = True  # no step lowers the cost: at the minimum to rounding
+        active[stuck] = False
+    # --- covariance (linear w), scaled by the residual variance ---------------------------------
+    J = _batch_jac(X, p, f, q, w) * wt[:, None, :]
+    J[:, 1, :] /= w  # ∂/∂w = (∂/∂ ln w)/w
+    A = J @ J.transpose(0, 2, 1)
+    dof = np.maximum(n_pts - 5, 1)
+    with np.errstate(all="ignore"):
+        try:
+            cov = np.linalg.pinv(A)
+        except np.linalg.LinAlgError:  # pragma: no cover
+            cov = np.full_like(A, np.nan)
+        cov = cov * (cost / dof)[:, None, None]
+        perr = np.sqrt(np.clip(np.einsum("kii->ki", cov), 0, None))
+        red = (cost / dof) * ys**2 / noise**2
+    wn = w[:, 0]
+    centre = vc + vs * p[:, 0]
+    width = vs * wn
+    height = ys * p[:, 2]
+    with np.errstate(all="ignore"):
+        signif = np.abs(p[:, 2]) / perr[:, 2]
+        success = (usable & converged & np.isfinite(signif) & (signif >= MIN_STEP_SIGNIFICANCE)
+                   & ~(np.isfinite(noise) & (noise > 0) & (np.abs(height) < MIN_STEP_SIGNIFICANCE * noise))
+                   & (width <= span / 3.0) & (centre >= v_lo) & (centre <= v_hi) & (width > step_v))
+    return FermiStepBatch(
+        success=success, converged=converged & usable,
+        centre_V=np.where(usable, centre, nan), centre_stderr_V=np.where(usable, vs * perr[:, 0], nan),
+        width_V=np.where(usable, width, nan), width_stderr_V=np.where(usable, vs * perr[:, 1], nan),
+        step_height=np.where(usable, height, nan), step_height_stderr=np.where(usable, ys * perr[:, 2], nan),
+        reduced_chi2=np.where(usable, red, nan), noise=noise, n_points=n_pts, sampling_step_V=step_v,
+    )

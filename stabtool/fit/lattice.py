@@ -360,7 +360,11 @@ def fit_lattice(
             if not np.isfinite(dm[i]) or abs(dm[i]) < 1e-12:
                 dm[i] = interdot_extent[i]
     dm = np.where(np.abs(dm) < 0.45 * dv, dm, 0.1 * dv)
-    ref = int(np.argmax(dot1.hi - dot1.lo))
+    # label origin: the longest dot1 line; lengths equal to 1e-9 relative (rounding noise of
+    # their computation) count as equal and the first such line wins (deterministic choice)
+    ext = np.asarray(dot1.hi - dot1.lo, float)
+    top = float(np.max(np.abs(ext))) if ext.size else 0.0
+    ref = int(np.argmax(np.round(ext / top * 1e9) if top > 0 else ext))
     c = np.array([dot1.pos[ref] + 0.5 * dv[0], dot1.mid[ref] + 0.5 * dm[1]])
     fits: list[_FamilyFit | None] = [None, None]
     labels = [np.zeros((k1, 2), int), np.zeros((k2, 2), int)]
