@@ -120,6 +120,6 @@ def test_no_ok_result_beyond_bounds_while_snr_falls():
 def test_sharp_lines_give_no_temperature_lever_arm():
     # 0.1 K on a 1 mV grid: k_B T/(e α) ≈ 0.09 mV, far below a pixel → no guess
     _sm, j, _ = _run("ge-double", snr=None, seed=1, refine=False, electron_temperature_K=0.1)
-    assert j["lever_arm"] is None
-    assert j["quality"]["ok"] is False
+    assert j["lever_arm"] is None and j["charging_energy_meV"]["dot1"] is None
+    # a null is not a doubtful number: the note says why, the verdict is about what is reported
     assert any("resolution-limited" in w for w in j["quality"]["warnings"])

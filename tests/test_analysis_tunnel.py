@@ -154,3 +154,25 @@ def test_segment_choice_ignores_rounding_noise_in_the_lengths():
         noisy = segs + rng.normal(0, 1e-16, segs.shape)
         np.testing.assert_array_equal(_segment_order(noisy, x, y), base)
     assert set(base[:2]) == {1, 3}  # the central segments first
+
+
+@pytest.mark.regression
+@pytest.mark.parametrize(("preset", "t_ueV"), [("gaas-double", 0.0), ("gaas-double", 20.0), ("si-sige-double", 60.0)])
+def test_tunnel_coupled_map_is_not_ok_beyond_the_clean_bound(preset, t_ueV):
+    # The tunnel coupling pushes the dot lines apart near the triple points and biases the
+    # virtual gates by ≈ 0.1 · t/E_Cm (beyond their statistical error). A clean map (SNR 30)
+    # reported ok must still keep |ΔM| ≤ 0.005 (issue bound); the uncoupled map stays ok.
+    sm = quick_double_dot(preset, tunnel_coupling_ueV=t_ueV, snr=30.0, shape=(160, 160), rng=0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        j = Analyzer()(sm.data).to_json()
+    err = float(np.max(np.abs(np.array(j["virtual_gate_matrix"], float)
+                              - np.array(sm.truth.to_json()["virtual_gate_matrix"]))))
+    if j["quality"]["ok"]:
+        assert err <= 0.005
+    if t_ueV == 0.0:
+        assert j["quality"]["ok"], j["quality"]["warnings"]
+    else:
+        # these two maps are biased beyond the bound (0.0072 and 0.0061 seen): they must be flagged
+        assert err > 0.005 and not j["quality"]["ok"]
+        assert any("tunnel" in w or "broad interdot" in w for w in j["quality"]["warnings"])

@@ -81,6 +81,9 @@ class DiagramFit:
         ``α11/α22 = δ2/δ1``; NaN when δ is unresolved.
     mutual_resolved : bool
         Both δ exceed ``MUTUAL_SIGMAS`` standard errors.
+    staircase_families : tuple of str
+        Families whose detected segments merged several charge bands (a
+        staircase of unresolved mutual shifts) and were re-measured piecewise.
     lattice : LatticeFit
         Fit on the merged lines (collinear fragments joined).
     line_groups : (ndarray, ndarray)
@@ -112,6 +115,7 @@ class DiagramFit:
     lines2: tuple[TransitionLine, ...] = field(default_factory=tuple)
     interdot: tuple[TransitionLine, ...] = field(default_factory=tuple)
     quality: Quality = field(default_factory=Quality)
+    staircase_families: tuple[str, ...] = ()
 
     def __bool__(self) -> bool:
         return self.ok
@@ -603,7 +607,7 @@ def fit_diagram(
     # among the unbiased passes, the one with the smaller virtual-gate error
     best = min(cands, key=lambda f: float(np.nanmax(f.vg_matrix_error)))
     if stair:
-        best = replace(best, quality=best.quality.with_warning(
+        best = replace(best, staircase_families=tuple(stair), quality=best.quality.with_warning(
             f"{', '.join(stair)} segments merge several charge bands (staircase of unresolved mutual shifts): "
             "re-measured piecewise between the other family's lines", doubtful=False))
     return best
