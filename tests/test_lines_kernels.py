@@ -314,3 +314,59 @@ def test_profile_cut_at_other_lines_equals_a_direct_loop():
                     left = max(left, d)
         want = (offs < right - CUT_MARGIN_PX) & (offs > left + CUT_MARGIN_PX)
         np.testing.assert_array_equal(got[i], want)
+
+
+def _reference_hough_peaks(h, angles, dists, min_votes, max_peaks):
+    """Accumulator peaks with scipy.ndimage's 5×5 maximum filter on the θ-wrapped accumulator."""
+    h = h.astype(np.int64)
+    hp = np.concatenate([h[::-1, -2:], h, h[::-1, :2]], axis=1)  # θ = ±90° wraps with ρ → −ρ
+    mx = ndi.maximum_filter(hp, size=(5, 5), mode="constant")[:, 2:-2]
+    cand = np.nonzero((h >= mx) & (h >= min_votes))
+    order = np.argsort(-h[cand], kind="stable")[: 2 * max_peaks]
+    return angles[cand[1][order]], dists[cand[0][order]]
+
+
+def test_hough_peaks_equal_the_scipy_maximum_filter_on_the_wrapped_accumulator():
+    from skimage.draw import line as draw_line
+    from skimage.transform import hough_line
+
+    from stabtool.lines.hough import _hough_peaks
+
+    rng = np.random.default_rng(12)
+    img = rng.random((90, 120)) < 0.02
+    for _ in range(6):
+        r0, c0, r1, c1 = rng.integers(0, 90), rng.integers(0, 120), rng.integers(0, 90), rng.integers(0, 120)
+        img[draw_line(int(r0), int(c0), int(r1), int(c1))] = True
+    img[draw_line(40, 5, 41, 115)] = True  # nearly horizontal: its peak straddles θ = ±90°
+    h, a, d = hough_line(img, theta=np.deg2rad(np.arange(-90, 90, 0.5)))
+    # vote counts below 2⁸ (uint8 path), below 2¹⁶ (uint16) and above (int64)
+    for scale in (1, 200, 5000):
+        got = _hough_peaks(h * scale, a, d, 4 * scale, 50)
+        want = _reference_hough_peaks(h * scale, a, d, 4 * scale, 50)
+        assert got[0].size == want[0].size > 0
+        np.testing.assert_array_equal(got[0], want[0])
+        np.testing.assert_array_equal(got[1], want[1])
+
+
+def test_batched_segment_conversion_equals_segment_to_line():
+    from stabtool.lines.hough import _segments_to_lines, segment_to_line
+    from stabtool.mapdata import MapAxes
+
+    rng = np.random.default_rng(13)
+    segs = []
+    for _ in range(40):
+        x0, y0 = rng.uniform(-3, 70, 2)  # some ends outside the map (linear extrapolation)
+        ang = rng.uniform(-np.pi / 2, np.pi / 2)
+        L = rng.uniform(3, 40)
+        segs.append(_seg(x0, y0, x0 + L * np.cos(ang), y0 + L * np.sin(ang)))
+    segs.append(PixelSegment(10.0, 20.0, 0.0, 1.0, -5.0, 5.0, 10, 0.2))  # vertical: infinite slope
+    fams = [("dot1", "dot2", "interdot")[k % 3] for k in range(len(segs))]
+    # decreasing y axis, anisotropic steps
+    axes = MapAxes(x=np.linspace(-0.2, -0.1, 64), y=np.linspace(0.35, 0.3, 64), x_gate="PA", y_gate="PB")
+    got = _segments_to_lines(segs, axes, fams)
+    for s, f, g in zip(segs, fams, got):
+        w = segment_to_line(s, axes, family=f)
+        assert g.family == w.family and g.n_points == w.n_points
+        for name in ("x0", "y0", "slope", "slope_stderr", "position_stderr"):
+            assert getattr(g, name) == pytest.approx(getattr(w, name), rel=1e-12, abs=0), name
+        np.testing.assert_allclose(g.start + g.end, w.start + w.end, rtol=1e-13, atol=0)

@@ -129,7 +129,10 @@ def _grid_start(uT, yT, mT, c0, kind):
     best = np.empty((6, n))
     best[5] = np.inf
     for c, w0 in starts:
-        phi, _ = _basis(uT, c, w0, kind)
+        if kind == "step":  # the shape alone (no derivative) for the grid
+            phi = 0.5 + 0.5 * np.tanh((uT - c) * (0.5 / w0))
+        else:
+            phi, _ = _basis(uT, c, w0, kind)
         mphi = mT * phi
         sp, sup, spp, spy = mphi.sum(0), (mphi * uT).sum(0), (mphi * phi).sum(0), (mphi * yT).sum(0)
         with np.errstate(all="ignore"):

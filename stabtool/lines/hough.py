@@ -88,35 +88,43 @@ def _tls(px: np.ndarray, py: np.ndarray):
     return cx, cy, np.array([ux, uy]), math.sqrt(max(lam_min, 0.0))
 
 
+def _max5_axis(a: np.ndarray, axis: int) -> np.ndarray:
+    """Centred 5-wide moving maximum of a non-negative 2-D array along one axis, zero outside."""
+
+    def sl(lo, hi):  # slice lo:hi along ``axis``
+        return (slice(lo, hi), slice(None)) if axis == 0 else (slice(None), slice(lo, hi))
+
+    m = a.copy()
+    np.maximum(m[sl(1, None)], a[sl(None, -1)], out=m[sl(1, None)])  # window [i-1, i]
+    np.maximum(m[sl(None, -1)], a[sl(1, None)], out=m[sl(None, -1)])  # [i-1, i+1]
+    m2 = m.copy()
+    np.maximum(m2[sl(2, None)], a[sl(None, -2)], out=m2[sl(2, None)])
+    np.maximum(m2[sl(None, -2)], a[sl(2, None)], out=m2[sl(None, -2)])  # [i-2, i+2]
+    return m2
+
+
 def _max_filter5(a: np.ndarray) -> np.ndarray:
     """5×5 moving maximum of a non-negative 2-D array, zero outside it.
 
     The same as ``scipy.ndimage.maximum_filter(a, size=(5, 5), mode="constant")``
     for ``a >= 0``, as two separable passes of shifted maxima.
     """
-    out = a
-    for axis in (0, 1):
-        n = out.shape[axis]
-        pad = [(0, 0), (0, 0)]
-        pad[axis] = (2, 2)
-        p = np.pad(out, pad)
-        sl = [slice(None), slice(None)]
-        sl[axis] = slice(0, n)
-        m = p[tuple(sl)].copy()
-        for k in range(1, 5):
-            sl[axis] = slice(k, k + n)
-            np.maximum(m, p[tuple(sl)], out=m)
-        out = m
-    return out
+    return _max5_axis(_max5_axis(a, 0), 1)
 
 
 def _hough_peaks(h: np.ndarray, angles: np.ndarray, dists: np.ndarray, min_votes: int, max_peaks: int):
-    """Local maxima of the accumulator (5 distance × 5 angle bins, angle wrapping), strongest first."""
-    h = h.astype(np.int32) if h.size and h.max() < 2**31 - 1 else h
-    hp = np.concatenate([h[::-1, -2:], h, h[::-1, :2]], axis=1)  # θ = ±90° wrap with ρ → −ρ
-    mx = _max_filter5(hp)[:, 2:-2]
+    """Local maxima of the accumulator (5 distance × 5 angle bins, angle wrapping), strongest first.
+
+    The vote counts are narrowed to the smallest unsigned type that holds
+    them (the filter passes are memory-bound).
+    """
+    hmax = int(h.max()) if h.size else 0
+    h = h.astype(np.uint8 if hmax < 2**8 else np.uint16 if hmax < 2**16 else np.int64)
+    m0 = _max5_axis(h, 0)  # the ρ pass commutes with the ρ → −ρ flip of the wrap
+    mp = np.concatenate([m0[::-1, -2:], m0, m0[::-1, :2]], axis=1)  # θ = ±90° wrap with ρ → −ρ
+    mx = _max5_axis(mp, 1)[:, 2:-2]
     cand = np.nonzero((h >= mx) & (h >= min_votes))
-    votes = h[cand]
+    votes = h[cand].astype(np.int64)
     order = np.argsort(-votes, kind="stable")[: 2 * max_peaks]
     return angles[cand[1][order]], dists[cand[0][order]]
 
@@ -151,14 +159,24 @@ def _segments_core(
         # pixels never come back
         fidx = np.nonzero(free)[0]
         ca, sa = np.cos(pk_ang[k0 : k0 + chunk]), np.sin(pk_ang[k0 : k0 + chunk])
-        dist_all = np.abs(np.outer(ca, px[fidx]) + np.outer(sa, py[fidx]) - pk_dist[k0 : k0 + chunk, None])
-        near_all = dist_all <= tolerance_px
+        # (in place: these (chunk, n_free) arrays are the largest of the search)
+        dist_all = np.multiply.outer(ca, px[fidx])
+        dist_all += np.multiply.outer(sa, py[fidx])
+        dist_all -= pk_dist[k0 : k0 + chunk, None]
+        np.abs(dist_all, out=dist_all)
+        # per peak, the free pixels within reach of its line (see below), as
+        # index lists into fidx (row-major, so grouped by peak): peaks' loops
+        # then touch only their own band (a few hundred pixels), not every
+        # free pixel; those within the tolerance are the peak's own
+        rj, rf = np.nonzero(dist_all <= reach_px)
+        rnear = dist_all[rj, rf] <= tolerance_px
+        bounds = np.searchsorted(rj, np.arange(ca.size + 1))
+        jj, ff = rj[rnear], rf[rnear]
         lfree = np.ones(fidx.size, dtype=bool)  # free[fidx], kept up to date
         # peaks without a long enough run among the pixels free now never get
         # one (claims only split and shorten runs): found for the whole chunk
         # at once, with a hair of slack so that rounding never drops a peak
-        jj, ff = np.nonzero(near_all)
-        viable = np.zeros(ca.size, dtype=bool)
+        viable = np.bincount(jj, minlength=ca.size) >= min_votes
         if jj.size:
             tq = -px[fidx[ff]] * sa[jj] + py[fidx[ff]] * ca[jj]
             o = np.lexsort((tq, jj))
@@ -166,23 +184,30 @@ def _segments_core(
             cut = np.nonzero((np.diff(jj) != 0) | (np.diff(tq) > max_gap_px + 1e-9))[0] + 1
             rs, re = np.r_[0, cut], np.r_[cut, jj.size]
             long_run = (re - rs >= min_votes) & (tq[re - 1] - tq[rs] >= min_length_px - 2 - 1e-9)
-            viable[jj[rs[long_run]]] = True
-        # free pixels near each peak's line, kept up to date as pixels are claimed
-        count = near_all.sum(1)
-        for j in range(ca.size):
+            has_run = np.zeros(ca.size, dtype=bool)
+            has_run[jj[rs[long_run]]] = True
+            viable &= has_run
+        cand_j = np.nonzero(viable)[0]
+        for j in cand_j:
             if len(segs) >= max_lines or n_free == 0:
                 break
-            if count[j] < min_votes or not viable[j]:
+            b0, b1 = bounds[j], bounds[j + 1]
+            rloc = rf[b0:b1]
+            keep = lfree[rloc]
+            rloc = rloc[keep]
+            nloc = rloc[rnear[b0:b1][keep]]
+            if nloc.size < min_votes:
                 continue
             c, s = ca[j], sa[j]
-            idx = fidx[near_all[j] & lfree]
+            idx = fidx[nloc]
             # free pixels within reach of this peak's runs once refitted: the
             # refitted line stays within the tolerance band of the Hough line
             # along the run, so 3 tolerances + 2 px hold every pixel it can
             # collect (the re-collection below scans these, not all pixels)
-            reach = fidx[(dist_all[j] <= reach_px) & lfree]
+            reach = fidx[rloc]
             rx, ry = px[reach], py[reach]
-            t = -px[idx] * s + py[idx] * c
+            ix, iy = px[idx], py[idx]
+            t = iy * c - ix * s
             order = np.argsort(t)
             ts = t[order]
             br = np.nonzero(np.diff(ts) > max_gap_px)[0] + 1
@@ -190,28 +215,29 @@ def _segments_core(
             ends = np.concatenate([br, [ts.size]])
             # only runs long enough in pixels and in extent are examined
             good = (ends - starts >= min_votes) & (ts[ends - 1] - ts[starts] >= min_length_px - 2)
-            for st, en in zip(starts[good], ends[good]):
+            for st, en in zip(starts[good].tolist(), ends[good].tolist()):
                 sel = idx[order[st:en]]
-                cx, cy, u, rms = _tls(px[sel], py[sel])
+                sx, sy = px[sel], py[sel]
+                cx, cy, u, rms = _tls(sx, sy)
                 # one re-collection around the refined line, inside the run's span
-                ts_ = (px[sel] - cx) * u[0] + (py[sel] - cy) * u[1]
+                ts_ = (sx - cx) * u[0] + (sy - cy) * u[1]
                 tt = (rx - cx) * u[0] + (ry - cy) * u[1]
-                dd = -(rx - cx) * u[1] + (ry - cy) * u[0]
-                span = (tt >= ts_.min() - 1) & (tt <= ts_.max() + 1)
-                sel2 = reach[free[reach] & span & (np.abs(dd) <= tolerance_px)]
+                dd = (ry - cy) * u[0] - (rx - cx) * u[1]
+                m2 = free[reach] & (tt >= ts_.min() - 1) & (tt <= ts_.max() + 1) & (np.abs(dd) <= tolerance_px)
+                sel2 = reach[m2]
                 if sel2.size >= sel.size:
                     sel = sel2
-                    cx, cy, u, rms = _tls(px[sel], py[sel])
-                tt = (px[sel] - cx) * u[0] + (py[sel] - cy) * u[1]
-                if tt.max() - tt.min() < min_length_px - 1:
+                    sx, sy = px[sel], py[sel]
+                    cx, cy, u, rms = _tls(sx, sy)
+                tt = (sx - cx) * u[0] + (sy - cy) * u[1]
+                t_lo, t_hi = tt.min(), tt.max()
+                if t_hi - t_lo < min_length_px - 1:
                     continue
                 free[sel] = False
                 n_free -= sel.size
-                loc = np.searchsorted(fidx, sel)
-                lfree[loc] = False
-                count -= near_all[:, loc].sum(1)
+                lfree[np.searchsorted(fidx, sel)] = False
                 segs.append(PixelSegment(float(cx), float(cy), float(u[0]), float(u[1]),
-                                         float(tt.min()), float(tt.max()), int(sel.size), rms))
+                                         float(t_lo), float(t_hi), int(sel.size), rms))
     return segs
 
 
@@ -236,6 +262,41 @@ def segment_to_line(seg: PixelSegment, axes: MapAxes, *, family: str = "unassign
         position_stderr=float(pos_err), start=(float(xs[0]), float(ys[0])), end=(float(xs[1]), float(ys[1])),
         n_points=seg.n_pixels,
     )
+
+
+def _segments_to_lines(segs, axes: MapAxes, families) -> list[TransitionLine]:
+    """:func:`segment_to_line` of many segments, the conversions done as arrays (same numbers)."""
+    if not segs:
+        return []
+    cx = np.array([s.cx for s in segs])
+    cy = np.array([s.cy for s in segs])
+    ux = np.array([s.ux for s in segs])
+    uy = np.array([s.uy for s in segs])
+    t0 = np.array([s.t0 for s in segs])
+    t1 = np.array([s.t1 for s in segs])
+    npx = np.array([s.n_pixels for s in segs], dtype=float)
+    rms = np.array([s.rms_px for s in segs])
+    n = cx.size
+    xs = idx_to_volts(np.concatenate([cx + t0 * ux, cx + t1 * ux, cx]), axes.x)
+    ys = idx_to_volts(np.concatenate([cy + t0 * uy, cy + t1 * uy, cy]), axes.y)
+    x0, x1, xc = xs[:n], xs[n : 2 * n], xs[2 * n :]
+    y0, y1, yc = ys[:n], ys[n : 2 * n], ys[2 * n :]
+    dxv, dyv = x1 - x0, y1 - y0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        slope = np.where(dxv != 0, dyv / np.where(dxv != 0, dxv, 1.0), np.inf)
+        # PixelSegment.angle_stderr, elementwise
+        spread = (t1 - t0) / np.sqrt(12.0)
+        dth = np.maximum(rms, 0.29) / (np.sqrt(np.maximum(npx, 3)) * np.maximum(spread, 1e-9))
+        sx_, sy_ = steps(axes)
+        ax, ay = abs(sx_), abs(sy_)
+        slope_err = np.where(ux > 1e-12, abs(ay / ax) * dth / ux**2, np.inf)
+        pos_err = np.maximum(rms, 0.29) / np.sqrt(np.maximum(npx, 1)) * np.hypot(ax * uy, ay * ux)
+    cols = [a.tolist() for a in (xc, yc, slope, slope_err, pos_err, x0, y0, x1, y1)]
+    return [
+        TransitionLine(family=f, x0=a, y0=b, slope=sl, slope_stderr=se, position_stderr=pe,  # type: ignore[arg-type]
+                       start=(p, q), end=(r, t), n_points=seg.n_pixels)
+        for seg, f, a, b, sl, se, pe, p, q, r, t in zip(segs, families, *cols)
+    ]
 
 
 def find_segments(

@@ -10,7 +10,7 @@ import numpy as np
 from ..mapdata import MapAxes
 from ._batchfit import BatchFit, fit_profiles
 from ._geometry import idx_to_volts, steps
-from .hough import PixelSegment, segment_to_line
+from .hough import PixelSegment, _segments_to_lines
 from .result import TransitionLine
 
 __all__ = ["RefinedLine", "refine_segment", "refine_segments"]
@@ -38,44 +38,52 @@ def _all_profiles(values: np.ndarray, segs, along_x, halfwidth: int, max_points:
     profile, segments in order, or None when no segment has a profile.
     """
     ny, nx = values.shape
-    ids, rows_l, a0s, b0s, gs = [], [], [], [], []
-    for k, seg in enumerate(segs):
-        (sx, sy), (ex, ey) = seg.start_px, seg.end_px
-        if along_x[k]:
-            a0, a1, b0, b1 = sy, ey, sx, ex  # param = row, position = column
-            n_par = ny
-        else:
-            a0, a1, b0, b1 = sx, ex, sy, ey
-            n_par = nx
-        if a1 == a0:
-            continue
-        lo, hi = min(a0, a1) + trims[k], max(a0, a1) - trims[k]
-        if bounds is not None:
-            # rows fixed by the vertices (see _vertex_bounds), where known and
-            # not far from the segment's own (else the vertex is doubtful: a
-            # broken segment or a wrong intersection)
-            b_lo, b_hi = bounds[k]
-            if -VERTEX_MAX_EXTEND_PX <= b_lo - lo <= VERTEX_MAX_SHRINK_PX:
-                lo = b_lo
-            if -VERTEX_MAX_SHRINK_PX <= b_hi - hi <= VERTEX_MAX_EXTEND_PX:
-                hi = b_hi
-        r0, r1 = max(int(np.ceil(lo)), 0), min(int(np.floor(hi)), n_par - 1)
-        if r1 < r0:
-            continue
-        rows = np.arange(r0, r1 + 1)
-        if rows.size > max_points:
-            rows = rows[np.linspace(0, rows.size - 1, max_points).round().astype(int)]
-        ids.append(np.full(rows.size, k))
-        rows_l.append(rows)
-        a0s.append(a0)
-        b0s.append(b0)
-        gs.append((b1 - b0) / (a1 - a0))
-    if not rows_l:
+    nseg = len(segs)
+    if nseg == 0:
         return None
-    seg_id = np.concatenate(ids)
-    rows = np.concatenate(rows_l)
-    sizes = [r.size for r in rows_l]
-    a0v, b0v, gv = (np.repeat(np.array(v, float), sizes) for v in (a0s, b0s, gs))
+    # per-segment quantities as arrays (the same arithmetic as one segment at a time)
+    cx = np.array([q.cx for q in segs]); cy = np.array([q.cy for q in segs])
+    ux = np.array([q.ux for q in segs]); uy = np.array([q.uy for q in segs])
+    t0 = np.array([q.t0 for q in segs]); t1 = np.array([q.t1 for q in segs])
+    sx, sy, ex, ey = cx + t0 * ux, cy + t0 * uy, cx + t1 * ux, cy + t1 * uy
+    alx_s = np.asarray(along_x, bool)
+    a0, a1 = np.where(alx_s, sy, sx), np.where(alx_s, ey, ex)  # param = row (along x) or column
+    b0, b1 = np.where(alx_s, sx, sy), np.where(alx_s, ex, ey)  # position across
+    n_par = np.where(alx_s, ny, nx)
+    tr = np.asarray(trims, float)
+    lo, hi = np.minimum(a0, a1) + tr, np.maximum(a0, a1) - tr
+    if bounds is not None:
+        # rows fixed by the vertices (see _vertex_bounds), where known and
+        # not far from the segment's own (else the vertex is doubtful: a
+        # broken segment or a wrong intersection)
+        b_lo, b_hi = bounds[:, 0], bounds[:, 1]
+        with np.errstate(invalid="ignore"):
+            d_lo, d_hi = b_lo - lo, b_hi - hi
+            lo = np.where((-VERTEX_MAX_EXTEND_PX <= d_lo) & (d_lo <= VERTEX_MAX_SHRINK_PX), b_lo, lo)
+            hi = np.where((-VERTEX_MAX_SHRINK_PX <= d_hi) & (d_hi <= VERTEX_MAX_EXTEND_PX), b_hi, hi)
+    r0 = np.maximum(np.ceil(lo), 0).astype(int)
+    r1 = np.minimum(np.floor(hi), n_par - 1).astype(int)
+    use = (a1 != a0) & (r1 >= r0)
+    if not use.any():
+        return None
+    ks = np.nonzero(use)[0]
+    cnt = (r1 - r0 + 1)[ks]
+    if (cnt > max_points).any():
+        rows_l = []
+        for k, c in zip(ks.tolist(), cnt.tolist()):
+            rr = np.arange(r0[k], r1[k] + 1)
+            if c > max_points:
+                rr = rr[np.linspace(0, c - 1, max_points).round().astype(int)]
+            rows_l.append(rr)
+        sizes = np.array([r.size for r in rows_l])
+        rows = np.concatenate(rows_l)
+    else:
+        sizes = cnt
+        rows = np.repeat(r0[ks] - np.cumsum(cnt) + cnt, cnt) + np.arange(int(cnt.sum()))
+    seg_id = np.repeat(ks, sizes)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        gs = (b1 - b0) / (a1 - a0)
+    a0v, b0v, gv = a0[seg_id], b0[seg_id], gs[seg_id]
     alx = np.asarray(along_x, bool)[seg_id]
     pred = b0v + (rows - a0v) * gv
     centre = np.round(pred).astype(int)
@@ -453,8 +461,8 @@ def refine_segments(
 def _refine_once(segs, values, axes, *, families, along_x, halfwidth_px, max_points, shapes, edges, end_trim,
                  bounds=None):
     hw = int(halfwidth_px)
-    out = [RefinedLine(line=segment_to_line(s, axes, family=f), step_height=float("nan"), refined=False, shape="none",
-                       along_x=bool(a)) for s, f, a in zip(segs, families, along_x)]
+    out = [RefinedLine(line=ln, step_height=float("nan"), refined=False, shape="none", along_x=bool(a))
+           for ln, a in zip(_segments_to_lines(segs, axes, families), along_x)]
     extra: list[RefinedLine] = []
     trims = [max(2.0, end_trim * s.length_px) for s in segs]
     ext = _all_profiles(values, segs, along_x, hw, max_points, trims, edges, bounds)
