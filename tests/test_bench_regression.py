@@ -46,7 +46,8 @@ def _id(case):
 KNOWN_OUT_OF_BOUNDS = {
     1: "off-diagonal Cdg error ≈ 2.2 % > 2 % on 3–4 px broad lines (the lattice fit of δ)",
     3: "1/f row offsets with weak dot2 steps: dot2 family taken from the wrong lines (error ≈ 0.32)",
-    4: "SNR 3 with broad lines: the edge map misses most dot2 lines: no virtual-gate result",
+    4: "SNR 3 with broad lines: the scale-selected edge map finds the dot2 lines, but slopes of single "
+    "15–25 px segments are 10–60 % off (dot2 family ≈ 30 %): no two dot1 lines bound a band, no virtual-gate result",
 }
 
 

@@ -193,3 +193,75 @@ def test_plot_draws_families_with_legend(tmp_path):
     assert any(l.startswith("dot1") for l in labels) and any(l.startswith("dot2") for l in labels)
     ax.figure.savefig(tmp_path / "lines.png")
     plt.close(ax.figure)
+
+
+# ---------------------------------------------------------------- scale selection
+def _erf_steps(s_px, *, snr, rng, shape=(128, 128)):
+    """Two parallel error-function steps (height 1) whose derivative profile is a Gaussian of σ ``s_px``."""
+    from scipy.special import erf
+
+    yy, xx = np.mgrid[0 : shape[0], 0 : shape[1]].astype(float)
+    norm = np.hypot(1.0, 0.3)
+    v = sum(0.5 * (1 + erf((xx - 0.3 * yy - c) / norm / (np.sqrt(2) * s_px))) for c in (40.0, 90.0))
+    v = v + np.random.default_rng(rng).normal(0.0, 1.0 / snr, shape)
+    return make_map(v, np.linspace(0, 0.128, shape[1]), np.linspace(0, 0.128, shape[0]), x_gate="PA", y_gate="PB")
+
+
+@pytest.mark.regression
+@pytest.mark.parametrize("s_px", [1.0, 2.0, 3.0])
+def test_edge_scale_measures_the_width_of_error_function_steps(s_px):
+    from stabtool.lines.edges import edge_scale
+
+    # d/dx ½(1 + erf(x/(√2 s))) is a Gaussian of σ s (from memory)
+    clean = edge_scale(_erf_steps(s_px, snr=1e6, rng=0))
+    assert clean.width_px == pytest.approx(s_px, rel=0.08)
+    assert clean.n_pixels >= 100
+    # SNR 3 (step / noise σ): one map scatters by 10–20 % (more for broader steps, measured
+    # 0.70–1.16 px at s = 1, 2.5–4.3 px at s = 3); the median of eight maps stays within 20 %
+    noisy = [edge_scale(_erf_steps(s_px, snr=3.0, rng=seed)).width_px for seed in range(8)]
+    assert np.median(noisy) == pytest.approx(s_px, rel=0.2)
+
+
+@pytest.mark.regression
+def test_edge_scale_reads_sharp_steps_as_narrow_and_keeps_the_base_scale():
+    from stabtool.lines.edges import edge_scale
+
+    sc = edge_scale(_erf_steps(0.3, snr=3.0, rng=5))
+    assert sc.width_px < 0.6
+    assert sc.sigma_px == 1.5
+
+
+def test_edge_scale_on_pure_noise_has_no_width_and_no_edges_at_large_scales():
+    from stabtool.lines.edges import edge_map, edge_scale
+
+    v = np.random.default_rng(6).normal(0.0, 1.0, (128, 128))
+    da = make_map(v, np.linspace(0, 0.1, 128), np.linspace(0, 0.1, 128), x_gate="PA", y_gate="PB")
+    sc = edge_scale(da)
+    assert np.isnan(sc.width_px) and sc.sigma_px == 1.5
+    # thresholds follow the noise of the same smoothed derivative: no false edges at σ = 4 px either
+    assert edge_map(da, sigma_px=4.0).n_edges == 0
+    with pytest.raises(InputError):
+        edge_scale(da, max_sigma_px=-1.0)
+
+
+@pytest.mark.regression
+def test_scale_selection_leaves_sharp_line_maps_unchanged():
+    da, _ = render("kestrel", shape=(128, 128), snr=3, rng=0)
+    a, b = LineDetector()(da), LineDetector(scale_selection=False)(da)
+    for fam in ("dot1", "dot2"):
+        assert [ln.slope for ln in a.family(fam).lines] == [ln.slope for ln in b.family(fam).lines]
+
+
+@pytest.mark.regression
+def test_broad_lines_at_low_snr_are_found_at_the_selected_scale():
+    # occupation blurred by 2 px and noise σ twice the per-pixel step: a step-height SNR of ≈ 3
+    counts = {True: [], False: []}
+    for seed in (0, 1):
+        da, truth = render("kestrel", shape=(128, 128), snr=0.5, rng=seed, blur_px=2.0)
+        for sel in (True, False):
+            res = LineDetector(scale_selection=sel)(da)
+            counts[sel].append(min(len(res.family("dot1")), len(res.family("dot2"))))
+            if rel_errors(res, truth).max() > 0.02:
+                assert not res.quality.ok
+    assert min(counts[True]) >= 2  # both families found on every map
+    assert min(counts[False]) < 2  # the base scale alone misses a family

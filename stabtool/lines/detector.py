@@ -14,7 +14,7 @@ from ..preprocess.noise import MAX_NOISE_SAMPLES, _noise_core
 from ..quality import Quality
 from ._geometry import steps
 from ._merge import drop_duplicates, merge_collinear
-from .edges import DEFAULT_HIGH_SIGMAS, DEFAULT_LOW_SIGMAS, _edge_core
+from .edges import DEFAULT_HIGH_SIGMAS, DEFAULT_LOW_SIGMAS, EdgeScale, _edge_core, _select_scale
 from ._family import family_fit
 from .families import classify_lines, pixel_angle_deg
 from .hough import _segments_core, segment_to_line
@@ -53,6 +53,14 @@ class LineDetector:
     min_snr : float
         Lines with a median step height below ``min_snr`` noise σ make the
         verdict doubtful.
+    scale_selection : bool
+        Measure the width of the map's edges and smooth the edge map at a
+        scale matched to it (at least ``sigma_px``, at most ``max_sigma_px``;
+        :func:`stabtool.lines.edges.edge_scale`); segments on broad lines
+        whose profiles fail on the map are fitted again on a lightly
+        smoothed copy.
+    max_sigma_px : float
+        Largest Gaussian σ the scale selection may choose, pixels.
 
     Examples
     --------
@@ -72,11 +80,13 @@ class LineDetector:
     max_profiles: int = 80
     detect_jumps: bool = True
     min_snr: float = 3.0
+    scale_selection: bool = True
+    max_sigma_px: float = 4.0
 
     def __post_init__(self) -> None:
         for f in fields(self):
             v = getattr(self, f.name)
-            if f.name == "detect_jumps":
+            if f.name in ("detect_jumps", "scale_selection"):
                 if not isinstance(v, bool):
                     raise InputError(f.name, f"must be True or False, got {v!r}")
                 continue
@@ -94,6 +104,74 @@ class LineDetector:
         axes = check_map(da)
         values = np.asarray(da.values, dtype=np.float64)
         return _detect_core(values, axes, self)
+
+
+#: Edge width (px, derivative-profile σ) from which segments whose profiles fail are fitted
+#: again on a smoothed copy of the map.
+RESCUE_MIN_WIDTH_PX = 1.0
+#: Gaussian σ of that copy as a fraction of the edge width (the profile widens by √(1 + f²)).
+RESCUE_SMOOTHING = 0.5
+
+
+def _select_edges(work: np.ndarray, noise: float, cfg: LineDetector) -> tuple[np.ndarray, EdgeScale]:
+    """Edge map at the scale selected from the width of the map's edges."""
+    edges, scale = _select_scale(work, noise, sigma_px=cfg.sigma_px, max_sigma_px=cfg.max_sigma_px,
+                                 low=cfg.low_sigmas, high=cfg.high_sigmas)
+    return edges, scale
+
+
+def _rescue_broad(refined, segs, work, axes, names, along, edges, width_px: float, cfg: LineDetector):
+    """Fit the segments whose profiles failed again, on a map smoothed by ``RESCUE_SMOOTHING·width``.
+
+    On broad lines at low SNR a single profile across the line holds too
+    little signal for a significant step; a Gaussian smoothing narrower than
+    the line itself lowers the noise of each sample by ≈ ``1/(2√π σ_r)``
+    while it keeps the line's centre (a symmetric kernel on a straight line)
+    and widens the profile by only ``√(1 + RESCUE_SMOOTHING²)``. The smoothed
+    noise is correlated over ≈ ``2√π σ_r`` profiles along the line, so the
+    standard errors (and crossing-point errors) of the rescued lines are
+    scaled up by the square root of that (effective number of independent
+    profiles), the bending χ² down by it, and the fitted width is corrected
+    for the kernel's variance (Fermi width variance π²w²/3).
+    """
+    bad = [k for k, r in enumerate(refined[: len(segs)]) if not r.refined]
+    if not bad:
+        return refined
+    sr = RESCUE_SMOOTHING * width_px
+    smooth = _smoothed(work, sr)
+    again = refine_segments(segs, smooth, axes, families=names, along_x=along,
+                            halfwidth_px=int(cfg.profile_halfwidth_px), max_points=int(cfg.max_profiles), edges=edges)
+    inflate = float(np.sqrt(max(1.0, 2.0 * np.sqrt(np.pi) * sr)))
+    out = list(refined)
+    dx, dy = steps(axes)
+    for k in bad:
+        r = again[k]
+        if not r.refined:
+            continue
+        ln = r.line
+        step = abs(dx) if r.along_x else abs(dy)
+        w_px = ln.width_V / step if np.isfinite(ln.width_V) else np.nan
+        w_corr = np.sqrt(max(w_px**2 - 3.0 * sr**2 / np.pi**2, 0.25 * w_px**2)) * step if np.isfinite(w_px) else ln.width_V
+        ln = replace(ln, slope_stderr=ln.slope_stderr * inflate, position_stderr=ln.position_stderr * inflate,
+                     width_V=float(w_corr), width_stderr_V=ln.width_stderr_V * inflate,
+                     bend_chi2=ln.bend_chi2 / inflate**2)
+        pts = None if r.points is None else (r.points[0], r.points[1], r.points[2] * inflate)
+        out[k] = replace(r, line=ln, points=pts)
+    return out
+
+
+def _smoothed(values: np.ndarray, sigma_px: float) -> np.ndarray:
+    """Gaussian-smoothed copy of ``values`` (NaN-aware: gaps stay NaN)."""
+    from scipy import ndimage as ndi
+
+    from ..preprocess._nan import fill_nan
+
+    finite = np.isfinite(values)
+    img = values if finite.all() else fill_nan(values)
+    sm = ndi.gaussian_filter(img, sigma_px, mode="nearest")
+    if not finite.all():
+        sm[~finite] = np.nan
+    return sm
 
 
 def _detect_core(values: np.ndarray, axes, cfg: LineDetector) -> LineDetection:
@@ -128,8 +206,12 @@ def _detect_core(values: np.ndarray, axes, cfg: LineDetector) -> LineDetection:
         quality = quality.with_warning(
             f"{len(jumps)} charge jump(s) at row(s) {', '.join(str(j.row) for j in jumps)}: "
             "the rows at each jump were excluded and the pieces analysed separately", doubtful=False)
-    # edges and segments
-    edges, *_ = _edge_core(work, cfg.sigma_px, noise, cfg.low_sigmas, cfg.high_sigmas)
+    # edges and segments, at a scale matched to the width of the lines
+    if cfg.scale_selection:
+        edges, scale = _select_edges(work, noise, cfg)
+    else:
+        edges, *_ = _edge_core(work, cfg.sigma_px, noise, cfg.low_sigmas, cfg.high_sigmas)
+        scale = None
     segs = _segments_core(edges, min_length_px=cfg.min_length_px, max_gap_px=cfg.max_gap_px,
                           tolerance_px=cfg.tolerance_px, angle_step_deg=cfg.angle_step_deg, max_lines=400)
     segs = merge_collinear(segs)
@@ -146,6 +228,10 @@ def _detect_core(values: np.ndarray, axes, cfg: LineDetector) -> LineDetection:
     refined: list[RefinedLine] = refine_segments(segs, work, axes, families=names, along_x=along,
                                                  halfwidth_px=int(cfg.profile_halfwidth_px),
                                                  max_points=int(cfg.max_profiles), edges=edges)
+    if (scale is not None and scale.sigma_px > cfg.sigma_px and np.isfinite(scale.width_px)
+            and scale.width_px >= RESCUE_MIN_WIDTH_PX):
+        # broad lines whose edges needed a larger scale: rescue the segments whose profiles fail
+        refined = _rescue_broad(refined, segs, work, axes, names, along, edges, scale.width_px, cfg)
     # second pass: classify again with the refined slopes
     # weak lines among strong ones are sensor texture, not transitions: a dot
     # line whose fitted step is below a quarter of the median one is dropped

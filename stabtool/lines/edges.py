@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from functools import lru_cache
 
 import numpy as np
@@ -15,7 +15,7 @@ from ..preprocess._checks import check_map
 from ..preprocess._nan import fill_nan
 from ..preprocess.noise import MAX_NOISE_SAMPLES, _noise_core, _noise_from_diffs
 
-__all__ = ["EdgeMap", "edge_map", "DEFAULT_LOW_SIGMAS", "DEFAULT_HIGH_SIGMAS"]
+__all__ = ["EdgeMap", "EdgeScale", "edge_map", "edge_scale", "DEFAULT_LOW_SIGMAS", "DEFAULT_HIGH_SIGMAS"]
 
 #: Hysteresis thresholds in units of the noise σ of one Sobel gradient component.
 DEFAULT_LOW_SIGMAS = 2.5
@@ -59,6 +59,74 @@ class EdgeMap:
         return int(self.edges.sum())
 
 
+#: Variance (px²) the central difference of the Sobel operator adds across an edge (a
+#: two-pixel box, 2²/12).
+SOBEL_VARIANCE_PX2 = 1.0 / 3.0
+#: Fewest strong edge pixels for a width estimate.
+MIN_WIDTH_PIXELS = 30
+
+
+@dataclass(frozen=True)
+class EdgeScale:
+    """Measured width of a map's edges and the smoothing scale chosen from it.
+
+    Attributes
+    ----------
+    width_px : float
+        Standard deviation of the edges' derivative profile across the line,
+        pixels (a Fermi step of width ``w`` has ``π w/√3 ≈ 1.81 w``); 0 for
+        edges sharper than the measurement resolves, NaN when too few strong
+        edge pixels were found.
+    sigma_px : float
+        Gaussian σ chosen for the edge map, pixels.
+    ratio : float
+        Measured ratio of the mean squared gradient at the small and the
+        large probe scale on the strong edges (noise power subtracted).
+    n_pixels : int
+        Strong edge pixels the ratio was measured on.
+    probe_sigmas_px : tuple of float
+        The two probe scales.
+    base_snr : float
+        Median gradient magnitude of those pixels at the small probe scale,
+        in noise σ of one gradient component.
+    """
+
+    width_px: float
+    sigma_px: float
+    ratio: float
+    n_pixels: int
+    probe_sigmas_px: tuple[float, float]
+    base_snr: float = float("nan")
+
+
+def _edge_width_core(grad_a, sigma_a: float, grad_b, sigma_b: float, edges_b: np.ndarray,
+                     strong: float) -> tuple[float, float, int, float]:
+    """Edge width (px) from the gradients at two scales on the strong edges of the larger one.
+
+    ``grad_*`` = ``(gx, gy, sx, sy)`` of :func:`_edge_core` (noise units and
+    noise σ). Returns ``(width_px, ratio, n_pixels, base_snr)``, ``base_snr``
+    the median gradient magnitude on those pixels at the small scale, in
+    noise σ of a gradient component (noise power subtracted).
+    """
+    gxa, gya, sxa, sya = grad_a
+    gxb, gyb, sxb, syb = grad_b
+    sel = edges_b & (gxb * gxb + gyb * gyb > strong * strong)
+    n = int(sel.sum())
+    if n < MIN_WIDTH_PIXELS:
+        return float("nan"), float("nan"), n, float("nan")
+    base_snr = float(np.sqrt(max(float(np.median(gxa[sel] ** 2 + gya[sel] ** 2)) - 2.0, 0.0)))
+    # squared gradient magnitude in signal units minus its noise power (both components)
+    pa = float(((gxa[sel] * sxa) ** 2 + (gya[sel] * sya) ** 2).mean() - (sxa * sxa + sya * sya))
+    pb = float(((gxb[sel] * sxb) ** 2 + (gyb[sel] * syb) ** 2).mean() - (sxb * sxb + syb * syb))
+    if not (pa > 0 and pb > 0):
+        return float("nan"), float("nan"), n, base_snr
+    q = pa / pb
+    va, vb = sigma_a**2 + SOBEL_VARIANCE_PX2, sigma_b**2 + SOBEL_VARIANCE_PX2
+    if q <= 1.0:
+        return float("inf"), q, n, base_snr
+    return float(np.sqrt(max((vb - q * va) / (q - 1.0), 0.0))), q, n, base_snr
+
+
 @lru_cache(maxsize=32)
 def gradient_noise_gain(sigma_px: float) -> float:
     """L2 norm of the Gaussian-then-Sobel kernel: σ_gradient / σ_white."""
@@ -67,6 +135,39 @@ def gradient_noise_gain(sigma_px: float) -> float:
     d[n, n] = 1.0
     k = ndi.sobel(ndi.gaussian_filter(d, sigma_px), axis=1)
     return float(np.sqrt((k**2).sum()))
+
+
+#: From this Gaussian σ (px) on, the thresholds follow the larger filtered noise next to the
+#: borders. Below it the excess (≤ 1.5× within 2 px of the border) gave no false edge on
+#: 8 pure-noise maps of 128² at σ = 1.5 px, while at 2.5–4 px it gave 6–87 edge pixels per map;
+#: the default scale is left exactly as it was.
+BORDER_GAIN_MIN_SIGMA_PX = 2.0
+
+
+@lru_cache(maxsize=64)
+def _border_gain_1d(n: int, sigma_px: float, derivative: bool) -> np.ndarray:
+    """Noise std of the 1-D Gaussian-then-Sobel factor at each of ``n`` pixels, relative to the interior.
+
+    The filters replicate the edge pixel (``mode="nearest"``), so near a
+    border one noise sample enters several taps and the filtered noise is
+    larger than inside (by up to ~2× for the smoothing factor): from the
+    squared effective weights of each output pixel, computed on unit
+    impulses. Pixels farther than the kernel radius from both ends get 1.
+    """
+    r = int(np.ceil(4 * sigma_px)) + 2
+    m = n if n <= 3 * r else 3 * r
+    eye = np.eye(m)
+    a = ndi.gaussian_filter1d(eye, sigma_px, axis=0, mode="nearest")
+    k = np.array([-1.0, 0.0, 1.0]) if derivative else np.array([1.0, 2.0, 1.0])
+    a = ndi.correlate1d(a, k, axis=0, mode="nearest")
+    v = np.sqrt((a * a).sum(axis=1))
+    if m == n:
+        return v / v[n // 2]
+    out = np.ones(n)
+    inner = v[m // 2]
+    out[:r] = v[:r] / inner
+    out[n - r:] = v[::-1][:r][::-1] / inner
+    return out
 
 
 def _block_median(a: np.ndarray, block: int) -> np.ndarray:
@@ -135,7 +236,13 @@ def _hysteresis(ci: np.ndarray, mc: np.ndarray, low: float, high: float, shape: 
 
 
 def _edge_core(values: np.ndarray, sigma_px: float, noise: float, low: float, high: float,
-               contrast_floor: float = 0.2):
+               contrast_floor: float = 0.2, *, with_gradient: bool = False):
+    """Edge map of ``values`` at one scale (see :func:`edge_map`).
+
+    Returns ``(edges, gradient_noise, low, high, valid)``; with
+    ``with_gradient`` also ``(gx, gy, sx, sy)``: the smoothed gradient
+    components in noise units and their noise σ (signal units per pixel).
+    """
     valid = np.isfinite(values)
     img = values if valid.all() else fill_nan(values)
     sm = ndi.gaussian_filter(img, sigma_px, mode="nearest")
@@ -169,6 +276,12 @@ def _edge_core(values: np.ndarray, sigma_px: float, noise: float, low: float, hi
     # superset) picks the candidates, the magnitude itself decides
     gx /= sx
     gy /= sy
+    if sigma_px >= BORDER_GAIN_MIN_SIGMA_PX:
+        # near the borders the replicated edge pixels make the filtered noise larger: the
+        # thresholds follow it (separable: derivative factor along the axis, smoothing across)
+        ny_, nx_ = gx.shape
+        gx /= np.outer(_border_gain_1d(ny_, float(sigma_px), False), _border_gain_1d(nx_, float(sigma_px), True))
+        gy /= np.outer(_border_gain_1d(ny_, float(sigma_px), True), _border_gain_1d(nx_, float(sigma_px), False))
     g2 = np.multiply(gx, gx)
     g2 += np.multiply(gy, gy)
     cand = g2 > low * low * (1 - 1e-9)
@@ -198,7 +311,10 @@ def _edge_core(values: np.ndarray, sigma_px: float, noise: float, low: float, hi
         high = max(high, contrast_floor * ref)
         low = max(low, 0.5 * contrast_floor * ref)
     edges = _hysteresis(ci, mc, low, high, gx.shape)
-    return edges, float(np.hypot(sx, sy) / np.sqrt(2)), low, high, valid
+    out = (edges, float(np.hypot(sx, sy) / np.sqrt(2)), low, high, valid)
+    if with_gradient:
+        return out + ((gx, gy, sx, sy),)
+    return out
 
 
 def edge_map(
@@ -259,3 +375,125 @@ def edge_map(
     edges, g, lo, hi, valid = _edge_core(values, float(sigma_px), nz, low_sigmas, high_sigmas)
     return EdgeMap(edges=edges, axes=axes, noise=nz, gradient_noise=g, low_threshold=lo,
                    high_threshold=hi, sigma_px=float(sigma_px), valid=valid)
+
+
+#: Selected σ per unit of measured edge width (see :func:`edge_scale`).
+SCALE_PER_WIDTH = 2.5
+#: The larger probe scale, as a multiple of the base σ.
+PROBE_FACTOR = 2.0
+#: Most pixels the larger probe scale is computed on (a central window of a larger map).
+PROBE_MAX_PIXELS = 128 * 128
+
+
+def _select_scale(values: np.ndarray, noise: float, *, sigma_px: float, max_sigma_px: float, low: float,
+                  high: float) -> tuple[np.ndarray, EdgeScale]:
+    """Edge map at the selected scale and the :class:`EdgeScale` (core of :func:`edge_scale`)."""
+    sa, sb = float(sigma_px), PROBE_FACTOR * float(sigma_px)
+    ra = _edge_core(values, sa, noise, low, high, with_gradient=True)
+    # the width is a property of the lines, not of every pixel: on a large map the
+    # larger probe scale runs on a central window of at most PROBE_MAX_PIXELS
+    ny, nx = values.shape
+    f = min(1.0, float(np.sqrt(PROBE_MAX_PIXELS / (ny * nx))))
+    wy, wx = min(ny, int(np.ceil(ny * f))), min(nx, int(np.ceil(nx * f)))
+    y0, x0 = (ny - wy) // 2, (nx - wx) // 2
+    win = (slice(y0, y0 + wy), slice(x0, x0 + wx))
+    rb = _edge_core(values[win], sb, noise, low, high, with_gradient=True)
+    edges_b = rb[0]
+    if f < 1.0:
+        # away from the window's border (its smoothing sees a replicated edge there)
+        m = int(np.ceil(3 * sb))
+        inner = np.zeros_like(edges_b)
+        inner[m:-m or None, m:-m or None] = True
+        edges_b = edges_b & inner
+    gxa, gya, sxa, sya = ra[5]
+    grad_a = (gxa[win], gya[win], sxa, sya)
+    width, q, n, base_snr = _edge_width_core(grad_a, sa, rb[5], sb, edges_b, high)
+    sel = sa
+    if (np.isfinite(width) or width == np.inf) and base_snr < high:
+        sel = float(min(max(sa, SCALE_PER_WIDTH * width), max(sa, max_sigma_px)))
+    scale = EdgeScale(width_px=width, sigma_px=sel, ratio=q, n_pixels=n, probe_sigmas_px=(sa, sb),
+                      base_snr=base_snr)
+    if sel <= sa + 0.1:
+        return ra[0], replace(scale, sigma_px=sa)
+    if abs(sel - sb) <= 0.1 and f == 1.0:
+        return rb[0], replace(scale, sigma_px=sb)
+    return _edge_core(values, sel, noise, low, high)[0], scale
+
+
+def edge_scale(
+    da: xr.DataArray,
+    *,
+    sigma_px: float = 1.5,
+    max_sigma_px: float = 4.0,
+    low_sigmas: float = DEFAULT_LOW_SIGMAS,
+    high_sigmas: float = DEFAULT_HIGH_SIGMAS,
+    noise: float | None = None,
+) -> EdgeScale:
+    """Measure the width of a map's edges and select the edge-map scale from it.
+
+    Parameters
+    ----------
+    da : xarray.DataArray, shape (ny, nx)
+        A pre-processed map (background and row offsets removed). NaN allowed.
+    sigma_px : float
+        Base Gaussian σ of the edge map, pixels; the scale never goes below it.
+    max_sigma_px : float
+        Largest σ that may be selected, pixels.
+    low_sigmas, high_sigmas : float
+        Hysteresis thresholds (noise σ of a gradient component), as in
+        :func:`edge_map`; the thresholds at every scale come from the noise
+        of the same smoothed derivative, so the false-edge rate stays the same.
+    noise : float, optional
+        White-noise σ of the map; default a robust MAD estimate.
+
+    Returns
+    -------
+    EdgeScale
+
+    Notes
+    -----
+    The edge map is computed at the base scale σ_a and at σ_b = 2 σ_a. On
+    the strong edges of the σ_b map the mean squared gradient magnitude is
+    measured at both scales, the noise power of each smoothed derivative
+    subtracted. For a step whose derivative profile across the line is a
+    Gaussian of σ ``s`` (an error-function step), the gradient peak at scale
+    σ is ``h / √(2π (σ² + δ + s²))`` (δ = 1/3 px², the Sobel central
+    difference), so the ratio ``Q`` of the two squared responses gives
+    ``s² = (σ_b² + δ − Q (σ_a² + δ)) / (Q − 1)``. This is the parametric form
+    of T. Lindeberg's scale selection for edges (γ-normalised derivatives with
+    γ = ½, whose response peaks at σ = s; "Edge detection and ridge detection
+    with automatic scale selection", Int. J. Comput. Vis. 30, 117 (1998),
+    doi:10.1023/A:1008097225773), from two scales instead of a scale space.
+
+    A larger scale is selected only when the base scale is not enough: when
+    the median strong edge is below ``high_sigmas`` at σ_a (a broad line at
+    low SNR). The noise-normalised response of a step keeps growing with σ
+    (∝ σ²/√(σ² + s²)), so the selected σ = ``SCALE_PER_WIDTH``·s (2.5 s,
+    between ``sigma_px`` and ``max_sigma_px``) is set by how far the lines
+    may be blurred (triple points, neighbouring lines), not by the edge
+    itself; the factor is loosely set (on the benchmark's 16 SNR-3 maps of
+    112² with 3–4 px broad lines, maps with a virtual-gate result, all of
+    them still beyond the 0.02 bound and reported doubtful: 1 at 2 s, 2 at
+    2.5 s, 3 at 3 s, 2 at 4 s; 0 at the base scale). Sharp lines (s → 0)
+    and maps whose edges are clear at σ_a keep σ_a. On a map larger than
+    ``PROBE_MAX_PIXELS`` the σ_b probe runs on a central window (speed).
+    The width reads about 0.65 of
+    the Fermi profile's σ (π w/√3) on honeycomb maps (short segments and
+    rounded triple points lower the large-scale response); on isolated
+    error-function steps it is within ~10 %.
+    """
+    axes = check_map(da)
+    del axes
+    values = np.asarray(da.values, dtype=np.float64)
+    if not (np.isfinite(sigma_px) and sigma_px > 0):
+        raise InputError("sigma_px", f"must be a positive number of pixels, got {sigma_px!r}")
+    if not (np.isfinite(max_sigma_px) and max_sigma_px > 0):
+        raise InputError("max_sigma_px", f"must be a positive number of pixels, got {max_sigma_px!r}")
+    if not (0 < low_sigmas <= high_sigmas):
+        raise InputError("low_sigmas", f"need 0 < low_sigmas <= high_sigmas, got {low_sigmas!r}, {high_sigmas!r}")
+    nz = _noise_core(values) if noise is None else float(noise)
+    if not (np.isfinite(nz) and nz > 0):
+        raise InputError(da.attrs.get("source", "da"), "cannot estimate a noise level; pass noise=")
+    _, scale = _select_scale(values, nz, sigma_px=float(sigma_px), max_sigma_px=float(max_sigma_px),
+                             low=low_sigmas, high=high_sigmas)
+    return scale
