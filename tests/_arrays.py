@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from stabtool.arrays import PairMeasurement
+from stabtool.arrays import ArrayDescription, PairMeasurement
 from stabtool.physics.ci import lever_arm_matrix, virtual_gate_matrix
 from stabtool.physics.constants import E_AC
 from stabtool.simulate import Device, SensorModel, presets
@@ -127,3 +127,17 @@ def noisy_pairs(dev: Device, pairs: list[tuple[str, str]], *, sigma: float, rng:
             source=f"{x}-{y}",
         ))
     return out
+
+
+def array_description(dev: Device) -> ArrayDescription:
+    """The planning description of a generator array: plungers in a row, the sensor gate SG
+    above the middle, operating point at two electrons per dot, addition voltages E_C/α."""
+    names = list(dev.gate_names)
+    n = len(names) - 1
+    pos = {g: (float(k), 0.0) for k, g in enumerate(names[:-1])}
+    pos["SG"] = (n / 2 - 0.5, 0.8)
+    return ArrayDescription(
+        plungers=tuple(names[:-1]), sensors=("SG",),
+        operating_point_V=dict(zip(names, map(float, centre_voltages(dev, 2)))),
+        addition_voltage_V={g: float(dev.ec_eV[k, k] / dev.lever_arm[k, k]) for k, g in enumerate(names)},
+        positions=pos)

@@ -9,23 +9,11 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from _arrays import array_with_sensor, centre_voltages
+from _arrays import array_description, array_with_sensor
 
 from stabtool.arrays import ArrayDescription, plan_pair_maps, prior_couplings
 from stabtool.errors import InputError
 from stabtool.simulate.ground_state import ground_state
-
-
-def _desc(dev) -> ArrayDescription:
-    names = list(dev.gate_names)
-    n = len(names) - 1
-    pos = {g: (float(k), 0.0) for k, g in enumerate(names[:-1])}
-    pos["SG"] = (n / 2 - 0.5, 0.8)
-    return ArrayDescription(
-        plungers=tuple(names[:-1]), sensors=("SG",),
-        operating_point_V=dict(zip(names, map(float, centre_voltages(dev, 2)))),
-        addition_voltage_V={g: float(dev.ec_eV[k, k] / dev.lever_arm[k, k]) for k, g in enumerate(names)},
-        positions=pos)
 
 
 def _charges_over(dev, plan, k=21):
@@ -42,7 +30,7 @@ def _charges_over(dev, plan, k=21):
 
 def test_plan_covers_every_pair_and_holds_the_rest_at_the_operating_point() -> None:
     dev = array_with_sensor(4)
-    desc = _desc(dev)
+    desc = array_description(dev)
     plans = plan_pair_maps(desc)
     assert [p.name for p in plans] == ["P1-P2", "P1-P3", "P1-P4", "P2-P3", "P2-P4", "P3-P4",
                                        "P1-SG", "P2-SG", "P3-SG", "P4-SG"]
@@ -62,7 +50,7 @@ def test_swept_dots_cross_transitions_and_unflagged_maps_park_the_others(n: int)
     """Each swept dot changes charge in its map; where the plan gives no note, no other dot does."""
     dev = array_with_sensor(n)
     names = list(dev.gate_names)
-    for p in plan_pair_maps(_desc(dev)):
+    for p in plan_pair_maps(array_description(dev)):
         q = _charges_over(dev, p)
         i, j = names.index(p.x_gate), names.index(p.y_gate)
         assert np.ptp(q[..., i]) >= 1 and np.ptp(q[..., j]) >= 1, p.name
@@ -87,8 +75,8 @@ def test_plan_errors_name_the_missing_value() -> None:
 
 def test_both_orientations_plans_each_pair_twice_with_axes_swapped() -> None:
     dev = array_with_sensor(4)
-    one = plan_pair_maps(_desc(dev))
-    two = plan_pair_maps(_desc(dev), both_orientations=True)
+    one = plan_pair_maps(array_description(dev))
+    two = plan_pair_maps(array_description(dev), both_orientations=True)
     assert len(two) == 2 * len(one)
     swapped = {p.name: p for p in two[len(one):]}
     for p in one:

@@ -13,26 +13,14 @@ import warnings
 
 import numpy as np
 import pytest
-from _arrays import array_with_sensor, centre_voltages, sensor_model, truth_matrix
+from _arrays import array_description, array_with_sensor, sensor_model, truth_matrix
 
 from stabtool.analysis import Analyzer
-from stabtool.arrays import ArrayDescription, pair_from_analysis, pair_from_map, plan_pair_maps
+from stabtool.arrays import pair_from_analysis, pair_from_map, plan_pair_maps
 from stabtool.arrays.measurement import untilt_elements
 from stabtool.errors import InputError
 from stabtool.physics.ci import lever_arm_matrix
 from stabtool.simulate import Artefacts, simulate_map
-
-
-def _desc(dev) -> ArrayDescription:
-    names = list(dev.gate_names)
-    n = len(names) - 1
-    pos = {g: (float(k), 0.0) for k, g in enumerate(names[:-1])}
-    pos["SG"] = (n / 2 - 0.5, 0.8)
-    return ArrayDescription(
-        plungers=tuple(names[:-1]), sensors=("SG",),
-        operating_point_V=dict(zip(names, map(float, centre_voltages(dev, 2)))),
-        addition_voltage_V={g: float(dev.ec_eV[k, k] / dev.lever_arm[k, k]) for k, g in enumerate(names)},
-        positions=pos)
 
 
 def test_untilt_hand_computed_example() -> None:
@@ -108,8 +96,8 @@ def test_planned_lines_are_never_nearly_parallel_to_an_axis(n: int) -> None:
 
     dev = array_with_sensor(n)
     names = list(dev.gate_names)
-    assert smallest_angle(plan_pair_maps(_desc(dev))) >= 7.0
-    assert smallest_angle(plan_pair_maps(_desc(dev), tilt=0.0)) < (3.0 if n == 4 else 1.0)
+    assert smallest_angle(plan_pair_maps(array_description(dev))) >= 7.0
+    assert smallest_angle(plan_pair_maps(array_description(dev), tilt=0.0)) < (3.0 if n == 4 else 1.0)
 
 
 @pytest.mark.regression
@@ -118,7 +106,7 @@ def test_tilted_map_through_the_analysis_meets_the_bound() -> None:
     both elements within 0.005 of the truth and within 4 stated standard errors."""
     dev = array_with_sensor(4)
     names = list(dev.gate_names)
-    (p,) = plan_pair_maps(_desc(dev), pairs=[("P1", "P4")])
+    (p,) = plan_pair_maps(array_description(dev), pairs=[("P1", "P4")])
     assert p.tilted and p.x_axis == "P1_tilt_P4" and p.y_axis == "P4_tilt_P1"
     sm = simulate_map(dev, x_gate=p.x_axis, y_gate=p.y_axis, x_range_V=p.x_range_V, y_range_V=p.y_range_V,
                       x_direction=p.x_direction, y_direction=p.y_direction, fixed_V=p.fixed_V, shape=(100, 100),

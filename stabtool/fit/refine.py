@@ -339,6 +339,18 @@ class _Problem:
         return np.sum(prob * lin, axis=0) + self.quad @ coef[3 * ns:]
 
 
+def _forward_jacobian(prob_: Any, theta: np.ndarray, coef: np.ndarray, states: Any,
+                      steps: np.ndarray) -> np.ndarray:
+    """Forward-difference Jacobian of the model at fixed linear coefficients, one step per parameter."""
+    pred0 = prob_.predict_fixed(theta, coef, states)
+    jac = np.empty((pred0.size, theta.size))
+    for k in range(theta.size):
+        tp = theta.copy()
+        tp[k] += steps[k]
+        jac[:, k] = (prob_.predict_fixed(tp, coef, states) - pred0) / steps[k]
+    return jac
+
+
 def refine_model(
     da: xr.DataArray,
     fit: DiagramFit,
@@ -446,13 +458,8 @@ def refine_model(
         cost = float(res @ res)
         jac = None
         for it in range(1, max_iter + 1):
-            pred0 = prob_.predict_fixed(theta, coef, states)
-            jac = np.empty((pz.size, 9))
-            for k in range(9):
-                h = 1e-2 * scale[k] if k != 8 else 1e-3 * theta[8]
-                tp = theta.copy()
-                tp[k] += h
-                jac[:, k] = (prob_.predict_fixed(tp, coef, states) - pred0) / h
+            steps = np.append(1e-2 * scale[:8], 1e-3 * theta[8])
+            jac = _forward_jacobian(prob_, theta, coef, states, steps)
             # Kaufman's variable-projection Jacobian: the linear coefficients follow the step
             jac = jac - a @ np.linalg.solve(ata, np.asarray(a.T @ jac))
             js = jac * scale
@@ -489,13 +496,7 @@ def refine_model(
         return failed(f"model fit to the map failed: {exc}")
 
     # ------------------------------------------------------------- covariance
-    pred0 = prob_.predict_fixed(theta, coef, states)
-    jac = np.empty((pz.size, 9))
-    for k in range(9):
-        h = 1e-4 * scale[k] if k != 8 else 1e-4 * theta[8]
-        tp = theta.copy()
-        tp[k] += h
-        jac[:, k] = (prob_.predict_fixed(tp, coef, states) - pred0) / h
+    jac = _forward_jacobian(prob_, theta, coef, states, 1e-4 * np.append(scale[:8], theta[8]))
     # variable projection: remove the part of J the linear coefficients can absorb
     jp = jac - a @ np.linalg.solve(ata, np.asarray(a.T @ jac))
     n_lin = a.shape[1]
