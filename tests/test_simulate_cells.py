@@ -153,3 +153,30 @@ def test_thermal_block_mask_keeps_every_pixel_that_needs_averaging(preset, T):
     full = occupations(n0, dev.ec_eV, ground, kT_eV=kT).mean
     fast = occupations(n0, dev.ec_eV, ground, kT_eV=kT, near=mask).mean
     np.testing.assert_allclose(fast, full, rtol=0, atol=1e-12)
+
+
+def test_candidate_box_lists_every_state_in_lexicographic_order():
+    # reference: itertools.product enumerates a box in lexicographic order
+    import itertools
+
+    from stabtool.simulate.cells import _box
+
+    corner = np.array([[0, 2, 1, 3], [1, 0, 3, 3], [2, 2, 1, 3], [0, 1, 2, 3]])
+    expected = np.array(list(itertools.product(range(3), range(3), range(1, 4), range(3, 4))))
+    np.testing.assert_array_equal(_box(corner), expected)
+    assert _box(np.array([[0] * 8, [5] * 8])) is None  # 6⁸ states: too many for one hull
+
+
+def test_hull_facets_are_those_of_scipy_convex_hull():
+    # reference: scipy.spatial.ConvexHull (Qhull, triangulated output)
+    from scipy.spatial import ConvexHull
+
+    from stabtool.simulate.cells import _hull
+
+    pts = np.random.default_rng(7).normal(size=(200, 3))
+    simp, eq = _hull(pts)
+    ref = ConvexHull(pts, qhull_options="Qt")
+    np.testing.assert_array_equal(np.sort(simp, axis=1), np.sort(ref.simplices, axis=1))
+    np.testing.assert_allclose(eq, ref.equations, rtol=0, atol=1e-12)
+    # every point lies inside or on every facet plane: n·p + d ≤ 0
+    assert np.all(pts @ eq[:, :3].T + eq[:, 3] <= 1e-12)

@@ -18,8 +18,9 @@ without visiting the pixels:
    states on a 9 × 9 grid of the window);
 2. envelope: the halfspaces ``z ≤ U_N(u, w)``, the window edges and a floor
    bound a 3-D convex polytope whose upper facets are the cells. It is
-   computed as the convex hull of the polar-dual points (Qhull through
-   ``scipy.spatial.ConvexHull``; Barber et al. 1996): each hull facet is a
+   computed as the convex hull of the polar-dual points (Qhull, the run of
+   ``scipy.spatial.ConvexHull`` without its area/volume pass, :func:`_hull`;
+   Barber et al. 1996): each hull facet is a
    vertex of the polytope and names the planes that meet there. Candidates
    that own no cell are dropped (adding states only lowers the envelope);
 3. certificate: at every vertex of every cell, no Voronoi-relevant move
@@ -112,7 +113,6 @@ class _Setup:
     h: np.ndarray  # (K,): ½ vᵀE_C v
     need: np.ndarray  # (n,): N_i below this may leave N ≥ 0 with some v
     below: np.ndarray  # (n, max need + 1, K) bool: [i, t] = move k takes N_i = t below zero
-    rel16: np.ndarray  # (K, n) int16: the relevant vectors (small integers)
 
 
 @lru_cache(maxsize=32)
@@ -124,8 +124,7 @@ def _setup_cached(key: bytes, n: int) -> _Setup:
     need = np.maximum(-rel.min(axis=0), 0)
     t = np.arange(int(need.max()) + 1)
     below = rel.T[:, None, :] + t[None, :, None] < 0  # (n, t, K); False for t ≥ need_i
-    rel16 = np.clip(rel, -16000, 16000).astype(np.int16)  # entries are a few units at most
-    return _Setup(rel, ev, np.ascontiguousarray(ev.T), 0.5 * np.einsum("kj,kj->k", ev, relf), need, below, rel16)
+    return _Setup(rel, ev, np.ascontiguousarray(ev.T), 0.5 * np.einsum("kj,kj->k", ev, relf), need, below)
 
 
 def _setup(ec: np.ndarray) -> _Setup:
@@ -135,10 +134,12 @@ def _setup(ec: np.ndarray) -> _Setup:
 
 def _invalid_moves(states: np.ndarray, st: _Setup) -> np.ndarray | None:
     """(S, K) bool: move k would take state s below zero (None if no state is that low)."""
-    if not np.any(states < st.need):
+    low = states < st.need
+    if not low.any():
         return None
-    t = np.minimum(states, st.need)
-    return st.below[np.arange(states.shape[1]), t].any(axis=1)
+    cols = np.flatnonzero(low.any(axis=0))  # only these coordinates can go below zero
+    t = np.minimum(states[:, cols], st.need[cols])
+    return st.below[cols, t].any(axis=1)
 
 
 def _matmul(a: np.ndarray, b: np.ndarray) -> np.ndarray:
@@ -176,10 +177,8 @@ def _planes(states: np.ndarray, n0_00: np.ndarray, su: np.ndarray, sw: np.ndarra
     """``(c, a, b)`` of ``U_N = c − u·a − w·b`` for every state, shape (S, 3)."""
     sf = states.astype(float)
     es = sf @ ec
-    out = np.empty((states.shape[0], 3))
-    out[:, 0] = 0.5 * np.einsum("ki,ki->k", es, sf) - es @ n0_00
-    out[:, 1] = es @ su
-    out[:, 2] = es @ sw
+    out = es @ np.stack([-n0_00, su, sw], axis=1)
+    out[:, 0] += 0.5 * np.einsum("ki,ki->k", es, sf)
     return out
 
 
@@ -190,6 +189,37 @@ def _energy_at(planes: np.ndarray, uv: np.ndarray) -> np.ndarray:
     pts[1] = -uv[:, 0]
     pts[2] = -uv[:, 1]
     return _matmul(planes, pts)
+
+
+def _hull(points: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Triangulated convex hull of 3-D points: (simplices (F, 3), equations (F, 4)), one Qhull call.
+
+    The same Qhull run as ``scipy.spatial.ConvexHull(points, qhull_options="Qt")``
+    without the hull's area and volume (a further pass over the facets that
+    is not needed here); falls back to ``ConvexHull`` if SciPy's internal
+    interface differs.
+    """
+    from scipy.spatial import ConvexHull
+
+    points = np.ascontiguousarray(points, dtype=float)
+    try:
+        from scipy.spatial._qhull import _Qhull
+    except ImportError:
+        _Qhull = None
+    if _Qhull is not None:
+        try:
+            qh = _Qhull(b"i", points, b"Qt", required_options=b"Qt")
+        except TypeError:
+            pass
+        else:
+            try:
+                qh.triangulate()
+                simp, _, eq, _, _ = qh.get_simplex_facet_array()
+            finally:
+                qh.close()
+            return simp, eq
+    hull = ConvexHull(points, qhull_options="Qt")
+    return hull.simplices, hull.equations
 
 
 def _envelope(planes: np.ndarray, shape: tuple[int, int]) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
@@ -211,7 +241,7 @@ def _envelope(planes: np.ndarray, shape: tuple[int, int]) -> tuple[np.ndarray, n
     these points becomes the vertex ``x₀ − n/d`` where the facet's halfspaces
     meet (the construction behind Qhull's halfspace intersection).
     """
-    from scipy.spatial import ConvexHull, QhullError
+    from scipy.spatial import QhullError
 
     ny, nx = shape
     umax, wmax = float(nx - 1), float(ny - 1)
@@ -225,21 +255,20 @@ def _envelope(planes: np.ndarray, shape: tuple[int, int]) -> tuple[np.ndarray, n
     scale = float(np.abs(rows).max())
     if scale > 0:
         rows /= scale
-    cc = rows[:, 0]
-    amat = np.empty((m + 5, 3))
-    amat[:m, :2] = rows[:, 1:]
-    amat[:m, 2] = 1.0
-    amat[m:] = [[-1, 0, 0], [1, 0, 0], [0, -1, 0], [0, 1, 0], [0, 0, -1]]
-    low = float((cc - np.maximum(rows[:, 1], 0.0) - np.maximum(rows[:, 2], 0.0)).min()) - 1.0  # below every corner
-    x0 = np.array([0.5, 0.5, 0.5 * (float((cc - 0.5 * rows[:, 1] - 0.5 * rows[:, 2]).min()) + low)])  # inside
-    slack = np.concatenate([cc, [0.0, 1.0, 0.0, 1.0, -low]])
-    slack -= amat @ x0
+    cc, ra, rb = rows[:, 0], rows[:, 1], rows[:, 2]
+    low = float((cc - np.maximum(ra, 0.0) - np.maximum(rb, 0.0)).min()) - 1.0  # below every corner
+    mid = cc - 0.5 * (ra + rb)  # the planes at the window centre
+    x0 = np.array([0.5, 0.5, 0.5 * (float(mid.min()) + low)])  # inside
+    # the dual points Aᵢ / (gᵢ − Aᵢx₀): planes (a, b, 1), window edges (∓1, 0, 0), (0, ∓1, 0), floor (0, 0, −1)
+    inv = 1.0 / (mid - x0[2])
+    dual = np.empty((m + 5, 3))
+    np.multiply(rows[:, 1:], inv[:, None], out=dual[:m, :2])
+    dual[:m, 2] = inv
+    dual[m:] = [[-2.0, 0, 0], [2.0, 0, 0], [0, -2.0, 0], [0, 2.0, 0], [0, 0, -1.0 / (x0[2] - low)]]
     try:
-        hull = ConvexHull(amat / slack[:, None], qhull_options="Qt")
+        simp, eq = _hull(dual)
     except (QhullError, ValueError):
         return None
-    eq = hull.equations
-    simp = hull.simplices
     if np.any(eq[:, 3] >= 0):
         return None
     top = simp.max(axis=1) != m + 4  # not on the floor (the floor has the largest index)
@@ -263,11 +292,12 @@ def _box(corner: np.ndarray) -> np.ndarray | None:
     span = hi - lo + 1
     if float(np.prod(span.astype(float))) > _BOX_MAX:
         return None
-    idx = np.arange(int(np.prod(span)), dtype=np.int64)
-    out = np.empty((idx.size, corner.shape[1]), np.int64)
-    for i in range(corner.shape[1] - 1, -1, -1):
-        out[:, i] = lo[i] + idx % span[i]
-        idx //= span[i]
+    total = int(np.prod(span))
+    out = np.empty((total, corner.shape[1]), np.int64)
+    inner = total
+    for i, (a, k) in enumerate(zip(lo.tolist(), span.tolist())):
+        inner //= k  # states per step of coordinate i (the later coordinates run faster)
+        out.reshape(total // (inner * k), k, inner, -1)[:, :, :, i] = np.arange(a, a + k)[:, None]
     return out
 
 
@@ -310,24 +340,22 @@ def _certificate_failures(
         [st.evt, np.maximum(beta, 0)[None], np.minimum(beta, 0)[None], np.maximum(gamma, 0)[None],
          np.minimum(gamma, 0)[None], st.h[None]]
     )
-    ci, vi = np.divmod(np.flatnonzero(_matmul(lhs, rhs) < -_TOL), rhs.shape[1])
-    if ci.size == 0:
-        return np.zeros((0, states.shape[1]), np.int64)
-    ok = (np.minimum(states, 16000).astype(np.int16)[ci] + st.rel16[vi]).min(axis=1) >= 0  # N + v ≥ 0
-    ci, vi = ci[ok], vi[ok]
-    if ci.size == 0:
-        return np.zeros((0, states.shape[1]), np.int64)
+    flat = np.flatnonzero(_matmul(lhs, rhs) < -_TOL)
+    if flat.size == 0:
+        return np.zeros((0, nd), np.int64)
+    ci, vi = np.divmod(flat, rhs.shape[1])
     kmax = int(cnt.max())
     vidx = starts[:-1, None] + np.minimum(np.arange(kmax)[None, :], cnt[:, None] - 1)  # padded with the last vertex
-    pu, pw = pts[vidx[ci], 0], pts[vidx[ci], 1]
-    alpha = np.einsum("ij,ij->i", states[ci] - n0_00, st.ev[vi]) + st.h[vi]
+    alpha = (_matmul(lhs[:, :nd], st.evt) + st.h).ravel()[flat]
+    pu, pw = pts[vidx, 0][ci], pts[vidx, 1][ci]  # (F, kmax)
     vals = alpha[:, None] - pu * beta[vi][:, None] - pw * gamma[vi][:, None]
-    j = np.argmin(vals, axis=1)
-    r = np.arange(j.size)
-    fail = vals[r, j] < -_TOL
-    if not fail.any():
-        return np.zeros((0, states.shape[1]), np.int64)
-    p_u, p_w = pu[r, j][fail], pw[r, j][fail]
+    fail = np.flatnonzero((vals < -_TOL).any(axis=1))
+    if fail.size:
+        fail = fail[(states[ci[fail]] + st.rel[vi[fail]]).min(axis=1) >= 0]  # moves that keep N + v ≥ 0
+    if fail.size == 0:
+        return np.zeros((0, nd), np.int64)
+    j = np.argmin(vals[fail], axis=1)
+    p_u, p_w = pu[fail, j], pw[fail, j]
     better = states[ci[fail]] + st.rel[vi[fail]]
     return _descend_points(better, n0_00 + p_u[:, None] * su + p_w[:, None] * sw, st)
 
@@ -358,9 +386,12 @@ def _solve(
             return None
         uv, vid, cid = env
         # keep the states that own a cell: a state above the envelope stays above it
-        used, cid = np.unique(cid, return_inverse=True)
+        present = np.zeros(states.shape[0], bool)
+        present[cid] = True
+        used = np.flatnonzero(present)
+        cid = (np.cumsum(present) - 1)[cid]  # renumbered among the used states (as np.unique's inverse)
         states, planes = states[used], planes[used]
-        pts, starts = _polygons(uv, vid, cid.ravel(), used.size)
+        pts, starts = _polygons(uv, vid, cid, used.size)
         better = _certificate_failures(states, pts, starts, (n0_00, step_u, step_w), st)
         if better.shape[0] == 0:
             return states, planes, pts, starts
@@ -415,16 +446,25 @@ def _labels(
     lo = np.maximum(np.ceil(qw[e] - _EPS_ROW), 0).astype(np.int64)
     hi = np.minimum(np.floor(pw[e] + _EPS_ROW), ny - 1).astype(np.int64)
     k = np.maximum(hi - lo + 1, 0)
-    ee = np.repeat(e, k)
-    row = np.repeat(lo, k) + (np.arange(int(k.sum())) - np.repeat(np.cumsum(k) - k, k))
-    t = np.clip((row - pw[ee]) / dw[ee], 0.0, 1.0)
-    start = pu[ee] + t * (qu[ee] - pu[ee])
+    row = np.arange(int(k.sum())) + np.repeat(lo - (np.cumsum(k) - k), k)
+    # per crossing: the edge's (w_start, Δw, u_start, Δu, cell), one repeat for all
+    per = np.repeat(np.stack([pw[e], dw[e], pu[e], qu[e] - pu[e], cell_of[e]]), k, axis=1)
+    t = (row - per[0]) / per[1]
+    np.maximum(t, 0.0, out=t)
+    np.minimum(t, 1.0, out=t)
+    start = per[2] + t * per[3]
     col = np.maximum(np.ceil(start - _EPS_TIE), 0).astype(np.int64)
+    cell = per[4].astype(np.int64)
     inside = col < nx
-    row, col, start, cell = row[inside], col[inside], start[inside], cell_of[ee[inside]]
+    if not inside.all():
+        row, col, start, cell = row[inside], col[inside], start[inside], cell[inside]
+    # every row must begin with a chord at column 0; rows that do not are decided by energy
+    row_ok = np.zeros(ny, bool)
+    row_ok[row[col == 0]] = True
     key = row * nx + col
     # sort by pixel, then by start (start − col + 1 lies in [0, 1 + ε); starts this close are flagged below)
-    order = np.argsort(key * 4.0 + (start - col + 1.0))
+    # (stable: a merge sort that runs fast on the presorted runs of the edges, one run per edge)
+    order = np.argsort(key * 4.0 + (start - col + 1.0), kind="stable")
     key, start, cell = key[order], start[order], cell[order]
     last = np.ones(key.size, bool)
     last[:-1] = key[1:] != key[:-1]
@@ -433,9 +473,6 @@ def _labels(
     on_pixel = (start != 0.0) & (np.abs(start - np.rint(start)) < _EPS_TIE)
     fix = [key[last & (close | on_pixel)]]
     key, cell = key[last], cell[last]
-    # every row must begin with a chord at column 0; rows that do not are decided by energy
-    row_ok = np.zeros(ny, bool)
-    row_ok[key[key % nx == 0] // nx] = True
     # (nearly) horizontal edges lying on a row, other than the window's own edges
     flat_h = np.flatnonzero((np.abs(dw) <= 1e-6) & ~((pw == qw) & ((pw == 0.0) | (pw == ny - 1.0))))
     if flat_h.size:
