@@ -64,6 +64,16 @@ class Quality:
         flags = tuple(f[i] for i in keep)
         return Quality(ok=not any(flags), warnings=warns, doubtful_flags=flags)
 
+    def doubts_first(self) -> tuple[str, ...]:
+        """The warnings with those that cleared ``ok`` first (order kept within each group).
+
+        When the per-warning doubts are not known, the warnings as they are.
+        """
+        f = self._flags()
+        if f is None:
+            return self.warnings
+        return tuple(w for w, d in zip(self.warnings, f) if d) + tuple(w for w, d in zip(self.warnings, f) if not d)
+
     def to_dict(self) -> dict:
         """JSON form ``{"ok": bool, "warnings": [...]}``."""
         return {"ok": bool(self.ok), "warnings": list(self.warnings)}

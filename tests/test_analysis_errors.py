@@ -107,3 +107,13 @@ def test_longest_line_order_breaks_ties_by_index_not_rounding_noise():
     lengths = np.array([0.02, 0.03 + 1e-17, 0.03, 0.03 - 2e-17, 0.01])
     np.testing.assert_array_equal(_length_order(lengths), [1, 2, 3, 0, 4])
     np.testing.assert_array_equal(_length_order(lengths[[2, 1, 3, 0, 4]]), [0, 1, 2, 3, 4])
+
+
+def test_quality_lists_the_doubts_before_the_notes():
+    from stabtool.quality import Quality
+
+    q = Quality().with_warning("note a", doubtful=False).with_warning("doubt b").with_warning("note c", doubtful=False)
+    assert not q.ok
+    assert q.doubts_first() == ("doubt b", "note a", "note c")
+    # doubts unknown (a verdict built without flags): the warnings as they are
+    assert Quality(ok=False, warnings=("x", "y")).doubts_first() == ("x", "y")

@@ -128,7 +128,7 @@ def _draw(res: Any, ax: Any, *, cax: Any = None, max_labels: int = 40) -> Any:
     ax.text(0.01, 0.99, _key_numbers(res), transform=ax.transAxes, va="top", ha="left", fontsize=7.5,
             family="monospace", bbox={"boxstyle": "round", "fc": "white", "ec": "0.5", "alpha": 0.85})
     if not res.quality.ok and res.quality.warnings:
-        ax.text(0.01, 0.01, "\n".join("! " + w[:110] for w in res.quality.warnings[:4]), transform=ax.transAxes,
+        ax.text(0.01, 0.01, "\n".join("! " + w[:110] for w in res.quality.doubts_first()[:4]), transform=ax.transAxes,
                 va="bottom", ha="left", fontsize=6.5, color="#b00000",
                 bbox={"boxstyle": "round", "fc": "white", "ec": "#b00000", "alpha": 0.85})
     return mesh
