@@ -62,6 +62,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from functools import lru_cache
 from itertools import pairwise
+from typing import Any
 
 import numpy as np
 
@@ -515,6 +516,15 @@ def _neighbours(pts: np.ndarray, starts: np.ndarray) -> tuple[tuple[int, int], .
     return tuple(sorted(k for k, c in count.items() if c >= 2))
 
 
+def _solve_plane(n0_00: Any, step_u: Any, step_w: Any, shape: tuple[int, int], ec_eV: Any) -> Any:
+    """:func:`_solve` on float arrays; None for maps under 2 × 2 pixels or when it fails."""
+    ny, nx = shape
+    if ny < 2 or nx < 2:
+        return None
+    return _solve(np.asarray(n0_00, float), np.asarray(step_u, float), np.asarray(step_w, float), (ny, nx),
+                  np.asarray(ec_eV, float))
+
+
 def plane_cells(
     n0_00: np.ndarray, step_u: np.ndarray, step_w: np.ndarray, shape: tuple[int, int], ec_eV: np.ndarray
 ) -> PlaneCells | None:
@@ -537,10 +547,7 @@ def plane_cells(
         to another method).
     """
     ny, nx = (int(v) for v in shape)
-    if ny < 2 or nx < 2:
-        return None
-    ec = np.asarray(ec_eV, float)
-    res = _solve(np.asarray(n0_00, float), np.asarray(step_u, float), np.asarray(step_w, float), (ny, nx), ec)
+    res = _solve_plane(n0_00, step_u, step_w, (ny, nx), ec_eV)
     if res is None:
         return None
     states, planes, pts, starts = res
@@ -574,10 +581,7 @@ def ground_state_plane(
 ) -> np.ndarray | None:
     """Ground states of a plane sweep from its cells, shape (ny, nx, n); None if the cells fail."""
     ny, nx = (int(v) for v in shape)
-    if ny < 2 or nx < 2:
-        return None
-    ec = np.asarray(ec_eV, float)
-    res = _solve(np.asarray(n0_00, float), np.asarray(step_u, float), np.asarray(step_w, float), (ny, nx), ec)
+    res = _solve_plane(n0_00, step_u, step_w, (ny, nx), ec_eV)
     if res is None:
         return None
     states, planes, pts, starts = res
