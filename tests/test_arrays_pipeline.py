@@ -24,32 +24,19 @@ import warnings
 
 import numpy as np
 import pytest
-from _arrays import array_with_sensor, centre_voltages, sensor_model, truth_matrix
+from _arrays import array_description, array_with_sensor, sensor_model, truth_matrix
 
 from stabtool.analysis import Analyzer
-from stabtool.arrays import ArrayDescription, assemble_virtual_gates, pair_from_map, plan_pair_maps
+from stabtool.arrays import assemble_virtual_gates, pair_from_map, plan_pair_maps
 from stabtool.simulate import Artefacts, simulate_map
 
 PIXELS = 100
 SNR = 10.0
 
 
-def _description(dev) -> ArrayDescription:
-    """What the lab knows: operating point, addition voltages, positions (sensor beside the middle)."""
-    names = list(dev.gate_names)
-    n = len(names) - 1
-    v0 = centre_voltages(dev, 2)
-    add = {g: float(dev.ec_eV[k, k] / dev.lever_arm[k, k]) for k, g in enumerate(names)}
-    pos = {g: (float(k), 0.0) for k, g in enumerate(names[:-1])}
-    pos["SG"] = (n / 2 - 0.5, 0.8)
-    return ArrayDescription(plungers=tuple(names[:-1]), sensors=("SG",),
-                            operating_point_V=dict(zip(names, map(float, v0))),
-                            addition_voltage_V=add, positions=pos)
-
-
 def _pipeline(n: int, pairs=None, both_orientations: bool = False):
     dev = array_with_sensor(n)
-    desc = _description(dev)
+    desc = array_description(dev)
     idx = {g: k for k, g in enumerate(dev.gate_names)}
     analyzer = Analyzer()
     sensor = sensor_model(dev)
