@@ -584,8 +584,11 @@ def fit_diagram(
     piece: DiagramFit | None = None
     stair: list[str] = []
     if splits is not None:
-        piece = _fit_once(pieces, data=data, relocate=True, err_floor_px=err_floor_px, merge_tol_px=PIECE_MERGE_PX)
         stair = _staircases(data, detection, splits)
+        if stair or not first.ok:
+            # the piecewise pass only where it is needed: a staircase, or a failed first pass
+            piece = _fit_once(pieces, data=data, relocate=True, err_floor_px=err_floor_px,
+                              merge_tol_px=PIECE_MERGE_PX)
     cands = [f for f in ((first if not stair else None), piece) if f is not None and f.ok]
     if not cands:
         if stair and first.ok:
