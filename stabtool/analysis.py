@@ -807,14 +807,16 @@ class Analyzer:
         snrs = [detection.snr if detection is not None else np.nan,
                 refinement.snr if refinement is not None and refinement.ok else np.nan]
         snr_clean = float(np.nanmax(snrs)) if np.any(np.isfinite(snrs)) else np.nan
-        if fit.ok and np.isfinite(snr_clean) and snr_clean >= CLEAN_SNR_MARGIN * CLEAN_SNR:
-            # a clean map promises |ΔM| ≤ 0.005: ok needs that bound to be at least 3 stated σ
-            sm = float(np.nanmax(fit.vg_matrix_error))
-            if sm > CLEAN_VG_BOUND / CLEAN_VG_SIGMAS:
-                q = q.with_warning(
-                    f"virtual-gate matrix error {sm:.4f} is more than a third of the {CLEAN_VG_BOUND} goal of a "
-                    f"clean map (SNR {snr_clean:.1f})"
-                )
+        clean = bool(np.isfinite(snr_clean) and snr_clean >= CLEAN_SNR_MARGIN * CLEAN_SNR)
+        # the largest stated error of M an ok map may have: a clean map promises |ΔM| ≤ 0.005, which
+        # must be at least 3 stated σ; a noisy one 0.02 (the fitter's MAX_VG_ERROR = 0.02/3)
+        vg_limit = CLEAN_VG_BOUND / CLEAN_VG_SIGMAS if clean else MAX_VG_ERROR
+        sm = float(np.nanmax(fit.vg_matrix_error)) if fit.ok else np.nan
+        if clean and sm > vg_limit:  # sm is NaN without a fit
+            q = q.with_warning(
+                f"virtual-gate matrix error {sm:.4f} is more than a third of the {CLEAN_VG_BOUND} goal of a "
+                f"clean map (SNR {snr_clean:.1f})"
+            )
         t3 = time.perf_counter()
         triangles = None
         if self.bias_mV is not None:
@@ -860,16 +862,12 @@ class Analyzer:
                 )
             # only a resolved coupling counts against M: an upper limit mostly says that the interdot
             # line is faint (often invisible to a charge sensor), not that the lines are pushed apart
-            bias_1s = float(bias) if np.isfinite(bias) else np.nan
-            sm = float(np.nanmax(fit.vg_matrix_error))
-            if np.isfinite(bias_1s) and np.isfinite(sm):
-                total = float(np.hypot(sm, bias_1s))
-                clean = np.isfinite(snr_clean) and snr_clean >= CLEAN_SNR_MARGIN * CLEAN_SNR
-                limit = CLEAN_VG_BOUND / CLEAN_VG_SIGMAS if clean else MAX_VG_ERROR
-                if sm <= limit < total:
+            if np.isfinite(bias) and np.isfinite(sm):
+                total = float(np.hypot(sm, bias))
+                if sm <= vg_limit < total:
                     q = q.with_warning(
                         f"virtual-gate matrix error {sm:.4f} with the possible tunnel-coupling bias "
-                        f"{bias_1s:.4f} is {total:.4f}, more than the {limit:.4g} an ok "
+                        f"{bias:.4f} is {total:.4f}, more than the {vg_limit:.4g} an ok "
                         f"{'clean ' if clean else ''}map allows"
                     )
             # 2σ bound on t/E_Cm: value + 2σ when resolved, else the upper limit
