@@ -135,6 +135,12 @@ def _json_float(v: float) -> float | None:
     return None if v is None or not math.isfinite(v) else float(v)
 
 
+def _finite_or(v: Any, default: float) -> float:
+    """The JSON number ``v`` when it is finite, else ``default``."""
+    x = _num(v)
+    return x if math.isfinite(x) else default
+
+
 def _num(v: Any) -> float:
     """A JSON number (or null) as float; null → NaN."""
     if v is None:
@@ -211,18 +217,10 @@ def pair_from_analysis(
         m_yx, m_yx_err = from_slopes.m_yx, from_slopes.m_yx_err
         vgm = obj.get("virtual_gate_matrix")
         if vgm is not None:
-            m_xy_v, m_yx_v = _num(vgm[0][1]), _num(vgm[1][0])
-            if math.isfinite(m_xy_v):
-                m_xy = m_xy_v
-            if math.isfinite(m_yx_v):
-                m_yx = m_yx_v
+            m_xy, m_yx = _finite_or(vgm[0][1], m_xy), _finite_or(vgm[1][0], m_yx)
         errs = _matrix_errors(obj)
         if errs is not None:
-            e_xy, e_yx = _num(errs[0][1]), _num(errs[1][0])
-            if math.isfinite(e_xy):
-                m_xy_err = e_xy
-            if math.isfinite(e_yx):
-                m_yx_err = e_yx
+            m_xy_err, m_yx_err = _finite_or(errs[0][1], m_xy_err), _finite_or(errs[1][0], m_yx_err)
     except (TypeError, IndexError, KeyError, AttributeError) as exc:
         raise InputError(src, f"malformed slopes/virtual_gate_matrix entry ({exc})") from None
     if not (math.isfinite(m_xy) or math.isfinite(m_yx)):

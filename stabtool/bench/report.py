@@ -343,6 +343,18 @@ def _positive(y: np.ndarray, floor: float) -> np.ndarray:
     return np.where(np.isfinite(y), np.maximum(y, floor), np.nan)
 
 
+def _save(fig: Any, path: str | os.PathLike[str], title: str) -> Path:
+    """Title the figure, write it atomically as PNG (110 dpi) and close it."""
+    import matplotlib.pyplot as plt
+
+    if title:
+        fig.suptitle(title)
+    p = Path(path)
+    atomic_savefig(fig, p, dpi=110)
+    plt.close(fig)
+    return p
+
+
 def plot_errors(summary: Mapping[str, Any], path: str | os.PathLike[str], *,
                 bounds: FitterBounds = FITTER_BOUNDS, title: str = "") -> Path:
     """Error versus SNR, one panel per quantity: median, 25–75 % and 5–95 % bands, bounds."""
@@ -408,12 +420,7 @@ def plot_errors(summary: Mapping[str, Any], path: str | os.PathLike[str], *,
     ax.set_ylabel("CPU-time ratio, same map")
     ax.grid(True, which="major", alpha=0.3)
     ax.legend(fontsize=9)
-    if title:
-        fig.suptitle(title)
-    p = Path(path)
-    atomic_savefig(fig, p, dpi=110)
-    plt.close(fig)
-    return p
+    return _save(fig, path, title)
 
 
 def plot_coverage(summary: Mapping[str, Any], path: str | os.PathLike[str], *, title: str = "") -> Path:
@@ -459,12 +466,7 @@ def plot_coverage(summary: Mapping[str, Any], path: str | os.PathLike[str], *, t
         ax.set_xlabel("SNR (step height / noise std)")
         ax.grid(True, alpha=0.3)
         ax.legend(fontsize=8.5, loc="upper center", bbox_to_anchor=(0.5, -0.15), ncol=2, frameon=False)
-    if title:
-        fig.suptitle(title)
-    p = Path(path)
-    atomic_savefig(fig, p, dpi=110)
-    plt.close(fig)
-    return p
+    return _save(fig, path, title)
 
 
 def plot_artefacts(outcomes: Sequence[CaseOutcome], path: str | os.PathLike[str], *,
@@ -501,12 +503,7 @@ def plot_artefacts(outcomes: Sequence[CaseOutcome], path: str | os.PathLike[str]
     h, lab = axes[0].get_legend_handles_labels()
     fig.legend(h, lab, loc="lower center", ncol=len(arts), fontsize=10, title="artefact",
                title_fontsize=10, frameon=False)
-    if title:
-        fig.suptitle(title)
-    p = Path(path)
-    atomic_savefig(fig, p, dpi=110)
-    plt.close(fig)
-    return p
+    return _save(fig, path, title)
 
 
 # ---------------------------------------------------------------- table
