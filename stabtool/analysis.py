@@ -365,6 +365,12 @@ def _weighted(values: Sequence[float], errors: Sequence[float]) -> tuple[float, 
     return float(np.mean(v)), spread if np.isfinite(spread) else 0.1 * float(np.mean(v))
 
 
+def _median_dot1_width(fit: DiagramFit) -> float | None:
+    """Median fitted width of the dot1 lines (V), None when no line has one."""
+    w = [ln.width_V for ln in fit.lines1 if np.isfinite(ln.width_V) and ln.width_V > 0]
+    return float(np.median(w)) if w else None
+
+
 def _length_order(lengths: Sequence[float]) -> np.ndarray:
     """Indices from the longest to the shortest; lengths equal to 1e-9 relative keep their order.
 
@@ -787,9 +793,7 @@ class Analyzer:
                 t2 = time.perf_counter()
                 from .fit.refine import adopt_refinement, refine_model
 
-                w_l = [ln.width_V for ln in fit.lines1 if np.isfinite(ln.width_V) and ln.width_V > 0]
-                refinement = refine_model(da, fit, charge_states=states,
-                                          width_guess_V=float(np.median(w_l)) if w_l else None)
+                refinement = refine_model(da, fit, charge_states=states, width_guess_V=_median_dot1_width(fit))
                 adoption = adopt_refinement(fit, refinement)
                 q = q.merge(refinement.quality).merge(adoption.quality)
                 adopted = adoption.adopted
@@ -839,9 +843,8 @@ class Analyzer:
         if fit.ok and fit.mutual_resolved:
             from .fit.tunnel import BIAS_PER_T_OVER_ECM, coupling_to_mutual_ratio
 
-            w_l = [ln.width_V for ln in fit.lines1 if np.isfinite(ln.width_V) and ln.width_V > 0]
-            x_step = abs(float(np.median(np.diff(np.asarray(da[da.dims[-1]].values, float)))))
-            w_th = float(np.median(w_l)) if w_l else 0.25 * x_step
+            w_med = _median_dot1_width(fit)
+            w_th = w_med if w_med is not None else 0.25 * abs(float(np.median(np.diff(x))))
             w_cuts = scale.details.get("width_dot1_V", np.nan)
             if np.isfinite(w_cuts) and w_cuts > 0:
                 # the Fermi width of the stacked cuts across the dot1 lines (the T_e reference)
