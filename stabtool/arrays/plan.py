@@ -239,6 +239,21 @@ def _grow(fits: Callable[[float], bool], lo: float, hi: float) -> float:
     return lo
 
 
+def _fits_square(exc: "_Excursion", limit: float) -> Callable[[float], bool]:
+    """``v ↦`` the square window of half-width ``v`` keeps the other dots within ``limit``."""
+    return lambda v: bool(exc(v, v)[0] <= limit)
+
+
+def _fits_x(exc: "_Excursion", hy: float, limit: float) -> Callable[[float], bool]:
+    """``v ↦`` the window of half-widths (``v``, ``hy``) keeps the other dots within ``limit``."""
+    return lambda v: bool(exc(v, hy)[0] <= limit)
+
+
+def _fits_y(exc: "_Excursion", hx: float, limit: float) -> Callable[[float], bool]:
+    """``v ↦`` the window of half-widths (``hx``, ``v``) keeps the other dots within ``limit``."""
+    return lambda v: bool(exc(hx, v)[0] <= limit)
+
+
 def prior_couplings(
     positions: Mapping[str, tuple[float, float]],
     rows: Sequence[str],
@@ -391,7 +406,7 @@ def plan_pair_maps(
             b=(m0[:, i] * bx + m0[:, j] * by) * add[j] / add,
             rel=rel,
         )
-        h = _grow(lambda v, e=exc: e(v, v)[0] <= margin, 0.0, max_half_width)
+        h = _grow(_fits_square(exc, margin), 0.0, max_half_width)
         note = ""
         if h < min_half_width:
             k = exc(min_half_width, min_half_width)[1]
@@ -400,8 +415,8 @@ def plan_pair_maps(
             h = min_half_width
         # then widen each axis alone as far as the other dots allow (long lines help the slopes)
         limit = max(margin, exc(h, h)[0])
-        hx = _grow(lambda v, e=exc, h=h, lim=limit: e(v, h)[0] <= lim, h, max_half_width)
-        hy = _grow(lambda v, e=exc, hx=hx, lim=limit: e(hx, v)[0] <= lim, h, max_half_width)
+        hx = _grow(_fits_x(exc, h, limit), h, max_half_width)
+        hy = _grow(_fits_y(exc, hx, limit), h, max_half_width)
         ex = exc(hx, hy)[0]
         cx, cy = float(desc.operating_point_V[x]), float(desc.operating_point_V[y])
         if t_x or t_y:

@@ -83,12 +83,12 @@ def _jumps_core(values: np.ndarray, block: int = 4, min_shift_px: float = 2.0) -
     cand = np.nonzero(fin & (dev > thr) & (score > 0.25))[0]
     out: list[tuple[int, float]] = []
     # a jump spreads over ±block rows of the sliding comparison: keep local maxima
-    for i in cand:
-        lo, hi = max(0, i - block), min(ny, i + block + 1)
+    for row in cand.tolist():
+        lo, hi = max(0, row - block), min(ny, row + block + 1)
         win = np.where(np.isfinite(dev[lo:hi]), dev[lo:hi], -1)
-        if dev[i] >= win.max():
-            if not out or i - out[-1][0] > block:
-                out.append((int(i), float(lags[i] - base)))
+        if dev[row] >= win.max():
+            if not out or row - out[-1][0] > block:
+                out.append((int(row), float(lags[row] - base)))
     return out
 
 

@@ -78,7 +78,7 @@ def assess_quality(
     for name in ("dot1", "dot2"):
         fam = families.get(name)
         n = len(fam) if fam is not None else 0
-        if n == 0:
+        if fam is None or n == 0:
             q = q.with_warning(f"no {name} lines found")
             continue
         if n < 2:

@@ -293,7 +293,7 @@ def excitation_energies(g: np.ndarray, n0: np.ndarray, ec: np.ndarray, moves: np
         nz = np.nonzero(d)[0]
         col = du[:, k]
         col.fill(h[k])
-        for i in nz:
+        for i in nz.tolist():
             col += d[i] * grad[:, i]
         neg = nz[d[nz] < 0]
         for i in neg:

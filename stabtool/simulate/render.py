@@ -305,7 +305,7 @@ def simulate_map(
     i1, i2 = select_dots(device, x_gate, y_gate)
     kT = KB_EV_PER_K * temperature_K
     t_eV = tunnel_coupling_ueV * 1e-6
-    pairs = tuple(p for p in device.tunnel_pairs)  # type: ignore[union-attr]
+    pairs = tuple((int(p[0]), int(p[1])) for p in device.tunnel_pairs)  # type: ignore[union-attr]
 
     # --------------------------------------------------- 2. noiseless render
     n0 = _induced(device, x, y, x_gate, y_gate, fixed)
