@@ -5,7 +5,7 @@ from __future__ import annotations
 from typing import Sequence
 
 import numpy as np
-from scipy import stats
+from scipy.special import chdtrc  # χ² survival function, = scipy.stats.chi2.sf(x, dof) without importing scipy.stats
 
 from ..quality import Quality
 from .result import LineFamily, TransitionLine
@@ -95,7 +95,7 @@ def assess_quality(
             w = 1 / np.maximum(ve, 1e-300) ** 2
             m = (w * v).sum() / w.sum()
             chi2 = float((w * (v - m) ** 2).sum())
-            p = float(stats.chi2.sf(chi2, v.size - 1))
+            p = float(chdtrc(v.size - 1, chi2))
             spread = 1.4826 * np.median(np.abs(v - np.median(v))) / abs(np.median(v))
             if p < 1e-3 and spread > MAX_REL_SLOPE_SPREAD:
                 q = q.with_warning(f"{name} lines are not parallel: slopes scatter by {100 * spread:.1f} % "

@@ -42,7 +42,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import stats
+from scipy.special import chdtrc  # χ² survival function, = scipy.stats.chi2.sf(x, dof) without importing scipy.stats
 
 __all__ = [
     "Estimate",
@@ -125,7 +125,7 @@ def inverse_variance_mean(values: Sequence[float], sigmas: Sequence[float]) -> W
     dof = int(x.size - 1)
     if dof > 0:
         birge = float(np.sqrt(chi2 / dof))
-        p = float(stats.chi2.sf(chi2, dof))
+        p = float(chdtrc(dof, chi2))
     else:
         birge = float("nan")
         p = float("nan")
