@@ -18,6 +18,9 @@ BEND_P = 1e-3
 #: points this close to a vertex (px, or fraction of the segment) are left out of the joint fits
 VERTEX_GAP_PX = 2.0
 VERTEX_GAP_FRAC = 0.03
+#: points within this many thermal widths (detuning k_B T_e of the third charge state) of a vertex are
+#: left out too: the thermal rounding of the triple point (see :func:`thermal_vertex_gap`)
+VERTEX_GAP_WIDTHS = 4.0
 #: straight and bent family slopes differing by more than this many σ of their difference: bending detected
 BEND_Z = 3.0
 
@@ -134,13 +137,75 @@ def _vertex_positions_all(rs: Sequence[RefinedLine], tab: dict) -> np.ndarray:
     return out
 
 
+def thermal_vertex_gap(members: Sequence[RefinedLine], others: Sequence[TransitionLine], *, steep: bool,
+                       n_widths: float | None = None) -> float:
+    """Distance along the lines (in their ``t`` coordinate, V) over which a vertex is thermally rounded.
+
+    Parameters
+    ----------
+    members : sequence of RefinedLine
+        The family's lines.
+    others : sequence of TransitionLine
+        The other dot family's lines, with their fitted Fermi widths
+        ``width_V`` (along their own gate).
+    steep : bool
+        True when ``members`` are the dot1 (steep) lines.
+    n_widths : float, optional
+        Thermal widths to leave out (default :data:`VERTEX_GAP_WIDTHS`).
+
+    Returns
+    -------
+    float
+        ``n_widths · w_o / |1 − s2/s1|`` in V along ``t`` (0 when the other
+        family has no measured width).
+
+    Notes
+    -----
+    Along a dot-i line the two charge states it separates are degenerate;
+    the third state of the triple point at its end (one electron more or less
+    on the other dot) lies ``ε`` above them, ε growing linearly with the
+    distance from the vertex. Its thermal occupation ``∝ exp(−ε / k_B T_e)``
+    rounds the corner and moves the measured crossing (by ``k_B T_e ln 2``
+    at the vertex itself, in energy), which a vertex-bending term reads as
+    tunnel coupling when the lines are a few pixels wide. In units of the
+    other family's Fermi width ``w_o = k_B T_e / (e α_oo)`` (measured along
+    that family's own gate), ε/k_B T_e equals the distance from the point to
+    the other family's line through the vertex along that gate, which is
+    ``|t − τ| · |1 − s2/s1|`` for both families (s1, s2 the dot1 and dot2
+    slopes dV_y/dV_x). Beyond ``n_widths = 4`` the shift is below
+    ``k_B T_e · e^{−4}``, 2 % of a width, while the ``t²/ε`` tail of a real
+    tunnel coupling reaches much farther (W. G. van der Wiel et al., Rev. Mod.
+    Phys. 75, 1 (2003), doi:10.1103/RevModPhys.75.1, Sec. II; Fermi–Dirac
+    occupation of the three states).
+    """
+    k = VERTEX_GAP_WIDTHS if n_widths is None else float(n_widths)
+    w_o = np.array([o.width_V for o in others], float)
+    w_o = w_o[np.isfinite(w_o) & (w_o > 0)]
+    if k <= 0 or w_o.size == 0:
+        return 0.0
+    s_m = np.array([r.line.slope for r in members], float)
+    s_o = np.array([o.slope for o in others], float)
+    s_m, s_o = s_m[np.isfinite(s_m)], s_o[np.isfinite(s_o)]
+    if s_m.size == 0 or s_o.size == 0:
+        return 0.0
+    s1, s2 = (float(np.median(s_m)), float(np.median(s_o))) if steep else (float(np.median(s_o)), float(np.median(s_m)))
+    if s1 == 0 or not np.isfinite(s1):
+        return 0.0
+    f = abs(1.0 - s2 / s1)
+    if f < 0.05:
+        return 0.0
+    return float(k * np.median(w_o) / f)
+
+
 def family_fit(members: Sequence[RefinedLine], others: Sequence[TransitionLine], axes: MapAxes, *,
                steep: bool) -> FamilyFit | None:
     """Joint slope of a dot family; adds vertex-bending terms when they are significant.
 
-    Points within ``max(3 px, 15 % of the segment)`` of a vertex are left
-    out of both fits (the 1/ε form of the bending holds away from the
-    anticrossing itself).
+    Points within ``max(VERTEX_GAP_PX, VERTEX_GAP_FRAC of the segment,
+    VERTEX_GAP_WIDTHS thermal widths)`` of a vertex are left out of the
+    bending test (the 1/ε form of the bending holds away from the
+    anticrossing itself, and the thermally rounded corner is not tunnel
+    coupling: :func:`thermal_vertex_gap`).
     """
     rs = [r for r in members if r.refined and r.points is not None and r.points[0].size >= 4]
     if len(rs) < 2:
@@ -165,9 +230,10 @@ def family_fit(members: Sequence[RefinedLine], others: Sequence[TransitionLine],
     lps, full = [], []
     tab = _others_table(others, axes) if others else None
     verts = _vertex_positions_all(rs, tab) if tab is not None else np.full((len(rs), 2), np.nan)
+    gap_th = thermal_vertex_gap(rs, others, steep=steep)
     for r, (va, vb) in zip(rs, verts):
         t, p, s = r.points
-        gap = max(VERTEX_GAP_PX * tstep, VERTEX_GAP_FRAC * np.ptp(t))
+        gap = max(VERTEX_GAP_PX * tstep, VERTEX_GAP_FRAC * np.ptp(t), gap_th)
         ok = np.ones(t.size, bool)
         for v in (va, vb):
             if np.isfinite(v):
@@ -191,7 +257,8 @@ def family_fit(members: Sequence[RefinedLine], others: Sequence[TransitionLine],
         var = bent.slope_stderr**2 - straight.slope_stderr**2
         z = abs(bent.slope - straight.slope) / np.sqrt(max(var, 1e-3 * bent.slope_stderr**2))
     use = bent is not None and bent.bend_terms > 0 and (pval < BEND_P or z > BEND_Z)
-    chosen: JointFit = bent if use else straight_all  # type: ignore[assignment]
+    # the straight slope from the points clear of the (thermally or tunnel-) rounded corners
+    chosen: JointFit = bent if use else straight  # type: ignore[assignment]
 
     def conv(f: JointFit) -> tuple[float, float]:
         C, sC = f.slope, f.slope_stderr

@@ -26,7 +26,7 @@ from dataclasses import dataclass
 from typing import Sequence
 
 import numpy as np
-from scipy import stats
+from scipy.special import fdtrc  # F survival function, = scipy.stats.f.sf(x, dfn, dfd)
 
 __all__ = ["LinePoints", "JointFit", "fit_family", "bending_significance"]
 
@@ -217,4 +217,6 @@ def bending_significance(straight: JointFit, bent: JointFit) -> float:
     # per-point χ² of the straight fit (clipping may keep slightly different points)
     c_s = straight.chi2 / max(straight.n_points, 1) * bent.n_points
     f = ((c_s - bent.chi2) / df1) / max(bent.chi2 / dof2, 1e-300)
-    return float(stats.f.sf(f, df1, dof2)) if f > 0 else 1.0
+    if not f > 0:
+        return 1.0
+    return float(fdtrc(df1, dof2, f))
