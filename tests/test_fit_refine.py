@@ -93,7 +93,7 @@ def test_refined_parameters_agree_with_the_truth_within_their_errors():
     ref = refine_model(bm.data, fit)
     assert ref.converged and ref.ok, ref.quality.warnings
     tr = bm.truth.to_json()
-    vec, cov = ref.vector()
+    vec, _ = ref.vector()
     truth = np.array([tr["virtual_gate_matrix"][0][1], tr["virtual_gate_matrix"][1][0],
                       tr["addition_voltages_V"]["dot1"], tr["mutual_shifts_V"]["dot1"],
                       tr["addition_voltages_V"]["dot2"], tr["mutual_shifts_V"]["dot2"]])
@@ -181,3 +181,196 @@ def test_clustered_covariance_matches_the_scatter_of_estimates():
     scatter = np.std(est)
     assert np.median(stated) == pytest.approx(scatter, rel=0.2)
     assert np.median(plain) < 0.5 * scatter
+
+
+# ---------------------------------------------------------------- the structure test of the residual
+# Maps for the test: thermal occupations of a constant-interaction double dot (van der Wiel et al.,
+# Rev. Mod. Phys. 75, 1 (2003)) read through a peak-shaped sensor whose operating point drifts across
+# the map: s = 1/(1 + d²), d = d0 + a x + b y + κ q (a Lorentzian Coulomb peak of the sensor dot;
+# common practice, no source), q = ⟨N1⟩ + 0.6 ⟨N2⟩.
+_THETA = np.array([0.28, 0.22, 0.02, 0.024, 0.004, 0.9, 0.003, 0.002, 3e-4])  # (M12, M21, ΔV1, ΔV2, δ1, r, c1, c2, w1)
+
+
+def _occupations(theta, shape=(110, 120), span=0.1):
+    y = np.linspace(0, span, shape[0])
+    x = np.linspace(0, span, shape[1])
+    xx, yy = np.meshgrid(x, y)
+    o1, o2 = model_occupations(xx.ravel(), yy.ravel(), np.asarray(theta, float), n_min=(0, 0))
+    return x, y, o1.reshape(shape), o2.reshape(shape)
+
+
+def _lorentz_read(o1, o2, *, drift=(0.3, -1.4, 1.2), kappa=0.35):
+    ny, nx = o1.shape
+    gx, gy = np.meshgrid(np.linspace(0, 1, nx), np.linspace(0, 1, ny))
+    d = drift[0] + drift[1] * gx + drift[2] * gy + kappa * (o1 + 0.6 * o2)
+    return 1.0 / (1.0 + d * d)
+
+
+def _foreign_noise(shape, sigma, rng):
+    """White + row random walk + rare spikes + 1/f 2-D noise + a slow gain drift (not our generator's)."""
+    ny, nx = shape
+    out = rng.normal(0, sigma, shape) + np.cumsum(rng.normal(0, 0.3 * sigma, ny))[:, None]
+    out += (rng.random(shape) < 0.001) * rng.normal(0, 30 * sigma, shape)
+    f = np.hypot(np.fft.fftfreq(ny)[:, None], np.fft.rfftfreq(nx)[None, :])
+    f[0, 0] = np.inf
+    pink = np.fft.irfft2((rng.normal(size=f.shape) + 1j * rng.normal(size=f.shape)) / f, s=shape)
+    out += 0.5 * sigma * pink / pink.std()
+    gain = 1 + 0.25 * np.linspace(0, 1, ny * nx).reshape(shape)
+    return out, gain
+
+
+def _step_height(sig, o1):
+    jump = np.abs(np.diff(np.rint(o1), axis=1)) > 0.5
+    return float(np.median(np.abs(np.diff(sig, axis=1))[jump]))
+
+
+def test_structure_test_ignores_noise_and_a_smooth_sensor_misfit():
+    # the model is right up to a smooth error of the sensor response (a bowl of 2 charge steps):
+    # with white, 1/f, row-walk, spike and gain-drift noise the test keeps its false-alarm rate
+    from stabtool.fit.refine import residual_structure_test
+
+    x, y, o1, o2 = _occupations(_THETA)
+    sig = _lorentz_read(o1, o2)
+    h = _step_height(sig, o1)
+    gx, gy = np.meshgrid(np.linspace(-1, 1, x.size), np.linspace(-1, 1, y.size))
+    fired = 0
+    for seed in range(6):
+        rng = np.random.default_rng(seed)
+        noise, gain = _foreign_noise(sig.shape, h / 15.0, rng)
+        data = (sig + noise) * gain
+        model = (sig + 2 * h * (gx**2 + 0.5 * gx * gy)) * gain  # smooth misfit, in the gain too
+        st = residual_structure_test(data, model, lags=(1, 1))
+        fired += st.flagged
+        assert st.global_excess < 0.15
+    assert fired == 0
+
+
+def test_structure_test_fires_on_a_wrong_lever_arm_and_on_a_missing_line():
+    # must fire: (a) the model's dot1 lever arm 6 % off (ΔV1 ∝ 1/α11, so dot1 lines move by up to
+    # 6 % of their distance from the origin, several pixels); (b) one dot1 line missing from the model
+    from stabtool.fit.refine import residual_structure_test
+
+    _, _, o1, o2 = _occupations(_THETA)
+    sig = _lorentz_read(o1, o2)
+    h = _step_height(sig, o1)
+    rng = np.random.default_rng(7)
+    noise, gain = _foreign_noise(sig.shape, h / 8.0, rng)
+    data = (sig + noise) * gain
+    wrong = _THETA.copy()
+    wrong[[2, 4, 8]] *= 1.06  # ΔV1, δ1 and the width along x scale with 1/α11
+    _, _, w1_, w2_ = _occupations(wrong)
+    st = residual_structure_test(data, _lorentz_read(w1_, w2_) * gain)
+    assert st.flagged and st.excess > 1.0
+    # one dot1 line (N1: 1 → 2) missing: the model's occupation skips that step
+    m1 = np.minimum(o1, 1.0) + np.maximum(o1 - 2.0, 0.0)
+    st = residual_structure_test(data, _lorentz_read(m1, o2) * gain)
+    assert st.flagged
+    # the same map against its own model: not flagged
+    assert not residual_structure_test(data, sig * gain).flagged
+
+
+def test_clipped_chi2_moments_match_scipy():
+    # mean and variance of min(Z², c²), Z standard normal, against numerical integration (scipy.stats)
+    from scipy import integrate
+    from scipy.stats import norm
+
+    from stabtool.fit.refine import _clipped_moments
+
+    c = 3.0
+    m, v = _clipped_moments(c)
+    m_ref = integrate.quad(lambda t: min(t * t, c * c) * norm.pdf(t), -12, 12, points=[-c, c])[0]
+    m2_ref = integrate.quad(lambda t: min(t * t, c * c) ** 2 * norm.pdf(t), -12, 12, points=[-c, c])[0]
+    assert m == pytest.approx(m_ref, rel=1e-8)
+    assert v == pytest.approx(m2_ref - m_ref**2, rel=1e-8)
+
+
+def test_structure_test_false_alarm_rate_on_white_noise():
+    # nominal family-wise false-alarm probability TEST_ALPHA = 1e-3 (Bonferroni over the tiles): with the
+    # excess floor set to zero, 300 white-noise maps of 16 tiles give at most a few alarms
+    # (binomial, p = 1e-3: P(≥ 3 of 300) ≈ 0.004)
+    from stabtool.fit.refine import residual_structure_test
+
+    rng = np.random.default_rng(11)
+    alarms = sum(residual_structure_test(z, np.zeros_like(z), min_excess=0.0).flagged
+                 for z in (rng.normal(size=(96, 96)) for _ in range(300)))
+    assert alarms <= 2
+
+
+def _sensor_map(seed, *, trap=False, shape=(130, 140)):
+    """A generator double dot (ideal charge read-out, van der Wiel et al. 2003 CI truth) read through a
+    Lorentzian sensor peak whose operating point drifts across the map, white noise at SNR 20;
+    with ``trap``, a charge trap adds one extra step along a line no dot produces (slope +1)."""
+    from stabtool.simulate import simulate_map
+    from stabtool.simulate.device import Device
+    from stabtool.simulate.quick import double_dot_window
+
+    dev = Device(cdg_aF=[[10.0, 3.0], [2.5, 9.0]], cdd_aF=[[80.0, -15.0], [-15.0, 80.0]], gate_names=["PA", "PB"],
+                 dot_names=["L", "R"], name="kestrel-7")
+    xr_, yr_ = double_dot_window(dev, x_gate="PA", y_gate="PB", electrons=4.5)
+    sm = simulate_map(dev, x_gate="PA", y_gate="PB", x_range_V=xr_, y_range_V=yr_, shape=shape, temperature_K=0.12,
+                      readout="charge", rng=seed)
+    q = np.asarray(sm.data.values, float)
+    ny, nx = q.shape
+    gx, gy = np.meshgrid(np.linspace(0, 1, nx), np.linspace(0, 1, ny))
+    if trap:
+        q = q + 1.0 * (gy - gx > 0.15)
+    d = 0.4 - 1.6 * gx + 1.3 * gy + 0.35 * q
+    sig = 1.0 / (1.0 + d * d)
+    h = float(np.median(np.abs(np.diff(sig, axis=1))[np.abs(np.diff(q, axis=1)) > 0.5]))
+    da = sm.data.copy()
+    da.values = sig + np.random.default_rng(seed + 100).normal(0, h / 20.0, sig.shape)
+    return da, sm.truth.to_json()
+
+
+@pytest.mark.regression
+def test_refinement_describes_a_drifting_lorentzian_sensor_and_flags_an_extra_line():
+    # must not fire: the sensor curvature across each charge state is followed by the per-state
+    # quadratic; must fire: a step along a line of a slope no dot has (a charge trap) is left in the
+    # residual. Virtual gates within the clean-map bound |ΔM| ≤ 0.005 (stabtool.bench.bounds).
+    from stabtool.fit.model import fit_diagram
+    from stabtool.fit.refine import refine_model
+    from stabtool.lines import detect_lines
+
+    da, truth = _sensor_map(3)
+    fit = fit_diagram(detect_lines(da), data=da)
+    assert fit.ok
+    ref = refine_model(da, fit)
+    assert ref.converged and ref.ok, ref.quality.warnings
+    assert not ref.structure.flagged
+    # the residual is at the noise level (one plane per state left 1.8× the noise here)
+    assert ref.residual_ratio < 1.2
+    mt = np.array(truth["virtual_gate_matrix"])
+    assert ref.params["M12"] == pytest.approx(mt[0, 1], abs=0.005)
+    assert ref.params["M21"] == pytest.approx(mt[1, 0], abs=0.005)
+
+    da_t, _ = _sensor_map(3, trap=True)
+    ref_t = refine_model(da_t, fit)
+    assert ref_t.structure.flagged and not ref_t.ok
+    assert any("does not describe" in w for w in ref_t.quality.warnings)
+
+
+@pytest.mark.regression
+def test_refinement_flags_a_transport_map():
+    # the same device read by transport at a small bias: current flows only at the triple points
+    # (van der Wiel et al. 2003, Sec. II), which no charge-sensor model describes
+    from stabtool.fit.model import fit_diagram
+    from stabtool.fit.refine import refine_model
+    from stabtool.lines import detect_lines
+    from stabtool.simulate import simulate_map
+    from stabtool.simulate.device import Device
+    from stabtool.simulate.quick import double_dot_window
+
+    da, _ = _sensor_map(3)
+    fit = fit_diagram(detect_lines(da), data=da)
+    dev = Device(cdg_aF=[[10.0, 3.0], [2.5, 9.0]], cdd_aF=[[80.0, -15.0], [-15.0, 80.0]], gate_names=["PA", "PB"],
+                 dot_names=["L", "R"], name="kestrel-7")
+    xr_, yr_ = double_dot_window(dev, x_gate="PA", y_gate="PB", electrons=4.5)
+    sm = simulate_map(dev, x_gate="PA", y_gate="PB", x_range_V=xr_, y_range_V=yr_, shape=da.shape, temperature_K=0.12,
+                      readout="transport", bias_mV=0.02, rng=3)
+    cur = np.asarray(sm.data.values, float)
+    cur = cur / np.percentile(np.abs(cur), 99.9)
+    tr = sm.data.copy()
+    tr.values = cur + np.random.default_rng(1).normal(0, 0.05, cur.shape)
+    ref = refine_model(tr, fit)
+    assert not ref.ok
+    assert ref.structure.flagged

@@ -3,32 +3,64 @@
 Starting from the line-based estimate (:func:`stabtool.fit.model.fit_diagram`),
 the map is modelled as
 
-``s(x, y) = Σ_N p_N(x, y) · (a_N + b_N x + c_N y) + q(x, y)``
+``s(x, y) = Σ_N p_N(x, y) · L_N(x, y)``,
+``L_N = a_N + b_N x + c_N y + d_N x² + e_N x y + f_N y²``
 
 where ``p_N`` is the thermal (Boltzmann) probability of charge state
-``N = (N1, N2)``, each charge state has its own sensor signal, smooth across
-the state's cell (a plane ``a_N + b_N x + c_N y``: a charge sensor reads a
-smooth function of the electrostatic potential, different for each charge
-configuration, so no assumption on the sensor's response curve is made), and
-``q`` is a common quadratic curvature. The probabilities come from the
-constant-interaction energy written in units of ``e α11`` volts:
+``N = (N1, N2)`` and ``L_N`` the sensor signal while the dots hold ``N``.
+
+Sensor model. A charge sensor (a sensing dot or point contact, read in DC or
+by reflectometry) reads a smooth function ``g`` of its own operating point
+``d``; electrostatics make ``d`` linear in the gate voltages and in the dot
+charges, ``d = d0 + λ_x x + λ_y y + κ·N``. Within one charge state the
+signal ``g(d0 + λ·V + κ·N)`` is therefore a smooth function of position
+whose shape depends on where the operating point sits on ``g`` — on a
+flank it is nearly linear, near the top of a Coulomb or resonator peak it
+curves, and a drifting operating point moves it along ``g`` across the
+cell. One plane per state follows the flank only. A quadratic per state is
+the second-order Taylor expansion of ``g(d(x, y))`` about the cell, exact
+for a linear sensor and accurate while the operating point moves by less
+than about the peak width across one cell (charge cells are a fraction of
+the map, so this holds even when it sweeps over a whole peak across the
+map). No shape of ``g`` (Lorentzian, Gaussian, sech², rotated I/Q) is
+assumed, and no relation between states' signals is imposed, so a gain or
+background drift is absorbed too. States with little probability mass among
+the fitted pixels keep a plane or a constant only (``MIN_MASS_*``), so a
+corner cell cannot swing wildly where it is barely seen.
+
+The probabilities come from the constant-interaction energy written in
+units of ``e α11`` volts:
 
 ``F(N) = ½ ΔV1 N1² + δ1 N1 N2 + ½ r ΔV2 N2² − N1 (V'_1 − c1) − r N2 (V'_2 − c2)``,
 
 ``V' = M V``, ``r = α22/α11 = δ1/δ2``, weights ``exp(−F/w1)`` with the Fermi
 width ``w1 = k_B T/(e α11)`` along x (the dot2 width along y is ``w1/r``).
 
-The linear coefficients (three per charge state plus the curvature) are
-solved at every step (variable projection); the nine nonlinear ones
+The linear coefficients (up to six per charge state) are solved at every
+step (variable projection); the nine nonlinear ones
 ``(M12, M21, ΔV1, ΔV2, δ1, r, c1, c2, w1)`` by a damped Gauss–Newton
 (Levenberg–Marquardt) iteration on the pixels within a few line widths of
 the predicted transitions (at full resolution, so sharp lines are not
-pixelated) plus a sparse grid of the rest. The covariance of the nonlinear
+pixelated) plus a sparse grid of the rest. The Jacobian is analytic: the
+derivative of a Boltzmann average is a thermal covariance,
+``∂⟨L⟩/∂θ = −⟨(L − ⟨L⟩) ∂F/∂θ⟩/w1``, evaluated on the two or three states
+that carry probability at each pixel. The covariance of the nonlinear
 parameters uses the variable-projection Jacobian (the linear coefficients
 projected out) in a cluster-robust sandwich with one cluster per map row,
 which stays honest when the noise is correlated along the fast axis (row
 offsets, 1/f noise) or the model is imperfect, and is never smaller than the
 usual ``χ²_red``-scaled estimate.
+
+Does the model describe the map? A wrong charge-state geometry (lever arm,
+missed or extra lines, transport features) leaves *sharp* residual
+structure, while an imperfect sensor model, 1/f noise and drifts leave
+*smooth* residuals. :func:`residual_structure_test` therefore compares
+differences of neighbouring residuals (at the scale of a line width) with
+the map's own noise, estimated robustly from the map's pixel differences
+band by band, tile by tile with a Bonferroni threshold; a tile counts only
+when its excess is also large against the charge step. The rms residual
+over the noise is reported (``residual_ratio``) but not tested: it mixes
+smooth misfit and correlated noise with real failures.
 
 References
 ----------
@@ -42,11 +74,16 @@ least squares problems", BIT 15, 49 (1975), doi:10.1007/BF01932995.
 K.-Y. Liang and S. L. Zeger, "Longitudinal data analysis using generalized
 linear models", Biometrika 73, 13 (1986), doi:10.1093/biomet/73.1.13
 (cluster-robust "sandwich" covariance).
+J. Rice, Ann. Stat. 12, 1215 (1984), doi:10.1214/aos/1176346788, and
+T. Gasser, L. Sroka and C. Jennen-Steinmetz, Biometrika 73, 625 (1986),
+doi:10.1093/biomet/73.3.625 (noise variance from differences of neighbours).
 """
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass, field
+from functools import lru_cache
 from typing import Any
 
 import numpy as np
@@ -56,12 +93,17 @@ import xarray as xr
 from ..quality import Quality
 from .model import DiagramFit
 
-__all__ = ["MAX_RESIDUAL_RATIO", "PARAM_NAMES", "Adoption", "Refinement", "adopt_refinement", "clustered_covariance",
-           "model_occupations", "refine_model"]
+__all__ = ["PARAM_NAMES", "Adoption", "Refinement", "StructureTest", "adopt_refinement", "clustered_covariance",
+           "model_occupations", "refine_model", "residual_structure_test"]
 
 PARAM_NAMES = ("M12", "M21", "addition_V1", "addition_V2", "mutual_V1", "alpha_ratio_22_11", "c1", "c2", "width_V1")
-#: Residual rms over noise above which (with a residual above 25 % of the smallest step) the model is rejected.
-MAX_RESIDUAL_RATIO = 1.5
+#: Charge steps are weak (the result doubtful) when the weaker dot's median step is below this
+#: many noise standard deviations, or a quarter of the steps (a peak-shaped sensor read near its
+#: maximum loses the step there) below ``WEAK_QUARTILE_SNR``.
+WEAK_STEP_SNR = 3.0
+WEAK_QUARTILE_SNR = 2.0
+#: Largest difference lag (pixels) of the structure test.
+MAX_LAG_PX = 8
 #: Pixels within this many Fermi widths (or pixels, whichever is larger) of a transition are fitted.
 BAND_WIDTHS = 5.0
 #: Largest number of fitted pixels (band pixels are thinned evenly above it).
@@ -78,13 +120,16 @@ _OFFSETS = np.array([(i, j) for i in (-1, 0, 1) for j in (-1, 0, 1)], float)
 
 
 def _state_weights(
-    x: np.ndarray, y: np.ndarray, theta: np.ndarray, n_min: tuple[int | None, int | None], *, gap: bool = False
+    x: np.ndarray, y: np.ndarray, theta: np.ndarray, n_min: tuple[int | None, int | None], *, gap: bool = False,
+    energies: bool = False,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray | None]:
     """Boltzmann probabilities of the 9 states around the nearest lattice state.
 
     Returns ``n1, n2`` (shape (9, p), the states), ``prob`` (9, p) and, with
     ``gap``, the energy gap (p,) between the two lowest states in units of
-    ``w1`` (else None; ``prob`` is then not computed either).
+    ``w1`` (else None; ``prob`` is then not computed either). With
+    ``energies`` the third array is ``F − min F`` in units of ``w1``
+    (``inf`` for excluded states) instead of the probabilities.
     """
     m12, m21, dv1, dv2, d1, r, c1, c2, w1 = theta
     u = x + m12 * y - c1
@@ -105,6 +150,8 @@ def _state_weights(
     f -= f.min(axis=0, keepdims=True)
     if gap:
         return n1, n2, f, np.partition(f, 1, axis=0)[1]
+    if energies:
+        return n1, n2, f, None
     wts = np.exp(-f)
     prob = wts / wts.sum(axis=0)
     return n1, n2, prob, None
@@ -138,7 +185,8 @@ class Refinement:
     Attributes
     ----------
     ok : bool
-        The fit converged and the model describes the map (residual near noise).
+        The fit converged, the model describes the map (no sharp residual
+        structure, :func:`residual_structure_test`) and the steps are not weak.
     params, errors : dict
         Refined values and standard errors of ``PARAM_NAMES`` plus derived
         ``mutual_V2`` (δ2 = δ1/r) and ``width_V2`` (w1/r); errors from the
@@ -147,11 +195,13 @@ class Refinement:
         Covariance of ``PARAM_NAMES`` (row-clustered sandwich, at least the
         ``χ²_red``-scaled Gauss–Newton covariance).
     residual_ratio : float
-        rms residual / noise standard deviation.
+        rms residual of the fitted pixels / noise standard deviation (reported, not tested:
+        it includes smooth misfit and correlated noise).
     noise : float
         Noise standard deviation of the map (from point-to-point differences).
     step : tuple of float
-        Median signal change for one added electron on dot1, dot2.
+        Median signal change for one added electron on dot1, dot2, evaluated on the
+        lines (the two states' sensor polynomials at the line pixels).
     width_resolved : bool
         The fitted width is not at its lower bound (a tenth of a pixel).
     stride : tuple of int
@@ -161,8 +211,10 @@ class Refinement:
     iterations : int
     converged : bool
     snr : float
-        Median charge-step height (both dots, between neighbouring charge
-        states at the map centre) over the noise standard deviation.
+        Median charge-step size on the lines (the median of the two dots')
+        over the noise standard deviation.
+    structure : StructureTest or None
+        The test for sharp residual structure over the whole map.
     """
 
     ok: bool
@@ -180,6 +232,7 @@ class Refinement:
     iterations: int = 0
     converged: bool = False
     snr: float = float("nan")
+    structure: StructureTest | None = None
 
     def __bool__(self) -> bool:
         return self.ok
@@ -211,6 +264,7 @@ class Refinement:
             "iterations": int(self.iterations),
             "converged": bool(self.converged),
             "snr": self.snr,
+            "structure_test": self.structure.to_json() if self.structure is not None else None,
         }
 
 
@@ -278,32 +332,283 @@ def clustered_covariance(jac: np.ndarray, res: np.ndarray, clusters: np.ndarray,
     inflate = np.maximum(inflate, 1.0)
     return cov * np.outer(inflate, inflate)
 
+#: Clip of the normalised residual differences in the structure test (a spike counts at most c²).
+TEST_CLIP = 3.0
+#: Tile side (pixels of the difference images) of the local structure test.
+TEST_TILE = 24
+#: Family-wise false-alarm probability of the structure test on a map the model describes.
+TEST_ALPHA = 1e-3
+#: Smallest excess of the mean clipped squared residual difference over its noise expectation
+#: (≈ 1) that counts as structure: 0.5 means the residual varies from pixel to pixel 1.5× as much
+#: as the noise in that tile; a missed or misplaced sharp line adds several units per crossing.
+TEST_MIN_EXCESS = 0.25
+#: Smallest size of the residual structure, as a fraction of the charge step, that counts: a line
+#: the model misses or misplaces by a pixel leaves differences of a whole step; a line placed a few
+#: tenths of a pixel off, or shaped slightly differently (sensor nonlinearity across the thermal
+#: step), leaves a fraction of it that is significant at high SNR but does not bias the results.
+TEST_MIN_STEP_FRACTION = 0.5
+#: Variance of the tile mean of the clipped squares relative to independent elements: neighbouring
+#: differences share pixels (correlation −½ along, ½ across) and each band's noise scale is
+#: estimated. Monte Carlo of white noise plus a row random walk through
+#: :func:`residual_structure_test` (1500 single 25×25 tiles, lags 1 and 3): the tile z computed
+#: with independent elements has variance 2.09–2.14 (mean 0.9–1.0, i.e. an excess bias ≈ 0.04).
+TEST_VARIANCE_FACTOR = 2.2
+
+
+@lru_cache(maxsize=8)
+def _clipped_moments(c: float) -> tuple[float, float]:
+    """Mean and variance of ``min(Z², c²)`` for a standard normal Z."""
+    from scipy.special import ndtr
+
+    pdf = float(np.exp(-0.5 * c * c) / np.sqrt(2 * np.pi))
+    inner = 2 * float(ndtr(c)) - 1
+    tail = 1 - inner
+    m2 = inner - 2 * c * pdf
+    m4 = 3 * inner - 2 * pdf * (c**3 + 3 * c)
+    mean = m2 + c**2 * tail
+    var = m4 + c**4 * tail - mean**2
+    return float(mean), float(var)
+
+
+@dataclass(frozen=True)
+class StructureTest:
+    """Outcome of :func:`residual_structure_test`.
+
+    Attributes
+    ----------
+    flagged : bool
+        Sharp structure is left in the residual (the model misses or misplaces lines).
+    excess : float
+        Largest tile excess of the mean clipped squared normalised residual difference over
+        its noise expectation (0 when the residual is noise; 1 = twice the noise variance).
+    z : float
+        Significance of that tile's excess (standard-normal units).
+    z_crit : float
+        Threshold on ``z`` (Bonferroni over the tiles at ``TEST_ALPHA``).
+    where : tuple of int
+        Centre pixel ``(iy, ix)`` of the worst tile (among the significant ones, else overall).
+    n_tiles : int
+    global_excess : float
+        Excess over the whole map.
+    lags : tuple of int
+        Difference lags (y, x) in pixels.
+    amplitude : float
+        The worst tile's ``tile``-th largest ``|residual difference|`` (NaN unless significant).
+    step : float
+        Charge step the amplitude is compared with.
+    """
+
+    flagged: bool
+    excess: float
+    z: float
+    z_crit: float
+    where: tuple[int, int]
+    n_tiles: int
+    global_excess: float
+    lags: tuple[int, int]
+    amplitude: float = float("nan")
+    step: float = float("nan")
+
+    def to_json(self) -> dict[str, Any]:
+        return {"flagged": bool(self.flagged), "excess": self.excess, "z": self.z, "z_crit": self.z_crit,
+                "where_px": list(self.where), "n_tiles": int(self.n_tiles), "global_excess": self.global_excess,
+                "lags_px": list(self.lags), "amplitude": self.amplitude, "step": self.step}
+
+
+def _mad_scale(v: np.ndarray) -> float:
+    """Normal-consistent MAD scale of the finite values (NaN for fewer than 8)."""
+    if v.size < 8:
+        return float("nan")
+    return float(1.4826 * np.median(np.abs(v - np.median(v))))
+
+
+def residual_structure_test(
+    z: np.ndarray, model: np.ndarray, *, lags: tuple[int, int] = (1, 1), tile: int = TEST_TILE,
+    alpha: float = TEST_ALPHA, min_excess: float = TEST_MIN_EXCESS, step: float = float("nan"),
+    min_step_fraction: float = TEST_MIN_STEP_FRACTION,
+) -> StructureTest:
+    """Test whether the residual ``z − model`` holds sharp structure beyond the map's noise.
+
+    Parameters
+    ----------
+    z, model : ndarray, shape (ny, nx)
+        The map and the model prediction (NaN where unknown).
+    lags : (int, int)
+        Difference lags (y, x) in pixels; about two line widths, so that a
+        step the model misses shows up in full.
+    tile : int
+        Side of the test tiles, pixels.
+    alpha : float
+        Family-wise false-alarm probability.
+    min_excess : float
+        Smallest excess (relative to the noise variance) that counts.
+    step : float
+        Signal change for one added electron (NaN: no relevance check).
+    min_step_fraction : float
+        A flagged tile must hold residual differences of at least this
+        fraction of ``step`` (its ``tile``-th largest ``|difference|``: a
+        line crossing the tile gives about ``tile`` of them).
+
+    Returns
+    -------
+    StructureTest
+
+    Notes
+    -----
+    The test works on differences of neighbouring pixels (at ``lags``), of
+    the residual and of the map itself. A charge-state geometry the model
+    gets wrong (a wrong lever arm, a missed or extra line, transport
+    features) leaves *sharp* residual structure: steps where the map has a
+    line and the model has none or vice versa. A sensor response the model
+    follows only approximately, 1/f noise and slow drifts leave *smooth*
+    residuals, which differences at the scale of a line width remove, and
+    row-to-row offsets cancel in differences along x and are removed from
+    differences along y by the median of each row pair. In each band of
+    ``tile`` rows the noise scale of the differences is the MAD of the
+    map's own differences (robust to the lines and to spikes, local in
+    time so a slow gain drift is followed; the smaller of it and the
+    residual's own MAD, as the map's differences also carry the signal's
+    gradient), after Rice (1984) and Gasser,
+    Sroka & Jennen-Steinmetz (1986), who estimate the noise of a regression
+    from differences of neighbouring observations. The normalised residual
+    differences ``u`` enter as ``min(u², c²)`` (``c = TEST_CLIP``), so a
+    rare spike adds at most ``c²``; under the null (the residual is the
+    noise) each has the known mean and variance of a clipped χ²₁. Per tile
+    the excess of the mean over that expectation is compared with its
+    standard error (inflated by ``TEST_VARIANCE_FACTOR`` for neighbouring
+    differences sharing pixels); the map is flagged when some tile exceeds
+    the Bonferroni threshold ``Φ⁻¹(1 − alpha/n_tiles)`` *and* its excess
+    is at least ``min_excess``.
+
+    References
+    ----------
+    J. Rice, "Bandwidth choice for nonparametric regression", Ann. Stat. 12,
+    1215 (1984), doi:10.1214/aos/1176346788.
+    T. Gasser, L. Sroka and C. Jennen-Steinmetz, "Residual variance and
+    residual pattern in nonlinear regression", Biometrika 73, 625 (1986),
+    doi:10.1093/biomet/73.3.625.
+    """
+    from scipy.special import ndtri
+
+    z = np.asarray(z, float)
+    res = z - np.asarray(model, float)
+    ny, nx = z.shape
+    ly, lx = (max(1, int(v)) for v in lags)
+    mu, var = _clipped_moments(TEST_CLIP)
+    tids: list[np.ndarray] = []
+    mags: list[np.ndarray] = []
+    sums = np.zeros(((ny + tile - 1) // tile, (nx + tile - 1) // tile))
+    counts = np.zeros_like(sums)
+    for axis, lag in ((1, lx), (0, ly)):
+        if z.shape[axis] <= lag + 2:
+            continue
+        if axis == 1:
+            dz, dr = z[:, lag:] - z[:, :-lag], res[:, lag:] - res[:, :-lag]
+        else:
+            dz, dr = z[lag:] - z[:-lag], res[lag:] - res[:-lag]
+            # row-to-row offsets (slow-axis drift) are common to a row pair: remove them
+            med = np.median if np.isfinite(dz).all() and np.isfinite(dr).all() else np.nanmedian
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", RuntimeWarning)
+                dz = dz - med(dz, axis=1, keepdims=True)
+                dr = dr - med(dr, axis=1, keepdims=True)
+        ok = np.isfinite(dz) & np.isfinite(dr)
+        every = bool(ok.all())
+        qv = np.zeros(dz.shape)
+        for r0 in range(0, dz.shape[0], tile):
+            blk = slice(r0, r0 + tile)
+            # the map's differences carry the signal's own gradient too, the residual's a minority of
+            # structure: the smaller of the two robust scales is the noise
+            s = np.fmin(_mad_scale(dz[blk].ravel() if every else dz[blk][ok[blk]]),
+                        _mad_scale(dr[blk].ravel() if every else dr[blk][ok[blk]]))
+            if not np.isfinite(s) or s <= 0:
+                ok[blk] = False
+                continue
+            qv[blk] = np.minimum((np.nan_to_num(dr[blk]) / s) ** 2, TEST_CLIP**2)
+        tid = (np.arange(dz.shape[0])[:, None] // tile) * sums.shape[1] + np.arange(dz.shape[1])[None, :] // tile
+        tid = np.broadcast_to(tid, dz.shape)[ok]
+        sums += np.bincount(tid, weights=qv[ok], minlength=sums.size).reshape(sums.shape)
+        tids.append(tid)
+        mags.append(np.abs(dr[ok]))
+        counts += np.bincount(tid, minlength=sums.size).reshape(sums.shape)
+    use = counts >= 0.25 * tile * tile
+    n_tiles = int(use.sum())
+    if n_tiles == 0:
+        return StructureTest(False, float("nan"), float("nan"), float("nan"), (0, 0), 0, float("nan"), (ly, lx))
+    excess = np.where(use, sums / np.maximum(counts, 1) - mu, -np.inf)
+    zt = np.where(use, excess / np.sqrt(TEST_VARIANCE_FACTOR * var / np.maximum(counts, 1)), -np.inf)
+    z_crit = float(-ndtri(alpha / n_tiles))
+    hit = (zt > z_crit) & (excess >= min_excess)
+    amp = np.full(sums.shape, np.nan)  # tile-th largest |residual difference| of the significant tiles
+    if hit.any():
+        tid_all, mag_all = np.concatenate(tids), np.concatenate(mags)
+        for t in np.flatnonzero(hit.ravel()):
+            v = mag_all[tid_all == t]
+            amp.flat[t] = np.partition(v, v.size - tile)[v.size - tile] if v.size > tile else np.max(v)
+        if np.isfinite(step) and step > 0:
+            hit &= amp >= min_step_fraction * abs(step)
+    pick = np.where(hit, excess, -np.inf) if hit.any() else zt
+    k = np.unravel_index(int(np.argmax(pick)), pick.shape)
+    glob = float(sums[use].sum() / counts[use].sum() - mu)
+    where = (int(min(ny - 1, k[0] * tile + tile // 2)), int(min(nx - 1, k[1] * tile + tile // 2)))
+    return StructureTest(bool(hit.any()), float(excess[k]), float(zt[k]), z_crit, where, n_tiles, glob, (ly, lx),
+                         float(amp[k]), float(abs(step)))
+
+
+#: States below this probability at a pixel are left out of the model there (their share of the
+#: signal is below 1e-9 of a charge step).
+P_KEEP = 1e-9
+#: Sensor polynomial per charge state: basis names (x, y normalised to the fitted pixels' span).
+_BASIS = ("1", "x", "y", "xx", "xy", "yy")
+#: Smallest probability mass (Σ_pixels p_N) for a state's plane / full quadratic: a state seen at
+#: few fitted pixels keeps fewer terms, so its polynomial cannot swing wildly where it is not seen.
+MIN_MASS_PLANE = 12.0
+MIN_MASS_QUAD = 40.0
+
+
 class _Problem:
-    """The separable least-squares problem on a fixed set of pixels."""
+    """The separable least-squares problem on a fixed set of pixels.
+
+    The linear part is one quadratic polynomial per charge state (columns
+    ``p_N · φ_b`` for ``φ = 1, x, y, x², xy, y²``; fewer terms for states
+    with little probability mass among the fitted pixels).
+    """
 
     def __init__(self, px, py, pz, rows, n_min, xn, yn):
         self.px, self.py, self.pz, self.rows = px, py, pz, rows
         self.n_min = n_min
         self.xn, self.yn = xn, yn
-        self.quad = np.column_stack([xn * xn, xn * yn, yn * yn])
+        self.phi = _basis(xn, yn)  # (6, p)
+        self._cache: tuple | None = None
 
-    def design(self, theta: np.ndarray) -> tuple[sp.csr_matrix, np.ndarray]:
-        n1, n2, prob, _ = _state_weights(self.px, self.py, theta, self.n_min)
+    def design(self, theta: np.ndarray) -> tuple[sp.csr_matrix, _States]:
+        """Design matrix and the ``States`` bookkeeping (states, column of each (basis, state))."""
+        n1, n2, _, prob = self.thermal(theta)
         lo1, lo2 = n1.min(), n2.min()
         width = int(n2.max() - lo2) + 1
         sid = ((n1 - lo1) * width + (n2 - lo2)).astype(np.int64)
-        keep = prob > 1e-12
+        keep = prob > P_KEEP
         uniq, inv = np.unique(sid[keep], return_inverse=True)
         p = self.px.size
         rows = np.broadcast_to(np.arange(p), prob.shape)[keep]
         pr = prob[keep]
         ns = uniq.size
-        data = np.concatenate([pr, pr * self.xn[rows], pr * self.yn[rows]])
-        cols = np.concatenate([inv, inv + ns, inv + 2 * ns])
-        a = sp.csr_matrix((data, (np.tile(rows, 3), cols)), shape=(p, 3 * ns))
-        a = sp.hstack([a, sp.csr_matrix(self.quad)], format="csr")
+        mass = np.bincount(inv, weights=pr, minlength=ns)
+        nterms = np.where(mass >= MIN_MASS_QUAD, 6, np.where(mass >= MIN_MASS_PLANE, 3, 1))
+        colmap = np.full((6, ns), -1, np.int64)
+        use = np.arange(6)[:, None] < nterms[None, :]
+        colmap[use] = np.arange(int(use.sum()))
+        data, cols, rr = [], [], []
+        for b in range(6):
+            c = colmap[b, inv]
+            m = c >= 0
+            data.append(pr[m] * self.phi[b, rows[m]])
+            cols.append(c[m])
+            rr.append(rows[m])
+        a = sp.csr_matrix((np.concatenate(data), (np.concatenate(rr), np.concatenate(cols))),
+                          shape=(p, int(use.sum())))
         states = np.column_stack([uniq // width + lo1, uniq % width + lo2])
-        return a, states
+        return a, _States(states, colmap)
 
     @staticmethod
     def gram(a: sp.csr_matrix) -> np.ndarray:
@@ -320,35 +625,157 @@ class _Problem:
         except np.linalg.LinAlgError:
             return np.linalg.pinv(ata) @ (a.T @ z)
 
-    def predict_fixed(self, theta: np.ndarray, coef: np.ndarray, states: np.ndarray) -> np.ndarray:
-        """Model with the linear coefficients held fixed (states outside the set count 0)."""
-        n1, n2, prob, _ = _state_weights(self.px, self.py, theta, self.n_min)
-        ns = states.shape[0]
-        lo = states.min(axis=0)
-        shape = (states.max(axis=0) - lo + 1).astype(np.int64)
-        table = np.full((int(shape[0]), int(shape[1])), ns, dtype=np.int64)
-        table[(states[:, 0] - lo[0]).astype(int), (states[:, 1] - lo[1]).astype(int)] = np.arange(ns)
-        i1 = (n1 - lo[0]).astype(np.int64)
-        i2 = (n2 - lo[1]).astype(np.int64)
-        inside = (i1 >= 0) & (i2 >= 0) & (i1 < shape[0]) & (i2 < shape[1])
-        idx = np.where(inside, table[np.clip(i1, 0, shape[0] - 1), np.clip(i2, 0, shape[1] - 1)], ns)
-        a0 = np.append(coef[:ns], 0.0)
-        bx = np.append(coef[ns:2 * ns], 0.0)
-        cy = np.append(coef[2 * ns:3 * ns], 0.0)
-        lin = a0[idx] + bx[idx] * self.xn[None, :] + cy[idx] * self.yn[None, :]
-        return np.sum(prob * lin, axis=0) + self.quad @ coef[3 * ns:]
+    def thermal(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """:func:`_thermal` at the fitted pixels (the last evaluation is kept: the Jacobian follows the design)."""
+        key = theta.tobytes()
+        if self._cache is None or self._cache[0] != key:
+            self._cache = (key, _thermal(self.px, self.py, theta, self.n_min))
+        return self._cache[1]
+
+    def jacobian(self, theta: np.ndarray, coef: np.ndarray, states: _States) -> np.ndarray:
+        """Analytic Jacobian (p, 9) of the model at fixed linear coefficients."""
+        jac = _model_and_jacobian(self.px, self.py, self.phi, theta, coef, states, self.n_min, jac=True,
+                                  thermal=self.thermal(theta))[1]
+        assert jac is not None
+        return jac
 
 
-def _forward_jacobian(prob_: Any, theta: np.ndarray, coef: np.ndarray, states: Any,
-                      steps: np.ndarray) -> np.ndarray:
-    """Forward-difference Jacobian of the model at fixed linear coefficients, one step per parameter."""
-    pred0 = prob_.predict_fixed(theta, coef, states)
-    jac = np.empty((pred0.size, theta.size))
-    for k in range(theta.size):
-        tp = theta.copy()
-        tp[k] += steps[k]
-        jac[:, k] = (prob_.predict_fixed(tp, coef, states) - pred0) / steps[k]
-    return jac
+@dataclass(frozen=True)
+class _States:
+    """Charge states of the linear model and the column of each (basis term, state) (−1: not used)."""
+
+    states: np.ndarray  # (ns, 2)
+    colmap: np.ndarray  # (6, ns)
+    _lo: np.ndarray = field(init=False, repr=False, compare=False)
+    _table: np.ndarray = field(init=False, repr=False, compare=False)
+
+    def polynomials(self, coef: np.ndarray) -> np.ndarray:
+        """Coefficients (6, ns) of every state's polynomial (absent terms 0)."""
+        full = np.zeros(self.colmap.shape)
+        m = self.colmap >= 0
+        full[m] = coef[self.colmap[m]]
+        return full
+
+    def __post_init__(self) -> None:
+        st = self.states
+        lo = st.min(axis=0).astype(np.int64)
+        shape = (st.max(axis=0) - lo + 1).astype(np.int64)
+        # lookup table with a border of "not in the model" (index ns) all round
+        table = np.full((int(shape[0]) + 2, int(shape[1]) + 2), st.shape[0], dtype=np.int64)
+        table[(st[:, 0] - lo[0]).astype(int) + 1, (st[:, 1] - lo[1]).astype(int) + 1] = np.arange(st.shape[0])
+        object.__setattr__(self, "_lo", lo)
+        object.__setattr__(self, "_table", table)
+
+    def index(self, n1: np.ndarray, n2: np.ndarray) -> np.ndarray:
+        """Row in ``states`` of each ``(n1, n2)``; ``len(states)`` for a state not in the model."""
+        t = self._table
+        i1 = np.clip(n1.astype(np.int64) - (self._lo[0] - 1), 0, t.shape[0] - 1)
+        i2 = np.clip(n2.astype(np.int64) - (self._lo[1] - 1), 0, t.shape[1] - 1)
+        return t[i1, i2]
+
+
+def _chunks(n: int, size: int = 4096) -> list[slice]:
+    """Slices covering ``range(n)`` in pieces of ``size``."""
+    return [slice(i, min(i + size, n)) for i in range(0, n, size)]
+
+
+def _basis(xn: np.ndarray, yn: np.ndarray) -> np.ndarray:
+    """Polynomial basis (6, p) of the per-state sensor signal at normalised coordinates."""
+    return np.stack([np.ones_like(xn), xn, yn, xn * xn, xn * yn, yn * yn])
+
+
+def _local_steps(prob_: _Problem, theta: np.ndarray, coef: np.ndarray, states: _States,
+                 band_w: float) -> np.ndarray:
+    """Signal change for one added electron on dot1, dot2, evaluated on the lines.
+
+    At every fitted pixel near a line (the two lowest states within a few widths) whose two
+    lowest states differ by one electron on one dot, the two states' polynomials are
+    evaluated there; their difference (higher minus lower occupation) is the local step.
+    Returns per dot the median signed step, the median and the lower quartile of its size
+    (shape (2, 3); NaN without such pixels). A peak-shaped sensor's step changes size, even
+    sign, across the map, hence the sizes.
+    """
+    n1, n2, f, _ = _state_weights(prob_.px, prob_.py, theta, prob_.n_min, energies=True)
+    order = np.argsort(f, axis=0)[:2]
+    cols = np.arange(f.shape[1])
+    a1, a2 = n1[order[0], cols], n2[order[0], cols]
+    b1, b2 = n1[order[1], cols], n2[order[1], cols]
+    near = (f[order[1], cols] - f[order[0], cols]) * theta[8] < BAND_WIDTHS * band_w
+    poly = np.concatenate([states.polynomials(coef), np.zeros((6, 1))], axis=1)
+    ns = states.states.shape[0]
+    ia, ib = states.index(a1, a2), states.index(b1, b2)
+    la = np.sum(poly[:, ia] * prob_.phi, axis=0)
+    lb = np.sum(poly[:, ib] * prob_.phi, axis=0)
+    seen = near & (ia < ns) & (ib < ns)
+    out = []
+    for d1_, d2_ in ((1, 0), (0, 1)):
+        up = seen & (b1 - a1 == d1_) & (b2 - a2 == d2_)
+        dn = seen & (a1 - b1 == d1_) & (a2 - b2 == d2_)
+        v = np.r_[(lb - la)[up], (la - lb)[dn]]
+        out.append([np.median(v), np.median(np.abs(v)), np.percentile(np.abs(v), 25)] if v.size else [np.nan] * 3)
+    return np.array(out, float)
+
+
+def _thermal(x: np.ndarray, y: np.ndarray, theta: np.ndarray,
+             n_min: tuple[int | None, int | None]) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """``n1, n2`` (9, p), ``F − min F`` in units of w1 (9, p; inf for excluded states) and the probabilities."""
+    n1, n2, f, _ = _state_weights(x, y, theta, n_min, energies=True)
+    wts = np.exp(-f)
+    return n1, n2, f, wts / wts.sum(axis=0)
+
+
+def _model_and_jacobian(
+    x: np.ndarray, y: np.ndarray, phi: np.ndarray, theta: np.ndarray, coef: np.ndarray, states: _States,
+    n_min: tuple[int | None, int | None], *, jac: bool = False, thermal: tuple | None = None,
+) -> tuple[np.ndarray, np.ndarray | None, np.ndarray]:
+    """Model ``Σ_N p_N L_N`` at points, its analytic Jacobian in ``theta`` (linear part fixed) and the
+    probability carried by states outside the model (where the prediction is incomplete).
+
+    With ``E_N`` the (unscaled) energy and ``p_N ∝ exp(−E_N/w1)``,
+    ``∂p_N/∂θ = −p_N (∂E_N/∂θ − ⟨∂E/∂θ⟩)/w1``, so
+    ``∂s/∂θ = −⟨(L − ⟨L⟩) ∂E/∂θ⟩/w1`` (a thermal covariance) and
+    ``∂s/∂w1 = ⟨(L − ⟨L⟩) E⟩/w1²``. Every ``∂E/∂θ`` is a product of a
+    state factor (``n1``, ``n2``, ``n1²``, ``n1 n2``, ``n2²``) and a pixel
+    factor, so six thermal sums give all nine columns.
+    """
+    _, m21, _, dv2, _, r, _, c2, w1 = theta
+    n1, n2, f, prob = thermal if thermal is not None else _thermal(x, y, theta, n_min)
+    p = x.size
+    # only the states that carry probability at a pixel (one far from the lines, two or three near them)
+    keep = prob > P_KEEP
+    col = np.broadcast_to(np.arange(p), prob.shape)[keep]
+    pk, k1, k2 = prob[keep], n1[keep], n2[keep]
+    ns = states.states.shape[0]
+    idx = states.index(k1, k2)
+    poly = np.concatenate([states.polynomials(coef), np.zeros((6, 1))], axis=1)  # (6, ns+1)
+    lin = poly[0][idx]
+    for b in range(1, 6):
+        lin += poly[b][idx] * phi[b][col]
+    outside = np.bincount(col, weights=np.where(idx == ns, pk, 0.0), minlength=p)
+    pred = np.bincount(col, weights=pk * lin, minlength=p)
+    if not jac:
+        return pred, None, outside
+    pc = pk * (lin - pred[col])  # p_N (L_N − ⟨L⟩)
+
+    def tsum(w: np.ndarray) -> np.ndarray:
+        return np.bincount(col, weights=pc * w, minlength=p)
+
+    s1, s2 = tsum(k1), tsum(k2)
+    s11, s22, s12 = tsum(k1 * k1), tsum(k2 * k2), tsum(k1 * k2)
+    se = tsum(f[keep]) * w1  # energies above the lowest state, V
+    u2 = m21 * x + y - c2
+    out = np.empty((x.size, 9))
+    out[:, 0] = y * s1
+    out[:, 1] = r * x * s2
+    out[:, 2] = -0.5 * s11
+    out[:, 3] = -0.5 * r * s22
+    out[:, 4] = -s12
+    out[:, 5] = -(0.5 * dv2 * s22 - u2 * s2)
+    out[:, 6] = -s1
+    out[:, 7] = -r * s2
+    out[:, :8] /= w1
+    out[:, 8] = se / w1**2
+    return pred, out, outside
 
 
 def refine_model(
@@ -382,8 +809,10 @@ def refine_model(
     Returns
     -------
     Refinement
-        Tests false (with warnings) when the fit failed or the model does not
-        describe the map.
+        Tests false (with warnings) when the fit failed, the model does not
+        describe the map (sharp structure left in the residual, see
+        :func:`residual_structure_test`, with difference lags of two line
+        widths) or the charge steps are weak.
     """
     x = np.asarray(da[da.dims[-1]].values, float)
     y = np.asarray(da[da.dims[0]].values, float)
@@ -423,8 +852,8 @@ def refine_model(
     rr = np.broadcast_to(np.arange(y.size)[:, None], z.shape)
     fin = np.isfinite(z)
     allx, ally = xx[fin], yy[fin]
-    gap = _state_weights(allx, ally, theta, n_min, gap=True)[3]
-    assert gap is not None
+    # in chunks: the (9, p) temporaries of a whole map do not fit in cache (≈ 3× slower per pixel)
+    gap = np.concatenate([_state_weights(allx[s], ally[s], theta, n_min, gap=True)[3] for s in _chunks(allx.size)])
     # band: gap in units of w1 below BAND_WIDTHS·max(w, 1.5 px) (dot2 lines: width along y is w1/r)
     band_w = max(w0, 1.5 * pitch_x, 1.5 * pitch_y * r0)
     near = gap * w0 < BAND_WIDTHS * band_w
@@ -458,8 +887,7 @@ def refine_model(
         cost = float(res @ res)
         jac = None
         for it in range(1, max_iter + 1):
-            steps = np.append(1e-2 * scale[:8], 1e-3 * theta[8])
-            jac = _forward_jacobian(prob_, theta, coef, states, steps)
+            jac = prob_.jacobian(theta, coef, states)
             # Kaufman's variable-projection Jacobian: the linear coefficients follow the step
             jac = jac - a @ np.linalg.solve(ata, np.asarray(a.T @ jac))
             js = jac * scale
@@ -496,7 +924,7 @@ def refine_model(
         return failed(f"model fit to the map failed: {exc}")
 
     # ------------------------------------------------------------- covariance
-    jac = _forward_jacobian(prob_, theta, coef, states, 1e-4 * np.append(scale[:8], theta[8]))
+    jac = prob_.jacobian(theta, coef, states)
     # variable projection: remove the part of J the linear coefficients can absorb
     jp = jac - a @ np.linalg.solve(ata, np.asarray(a.T @ jac))
     n_lin = a.shape[1]
@@ -506,15 +934,24 @@ def refine_model(
     err = np.sqrt(np.clip(np.diag(cov), 0, None))
 
     # ------------------------------------------------------------- verdict
-    ns = states.shape[0]
-    a0 = coef[:ns]
-    lookup = {tuple(s): a0[i] for i, s in enumerate(states.astype(int))}
-    steps1 = [lookup[(s[0] + 1, s[1])] - a0[i] for i, s in enumerate(states.astype(int)) if (s[0] + 1, s[1]) in lookup]
-    steps2 = [lookup[(s[0], s[1] + 1)] - a0[i] for i, s in enumerate(states.astype(int)) if (s[0], s[1] + 1) in lookup]
-    g1 = float(np.median(steps1)) if steps1 else np.nan
-    g2 = float(np.median(steps2)) if steps2 else np.nan
-    all_steps = np.abs(np.r_[steps1, steps2])
-    snr = float(np.median(all_steps) / sig) if all_steps.size else float("nan")
+    st_ = _local_steps(prob_, theta, coef, states, band_w)
+    g1, g2 = float(st_[0, 0]), float(st_[1, 0])
+    sizes = st_[:, 1][np.isfinite(st_[:, 1])]
+    snr = float(np.median(sizes) / sig) if sizes.size else float("nan")
+    # the weaker family's typical step, and the size a quarter of its steps stay below
+    step_typ = float(np.min(sizes)) if sizes.size else float("nan")
+    step_min = float(np.nanmin(st_[:, 2])) if np.any(np.isfinite(st_[:, 2])) else float("nan")
+    # the model over the whole map, for the structure test (pixels near states it has not seen: NaN)
+    full = np.full(z.shape, np.nan)
+    pred_all = np.empty(allx.size)
+    for s in _chunks(allx.size):
+        pr_, _, outside = _model_and_jacobian(allx[s], ally[s], _basis((allx[s] - xm) / xs_, (ally[s] - ym) / ys_),
+                                              theta, coef, states, n_min)
+        pred_all[s] = np.where(outside < 1e-3, pr_, np.nan)
+    full[fin] = pred_all
+    lag_x = int(np.clip(np.rint(2 * theta[8] / pitch_x), 1, MAX_LAG_PX))
+    lag_y = int(np.clip(np.rint(2 * theta[8] / theta[5] / pitch_y), 1, MAX_LAG_PX))
+    structure = residual_structure_test(z, full, lags=(lag_y, lag_x), step=step_typ)
     ratio = float(np.sqrt(chi2))
     width_resolved = bool(theta[8] > 1.5 * w_lo)
     params = dict(zip(PARAM_NAMES, map(float, theta)))
@@ -524,26 +961,34 @@ def refine_model(
     params["width_px1"] = float(theta[8] / pitch_x)
     params["width_V2"] = float(theta[8] / theta[5])
     errors["width_V2"] = float(params["width_V2"] * np.hypot(err[8] / theta[8], err[5] / theta[5]))
-    step_min = float(np.nanmin(np.abs([g1, g2]))) if np.any(np.isfinite([g1, g2])) else np.nan
     if not converged:
         q = q.with_warning(f"model fit to the map did not converge in {max_iter} steps", doubtful=False)
-    if ratio > MAX_RESIDUAL_RATIO and not (ratio * sig <= 0.25 * step_min):
+    if structure.flagged:
+        iy, ix = structure.where
         q = q.with_warning(
-            f"the constant-interaction model does not describe the map: residual is {ratio:.2f}× the noise"
+            f"the constant-interaction model does not describe the map: sharp residual structure near "
+            f"({x[ix]:.4g}, {y[iy]:.4g}) V, {1 + structure.excess:.1f}× the noise variance of pixel "
+            f"differences (z = {structure.z:.0f}, threshold {structure.z_crit:.1f})"
         )
-    if np.isfinite(step_min) and step_min < 3 * sig:
+    if np.isfinite(step_typ) and step_typ < WEAK_STEP_SNR * sig:
         q = q.with_warning(
-            f"charge steps are weak: smallest step {step_min:.3g} vs noise {sig:.3g} (SNR {step_min / sig:.1f})"
+            f"charge steps are weak: typical step {step_typ:.3g} vs noise {sig:.3g} (SNR {step_typ / sig:.1f})"
+        )
+    elif np.isfinite(step_min) and step_min < WEAK_QUARTILE_SNR * sig:
+        q = q.with_warning(
+            f"charge steps are weak: a quarter of the steps are below {step_min:.3g} vs noise {sig:.3g} "
+            f"(SNR {step_min / sig:.1f}; a peak-shaped sensor near its maximum)"
         )
     return Refinement(ok=q.ok and converged, params=params, errors=errors, cov=cov, residual_ratio=ratio,
                       noise=noise, step=(g1, g2), width_resolved=width_resolved, stride=(sy, sx), n_min=n_min,
-                      quality=q, n_points=int(pz.size), iterations=it, converged=converged, snr=snr)
+                      quality=q, n_points=int(pz.size), iterations=it, converged=converged, snr=snr,
+                      structure=structure)
 
 
 #: Systematic floor added in quadrature to the refined errors of (M12, M21, ΔV1, δ1, ΔV2, δ2):
 #: absolute for M, relative for ΔV and δ, for lines one pixel wide (Fermi width w1) or broader,
 #: scaled by w1/px below (down to a tenth). The model is an idealisation (constant interaction,
-#: one plane per charge state); on generator maps with 3–4 px broad lines (w1 ≈ 1 px) the refined
+#: smooth sensor signal per charge state); on generator maps with 3–4 px broad lines (w1 ≈ 1 px) the refined
 #: values scatter about the truth by up to ≈ 0.0025 in M, 0.3 % in ΔV and 2.5 % in δ beyond their
 #: statistical errors, while on maps rendered by the model itself the pulls are ≈ 1 and on maps
 #: with sharp lines the statistical errors alone cover the truth (|pull| ≤ 0.8).
