@@ -20,15 +20,15 @@ from scipy.interpolate import RegularGridInterpolator
 from scipy.optimize import least_squares
 from skimage.filters import apply_hysteresis_threshold
 
-from stabtool.lines._batchfit import _gauss_solve, _grid_start, fit_profiles
+from stabtool.lines._batchfit import _gauss_solve, _grid_start, _normal_equations, fit_profiles
 from stabtool.lines._merge import drop_duplicates
 from stabtool.lines.edges import _block_median, _hysteresis, _nms_at
 from stabtool.lines.hough import PixelSegment, _max_filter5, _tls
 from stabtool.lines.joint import LinePoints, _design
-from stabtool.lines.refine import VERTEX_MARGIN_PX, _robust_line_fits, _row_median, _vertex_bounds
+from stabtool.lines.refine import VERTEX_MARGIN_PX, _all_profiles, _robust_line_fits, _row_median, _vertex_bounds
 from stabtool.lines.result import TransitionLine
 from stabtool.preprocess.background import _row_offsets_core
-from stabtool.preprocess.noise import MAD_TO_SIGMA, _noise_core
+from stabtool.preprocess.noise import BRACKET_MIN_SIZE, MAD_TO_SIGMA, _median_inplace, _noise_core
 
 
 def test_row_median_equals_numpy_median_over_the_valid_entries():
@@ -370,3 +370,76 @@ def test_batched_segment_conversion_equals_segment_to_line():
         for name in ("x0", "y0", "slope", "slope_stderr", "position_stderr"):
             assert getattr(g, name) == pytest.approx(getattr(w, name), rel=1e-12, abs=0), name
         np.testing.assert_allclose(g.start + g.end, w.start + w.end, rtol=1e-13, atol=0)
+
+
+def test_normal_equations_equal_the_finite_difference_jacobian():
+    # JᵀJ and Jᵀr of the step model a + b u + h F((u − u0)/w), log w the fifth parameter,
+    # against a central-difference Jacobian (common practice, no source); masked samples count zero
+    rng = np.random.default_rng(10)
+    u = np.arange(-6, 7, dtype=float)
+    n = 5
+    p = np.stack([rng.normal(0, 0.2, n), rng.normal(0, 0.02, n), rng.uniform(0.5, 2, n),
+                  rng.uniform(-1.5, 1.5, n), np.log(rng.uniform(0.4, 2.0, n))])
+    mask = rng.random((u.size, n)) > 0.15
+    y = rng.normal(0, 1, (u.size, n))
+
+    def model(q):
+        return q[0] + q[1] * u[:, None] + q[2] * 0.5 * (1 + np.tanh((u[:, None] - q[3]) / (2 * np.exp(q[4]))))
+
+    J = np.empty((5, u.size, n))
+    for i in range(5):
+        dq = np.zeros((5, 1))
+        dq[i] = 1e-6
+        J[i] = (model(p + dq) - model(p - dq)) / 2e-6 * mask
+    r = (y - model(p)) * mask
+    uT, mT, yT = np.repeat(u[:, None], n, 1), mask.astype(float), np.where(mask, y, 0.0)
+    c = {"m": mT.sum(0), "mu": (mT * uT).sum(0), "muu": (mT * uT * uT).sum(0)}
+    JTJ, g = _normal_equations(p, uT, yT, mT, "step", c)
+    np.testing.assert_allclose(JTJ, np.einsum("ikn,jkn->ijn", J, J), rtol=1e-6, atol=1e-7)
+    np.testing.assert_allclose(g, np.einsum("ikn,kn->in", J, r), rtol=1e-6, atol=1e-7)
+
+
+def test_grid_start_table_equals_the_trials_profile_by_profile():
+    # profiles sharing their offsets take the tabulated trials; one profile with other
+    # offsets makes the batch take the per-profile trials: the same starts either way
+    rng = np.random.default_rng(11)
+    u = np.arange(-6, 7, dtype=float)
+    n = 9
+    y = np.where(u[:, None] > rng.uniform(-2, 2, n), 1.0, 0.0) + rng.normal(0, 0.1, (u.size, n))
+    mask = rng.random(y.shape) > 0.1
+
+    def starts(uT, yv, mv):
+        yT, mT = np.where(mv, yv, 0.0), mv.astype(float)
+        c0 = {"m": mT.sum(0), "mu": (mT * uT).sum(0), "muu": (mT * uT * uT).sum(0),
+              "my": (mT * yT).sum(0), "muy": (mT * uT * yT).sum(0)}
+        with np.errstate(all="ignore"):
+            return _grid_start(uT, yT, mT, c0, "step")
+
+    shared = starts(np.repeat(u[:, None], n, 1), y, mask)
+    odd_u = np.concatenate([np.repeat(u[:, None], n, 1), (u + 0.5)[:, None]], 1)
+    mixed = starts(odd_u, np.concatenate([y, y[:, :1]], 1), np.concatenate([mask, mask[:, :1]], 1))
+    np.testing.assert_allclose(mixed[:, :n], shared, rtol=1e-10, atol=1e-12)
+
+
+def test_profile_rows_of_a_long_segment_are_spread_like_linspace():
+    # more rows than max_points: evenly spaced rows, np.linspace(0, count − 1, max_points) rounded
+    values = np.zeros((100, 300))
+    seg = PixelSegment(cx=150.0, cy=50.0, ux=0.0, uy=1.0, t0=-45.0, t1=45.0, n_pixels=90, rms_px=0.3)
+    short = PixelSegment(cx=40.0, cy=50.0, ux=0.0, uy=1.0, t0=-10.0, t1=10.0, n_pixels=20, rms_px=0.3)
+    seg_id, rows, *_ = _all_profiles(values, [seg, short], [True, True], 6, 80, [2.0, 2.0])
+    want_long = 7 + np.linspace(0, 86, 80).round().astype(int)  # rows 7…93 (2 px trimmed at each end)
+    np.testing.assert_array_equal(rows[seg_id == 0], want_long)
+    np.testing.assert_array_equal(rows[seg_id == 1], np.arange(42, 59))
+
+
+def test_bracketed_median_equals_numpy_median_on_large_arrays():
+    # large arrays select the middle values inside a bracket from a sample; ties, sorted
+    # input, heavy tails and both parities must give numpy's median exactly
+    from stabtool.preprocess.noise import BRACKET_MIN_SIZE, _median_inplace
+
+    rng = np.random.default_rng(12)
+    n0 = BRACKET_MIN_SIZE
+    cases = [rng.normal(size=n0), rng.normal(size=n0 + 1), rng.integers(0, 4, 3 * n0).astype(float),
+             np.sort(rng.normal(size=5 * n0 + 1)), rng.standard_cauchy(4 * n0), np.full(2 * n0, 0.25)]
+    for x in cases:
+        assert _median_inplace(x.copy()) == np.median(x)

@@ -15,10 +15,14 @@ Marquardt 1963, doi:10.1137/0111030) on all profiles in parallel.
 
 Implementation: samples are stored as (k, n) arrays (profile index last, so
 every reduction runs over the short sample axis with the long profile axis
-vectorised); the normal equations are built from the analytic Jacobian with
-one ``einsum`` and solved by Gaussian elimination written out over the whole
-batch (the 3×3 and 5×5 systems are symmetric positive definite, so no
-pivoting is needed). A singular system makes only its own profile fail.
+vectorised); the normal equations are built from the analytic Jacobian, one
+fused product-and-sum (``einsum``) per distinct entry, and solved by Gaussian
+elimination written out over the whole batch (the 3×3 and 5×5 systems are
+symmetric positive definite, so no pivoting is needed). A singular system
+makes only its own profile fail. The residual and line shape of each accepted
+step are kept for the next iteration, and the profiles that share their
+sample offsets (all of :mod:`stabtool.lines.refine`'s) keep them as one
+column and take the start grid's shapes from one table.
 """
 
 from __future__ import annotations
@@ -60,11 +64,16 @@ def _basis(u, u0, w, kind):
     (:func:`stabtool.physics.thermal.fermi_occupation` written out, so that
     ``F (1 − F) = ¼ (1 − tanh²)`` needs no second pass).
     """
-    t = np.tanh((u - u0) * (0.5 / w))
-    F = 0.5 + 0.5 * t
-    q = 0.25 - 0.25 * (t * t)  # F (1 − F)
+    t = np.subtract(u, u0)
+    t *= 0.5 / w
+    np.tanh(t, out=t)
+    q = t * t
+    q *= -0.25
+    q += 0.25  # F (1 − F)
     if kind == "step":
-        return F, q
+        t *= 0.5
+        t += 0.5  # F
+        return t, q
     return 4.0 * q, (-4.0 * q) * t  # 4F(1−F), 4F(1−F)(1−2F)
 
 
@@ -115,38 +124,74 @@ def _grid_start(uT, yT, mT, c0, kind):
     closed form (its 2×2 normal matrix is the same for every trial), so one
     trial costs four sums over the samples. Grid: u0 ∈ {−2, …, 2} px at
     w = 0.7 and 2.5 px; for steps also the crossing of the largest jump
-    between neighbouring samples at w = 0.3 px (a sharp step).
+    between neighbouring samples at w = 0.3 px (a sharp step). The first of
+    equally good trials wins. When all profiles share their sample offsets
+    (as the profiles of :mod:`stabtool.lines.refine` do), the fixed grid's
+    shapes are one table and its sums one contraction over the samples.
     """
     n = uT.shape[1]
     m, mu, muu, my, muy = (c0[k] for k in ("m", "mu", "muu", "my", "muy"))
-    with np.errstate(all="ignore"):
-        det = m * muu - mu * mu
-        bi00, bi01, bi11 = muu / det, -mu / det, m / det  # inverse of the baseline's normal matrix
-        yy = (mT * yT * yT).sum(0) - (my * (bi00 * my + bi01 * muy) + muy * (bi01 * my + bi11 * muy))
-    starts = [(c, w0) for w0 in (0.7, 2.5) for c in np.arange(-2.0, 3.0)]
-    if kind == "step":
-        starts.append((_jump_crossing(uT, yT, mT), 0.3))
+    det = m * muu - mu * mu
+    base = (muu / det, -mu / det, m / det, my, muy)  # inverse of the baseline's normal matrix; Σy, Σuy
+    bi00, bi01, bi11 = base[:3]
+    yy = (mT * yT * yT).sum(0) - (my * (bi00 * my + bi01 * muy) + muy * (bi01 * my + bi11 * muy))
+    grid = [(c, w0) for w0 in (0.7, 2.5) for c in np.arange(-2.0, 3.0)]
     best = np.empty((6, n))
     best[5] = np.inf
-    for c, w0 in starts:
-        if kind == "step":  # the shape alone (no derivative) for the grid
-            phi = 0.5 + 0.5 * np.tanh((uT - c) * (0.5 / w0))
-        else:
-            phi, _ = _basis(uT, c, w0, kind)
-        mphi = mT * phi
-        sp, sup, spp, spy = mphi.sum(0), (mphi * uT).sum(0), (mphi * phi).sum(0), (mphi * yT).sum(0)
-        with np.errstate(all="ignore"):
-            # φ and y with the baseline projected out: h = ⟨φ', y'⟩ / ⟨φ', φ'⟩
-            q0, q1 = bi00 * sp + bi01 * sup, bi01 * sp + bi11 * sup  # B⁻¹ (Σφ, Σuφ)
-            spp_r = spp - (sp * q0 + sup * q1)
-            spy_r = spy - (my * q0 + muy * q1)
-            h = spy_r / spp_r
-            ssr = yy - spy_r * h
-            a = bi00 * (my - h * sp) + bi01 * (muy - h * sup)
-            b = bi01 * (my - h * sp) + bi11 * (muy - h * sup)
-            better = np.isfinite(ssr) & (ssr < best[5])
-        np.copyto(best, np.stack([a, b, h, np.broadcast_to(c, (n,)), np.full(n, np.log(w0)), ssr]), where=better)
+    if n and (uT == uT[:, :1]).all():
+        # every profile sampled at the same offsets: the grid's shapes are one table (trials, k)
+        u1 = uT[:, 0]
+        phis = np.stack([_grid_shape(u1, c, w0, kind) for c, w0 in grid])
+        t = len(grid)
+        sums = np.einsum("tk,kn->tn", np.concatenate([phis, phis * u1, phis * phis]), mT)
+        spy = np.einsum("tk,kn->tn", phis, yT)
+        for i, (c, w0) in enumerate(grid):
+            _keep_better(best, _project(sums[i], sums[t + i], sums[2 * t + i], spy[i], base, yy), c, w0)
+    else:
+        for c, w0 in grid:
+            _grid_trial(best, _grid_shape(uT, c, w0, kind), c, w0, uT, yT, mT, base, yy)
+    if kind == "step":
+        c = _jump_crossing(uT, yT, mT)
+        _grid_trial(best, _grid_shape(uT, c, 0.3, kind), c, 0.3, uT, yT, mT, base, yy)
     return best
+
+
+def _grid_shape(u, c, w0, kind):
+    """The trial line shape φ at crossing ``c`` and width ``w0`` (no derivative)."""
+    if kind == "step":
+        return 0.5 + 0.5 * np.tanh((u - c) * (0.5 / w0))
+    return _basis(u, c, w0, kind)[0]
+
+
+def _project(sp, sup, spp, spy, base, yy):
+    """Linear parameters ``(a, b, h)`` and SSR of a trial shape from its sums Σφ, Σuφ, Σφ², Σyφ.
+
+    φ and y with the baseline projected out: ``h = ⟨φ', y'⟩ / ⟨φ', φ'⟩``.
+    """
+    bi00, bi01, bi11, my, muy = base
+    q0, q1 = bi00 * sp + bi01 * sup, bi01 * sp + bi11 * sup  # B⁻¹ (Σφ, Σuφ)
+    spp_r = spp - (sp * q0 + sup * q1)
+    spy_r = spy - (my * q0 + muy * q1)
+    h = spy_r / spp_r
+    ssr = yy - spy_r * h
+    a = bi00 * (my - h * sp) + bi01 * (muy - h * sup)
+    b = bi01 * (my - h * sp) + bi11 * (muy - h * sup)
+    return a, b, h, ssr
+
+
+def _grid_trial(best, phi, c, w0, uT, yT, mT, base, yy):
+    """Keep in ``best`` (6, n) the trial shape ``phi`` (k, n) where it fits better."""
+    mphi = mT * phi
+    fit = _project(mphi.sum(0), (mphi * uT).sum(0), (mphi * phi).sum(0), (mphi * yT).sum(0), base, yy)
+    _keep_better(best, fit, c, w0)
+
+
+def _keep_better(best, fit, c, w0):
+    """Keep in ``best`` (6, n) the trial ``fit = (a, b, h, ssr)`` at ``(c, w0)`` where its SSR is lower."""
+    a, b, h, ssr = fit
+    n = best.shape[1]
+    better = np.isfinite(ssr) & (ssr < best[5])
+    np.copyto(best, np.stack([a, b, h, np.broadcast_to(c, (n,)), np.full(n, np.log(w0)), ssr]), where=better)
 
 
 def fit_profiles(u: np.ndarray, y: np.ndarray, mask: np.ndarray, *, kind: str = "step",
@@ -159,6 +204,37 @@ def fit_profiles(u: np.ndarray, y: np.ndarray, mask: np.ndarray, *, kind: str = 
     or the damping saturated), so the cost follows the slow minority, not
     ``n × n_iter``.
     """
+    with np.errstate(all="ignore"):  # a failed profile gives NaN in its own column only
+        return _fit_batch(u, y, mask, kind, halfwidth, n_iter)
+
+
+class _Active:
+    """The samples, parameters and line shapes of the profiles still iterating, (·, n_act) arrays.
+
+    ``mu`` is ``m u``; ``u`` stays one column (k, 1) when every profile has
+    the same sample offsets (it then broadcasts, and compactions skip it).
+    """
+
+    def __init__(self, uT, yT, mT, c0, p, ssr, kind):
+        self.shared_u = bool((uT == uT[:, :1]).all())
+        self.u = uT[:, :1] if self.shared_u else uT
+        self.y, self.m, self.mu, self.c = yT, mT, mT * uT, c0
+        self.p, self.ssr = p.copy(), ssr.copy()
+        self.lam = np.full(p.shape[1], 1e-2)
+        self.phi, self.dphi = _basis(self.u, self.p[3], np.exp(self.p[4]), kind)
+        self.r = _residual(self.p, self.u, yT, mT, self.phi)
+
+    def keep(self, sel):
+        """Keep the profiles ``sel`` (boolean, n_act) only."""
+        names = ("y", "m", "mu", "phi", "dphi", "r") + (() if self.shared_u else ("u",))
+        for name in names:
+            setattr(self, name, getattr(self, name)[:, sel])
+        self.p, self.ssr, self.lam = self.p[:, sel], self.ssr[sel], self.lam[sel]
+        self.c = {key: val[sel] for key, val in self.c.items()}
+
+
+def _fit_batch(u, y, mask, kind, halfwidth, n_iter) -> BatchFit:
+    """:func:`fit_profiles` (inside its ``errstate``)."""
     n = y.shape[0]
     # (k, n) layout: reductions over the short sample axis, the batch vectorised
     uT = np.ascontiguousarray(np.asarray(u, float).T)
@@ -167,37 +243,32 @@ def fit_profiles(u: np.ndarray, y: np.ndarray, mask: np.ndarray, *, kind: str = 
     c0 = {"m": mT.sum(0), "mu": (mT * uT).sum(0), "muu": (mT * uT * uT).sum(0),
           "my": (mT * yT).sum(0), "muy": (mT * uT * yT).sum(0)}
     p = _grid_start(uT, yT, mT, c0, kind)
-    best_ssr = p[5]
+    ssr = p[5].copy()
     p = p[:5].copy()
-    lam = np.full(n, 1e-2)
-    ssr = best_ssr.copy()
     act = np.arange(n)
     frz = np.zeros(n, bool)  # active profiles already converged, left out at the next compaction
     lo_w, hi_w = np.log(0.05), np.log(4 * halfwidth)
     log_sharp = np.log(SHARP_W)
-    ua, ya, ma = uT, yT, mT
-    ca = c0
-    pa = p.copy()  # parameters of the active profiles, with their line shapes
-    phi, dphi = _basis(ua, pa[3], np.exp(pa[4]), kind)
+    a = _Active(uT, yT, mT, c0, p, ssr, kind)
     for _ in range(n_iter):
         if act.size == 0:
             break
-        A, g = _normal_equations(pa, ua, ya, ma, kind, ca, phi, dphi)
-        la = lam[act]
+        A, g = _normal_equations(a.p, a.u, a.y, a.m, kind, a.c, a.phi, a.dphi, mu=a.mu, r=a.r)
+        la = a.lam
         D = A[_DIAG, _DIAG] + 1e-12  # (5, n_act)
         A[_DIAG, _DIAG] += la * D
         step = _gauss_solve(A, g[:, None])[:, 0]
-        trial = pa + step
+        trial = a.p + step
         trial[4] = np.clip(trial[4], lo_w, hi_w)
-        st, tphi, tdphi = _ssr(trial, ua, ya, ma, kind)
-        old = ssr[act]
+        st, tphi, tdphi, tr = _ssr(trial, a.u, a.y, a.m, kind)
+        old = a.ssr
         good = np.isfinite(st) & (st < old) & ~frz
-        np.copyto(pa, trial, where=good)
-        np.copyto(phi, tphi, where=good)
-        np.copyto(dphi, tdphi, where=good)
-        ssr[act] = np.where(good, st, old)
-        la = np.where(frz, la, np.where(good, la * 0.3, la * 10))
-        lam[act] = la
+        np.copyto(a.p, trial, where=good)
+        np.copyto(a.phi, tphi, where=good)
+        np.copyto(a.r, tr, where=good)
+        np.copyto(a.dphi, tdphi, where=good)
+        a.ssr = np.where(good, st, old)
+        a.lam = np.where(frz, la, np.where(good, la * 0.3, la * 10))
         # converged: a step that moved the crossing by < CONV_U0_PX and changed
         # the residual sum by < CONV_REL_SSR of it (≈ a parameter step of a few
         # 10⁻³ σ; a failed step that small means the profile sits at the
@@ -206,25 +277,30 @@ def fit_profiles(u: np.ndarray, y: np.ndarray, mask: np.ndarray, *, kind: str = 
         # step (w < SHARP_W) is only located to its sample interval (refine.py
         # replaces its u0 by the interval's midpoint or the half-height
         # interpolation): 1e-2 px and 1e-4 of the residual do there.
-        with np.errstate(invalid="ignore"):
-            dr = np.abs(old - st)
-            du = np.abs(step[3])
-            done = ((dr <= CONV_REL_SSR * old) & (du <= CONV_U0_PX)) | (la > 1e6)
-            done |= (pa[4] < log_sharp) & (du <= 10 * CONV_U0_PX) & (dr <= 100 * CONV_REL_SSR * old)
+        dr = np.abs(old - st)
+        du = np.abs(step[3])
+        done = ((dr <= CONV_REL_SSR * old) & (du <= CONV_U0_PX)) | (a.lam > 1e6)
+        done |= (a.p[4] < log_sharp) & (du <= 10 * CONV_U0_PX) & (dr <= 100 * CONV_REL_SSR * old)
         frz |= done
-        nf = int(frz.sum())
+        nf = int(np.count_nonzero(frz))
         # drop the converged profiles from the working arrays once they are an
         # eighth of them (each compaction copies all the arrays)
         if nf and (8 * nf >= act.size or nf == act.size):
-            p[:, act] = pa
+            p[:, act] = a.p
+            ssr[act] = a.ssr
             keep = ~frz
             act = act[keep]
-            ua, ya, ma = ua[:, keep], ya[:, keep], ma[:, keep]
-            pa, phi, dphi = pa[:, keep], phi[:, keep], dphi[:, keep]
-            ca = {key: val[keep] for key, val in ca.items()}
+            a.keep(keep)
             frz = np.zeros(act.size, bool)
     if act.size:
-        p[:, act] = pa
+        p[:, act] = a.p
+        ssr[act] = a.ssr
+    return _finish(p, ssr, uT, yT, mT, c0, kind, halfwidth)
+
+
+def _finish(p, ssr, uT, yT, mT, c0, kind, halfwidth) -> BatchFit:
+    """Standard errors from ``(JᵀJ)⁻¹ s²`` at the fitted parameters ``p`` (5, n), and the usability test."""
+    n = p.shape[1]
     JTJ, _ = _normal_equations(p, uT, yT, mT, kind, c0)
     dof = np.maximum(mT.sum(0) - 5, 1)
     s2 = ssr / dof
@@ -240,47 +316,69 @@ def fit_profiles(u: np.ndarray, y: np.ndarray, mask: np.ndarray, *, kind: str = 
     sharp = w < 0.7
     err[sharp, 3] = 1.0 / np.sqrt(12.0)
     err[sharp, 4] = np.where(np.isfinite(err[sharp, 4]), err[sharp, 4], 10.0)
-    with np.errstate(invalid="ignore"):
-        ok = (
-            np.isfinite(p).all(1) & np.isfinite(err).all(1)
-            & (np.abs(p[:, 3]) < halfwidth - 0.5) & (w < halfwidth / 2)
-            & (np.abs(p[:, 2]) > 3 * err[:, 2]) & (err[:, 3] < 2.0)
-        )
+    ok = (
+        np.isfinite(p).all(1) & np.isfinite(err).all(1)
+        & (np.abs(p[:, 3]) < halfwidth - 0.5) & (w < halfwidth / 2)
+        & (np.abs(p[:, 2]) > 3 * err[:, 2]) & (err[:, 3] < 2.0)
+    )
     return BatchFit(u0=p[:, 3].copy(), u0_err=err[:, 3].copy(), width=w, width_err=w * err[:, 4],
                     height=p[:, 2].copy(), height_err=err[:, 2].copy(), ssr=ssr, ok=ok,
                     a=p[:, 0].copy(), b=p[:, 1].copy())
 
 
-def _normal_equations(pp, u, y, m, kind, c, phi=None, dphi=None):
+def _normal_equations(pp, u, y, m, kind, c, phi=None, dphi=None, *, mu=None, r=None):
     """``JᵀJ`` (5, 5, n) and ``Jᵀr`` (5, n) of the model at parameters ``pp`` (5, n); samples (k, n).
 
-    ``c`` holds the parameter-free sums ``Σm``, ``Σmu``, ``Σmu²`` per profile (the mask is 0/1).
+    ``c`` holds the parameter-free sums ``Σm``, ``Σmu``, ``Σmu²`` per profile
+    (the mask is 0/1); ``mu`` (k, n), optional, is ``m u``, and ``r`` the
+    residual there (:func:`_residual`). The Jacobian's columns are ``m``,
+    ``m u`` (constant) and ``m φ``, ``−m h/w ∂φ``, ``(u − u0)`` times the
+    latter (height, crossing and log width); as the last three are masked,
+    their sums with ``m`` need no product.
     """
     w = np.exp(pp[4])
     if phi is None:
         phi, dphi = _basis(u, pp[3], w, kind)
-    hd = m * dphi * (pp[2] / w)
-    v = u - pp[3]
-    r = m * (y - (pp[0] + pp[1] * u + pp[2] * phi))
-    J = np.empty((5,) + u.shape)
-    J[0] = m
-    J[1] = m * u
-    J[2] = m * phi
-    J[3] = -hd
-    J[4] = J[3] * v
-    # rows 0–1 of JᵀJ hold the constant sums Σm, Σmu, Σmu² and the symmetric
-    # counterparts of rows 2–4: only rows 2–4 are computed
-    JTJ = np.empty((5, 5, u.shape[1]))
-    JTJ[2:] = np.einsum("ikn,jkn->ijn", J[2:], J)
-    JTJ[:2, 2:] = JTJ[2:, :2].transpose(1, 0, 2)
+    if mu is None:
+        mu = m * u
+    J = np.empty((3,) + y.shape)
+    np.multiply(m, phi, out=J[0])
+    np.multiply(m, dphi, out=J[1])
+    J[1] *= -(pp[2] / w)  # ∂/∂u0 = −(h/w) m ∂φ
+    np.subtract(u, pp[3], out=J[2])
+    J[2] *= J[1]  # ∂/∂log w = (u − u0) ∂/∂u0
+    if r is None:
+        r = _residual(pp, u, y, m, phi)
+    JTJ = np.empty((5, 5, y.shape[1]))
     JTJ[0, 0], JTJ[0, 1], JTJ[1, 1] = c["m"], c["mu"], c["muu"]
     JTJ[1, 0] = JTJ[0, 1]
-    g = np.einsum("ikn,kn->in", J, r)
+    g = np.empty((5, y.shape[1]))
+    r.sum(0, out=g[0])
+    np.einsum("kn,kn->n", mu, r, out=g[1])
+    np.einsum("ikn,kn->in", J, r, out=g[2:])
+    J.sum(1, out=JTJ[2:, 0])
+    np.einsum("ikn,kn->in", J, mu, out=JTJ[2:, 1])
+    for i in range(3):  # the six distinct products of the parameter-dependent columns
+        for j in range(i, 3):
+            np.einsum("kn,kn->n", J[i], J[j], out=JTJ[2 + i, 2 + j])
+            if j > i:
+                JTJ[2 + j, 2 + i] = JTJ[2 + i, 2 + j]
+    JTJ[:2, 2:] = JTJ[2:, :2].transpose(1, 0, 2)
     return JTJ, g
 
 
+def _residual(pp, u, y, m, phi):
+    """Masked residual ``m (y − a − b u − h φ)`` (k, n)."""
+    r = pp[1] * u
+    r += pp[0]
+    r += pp[2] * phi
+    np.subtract(y, r, out=r)
+    r *= m
+    return r
+
+
 def _ssr(pp, u, y, m, kind):
-    """Residual sum per profile at parameters ``pp`` (5, n), and the line shape there."""
+    """Residual sum per profile at parameters ``pp`` (5, n); the line shape and the residual there."""
     phi, dphi = _basis(u, pp[3], np.exp(pp[4]), kind)
-    r = m * (y - (pp[0] + pp[1] * u + pp[2] * phi))
-    return (r * r).sum(0), phi, dphi
+    r = _residual(pp, u, y, m, phi)
+    return np.einsum("kn,kn->n", r, r), phi, dphi, r

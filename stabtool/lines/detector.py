@@ -17,7 +17,7 @@ from ._merge import drop_duplicates, merge_collinear
 from .edges import DEFAULT_HIGH_SIGMAS, DEFAULT_LOW_SIGMAS, EdgeScale, _edge_core, _select_scale
 from ._family import family_fit
 from .families import classify_lines, pixel_angle_deg
-from .hough import _segments_core, segment_to_line
+from .hough import _segments_core, _segments_to_lines
 from .jumps import _jumps_core
 from .refine import RefinedLine, refine_segments
 from .result import ChargeJump, LineDetection, LineFamily, TransitionLine
@@ -215,7 +215,7 @@ def _detect_core(values: np.ndarray, axes, cfg: LineDetector) -> LineDetection:
     segs = _segments_core(edges, min_length_px=cfg.min_length_px, max_gap_px=cfg.max_gap_px,
                           tolerance_px=cfg.tolerance_px, angle_step_deg=cfg.angle_step_deg, max_lines=400)
     segs = merge_collinear(segs)
-    coarse = [segment_to_line(s, axes) for s in segs]
+    coarse = _segments_to_lines(segs, axes, ["unassigned"] * len(segs))  # segment_to_line of each
     names = classify_lines(coarse, axes)
     along = []
     for line, name in zip(coarse, names):
@@ -264,7 +264,7 @@ def _detect_core(values: np.ndarray, axes, cfg: LineDetector) -> LineDetection:
                 f"straight-line slope {f.straight_slope:.4g} is biased; reporting {f.slope:.4g} from a fit "
                 f"with 1/distance bending terms ({100 * shift:.1f} % apart), itself uncertain")
     for fam in ("dot1", "dot2", "interdot"):
-        members = [replace(l, family=fam) for l, n in zip(lines, names2) if n == fam]
+        members = [l for l, n in zip(lines, names2) if n == fam]  # (their family is already set)
         key = (lambda l: l.y0) if fam == "dot2" else (lambda l: l.x0)
         members.sort(key=key)
         s, se, _ = family_slope(members)
@@ -276,7 +276,7 @@ def _detect_core(values: np.ndarray, axes, cfg: LineDetector) -> LineDetection:
             # line-by-line mean and is more precise; otherwise the robust mean of lines
             s, se = jf.slope, jf.slope_stderr
         families[fam] = LineFamily(name=fam, slope=s, slope_stderr=se, lines=tuple(members))  # type: ignore[arg-type]
-    unassigned = [replace(l, family="unassigned") for l, n in zip(lines, names2) if n == "unassigned"]
+    unassigned = [l for l, n in zip(lines, names2) if n == "unassigned"]
     heights = np.array([r.step_height for r, n in zip(refined, names2) if n in ("dot1", "dot2") and r.refined])
     snr = float(np.median(heights) / noise) if heights.size else float("nan")
     quality = assess_quality(families, tuple(unassigned), snr=snr, min_snr=cfg.min_snr,

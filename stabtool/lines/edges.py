@@ -175,22 +175,22 @@ def _block_median(a: np.ndarray, block: int) -> np.ndarray:
     ny, nx = a.shape
     by, bx = max(1, ny // block), max(1, nx // block)
     tiles = a[: by * block, : bx * block].reshape(by, block, bx, block).transpose(0, 2, 1, 3).reshape(by, bx, -1)
-    # the tiles are a fresh copy: the median by partitioning in place (= np.median)
+    # the tiles are a fresh copy: the median by partitioning in place (= np.median); for an
+    # even count one selection of the upper middle value, the lower one is the largest below it
     h = tiles.shape[2] // 2
-    if tiles.shape[2] % 2:
-        tiles.partition(h, axis=2)
-        med = tiles[:, :, h]
-    else:
-        tiles.partition([h - 1, h], axis=2)
-        med = (tiles[:, :, h - 1] + tiles[:, :, h]) / 2
+    tiles.partition(h, axis=2)
+    med = tiles[:, :, h]
+    if tiles.shape[2] % 2 == 0:
+        med = (tiles[:, :, :h].max(axis=2) + med) / 2
     cy = (np.arange(by) + 0.5) * block - 0.5
     cx = (np.arange(bx) + 0.5) * block - 0.5
     iy = np.clip(np.interp(np.arange(ny), cy, np.arange(by)), 0, by - 1)
     ix = np.clip(np.interp(np.arange(nx), cx, np.arange(bx)), 0, bx - 1)
     # bilinear interpolation is separable: along y, then along x, by gathering the
     # two neighbouring tile values (no matrix product: a multi-threaded BLAS
-    # call of this size costs ~100× more CPU than it saves on a loaded machine)
-    return _interp_rows(_interp_rows(med, iy).T, ix).T
+    # call of this size costs ~100× more CPU than it saves on a loaded machine);
+    # the second pass gathers columns, so the full-size result is written in order
+    return _interp_cols(_interp_rows(med, iy), ix)
 
 
 def _interp_rows(m: np.ndarray, pos: np.ndarray) -> np.ndarray:
@@ -200,6 +200,24 @@ def _interp_rows(m: np.ndarray, pos: np.ndarray) -> np.ndarray:
     i1 = np.minimum(i0 + 1, n - 1)
     f = (pos - i0)[:, None]
     return m[i0] * (1.0 - f) + m[i1] * f
+
+
+def _interp_cols(m: np.ndarray, pos: np.ndarray) -> np.ndarray:
+    """Columns of ``m`` linearly interpolated at fractional column positions ``pos``.
+
+    The same arithmetic as ``_interp_rows(m.T, pos).T``, computed in place
+    on two gathered full-size arrays.
+    """
+    n = m.shape[1]
+    i0 = np.clip(np.floor(pos).astype(int), 0, n - 1)
+    i1 = np.minimum(i0 + 1, n - 1)
+    f = pos - i0
+    out = m[:, i0]
+    out *= 1.0 - f
+    hi = m[:, i1]
+    hi *= f
+    out += hi
+    return out
 
 
 def _nms_at(ci: np.ndarray, ax: np.ndarray, ay: np.ndarray, mc: np.ndarray, magnitude, nx: int) -> np.ndarray:

@@ -68,18 +68,12 @@ def _all_profiles(values: np.ndarray, segs, along_x, halfwidth: int, max_points:
         return None
     ks = np.nonzero(use)[0]
     cnt = (r1 - r0 + 1)[ks]
-    if (cnt > max_points).any():
-        rows_l = []
-        for k, c in zip(ks.tolist(), cnt.tolist()):
-            rr = np.arange(r0[k], r1[k] + 1)
-            if c > max_points:
-                rr = rr[np.linspace(0, c - 1, max_points).round().astype(int)]
-            rows_l.append(rr)
-        sizes = np.array([r.size for r in rows_l])
-        rows = np.concatenate(rows_l)
-    else:
-        sizes = cnt
-        rows = np.repeat(r0[ks] - np.cumsum(cnt) + cnt, cnt) + np.arange(int(cnt.sum()))
+    # every row of a segment, or max_points of them evenly spaced
+    # (np.linspace(0, cnt − 1, max_points) rounded, for all segments at once)
+    sizes = np.minimum(cnt, max_points)
+    i = np.arange(int(sizes.sum())) - np.repeat(np.cumsum(sizes) - sizes, sizes)
+    step = np.where(cnt > max_points, (cnt - 1) / max(max_points - 1, 1), 1.0)
+    rows = np.repeat(r0[ks], sizes) + np.round(i * np.repeat(step, sizes)).astype(int)
     seg_id = np.repeat(ks, sizes)
     with np.errstate(divide="ignore", invalid="ignore"):
         gs = (b1 - b0) / (a1 - a0)
@@ -586,10 +580,11 @@ def _refine_once(segs, values, axes, *, families, along_x, halfwidth_px, max_poi
         else:
             wv, wv_err = float("nan"), float("nan")
         sign = int(np.sign(h_med[j]) * np.sign(step_p)) if kind == "step" else 0
-        line = replace(out[k].line, x0=float(x0), y0=float(y0), slope=float(slope), slope_stderr=float(slope_err),
-                       position_stderr=float(pos_err), start=(float(start[0]), float(start[1])),
-                       end=(float(end[0]), float(end[1])), width_V=float(wv), width_stderr_V=float(wv_err),
-                       n_points=int(n_keep[j]), step_sign=sign, refined=True, bend_chi2=float(bend[j]))
+        line = TransitionLine(family=out[k].line.family, x0=float(x0), y0=float(y0), slope=float(slope),
+                              slope_stderr=float(slope_err), position_stderr=float(pos_err),
+                              start=(float(start[0]), float(start[1])), end=(float(end[0]), float(end[1])),
+                              width_V=float(wv), width_stderr_V=float(wv_err), n_points=int(n_keep[j]),
+                              step_sign=sign, refined=True, bend_chi2=float(bend[j]))
         kj = keep[j]
         out[k] = RefinedLine(line=line, step_height=float(h_abs[j]), refined=True, shape=kind,
                              points=(T[j][kj], P[j][kj], S[j][kj]), along_x=along)
@@ -630,6 +625,4 @@ def _interpolated_crossings(fit: BatchFit, U: np.ndarray, Y: np.ndarray, M: np.n
     u_new = np.where(good, U[rows, j0] + frac, fit.u0)
     e_new = np.where(good, np.maximum(sn * np.sqrt((1 - frac) ** 2 + frac**2) / np.where(good, den, 1.0), 0.1),
                      fit.u0_err)
-    from dataclasses import replace as _replace
-
-    return _replace(fit, u0=u_new, u0_err=e_new, interpolated=good)
+    return replace(fit, u0=u_new, u0_err=e_new, interpolated=good)

@@ -73,13 +73,13 @@ def _row_offsets_core(values: np.ndarray) -> np.ndarray:
         cnt = fin.sum(axis=1)
         if d.size and fin.all():
             # no NaN: the plain median (in place on the scratch differences) is far faster
+            # (one selection of the upper middle value; for an even count the lower one is
+            # the largest value below it)
             h = d.shape[1] // 2
-            if d.shape[1] % 2:
-                d.partition(h, axis=1)
-                rowmed = d[:, h].copy()
-            else:
-                d.partition([h - 1, h], axis=1)
-                rowmed = (d[:, h - 1] + d[:, h]) / 2
+            d.partition(h, axis=1)
+            rowmed = d[:, h].copy()
+            if d.shape[1] % 2 == 0:
+                rowmed = (d[:, :h].max(axis=1) + rowmed) / 2
         else:
             rowmed = np.nanmedian(np.where(fin, d, np.nan), axis=1) if d.size else 0.0
         med = np.where(cnt >= 3, rowmed, 0.0)
