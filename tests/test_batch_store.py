@@ -132,3 +132,40 @@ def test_a_record_row_is_flattened_once_and_handed_out_as_a_copy():
     row["slopes.dot1"] = 0.0  # a caller editing its row does not change the record's
     assert rec.row()["slopes.dot1"] == -2.5
     assert rec == BatchRecord(file="m.nc", hash="0" * 16, status="doubtful", result=res)
+
+
+def _plain(result):
+    from stabtool.batch.store import _jsonable
+
+    return _jsonable(result)
+
+
+def test_a_record_with_a_plain_result_is_stored_as_the_converted_one():
+    """The workers send plain JSON; storing it as it is gives the same record as converting it again."""
+    result = {"slopes": {"dot1": -2.5, "dot2": None}, "m": [[1.0, 0.4], [0.45, 1.0]], "ok": True}
+    rec = BatchRecord(file="a.nc", hash="h1", status="ok", elapsed_s=float("nan"), result=_plain(result))
+    assert rec.to_dict(plain_result=True) == rec.to_dict()
+    assert json.dumps(rec.to_dict(plain_result=True)) == json.dumps(rec.to_dict())
+
+
+def test_the_table_rebuilt_with_its_cache_is_the_table_written_afresh(tmp_path):
+    """The batch rebuilds results.csv as maps arrive, reusing rendered lines: same bytes as a fresh write."""
+    from stabtool.batch.store import write_csv
+
+    def rec(i, extra=None):
+        result = {"slopes": {"dot1": -2.5 + i, "dot2": 0.1 * i}, "quality": {"ok": i % 2 == 0, "warnings": []}}
+        if extra:
+            result["new_number"] = extra  # a column the first records do not have
+        return BatchRecord(file=f"m{i}.nc", hash=f"h{i}", status="ok", order=i, elapsed_s=0.5, result=result)
+
+    cache: dict = {}
+    records = [rec(i) for i in (3, 1, 2)]
+    write_csv(tmp_path / "run.csv", records, cache=cache)
+    for more in ([rec(0)], [rec(5, extra=7.5)], [BatchRecord(file="m1.nc", hash="h1", status="failed", order=1)]):
+        records = [r for r in records if r.hash not in {m.hash for m in more}] + more  # incl. a rerun of h1
+        write_csv(tmp_path / "run.csv", records, cache=cache)
+        write_csv(tmp_path / "fresh.csv", records)
+        assert (tmp_path / "run.csv").read_bytes() == (tmp_path / "fresh.csv").read_bytes()
+    rows = list(csv.DictReader((tmp_path / "run.csv").open()))
+    assert [r["hash"] for r in rows] == ["h0", "h1", "h2", "h3", "h5"]  # input order
+    assert rows[1]["status"] == "failed" and rows[4]["new_number"] == "7.5" and rows[0]["new_number"] == ""

@@ -85,3 +85,72 @@ def test_plot_result_draws_the_same_on_a_pyplot_figure(result):
         assert "triple points" in _labels(fig.axes[0])[1]
     finally:
         plt.close(fig)
+
+
+@pytest.fixture(scope="module")
+def other_result():
+    sm = quick_double_dot("gaas-double", snr=4.0, rng=7, shape=(80, 120))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return Analyzer(refine=False)(sm.data)
+
+
+def _pixels(png: bytes) -> np.ndarray:
+    import io
+
+    from PIL import Image
+
+    with Image.open(io.BytesIO(png)) as im:
+        return np.asarray(im.convert("RGB"))
+
+
+def test_a_reused_figure_draws_a_map_as_a_fresh_one_would(result, other_result):
+    """The batch renders every map of a process on one figure: nothing of the previous map may remain."""
+    from stabtool.report.plot import _Frame, _png_of
+
+    def png(frame, res):
+        frame.draw(res, max_labels=40)
+        return _png_of(frame.fig)
+
+    fresh = png(_Frame(PLOT_DPI), result)
+    reused = _Frame(PLOT_DPI)
+    png(reused, other_result)  # another window, colour range, label count and verdict first
+    again = png(reused, result)
+    np.testing.assert_array_equal(_pixels(again), _pixels(fresh))
+    visible = [t.get_text() for t in reused.ax.texts if t.get_visible()]
+    big = [r for r in result.charge_states.regions if r["pixels"] >= 0.002 * result.data.size]
+    assert sum(t.startswith("(") for t in visible) == min(len(big), 40)
+
+
+def test_the_png_bytes_decode_to_the_same_rgb_pixels():
+    """Pillow reads the PNG (ISO/IEC 15948) back to the pixels given, channel order kept."""
+    from stabtool.report.plot import _encode_png
+
+    rng = np.random.default_rng(0)
+    rgb = rng.integers(0, 256, size=(7, 11, 3), dtype=np.uint8)
+    rgb[3:] = rgb[2]  # rows equal to the one above (Up filter gives zeros)
+    np.testing.assert_array_equal(_pixels(_encode_png(rgb)), rgb)
+
+
+def test_cached_text_lands_where_matplotlib_draws_it():
+    """Text blitted from the cache covers the same pixels as matplotlib's own text, to one pixel."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    from stabtool.report.plot import _fast_canvas
+
+    out = []
+    for canvas in (FigureCanvasAgg, _fast_canvas):
+        fig = Figure(figsize=(3, 2), dpi=PLOT_DPI)
+        canvas(fig)
+        fig.text(0.1, 0.5, "ΔV1 = 52.0 ± 0.04 mV", fontsize=9)
+        fig.text(0.9, 0.1, "PB (mV)", rotation=90, fontsize=10)
+        fig.canvas.draw()
+        fig.canvas.draw()  # the second draw comes from the cache
+        out.append(255.0 - np.asarray(fig.canvas.buffer_rgba())[..., 0])  # ink per pixel
+    ref, got = out
+    # the same glyphs: the same total ink (antialiasing spreads it differently at sub-pixel offsets)
+    assert got.sum() == pytest.approx(ref.sum(), rel=0.02)
+    for axis in (0, 1):
+        r, g = np.flatnonzero((ref > 64).any(axis=axis)), np.flatnonzero((got > 64).any(axis=axis))
+        assert abs(int(r[0]) - int(g[0])) <= 1 and abs(int(r[-1]) - int(g[-1])) <= 1

@@ -167,9 +167,14 @@ class BatchRecord:
         if self.status not in STATUSES:
             raise ValueError(f"status must be one of {STATUSES}, got {self.status!r}")
 
-    def to_dict(self) -> dict:
-        """Plain-JSON form (NaN becomes null)."""
-        return _jsonable(
+    def to_dict(self, *, plain_result: bool = False) -> dict:
+        """Plain-JSON form (NaN becomes null).
+
+        ``plain_result``: ``result`` is already plain JSON (the output of ``_jsonable``, as
+        the batch workers send it) and is taken as it is instead of being converted again
+        (a full pass over a result of thousands of numbers, once per map in the parent).
+        """
+        out = _jsonable(
             {
                 "file": self.file,
                 "hash": self.hash,
@@ -179,10 +184,13 @@ class BatchRecord:
                 "time": self.time,
                 "plot": self.plot,
                 "elapsed_s": self.elapsed_s,
-                "result": self.result,
+                "result": None if plain_result else self.result,
                 "info": self.info,
             }
         )
+        if plain_result:
+            out["result"] = self.result
+        return out
 
     @classmethod
     def from_dict(cls, d: Mapping[str, Any]) -> BatchRecord:
@@ -212,6 +220,14 @@ class BatchRecord:
             cached = self._flat_row()
             object.__setattr__(self, "_row", cached)  # frozen dataclass: a private memo
         return dict(cached)
+
+    def _row_keys(self) -> tuple[str, ...]:
+        """Column names of :meth:`row`, in order (kept with the memo)."""
+        keys = self.__dict__.get("_keys")
+        if keys is None:
+            keys = tuple(self.row())
+            object.__setattr__(self, "_keys", keys)
+        return keys
 
     def _flat_row(self) -> dict[str, Any]:
         flat = flatten_result(self.result or {})
@@ -320,15 +336,44 @@ def _cell(value: Any) -> str:
     return str(value)
 
 
-def write_csv(path: str | os.PathLike[str], records: Iterable[BatchRecord]) -> None:
-    """Write the results table as CSV, atomically."""
-    columns, rows = records_table(records)
+def write_csv(path: str | os.PathLike[str], records: Iterable[BatchRecord], *,
+              cache: dict | None = None) -> None:
+    """Write the results table as CSV, atomically.
+
+    ``cache``: a dict kept by the caller between rebuilds of the same table (the batch
+    rebuilds it every few seconds while maps arrive): each record's rendered line is
+    kept there and reused while the columns stay the same, so a rebuild formats only
+    the new records. The file is the same with or without it.
+    """
+    recs = sorted(records, key=lambda r: (r.order, r.file))
+    columns = list(BASE_COLUMNS)
+    seen = set(columns)
+    for r in recs:
+        for key in r._row_keys():
+            if key not in seen:
+                seen.add(key)
+                columns.append(key)
+    if cache is None:
+        cache = {}
+    key_cols = tuple(columns)
+    if cache.get("columns") != key_cols:
+        cache.clear()
+        cache["columns"] = key_cols
+    lines: dict = cache.setdefault("lines", {})
     buf = io.StringIO()
     writer = csv.writer(buf, lineterminator="\n")
     writer.writerow(columns)
-    for row in rows:
-        writer.writerow([_cell(row.get(c)) for c in columns])
-    atomic_write_text(path, buf.getvalue())
+    out = [buf.getvalue()]
+    for r in recs:
+        hit = lines.get(r.hash)
+        if hit is None or hit[0] is not r:  # new, or replaced by a rerun
+            row = r.row()
+            buf.seek(0)
+            buf.truncate()
+            writer.writerow([_cell(row.get(c)) for c in columns])
+            hit = lines[r.hash] = (r, buf.getvalue())
+        out.append(hit[1])
+    atomic_write_text(path, "".join(out))
 
 
 def _column_array(values: Sequence[Any]) -> np.ndarray:
@@ -403,6 +448,7 @@ class ResultStore:
         self.out_dir = Path(out_dir)
         self.records_dir = self.out_dir / self.RECORDS
         self.plots_dir = self.out_dir / "plots"
+        self._csv_cache: dict = {}  # rendered table lines, reused between rebuilds (see write_csv)
 
     def __repr__(self) -> str:
         return f"ResultStore({str(self.out_dir)!r})"
@@ -441,9 +487,12 @@ class ResultStore:
     def record_path(self, key: str) -> Path:
         return self.records_dir / f"{key}.json"
 
-    def write(self, record: BatchRecord) -> None:
-        """Store one record atomically (replacing an earlier one with the same hash)."""
-        atomic_write_text(self.record_path(record.hash), json.dumps(record.to_dict()))
+    def write(self, record: BatchRecord, *, plain_result: bool = False) -> None:
+        """Store one record atomically (replacing an earlier one with the same hash).
+
+        ``plain_result``: see :meth:`BatchRecord.to_dict`.
+        """
+        atomic_write_text(self.record_path(record.hash), json.dumps(record.to_dict(plain_result=plain_result)))
 
     def write_plot(self, name: str, data: bytes) -> str:
         """Store plot bytes atomically under ``plots/``; return the path relative to DIR."""
@@ -468,6 +517,6 @@ class ResultStore:
     def write_tables(self, records: Iterable[BatchRecord], *, netcdf: bool = True) -> None:
         """Rebuild ``results.csv`` (and ``results.nc``) from ``records``, atomically."""
         recs = list(records)
-        write_csv(self.out_dir / "results.csv", recs)
+        write_csv(self.out_dir / "results.csv", recs, cache=self._csv_cache)
         if netcdf:
             write_netcdf(self.out_dir / "results.nc", recs)

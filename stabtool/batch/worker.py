@@ -87,6 +87,12 @@ def _status(payload: Mapping[str, Any]) -> str:
 
 
 def _render_plot(result: Any) -> bytes:
+    from ..analysis import AnalysisResult
+
+    if type(result) is AnalysisResult:  # straight to bytes (no temporary file)
+        from ..report.plot import render_png
+
+        return render_png(result)
     fd, tmp = tempfile.mkstemp(prefix="stabtool-plot-", suffix=".png")
     os.close(fd)
     try:

@@ -65,21 +65,33 @@ def ground_state_labels(
     best1 = np.zeros(b1.shape, int)
     best2 = np.zeros(b2.shape, int)
     best_f = np.full(b1.shape, np.inf)
+    # the terms of F that depend on N2 only, per candidate offset (the same products as in F)
+    cand2 = []
+    for db in (-1, 0, 1, 2):
+        n2 = b2 + db
+        if n_min[1] is not None:
+            n2 = np.maximum(n2, n_min[1])
+        cand2.append((n2, 0.5 * r * dv2 * n2**2, n2 * vv))
+    f = np.empty(b1.shape)
+    better = np.empty(b1.shape, bool)
     for da in (-1, 0, 1, 2):
         n1 = b1 + da
         if n_min[0] is not None:
             n1 = np.maximum(n1, n_min[0])
         f1 = 0.5 * dv1 * n1**2  # terms of F that depend on N1 only
         g1 = n1 * uu
-        for db in (-1, 0, 1, 2):
-            n2 = b2 + db
-            if n_min[1] is not None:
-                n2 = np.maximum(n2, n_min[1])
-            f = f1 + d1 * n1 * n2 + 0.5 * r * dv2 * n2**2 - g1 - n2 * vv
-            better = f < best_f - 1e-15
-            best1 = np.where(better, n1, best1)
-            best2 = np.where(better, n2, best2)
-            best_f = np.where(better, f, best_f)
+        d1n1 = d1 * n1
+        for n2, q2, h2 in cand2:
+            # F = f1 + δ1 N1 N2 + ½ r ΔV2 N2² − N1 u − N2 v, summed left to right
+            np.multiply(d1n1, n2, out=f)
+            np.add(f1, f, out=f)
+            f += q2
+            f -= g1
+            f -= h2
+            np.less(f, best_f - 1e-15, out=better)
+            np.copyto(best1, n1, where=better)
+            np.copyto(best2, n2, where=better)
+            np.copyto(best_f, f, where=better)
     return np.stack([best1, best2], -1)
 
 
@@ -191,9 +203,17 @@ def label_charge_states(
         lo = flat.min(axis=0)
         span2 = int(flat[:, 1].max() - lo[1]) + 1
         key = (flat[:, 0] - lo[0]) * span2 + (flat[:, 1] - lo[1])
-        keys, inverse, counts = np.unique(key, return_inverse=True, return_counts=True)
-        sx = np.bincount(inverse, xx[valid], keys.size)
-        sy = np.bincount(inverse, yy[valid], keys.size)
+        n_keys = int(key.max()) + 1
+        if n_keys <= 4 * key.size:  # a table over the key range (no sort): the same sums, in pixel order
+            counts = np.bincount(key, minlength=n_keys)
+            keys = np.flatnonzero(counts)
+            sx = np.bincount(key, xx[valid], n_keys)[keys]
+            sy = np.bincount(key, yy[valid], n_keys)[keys]
+            counts = counts[keys]
+        else:
+            keys, inverse, counts = np.unique(key, return_inverse=True, return_counts=True)
+            sx = np.bincount(inverse, xx[valid], keys.size)
+            sy = np.bincount(inverse, yy[valid], keys.size)
         for kk, cnt, cx, cy in zip(keys, counts, sx, sy):
             regions.append({"n1": int(kk // span2 + lo[0]), "n2": int(kk % span2 + lo[1]), "x": float(cx / cnt),
                             "y": float(cy / cnt), "pixels": int(cnt)})

@@ -214,7 +214,8 @@ def _whitening(idx: np.ndarray, wts: np.ndarray, n_nodes: int) -> np.ndarray:
     return np.linalg.inv(np.linalg.cholesky(c))
 
 
-def _mean_charges(s0: float, t_eV: float, geo: _CutGeometry) -> tuple[np.ndarray, np.ndarray]:
+def _mean_charges(s0: float | np.ndarray, t_eV: float | np.ndarray,
+                  geo: _CutGeometry) -> tuple[np.ndarray, np.ndarray]:
     """Thermal ``⟨N1⟩, ⟨N2⟩`` (relative to the cell (N1, N2) below the segment) along the averaged cut.
 
     Four charge states around the interdot segment, constant-interaction energies relative to
@@ -228,49 +229,91 @@ def _mean_charges(s0: float, t_eV: float, geo: _CutGeometry) -> tuple[np.ndarray
     midpoint ``μ̄ = −E_Cm/2``. The occupations are evaluated on the map's pixels and
     interpolated exactly as the data were (the bilinear interpolation of a pixel-sampled line
     widens it by a fraction of a pixel, which a model evaluated on the cut reads as ``t``).
-    Returns two arrays of shape (n,).
+    Returns two arrays of shape (n,); with ``s0`` and ``t_eV`` arrays of shape (k,) (k parameter
+    points at once, as the grid scans of :func:`_fit_cut` use it), two of shape (k, n) whose
+    rows are what k separate calls give, to the last bit.
     """
+    if np.ndim(s0) or np.ndim(t_eV):
+        s0 = np.asarray(s0, float)[:, None]
+        t_eV = np.asarray(t_eV, float)[:, None]
+    # written for few NumPy calls on the few hundred pixels of a cut (this runs ~100 times per cut);
+    # every element is computed with the same operations in the same order as the formulas read
     ds = geo.node_s - s0
     eps = -geo.a_eps * ds
-    mbar = -0.5 * geo.e_cm - geo.a_mean * ds - geo.b * geo.node_o
-    omega = np.sqrt(eps * eps + 4.0 * t_eV * t_eV)
-    low = mbar - 0.5 * omega  # the lower level of the coupled pair sets the energy zero
+    mbar = -0.5 * geo.e_cm - geo.a_mean * ds
+    mbar -= geo.b * geo.node_o
+    omega = eps * eps
+    omega += 4.0 * t_eV * t_eV
+    np.sqrt(omega, out=omega)  # Ω
     beta = 1.0 / geo.kt
-    w0 = np.exp(np.clip(low * beta, -700, 50))  # E_0 = 0
-    wd = np.exp(np.clip(-(2 * mbar + geo.e_cm - low) * beta, -700, 50))
-    whigh = np.exp(-omega * beta)
-    z = w0 + wd + 1.0 + whigh
-    with np.errstate(invalid="ignore", divide="ignore"):
-        ratio = np.where(omega > 0, eps / np.where(omega > 0, omega, 1.0), 0.0)
-    n_a = 0.5 * (1.0 - ratio * np.tanh(0.5 * omega * beta))
-    pair = (1.0 + whigh) / z
+    low = mbar - 0.5 * omega  # the lower level of the coupled pair sets the energy zero
+    w0 = low * beta
+    np.exp(np.minimum(np.maximum(w0, -700.0, out=w0), 50.0, out=w0), out=w0)  # E_0 = 0
+    wd = 2 * mbar
+    wd += geo.e_cm
+    wd -= low
+    wd = np.negative(wd, out=wd)
+    wd *= beta
+    np.exp(np.minimum(np.maximum(wd, -700.0, out=wd), 50.0, out=wd), out=wd)
+    whigh = -omega * beta
+    np.exp(whigh, out=whigh)
+    z = w0 + wd
+    z += 1.0
+    z += whigh
+    if omega.all():  # Ω > 0 everywhere (t > 0, or no pixel exactly at zero detuning)
+        ratio = eps / omega
+    else:
+        with np.errstate(invalid="ignore", divide="ignore"):
+            ratio = np.where(omega > 0, eps / np.where(omega > 0, omega, 1.0), 0.0)
+    th = 0.5 * omega * beta
+    np.tanh(th, out=th)
+    th *= ratio
+    n_a = 1.0 - th
+    n_a *= 0.5
+    pair = 1.0 + whigh
+    pair /= z
     pd = wd / z
-    n1 = pair * n_a + pd
-    n2 = pair * (1.0 - n_a) + pd
-    p1 = np.einsum("mnc,mnc->n", geo.wts, n1[geo.idx]) / geo.idx.shape[0]
-    p2 = np.einsum("mnc,mnc->n", geo.wts, n2[geo.idx]) / geo.idx.shape[0]
+    n1 = pair * n_a
+    n1 += pd
+    n2 = 1.0 - n_a
+    n2 *= pair
+    n2 += pd
+    m = geo.idx.shape[0]
+    if n1.ndim == 2:  # one interpolation per parameter point (the same sums as one call each)
+        p1 = np.stack([np.einsum("mnc,mnc->n", geo.wts, row[geo.idx]) for row in n1]) / m
+        p2 = np.stack([np.einsum("mnc,mnc->n", geo.wts, row[geo.idx]) for row in n2]) / m
+        return p1, p2
+    p1 = np.einsum("mnc,mnc->n", geo.wts, n1[geo.idx]) / m
+    p2 = np.einsum("mnc,mnc->n", geo.wts, n2[geo.idx]) / m
     return p1, p2
 
 
-def _project(s: np.ndarray, g: np.ndarray, s0: float, t_eV: float, geo: _CutGeometry):
+def _project(s: np.ndarray, g: np.ndarray, s0: float, t_eV: float, geo: _CutGeometry,
+             gw: np.ndarray | None = None, charges: tuple[np.ndarray, np.ndarray] | None = None):
     """Residual and linear coefficients of ``g ≈ g0 + slope (s − s0) + c ⟨N1 − N2⟩ + c_Σ ⟨N1 + N2 − 1⟩``.
 
     The sensor is taken as linear in the two charges over the cut: ``c`` is the polarisation
     contrast, ``c_Σ`` the response to the total charge, seen only where the outer states
     (N1, N2) and (N1+1, N2+1) are populated; below a population of ``OUTER_MIN`` that column is
     left out (it would only fit noise, and its near-collinearity made the residual jump).
+    ``gw``: ``whiten @ g`` when the caller has it (the same for every call on one cut);
+    ``charges``: ``_mean_charges(s0, t_eV, geo)`` when the caller has it.
     Returns the (whitened) residual and ``(g0, slope, c, c_Σ)``.
     """
-    n1, n2 = _mean_charges(s0, t_eV, geo)
+    n1, n2 = _mean_charges(s0, t_eV, geo) if charges is None else charges
     outer = n1 + n2 - 1.0
-    cols = [np.ones_like(s), s - s0, n1 - n2]
     use_outer = float(np.max(np.abs(outer))) >= OUTER_MIN
+    a = np.empty((s.size, 4 if use_outer else 3))  # columns 1, s − s0, ⟨N1 − N2⟩[, ⟨N1 + N2 − 1⟩]
+    a[:, 0] = 1.0
+    np.subtract(s, s0, out=a[:, 1])
+    np.subtract(n1, n2, out=a[:, 2])
     if use_outer:
-        cols.append(outer)
-    a = np.stack(cols, axis=1)
-    gw = g
+        a[:, 3] = outer
     if geo.whiten is not None:  # generalised least squares: residuals in units of the pixel noise
-        a, gw = geo.whiten @ a, geo.whiten @ g
+        a = geo.whiten @ a
+        gw = geo.whiten @ g if gw is None else gw
+    else:
+        gw = g
     coef, *_ = np.linalg.lstsq(a, gw, rcond=None)
     r = gw - a @ coef
     return r, np.append(coef, 0.0) if not use_outer else coef
@@ -315,20 +358,29 @@ def _fit_cut(s: np.ndarray, g: np.ndarray, geo: _CutGeometry, *, scale_sigma: fl
     sf = float(scale_sigma) if scale_sigma > 0 else 0.0
     ds, dt = max(step_s, 1e-300), kt_ueV**2  # parameter units: s0 in sampling steps, τ in (k_B T)²
 
+    gw = geo.whiten @ g if geo.whiten is not None else None  # the same in every projection of this cut
+
     def res(s0, tau, f=1.0):
         gg = geo if f == 1.0 else geo.scaled(f)
-        return _project(s, g, s0, np.sqrt(max(tau, 0.0)) * 1e-6, gg)[0]
+        return _project(s, g, s0, np.sqrt(max(tau, 0.0)) * 1e-6, gg, gw)[0]
 
-    def cost_at(s0, tau):
-        r = res(s0, tau)
-        return float(r @ r)
+    def costs(s0s, taus):
+        """χ² of the grid points (s0, τ): the occupations of all points in one pass."""
+        s0s, taus = np.broadcast_arrays(np.asarray(s0s, float), np.asarray(taus, float))
+        t_ev = np.sqrt(np.maximum(taus, 0.0)) * 1e-6
+        p1, p2 = _mean_charges(s0s, t_ev, geo)
+        out = np.empty(s0s.size)
+        for i in range(s0s.size):
+            r = _project(s, g, float(s0s[i]), float(t_ev[i]), geo, gw, charges=(p1[i], p2[i]))[0]
+            out[i] = float(r @ r)
+        return out
 
     centres = np.linspace(s[0] + 0.15 * span, s[-1] - 0.15 * span, 21)
-    c = np.array([cost_at(c0, 0.0) for c0 in centres])
+    c = costs(centres, 0.0)
     s0 = float(centres[int(np.argmin(c))])
     t_max = 0.25 * span * geo.a_eps * 1e6
     t_grid = np.concatenate([[0.0], np.geomspace(max(0.1 * kt_ueV, 1e-3), max(t_max, kt_ueV), 8)])
-    ct = np.array([cost_at(s0, t * t) for t in t_grid])
+    ct = costs(s0, t_grid * t_grid)
     t0 = float(t_grid[int(np.argmin(ct))])
     dof = max(s.size - 7, 1)
     s2_ref = max(noise**2 if geo.whiten is not None else 0.0, float(ct.min()) / dof)
@@ -379,7 +431,7 @@ def _fit_cut(s: np.ndarray, g: np.ndarray, geo: _CutGeometry, *, scale_sigma: fl
     cov = np.linalg.pinv(jac.T @ jac) * s2
     sig_tau = float(np.sqrt(max(cov[1, 1], 0.0))) * dt
     t_fit = float(np.sqrt(max(tau, 0.0)))
-    _, coef = _project(s, g, s0, t_fit * 1e-6, geo.scaled(f_best))
+    _, coef = _project(s, g, s0, t_fit * 1e-6, geo.scaled(f_best), gw)
     contrast = float(coef[2])
     fwhm_V = polarisation_fwhm_eV(t_fit * 1e-6, geo.kt / KB_EV_PER_K) / geo.a_eps
     red = s2 / noise**2 if noise > 0 else _NAN
@@ -506,9 +558,13 @@ def tunnel_coupling_from_map(
         dz = np.diff(patch, axis=1).ravel()
         dz = dz[np.isfinite(dz)]
         pix_noise = float(1.4826 * np.median(np.abs(dz - np.median(dz))) / np.sqrt(2)) if dz.size > 8 else _NAN
+        whiten = _whitening(idx, wts, node_s.size)
+        # the occupations are evaluated only on the pixels the cut touches (about a quarter of
+        # its bounding box): the same numbers at each of them, so the same profile
+        used, inverse = np.unique(idx, return_inverse=True)
         geo = _CutGeometry(a_eps=a_eps, a_mean=0.5 * float((alpha[0] + alpha[1]) @ u), b=b_n,
-                           e_cm=abs(b_n) * float(lengths[k]), kt=kt, node_s=node_s, node_o=node_o, idx=idx, wts=wts,
-                           whiten=_whitening(idx, wts, node_s.size), pixel_noise=pix_noise)
+                           e_cm=abs(b_n) * float(lengths[k]), kt=kt, node_s=node_s[used], node_o=node_o[used],
+                           idx=inverse.reshape(idx.shape), wts=wts, whiten=whiten, pixel_noise=pix_noise)
         sv, gv = prof.s_V, prof.signal
         pf = _fit_cut(sv, gv, geo, scale_sigma=scale_sigma)
         t, t_err = pf.t_ueV, pf.error_ueV

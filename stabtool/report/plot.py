@@ -1,16 +1,40 @@
-"""Figure of an analysis: the map, the line families, triple points, charge states, key numbers."""
+"""Figure of an analysis: the map, the line families, triple points, charge states, key numbers.
+
+:func:`plot_result` draws on a pyplot (or any) Axes for interactive use;
+:func:`save_plot` and :func:`render_png` write the same content as a PNG and
+are built for a batch that renders one figure per map.
+
+Notes
+-----
+Where the time of a per-map PNG goes, and what the batch path does about it:
+
+* Figure set-up (axes, ticks, colour bar): one Agg figure per process, thread
+  and resolution is kept (:class:`_Frame`) with fixed axes positions (no
+  layout pass); per map its image, colour limits, labels and limits are
+  updated and only the per-map artists (families, triple points, labels,
+  boxes, legend) are replaced.
+* Text rasterisation (tick labels, legend, charge-state labels, the key
+  number box): the Agg renderer of these figures rasterises each distinct
+  string once per process and blits the cached glyph image afterwards
+  (:class:`_TextCacheAgg`; the whole string in one FreeType pass, as
+  matplotlib ≤ 3.10 did, instead of one call per glyph).
+* Encoding: RGB PNG straight from the canvas buffer (Pillow), zlib level 1.
+"""
 
 from __future__ import annotations
 
+import io
+import math
 import os
-from typing import Any
+import threading
+from typing import Any, ClassVar
 
 import numpy as np
 
-from ..io.atomic import atomic_savefig
+from ..io.atomic import atomic_write_bytes
 from .text import fmt_pm
 
-__all__ = ["FAMILY_COLOURS", "plot_result", "save_plot"]
+__all__ = ["FAMILY_COLOURS", "plot_result", "render_png", "save_plot"]
 
 #: Colours of the line families (colour-blind-safe Okabe–Ito palette).
 FAMILY_COLOURS = {"dot1": "#E69F00", "dot2": "#56B4E9", "interdot": "#CC79A7"}
@@ -19,6 +43,8 @@ FIGSIZE_IN = (9.5, 7.0)
 PLOT_DPI = 100
 #: zlib level of the PNGs (1: fast, files about 20 % larger than at the default 6).
 PNG_COMPRESS_LEVEL = 1
+#: Distinct text strings kept rasterised per process (the cache is emptied when full).
+TEXT_CACHE_SIZE = 4096
 
 
 def _key_numbers(res: Any) -> str:
@@ -52,14 +78,102 @@ def _key_numbers(res: Any) -> str:
     return "\n".join(rows)
 
 
-def _image(ax: Any, x: np.ndarray, y: np.ndarray, z: np.ndarray, lo: float, hi: float) -> Any:
-    """The map as an image: ``imshow`` on evenly spaced axes (fast), ``pcolormesh`` otherwise."""
-    def even(a: np.ndarray) -> bool:
-        d = np.diff(a)
-        return a.size > 1 and bool(np.all(np.abs(d - d[0]) <= 1e-3 * abs(d[0]))) and d[0] != 0
+# --------------------------------------------------------------------------- fast Agg pieces
+def _text_cache_agg() -> type:
+    """The Agg renderer subclass that rasterises each distinct string once (built on first use)."""
+    global _TEXT_CACHE_AGG
+    if _TEXT_CACHE_AGG is not None:
+        return _TEXT_CACHE_AGG
+    from matplotlib.backends.backend_agg import RendererAgg, get_hinting_flag
 
-    if not (even(x) and even(y)):
-        return ax.pcolormesh(1e3 * x, 1e3 * y, z, shading="nearest", cmap="gray", vmin=lo, vmax=hi, rasterized=True)
+    class TextCacheAgg(RendererAgg):
+        """Agg renderer whose plain (non-math) text is rasterised once per string and then blitted.
+
+        A string is laid out and rasterised in one FreeType pass (``set_text`` and
+        ``draw_glyphs_to_bitmap``, the text path of matplotlib ≤ 3.10) and the grey image
+        kept with its offsets, keyed by string, font, size, resolution and antialiasing;
+        the text is then placed on whole pixels. Any failure of this path falls back to
+        matplotlib's own ``draw_text`` for good.
+        """
+
+        cache: ClassVar[dict] = {}
+        enabled: ClassVar[bool] = True
+
+        def draw_text(self, gc, x, y, s, prop, angle, ismath=False, mtext=None):
+            cls = type(self)
+            if ismath or not cls.enabled or _has_font_features(mtext):
+                return super().draw_text(gc, x, y, s, prop, angle, ismath=ismath, mtext=mtext)
+            aa = bool(gc.get_antialiased())
+            key = (s, hash(prop), prop.get_size_in_points(), self.dpi, aa)
+            hit = cls.cache.get(key)
+            try:
+                if hit is None:
+                    font = self._prepare_font(prop)
+                    font.set_text(s, 0, flags=get_hinting_flag())
+                    font.draw_glyphs_to_bitmap(antialiased=aa)
+                    xo, yo = font.get_bitmap_offset()
+                    hit = (np.array(font.get_image(), dtype=np.uint8), xo / 64.0, yo / 64.0,
+                           font.get_descent() / 64.0)
+                    if len(cls.cache) >= TEXT_CACHE_SIZE:
+                        cls.cache.clear()
+                    cls.cache[key] = hit
+                img, xo, yo, d = hit
+                rad = math.radians(angle)
+                self._renderer.draw_text_image(img, round(x + xo + d * math.sin(rad)),
+                                               round(y + yo + d * math.cos(rad)) + 1, angle, gc)
+            except (AttributeError, TypeError, ValueError):  # another matplotlib's internals
+                cls.enabled = False
+                return super().draw_text(gc, x, y, s, prop, angle, ismath=ismath, mtext=mtext)
+            return None
+
+    _TEXT_CACHE_AGG = TextCacheAgg
+    return TextCacheAgg
+
+
+_TEXT_CACHE_AGG: type | None = None
+
+
+def _has_font_features(mtext: Any) -> bool:
+    for name in ("get_fontfeatures", "get_language"):
+        get = getattr(mtext, name, None)
+        if get is not None and get():
+            return True
+    return False
+
+
+def _fast_canvas(fig: Any) -> Any:
+    """Attach an Agg canvas whose renderer caches rasterised text (see :func:`_text_cache_agg`)."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    renderer_cls = _text_cache_agg()
+
+    class _Canvas(FigureCanvasAgg):
+        def get_renderer(self, *args: Any, **kwargs: Any) -> Any:
+            r = super().get_renderer(*args, **kwargs)
+            if type(r) is not renderer_cls and type(r).__name__ == "RendererAgg":
+                r.__class__ = renderer_cls  # the subclass adds no state
+            return r
+
+    return _Canvas(fig)
+
+
+# --------------------------------------------------------------------------- drawing
+def _even(a: np.ndarray) -> bool:
+    d = np.diff(a)
+    return a.size > 1 and bool(np.all(np.abs(d - d[0]) <= 1e-3 * abs(d[0]))) and d[0] != 0
+
+
+def _map_arrays(res: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray, float, float]:
+    da = res.data
+    x = np.asarray(da[da.dims[-1]].values, float)
+    y = np.asarray(da[da.dims[0]].values, float)
+    z = np.asarray(da.values, float)
+    lo, hi = np.nanpercentile(z, [1, 99])
+    return x, y, z, float(lo), float(hi)
+
+
+def _image_geometry(x: np.ndarray, y: np.ndarray, z: np.ndarray) -> tuple[np.ndarray, tuple, str]:
+    """Data in increasing-axis order, its extent (mV) and the interpolation for ``imshow``."""
     if x[0] > x[-1]:
         x, z = x[::-1], z[:, ::-1]
     if y[0] > y[-1]:
@@ -68,23 +182,37 @@ def _image(ax: Any, x: np.ndarray, y: np.ndarray, z: np.ndarray, lo: float, hi: 
     extent = (1e3 * (x[0] - hx), 1e3 * (x[-1] + hx), 1e3 * (y[0] - hy), 1e3 * (y[-1] + hy))
     # nearest-neighbour up-sampling keeps pixels crisp (as pcolormesh would); large maps are filtered
     interp = "nearest" if max(z.shape) <= 600 else "antialiased"
-    return ax.imshow(z, origin="lower", extent=extent, aspect="auto", cmap="gray", vmin=lo, vmax=hi,
-                     interpolation=interp)
+    return z, extent, interp
 
 
-def _draw(res: Any, ax: Any, *, cax: Any = None, max_labels: int = 40) -> Any:
-    """Draw ``res`` on ``ax`` (colour bar in ``cax`` when given); return the image artist."""
+def _image(ax: Any, x: np.ndarray, y: np.ndarray, z: np.ndarray, lo: float, hi: float) -> Any:
+    """The map as an image on evenly spaced axes (fast), ``pcolormesh`` otherwise."""
+    if not (_even(x) and _even(y)):
+        return ax.pcolormesh(1e3 * x, 1e3 * y, z, shading="nearest", cmap="gray", vmin=lo, vmax=hi, rasterized=True)
+    zz, extent, interp = _image_geometry(x, y, z)
+    from matplotlib.image import AxesImage
+
+    im = AxesImage(ax, cmap="gray", interpolation=interp, origin="lower")
+    im.set_data(zz)
+    im.set_clim(lo, hi)
+    ax.set_aspect("auto")
+    im.set_extent(extent)
+    ax.add_image(im)
+    return im
+
+
+def _overlays(res: Any, ax: Any, *, n_pixels: int, max_labels: int, texts: _TextPool | None = None) -> None:
+    """Everything on top of the map: families, triple points, labels, legend, boxes, axis texts.
+
+    With ``texts`` (a reused frame's pool) the charge-state labels and the two boxes are
+    updated in place from map to map (surplus ones hidden) instead of being created anew.
+    """
+    if texts is not None:
+        texts.start()
     from matplotlib.collections import LineCollection
+    from matplotlib.lines import Line2D
 
-    fig = ax.figure
     da = res.data
-    x = np.asarray(da[da.dims[-1]].values, float)
-    y = np.asarray(da[da.dims[0]].values, float)
-    z = np.asarray(da.values, float)
-    lo, hi = np.nanpercentile(z, [1, 99])
-    mesh = _image(ax, x, y, z, lo, hi)
-    cb = fig.colorbar(mesh, cax=cax) if cax is not None else fig.colorbar(mesh, ax=ax, pad=0.01)
-    cb.set_label(f"{da.name or 'signal'} ({da.attrs.get('units', 'a.u.')})")
     d = res.diagram
     aside: list[np.ndarray] = []
     for i_fam, (fam, lines) in enumerate((("dot1", d.lines1), ("dot2", d.lines2), ("interdot", d.interdot))):
@@ -106,31 +234,91 @@ def _draw(res: Any, ax: Any, *, cax: Any = None, max_labels: int = 40) -> Any:
                                          label="set aside"), autolim=False)
     tp = res.triple_points
     if tp.size:
-        ax.plot(1e3 * tp[:, 0], 1e3 * tp[:, 1], "o", ms=3.5, mfc="white", mec="k", mew=0.6, ls="none",
-                label="triple points")
+        ax.add_line(Line2D(1e3 * tp[:, 0], 1e3 * tp[:, 1], marker="o", ms=3.5, mfc="white", mec="k", mew=0.6,
+                           ls="none", color="k", label="triple points"))
     cs = res.charge_states
     if cs is not None:
         regions = sorted(cs.regions, key=lambda r: -r["pixels"])[:max_labels]
-        minpix = 0.002 * z.size
-        for r in regions:
-            if r["pixels"] < minpix:
-                continue
-            ax.text(1e3 * r["x"], 1e3 * r["y"], f"({r['n1']},{r['n2']})", ha="center", va="center", fontsize=7,
-                    color="#1a1a1a", bbox={"boxstyle": "round,pad=0.15", "fc": "white", "ec": "none", "alpha": 0.65})
+        minpix = 0.002 * n_pixels
+        shown = [r for r in regions if r["pixels"] >= minpix]
+        for i, r in enumerate(shown):
+            _text(ax, texts, ("label", i), 1e3 * r["x"], 1e3 * r["y"], f"({r['n1']},{r['n2']})", ha="center",
+                  va="center", fontsize=7, color="#1a1a1a",
+                  bbox={"boxstyle": "round,pad=0.15", "fc": "white", "ec": "none", "alpha": 0.65})
         kind = "absolute" if all(cs.absolute) else ("relative" if not any(cs.absolute) else "partly absolute")
-        ax.plot([], [], " ", label=f"(N1,N2): {kind}")
-    ax.set_xlim(1e3 * x.min(), 1e3 * x.max())
-    ax.set_ylim(1e3 * y.min(), 1e3 * y.max())
+        ax.add_line(Line2D([], [], ls="none", marker="None", color="k", label=f"(N1,N2): {kind}"))
     ax.set_xlabel(f"{res.x_gate} (mV)")
     ax.set_ylabel(f"{res.y_gate} (mV)")
     ax.set_title(str(da.attrs.get("source", da.name or "map")).split(os.sep)[-1], fontsize=10)
     ax.legend(loc="upper right", fontsize=8, framealpha=0.85)
-    ax.text(0.01, 0.99, _key_numbers(res), transform=ax.transAxes, va="top", ha="left", fontsize=7.5,
-            family="monospace", bbox={"boxstyle": "round", "fc": "white", "ec": "0.5", "alpha": 0.85})
+    # the boxes above the charge-state labels (zorder 3) whatever the order the artists were made in
+    _text(ax, texts, "key", 0.01, 0.99, _key_numbers(res), transform=ax.transAxes, va="top", ha="left", zorder=4,
+          fontsize=7.5, family="monospace", bbox={"boxstyle": "round", "fc": "white", "ec": "0.5", "alpha": 0.85})
     if not res.quality.ok and res.quality.warnings:
-        ax.text(0.01, 0.01, "\n".join("! " + w[:110] for w in res.quality.doubts_first()[:4]), transform=ax.transAxes,
-                va="bottom", ha="left", fontsize=6.5, color="#b00000",
-                bbox={"boxstyle": "round", "fc": "white", "ec": "#b00000", "alpha": 0.85})
+        _text(ax, texts, "doubts", 0.01, 0.01, "\n".join("! " + w[:110] for w in res.quality.doubts_first()[:4]),
+              transform=ax.transAxes, va="bottom", ha="left", zorder=4, fontsize=6.5, color="#b00000",
+              bbox={"boxstyle": "round", "fc": "white", "ec": "#b00000", "alpha": 0.85})
+    if texts is not None:
+        texts.hide_unused()
+
+
+class _TextPool:
+    """Text artists of a reused frame, by key: moved and relabelled from map to map, unused ones hidden.
+
+    A key's artist keeps the properties it was created with, so a key always gets the same
+    style arguments.
+    """
+
+    def __init__(self) -> None:
+        self.artists: dict[Any, Any] = {}
+        self.used: set[Any] = set()
+
+    def start(self) -> None:
+        self.used = set()
+
+    def text(self, ax: Any, key: Any, x: float, y: float, s: str, **kwargs: Any) -> None:
+        self.used.add(key)
+        t = self.artists.get(key)
+        if t is None:
+            self.artists[key] = ax.text(x, y, s, **kwargs)
+        else:
+            t.set_position((x, y))
+            t.set_text(s)
+            t.set_visible(True)
+
+    def hide_unused(self) -> None:
+        for key, t in self.artists.items():
+            if key not in self.used:
+                t.set_visible(False)
+
+
+def _text(ax: Any, texts: _TextPool | None, key: Any, x: float, y: float, s: str, **kwargs: Any) -> None:
+    """``ax.text(x, y, s, **kwargs)``, or the pooled artist ``key`` of a reused frame."""
+    if texts is None:
+        ax.text(x, y, s, **kwargs)
+    else:
+        texts.text(ax, key, x, y, s, **kwargs)
+
+
+def _set_limits(ax: Any, x: np.ndarray, y: np.ndarray) -> None:
+    ax.set_xlim(1e3 * x.min(), 1e3 * x.max())
+    ax.set_ylim(1e3 * y.min(), 1e3 * y.max())
+
+
+def _colour_label(res: Any) -> str:
+    da = res.data
+    return f"{da.name or 'signal'} ({da.attrs.get('units', 'a.u.')})"
+
+
+def _draw(res: Any, ax: Any, *, cax: Any = None, max_labels: int = 40) -> Any:
+    """Draw ``res`` on ``ax`` (colour bar in ``cax`` when given); return the image artist."""
+    fig = ax.figure
+    x, y, z, lo, hi = _map_arrays(res)
+    mesh = _image(ax, x, y, z, lo, hi)
+    cb = fig.colorbar(mesh, cax=cax) if cax is not None else fig.colorbar(mesh, ax=ax, pad=0.01)
+    cb.set_label(_colour_label(res))
+    _overlays(res, ax, n_pixels=z.size, max_labels=max_labels)
+    _set_limits(ax, x, y)
     return mesh
 
 
@@ -154,12 +342,11 @@ def plot_result(res: Any, *, ax: Any = None, max_labels: int = 40) -> Any:
 
 def _fixed_layout_figure(dpi: float) -> tuple[Any, Any, Any]:
     """A pyplot-free Agg figure with fixed axes and colour-bar positions (no layout pass)."""
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
     w, h = FIGSIZE_IN
     fig = Figure(figsize=FIGSIZE_IN, dpi=dpi)
-    FigureCanvasAgg(fig)
+    _fast_canvas(fig)
     # margins in inches: tick labels + axis label on the left and bottom, title on top,
     # colour bar with its label on the right
     left, bottom, top, right = 0.80, 0.60, 0.35, 1.15
@@ -169,22 +356,100 @@ def _fixed_layout_figure(dpi: float) -> tuple[Any, Any, Any]:
     return fig, ax, cax
 
 
-def save_plot(res: Any, path: str | os.PathLike[str], *, max_labels: int = 40, dpi: float | None = None) -> None:
-    """Write the figure of ``res`` as PNG to ``path`` atomically (temp file + os.replace).
+class _Frame:
+    """A reusable per-map figure: fixed axes, colour bar and map image; per-map artists replaced.
 
-    Rendered without pyplot on the Agg canvas with a fixed layout (no
-    tight-layout pass) at ``dpi`` (default :data:`PLOT_DPI`); the content
-    is that of :func:`plot_result`.
+    Only maps on evenly spaced axes use it (their image can be updated in place);
+    the others are drawn on a fresh figure.
+    """
+
+    def __init__(self, dpi: float) -> None:
+        self.fig, self.ax, self.cax = _fixed_layout_figure(dpi)
+        self.image: Any = None
+        self.colorbar: Any = None
+        self.texts = _TextPool()
+
+    def draw(self, res: Any, *, max_labels: int) -> None:
+        ax = self.ax
+        for artist in (*ax.collections, *ax.lines):
+            artist.remove()
+        legend = ax.get_legend()
+        if legend is not None:
+            legend.remove()
+        x, y, z, lo, hi = _map_arrays(res)
+        if self.image is None:
+            self.image = _image(ax, x, y, z, lo, hi)
+            self.colorbar = self.fig.colorbar(self.image, cax=self.cax)
+        else:
+            zz, extent, interp = _image_geometry(x, y, z)
+            self.image.set_data(zz)
+            self.image.set_interpolation(interp)
+            self.image.set_extent(extent)
+            self.image.set_clim(lo, hi)  # the colour bar follows (update_normal)
+        self.colorbar.set_label(_colour_label(res))
+        _overlays(res, ax, n_pixels=z.size, max_labels=max_labels, texts=self.texts)
+        _set_limits(ax, x, y)
+
+
+_LOCAL = threading.local()  # one frame per thread (dask workers run tasks in threads)
+
+
+def _frame(dpi: float) -> _Frame:
+    frames = getattr(_LOCAL, "frames", None)
+    if frames is None:
+        frames = _LOCAL.frames = {}
+    fr = frames.get(dpi)
+    if fr is None:
+        fr = frames[dpi] = _Frame(dpi)
+    return fr
+
+
+def _encode_png(rgb: np.ndarray, *, level: int = PNG_COMPRESS_LEVEL) -> bytes:
+    """PNG bytes of an (h, w, 3) uint8 image (Pillow's encoder at zlib ``level``)."""
+    from PIL import Image  # a dependency of matplotlib
+
+    buf = io.BytesIO()
+    Image.fromarray(np.ascontiguousarray(rgb, dtype=np.uint8)).save(buf, format="PNG", compress_level=level)
+    return buf.getvalue()
+
+
+def _png_of(fig: Any) -> bytes:
+    """Render ``fig`` and encode its canvas as an RGB PNG (:func:`_encode_png`)."""
+    fig.canvas.draw()
+    return _encode_png(np.asarray(fig.canvas.buffer_rgba())[..., :3])
+
+
+def render_png(res: Any, *, max_labels: int = 40, dpi: float | None = None) -> bytes:
+    """The figure of ``res`` (content of :func:`plot_result`) as PNG bytes.
+
+    Drawn without pyplot on a fixed-layout Agg figure that is reused from
+    map to map in this process and thread (see the module notes), at
+    ``dpi`` (default :data:`PLOT_DPI`).
     """
     import matplotlib as mpl
 
-    path = os.fspath(path)
+    dpi = PLOT_DPI if dpi is None else float(dpi)
     # the default colours "C0" of lines and patches are looked up in the property cycle,
     # which rcParams deep-copies on every access (~1 ms each, ~50 per figure): name them
     with mpl.rc_context(_EXPLICIT_DEFAULT_COLOURS):
-        fig, ax, cax = _fixed_layout_figure(PLOT_DPI if dpi is None else float(dpi))
+        da = res.data
+        x = np.asarray(da[da.dims[-1]].values, float)
+        y = np.asarray(da[da.dims[0]].values, float)
+        if _even(x) and _even(y):
+            fr = _frame(dpi)
+            fr.draw(res, max_labels=max_labels)
+            return _png_of(fr.fig)
+        fig, ax, cax = _fixed_layout_figure(dpi)
         _draw(res, ax, cax=cax, max_labels=max_labels)
-        atomic_savefig(fig, path, pil_kwargs={"compress_level": PNG_COMPRESS_LEVEL})
+        return _png_of(fig)
 
 
-_EXPLICIT_DEFAULT_COLOURS = {"lines.color": "#1f77b4", "patch.facecolor": "#1f77b4"}
+def save_plot(res: Any, path: str | os.PathLike[str], *, max_labels: int = 40, dpi: float | None = None) -> None:
+    """Write the figure of ``res`` as PNG to ``path`` atomically (temp file + os.replace).
+
+    The bytes of :func:`render_png`.
+    """
+    atomic_write_bytes(path, render_png(res, max_labels=max_labels, dpi=dpi), fsync=False)
+
+
+_EXPLICIT_DEFAULT_COLOURS: Any = {"lines.color": "#1f77b4", "patch.facecolor": "#1f77b4"}
