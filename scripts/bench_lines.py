@@ -33,7 +33,8 @@ from stabtool.mapdata import make_map
 
 #: pipeline steps timed by --stages (names in stabtool.lines.detector)
 #: (not nested in one another; names missing from the detector are skipped)
-STAGES = ("_noise_core", "_row_offsets_core", "_jumps_core", "_edge_core", "_select_edges", "_segments_core",
+STAGES = ("_noise_core", "_row_offsets_core", "_jumps_core", "_edge_core", "_select_edges", "_offsets_clear_of_lines",
+          "_segments_core",
           "merge_collinear", "classify_lines", "refine_segments", "drop_duplicates", "family_fit", "assess_quality")
 
 

@@ -443,3 +443,51 @@ def test_bracketed_median_equals_numpy_median_on_large_arrays():
              np.sort(rng.normal(size=5 * n0 + 1)), rng.standard_cauchy(4 * n0), np.full(2 * n0, 0.25)]
     for x in cases:
         assert _median_inplace(x.copy()) == np.median(x)
+
+
+def test_otsu_split_equals_the_loop_over_split_points():
+    # the between-class split of the angle histogram (Otsu 1979), written as the plain loop
+    from stabtool.lines.families import _otsu_split
+
+    def loop(a, w):
+        o = np.argsort(a)
+        a, w = a[o], w[o]
+        best, thr = -1.0, float("nan")
+        W = w.sum()
+        for k in range(1, a.size):
+            w0, w1 = w[:k].sum(), w[k:].sum()
+            if w0 < 0.05 * W or w1 < 0.05 * W:
+                continue
+            m0, m1 = (w[:k] * a[:k]).sum() / w0, (w[k:] * a[k:]).sum() / w1
+            v0 = (w[:k] * (a[:k] - m0) ** 2).sum() / w0
+            v1 = (w[k:] * (a[k:] - m1) ** 2).sum() / w1
+            score = abs(m1 - m0) / np.sqrt(0.5 * (v0 + v1) + 1.0)
+            if score > best:
+                best, thr = score, 0.5 * (a[k - 1] + a[k])
+        return thr, best
+
+    rng = np.random.default_rng(5)
+    for _ in range(200):
+        a = np.concatenate([rng.normal(70, 3, rng.integers(1, 40)), rng.normal(15, 2, rng.integers(0, 30))])
+        w = rng.integers(5, 100, a.size).astype(float)
+        (t0, s0), (t1, s1) = loop(a, w), _otsu_split(a, w)
+        if np.isnan(t0):
+            assert np.isnan(t1)
+        else:
+            assert t1 == t0
+            assert s1 == pytest.approx(s0, rel=1e-9)
+
+
+def test_nms_direction_by_comparisons_equals_the_quantised_angle():
+    from stabtool.lines.edges import _TAN_22, _TAN_67
+
+    rng = np.random.default_rng(6)
+    ax, ay = rng.normal(size=20000), rng.normal(size=20000)
+    ax[:100], ay[100:200] = 0.0, 0.0
+    nx = 97
+    ang = np.mod(np.arctan2(ay, ax), np.pi)
+    q = np.floor((ang + np.pi / 8) / (np.pi / 4)).astype(int) % 4
+    want = np.array([1, nx + 1, nx, nx - 1])[q]
+    bx, by = np.abs(ax), np.abs(ay)
+    got = np.where(by <= _TAN_22 * bx, 1, np.where(by >= _TAN_67 * bx, nx, np.where((ax > 0) == (ay > 0), nx + 1, nx - 1)))
+    np.testing.assert_array_equal(got, want)

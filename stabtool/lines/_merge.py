@@ -81,24 +81,31 @@ def drop_duplicates(lines: list, px_scale: tuple[float, float], *, max_distance_
     a = np.array([[ln.start[0] / sx, ln.start[1] / sy] for ln in lines])
     b = np.array([[ln.end[0] / sx, ln.end[1] / sy] for ln in lines])
     fam = np.array([str(ln.family) for ln in lines])
-    # 9 sample points of every line i, projected on every line j (all pairs at once)
-    ts = np.linspace(0, 1, 9)
-    P = a[:, None, :] + ts[None, :, None] * (b - a)[:, None, :]  # (i, 9, 2)
     u = b - a
     L = np.hypot(u[:, 0], u[:, 1])
     uu = u / np.where(L > 0, L, 1.0)[:, None]
-    rel = P[:, None, :, :] - a[None, :, None, :]  # (i, j, 9, 2)
-    tt = (rel * uu[None, :, None, :]).sum(-1)
-    dist = np.abs(rel[..., 0] * -uu[None, :, None, 1] + rel[..., 1] * uu[None, :, None, 0])
-    inside = (tt >= -1) & (tt <= L[None, :, None] + 1)
-    # median over the inside samples (= nanmedian of dist with the others NaN): sort, pick the middle
-    cnt = inside.sum(2)
-    srt = np.sort(np.where(inside, dist, np.inf), axis=2)
-    lo = np.clip((cnt - 1) // 2, 0, 8)[..., None]
-    hi = np.clip(cnt // 2, 0, 8)[..., None]
-    with np.errstate(invalid="ignore"):
-        med = 0.5 * (np.take_along_axis(srt, lo, 2)[..., 0] + np.take_along_axis(srt, hi, 2)[..., 0])
-    dup = (fam[:, None] == fam[None, :]) & (L[None, :] > 0) & (cnt >= 3) & (med <= max_distance_px)
+    ts = np.linspace(0, 1, 9)
+    dup = np.zeros((n, n), bool)
+    # only lines of one family can duplicate each other: all pairs of each family at once
+    for f in np.unique(fam):
+        ids = np.nonzero(fam == f)[0]
+        if ids.size < 2:
+            continue
+        A, U, UU, LL = a[ids], u[ids], uu[ids], L[ids]
+        # 9 sample points of every line i, projected on every line j
+        P = A[:, None, :] + ts[None, :, None] * U[:, None, :]  # (i, 9, 2)
+        rel = P[:, None, :, :] - A[None, :, None, :]  # (i, j, 9, 2)
+        tt = (rel * UU[None, :, None, :]).sum(-1)
+        dist = np.abs(rel[..., 0] * -UU[None, :, None, 1] + rel[..., 1] * UU[None, :, None, 0])
+        inside = (tt >= -1) & (tt <= LL[None, :, None] + 1)
+        # median over the inside samples (= nanmedian of dist with the others NaN): sort, pick the middle
+        cnt = inside.sum(2)
+        srt = np.sort(np.where(inside, dist, np.inf), axis=2)
+        lo = np.clip((cnt - 1) // 2, 0, 8)[..., None]
+        hi = np.clip(cnt // 2, 0, 8)[..., None]
+        with np.errstate(invalid="ignore"):
+            med = 0.5 * (np.take_along_axis(srt, lo, 2)[..., 0] + np.take_along_axis(srt, hi, 2)[..., 0])
+        dup[np.ix_(ids, ids)] = (LL[None, :] > 0) & (cnt >= 3) & (med <= max_distance_px)
     rank = sorted(range(n), key=lambda i: (-lines[i].n_points, lines[i].slope_stderr))
     kept = np.zeros(n, bool)
     for i in rank:

@@ -160,6 +160,43 @@ def _rescue_broad(refined, segs, work, axes, names, along, edges, width_px: floa
     return out
 
 
+#: Row offsets for the profile fits from the pixels away from the first pass's edges.
+ROW_OFFSETS_CLEAR_OF_LINES = True
+#: Pixels within this many derivative σ (the measured edge width) of an edge pixel are
+#: left out of the row-offset medians (at least ``ROW_CLEAR_MIN_PX``).
+ROW_CLEAR_WIDTHS = 3.5
+ROW_CLEAR_MIN_PX = 3
+
+
+def _offsets_clear_of_lines(values: np.ndarray, work: np.ndarray, edges: np.ndarray, scale: EdgeScale | None,
+                            excluded_rows: np.ndarray, noise: float, plain: np.ndarray) -> np.ndarray:
+    """``values`` minus row offsets measured away from the lines (see ``_masked_row_offsets``).
+
+    The first-pass offsets (all pixels of a row) find the edges; the edge
+    map, dilated by ``ROW_CLEAR_WIDTHS`` edge widths, then marks the pixels
+    whose row differences carry a line's own slope, and the offsets are
+    measured again without them. Returns ``work`` itself when no edge was found.
+    """
+    from scipy import ndimage as ndi
+
+    from ..preprocess.background import _row_offsets_core as offsets
+
+    if not edges.any():
+        return work
+    w = scale.width_px if scale is not None and np.isfinite(scale.width_px) else 0.0
+    r = max(ROW_CLEAR_MIN_PX, int(np.ceil(ROW_CLEAR_WIDTHS * w)))
+    # dilation by a (2r + 1)² square, as two moving maxima
+    near = ndi.maximum_filter1d(ndi.maximum_filter1d(edges.astype(np.uint8), 2 * r + 1, axis=0), 2 * r + 1,
+                                axis=1).astype(bool)
+    off = offsets(values, near, noise, plain)
+    if off is plain:
+        return work
+    out = values - off[:, None]
+    if excluded_rows.size:
+        out[excluded_rows] = np.nan
+    return out
+
+
 def _smoothed(values: np.ndarray, sigma_px: float) -> np.ndarray:
     """Gaussian-smoothed copy of ``values`` (NaN-aware: gaps stay NaN)."""
     from scipy import ndimage as ndi
@@ -186,7 +223,8 @@ def _detect_core(values: np.ndarray, axes, cfg: LineDetector) -> LineDetection:
     if not (np.isfinite(noise) and noise > 0):
         rng = np.nanpercentile(values, [1, 99])
         noise = max(1e-3 * float(rng[1] - rng[0]), np.finfo(float).tiny)
-    work = values - _row_offsets_core(values)[:, None]
+    plain_offsets = _row_offsets_core(values)
+    work = values - plain_offsets[:, None]
     # charge jumps
     jumps: list[ChargeJump] = []
     excluded: list[int] = []
@@ -212,6 +250,8 @@ def _detect_core(values: np.ndarray, axes, cfg: LineDetector) -> LineDetection:
     else:
         edges, *_ = _edge_core(work, cfg.sigma_px, noise, cfg.low_sigmas, cfg.high_sigmas)
         scale = None
+    if ROW_OFFSETS_CLEAR_OF_LINES:
+        work = _offsets_clear_of_lines(values, work, edges, scale, excluded_rows, noise, plain_offsets)
     segs = _segments_core(edges, min_length_px=cfg.min_length_px, max_gap_px=cfg.max_gap_px,
                           tolerance_px=cfg.tolerance_px, angle_step_deg=cfg.angle_step_deg, max_lines=400)
     segs = merge_collinear(segs)

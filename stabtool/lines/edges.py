@@ -220,6 +220,9 @@ def _interp_cols(m: np.ndarray, pos: np.ndarray) -> np.ndarray:
     return out
 
 
+_TAN_22, _TAN_67 = np.tan(np.pi / 8), np.tan(3 * np.pi / 8)
+
+
 def _nms_at(ci: np.ndarray, ax: np.ndarray, ay: np.ndarray, mc: np.ndarray, magnitude, nx: int) -> np.ndarray:
     """Non-maximum suppression at interior pixels ``ci`` (flat indices) only.
 
@@ -229,9 +232,11 @@ def _nms_at(ci: np.ndarray, ax: np.ndarray, ay: np.ndarray, mc: np.ndarray, magn
     (quantised to x, y and the two diagonals) and above that of the previous
     one (the Canny rule).
     """
-    ang = np.mod(np.arctan2(ay, ax), np.pi)
-    q = np.floor((ang + np.pi / 8) / (np.pi / 4)).astype(int) % 4  # 0: x, 1: diag, 2: y, 3: anti-diag
-    step = np.array([1, nx + 1, nx, nx - 1])[q]
+    # direction quantised by comparisons instead of angles: |ay| ≤ tan(π/8)|ax| → x,
+    # |ay| ≥ tan(3π/8)|ax| → y, else the diagonal of the sign of ax·ay
+    bx, by = np.abs(ax), np.abs(ay)
+    step = np.where(by <= _TAN_22 * bx, 1,
+                    np.where(by >= _TAN_67 * bx, nx, np.where((ax > 0) == (ay > 0), nx + 1, nx - 1)))
     return (mc >= magnitude(ci + step)) & (mc > magnitude(ci - step))
 
 

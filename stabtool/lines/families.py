@@ -33,22 +33,31 @@ def pixel_angle_deg(line: TransitionLine, axes: MapAxes) -> float:
 
 
 def _otsu_split(a: np.ndarray, w: np.ndarray) -> tuple[float, float]:
-    """Best threshold and separation score (gap / pooled spread) for 1-D weighted data."""
+    """Best threshold and separation score (gap / pooled spread) for 1-D weighted data.
+
+    All split points at once from cumulative weighted sums (the first best
+    split wins on ties, as in a loop over k).
+    """
     o = np.argsort(a)
     a, w = a[o], w[o]
-    best, thr = -1.0, float("nan")
+    if a.size < 2:
+        return float("nan"), -1.0
     W = w.sum()
-    for k in range(1, a.size):
-        w0, w1 = w[:k].sum(), w[k:].sum()
-        if w0 < 0.05 * W or w1 < 0.05 * W:
-            continue
-        m0, m1 = (w[:k] * a[:k]).sum() / w0, (w[k:] * a[k:]).sum() / w1
-        v0 = (w[:k] * (a[:k] - m0) ** 2).sum() / w0
-        v1 = (w[k:] * (a[k:] - m1) ** 2).sum() / w1
-        score = abs(m1 - m0) / np.sqrt(0.5 * (v0 + v1) + 1.0)
-        if score > best:
-            best, thr = score, 0.5 * (a[k - 1] + a[k])
-    return thr, best
+    wa, waa = w * a, w * a * a
+    w0, s0, q0 = np.cumsum(w)[:-1], np.cumsum(wa)[:-1], np.cumsum(waa)[:-1]
+    w1, s1, q1 = W - w0, wa.sum() - s0, waa.sum() - q0
+    with np.errstate(all="ignore"):
+        m0, m1 = s0 / w0, s1 / w1
+        # weighted variances Σw(a − m)²/Σw = Σwa²/Σw − m² (clipped at 0 against rounding)
+        v0 = np.maximum(q0 / w0 - m0 * m0, 0.0)
+        v1 = np.maximum(q1 / w1 - m1 * m1, 0.0)
+        score = np.abs(m1 - m0) / np.sqrt(0.5 * (v0 + v1) + 1.0)
+    valid = (w0 >= 0.05 * W) & (w1 >= 0.05 * W)
+    if not valid.any():
+        return float("nan"), -1.0
+    score = np.where(valid, score, -np.inf)
+    j = int(np.argmax(score))
+    return 0.5 * (a[j] + a[j + 1]), float(score[j])
 
 
 def _members(a: np.ndarray, w: np.ndarray, sel: np.ndarray, floor_deg: float) -> np.ndarray:

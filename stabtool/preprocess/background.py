@@ -61,8 +61,29 @@ def remove_background(da: xr.DataArray, *, sigma_px: float | None = None) -> xr.
     return da.copy(data=_background_core(values, s))
 
 
-def _row_offsets_core(values: np.ndarray) -> np.ndarray:
-    """Per-row offsets (length ny) from medians of consecutive-row differences."""
+#: With an exclusion mask, a row step needs at least this fraction of the row's differences left.
+MIN_KEPT_FRACTION = 0.25
+#: Row spans (rows) over which the tests below accumulate the row steps.
+TEST_SPANS_ROWS = (1, 4, 16)
+#: The lines bias the plain row medians when, over some span, the plain and the clear medians
+#: differ by more than this many noise σ of that difference.
+BIAS_Z = 5.0
+#: Row jitter or drift: the clear rows' steps, accumulated over a span, scatter about their median
+#: by more than this many noise σ (robust scatter).
+JITTER_Z = 2.0
+
+
+def _row_offsets_core(values: np.ndarray, exclude: np.ndarray | None = None, noise: float | None = None,
+                      plain: np.ndarray | None = None) -> np.ndarray:
+    """Per-row offsets (length ny) from medians of consecutive-row differences.
+
+    With ``exclude`` (bool, shape of ``values``) and the white-noise σ
+    ``noise``, the pixels marked are left out of the medians (see
+    :func:`_masked_row_offsets`; ``plain``, optional, is this function's
+    result without ``exclude``, if already at hand).
+    """
+    if exclude is not None:
+        return _masked_row_offsets(values, exclude, float(noise) if noise is not None else float("nan"), plain)
     d = np.diff(values, axis=0)
     steps = np.zeros(values.shape[0])
     import warnings
@@ -87,6 +108,102 @@ def _row_offsets_core(values: np.ndarray) -> np.ndarray:
     steps[1:] = med
     off = np.cumsum(steps)
     return off - np.median(off)
+
+
+def _masked_row_offsets(values: np.ndarray, exclude: np.ndarray, noise: float,
+                        plain: np.ndarray | None = None) -> np.ndarray:
+    """:func:`_row_offsets_core` with the pixels marked in ``exclude`` left out of the medians.
+
+    Why: a row difference crossing a broad, shallow transition line carries
+    the line's own derivative over much of the row (a line of pixel slope
+    0.25 and 3 px thermal width spans ≈ 12 columns per row, and a family of
+    such lines in neighbouring cells spans the whole row), so the plain
+    median takes part of the line for a row offset; subtracting it bends
+    every column profile across the line by an amount that changes along it
+    (on a noiseless 112² map at 1.7 K: crossings tilted by ±0.4 px along a
+    segment, dot2 slopes 5–20 % too steep).
+
+    The rows with at least ``MIN_KEPT_FRACTION`` of their differences clear
+    of the lines ("clear rows") give a median of those. Where, accumulated
+    over some span of ``TEST_SPANS_ROWS`` clear rows, the plain medians differ
+    from the clear ones by more than ``BIAS_Z`` noise σ of that difference,
+    the lines bias the plain medians: the clear rows then take their clear
+    median and the other rows, which cannot tell an offset from a line, the
+    median step of the clear rows (the map's trend along y) unless the map
+    has row jitter or drift (the clear rows' steps, accumulated over a span,
+    scatter about that median by more than ``JITTER_Z`` σ, robust scatter),
+    in which case they keep their plain median (biased, but far better than
+    leaving the jitter in). Otherwise (no significant bias, e.g. sharp lines)
+    the plain medians are returned unchanged. Noise: a median of n
+    differences of white noise σ has variance π/2·2σ²/n (asymptotic variance
+    of a sample median); the median of a subset of m of the n values differs
+    from the full median with variance ≈ π/2·2σ²·(1/m − 1/n). Without a
+    finite ``noise`` the plain medians are returned.
+    """
+    if plain is None:
+        plain = _row_offsets_core(values)
+    if not (np.isfinite(noise) and noise > 0):
+        return plain
+    d = np.diff(values, axis=0)
+    fin = np.isfinite(d)
+    keep = fin & ~(exclude[1:] | exclude[:-1])
+    cnt = keep.sum(axis=1)
+    n_fin = fin.sum(axis=1)
+    good = (cnt >= 3) & (cnt >= MIN_KEPT_FRACTION * n_fin)
+    if good.sum() < 5:
+        return plain
+    s2 = np.pi / 2 * 2.0 * noise**2  # n × variance of a median of n differences
+    with np.errstate(all="ignore"):
+        med = _kept_medians(d, keep, cnt)
+        med_plain = np.diff(plain)
+        var_c = np.where(good, s2 / np.maximum(cnt, 1), 0.0)
+        var_d = np.where(good, s2 * np.maximum(1.0 / np.maximum(cnt, 1) - 1.0 / np.maximum(n_fin, 1), 0.0), 0.0)
+        trend = float(np.median(med[good]))
+
+        def span_z(x, var):
+            """Accumulated ``x`` over each span, in σ of its accumulated variance, per span."""
+            cx = np.concatenate([[0.0], np.cumsum(np.where(good, x, 0.0))])
+            cv = np.concatenate([[0.0], np.cumsum(var)])
+            out = []
+            for k in TEST_SPANS_ROWS:
+                if k < cx.size:
+                    v = cv[k:] - cv[:-k]
+                    out.append((cx[k:] - cx[:-k])[v > 0] / np.sqrt(v[v > 0]))
+            return out
+
+        bias = any(z.size and np.max(np.abs(z)) > BIAS_Z for z in span_z(med_plain - med, var_d))
+        if not bias:
+            return plain
+        jitter = any(z.size >= 3 and 1.4826 * float(np.median(np.abs(z))) > JITTER_Z
+                     for z in span_z(med - trend, var_c))
+    med = np.where(good, med, med_plain if jitter else trend)
+    steps = np.zeros(values.shape[0])
+    steps[1:] = np.nan_to_num(med)
+    off = np.cumsum(steps)
+    return off - np.median(off)
+
+
+def _kept_medians(d: np.ndarray, keep: np.ndarray, cnt: np.ndarray) -> np.ndarray:
+    """Median of the ``keep`` entries of each row of ``d`` (``cnt`` of them; garbage where none).
+
+    One selection instead of a sort: of the e left-out entries of a row,
+    ⌊e/2⌋ become −∞ and the rest +∞, so the kept order statistics
+    ``(c−1)//2`` and ``c//2`` land on the full row's ``n//2 − 1`` or ``n//2``
+    (n = c + e, checked for every parity of c and e).
+    """
+    n = d.shape[1]
+    out = np.where(keep, d, np.inf)
+    drop = ~keep
+    low = drop & (np.cumsum(drop, axis=1) <= ((n - cnt) // 2)[:, None])
+    out[low] = -np.inf
+    h = n // 2
+    out.partition((max(h - 1, 0), h), axis=1)
+    f = (n - cnt) // 2
+    r = np.arange(d.shape[0])
+    lo = np.clip(f + (cnt - 1) // 2, 0, n - 1)
+    hi = np.clip(f + cnt // 2, 0, n - 1)
+    with np.errstate(invalid="ignore"):  # rows with nothing kept: −∞ + ∞
+        return (out[r, lo] + out[r, hi]) / 2
 
 
 def correct_row_offsets(da: xr.DataArray) -> xr.DataArray:
