@@ -374,3 +374,58 @@ def test_refinement_flags_a_transport_map():
     ref = refine_model(tr, fit)
     assert not ref.ok
     assert ref.structure.flagged
+
+
+@pytest.mark.regression
+def test_adopted_error_of_m_carries_the_disagreement_with_the_lines():
+    # a line-based M12 moved by 1.5 combined standard errors is still adopted; the stated error of
+    # the adopted M12 then holds the sandwich error, the floor and DISAGREEMENT_SHARE · |ΔM12|, in
+    # quadrature (sum of independent variances: common practice, no source)
+    from dataclasses import replace
+
+    from stabtool.fit.model import fit_diagram
+    from stabtool.fit.refine import (
+        DISAGREEMENT_SHARE,
+        SYSTEMATIC_FLOOR,
+        adopt_refinement,
+        refine_model,
+    )
+    from stabtool.lines import detect_lines
+
+    bm = _bench_map("si-sige-double", 30.0, 22)
+    fit = fit_diagram(detect_lines(bm.data), data=bm.data)
+    ref = refine_model(bm.data, fit)
+    vec, cov = ref.vector()
+    floor = min(max(ref.params["width_px1"], 0.1), 1.0) * SYSTEMATIC_FLOOR[0]
+    shift = 1.5 * np.sqrt(fit.param_cov[0, 0] + cov[0, 0] + floor**2)
+    p = fit.params.copy()
+    p[0] = vec[0] + shift
+    moved = adopt_refinement(replace(fit, params=p), ref)
+    assert moved.adopted
+    assert moved.fit.vg_matrix[0, 1] == pytest.approx(vec[0], abs=1e-12)
+    want = np.sqrt(cov[0, 0] + floor**2 + (DISAGREEMENT_SHARE * shift) ** 2)
+    assert moved.fit.vg_matrix_error[0, 1] == pytest.approx(want, rel=1e-9)
+    assert moved.disagreement_term[0] == pytest.approx(DISAGREEMENT_SHARE * shift, rel=1e-9)
+    # the same refinement agreeing exactly with the lines adds nothing beyond floor and sandwich
+    p[0] = vec[0]
+    same = adopt_refinement(replace(fit, params=p), ref)
+    assert same.fit.vg_matrix_error[0, 1] == pytest.approx(np.sqrt(cov[0, 0] + floor**2), rel=1e-9)
+
+
+@pytest.mark.regression
+def test_stated_m_error_covers_a_small_tunnel_coupling():
+    # t = 10 µeV rounds the triple points of a GaAs map; the thermal CI model (no tunnel coupling)
+    # is pulled by ≈ 0.0024 in M12 while its sandwich error is ≈ 0.0005. The stated error of the
+    # reported M must still cover the generator truth within 3σ (the disagreement between the
+    # model fit and the lines carries the bias)
+    from stabtool.analysis import Analyzer
+    from stabtool.simulate import quick_double_dot
+
+    sm = quick_double_dot("gaas-double", tunnel_coupling_ueV=10, snr=30.0, shape=(160, 160), rng=1)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        res = Analyzer()(sm.data)
+    m, e = res.diagram.vg_matrix, res.diagram.vg_matrix_error
+    mt = np.array(sm.truth.to_json()["virtual_gate_matrix"])
+    for i, j in ((0, 1), (1, 0)):
+        assert abs(m[i, j] - mt[i, j]) <= 3 * e[i, j], (i, j, m[i, j] - mt[i, j], e[i, j])

@@ -20,12 +20,16 @@ from stabtool.report.plot import (
 from stabtool.simulate import quick_double_dot
 
 
-@pytest.fixture(scope="module")
-def result():
-    sm = quick_double_dot("ge-double", snr=10.0, rng=1, shape=(96, 96))
+def _analysed(preset, *, snr, rng, shape):
+    sm = quick_double_dot(preset, snr=snr, rng=rng, shape=shape)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         return Analyzer(refine=False)(sm.data)
+
+
+@pytest.fixture(scope="module")
+def result():
+    return _analysed("ge-double", snr=10.0, rng=1, shape=(96, 96))
 
 
 def _labels(ax):
@@ -89,10 +93,7 @@ def test_plot_result_draws_the_same_on_a_pyplot_figure(result):
 
 @pytest.fixture(scope="module")
 def other_result():
-    sm = quick_double_dot("gaas-double", snr=4.0, rng=7, shape=(80, 120))
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        return Analyzer(refine=False)(sm.data)
+    return _analysed("gaas-double", snr=4.0, rng=7, shape=(80, 120))
 
 
 def _pixels(png: bytes) -> np.ndarray:
