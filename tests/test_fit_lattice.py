@@ -51,3 +51,41 @@ def test_too_few_lines_fail_with_reason():
     lat = fit_lattice(seg, seg)
     assert not lat
     assert "too few lines" in lat.reason
+
+
+def _merge_by_hand(fam, tol, gap):
+    """Specification of merge_fragments' grouping: in order of position, each segment joins the first
+    group whose mean position (recomputed from its members) is within tol and whose extent, widened by
+    gap, overlaps the segment's."""
+    groups, merged = -np.ones(len(fam), int), []
+    for i in np.argsort(fam.pos):
+        for g, members in enumerate(merged):
+            if (abs(fam.pos[i] - np.mean(fam.pos[members])) <= tol and fam.lo[i] <= np.max(fam.hi[members]) + gap
+                    and fam.hi[i] >= np.min(fam.lo[members]) - gap):
+                members.append(i)
+                groups[i] = g
+                break
+        else:
+            groups[i] = len(merged)
+            merged.append([i])
+    return groups, merged
+
+
+def test_merge_fragments_groups_as_specified_and_weights_members():
+    rng = np.random.default_rng(3)
+    for _ in range(20):
+        k = 25
+        pos = np.repeat(rng.uniform(0, 1, 8), 4)[:k] + rng.normal(0, 2e-3, k)  # fragments of 8 lines
+        lo = rng.uniform(0, 1, k)
+        seg = FamilySegments(pos=pos, pos_err=rng.uniform(1e-3, 5e-3, k), lo=lo, hi=lo + rng.uniform(0.05, 0.4, k),
+                             lever=rng.normal(size=k))
+        out, groups = merge_fragments(seg, tol_V=5e-3, gap_V=0.1)
+        want, members = _merge_by_hand(seg, 5e-3, 0.1)
+        np.testing.assert_array_equal(groups, want)
+        for g, m in enumerate(members):
+            # inverse-variance × length weights (normalised): position, its error, extent
+            w = (seg.hi[m] - seg.lo[m]) / seg.pos_err[m] ** 2
+            w = w / w.sum()
+            assert out.pos[g] == pytest.approx(np.sum(w * seg.pos[m]), rel=1e-12)
+            assert out.pos_err[g] == pytest.approx(np.sqrt(np.sum(w**2 * seg.pos_err[m] ** 2)), rel=1e-12)
+            assert (out.lo[g], out.hi[g]) == (seg.lo[m].min(), seg.hi[m].max())

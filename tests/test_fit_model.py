@@ -137,3 +137,17 @@ def test_error_checks_are_those_of_error_verdict():
     worse = _replace(fit, cdg_aF_error=cdg_err)
     msgs = [w for w in error_verdict(worse).warnings if w.startswith("gate capacitances uncertain")]
     assert msgs and "1.54 %" in msgs[0]
+
+
+@pytest.mark.parametrize("size", [1, 2, 3, 8, 11, 40])
+def test_median_helper_is_numpy_median(size):
+    # reference library: numpy.median (mean of the two middle values for an even size, NaN if any NaN)
+    from stabtool.fit.relocate import median
+
+    rng = np.random.default_rng(size)
+    v = rng.normal(size=size)
+    assert median(v) == np.median(v)
+    assert median(np.round(v, 1)) == np.median(np.round(v, 1))  # ties
+    v[size // 2] = np.nan
+    assert np.isnan(median(v))
+    assert np.isnan(median(np.zeros(0)))

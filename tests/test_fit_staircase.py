@@ -148,3 +148,12 @@ def test_small_mutual_shift_map_within_bounds_or_not_ok():
             assert np.all(np.abs(fit.mutual_V - d_true) < 4 * fit.mutual_V_error)
     # measured: both seeds ok with |ΔM| ≤ 0.0007 and Cdg within 0.2 % (the piecewise re-measurement)
     assert n_ok >= 1
+
+
+def test_split_ignores_parallel_other_lines():
+    # a dot2 line parallel to the segment never crosses it (plane geometry): no cut, the segment is kept
+    d1 = _steep(0.03, 0.0, 0.06, -3.0)
+    parallel = _steep(0.05, 0.0, 0.06, -3.0)
+    sp = split_at_crossings([d1], [parallel], which=0, min_piece_V=0.004, slope=-2.5)
+    assert sp.n_cut == 0
+    assert sp.lines == (d1,)

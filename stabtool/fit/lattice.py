@@ -33,6 +33,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from .relocate import median
+
 __all__ = ["FamilySegments", "LatticeFit", "fit_lattice", "merge_fragments"]
 
 
@@ -132,49 +134,71 @@ def _failed(reason: str, k1: int, k2: int) -> LatticeFit:
 def merge_fragments(fam: FamilySegments, *, tol_V: float, gap_V: float) -> tuple[FamilySegments, np.ndarray]:
     """Merge collinear fragments of one line (same position within ``tol_V``, gaps below ``gap_V``).
 
+    Segments are taken in order of position; each joins the first merged line
+    whose mean position is within ``tol_V`` and whose extent (widened by
+    ``gap_V``) overlaps its own, or starts a new one.
+
     Returns
     -------
     merged : FamilySegments
     groups : ndarray of int, shape (k,)
         Index of the merged segment each input segment went into.
+
+    Notes
+    -----
+    The mean position and extent of every merged line are kept up to date as
+    members join (the same numbers as recomputing them for every candidate).
     """
     k = len(fam)
-    order = np.argsort(fam.pos)
     groups = -np.ones(k, int)
     merged: list[list[int]] = []
-    for i in order:
-        placed = False
-        for g, members in enumerate(merged):
-            pos = np.mean(fam.pos[members])
-            lo, hi = np.min(fam.lo[members]), np.max(fam.hi[members])
-            if abs(fam.pos[i] - pos) <= tol_V and fam.lo[i] <= hi + gap_V and fam.hi[i] >= lo - gap_V:
-                members.append(int(i))
-                groups[i] = g
-                placed = True
-                break
-        if not placed:
-            groups[i] = len(merged)
+    g_pos, g_lo, g_hi = np.empty(k), np.empty(k), np.empty(k)
+    for i in np.argsort(fam.pos):
+        n = len(merged)
+        joins = (np.abs(fam.pos[i] - g_pos[:n]) <= tol_V) & (fam.lo[i] <= g_hi[:n] + gap_V) & (
+            fam.hi[i] >= g_lo[:n] - gap_V)
+        hit = np.flatnonzero(joins)
+        if hit.size:
+            g = int(hit[0])
+            merged[g].append(int(i))
+            g_pos[g] = np.mean(fam.pos[merged[g]])
+            g_lo[g], g_hi[g] = np.minimum(g_lo[g], fam.lo[i]), np.maximum(g_hi[g], fam.hi[i])
+        else:
+            g = n
             merged.append([int(i)])
-    pos, err, lo, hi, lever = [], [], [], [], []
-    for members in merged:
-        e = np.nan_to_num(fam.pos_err[members], nan=0.0)
-        length = np.maximum(fam.hi[members] - fam.lo[members], 1e-30)
-        w = length / np.maximum(e, 1e-30) ** 2 if np.all(e > 0) else length
+            g_pos[g], g_lo[g], g_hi[g] = fam.pos[i], fam.lo[i], fam.hi[i]
+        groups[i] = g
+    return _merged_segments(fam, merged, g_lo[: len(merged)], g_hi[: len(merged)]), groups
+
+
+def _merged_segments(fam: FamilySegments, merged: list[list[int]], lo: np.ndarray, hi: np.ndarray) -> FamilySegments:
+    """One segment per member list: length- and error-weighted position, error and lever; extent ``lo``–``hi``."""
+    first = np.array([m[0] for m in merged], int)
+    single = np.array([len(m) == 1 for m in merged], bool)
+    e = np.nan_to_num(fam.pos_err[first], nan=0.0)
+    length = np.maximum(fam.hi[first] - fam.lo[first], 1e-30)
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        w0 = np.where(e > 0, length / np.maximum(e, 1e-30) ** 2, length)
+    # a lone member with a finite positive weight has weight w0/w0 = 1: its own numbers
+    fast = single & np.isfinite(w0) & (w0 > 0)
+    pos, lever = fam.pos[first].astype(float), fam.lever[first].astype(float)
+    err = np.where(e > 0, np.sqrt(e**2), np.nan)
+    for g in np.flatnonzero(~fast):
+        members = merged[g]
+        e_m = np.nan_to_num(fam.pos_err[members], nan=0.0)
+        length_m = np.maximum(fam.hi[members] - fam.lo[members], 1e-30)
+        w = length_m / np.maximum(e_m, 1e-30) ** 2 if np.all(e_m > 0) else length_m
         w = w / w.sum()
-        pos.append(float(np.sum(w * fam.pos[members])))
-        err.append(float(np.sqrt(np.sum(w**2 * e**2))) if np.all(e > 0) else float("nan"))
-        lo.append(float(np.min(fam.lo[members])))
-        hi.append(float(np.max(fam.hi[members])))
-        lever.append(float(np.sum(w * fam.lever[members])))
-    out = FamilySegments(pos=np.array(pos), pos_err=np.array(err), lo=np.array(lo), hi=np.array(hi),
-                         lever=np.array(lever))
-    return out, groups
+        pos[g] = float(np.sum(w * fam.pos[members]))
+        err[g] = float(np.sqrt(np.sum(w**2 * e_m**2))) if np.all(e_m > 0) else float("nan")
+        lever[g] = float(np.sum(w * fam.lever[members]))
+    return FamilySegments(pos=pos, pos_err=err, lo=np.array(lo, float), hi=np.array(hi, float), lever=lever)
 
 
-def _overlap(lo_a: float, hi_a: float, lo_b: float, hi_b: float) -> float:
-    """Overlap of two intervals relative to the shorter one."""
-    ov = min(hi_a, hi_b) - max(lo_a, lo_b)
-    short = max(min(hi_a - lo_a, hi_b - lo_b), 1e-30)
+def _overlap(lo_a: np.ndarray, hi_a: np.ndarray, lo_b: np.ndarray, hi_b: np.ndarray) -> np.ndarray:
+    """Overlap of intervals a and b relative to the shorter one (element-wise, broadcast)."""
+    ov = np.minimum(hi_a, hi_b) - np.maximum(lo_a, lo_b)
+    short = np.maximum(np.minimum(hi_a - lo_a, hi_b - lo_b), 1e-30)
     return ov / short
 
 
@@ -187,17 +211,13 @@ def _band_step(fam: FamilySegments) -> np.ndarray | None:
     best one (a comb score corrected for chance matches), so that spurious or
     missed lines do not bias it.
     """
-    dps, dms = [], []
-    for i in range(len(fam)):
-        for j in range(len(fam)):
-            dp = fam.pos[j] - fam.pos[i]
-            if dp <= 0 or _overlap(fam.lo[i], fam.hi[i], fam.lo[j], fam.hi[j]) < 0.3:
-                continue
-            dps.append(dp)
-            dms.append(fam.mid[j] - fam.mid[i])
-    if not dps:
+    # all ordered pairs (i, j) at once, in the order i-major
+    dp = fam.pos[None, :] - fam.pos[:, None]
+    pair = (dp > 0) & (_overlap(fam.lo[:, None], fam.hi[:, None], fam.lo[None, :], fam.hi[None, :]) >= 0.3)
+    if not np.any(pair):
         return None
-    dp_a, dm_a = np.array(dps), np.array(dms)
+    mid = fam.mid
+    dp_a, dm_a = dp[pair], (mid[None, :] - mid[:, None])[pair]
     if dp_a.size == 1:
         return np.array([dp_a[0], dm_a[0]])
     p_max = float(dp_a.max())
@@ -214,39 +234,52 @@ def _band_step(fam: FamilySegments) -> np.ndarray | None:
     k1 = np.abs(dp_a - period) < 0.15 * period
     if not np.any(k1):
         return None
-    return np.array([float(np.median(dp_a[k1])), float(np.median(dm_a[k1]))])
+    return np.array([median(dp_a[k1]), median(dm_a[k1])])
+
+
+#: Label offsets tried around the rounded solution, in the order (−1, −1), (−1, 0), …, (1, 1).
+_NEIGHBOURS = np.array([(a, b) for a in (-1, 0, 1) for b in (-1, 0, 1)], int)
 
 
 def _label(fam: FamilySegments, which: int, dv: np.ndarray, dm: np.ndarray, c: np.ndarray) -> np.ndarray:
-    """Best integer (N1, N2) for every segment of a family given the cell."""
+    """Best integer (N1, N2) for every segment of a family given the cell.
+
+    The cell equations solved for the segment's position and extent centre
+    give a first guess; of it and its 8 neighbours, the pair with the smallest
+    score (squared position miss in units of ΔV plus 4× the squared part of
+    the extent outside the predicted one) wins, the first in
+    ``_NEIGHBOURS`` order on ties; all segments at once.
+    """
     d = np.array([[dv[0], dm[0]], [dm[1], dv[1]]])
     dinv = np.linalg.inv(d)
-    labels = np.zeros((len(fam), 2), int)
-    for k in range(len(fam)):
-        if which == 0:  # dot1: pos = V'1, extent along V'2
-            rhs = np.array([fam.pos[k] - c[0] + 0.5 * dv[0], fam.mid[k] - c[1] + 0.5 * dm[1]])
-        else:
-            rhs = np.array([fam.mid[k] - c[0] + 0.5 * dm[0], fam.pos[k] - c[1] + 0.5 * dv[1]])
-        n0 = np.rint(dinv @ rhs).astype(int)
-        best, best_score = n0, np.inf
-        for a in (-1, 0, 1):
-            for b in (-1, 0, 1):
-                n1, n2 = n0[0] + a, n0[1] + b
-                if which == 0:
-                    pred = dv[0] * (n1 - 0.5) + dm[0] * n2 + c[0]
-                    blo = dv[1] * (n2 - 0.5) + dm[1] * n1 + c[1]
-                    bhi = dv[1] * (n2 + 0.5) + dm[1] * (n1 - 1) + c[1]
-                    scale_p, scale_o = dv[0], dv[1]
-                else:
-                    pred = dv[1] * (n2 - 0.5) + dm[1] * n1 + c[1]
-                    blo = dv[0] * (n1 - 0.5) + dm[0] * n2 + c[0]
-                    bhi = dv[0] * (n1 + 0.5) + dm[0] * (n2 - 1) + c[0]
-                    scale_p, scale_o = dv[1], dv[0]
-                outside = max(blo - fam.lo[k], 0.0) + max(fam.hi[k] - bhi, 0.0)
-                score = ((fam.pos[k] - pred) / scale_p) ** 2 + 4.0 * (outside / scale_o) ** 2
-                if score < best_score:
-                    best, best_score = np.array([n1, n2]), score
-        labels[k] = best
+    k = len(fam)
+    if which == 0:  # dot1: pos = V'1, extent along V'2
+        rhs = np.column_stack([fam.pos - c[0] + 0.5 * dv[0], fam.mid - c[1] + 0.5 * dm[1]])
+    else:
+        rhs = np.column_stack([fam.mid - c[0] + 0.5 * dm[0], fam.pos - c[1] + 0.5 * dv[1]])
+    # first guess one segment at a time: the same 2×2 products as a loop (a stacked product may round differently)
+    n0 = np.array([np.rint(dinv @ r).astype(int) for r in rhs], int).reshape(k, 2)
+    n1 = n0[:, 0, None] + _NEIGHBOURS[None, :, 0]  # (k, 9)
+    n2 = n0[:, 1, None] + _NEIGHBOURS[None, :, 1]
+    if which == 0:
+        pred = dv[0] * (n1 - 0.5) + dm[0] * n2 + c[0]
+        blo = dv[1] * (n2 - 0.5) + dm[1] * n1 + c[1]
+        bhi = dv[1] * (n2 + 0.5) + dm[1] * (n1 - 1) + c[1]
+        scale_p, scale_o = dv[0], dv[1]
+    else:
+        pred = dv[1] * (n2 - 0.5) + dm[1] * n1 + c[1]
+        blo = dv[0] * (n1 - 0.5) + dm[0] * n2 + c[0]
+        bhi = dv[0] * (n1 + 0.5) + dm[0] * (n2 - 1) + c[0]
+        scale_p, scale_o = dv[1], dv[0]
+    outside = np.maximum(blo - fam.lo[:, None], 0.0) + np.maximum(fam.hi[:, None] - bhi, 0.0)
+    score = ((fam.pos[:, None] - pred) / scale_p) ** 2 + 4.0 * (outside / scale_o) ** 2
+    score = np.where(np.isnan(score), np.inf, score)
+    best = np.argmin(score, axis=1)
+    rows = np.arange(k)
+    found = score[rows, best] < np.inf  # else (no finite score) the first guess stays
+    labels = n0.copy()
+    labels[found, 0] = n1[rows, best][found]
+    labels[found, 1] = n2[rows, best][found]
     return labels
 
 
@@ -280,10 +313,13 @@ def _fit_family(fam: FamilySegments, labels: np.ndarray, which: int, err_floor: 
             return None
         beta = cov @ (x.T @ (w * fam.pos))
         r = (fam.pos - x @ beta) / sig
-        mad = 1.4826 * np.median(np.abs(r)) if r.size > len(cols) else 1.0
+        mad = 1.4826 * median(np.abs(r)) if r.size > len(cols) else 1.0
         scale = max(mad, 1.0)
         k = 2.5 * scale
-        w_rob = np.where(np.abs(r) <= k, 1.0, k / np.maximum(np.abs(r), 1e-30))
+        new_w = np.where(np.abs(r) <= k, 1.0, k / np.maximum(np.abs(r), 1e-30))
+        if np.array_equal(new_w, w_rob):
+            break  # converged: further passes repeat these numbers exactly
+        w_rob = new_w
     resid = fam.pos - x @ beta
     dof = len(fam) - len(cols)
     chi2 = float(np.sum(w_rob * (resid / sig) ** 2) / dof) if dof > 0 else float("nan")
@@ -368,8 +404,12 @@ def fit_lattice(
     c = np.array([dot1.pos[ref] + 0.5 * dv[0], dot1.mid[ref] + 0.5 * dm[1]])
     fits: list[_FamilyFit | None] = [None, None]
     labels = [np.zeros((k1, 2), int), np.zeros((k2, 2), int)]
+    prev: list[np.ndarray] | None = None
     for _ in range(n_iter):
         labels = [_label(dot1, 0, dv, dm, c), _label(dot2, 1, dv, dm, c)]
+        if prev is not None and all(np.array_equal(a, b) for a, b in zip(labels, prev)):
+            break  # labels unchanged: the fits and the cell would repeat exactly
+        prev = labels
         fits = [_fit_family(dot1, labels[0], 0, err_floor_V), _fit_family(dot2, labels[1], 1, err_floor_V)]
         if fits[0] is None or fits[1] is None:
             break

@@ -167,29 +167,29 @@ def _family_slope(lines, fam_slope: float, fam_err: float, *, steep: bool) -> tu
 
 
 def _segments(lines, m: np.ndarray, which: int) -> FamilySegments:
-    pos, err, lo, hi, lever = [], [], [], [], []
-    for ln in lines:
-        u0, v0 = to_virtual(m, ln.x0, ln.y0)
-        us, vs = to_virtual(m, np.array([ln.start[0], ln.end[0]]), np.array([ln.start[1], ln.end[1]]))
-        s = ln.slope
-        pe = ln.position_stderr if np.isfinite(ln.position_stderr) else np.nan
+    """Virtual-coordinate position, position error, extent and lever of every line of one family.
+
+    ``which`` 0: dot1 lines (position ``V'_1``, extent along ``V'_2``, lever y);
+    1: dot2 lines (position ``V'_2``, extent along ``V'_1``, lever x). A
+    perpendicular position error d moves the line by ``d·sqrt(1+s²)/|s|``
+    along x (dot1) or ``d·sqrt(1+s²)`` along y (dot2).
+    """
+    cols = np.array([[ln.x0, ln.y0, ln.start[0], ln.end[0], ln.start[1], ln.end[1], ln.slope, ln.position_stderr]
+                     for ln in lines], float).reshape(len(lines), 8)
+    x0, y0, xs, xe, ys, ye, s, pe = cols.T
+    pe = np.where(np.isfinite(pe), pe, np.nan)
+    u0, v0 = to_virtual(m, x0, y0)
+    us, vs = to_virtual(m, xs, ys)
+    ue, ve = to_virtual(m, xe, ye)
+    steep = np.isinf(s)
+    with np.errstate(invalid="ignore", over="ignore"):
         if which == 0:
-            # shift perpendicular by d moves x at fixed y by d·sqrt(1+s²)/|s|
-            fac = 1.0 if np.isinf(s) else np.sqrt(1 + s * s) / max(abs(s), 1e-12)
-            pos.append(float(u0))
-            lo.append(float(np.min(vs)))
-            hi.append(float(np.max(vs)))
-            lever.append(ln.y0)
+            fac = np.where(steep, 1.0, np.sqrt(1 + s * s) / np.maximum(np.abs(s), 1e-12))
+            pos, lo, hi, lever = u0, np.minimum(vs, ve), np.maximum(vs, ve), y0
         else:
-            fac = np.inf if np.isinf(s) else np.sqrt(1 + s * s)
-            pos.append(float(v0))
-            lo.append(float(np.min(us)))
-            hi.append(float(np.max(us)))
-            lever.append(ln.x0)
-        err.append(pe * fac)
-    return FamilySegments(
-        pos=np.array(pos), pos_err=np.array(err), lo=np.array(lo), hi=np.array(hi), lever=np.array(lever)
-    )
+            fac = np.where(steep, np.inf, np.sqrt(1 + s * s))
+            pos, lo, hi, lever = v0, np.minimum(us, ue), np.maximum(us, ue), x0
+    return FamilySegments(pos=pos, pos_err=pe * fac, lo=lo, hi=hi, lever=lever.copy())
 
 
 def _reliable(lines, fam_value: float, *, steep: bool) -> tuple[np.ndarray, int]:
@@ -261,7 +261,7 @@ def _empty_fit(reason: str, slopes: dict, slope_errors: dict, lines1, lines2, in
 
 def _fit_once(
     detection: LineDetection, *, data: Any = None, relocate: bool = True, err_floor_px: float = 0.1,
-    merge_tol_px: float = 1.5,
+    merge_tol_px: float = 1.5, noise: float | None = None,
 ) -> DiagramFit:
     """Virtual gates, addition voltages, mutual shifts and Cdg from detected lines.
 
@@ -284,6 +284,9 @@ def _fit_once(
         joined into one line before the lattice fit; band pieces (cut at the
         other family's lines, or predicted by a lattice) use a small value, as
         pieces of neighbouring bands are only δ apart.
+    noise : float, optional
+        Noise standard deviation of the map (default: :func:`stabtool.fit.contrast.map_noise`
+        of ``data``); :func:`fit_diagram` computes it once for all passes.
 
     Returns
     -------
@@ -324,9 +327,10 @@ def _fit_once(
         z = np.asarray(data.values, float)
         xa = np.asarray(data[data.dims[-1]].values, float)
         ya = np.asarray(data[data.dims[0]].values, float)
+        noise_map = map_noise(z) if noise is None else float(noise)
         kept = []
         for which, (used, lines) in enumerate(((used1, lines1), (used2, lines2))):
-            con = line_contrast(z, xa, ya, [lines[i] for i in used], which=which)
+            con = line_contrast(z, xa, ya, [lines[i] for i in used], which=which, noise=noise_map)
             kept.append(used[con.keep] if con.keep.sum() >= 2 else used)
         n_drop1 += len(used1) - len(kept[0])
         n_drop2 += len(used2) - len(kept[1])
@@ -335,13 +339,12 @@ def _fit_once(
     inv1, inv1_err = _family_slope([lines1[i] for i in used1], np.nan, np.nan, steep=True)
     s2, s2_err = _family_slope([lines2[i] for i in used2], np.nan, np.nan, steep=False)
     if data is not None and relocate:
-        noise = map_noise(z)
         new_lines = [list(lines1), list(lines2)]
         new_used = []
         results = []
         for which, (used, init) in enumerate(((used1, inv1), (used2, s2))):
             rel = relocate_family(z, xa, ya, [new_lines[which][i] for i in used], which=which, initial=init,
-                                  noise=noise)
+                                  noise=noise_map)
             results.append(rel)
             if rel.ok:
                 keep = []
@@ -575,7 +578,8 @@ def fit_diagram(
     ``(M12, M21, ΔV1, δ1, ΔV2, δ2)`` includes ``∂V'_1/∂M12 = y`` and
     ``∂V'_2/∂M21 = x`` and is propagated to ``Cdg`` and ``α11/α22``.
     """
-    first = _fit_once(detection, data=data, relocate=relocate, err_floor_px=err_floor_px)
+    noise = map_noise(np.asarray(data.values, float)) if data is not None else None
+    first = _fit_once(detection, data=data, relocate=relocate, err_floor_px=err_floor_px, noise=noise)
     if data is None or not relocate:
         return first
     # piecewise pass: segments cut where the other family's lines cross them (staircases merged by the
@@ -584,11 +588,11 @@ def fit_diagram(
     piece: DiagramFit | None = None
     stair: list[str] = []
     if splits is not None:
-        stair = _staircases(data, detection, splits)
+        stair = _staircases(data, detection, splits, noise=noise)
         if stair or not first.ok:
             # the piecewise pass only where it is needed: a staircase, or a failed first pass
             piece = _fit_once(pieces, data=data, relocate=True, err_floor_px=err_floor_px,
-                              merge_tol_px=PIECE_MERGE_PX)
+                              merge_tol_px=PIECE_MERGE_PX, noise=noise)
     cands = [f for f in ((first if not stair else None), piece) if f is not None and f.ok]
     if not cands:
         if stair and first.ok:
@@ -604,7 +608,7 @@ def fit_diagram(
             fams[name] = LineFamily(name=name, slope=float("nan"), slope_stderr=float("nan"),  # type: ignore[arg-type]
                                     lines=pred[name])
         second = _fit_once(replace(detection, families=fams), data=data, relocate=True, err_floor_px=err_floor_px,
-                           merge_tol_px=PIECE_MERGE_PX)
+                           merge_tol_px=PIECE_MERGE_PX, noise=noise)
         if second.ok:
             cands.append(second)
     # among the unbiased passes, the one with the smaller virtual-gate error
@@ -635,12 +639,16 @@ def _piecewise_detection(detection: LineDetection) -> tuple[LineDetection, tuple
     return replace(detection, families=fams), (sp1, sp2)
 
 
-def _staircases(data: Any, detection: LineDetection, splits: tuple[SplitFamily, SplitFamily]) -> list[str]:
-    """Families whose cut segments are staircases: one offset per band piece fits significantly better."""
+def _staircases(data: Any, detection: LineDetection, splits: tuple[SplitFamily, SplitFamily], *,
+                noise: float | None = None) -> list[str]:
+    """Families whose cut segments are staircases: one offset per band piece fits significantly better.
+
+    ``noise``: the map's noise standard deviation (default: :func:`stabtool.fit.contrast.map_noise`).
+    """
     z = np.asarray(data.values, float)
     xa = np.asarray(data[data.dims[-1]].values, float)
     ya = np.asarray(data[data.dims[0]].values, float)
-    noise = map_noise(z)
+    noise = map_noise(z) if noise is None else float(noise)
     out = []
     for which, (name, sp) in enumerate((("dot1", splits[0]), ("dot2", splits[1]))):
         if not sp.n_cut:

@@ -112,28 +112,36 @@ class SplitFamily:
     n_cut: int
 
 
-def _crossing_coords(line: TransitionLine, others, which: int) -> np.ndarray:
-    """Cross-axis coordinate (y for dot1, x for dot2) where the extended ``others`` meet ``line``, V."""
-    def direction(ln):
-        if np.isinf(ln.slope):
-            return np.array([0.0, 1.0])
-        d = np.array([1.0, ln.slope])
-        return d / np.hypot(*d)
+def _directions(lines) -> np.ndarray:
+    """Unit direction ``(dx, dy)`` of every line, shape (k, 2) (vertical lines: ``(0, 1)``)."""
+    s = np.array([ln.slope for ln in lines], float)
+    vert = np.isinf(s)
+    d = np.column_stack([np.ones(s.size), np.where(vert, 0.0, s)])
+    d = d / np.hypot(d[:, 0], d[:, 1])[:, None]
+    d[vert] = (0.0, 1.0)
+    return d
 
-    p = np.array([line.x0, line.y0])
-    d = direction(line)
-    out = []
-    for o in others:
-        q = np.array([o.x0, o.y0])
-        e = direction(o)
-        den = d[0] * e[1] - d[1] * e[0]
-        if not np.isfinite(den) or abs(den) < 1e-9:
-            continue
-        w = q - p
-        t = (w[0] * e[1] - w[1] * e[0]) / den
-        pt = p + t * d
-        out.append(pt[1] if which == 0 else pt[0])
-    return np.array(out, float)
+
+def _crossing_matrix(lines, others, which: int) -> np.ndarray:
+    """Cross-axis coordinate (y for dot1, x for dot2) where each extended ``others`` line meets each of ``lines``, V.
+
+    Returns shape (len(lines), len(others)); NaN where the two are nearly
+    parallel (|sin| < 1e-9) or the crossing is undefined.
+    """
+    if not len(lines) or not len(others):
+        return np.full((len(lines), len(others)), np.nan)
+    p = np.array([[ln.x0, ln.y0] for ln in lines], float)  # (k, 2)
+    d = _directions(lines)
+    q = np.array([[o.x0, o.y0] for o in others], float)  # (m, 2)
+    e = _directions(others)
+    den = d[:, 0, None] * e[None, :, 1] - d[:, 1, None] * e[None, :, 0]
+    w0 = q[None, :, 0] - p[:, 0, None]
+    w1 = q[None, :, 1] - p[:, 1, None]
+    k = 1 if which == 0 else 0
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        t = (w0 * e[None, :, 1] - w1 * e[None, :, 0]) / den
+        out = p[:, k, None] + t * d[:, k, None]
+    return np.where(np.isfinite(den) & ~(np.abs(den) < 1e-9), out, np.nan)
 
 
 def split_at_crossings(
@@ -176,10 +184,12 @@ def split_at_crossings(
     pieces: list[TransitionLine] = []
     source: list[int] = []
     n_cut = 0
+    crossings = _crossing_matrix(lines, others, which)
     for i, ln in enumerate(lines):
         ends = (ln.start[1], ln.end[1]) if which == 0 else (ln.start[0], ln.end[0])
         lo, hi = min(ends), max(ends)
-        cs = np.sort(_crossing_coords(ln, others, which))
+        row = crossings[i]
+        cs = np.sort(row[~np.isnan(row)])
         cs = cs[(cs > lo + min_piece_V) & (cs < hi - min_piece_V)]
         cuts: list[float] = []
         k = 0
@@ -213,6 +223,27 @@ def split_at_crossings(
             pieces.append(replace(ln, x0=float(x0), y0=float(y0), slope=float(sl), start=start, end=end))
             source.append(i)
     return SplitFamily(tuple(pieces), np.array(source, int), n_cut)
+
+
+def median(a: np.ndarray) -> float:
+    """Median of a 1-D array, the same number as :func:`numpy.median` at a fraction of its overhead.
+
+    One :func:`numpy.partition` at the middle order statistic(s) and the last
+    element (NaN sorts last: any NaN gives NaN, as in :func:`numpy.median`);
+    the mean of the two middle values for an even size. NaN for an empty array.
+    """
+    a = np.asarray(a, float).ravel()
+    n = a.size
+    if n == 0:
+        return float("nan")
+    h = n // 2
+    kth = [h, n - 1] if n % 2 else [h - 1, h, n - 1]
+    part = np.partition(a, kth)
+    if np.isnan(part[-1]):
+        return float("nan")
+    if n % 2:
+        return float(part[h])
+    return float((part[h - 1] + part[h]) / 2.0)
 
 
 def _to_v(idx: np.ndarray | float, axis: np.ndarray) -> np.ndarray:
@@ -276,26 +307,19 @@ def _crossings(zz, scan_axis, cross_axis, spans, mids, b, *, trim, half_px, nois
     all lines are processed together.
     """
     n_scan = scan_axis.size
-    ci = np.arange(cross_axis.size)
-    line_id, rows, cvals, preds = [], [], [], []
     n_lines = len(spans)
-    for i in range(n_lines):
-        lo, hi = min(spans[i]), max(spans[i])
-        span = hi - lo
-        lo, hi = lo + trim * span, hi - trim * span
-        sel = ci[(cross_axis >= lo) & (cross_axis <= hi)]
-        mid_s, mid_c = mids[i]
-        cv = cross_axis[sel]
-        rows.append(sel)
-        cvals.append(cv)
-        preds.append(mid_s + b * (cv - mid_c))
-        line_id.append(np.full(sel.size, i))
     if not n_lines:
         return np.zeros(0), np.zeros(0), np.zeros(0, np.int64)
-    rows_a = np.concatenate(rows)
-    cval_a = np.concatenate(cvals).astype(float)
-    lid = np.concatenate(line_id)
-    p_idx = _to_idx(np.concatenate(preds).astype(float), scan_axis)
+    lo = np.array([min(sp) for sp in spans], float)
+    hi = np.array([max(sp) for sp in spans], float)
+    span = hi - lo
+    lo, hi = lo + trim * span, hi - trim * span
+    # every (line, row) pair inside the trimmed segment, line by line
+    inside = (cross_axis[None, :] >= lo[:, None]) & (cross_axis[None, :] <= hi[:, None])
+    lid, rows_a = np.nonzero(inside)
+    mids_a = np.asarray(mids, float).reshape(n_lines, 2)
+    cval_a = np.asarray(cross_axis[rows_a], float)
+    p_idx = _to_idx(mids_a[lid, 0] + b * (cval_a - mids_a[lid, 1]), scan_axis)
     fin = np.isfinite(p_idx)
     p_safe = np.where(fin, p_idx, -1e9)
     i0 = np.floor(p_safe - half_px).astype(np.int64)
@@ -442,19 +466,73 @@ def relocate_family(
         (``staircase_p``, ``staircase_jump_V``); the fit itself keeps one
         offset per line.
     """
-    if half_window_px is None:
-        tries = [relocate_family(z, x, y, lines, which=which, initial=initial, noise=noise, trim=trim,
-                                 n_iter=n_iter, half_window_px=h, groups=groups) for h in (5.0, 12.0)]
-        good = [t for t in tries if t.ok]
-        if not good:
-            return tries[0]
-        return min(good, key=lambda t: t.stderr)
-    z = np.asarray(z, float)
     lines = list(lines)
+    windows = (5.0, 12.0) if half_window_px is None else (float(half_window_px),)
+    tries = [_fit_window(z, x, y, lines, which=which, initial=initial, noise=noise, trim=trim, n_iter=n_iter,
+                         half_px=h, groups=groups) for h in windows]
+    good = [t for t in tries if t.ok]
+    best = min(good, key=lambda t: t.stderr) if good else tries[0]
+    return _relocated(lines, best, which=which, initial=initial)
+
+
+@dataclass(frozen=True)
+class _WindowFit:
+    """Common-slope fit of one family with one window width (lines not yet rebuilt)."""
+
+    ok: bool
+    failed: bool  # no spread along the cross axis: nothing measured
+    b: float
+    stderr: float
+    n_used: int
+    sigma: float
+    offsets: tuple = ()
+    between: float = float("nan")
+    bend: float = float("nan")
+    bend_err: float = float("nan")
+    stair_p: float = float("nan")
+    stair_jump: float = float("nan")
+
+
+def _relocated(lines: list[TransitionLine], fit: _WindowFit, *, which: int, initial: float) -> RelocatedFamily:
+    """The :class:`RelocatedFamily` of a window fit: every line rebuilt with the common slope and its offset."""
+    if fit.failed:
+        return RelocatedFamily(False, tuple(lines), initial, np.nan, 0, np.nan)
+    b, b_err, sigma = fit.b, fit.stderr, fit.sigma
+    out = []
+    for ln, off in zip(lines, fit.offsets):
+        if off is None:
+            out.append(replace(ln, position_stderr=float("nan")))
+            continue
+        sm, cm, n = off
+        if which == 0:
+            slope = 1.0 / b if b != 0 else np.inf
+            slope_err = b_err / b**2 if b != 0 else np.inf
+            x0, y0 = sm, cm
+            ys = (ln.start[1], ln.end[1])
+            start = (x0 + b * (ys[0] - y0), ys[0])
+            end = (x0 + b * (ys[1] - y0), ys[1])
+            perp = sigma / np.sqrt(n) / np.sqrt(1 + b * b)
+        else:
+            slope, slope_err = b, b_err
+            x0, y0 = cm, sm
+            xs = (ln.start[0], ln.end[0])
+            start = (xs[0], y0 + b * (xs[0] - x0))
+            end = (xs[1], y0 + b * (xs[1] - x0))
+            perp = sigma / np.sqrt(n) / np.sqrt(1 + b * b)
+        out.append(replace(ln, x0=float(x0), y0=float(y0), slope=float(slope), slope_stderr=float(slope_err),
+                           position_stderr=float(perp), start=start, end=end, n_points=n))
+    return RelocatedFamily(fit.ok, tuple(out), float(b), float(b_err), fit.n_used, float(sigma), fit.between,
+                           float(fit.bend), float(fit.bend_err), fit.stair_p, fit.stair_jump)
+
+
+def _fit_window(z: np.ndarray, x: np.ndarray, y: np.ndarray, lines: list[TransitionLine], *, which: int,
+                initial: float, noise: float, trim: float, n_iter: int, half_px: float,
+                groups: np.ndarray | None) -> _WindowFit:
+    """Common slope and per-line offsets with cuts of ``± half_px`` pixels (see :func:`relocate_family`)."""
+    z = np.asarray(z, float)
     n_lines_in = len(lines)
     scan_axis, cross_axis = (x, y) if which == 0 else (y, x)
-    step = abs(float(np.median(np.diff(scan_axis))))
-    half_px = float(half_window_px)
+    step = abs(median(np.diff(scan_axis)))
     b = float(initial)
     offsets: list[tuple[float, float, int] | None] = [None] * n_lines_in
     zz = z if which == 0 else z.T  # rows along the cross axis, columns along the scan axis
@@ -478,12 +556,15 @@ def relocate_family(
             num = float(np.sum(dc[use] * ds[use]))
             den = float(np.sum(dc[use] ** 2))
             if den <= 0:
-                return RelocatedFamily(False, tuple(lines), initial, np.nan, 0, np.nan)
+                return _WindowFit(False, True, float(initial), float("nan"), 0, float("nan"))
             b = num / den
             rr = ds - b * dc
             r = rr[good_pt]
-            mad = 1.4826 * np.median(np.abs(r)) if r.size else 0.0
-            mask = np.where(good_pt, np.abs(rr) <= max(3 * mad, 0.05 * step), mask)
+            mad = 1.4826 * median(np.abs(r)) if r.size else 0.0
+            new_mask = np.where(good_pt, np.abs(rr) <= max(3 * mad, 0.05 * step), mask)
+            if np.array_equal(new_mask, mask):
+                break  # no point changed: further rounds repeat these numbers exactly
+            mask = new_mask
         cnt, cm, sm = _line_means(lid, n_lines_in, mask, s_all, c_all)
         good = cnt >= 3
         use = mask & good[lid]
@@ -514,29 +595,6 @@ def relocate_family(
     if groups is not None and n_used:
         stair_p, stair_jump = _staircase_test(np.asarray(groups, int)[lid], use, s_all, c_all, ss, n_used - n_lines - 1,
                                               lid, n_lines_in, b)
-    out = []
-    for ln, off in zip(lines, offsets):
-        if off is None:
-            out.append(replace(ln, position_stderr=float("nan")))
-            continue
-        sm, cm, n = off
-        if which == 0:
-            slope = 1.0 / b if b != 0 else np.inf
-            slope_err = b_err / b**2 if b != 0 else np.inf
-            x0, y0 = sm, cm
-            ys = (ln.start[1], ln.end[1])
-            start = (x0 + b * (ys[0] - y0), ys[0])
-            end = (x0 + b * (ys[1] - y0), ys[1])
-            perp = sigma / np.sqrt(n) / np.sqrt(1 + b * b)
-        else:
-            slope, slope_err = b, b_err
-            x0, y0 = cm, sm
-            xs = (ln.start[0], ln.end[0])
-            start = (xs[0], y0 + b * (xs[0] - x0))
-            end = (xs[1], y0 + b * (xs[1] - x0))
-            perp = sigma / np.sqrt(n) / np.sqrt(1 + b * b)
-        out.append(replace(ln, x0=float(x0), y0=float(y0), slope=float(slope), slope_stderr=float(slope_err),
-                           position_stderr=float(perp), start=start, end=end, n_points=n))
     ok = n_used >= 6 and np.isfinite(b_err)
-    return RelocatedFamily(ok, tuple(out), float(b), float(b_err), n_used, float(sigma), between,
-                           float(bend), float(bend_err), stair_p, stair_jump)
+    return _WindowFit(bool(ok), False, float(b), float(b_err), n_used, float(sigma), tuple(offsets), between,
+                      float(bend), float(bend_err), stair_p, stair_jump)
