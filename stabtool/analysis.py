@@ -907,7 +907,7 @@ class Analyzer:
         timings["total"] = time.perf_counter() - t0
         if not q.ok:
             warnings.warn(
-                f"{da.attrs.get('source', 'map')}: analysis doubtful: {'; '.join(q.warnings[:3])}",
+                f"{da.attrs.get('source', 'map')}: analysis doubtful: {'; '.join(q.doubts_first()[:3])}",
                 QualityWarning, stacklevel=2,
             )
         return AnalysisResult(data=da, detection=detection, diagram=fit, scale=scale, charge_states=states,

@@ -75,5 +75,5 @@ class Quality:
         return tuple(w for w, d in zip(self.warnings, f) if d) + tuple(w for w, d in zip(self.warnings, f) if not d)
 
     def to_dict(self) -> dict:
-        """JSON form ``{"ok": bool, "warnings": [...]}``."""
-        return {"ok": bool(self.ok), "warnings": list(self.warnings)}
+        """JSON form ``{"ok": bool, "warnings": [...]}``, the warnings that cleared ``ok`` first."""
+        return {"ok": bool(self.ok), "warnings": list(self.doubts_first())}

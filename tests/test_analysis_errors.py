@@ -117,3 +117,5 @@ def test_quality_lists_the_doubts_before_the_notes():
     assert q.doubts_first() == ("doubt b", "note a", "note c")
     # doubts unknown (a verdict built without flags): the warnings as they are
     assert Quality(ok=False, warnings=("x", "y")).doubts_first() == ("x", "y")
+    # the JSON (and so the CLI, the batch table and the summary) lists them in the same order
+    assert q.to_dict() == {"ok": False, "warnings": ["doubt b", "note a", "note c"]}
