@@ -194,3 +194,46 @@ def test_tunnel_bending_beyond_the_thermal_corner_is_still_detected():
     fit = fam.family_fit(members, others, axes, steep=True)
     assert fit.bend_used
     assert fit.slope == pytest.approx(S1, rel=0.01)
+
+
+def _correlated_lines(slope, *, n_lines, n, white, walk, rng):
+    """Lines whose points share a random walk along each line (slow noise), on top of white noise."""
+    g = np.random.default_rng(rng)
+    out = []
+    for k in range(n_lines):
+        t = np.linspace(0.0, 1.0, n) + 2.0 * k
+        slow = np.cumsum(g.normal(0, walk, n))
+        p = 0.7 * k + slope * (t - t.mean()) + slow + g.normal(0, white, n)
+        out.append(LinePoints(t=t, p=p, sig=np.full(n, white)))
+    return out
+
+
+def _pull_rms(walk, *, n_rep=300):
+    pulls = []
+    for rep in range(n_rep):
+        fit = fit_family(_correlated_lines(-0.3, n_lines=8, n=40, white=0.01, walk=walk, rng=rep), bend=False)
+        pulls.append((fit.slope + 0.3) / fit.slope_stderr)
+    return float(np.sqrt(np.mean(np.square(pulls))))
+
+
+def test_stated_slope_error_is_honest_for_white_noise():
+    # independent points: (estimate − truth)/σ has rms 1 (pull distribution, L. Lyons, Statistics for
+    # nuclear and particle physicists, CUP 1986, ch. 4); the per-line cluster error must not inflate it
+    # much (the fit states the larger of the two, so slightly below 1)
+    assert 0.8 <= _pull_rms(0.0) <= 1.15
+
+
+def test_stated_slope_error_covers_noise_correlated_along_each_line():
+    # a random walk along every line (slow noise) correlates its points: the independent-point error
+    # is several times too small (pull rms ≫ 1); the per-line clustered sandwich error (Liang & Zeger,
+    # Biometrika 73, 13 (1986)) restores pulls of rms ≈ 1 for independent lines
+    rms = _pull_rms(0.004)
+    assert 0.8 <= rms <= 1.3
+    naive = []
+    for rep in range(100):
+        lines = _correlated_lines(-0.3, n_lines=8, n=40, white=0.01, walk=0.004, rng=rep)
+        fit = fit_family(lines, bend=False)
+        # the independent-point error of the same fit (Birge-scaled): 0.01/√(Σ(t − t̄)²) · √χ²_red
+        sxx = sum(float(np.sum((lp.t - lp.t.mean()) ** 2)) for lp in lines)
+        naive.append((fit.slope + 0.3) / (0.01 / np.sqrt(sxx) * np.sqrt(max(fit.chi2_red, 1.0))))
+    assert np.sqrt(np.mean(np.square(naive))) > 1.5

@@ -253,9 +253,10 @@ def family_fit(members: Sequence[RefinedLine], others: Sequence[TransitionLine],
     pval = bending_significance(straight, bent) if bent is not None else 1.0
     z = float("nan")
     if bent is not None and bent.bend_terms > 0:
-        # the straight fit is nested in the bent one: σ of the difference is √(σ_b² − σ_s²)
-        var = bent.slope_stderr**2 - straight.slope_stderr**2
-        z = abs(bent.slope - straight.slope) / np.sqrt(max(var, 1e-3 * bent.slope_stderr**2))
+        # the straight fit is nested in the bent one: σ of the difference is √(σ_b² − σ_s²) for independent
+        # points (the clustered errors are not nested: a bend is itself a per-line correlated residual)
+        sb2, ss2 = bent.slope_stderr_iid**2, straight.slope_stderr_iid**2
+        z = abs(bent.slope - straight.slope) / np.sqrt(max(sb2 - ss2, 1e-3 * sb2))
     use = bent is not None and bent.bend_terms > 0 and (pval < BEND_P or z > BEND_Z)
     # the straight slope from the points clear of the (thermally or tunnel-) rounded corners
     chosen: JointFit = bent if use else straight  # type: ignore[assignment]

@@ -55,11 +55,17 @@ class JointFit:
     Attributes
     ----------
     slope, slope_stderr : float
-        Shared dp/dt and its standard error (scaled by √χ²_red when > 1).
+        Shared dp/dt and its standard error: the larger of the weighted
+        least-squares error scaled by √χ²_red when > 1 (Birge ratio) and the
+        cluster-robust error with one cluster per line (:func:`_clustered_var`).
     offsets : ndarray, shape (n_lines,)
         p of each line at its own mean t (NaN for lines left out).
     chi2_red : float
         χ² per degree of freedom of the accepted points.
+    slope_stderr_iid : float
+        The least-squares slope error for independent points (Birge-scaled),
+        without the clustered part: the nested straight/bent comparison of
+        :func:`stabtool.lines._family.family_fit` is made on it.
     n_points : int
         Accepted points.
     bend_terms : int
@@ -73,6 +79,7 @@ class JointFit:
     n_points: int
     bend_terms: int
     chi2: float
+    slope_stderr_iid: float = float("nan")
 
 
 def _design(lines: Sequence[LinePoints], bend: bool, shared: bool):
@@ -201,11 +208,40 @@ def fit_family(
     chi2 = float((r[keep] ** 2).sum())
     dof = max(int(keep.sum()) - n_par, 1)
     chi2r = chi2 / dof
-    se = float(np.sqrt(cov[0, 0] * max(chi2r, 1.0)))
+    var_iid = float(cov[0, 0] * max(chi2r, 1.0))
+    se = float(np.sqrt(max(var_iid, _clustered_var(Sc, w, y - off[lid] - S @ beta, lid, cov, n_lines))))
     has = np.bincount(lid, keep.astype(float), minlength=n_lines) > 0
     offsets = np.where(np.isfinite(tms) & has, off, np.nan)
     return JointFit(slope=float(beta[0]), slope_stderr=se, offsets=offsets, chi2_red=float(chi2r),
-                    n_points=int(keep.sum()), bend_terms=int(n_bend), chi2=chi2)
+                    n_points=int(keep.sum()), bend_terms=int(n_bend), chi2=chi2,
+                    slope_stderr_iid=float(np.sqrt(var_iid)))
+
+
+def _clustered_var(Sc: np.ndarray, w: np.ndarray, r: np.ndarray, lid: np.ndarray, cov: np.ndarray,
+                   n_lines: int) -> float:
+    """Cluster-robust (one cluster per line) variance of the shared slope; 0 when it cannot be formed.
+
+    ``Sc`` (n, k): the shared columns centred within each line; ``w`` (n,):
+    weights (0 for rejected points); ``r`` (n,): residuals in data units;
+    ``cov`` (k, k): inverse of the centred normal matrix. The sandwich
+    ``cov · Σ_g u_g u_gᵀ · cov`` with ``u_g = Σ_{i∈g} w_i Sc_i r_i`` and the
+    small-sample factor ``G/(G − 1) · (N − 1)/(N − K)`` (K.-Y. Liang and
+    S. L. Zeger, Biometrika 73, 13 (1986), doi:10.1093/biomet/73.1.13;
+    A. C. Cameron and D. L. Miller, J. Human Resources 50, 317 (2015),
+    doi:10.3368/jhr.50.2.317): crossing points along one line share slow
+    noise and pixel patterns, the lines are taken as independent.
+    """
+    on = w > 0
+    n = int(on.sum())
+    g_lines = int(np.unique(lid[on]).size)
+    k_par = Sc.shape[1] + g_lines
+    if g_lines < 2 or n <= k_par:
+        return 0.0
+    wr = w * r
+    u = np.stack([np.bincount(lid, wr * Sc[:, c], minlength=n_lines) for c in range(Sc.shape[1])], 1)
+    meat = u.T @ u * (g_lines / (g_lines - 1) * (n - 1) / (n - k_par))
+    v = float((cov @ meat @ cov)[0, 0])
+    return v if np.isfinite(v) and v > 0 else 0.0
 
 
 def bending_significance(straight: JointFit, bent: JointFit) -> float:
