@@ -76,12 +76,13 @@ def test_error_messages_print_enough_digits():
                                  "every element)").with_warning("a note", doubtful=False)
     fit = SimpleNamespace(ok=True, quality=old, addition_V=np.array([0.02, 0.02]),
                           addition_V_error=np.array([1e-4, 1e-4]), cdg_aF=cdg,
-                          cdg_aF_error=cdg * np.array([[0.01504, 0.01], [0.01, 0.01]]),
+                          cdg_aF_error=cdg * np.array([[MAX_CDG_REL_ERROR + 4e-5, 0.005], [0.005, 0.005]]),
                           vg_matrix_error=np.array([[0, 0.001], [0.001, 0]]))
     q = error_verdict(fit)
     assert not q.ok
     msg = [w for w in q.warnings if w.startswith("gate capacitances")]
-    assert len(msg) == 1 and "1.504 %" in msg[0] and f"≤ {100 * MAX_CDG_REL_ERROR:g} %" in msg[0]
+    over = f"{100 * (MAX_CDG_REL_ERROR + 4e-5):.3f} %"  # e.g. "1.504 %" against 1.5 %
+    assert len(msg) == 1 and over in msg[0] and f"≤ {100 * MAX_CDG_REL_ERROR:g} %" in msg[0]
     assert "a note" in q.warnings
     # just inside the bound the check passes and the stale warning is gone
     fit.cdg_aF_error = cdg * (MAX_CDG_REL_ERROR - 1e-4)

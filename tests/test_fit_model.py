@@ -122,8 +122,10 @@ def test_all_profiles_at_once_give_the_change_point_of_each():
 
 def test_error_checks_are_those_of_error_verdict():
     """fit_diagram's error-only checks are fit.uncertainty.error_verdict: redoing them changes nothing,
-    and a bound exceeded by a little prints enough digits ("1.54 %", never "1.5 % … ≤ 1.5 %")."""
+    and a bound exceeded by a little prints enough digits ("1.04 %", never "1.0 % … ≤ 1 %")."""
     from dataclasses import replace as _replace
+
+    from stabtool.fit.model import MAX_CDG_REL_ERROR
 
     from stabtool.fit.uncertainty import error_verdict
 
@@ -133,10 +135,10 @@ def test_error_checks_are_those_of_error_verdict():
     assert fit.ok
     assert error_verdict(fit).warnings == fit.quality.warnings
     cdg_err = fit.cdg_aF_error.copy()
-    cdg_err[0, 0] = 0.01537 * abs(fit.cdg_aF[0, 0])  # 1.537 % against the 1.5 % bound
+    cdg_err[0, 0] = (MAX_CDG_REL_ERROR + 3.7e-4) * abs(fit.cdg_aF[0, 0])  # e.g. 1.037 % against 1 %
     worse = _replace(fit, cdg_aF_error=cdg_err)
     msgs = [w for w in error_verdict(worse).warnings if w.startswith("gate capacitances uncertain")]
-    assert msgs and "1.54 %" in msgs[0]
+    assert msgs and f"{100 * (MAX_CDG_REL_ERROR + 3.7e-4):.2f} %" in msgs[0]
 
 
 @pytest.mark.parametrize("size", [1, 2, 3, 8, 11, 40])

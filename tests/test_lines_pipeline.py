@@ -265,3 +265,33 @@ def test_broad_lines_at_low_snr_are_found_at_the_selected_scale():
                 assert not res.quality.ok
     assert min(counts[True]) >= 2  # both families found on every map
     assert min(counts[False]) < 2  # the base scale alone misses a family
+
+
+def test_crossings_near_the_map_border_stay_on_the_half_occupation_line():
+    # A thermally broadened dot2 step (Fermi width 0.9 px, i.e. a 3.2 px FWHM) whose line runs
+    # from row 9 into the bottom edge (row 0.7), read through the flank of a Lorentzian sensor
+    # peak (a Coulomb peak, common practice, no source) that the gate also sweeps. Where the
+    # border cuts the profile short of the lower plateau, the fit would have to extrapolate it,
+    # and the sensor's curvature then moves the crossing (0.37 px at row 1 without the rule).
+    # Every reported crossing must lie within 0.1 px of the true half-occupation row, and the
+    # line's slope within 1 %.
+    from stabtool.lines.hough import PixelSegment
+    from stabtool.lines.refine import refine_segments
+    from stabtool.mapdata import MapAxes
+
+    ny, nx, w = 40, 60, 0.9
+    cols, rows = np.arange(nx), np.arange(ny)
+    line = 9.0 - 0.14 * cols  # row of the half-occupation crossing in each column
+    occ = 1.0 / (1.0 + np.exp(-(rows[:, None] - line[None, :]) / w))  # Fermi–Dirac, 0 → 1 across the line
+    phi = 0.03 * rows[:, None] - 0.5 * occ  # sensor detuning in peak half-widths
+    img = 1.0 / (1.0 + (phi - 0.8) ** 2)
+    axes = MapAxes(x=cols * 1e-3, y=rows * 1e-3, x_gate="PA", y_gate="PB")
+    n = np.hypot(1.0, 0.14)
+    seg = PixelSegment(cx=30.0, cy=9.0 - 0.14 * 30, ux=1.0 / n, uy=-0.14 / n, t0=-28.0, t1=28.0,
+                       n_pixels=56, rms_px=0.3)
+    r = refine_segments([seg], img, axes, families=["dot2"], along_x=[False])[0]
+    assert r.refined
+    t, p, _ = r.points
+    c = np.round(t / 1e-3).astype(int)
+    np.testing.assert_allclose(p / 1e-3, line[c], rtol=0, atol=0.1)
+    assert r.line.slope == pytest.approx(-0.14, rel=0.01)

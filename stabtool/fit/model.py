@@ -38,9 +38,11 @@ MAX_CELL_SPREAD = 0.10
 #: Largest standard error of an off-diagonal virtual-gate element for an ok verdict
 #: (3σ stays within the 0.02 accuracy goal at SNR 3).
 MAX_VG_ERROR = 0.0067
-#: Largest relative standard error of any Cdg element for an ok verdict (the stated errors
-#: run about twice the errors measured on generator maps; checked by the SNR-sweep test).
-MAX_CDG_REL_ERROR = 0.015
+#: Largest relative standard error of any Cdg element for an ok verdict: the 2 % goal must be at
+#: least two stated σ. The stated errors run about twice the errors measured on generator maps
+#: (pulls 0.2-0.6), but a held-out map read through a sech² sensor was 2.3 % off with a stated
+#: 1.16 % (1.5 % let it through as ok); checked by the SNR-sweep test.
+MAX_CDG_REL_ERROR = 0.01
 #: δ must exceed this many standard errors to count as resolved.
 MUTUAL_SIGMAS = 3.0
 #: F-test p-value below which detected segments count as staircases merged across charge bands

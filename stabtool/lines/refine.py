@@ -542,6 +542,14 @@ def _refine_once(segs, values, axes, *, families, along_x, halfwidth_px, max_poi
     floor = np.where(sharp, 1.0 / np.sqrt(12.0), np.where(interp, 0.1, 0.05))
     sig_v = np.maximum(u0e, floor) * np.abs(pstep)
     ok = ok & np.isfinite(u0)
+    if MIN_SIDE_PX > 0:
+        # profiles that the map's border (or missing data) cuts short of a plateau are dropped;
+        # reach from the segment's median fitted width (a single profile's is noisy at low SNR)
+        w_seg = _row_median(pad(width, np.nan), pad(ok & np.isfinite(width), False))[blk]
+        n_pos = np.where(alx, values.shape[1], values.shape[0])[:, None]
+        at = centre[:, None] + U
+        avail = (at >= 0) & (at < n_pos) & np.isfinite(Y)
+        ok &= _plateaus_on_both_sides(U, avail, u0, w_seg)
     T, P, S, V = pad(t_v, np.nan), pad(p_v, np.nan), pad(sig_v, np.nan), pad(ok, False)
     nok = V.sum(1)
     beta, cov, keep, tm, fit_ok = _robust_line_fits(T, P, S, V)
@@ -589,6 +597,47 @@ def _refine_once(segs, values, axes, *, families, along_x, halfwidth_px, max_poi
         out[k] = RefinedLine(line=line, step_height=float(h_abs[j]), refined=True, shape=kind,
                              points=(T[j][kj], P[j][kj], S[j][kj]), along_x=along)
     return out + extra
+
+
+#: a profile must have samples on the map (not cut off by its border or by missing data) up to
+#: ``max(MIN_SIDE_PX, MIN_SIDE_WIDTHS·w)`` beyond its fitted crossing on both sides
+MIN_SIDE_PX = 3.0
+MIN_SIDE_WIDTHS = 4.0
+
+
+def _plateaus_on_both_sides(U: np.ndarray, avail: np.ndarray, u0: np.ndarray, width: np.ndarray) -> np.ndarray:
+    """Profiles whose available samples run ``max(MIN_SIDE_PX, MIN_SIDE_WIDTHS·w)`` past ``u0`` on both sides.
+
+    ``U`` (m, k) sample offsets, ``avail`` (m, k) samples on the map with a
+    finite value, ``u0`` (m,) fitted crossings, ``width`` (m,) Fermi widths
+    (px; NaN counts as 0). A side's run ends at its first unavailable sample;
+    a side without one passes (the window length is the caller's choice).
+
+    Why: a line that runs within a few pixels of the map's border (or of a
+    block of missing rows) has one plateau of its step cut off. The fit then
+    extrapolates that level with the baseline slope taken from the other
+    side, and any curvature of the sensor background moves the crossing: on
+    a 112² si-sige map with 3 px broad lines, the dot2 line 1–6 rows above
+    the bottom edge came out 0.3–0.7 px above its true half-occupation
+    crossing where fewer than 3 rows lay below it (≈ 0.1 px elsewhere), a
+    tilt that read as bending towards the triple points. A Fermi step is
+    within 2 % of its plateau 4 widths from its centre (``1/(1 + e⁴)``).
+    Cuts at neighbouring lines (:func:`_all_profiles`) are not counted
+    here: near a vertex they are needed, and the family fits leave those
+    points out anyway.
+    """
+    w = np.where(np.isfinite(width), width, 0.0)
+    reach = np.maximum(MIN_SIDE_PX, MIN_SIDE_WIDTHS * w)
+    with np.errstate(invalid="ignore"):
+        d = U - u0[:, None]
+        # distance to the first unavailable sample on each side (inf: none inside the window);
+        # the last available sample lies 1 px closer
+        lo_bad = np.where(~avail & (d < 0), -d, np.inf).min(1)
+        hi_bad = np.where(~avail & (d > 0), d, np.inf).min(1)
+        # a side that the border does not cut at all passes (the window's own length is the caller's choice)
+        lo_ok = ~np.isfinite(lo_bad) | (lo_bad - 1.0 >= reach)
+        hi_ok = ~np.isfinite(hi_bad) | (hi_bad - 1.0 >= reach)
+        return lo_ok & hi_ok
 
 
 def _interpolated_crossings(fit: BatchFit, U: np.ndarray, Y: np.ndarray, M: np.ndarray, hw: int) -> BatchFit:
