@@ -435,7 +435,6 @@ def test_profile_rows_of_a_long_segment_are_spread_like_linspace():
 def test_bracketed_median_equals_numpy_median_on_large_arrays():
     # large arrays select the middle values inside a bracket from a sample; ties, sorted
     # input, heavy tails and both parities must give numpy's median exactly
-    from stabtool.preprocess.noise import BRACKET_MIN_SIZE, _median_inplace
 
     rng = np.random.default_rng(12)
     n0 = BRACKET_MIN_SIZE

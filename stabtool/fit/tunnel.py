@@ -168,7 +168,8 @@ class _CutGeometry:
 
 
 def _interpolation_plan(xs: np.ndarray, ys: np.ndarray, through: np.ndarray, u: np.ndarray, s: np.ndarray,
-                        offsets: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+                        offsets: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray,
+                                                      tuple[int, int, int, int]]:
     """Pixels and bilinear weights of the parallel cuts of ``detuning_profile`` (same index maps).
 
     Returns node positions along ``u`` and ``n`` (V from ``through``), (m, n, 4) node indices
