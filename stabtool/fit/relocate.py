@@ -36,6 +36,7 @@ from itertools import pairwise
 import numpy as np
 from scipy.special import fdtrc  # F survival function, = scipy.stats.f.sf(x, dfn, dfd)
 
+from ..lines.joint import clustered_slope_variance
 from ..lines.result import TransitionLine
 
 __all__ = ["RelocatedFamily", "SplitFamily", "clustered_slope_error", "relocate_family", "split_at_crossings"]
@@ -382,13 +383,10 @@ def clustered_slope_error(lid: np.ndarray, dc: np.ndarray, r: np.ndarray, den: f
     lid = np.asarray(lid, np.int64)
     if lid.size == 0 or not den > 0:
         return float("nan")
-    g = np.bincount(lid, np.asarray(dc, float) * np.asarray(r, float), n_groups)
-    n_lines = int(np.count_nonzero(np.bincount(lid, None, n_groups)))
-    n = int(lid.size)
-    if n_lines < 2 or n <= n_lines + 1:
-        return float("nan")
-    corr = n_lines / (n_lines - 1) * (n - 1) / (n - n_lines - 1)
-    return float(np.sqrt(corr * float(g @ g)) / den)
+    # one shared column (dc), unit weights, bread 1/Σdc²: the family fit's sandwich with k = 1
+    v = clustered_slope_variance(np.asarray(dc, float)[:, None], np.ones(lid.size), np.asarray(r, float), lid,
+                                 np.array([[1.0 / den]]), n_groups)
+    return float(np.sqrt(v)) if v > 0 else float("nan")
 
 
 def _line_means(lid: np.ndarray, n: int, mask: np.ndarray, s: np.ndarray, c: np.ndarray):

@@ -28,7 +28,7 @@ from typing import Sequence
 import numpy as np
 from scipy.special import fdtrc  # F survival function, = scipy.stats.f.sf(x, dfn, dfd)
 
-__all__ = ["LinePoints", "JointFit", "fit_family", "bending_significance"]
+__all__ = ["LinePoints", "JointFit", "fit_family", "bending_significance", "clustered_slope_variance"]
 
 
 @dataclass(frozen=True)
@@ -57,7 +57,7 @@ class JointFit:
     slope, slope_stderr : float
         Shared dp/dt and its standard error: the larger of the weighted
         least-squares error scaled by √χ²_red when > 1 (Birge ratio) and the
-        cluster-robust error with one cluster per line (:func:`_clustered_var`).
+        cluster-robust error with one cluster per line (:func:`clustered_slope_variance`).
     offsets : ndarray, shape (n_lines,)
         p of each line at its own mean t (NaN for lines left out).
     chi2_red : float
@@ -209,7 +209,7 @@ def fit_family(
     dof = max(int(keep.sum()) - n_par, 1)
     chi2r = chi2 / dof
     var_iid = float(cov[0, 0] * max(chi2r, 1.0))
-    se = float(np.sqrt(max(var_iid, _clustered_var(Sc, w, y - off[lid] - S @ beta, lid, cov, n_lines))))
+    se = float(np.sqrt(max(var_iid, clustered_slope_variance(Sc, w, y - off[lid] - S @ beta, lid, cov, n_lines))))
     has = np.bincount(lid, keep.astype(float), minlength=n_lines) > 0
     offsets = np.where(np.isfinite(tms) & has, off, np.nan)
     return JointFit(slope=float(beta[0]), slope_stderr=se, offsets=offsets, chi2_red=float(chi2r),
@@ -217,8 +217,8 @@ def fit_family(
                     slope_stderr_iid=float(np.sqrt(var_iid)))
 
 
-def _clustered_var(Sc: np.ndarray, w: np.ndarray, r: np.ndarray, lid: np.ndarray, cov: np.ndarray,
-                   n_lines: int) -> float:
+def clustered_slope_variance(Sc: np.ndarray, w: np.ndarray, r: np.ndarray, lid: np.ndarray, cov: np.ndarray,
+                             n_lines: int) -> float:
     """Cluster-robust (one cluster per line) variance of the shared slope; 0 when it cannot be formed.
 
     ``Sc`` (n, k): the shared columns centred within each line; ``w`` (n,):
@@ -229,7 +229,9 @@ def _clustered_var(Sc: np.ndarray, w: np.ndarray, r: np.ndarray, lid: np.ndarray
     S. L. Zeger, Biometrika 73, 13 (1986), doi:10.1093/biomet/73.1.13;
     A. C. Cameron and D. L. Miller, J. Human Resources 50, 317 (2015),
     doi:10.3368/jhr.50.2.317): crossing points along one line share slow
-    noise and pixel patterns, the lines are taken as independent.
+    noise and pixel patterns, the lines are taken as independent. ``K`` is
+    the shared columns plus one offset per line. Also serves the relocation's
+    common slope (:func:`stabtool.fit.relocate.clustered_slope_error`).
     """
     on = w > 0
     n = int(on.sum())
