@@ -14,6 +14,7 @@ doi:10.1103/RevModPhys.75.1 (constant-interaction model).
 
 from __future__ import annotations
 
+import functools
 import os
 import time
 import warnings
@@ -101,6 +102,48 @@ class EnergyScale:
     full_alpha_error: np.ndarray = field(default_factory=lambda: np.full((2, 2), np.nan))
 
 
+def charging_energies(scale: Any, diagram: Any) -> tuple[dict, dict]:
+    """Charging energies and their errors (meV) from the lever arms and the diagram's voltages.
+
+    ``E_C1 = α11 ΔV1``, ``E_C2 = α22 ΔV2``, ``E_Cm`` = mean of ``α11 δ1`` and
+    ``α22 δ2`` (NaN while the mutual shifts are unresolved); errors from the
+    two factors' errors in quadrature.
+
+    Parameters
+    ----------
+    scale
+        Energy scale with ``alpha_diag`` and ``alpha_diag_error`` (eV/V, shape (2,)).
+    diagram
+        Diagram fit with ``addition_V``, ``mutual_V`` (V, shape (2,)), their
+        ``*_error`` companions and ``mutual_resolved``.
+
+    Returns
+    -------
+    (values, errors) : tuple of dict
+        Keys ``"dot1"``, ``"dot2"``, ``"mutual"``, meV.
+
+    References
+    ----------
+    W. G. van der Wiel et al., Rev. Mod. Phys. 75, 1 (2003), doi:10.1103/RevModPhys.75.1.
+    """
+    a, sa = scale.alpha_diag, scale.alpha_diag_error
+    dv, sdv = diagram.addition_V, diagram.addition_V_error
+    dm, sdm = diagram.mutual_V, diagram.mutual_V_error
+    ec = 1e3 * a * dv
+    sec = 1e3 * np.sqrt((sa * dv) ** 2 + (a * sdv) ** 2)
+    ecm_each = 1e3 * a * dm
+    secm_each = 1e3 * np.sqrt((sa * dm) ** 2 + (a * sdm) ** 2)
+    if diagram.mutual_resolved:
+        ecm = float(np.mean(ecm_each))
+        secm = float(np.sqrt(np.sum(secm_each**2)) / 2)
+    else:
+        ecm, secm = float("nan"), float("nan")
+    return (
+        {"dot1": float(ec[0]), "dot2": float(ec[1]), "mutual": ecm},
+        {"dot1": float(sec[0]), "dot2": float(sec[1]), "mutual": secm},
+    )
+
+
 @dataclass(frozen=True)
 class AnalysisResult:
     """Everything ``stabtool analyze`` reports about one map.
@@ -179,30 +222,16 @@ class AnalysisResult:
         return self._charging()[1]
 
     def _charging(self) -> tuple[dict, dict]:
-        a, sa = self.scale.alpha_diag, self.scale.alpha_diag_error
-        dv, sdv = self.diagram.addition_V, self.diagram.addition_V_error
-        dm, sdm = self.diagram.mutual_V, self.diagram.mutual_V_error
-        ec = 1e3 * a * dv
-        sec = 1e3 * np.sqrt((sa * dv) ** 2 + (a * sdv) ** 2)
-        ecm_each = 1e3 * a * dm
-        secm_each = 1e3 * np.sqrt((sa * dm) ** 2 + (a * sdm) ** 2)
-        if self.diagram.mutual_resolved:
-            ecm = float(np.mean(ecm_each))
-            secm = float(np.sqrt(np.sum(secm_each**2)) / 2)
-        else:
-            ecm, secm = float("nan"), float("nan")
-        return (
-            {"dot1": float(ec[0]), "dot2": float(ec[1]), "mutual": ecm},
-            {"dot1": float(sec[0]), "dot2": float(sec[1]), "mutual": secm},
-        )
+        return charging_energies(self.scale, self.diagram)
 
-    @property
+    @functools.cached_property
     def triple_points(self) -> np.ndarray:
         """Triple points (x, y) in volts, shape (k, 2), predicted by the fitted lattice inside the map.
 
         The pair of cell (N1, N2) lies at ``V' = (ΔV1 (N1 − ½) + δ1 N2 + c1,
         ΔV2 (N2 + ½) + δ2 (N1 − 1) + c2)`` and that point plus ``(δ1, δ2)``
         (the two ends of the interdot segment). Empty when the fit failed.
+        Computed once per result (the JSON and the plot both use it); read-only.
         """
         d = self.diagram
         lat = d.lattice
@@ -222,7 +251,9 @@ class AnalysisResult:
                     px, py = minv @ vp
                     if x.min() <= px <= x.max() and y.min() <= py <= y.max():
                         pts.append((px, py))
-        return np.array(pts, float).reshape(-1, 2)
+        out = np.array(pts, float).reshape(-1, 2)
+        out.flags.writeable = False
+        return out
 
     # ------------------------------------------------------------------ output
     def to_json(self) -> dict:
@@ -622,6 +653,27 @@ def _lever_arm_from_file(path: str, da: xr.DataArray) -> tuple[np.ndarray, np.nd
 
 
 # ------------------------------------------------------------------ pipeline
+def _row_corrected_map(da: xr.DataArray, detection: LineDetection | None) -> xr.DataArray:
+    """The map the lines are measured on: the detector's row-corrected map when row offsets are significant.
+
+    Row offsets (1/f noise or switching of the sensor between sweeps) are steps
+    along y common to a whole row; the change points that re-measure the dot2
+    lines column by column lock onto them (seen: ge-double, SNR 10, 1/f rows of
+    3 σ: every dot2 line found horizontal, |ΔM21| = 0.34). The correction itself
+    bends the profiles where lines take much of a row, so it is used only when
+    :func:`stabtool.preprocess.background.row_offset_test` finds offsets beyond
+    the white noise; otherwise (and without a processed map) ``da`` itself.
+    """
+    from .preprocess.background import row_offset_test
+
+    proc = None if detection is None else detection.processed
+    if proc is None or np.shape(proc) != da.shape or not np.isfinite(detection.noise_level):
+        return da
+    if not row_offset_test(np.asarray(da.values, float), detection.noise_level).significant:
+        return da
+    return da.copy(data=np.asarray(proc, float))
+
+
 def _default_detector(da: xr.DataArray) -> LineDetection:
     from . import lines as _lines
 
@@ -759,8 +811,12 @@ class Analyzer:
             q = q.with_warning(f"line detection failed: {type(exc).__name__}: {exc}")
         timings["detect"] = time.perf_counter() - t0
         t1 = time.perf_counter()
+        fit_map = _row_corrected_map(da, detection)
+        if fit_map is not da:
+            q = q.with_warning("row offsets (slow-axis noise) beyond the white noise: lines measured on the "
+                               "row-corrected map", doubtful=False)
         if detection is not None:
-            fit = fit_diagram(detection, data=da)
+            fit = fit_diagram(detection, data=fit_map)
             # the lines are re-checked and re-measured on the map by the fitter: the
             # detector's own doubts are kept as notes when the fit succeeded
             for w in detection.quality.warnings:
@@ -793,7 +849,8 @@ class Analyzer:
                 t2 = time.perf_counter()
                 from .fit.refine import adopt_refinement, refine_model
 
-                refinement = refine_model(da, fit, charge_states=states, width_guess_V=_median_dot1_width(fit))
+                refinement = refine_model(fit_map, fit, charge_states=states,
+                                          width_guess_V=_median_dot1_width(fit))
                 adoption = adopt_refinement(fit, refinement)
                 q = q.merge(refinement.quality).merge(adoption.quality)
                 adopted = adoption.adopted
@@ -828,7 +885,7 @@ class Analyzer:
 
             triangles = fit_bias_triangles(da, bias_V=1e-3 * self.bias_mV,
                                            electron_temperature_K=self.electron_temperature_K)
-        scale = _scale(da, fit, temperature_K=self.electron_temperature_K, lever_arm=self.lever_arm,
+        scale = _scale(fit_map, fit, temperature_K=self.electron_temperature_K, lever_arm=self.lever_arm,
                        lever_arm_file=self.lever_arm_file, triangles=triangles)
         if (self.electron_temperature_K is not None and refinement is not None and refinement.ok
                 and refinement.width_resolved):
@@ -838,6 +895,12 @@ class Analyzer:
             scale = replace(scale, details={**scale.details, "alpha11_from_refined_width": a11,
                                             "alpha11_from_refined_width_error": a11 * sw1 / w1})
         q = q.merge(scale.quality)
+        if fit.ok and np.any(np.isfinite(scale.alpha_diag)):
+            # an ok map promises α and E_C within 5 %: their own stated errors must allow it
+            from .fit.scale_verdict import scale_error_verdict
+
+            ec, ec_err = charging_energies(scale, fit)
+            q = q.merge(scale_error_verdict(scale.alpha_diag, scale.alpha_diag_error, ec, ec_err))
         timings["scale"] = time.perf_counter() - t3
         coupling = None
         if fit.ok and fit.mutual_resolved:

@@ -10,13 +10,15 @@ quantities (gradient magnitude) or the local sign of a step.
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 import xarray as xr
 
 from ._checks import as_map_array
 from ._nan import nan_gaussian
 
-__all__ = ["remove_background", "correct_row_offsets", "default_background_sigma"]
+__all__ = ["RowOffsetTest", "correct_row_offsets", "default_background_sigma", "remove_background", "row_offset_test"]
 
 
 def default_background_sigma(shape: tuple[int, int]) -> float:
@@ -232,3 +234,81 @@ def correct_row_offsets(da: xr.DataArray) -> xr.DataArray:
     values, _, _ = as_map_array(da)
     off = _row_offsets_core(values)
     return da.copy(data=values - off[:, None])
+
+
+#: Row offsets are significant when the changes of consecutive row steps scatter by more than this
+#: many noise σ (robust scatter; white noise alone gives ≈ 1; broad jitter: 1/f noise, random walks).
+ROW_SCATTER_Z = 3.0
+#: A row step is sharp when it departs from the running median of ``SHARP_WINDOW_ROWS`` row steps
+#: by more than this many noise σ of a row median ...
+SHARP_STEP_Z = 8.0
+SHARP_WINDOW_ROWS = 5
+#: ... and this many sharp steps make the row offsets significant (sparse jumps: sensor switching
+#: between sweeps).
+MIN_SHARP_STEPS = 3
+
+
+@dataclass(frozen=True)
+class RowOffsetTest:
+    """Whether a map has row offsets beyond its white noise (:func:`row_offset_test`).
+
+    Attributes
+    ----------
+    scatter_z : float
+        Robust scatter of the changes of consecutive row steps, in noise σ (≈ 1 for white noise).
+    n_sharp : int
+        Row steps departing from their neighbours' by more than ``SHARP_STEP_Z`` σ.
+    significant : bool
+        ``scatter_z > ROW_SCATTER_Z`` or ``n_sharp >= MIN_SHARP_STEPS``.
+    """
+
+    scatter_z: float
+    n_sharp: int
+    significant: bool
+
+
+def row_offset_test(values: np.ndarray, noise: float) -> RowOffsetTest:
+    """Test a map for row offsets (steps common to a whole row) beyond its white noise.
+
+    Parameters
+    ----------
+    values : ndarray, shape (ny, nx)
+        The map (NaN allowed).
+    noise : float
+        White-noise σ of a pixel (e.g. from differences along the fast axis,
+        which row offsets do not reach).
+
+    Returns
+    -------
+    RowOffsetTest
+
+    Notes
+    -----
+    The row steps are the medians of consecutive-row differences
+    (:func:`correct_row_offsets`); with white noise alone each has the
+    standard error ``σ·√(π/n)`` (asymptotic variance π/2·2σ²/n of a sample
+    median of n differences). Transition lines bias these medians too, but
+    smoothly from row to row (a line has a thermal width and crosses the
+    rows gradually), while a row offset is one pixel sharp along y. Hence
+    the test uses only the sharp part: the changes of consecutive steps
+    (two steps share a row, so their change has 3× the variance of one)
+    (robust scatter, median absolute deviation, F. R. Hampel, J. Am. Stat.
+    Assoc. 69, 383 (1974), doi:10.1080/01621459.1974.10482962) for dense
+    jitter, and the departures from a running median of the steps for sparse
+    jumps.
+    """
+    from scipy.ndimage import median_filter
+
+    values = np.asarray(values, dtype=np.float64)
+    if values.ndim != 2 or values.shape[0] < 4 or not (np.isfinite(noise) and noise > 0):
+        return RowOffsetTest(float("nan"), 0, False)
+    st = np.diff(_row_offsets_core(values))
+    n = np.isfinite(np.diff(values, axis=0)).sum(axis=1)
+    z = np.where(n >= 3, st / (float(noise) * np.sqrt(np.pi / np.maximum(n, 1))), 0.0)
+    # consecutive steps share a row (with opposite signs): correlation −1/2, so a change of two
+    # steps has variance 2 + 2·½ = 3 in units of one step's
+    dz = np.diff(z) / np.sqrt(3.0)
+    scatter = float(1.4826 * np.median(np.abs(dz - np.median(dz))))
+    sharp = z - median_filter(z, SHARP_WINDOW_ROWS, mode="nearest")
+    n_sharp = int(np.count_nonzero(np.abs(sharp) > SHARP_STEP_Z))
+    return RowOffsetTest(scatter, n_sharp, bool(scatter > ROW_SCATTER_Z or n_sharp >= MIN_SHARP_STEPS))
