@@ -102,6 +102,26 @@ class EnergyScale:
     full_alpha_error: np.ndarray = field(default_factory=lambda: np.full((2, 2), np.nan))
 
 
+def lever_arm_matrix(scale: Any, diagram: Any) -> tuple[np.ndarray, np.ndarray]:
+    """Lever-arm matrix ``α = diag(α11, α22) · M`` and its errors, shape (2, 2), eV/V.
+
+    Parameters
+    ----------
+    scale
+        Energy scale with ``alpha_diag`` and ``alpha_diag_error`` (shape (2,)).
+    diagram
+        Diagram fit with ``vg_matrix`` and ``vg_matrix_error`` (shape (2, 2)).
+
+    Returns
+    -------
+    (alpha, alpha_error) : tuple of ndarray
+        Errors from the two factors' errors in quadrature; NaN without a scale.
+    """
+    a, sa = scale.alpha_diag[:, None], scale.alpha_diag_error[:, None]
+    m, sm = diagram.vg_matrix, diagram.vg_matrix_error
+    return a * m, np.sqrt((sa * m) ** 2 + (a * sm) ** 2)
+
+
 def charging_energies(scale: Any, diagram: Any) -> tuple[dict, dict]:
     """Charging energies and their errors (meV) from the lever arms and the diagram's voltages.
 
@@ -201,16 +221,13 @@ class AnalysisResult:
         """
         if not self.diagram.ok and np.all(np.isfinite(self.scale.full_alpha)):
             return self.scale.full_alpha
-        return self.scale.alpha_diag[:, None] * self.diagram.vg_matrix
+        return lever_arm_matrix(self.scale, self.diagram)[0]
 
     @property
     def lever_arm_error(self) -> np.ndarray:
         if not self.diagram.ok and np.all(np.isfinite(self.scale.full_alpha)):
             return self.scale.full_alpha_error
-        a = self.scale.alpha_diag[:, None]
-        sa = self.scale.alpha_diag_error[:, None]
-        m, sm = self.diagram.vg_matrix, self.diagram.vg_matrix_error
-        return np.sqrt((sa * m) ** 2 + (a * sm) ** 2)
+        return lever_arm_matrix(self.scale, self.diagram)[1]
 
     @property
     def charging_energy_meV(self) -> dict:
@@ -899,8 +916,9 @@ class Analyzer:
             # an ok map promises α and E_C within 5 %: their own stated errors must allow it
             from .fit.scale_verdict import scale_error_verdict
 
+            alpha, alpha_err = lever_arm_matrix(scale, fit)
             ec, ec_err = charging_energies(scale, fit)
-            q = q.merge(scale_error_verdict(scale.alpha_diag, scale.alpha_diag_error, ec, ec_err))
+            q = q.merge(scale_error_verdict(alpha, alpha_err, ec, ec_err))
         timings["scale"] = time.perf_counter() - t3
         coupling = None
         if fit.ok and fit.mutual_resolved:

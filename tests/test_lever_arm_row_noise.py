@@ -36,6 +36,17 @@ def test_scale_verdict_accepts_numbers_with_small_errors_and_ignores_missing_one
     assert not q.ok
 
 
+def test_scale_verdict_holds_every_element_of_the_lever_arm_matrix_to_the_goal():
+    # the fitter's bounds score all four elements of α = diag(α11, α22)·M relatively
+    alpha = np.array([[0.10, 0.004], [0.006, 0.08]])
+    small = 0.01 * np.abs(alpha)
+    assert scale_error_verdict(alpha, small, {}, {}).ok
+    err = small.copy()
+    err[0, 1] = 0.04 * alpha[0, 1]  # α12 known to 4 %: the 5 % goal is not 2 σ
+    q = scale_error_verdict(alpha, err, {}, {})
+    assert not q.ok and "α12" in " ".join(q.warnings)
+
+
 
 def _heldout_like_map(seed: int, T: float = 0.23, walk: float = 1.0):
     """A map the analysis was not tuned on: Gaussian sensor peak, white noise SNR 60, row random walk.

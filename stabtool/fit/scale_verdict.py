@@ -39,20 +39,22 @@ SCALE_SIGMAS = 2.0
 
 
 def scale_error_verdict(
-    alpha_diag: np.ndarray,
-    alpha_diag_error: np.ndarray,
+    alpha: np.ndarray,
+    alpha_error: np.ndarray,
     charging_meV: Mapping[str, float],
     charging_error_meV: Mapping[str, float],
     *,
     goal: float = SCALE_GOAL,
     sigmas: float = SCALE_SIGMAS,
 ) -> Quality:
-    """Doubtful when a reported α_ii or E_C has a stated relative error above ``goal/sigmas``.
+    """Doubtful when a reported lever arm or E_C has a stated relative error above ``goal/sigmas``.
 
     Parameters
     ----------
-    alpha_diag, alpha_diag_error : array of shape (2,)
-        α11, α22 (eV/V) and standard errors; NaN = not reported (no check).
+    alpha, alpha_error : array of shape (2,) or (2, 2)
+        Lever arms (eV/V) and standard errors: the diagonal α11, α22 or the
+        whole matrix (every element is held to the goal, as the fitter's
+        bounds do); NaN = not reported (no check).
     charging_meV, charging_error_meV : mapping
         Charging energies ``{"dot1", "dot2", "mutual"}`` and their standard
         errors, meV; NaN or None = not reported.
@@ -69,8 +71,12 @@ def scale_error_verdict(
     """
     lim = goal / sigmas
     q = Quality()
-    named = [(f"lever arm α{i + 1}{i + 1}", float(alpha_diag[i]), float(alpha_diag_error[i]), "eV/V")
-             for i in range(len(alpha_diag))]
+    a, sa = np.asarray(alpha, float), np.asarray(alpha_error, float)
+    if a.ndim == 1:
+        a, sa = np.diag(a), np.diag(sa)
+        a[~np.eye(len(a), dtype=bool)] = np.nan
+    named = [(f"lever arm α{i + 1}{j + 1}", float(a[i, j]), float(sa[i, j]), "eV/V")
+             for i in range(a.shape[0]) for j in range(a.shape[1])]
     for key, val in charging_meV.items():
         err = charging_error_meV.get(key)
         named.append((f"charging energy E_C {key}", np.nan if val is None else float(val),
