@@ -9,7 +9,9 @@ also times the bare pipeline (``Analyzer.analyze_file`` + ``save_plot`` in a
 loop, no batch machinery) on the same maps, so the batch overhead shows as
 t(batch, 1 worker) / t(bare). The goal for the full size is N=1000, S=200
 in ≤ 60 s with 2 workers; the projected time for N=1000 is printed for a
-reduced N.
+reduced N, twice: scaled from the N-map run (which counts the once-per-batch
+work at the end N times over), and from the marginal cost of a map (the
+difference of 2-worker runs over N/2 and N maps) plus that work once.
 
 CPU times (this process plus its worker processes) are printed next to the
 wall times, with the load average: on a machine shared with other jobs the
@@ -151,6 +153,13 @@ def main() -> None:
             times[workers] = time.perf_counter() - t
             parent[workers] = time.process_time() - p
             cpus[workers] = cpu_now() - c
+        # the same with half the maps: the difference is the cost of n/2 more maps, without the
+        # once-per-batch work at the end (NetCDF table, summary page, drift plots)
+        half = max(args.n // 2, 1)
+        c = cpu_now()
+        t = time.perf_counter()
+        run_batch(paths[:half], analyzer, tmp / "half2", workers=2, progress=False, plots=plots)
+        t_half, cpu_half = time.perf_counter() - t, cpu_now() - c
         c = cpu_now()
         t_bare, plot_cpu = (None, None) if args.no_bare else bare(paths, analyzer, plots, tmp)
         cpu_bare = cpu_now() - c
@@ -181,6 +190,13 @@ def main() -> None:
           f"of {args.size}² incl. the start-up (goal <= 60 s)")
     print(f"from CPU time, on 2 otherwise idle cores: {1000 * cpus[2] / args.n / 2 + cpu_start / 2:.0f} s "
           f"for 1000 maps")
+    if args.n - half >= 2:
+        m_wall = (times[2] - t_half) / (args.n - half)
+        m_cpu = (cpus[2] - cpu_half) / (args.n - half)
+        fixed = times[2] - args.n * m_wall
+        print(f"marginal cost of a map (2 workers, runs of {half} and {args.n} maps): {m_wall:.3f} s wall, "
+              f"{m_cpu:.3f} s CPU; once-per-batch work (tables, summary, drift plots) {fixed:.1f} s wall "
+              f"-> {1000 * m_wall + fixed + t_start:.0f} s projected for 1000 maps incl. start-up")
 
 
 if __name__ == "__main__":

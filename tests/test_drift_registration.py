@@ -104,3 +104,23 @@ def test_tukey_window_matches_scipy():
 
     for n in (5, 64, 97):
         np.testing.assert_allclose(_tukey(n, 0.3), tukey(n, 0.3), atol=1e-12)
+
+
+def test_reused_transforms_give_the_same_registration_as_fresh_ones():
+    """The series keeps each sweep's windowed FFT: offsets, match and overlap are those of a fresh run,
+    also when the crop box changes between pairs (missing rows) and an image array is reused."""
+    from stabtool.batch.drift import _register_images
+
+    rng = np.random.default_rng(3)
+    base = rng.normal(size=(48, 56))
+    ref = base.copy()
+    mov = np.roll(base, (2, -3), axis=(0, 1)) + 0.1 * rng.normal(size=base.shape)
+    cut = mov.copy()
+    cut[40:] = np.nan  # an interrupted sweep: another crop box for the pairs with it
+    cache: dict = {}
+    for a, b in ((ref, mov), (ref, cut), (mov, cut), (ref, mov), (cut, mov)):
+        fresh = _register_images(a, b, upsample=20)
+        again = _register_images(a, b, upsample=20, cache=cache)
+        np.testing.assert_array_equal(np.array(again), np.array(fresh))
+    # np.roll by (2, −3) moves the pattern 2 rows up the array and 3 columns back: (dy, dx) = (2, −3)
+    assert _register_images(ref, mov, upsample=20)[:2] == pytest.approx((2.0, -3.0), abs=0.1)

@@ -118,3 +118,32 @@ def test_cli_names_the_faulty_input(tmp_path, capsys):
     assert code == 2
     err = capsys.readouterr().err
     assert "nothing_here" in err and "no such file" in err
+
+
+def test_the_batch_measures_drift_from_the_workers_feature_images_without_reloading(tmp_path, monkeypatch):
+    """The batch worker keeps each map's feature image: the drift of the batch is that of the files,
+    with no map loaded a second time, and no feature file left behind."""
+    import stabtool.batch.drift as drift_mod
+    from stabtool.analysis import Analyzer
+    from stabtool.batch import run_batch
+
+    maps, _, _ = night(n=4)
+    paths = []
+    for k, da in enumerate(maps):
+        p = tmp_path / "in" / f"sweep_{k:02d}.nc"
+        p.parent.mkdir(exist_ok=True)
+        save_map(da, p)
+        paths.append(p)
+    direct = measure_drift([str(p) for p in paths], order="given")
+    loads = []
+    real_load = drift_mod._load
+    monkeypatch.setattr(drift_mod, "_load", lambda item: loads.append(item) or real_load(item))
+    rep = run_batch([str(p) for p in paths], Analyzer(refine=False, tunnel_coupling=False), tmp_path / "out",
+                    workers=1, progress=False, plots=False, summary=False, netcdf=False)
+    assert rep.n_failed == 0 and len(rep.drift) == 1
+    assert loads == []
+    (res, _png), = rep.drift
+    for name in ("offset_x_V", "offset_y_V", "match", "overlap", "step_x_V", "step_y_V"):
+        np.testing.assert_array_equal(getattr(res, name), getattr(direct, name))
+    assert list(res.files) == list(direct.files)
+    assert not list((tmp_path / "out").rglob("*.npy"))

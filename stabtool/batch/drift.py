@@ -40,6 +40,9 @@ __all__ = [
     "order_sweeps",
     "measure_drift",
     "sweep_time_of",
+    "SweepFeature",
+    "PreparedSweep",
+    "feature_of",
 ]
 
 #: Map attributes that may hold the start time of a sweep, in order of preference.
@@ -343,6 +346,34 @@ class _Prepared:
 
 def _prepare(da: xr.DataArray, ref_x: np.ndarray | None, ref_y: np.ndarray | None, *,
              smooth_px: float, label: str) -> tuple[_Prepared, np.ndarray, np.ndarray]:
+    return _place(feature_of(da, smooth_px=smooth_px), ref_x, ref_y, label=label)
+
+
+#: Smoothing of the feature images of :func:`measure_drift` (pixels) unless told otherwise.
+DEFAULT_SMOOTH_PX = 1.0
+
+
+@dataclass(frozen=True)
+class SweepFeature:
+    """The feature image of one sweep on its own (ascending) voltage grid, as the drift uses it.
+
+    Computed where the map is already in memory (a batch worker, right after the analysis),
+    so the drift need not load the file again; :class:`PreparedSweep` points at it on disk.
+    """
+
+    img: np.ndarray  # (ny, nx)
+    x: np.ndarray  # (nx,) V, ascending
+    y: np.ndarray  # (ny,) V, ascending
+    time: str | None
+    x_gate: str
+    y_gate: str
+    smooth_px: float
+    dx: float  # steps of the grid (as stabtool.mapdata.map_axes states them), V
+    dy: float
+
+
+def feature_of(da: xr.DataArray, *, smooth_px: float = DEFAULT_SMOOTH_PX) -> SweepFeature:
+    """:class:`SweepFeature` of a map (validated, axes made ascending, :func:`_feature_image`)."""
     import warnings
 
     from ..errors import StabtoolWarning
@@ -353,13 +384,67 @@ def _prepare(da: xr.DataArray, ref_x: np.ndarray | None, ref_y: np.ndarray | Non
     da = _ascending(da)
     ax = map_axes(da)
     img = _feature_image(da, smooth_px=smooth_px)
+    return SweepFeature(img, ax.x, ax.y, sweep_time_of(da), ax.x_gate, ax.y_gate, float(smooth_px),
+                        float(ax.dx), float(ax.dy))
+
+
+def _place(feat: SweepFeature, ref_x: np.ndarray | None, ref_y: np.ndarray | None, *,
+           label: str) -> tuple[_Prepared, np.ndarray, np.ndarray]:
+    """The feature on the reference grid (its own grid when there is no reference yet)."""
+    img = feat.img
     if ref_x is None or ref_y is None:
-        ref_x, ref_y = ax.x, ax.y
-    elif not (ax.x.shape == ref_x.shape and ax.y.shape == ref_y.shape
-              and np.allclose(ax.x, ref_x, atol=1e-3 * abs(ax.dx))
-              and np.allclose(ax.y, ref_y, atol=1e-3 * abs(ax.dy))):
-        img = _resample(img, ax.x, ax.y, ref_x, ref_y)
-    return _Prepared(img, label, sweep_time_of(da), ax.x_gate, ax.y_gate), ref_x, ref_y
+        ref_x, ref_y = feat.x, feat.y
+    else:
+        if not (feat.x.shape == ref_x.shape and feat.y.shape == ref_y.shape
+                and np.allclose(feat.x, ref_x, atol=1e-3 * abs(feat.dx))
+                and np.allclose(feat.y, ref_y, atol=1e-3 * abs(feat.dy))):
+            img = _resample(img, feat.x, feat.y, ref_x, ref_y)
+    return _Prepared(img, label, feat.time, feat.x_gate, feat.y_gate), ref_x, ref_y
+
+
+@dataclass(frozen=True)
+class PreparedSweep:
+    """A sweep of a series whose feature image was saved by the batch (``numpy.save``).
+
+    ``source`` is the map file (the sweep's label, and what is loaded instead when the
+    feature file cannot be read or was made with another smoothing); the grid, time and
+    gates are those of its :class:`SweepFeature`.
+    """
+
+    source: str
+    feature_path: str
+    x: np.ndarray
+    y: np.ndarray
+    time: str | None
+    x_gate: str
+    y_gate: str
+    smooth_px: float
+    dx: float
+    dy: float
+
+    @classmethod
+    def of(cls, source: str, feature_path: str, feat: SweepFeature) -> PreparedSweep:
+        """The sweep ``source`` whose ``feat.img`` was saved to ``feature_path``."""
+        return cls(source, feature_path, feat.x, feat.y, feat.time, feat.x_gate, feat.y_gate, feat.smooth_px,
+                   feat.dx, feat.dy)
+
+
+def _sweep(item: Any, ref_x: np.ndarray | None, ref_y: np.ndarray | None, *,
+           smooth_px: float) -> tuple[_Prepared, np.ndarray, np.ndarray]:
+    """A series item (DataArray, path or :class:`PreparedSweep`) prepared on the reference grid."""
+    if isinstance(item, PreparedSweep):
+        if item.smooth_px == smooth_px:
+            try:
+                img = np.load(item.feature_path, allow_pickle=False)
+            except (OSError, ValueError):
+                img = None
+            if img is not None and img.shape == (item.y.size, item.x.size):
+                feat = SweepFeature(img, item.x, item.y, item.time, item.x_gate, item.y_gate, smooth_px,
+                                    item.dx, item.dy)
+                return _place(feat, ref_x, ref_y, label=item.source)
+        item = item.source
+    da, label = _load(item)
+    return _prepare(da, ref_x, ref_y, smooth_px=smooth_px, label=label)
 
 
 # --------------------------------------------------------------------------- registration
@@ -380,8 +465,34 @@ def _tukey2d(shape: tuple[int, int], alpha: float = 0.3) -> np.ndarray:
     return np.outer(_tukey(shape[0], alpha), _tukey(shape[1], alpha))
 
 
-def _register_images(ref: np.ndarray, mov: np.ndarray, *, upsample: int) -> tuple[float, float, float, float]:
-    """Pattern displacement of ``mov`` relative to ``ref`` in pixels (dy, dx), match, overlap."""
+def _windowed_fft(img: np.ndarray, valid: np.ndarray, box: tuple[slice, slice], win: np.ndarray,
+                  cache: dict | None) -> np.ndarray:
+    """FFT of the image cropped to ``box``, minus its mean over valid pixels, zero elsewhere, tapered.
+
+    ``cache`` (kept by the caller over one series): the transform of the same image array and box
+    is computed once (each sweep is registered to the first and to the one before it, and is the
+    one before the next): the same ``scipy.fft.fftn`` of the same array, so the same bits.
+    """
+    from scipy.fft import fftn
+
+    key = (id(img), box[0].start, box[0].stop, box[1].start, box[1].stop)
+    if cache is not None:
+        hit = cache.get(key)
+        if hit is not None and hit[0] is img:
+            return hit[1]
+    im, vm = img[box], valid[box]
+    out = fftn(np.where(vm, im - np.mean(im[vm]), 0.0) * win)
+    if cache is not None:
+        cache[key] = (img, out)
+    return out
+
+
+def _register_images(ref: np.ndarray, mov: np.ndarray, *, upsample: int,
+                     cache: dict | None = None) -> tuple[float, float, float, float]:
+    """Pattern displacement of ``mov`` relative to ``ref`` in pixels (dy, dx), match, overlap.
+
+    ``cache``: see :func:`_windowed_fft`.
+    """
     from scipy import ndimage as ndi
     from skimage.registration import phase_cross_correlation
 
@@ -397,12 +508,13 @@ def _register_images(ref: np.ndarray, mov: np.ndarray, *, upsample: int) -> tupl
     cols = np.flatnonzero(both.mean(axis=0) > 0.5)
     if rows.size < 8 or cols.size < 8:
         return math.nan, math.nan, math.nan, overlap
-    box = (slice(rows[0], rows[-1] + 1), slice(cols[0], cols[-1] + 1))
+    box = (slice(int(rows[0]), int(rows[-1]) + 1), slice(int(cols[0]), int(cols[-1]) + 1))
+    win = _tukey2d((box[0].stop - box[0].start, box[1].stop - box[1].start))
+    fa = _windowed_fft(ref, vr, box, win, cache)
+    fb = _windowed_fft(mov, vm, box, win, cache)
     ref, mov, vr, vm = ref[box], mov[box], vr[box], vm[box]
-    win = _tukey2d(ref.shape)
-    a = np.where(vr, ref - np.mean(ref[vr]), 0.0) * win
-    b = np.where(vm, mov - np.mean(mov[vm]), 0.0) * win
-    shift, _, _ = phase_cross_correlation(a, b, upsample_factor=upsample, normalization=None)
+    # (the transforms phase_cross_correlation would compute itself from the windowed images)
+    shift, _, _ = phase_cross_correlation(fa, fb, upsample_factor=upsample, normalization=None, space="fourier")
     # skimage returns the shift that moves ``mov`` onto ``ref``: the pattern moved by -shift
     back = ndi.shift(np.where(vm, mov, 0.0), shift, order=1, mode="constant", cval=0.0)
     valid = ndi.shift(vm.astype(float), shift, order=1, mode="constant", cval=0.0) > 0.99
@@ -637,16 +749,14 @@ def _register_range(first: Any, before: Any, chunk: Sequence[Any], start: int, *
     needed for the sweep-to-sweep registration of ``chunk[0]``. At most three
     feature images are held at once.
     """
-    ref_da, ref_label = _load(first)
-    ref, ref_x, ref_y = _prepare(ref_da, None, None, smooth_px=smooth_px, label=ref_label)
-    del ref_da
+    ref, ref_x, ref_y = _sweep(first, None, None, smooth_px=smooth_px)
+    ref_label = ref.label
     prev = ref
     if start >= 2:
-        da, label = _load(before)
-        prev, _, _ = _prepare(da, ref_x, ref_y, smooth_px=smooth_px, label=label)
-        del da
+        prev, _, _ = _sweep(before, ref_x, ref_y, smooth_px=smooth_px)
     out = _RangeRegistration([], [], [], [], ref_x, ref_y, ref.x_gate, ref.y_gate)
     nan2 = (math.nan, math.nan)
+    ffts: dict = {}  # windowed transforms by image and crop (see _windowed_fft)
     for k, item in enumerate(chunk, start):
         if k == 0:
             out.labels.append(ref_label)
@@ -654,16 +764,18 @@ def _register_range(first: Any, before: Any, chunk: Sequence[Any], start: int, *
             out.rows.append((0.0, 0.0, 1.0, 1.0))
             out.chain.append(nan2)
             continue
-        da, label = _load(item)
-        cur, _, _ = _prepare(da, ref_x, ref_y, smooth_px=smooth_px, label=label)
-        del da
+        cur, _, _ = _sweep(item, ref_x, ref_y, smooth_px=smooth_px)
+        label = cur.label
         out.labels.append(label)
         out.times.append(cur.time)
         _check_gates(ref, cur)
-        dy, dx, match, overlap = _register_images(ref.img, cur.img, upsample=upsample)
+        live = (id(ref.img), id(prev.img), id(cur.img))
+        for key in [key for key in ffts if key[0] not in live]:  # at most three images' transforms kept
+            del ffts[key]
+        dy, dx, match, overlap = _register_images(ref.img, cur.img, upsample=upsample, cache=ffts)
         out.rows.append((dx, dy, match, overlap))
         if k >= 2:
-            sy, sx, _, _ = _register_images(prev.img, cur.img, upsample=upsample)
+            sy, sx, _, _ = _register_images(prev.img, cur.img, upsample=upsample, cache=ffts)
             out.chain.append((sx, sy))
         else:
             out.chain.append(nan2)
@@ -676,7 +788,7 @@ def measure_drift(
     *,
     order: str = "auto",
     upsample: int = 20,
-    smooth_px: float = 1.0,
+    smooth_px: float = DEFAULT_SMOOTH_PX,
     jump_threshold: float = 6.0,
     min_match: float = 0.3,
     executor: Any = None,
@@ -685,9 +797,11 @@ def measure_drift(
 
     Parameters
     ----------
-    maps : sequence of DataArray or paths
+    maps : sequence of DataArray, paths or PreparedSweep
         Repeated sweeps of the same two gates. Paths are loaded one at a
-        time (at most three feature images are held at once).
+        time (at most three feature images are held at once); a
+        :class:`PreparedSweep` gives the feature image the batch saved
+        (the same numbers as loading its ``source``).
     order : {"auto", "given"}
         ``"auto"``: by the sweeps' time attribute when all have one, else by
         file name; ``"given"``: as passed.
@@ -734,6 +848,10 @@ def measure_drift(
     times: list[str | None] = []
     if order == "auto":
         for it in items:
+            if isinstance(it, PreparedSweep):
+                labels.append(it.source)
+                times.append(it.time)
+                continue
             da, label = _load(it)
             labels.append(label)
             times.append(sweep_time_of(da))

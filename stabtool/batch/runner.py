@@ -133,15 +133,15 @@ def _init_worker(analyzer: Any) -> None:
         pass
 
 
-def _pool_task(path: str, plot: bool) -> dict:
-    return analyze_one(_WORKER_ANALYZER, path, plot=plot)
+def _pool_task(path: str, plot: bool, drift_feature: bool = False) -> dict:
+    return analyze_one(_WORKER_ANALYZER, path, plot=plot, drift_feature=drift_feature)
 
 
 def _run_serial(
-    analyzer: Any, items: Sequence[BatchItem], plot: bool
+    analyzer: Any, items: Sequence[BatchItem], plot: bool, drift_feature: bool = False
 ) -> Iterator[tuple[BatchItem, dict]]:
     for item in items:
-        yield item, analyze_one(analyzer, item.path, plot=plot)
+        yield item, analyze_one(analyzer, item.path, plot=plot, drift_feature=drift_feature)
 
 
 def _crashed(reason: str) -> dict:
@@ -150,7 +150,8 @@ def _crashed(reason: str) -> dict:
 
 
 def _run_pool(
-    analyzer: Any, items: Sequence[BatchItem], plot: bool, workers: int, keep: dict | None = None
+    analyzer: Any, items: Sequence[BatchItem], plot: bool, workers: int, keep: dict | None = None,
+    drift_feature: bool = False,
 ) -> Iterator[tuple[BatchItem, dict]]:
     """Local process pool with a bounded queue; survives worker crashes.
 
@@ -165,7 +166,7 @@ def _run_pool(
     """
     with _single_threaded_children():
         ctx = _pool_context()
-        yield from _pool_loop(ctx, analyzer, items, plot, workers, keep)
+        yield from _pool_loop(ctx, analyzer, items, plot, workers, keep, drift_feature)
 
 
 _THREAD_VARS = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
@@ -221,7 +222,8 @@ def _single_threaded_children() -> Iterator[None]:
 
 
 def _pool_loop(
-    ctx: Any, analyzer: Any, items: Sequence[BatchItem], plot: bool, workers: int, keep: dict | None = None
+    ctx: Any, analyzer: Any, items: Sequence[BatchItem], plot: bool, workers: int, keep: dict | None = None,
+    drift_feature: bool = False,
 ) -> Iterator[tuple[BatchItem, dict]]:
     pending = list(reversed(items))  # pop() from the end keeps input order
     suspects: list[BatchItem] = []
@@ -241,7 +243,7 @@ def _pool_loop(
                 while queue and len(in_flight) < window and not broken:
                     item = queue.pop()
                     try:
-                        in_flight[pool.submit(_pool_task, item.path, plot)] = item
+                        in_flight[pool.submit(_pool_task, item.path, plot, drift_feature)] = item
                     except cf.process.BrokenProcessPool:
                         queue.append(item)
                         broken = True
@@ -411,9 +413,11 @@ def run_batch(
     else:
         n = default_workers() if workers is None else int(workers)
         n = min(n, max(1, len(todo)))
-        stream = _run_serial(analyzer, todo, plots) if n == 1 else _run_pool(analyzer, todo, plots, n, kept)
+        stream = (_run_serial(analyzer, todo, plots, drift) if n == 1
+                  else _run_pool(analyzer, todo, plots, n, kept, drift))
         workers_used = n
 
+    features: dict[str, Any] = {}  # path -> PreparedSweep (drift feature images saved by this run)
     bar = _progress_bar(len(todo), enabled=progress)
     counts = {"ok": 0, "doubtful": 0, "failed": 0}
     last_table = time.monotonic()
@@ -421,6 +425,12 @@ def run_batch(
     n_run = 0
     try:
         for item, res in stream:
+            feat = res.pop("drift_feature", None)
+            if feat is not None:  # kept on disk until the drift has run (the parent writes, as for plots)
+                try:
+                    features[item.path] = store.write_feature(item.hash, item.path, feat)
+                except OSError:
+                    pass
             plot_rel = None
             if res.get("png"):
                 try:
@@ -462,10 +472,11 @@ def run_batch(
         if drift:
             from .summary import drift_for_batch
 
-            drift_result = drift_for_batch(ordered, out, executor=pool)
+            drift_result = drift_for_batch(ordered, out, executor=pool, prepared=features)
     finally:
         if pool is not None:
             pool.shutdown(wait=True, cancel_futures=True)
+        store.clear_features()
     if summary:
         from .summary import write_summary
 

@@ -463,6 +463,7 @@ class ResultStore:
                     stray.unlink()
                 except OSError:
                     pass
+        self.clear_features()  # a killed run's feature images (its maps are loaded again when needed)
 
     def has_records(self) -> bool:
         """True when the folder holds records of an earlier batch."""
@@ -493,6 +494,30 @@ class ResultStore:
         ``plain_result``: see :meth:`BatchRecord.to_dict`.
         """
         atomic_write_text(self.record_path(record.hash), json.dumps(record.to_dict(plain_result=plain_result)))
+
+    FEATURES = ".drift-features"
+
+    def write_feature(self, key: str, source: str, feature: Any) -> Any:
+        """Save a map's drift feature image (``numpy.save``) until the drift has run.
+
+        Returns the :class:`~stabtool.batch.drift.PreparedSweep` that points at it. The
+        files live in ``.records/.drift-features`` and are removed by :meth:`clear_features`.
+        """
+        import numpy as np
+
+        from .drift import PreparedSweep
+
+        folder = self.records_dir / self.FEATURES
+        folder.mkdir(parents=True, exist_ok=True)
+        path = folder / f"{key}.npy"
+        np.save(path, np.ascontiguousarray(feature.img), allow_pickle=False)
+        return PreparedSweep.of(source, str(path), feature)
+
+    def clear_features(self) -> None:
+        """Remove the drift feature images of this run (and any left by a killed one)."""
+        import shutil
+
+        shutil.rmtree(self.records_dir / self.FEATURES, ignore_errors=True)
 
     def write_plot(self, name: str, data: bytes) -> str:
         """Store plot bytes atomically under ``plots/``; return the path relative to DIR."""

@@ -19,7 +19,7 @@ import re
 import warnings
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any, Iterable, Sequence
+from typing import Any, Iterable, Mapping, Sequence
 
 import numpy as np
 
@@ -228,7 +228,7 @@ PARALLEL_DRIFT_MIN = 16
 
 
 def drift_for_batch(records: Sequence[BatchRecord], out_dir: str | os.PathLike[str], *,
-                    executor: Any = None) -> list:
+                    executor: Any = None, prepared: Mapping[str, Any] | None = None) -> list:
     """Drift analysis of every series of repeated sweeps in a batch.
 
     Writes ``drift/<name>.csv|json|png`` per series into ``out_dir`` and
@@ -237,6 +237,9 @@ def drift_for_batch(records: Sequence[BatchRecord], out_dir: str | os.PathLike[s
     measured is skipped with a note in its place, never failing the batch.
     With ``executor`` (the batch's process pool) the registrations of long
     series run in parallel (:func:`~stabtool.batch.drift.measure_drift`).
+    ``prepared`` maps a file path to its saved feature image
+    (:class:`~stabtool.batch.drift.PreparedSweep`, made by the batch worker):
+    that sweep is not loaded again (same numbers).
     """
     from .drift import measure_drift
 
@@ -245,7 +248,8 @@ def drift_for_batch(records: Sequence[BatchRecord], out_dir: str | os.PathLike[s
     for paths in find_repeated_series(records):
         try:
             # already in time order; short series are not worth the pool's round trips
-            res = measure_drift(paths, order="given",
+            items = [prepared.get(p, p) for p in paths] if prepared else paths
+            res = measure_drift(items, order="given",
                                 executor=executor if len(paths) >= PARALLEL_DRIFT_MIN else None)
         except Exception as exc:  # noqa: BLE001 - drift is an extra; the batch stands
             from ..errors import StabtoolWarning

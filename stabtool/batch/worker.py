@@ -86,6 +86,19 @@ def _status(payload: Mapping[str, Any]) -> str:
     return "doubtful"
 
 
+def _drift_feature(result: Any) -> Any:
+    """The drift feature image of the analysed map, or None (no 2-D map, or it cannot be made)."""
+    da = _result_map(result)
+    if da is None or getattr(da, "ndim", 0) != 2:
+        return None
+    try:
+        from .drift import feature_of
+
+        return feature_of(da)
+    except Exception:  # noqa: BLE001 - the drift then loads the file itself
+        return None
+
+
 def _render_plot(result: Any) -> bytes:
     from ..analysis import AnalysisResult
 
@@ -107,7 +120,7 @@ def _render_plot(result: Any) -> bytes:
 
 
 def analyze_one(
-    analyzer: Callable[[str], Any] | Any, path: str, *, plot: bool = True
+    analyzer: Callable[[str], Any] | Any, path: str, *, plot: bool = True, drift_feature: bool = False
 ) -> dict[str, Any]:
     """Analyse one file; never raise for a bad map.
 
@@ -120,13 +133,18 @@ def analyze_one(
         Map file.
     plot : bool
         Render the annotated plot.
+    drift_feature : bool
+        Also compute the map's drift feature image
+        (:func:`stabtool.batch.drift.feature_of`) while the map is in memory,
+        so the drift analysis need not load the file again.
 
     Returns
     -------
     dict
         ``status`` ("ok", "doubtful", "failed"), ``reason`` (one line or
         None), ``result`` (plain-JSON dict or None), ``time`` (str or None),
-        ``elapsed_s`` (float) and ``png`` (bytes or None).
+        ``elapsed_s`` (float), ``png`` (bytes or None), ``info`` and, with
+        ``drift_feature``, ``drift_feature`` (SweepFeature or None).
     """
     t0 = time.perf_counter()
     out: dict[str, Any] = {
@@ -154,6 +172,8 @@ def analyze_one(
             out["reason"] = "the analysis gave no quality verdict"
         out["time"] = sweep_time(result, payload)
         out["info"] = map_info(result)
+        if drift_feature:
+            out["drift_feature"] = _drift_feature(result)
         if plot:
             try:
                 out["png"] = _render_plot(result)
