@@ -295,25 +295,38 @@ def test_profile_cut_at_other_lines_equals_a_direct_loop():
     py = np.array([segs[k].cy + t * segs[k].uy for k, t in zip(seg_id, tt)])
     rows = np.round(np.where(alx, py, px)).astype(int)
     centre = np.round(np.where(alx, px, py)).astype(int) + rng.integers(-1, 2, 300)
+
+    def loop(seg_id, rows, centre, alx):
+        out = []
+        for i in range(rows.size):
+            right, left = np.inf, -np.inf
+            for j, sg in enumerate(segs):
+                if j == seg_id[i]:
+                    continue
+                u_par, c_par = (sg.uy, sg.cy) if alx[i] else (sg.ux, sg.cx)
+                u_pos, c_pos = (sg.ux, sg.cx) if alx[i] else (sg.uy, sg.cy)
+                if u_par == 0:
+                    continue
+                t = (rows[i] - c_par) / u_par
+                d = c_pos + t * u_pos - centre[i]
+                if sg.t0 - CUT_EXTEND_PX <= t <= sg.t1 + CUT_EXTEND_PX and abs(d) <= offs[-1] + CUT_MARGIN_PX:
+                    if d > 0:
+                        right = min(right, d)
+                    else:
+                        left = max(left, d)
+            out.append((offs < right - CUT_MARGIN_PX) & (offs > left + CUT_MARGIN_PX))
+        return np.array(out)
+
     got = _clear_of_other_lines(segs, seg_id, rows, centre, alx, offs)
-    for i in range(300):
-        right, left = np.inf, -np.inf
-        for j, sg in enumerate(segs):
-            if j == seg_id[i]:
-                continue
-            u_par, c_par = (sg.uy, sg.cy) if alx[i] else (sg.ux, sg.cx)
-            u_pos, c_pos = (sg.ux, sg.cx) if alx[i] else (sg.uy, sg.cy)
-            if u_par == 0:
-                continue
-            t = (rows[i] - c_par) / u_par
-            d = c_pos + t * u_pos - centre[i]
-            if sg.t0 - CUT_EXTEND_PX <= t <= sg.t1 + CUT_EXTEND_PX and abs(d) <= offs[-1] + CUT_MARGIN_PX:
-                if d > 0:
-                    right = min(right, d)
-                else:
-                    left = max(left, d)
-        want = (offs < right - CUT_MARGIN_PX) & (offs > left + CUT_MARGIN_PX)
-        np.testing.assert_array_equal(got[i], want)
+    np.testing.assert_array_equal(got, loop(seg_id, rows, centre, alx))
+    # profiles in blocks per segment with rising rows (as the pipeline makes them) take the
+    # pairs within each other segment's row span only: the same masks
+    order = np.lexsort((rows, seg_id))
+    first = np.r_[True, (np.diff(seg_id[order]) != 0) | (np.diff(rows[order]) != 0)]
+    o = order[first]
+    got = _clear_of_other_lines(segs, seg_id[o], rows[o], centre[o], alx[o], offs)
+    np.testing.assert_array_equal(got, loop(seg_id[o], rows[o], centre[o], alx[o]))
+    assert (~got).any(1).sum() > 20  # many profiles are cut
 
 
 def _reference_hough_peaks(h, angles, dists, min_votes, max_peaks):
@@ -490,3 +503,91 @@ def test_nms_direction_by_comparisons_equals_the_quantised_angle():
     bx, by = np.abs(ax), np.abs(ay)
     got = np.where(by <= _TAN_22 * bx, 1, np.where(by >= _TAN_67 * bx, nx, np.where((ax > 0) == (ay > 0), nx + 1, nx - 1)))
     np.testing.assert_array_equal(got, want)
+
+
+def test_sobel_by_array_slices_equals_scipy_sobel():
+    # the same operations as scipy's 3-tap correlations, hence bit for bit
+    from stabtool.lines.edges import _sobel
+
+    rng = np.random.default_rng(21)
+    for shape in [(64, 80), (3, 7), (9, 3)]:
+        img = ndi.gaussian_filter(rng.normal(size=shape), 1.0)
+        for axis in (0, 1):
+            np.testing.assert_array_equal(_sobel(img, axis), ndi.sobel(img, axis=axis))
+
+
+def test_in_place_block_median_subtraction_equals_the_interpolated_median():
+    from stabtool.lines.edges import _subtract_block_median
+
+    rng = np.random.default_rng(22)
+    for shape, block in [((128, 96), 32), ((100, 130), 48)]:
+        a = rng.normal(size=shape) + np.linspace(0.0, 3.0, shape[1])
+        got = a.copy()
+        _subtract_block_median(got, block)
+        np.testing.assert_array_equal(got, a - _block_median(a, block))
+
+
+def test_dilation_by_shifted_ors_equals_two_scipy_moving_maxima():
+    from stabtool.lines.detector import _within
+
+    rng = np.random.default_rng(23)
+    for shape, r in [((60, 70), 3), ((20, 9), 6), ((4, 5), 4)]:
+        e = rng.random(shape) < 0.03
+        want = ndi.maximum_filter1d(ndi.maximum_filter1d(e.astype(np.uint8), 2 * r + 1, axis=0), 2 * r + 1,
+                                    axis=1).astype(bool)
+        np.testing.assert_array_equal(_within(_within(e, r, axis=0), r, axis=1), want)
+
+
+def test_band_members_equal_the_thresholded_distance_matrix():
+    # pixels within reach of each Hough line, as the full (lines × pixels) distance matrix gives them
+    from stabtool.lines import hough
+
+    rng = np.random.default_rng(24)
+    edges = rng.random((90, 110)) < 0.08
+    rows, cols = np.nonzero(edges)
+    px, py = cols.astype(float), rows.astype(float)
+    key = rows.astype(np.int64) * edges.shape[1] + cols
+    ang = np.deg2rad(rng.choice(np.arange(-90.0, 90.0, 0.5), 40))
+    ang[:3] = np.deg2rad([-90.0, 0.0, 45.0])  # axis-parallel and diagonal lines
+    ca, sa = np.cos(ang), np.sin(ang)
+    dist = rng.uniform(-60, 130, ang.size)
+    dd = np.abs(np.multiply.outer(ca, px) + np.multiply.outer(sa, py) - dist[:, None])
+    want_line, want_pix = np.nonzero(dd <= 6.5)
+    saved = hough.DENSE_MAX_PAIRS
+    try:
+        hough.DENSE_MAX_PAIRS = 0  # the row-interval search, not the dense fallback
+        line, pix, d = hough._band_members(px, py, key, edges.shape[1], ca, sa, dist, 6.5)
+    finally:
+        hough.DENSE_MAX_PAIRS = saved
+    np.testing.assert_array_equal(line, want_line)
+    np.testing.assert_array_equal(pix, want_pix)
+    np.testing.assert_array_equal(d, dd[want_line, want_pix])
+    assert line.size > 500
+
+
+def test_tls_of_stacked_points_equals_tls():
+    from stabtool.lines.hough import _tls_xy
+
+    rng = np.random.default_rng(25)
+    for n in (5, 40, 333):
+        xy = np.ascontiguousarray(np.stack([rng.uniform(0, 50, n), rng.uniform(0, 50, n)]))
+        cx, cy, u, rms = _tls(xy[0], xy[1])
+        cen, ux, uy, rms2, d = _tls_xy(xy)
+        assert (cen[0], cen[1], ux, uy, rms2) == (cx, cy, u[0], u[1], rms)
+        np.testing.assert_array_equal(d, xy - cen[:, None])
+
+
+def test_one_right_hand_side_and_the_inverse_diagonal_equal_the_general_elimination():
+    from stabtool.lines._batchfit import _inverse_diagonal, _solve_vector
+
+    rng = np.random.default_rng(26)
+    for n in (10, 600):  # LAPACK path and written-out elimination
+        M = rng.normal(size=(5, 9, n))
+        A = np.einsum("ikn,jkn->ijn", M, M) + 0.1 * np.eye(5)[:, :, None]
+        b = rng.normal(size=(5, n))
+        want = _gauss_solve(A, b[:, None])[:, 0]
+        np.testing.assert_array_equal(_solve_vector(A.copy(), b.copy()), want)
+        eye = np.broadcast_to(np.eye(5)[:, :, None], A.shape)
+        np.testing.assert_array_equal(_inverse_diagonal(A), np.einsum("iin->in", _gauss_solve(A, eye)))
+        np.testing.assert_allclose(_inverse_diagonal(A), np.einsum("nii->in", np.linalg.inv(A.transpose(2, 0, 1))),
+                                   rtol=1e-9)

@@ -55,6 +55,8 @@ CONV_REL_SSR = 1e-6
 CONV_U0_PX = 1e-3
 #: fitted widths below this (px) leave the crossing unresolved within its sample interval
 SHARP_W = 0.5
+#: active profiles above which converged ones are dropped from the working arrays as they go
+COMPACT_MIN_PROFILES = 256
 
 
 def _basis(u, u0, w, kind):
@@ -145,8 +147,17 @@ def _grid_start(uT, yT, mT, c0, kind):
         t = len(grid)
         sums = np.einsum("tk,kn->tn", np.concatenate([phis, phis * u1, phis * phis]), mT)
         spy = np.einsum("tk,kn->tn", phis, yT)
-        for i, (c, w0) in enumerate(grid):
-            _keep_better(best, _project(sums[i], sums[t + i], sums[2 * t + i], spy[i], base, yy), c, w0)
+        # all trials at once (t, n); the first of the lowest finite residual sums wins
+        a, b, h, ssr = _project(sums[:t], sums[t : 2 * t], sums[2 * t :], spy, base, yy)
+        ssr = np.where(np.isfinite(ssr), ssr, np.inf)
+        k = np.argmin(ssr, axis=0)
+        cols = np.arange(n)
+        won = np.isfinite(ssr[k, cols])
+        gc = np.array([c for c, _ in grid])
+        gw = np.array([np.log(w0) for _, w0 in grid])
+        best[:] = np.nan
+        best[5] = np.inf
+        np.copyto(best, np.stack([a[k, cols], b[k, cols], h[k, cols], gc[k], gw[k], ssr[k, cols]]), where=won)
     else:
         for c, w0 in grid:
             _grid_trial(best, _grid_shape(uT, c, w0, kind), c, w0, uT, yT, mT, base, yy)
@@ -211,26 +222,88 @@ def fit_profiles(u: np.ndarray, y: np.ndarray, mask: np.ndarray, *, kind: str = 
 class _Active:
     """The samples, parameters and line shapes of the profiles still iterating, (·, n_act) arrays.
 
-    ``mu`` is ``m u``; ``u`` stays one column (k, 1) when every profile has
-    the same sample offsets (it then broadcasts, and compactions skip it).
+    ``data`` stacks the samples ``y``, the mask ``m`` and ``m u`` (3, k, n);
+    ``cur`` the line shape, its derivative factor and the residual at the
+    current parameters (3, k, n), ``trial`` the same at the trial step (a
+    buffer); ``c`` the parameter-free sums (5, n). ``u`` stays one column
+    (k, 1) when every profile has the same sample offsets (it then
+    broadcasts, and compactions skip it). Stacking keeps the number of
+    array operations per iteration (and per compaction) small: the late
+    iterations run on a few dozen profiles, where each call's overhead, not
+    its arithmetic, is the cost.
     """
 
     def __init__(self, uT, yT, mT, c0, p, ssr, kind):
         self.shared_u = bool((uT == uT[:, :1]).all())
         self.u = uT[:, :1] if self.shared_u else uT
-        self.y, self.m, self.mu, self.c = yT, mT, mT * uT, c0
+        self.data = np.stack([yT, mT, mT * uT])
+        self.c = np.stack([c0[key] for key in _C_KEYS])
         self.p, self.ssr = p.copy(), ssr.copy()
         self.lam = np.full(p.shape[1], 1e-2)
-        self.phi, self.dphi = _basis(self.u, self.p[3], np.exp(self.p[4]), kind)
-        self.r = _residual(self.p, self.u, yT, mT, self.phi)
+        self.cur = np.empty_like(self.data)
+        self.trial = np.empty_like(self.data)
+        self.tmp = np.empty_like(yT)
+        self.jtj0 = _constant_block(self.c)
+        _shape_and_residual(self.cur, self.p, self.u, yT, mT, kind, self.tmp)
 
     def keep(self, sel):
         """Keep the profiles ``sel`` (boolean, n_act) only."""
-        names = ("y", "m", "mu", "phi", "dphi", "r") + (() if self.shared_u else ("u",))
-        for name in names:
-            setattr(self, name, getattr(self, name)[:, sel])
-        self.p, self.ssr, self.lam = self.p[:, sel], self.ssr[sel], self.lam[sel]
-        self.c = {key: val[sel] for key, val in self.c.items()}
+        # (np.compress keeps the arrays C-contiguous: the reductions over the samples then
+        # run in the same order as before the compaction)
+        self.data, self.cur = np.compress(sel, self.data, axis=2), np.compress(sel, self.cur, axis=2)
+        self.trial = np.empty(self.cur.shape)
+        self.tmp = np.empty(self.cur.shape[1:])
+        if not self.shared_u:
+            self.u = np.compress(sel, self.u, axis=1)
+        self.p, self.ssr, self.lam, self.c = self.p[:, sel], self.ssr[sel], self.lam[sel], self.c[:, sel]
+        self.jtj0 = _constant_block(self.c)
+
+
+def _constant_block(c: np.ndarray) -> np.ndarray:
+    """``JᵀJ`` (5, 5, n) with its parameter-free entries (baseline a, b) set from the sums ``c``; the rest 0."""
+    out = np.zeros((5, 5, c.shape[1]))
+    out[0, 0], out[0, 1], out[1, 1] = c[0], c[1], c[2]
+    out[1, 0] = out[0, 1]
+    return out
+
+
+#: order of the parameter-free sums in ``_Active.c``
+_C_KEYS = ("m", "mu", "muu", "my", "muy")
+
+
+def _shape_and_residual(out, pp, u, y, m, kind, tmp):
+    """Line shape φ, ``dphi`` and the masked residual at ``pp`` (5, n) into ``out`` (3, k, n).
+
+    The same arithmetic as :func:`_basis` and :func:`_residual`, written
+    into preallocated buffers (``tmp``, (k, n), is scratch).
+    """
+    phi, dphi, r = out[0], out[1], out[2]
+    w = np.exp(pp[4])
+    if kind == "step":
+        t = np.subtract(u, pp[3], out=phi)
+        t *= 0.5 / w
+        np.tanh(t, out=t)
+        q = np.multiply(t, t, out=dphi)
+        q *= -0.25
+        q += 0.25  # F (1 − F)
+        t *= 0.5
+        t += 0.5  # F
+    else:
+        t = np.subtract(u, pp[3], out=tmp)
+        t *= 0.5 / w
+        np.tanh(t, out=t)
+        q = np.multiply(t, t, out=phi)
+        q *= -0.25
+        q += 0.25  # F (1 − F)
+        np.multiply(q, -4.0, out=dphi)
+        dphi *= t  # 4F(1−F)(1−2F) (times −4 and 4 are exact)
+        phi *= 4.0  # 4F(1−F)
+    np.multiply(pp[1], u, out=r)
+    r += pp[0]
+    np.multiply(pp[2], phi, out=tmp)
+    r += tmp
+    np.subtract(y, r, out=r)
+    r *= m
 
 
 def _fit_batch(u, y, mask, kind, halfwidth, n_iter) -> BatchFit:
@@ -253,20 +326,21 @@ def _fit_batch(u, y, mask, kind, halfwidth, n_iter) -> BatchFit:
     for _ in range(n_iter):
         if act.size == 0:
             break
-        A, g = _normal_equations(a.p, a.u, a.y, a.m, kind, a.c, a.phi, a.dphi, mu=a.mu, r=a.r)
+        A, g = _normal_equations_active(a)
         la = a.lam
-        D = A[_DIAG, _DIAG] + 1e-12  # (5, n_act)
-        A[_DIAG, _DIAG] += la * D
-        step = _gauss_solve(A, g[:, None])[:, 0]
+        diag = A.reshape(25, -1)[::6]  # the diagonal of each system, a (5, n_act) view
+        D = diag + 1e-12
+        diag += la * D
+        step = _solve_vector(A, g)
         trial = a.p + step
-        trial[4] = np.clip(trial[4], lo_w, hi_w)
-        st, tphi, tdphi, tr = _ssr(trial, a.u, a.y, a.m, kind)
+        np.minimum(np.maximum(trial[4], lo_w, out=trial[4]), hi_w, out=trial[4])  # (np.clip, cheaper to call)
+        _shape_and_residual(a.trial, trial, a.u, a.data[0], a.data[1], kind, a.tmp)
+        tr = a.trial[2]
+        st = np.einsum("kn,kn->n", tr, tr)
         old = a.ssr
-        good = np.isfinite(st) & (st < old) & ~frz
+        good = (st < old) & ~frz  # (false for a NaN or infinite trial)
         np.copyto(a.p, trial, where=good)
-        np.copyto(a.phi, tphi, where=good)
-        np.copyto(a.r, tr, where=good)
-        np.copyto(a.dphi, tdphi, where=good)
+        _accept(a, good)
         a.ssr = np.where(good, st, old)
         a.lam = np.where(frz, la, np.where(good, la * 0.3, la * 10))
         # converged: a step that moved the crossing by < CONV_U0_PX and changed
@@ -284,8 +358,10 @@ def _fit_batch(u, y, mask, kind, halfwidth, n_iter) -> BatchFit:
         frz |= done
         nf = int(np.count_nonzero(frz))
         # drop the converged profiles from the working arrays once they are an
-        # eighth of them (each compaction copies all the arrays)
-        if nf and (8 * nf >= act.size or nf == act.size):
+        # eighth of them (each compaction copies all the arrays); a few hundred
+        # profiles cost about the same per iteration as fewer (the calls' overhead),
+        # so small batches are compacted only when every profile has converged
+        if nf and (nf == act.size or (act.size > COMPACT_MIN_PROFILES and 8 * nf >= act.size)):
             p[:, act] = a.p
             ssr[act] = a.ssr
             keep = ~frz
@@ -298,16 +374,94 @@ def _fit_batch(u, y, mask, kind, halfwidth, n_iter) -> BatchFit:
     return _finish(p, ssr, uT, yT, mT, c0, kind, halfwidth)
 
 
+def _accept(a: _Active, good: np.ndarray) -> None:
+    """Make the trial line shapes and residuals current where ``good`` (boolean, n_act).
+
+    Mostly accepted: the buffers swap and the few rejected columns are
+    copied back; otherwise a masked copy.
+    """
+    bad = np.flatnonzero(~good)
+    if 4 * bad.size <= good.size:
+        a.cur, a.trial = a.trial, a.cur
+        if bad.size:
+            a.cur[:, :, bad] = a.trial[:, :, bad]
+    else:
+        np.copyto(a.cur, a.trial, where=good)
+
+
+def _normal_equations_active(a: _Active):
+    """:func:`_normal_equations` of the active profiles at their current line shape and residual.
+
+    For up to ``FUSED_MAX_PROFILES`` profiles the same sums with fewer calls
+    (the late iterations run on a few dozen profiles, where each call's
+    overhead is the cost): the three parameter-dependent Jacobian columns
+    ``J`` are summed against ``m``, ``m u`` and the residual in three
+    contractions and against themselves in one (all nine products); every
+    entry is the same sequential sum over the samples. More profiles take
+    :func:`_normal_equations` itself (fewer products).
+    """
+    y, m, mu = a.data
+    phi, dphi, r = a.cur
+    pp = a.p
+    w = np.exp(pp[4])
+    J = np.empty((3,) + y.shape)
+    np.multiply(m, phi, out=J[0])
+    np.multiply(m, dphi, out=J[1])
+    J[1] *= -(pp[2] / w)  # ∂/∂u0 = −(h/w) m ∂φ
+    np.subtract(a.u, pp[3], out=J[2])
+    J[2] *= J[1]  # ∂/∂log w = (u − u0) ∂/∂u0
+    if y.shape[1] > FUSED_MAX_PROFILES:
+        # many profiles: the separate sums (fewer products; the calls' overhead is small here)
+        return _normal_equations(pp, a.u, y, m, "", {"m": a.c[0], "mu": a.c[1], "muu": a.c[2]}, phi, dphi,
+                                 mu=mu, r=r, jacobian=J)
+    JTJ = a.jtj0.copy()
+    side = np.einsum("ikn,jkn->ijn", J, a.data[1:])  # Σ J_i m, Σ J_i m u
+    JTJ[2:, :2] = side
+    JTJ[:2, 2:] = side.transpose(1, 0, 2)
+    JTJ[2:, 2:] = np.einsum("ikn,jkn->ijn", J, J)
+    g = np.empty((5, y.shape[1]))
+    np.einsum("jkn,kn->jn", a.data[1:], r, out=g[:2])
+    np.einsum("ikn,kn->in", J, r, out=g[2:])
+    return JTJ, g
+
+
+#: Active profiles up to which the normal equations are built in a few fused contractions.
+FUSED_MAX_PROFILES = 512
+
+
+def _solve_vector(A: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Solve ``A x = b`` for a batch: A (5, 5, n), b (5, n) → x (5, n); A and b are overwritten.
+
+    :func:`_gauss_solve` with one right-hand side (the same arithmetic for
+    every entry it uses): the elimination leaves out the column it zeroes,
+    which is never read again, and works in place.
+    """
+    n = A.shape[2]
+    if n <= 256:
+        try:
+            return np.linalg.solve(A.transpose(2, 0, 1), b.T[:, :, None])[:, :, 0].T
+        except np.linalg.LinAlgError:
+            pass
+    p = A.shape[0]
+    with np.errstate(all="ignore"):
+        for i in range(p - 1):
+            f = A[i + 1 :, i] / A[i, i]  # (p−i−1, n)
+            A[i + 1 :, i + 1 :] -= f[:, None] * A[i, i + 1 :][None]
+            b[i + 1 :] -= f * b[i]
+        x = np.empty_like(b)
+        x[p - 1] = b[p - 1] / A[p - 1, p - 1]
+        for i in range(p - 2, -1, -1):
+            x[i] = (b[i] - (A[i, i + 1 :] * x[i + 1 :]).sum(0)) / A[i, i]
+    return x
+
+
 def _finish(p, ssr, uT, yT, mT, c0, kind, halfwidth) -> BatchFit:
     """Standard errors from ``(JᵀJ)⁻¹ s²`` at the fitted parameters ``p`` (5, n), and the usability test."""
-    n = p.shape[1]
-    JTJ, _ = _normal_equations(p, uT, yT, mT, kind, c0)
+    JTJ, _ = _normal_equations(p, uT, yT, mT, kind, c0, gradient=False)
     dof = np.maximum(mT.sum(0) - 5, 1)
     s2 = ssr / dof
     JTJ[_DIAG, _DIAG] += 1e-15
-    eye = np.broadcast_to(np.eye(5)[:, :, None], (5, 5, n))
-    cinv = _gauss_solve(JTJ, eye)
-    var = np.einsum("iin->in", cinv) * s2  # (5, n)
+    var = _inverse_diagonal(JTJ) * s2  # (5, n)
     err = np.sqrt(np.abs(var)).T  # (n, 5)
     p = p.T
     w = np.exp(p[:, 4])
@@ -326,7 +480,36 @@ def _finish(p, ssr, uT, yT, mT, c0, kind, halfwidth) -> BatchFit:
                     a=p[:, 0].copy(), b=p[:, 1].copy())
 
 
-def _normal_equations(pp, u, y, m, kind, c, phi=None, dphi=None, *, mu=None, r=None):
+def _inverse_diagonal(A: np.ndarray) -> np.ndarray:
+    """Diagonal (p, n) of the inverses of a batch of matrices A (p, p, n), symmetric positive definite.
+
+    ``_gauss_solve(A, I)`` restricted to what its diagonal needs (the same
+    arithmetic for those entries): after the forward elimination, column q
+    of the right-hand side is zero above row q, and the back substitution
+    for entry (q, q) needs rows q … p−1 of column q only.
+    """
+    p, _, n = A.shape
+    if n <= 256:
+        eye = np.broadcast_to(np.eye(p)[:, :, None], A.shape)
+        return np.einsum("iin->in", _gauss_solve(A, eye))
+    A = A.copy()
+    B = np.zeros(A.shape)
+    B[_DIAG[:p], _DIAG[:p]] = 1.0
+    with np.errstate(all="ignore"):
+        for i in range(p - 1):
+            f = A[i + 1 :, i] / A[i, i]  # (p−i−1, n)
+            A[i + 1 :, i + 1 :] -= f[:, None] * A[i, i + 1 :][None]
+            B[i + 1 :, : i + 1] -= f[:, None] * B[i, : i + 1][None]
+        X = np.empty_like(B)
+        X[p - 1] = B[p - 1] / A[p - 1, p - 1]
+        for i in range(p - 2, -1, -1):
+            s = B[i, : i + 1] - (A[i, i + 1 :, None] * X[i + 1 :, : i + 1]).sum(0)
+            X[i, : i + 1] = s / A[i, i]
+    return X[_DIAG[:p], _DIAG[:p]]
+
+
+def _normal_equations(pp, u, y, m, kind, c, phi=None, dphi=None, *, mu=None, r=None, gradient=True,
+                      jacobian=None):
     """``JᵀJ`` (5, 5, n) and ``Jᵀr`` (5, n) of the model at parameters ``pp`` (5, n); samples (k, n).
 
     ``c`` holds the parameter-free sums ``Σm``, ``Σmu``, ``Σmu²`` per profile
@@ -334,28 +517,35 @@ def _normal_equations(pp, u, y, m, kind, c, phi=None, dphi=None, *, mu=None, r=N
     residual there (:func:`_residual`). The Jacobian's columns are ``m``,
     ``m u`` (constant) and ``m φ``, ``−m h/w ∂φ``, ``(u − u0)`` times the
     latter (height, crossing and log width); as the last three are masked,
-    their sums with ``m`` need no product.
+    their sums with ``m`` need no product. With ``gradient=False`` only
+    ``JᵀJ`` is computed (``Jᵀr`` is None); ``jacobian`` (3, k, n), optional,
+    holds those three columns already.
     """
-    w = np.exp(pp[4])
-    if phi is None:
-        phi, dphi = _basis(u, pp[3], w, kind)
     if mu is None:
         mu = m * u
-    J = np.empty((3,) + y.shape)
-    np.multiply(m, phi, out=J[0])
-    np.multiply(m, dphi, out=J[1])
-    J[1] *= -(pp[2] / w)  # ∂/∂u0 = −(h/w) m ∂φ
-    np.subtract(u, pp[3], out=J[2])
-    J[2] *= J[1]  # ∂/∂log w = (u − u0) ∂/∂u0
-    if r is None:
-        r = _residual(pp, u, y, m, phi)
+    if jacobian is not None:
+        J = jacobian
+    else:
+        w = np.exp(pp[4])
+        if phi is None:
+            phi, dphi = _basis(u, pp[3], w, kind)
+        J = np.empty((3,) + y.shape)
+        np.multiply(m, phi, out=J[0])
+        np.multiply(m, dphi, out=J[1])
+        J[1] *= -(pp[2] / w)  # ∂/∂u0 = −(h/w) m ∂φ
+        np.subtract(u, pp[3], out=J[2])
+        J[2] *= J[1]  # ∂/∂log w = (u − u0) ∂/∂u0
     JTJ = np.empty((5, 5, y.shape[1]))
     JTJ[0, 0], JTJ[0, 1], JTJ[1, 1] = c["m"], c["mu"], c["muu"]
     JTJ[1, 0] = JTJ[0, 1]
-    g = np.empty((5, y.shape[1]))
-    r.sum(0, out=g[0])
-    np.einsum("kn,kn->n", mu, r, out=g[1])
-    np.einsum("ikn,kn->in", J, r, out=g[2:])
+    g = None
+    if gradient:
+        if r is None:
+            r = _residual(pp, u, y, m, phi if phi is not None else J[0])
+        g = np.empty((5, y.shape[1]))
+        r.sum(0, out=g[0])
+        np.einsum("kn,kn->n", mu, r, out=g[1])
+        np.einsum("ikn,kn->in", J, r, out=g[2:])
     J.sum(1, out=JTJ[2:, 0])
     np.einsum("ikn,kn->in", J, mu, out=JTJ[2:, 1])
     for i in range(3):  # the six distinct products of the parameter-dependent columns

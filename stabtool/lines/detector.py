@@ -177,23 +177,37 @@ def _offsets_clear_of_lines(values: np.ndarray, work: np.ndarray, edges: np.ndar
     whose row differences carry a line's own slope, and the offsets are
     measured again without them. Returns ``work`` itself when no edge was found.
     """
-    from scipy import ndimage as ndi
-
     from ..preprocess.background import _row_offsets_core as offsets
 
     if not edges.any():
         return work
     w = scale.width_px if scale is not None and np.isfinite(scale.width_px) else 0.0
     r = max(ROW_CLEAR_MIN_PX, int(np.ceil(ROW_CLEAR_WIDTHS * w)))
-    # dilation by a (2r + 1)² square, as two moving maxima
-    near = ndi.maximum_filter1d(ndi.maximum_filter1d(edges.astype(np.uint8), 2 * r + 1, axis=0), 2 * r + 1,
-                                axis=1).astype(bool)
+    # dilation by a (2r + 1)² square, as two moving windows
+    near = _within(_within(edges, r, axis=0), r, axis=1)
     off = offsets(values, near, noise, plain)
     if off is plain:
         return work
     out = values - off[:, None]
     if excluded_rows.size:
         out[excluded_rows] = np.nan
+    return out
+
+
+def _within(mask: np.ndarray, r: int, *, axis: int) -> np.ndarray:
+    """Pixels within ``r`` of a marked pixel along ``axis`` (a moving maximum of width 2r + 1).
+
+    The same as :func:`scipy.ndimage.maximum_filter1d` of the 0/1 mask
+    (its reflecting border adds nothing to a maximum), as shifted ORs.
+    """
+    out = mask.copy()
+    for k in range(1, min(r, mask.shape[axis] - 1) + 1):
+        if axis == 0:
+            out[k:] |= mask[:-k]
+            out[:-k] |= mask[k:]
+        else:
+            out[:, k:] |= mask[:, :-k]
+            out[:, :-k] |= mask[:, k:]
     return out
 
 
@@ -282,7 +296,7 @@ def _detect_core(values: np.ndarray, axes, cfg: LineDetector) -> LineDetection:
                    if not (r.line.slope < 0 and (not r.refined or r.step_height < 0.25 * ref_h))]
     lines = [r.line for r in refined]
     names2 = classify_lines(lines, axes)
-    lines = [replace(l, family=n) for l, n in zip(lines, names2)]  # type: ignore[arg-type]
+    lines = [l if l.family == n else replace(l, family=n) for l, n in zip(lines, names2)]  # type: ignore[arg-type]
     keep_lines = drop_duplicates(lines, steps(axes))
     keep_ids = {id(l) for l in keep_lines}
     mask_keep = [id(l) in keep_ids for l in lines]

@@ -129,6 +129,178 @@ def _hough_peaks(h: np.ndarray, angles: np.ndarray, dists: np.ndarray, min_votes
     return angles[cand[1][order]], dists[cand[0][order]]
 
 
+#: Hough peaks examined in the first chunk (they claim most edge pixels); the rest form one more
+FIRST_CHUNK = 64
+#: (line, pixel) pairs up to which :func:`_band_members` computes the full distance matrix
+DENSE_MAX_PAIRS = 2**16
+
+
+def _band_members(px: np.ndarray, py: np.ndarray, key: np.ndarray, width: int, ca: np.ndarray, sa: np.ndarray,
+                  dist: np.ndarray, reach: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Pixels within ``reach`` of each line ``x cos θ + y sin θ = ρ``, grouped by line.
+
+    ``px, py`` (m,) are pixel columns and rows in row-major order, ``key``
+    their ``row·width + column`` (ascending); ``ca, sa, dist`` (L,) the
+    lines' ``cos θ``, ``sin θ`` and ρ. Returns ``(line, pixel, distance)``:
+    line index (ascending), pixel index into ``px`` (ascending within a
+    line) and ``|x cos θ + y sin θ − ρ|``, for every pair within ``reach``.
+
+    The same pairs, in the same order and with the same distances, as
+    thresholding the full (L, m) distance matrix, but only the pixels of
+    each line's band are looked at: per line, the rows the band crosses
+    (those holding pixels), and in each row the column interval of the band
+    (1 px of slack on every side), whose pixels are found from a table of
+    the number of pixels below every key; the distance is then computed
+    exactly for these candidates. With few pixels (at most
+    ``DENSE_MAX_PAIRS`` line–pixel pairs) the full matrix is cheaper.
+    """
+    n_lines = ca.size
+    empty = np.zeros(0, np.int64)
+    if px.size == 0 or n_lines == 0:
+        return empty, empty, np.zeros(0)
+    if n_lines * px.size <= DENSE_MAX_PAIRS:
+        # few pixels left: the full distance matrix costs less than the search
+        dd = np.multiply.outer(ca, px)
+        dd += np.multiply.outer(sa, py)
+        dd -= dist[:, None]
+        np.abs(dd, out=dd)
+        line, pix = np.nonzero(dd <= reach)
+        return line, pix, dd[line, pix]
+    rows_u = py[np.r_[True, py[1:] != py[:-1]]]  # rows holding pixels (ascending; py is)
+    x_lo, x_hi = px.min(), px.max()
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        # rows of each band inside the pixels' column range (the band is a strip of half-width reach)
+        ss = np.where(sa == 0, 1e-300, sa)
+        ya = (dist - ca * x_lo) / ss
+        yb = (dist - ca * x_hi) / ss
+        slack = reach / np.abs(ss)
+        y0 = np.minimum(ya, yb) - slack - 1.0
+        y1 = np.maximum(ya, yb) + slack + 1.0
+    y0 = np.where(np.isfinite(y0), y0, -np.inf)
+    y1 = np.where(np.isfinite(y1), y1, np.inf)
+    i0 = np.searchsorted(rows_u, y0, side="left")
+    i1 = np.searchsorted(rows_u, y1, side="right")
+    cnt = np.maximum(i1 - i0, 0)
+    line = np.repeat(np.arange(n_lines), cnt)
+    row = rows_u[np.repeat(i0, cnt) + (np.arange(line.size) - np.repeat(np.cumsum(cnt) - cnt, cnt))]
+    c, s_, d = ca[line], sa[line], dist[line]
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        cc = np.where(c == 0, 1e-300, c)
+        xa = (d - s_ * row - reach) / cc
+        xb = (d - s_ * row + reach) / cc
+        # (kept inside the row, so that a range never reaches into the next or previous row)
+        xl = np.maximum(np.floor(np.clip(np.minimum(xa, xb), x_lo - 1.0, x_hi + 1.0)) - 1.0, 0.0)
+        xh = np.minimum(np.ceil(np.clip(np.maximum(xa, xb), x_lo - 1.0, x_hi + 1.0)) + 1.0, width - 1.0)
+    base = row.astype(np.int64) * width
+    # the pixels of each interval from a table of pixel counts below every key (two
+    # look-ups instead of two binary searches)
+    below = np.zeros(int(key[-1]) + 2 if key.size else 1, np.int64)
+    below[key + 1] = 1
+    np.cumsum(below, out=below)
+    lo_key = np.minimum(base + xl.astype(np.int64), below.size - 1)
+    hi_key = np.minimum(base + xh.astype(np.int64) + 1, below.size - 1)
+    a, b = below[lo_key], below[hi_key]
+    n = np.maximum(b - a, 0)
+    cand_line = np.repeat(line, n)
+    cand = np.repeat(a, n) + (np.arange(cand_line.size) - np.repeat(np.cumsum(n) - n, n))
+    dd = ca[cand_line] * px[cand] + sa[cand_line] * py[cand]
+    dd -= dist[cand_line]
+    np.abs(dd, out=dd)
+    inside = dd <= reach
+    return cand_line[inside], cand[inside], dd[inside]
+
+
+def _viable_peaks(xy, jj, ff, ca, sa, *, min_votes, max_gap_px, min_length_px) -> np.ndarray:
+    """Peaks (boolean, per line) with a long enough run among their pixels ``ff`` (grouped by ``jj``).
+
+    Peaks without such a run among the pixels free now never get one (claims
+    only split and shorten runs); a hair of slack makes sure that rounding
+    never drops a peak.
+    """
+    viable = np.bincount(jj, minlength=ca.size) >= min_votes
+    if jj.size:
+        tq = -xy[0][ff] * sa[jj] + xy[1][ff] * ca[jj]
+        o = np.lexsort((tq, jj))
+        jj, tq = jj[o], tq[o]
+        cut = np.nonzero((np.diff(jj) != 0) | (np.diff(tq) > max_gap_px + 1e-9))[0] + 1
+        rs, re = np.r_[0, cut], np.r_[cut, jj.size]
+        long_run = (re - rs >= min_votes) & (tq[re - 1] - tq[rs] >= min_length_px - 2 - 1e-9)
+        has_run = np.zeros(ca.size, dtype=bool)
+        has_run[jj[rs[long_run]]] = True
+        viable &= has_run
+    return viable
+
+
+def _peak_runs(xy, lfree, nloc, rloc, c, s, *, min_votes, max_gap_px, min_length_px, tolerance_px):
+    """The straight runs of one Hough peak, as they are claimed (a generator).
+
+    ``xy`` (2, m) free pixels, ``lfree`` (m,) those still free (updated by
+    the caller between runs), ``nloc`` the peak's pixels within the
+    tolerance and ``rloc`` those within reach (positions into ``xy``).
+    Yields ``(pixels, cx, cy, ux, uy, t_lo, t_hi, rms)`` per run: its
+    pixel positions, TLS centre and direction, extent and scatter.
+    """
+    # free pixels within reach of this peak's runs once refitted: the
+    # refitted line stays within the tolerance band of the Hough line
+    # along the run, so 3 tolerances + 2 px hold every pixel it can
+    # collect (the re-collection below scans these, not all pixels)
+    rxy = np.take(xy, rloc, axis=1)
+    t = xy[1][nloc] * c - xy[0][nloc] * s
+    order = np.argsort(t)
+    ts = t[order]
+    br = np.nonzero(np.diff(ts) > max_gap_px)[0] + 1
+    starts = np.concatenate([[0], br])
+    ends = np.concatenate([br, [ts.size]])
+    # only runs long enough in pixels and in extent are examined
+    good = (ends - starts >= min_votes) & (ts[ends - 1] - ts[starts] >= min_length_px - 2)
+    for st, en in zip(starts[good].tolist(), ends[good].tolist()):
+        sel = nloc[order[st:en]]
+        cen, ux, uy, rms, d = _tls_xy(np.take(xy, sel, axis=1))
+        # one re-collection around the refined line, inside the run's span
+        ts_ = d[0] * ux + d[1] * uy
+        e = rxy - cen[:, None]
+        tt = e[0] * ux + e[1] * uy
+        dd = e[1] * ux - e[0] * uy
+        m2 = lfree[rloc] & (tt >= ts_.min() - 1) & (tt <= ts_.max() + 1) & (np.abs(dd) <= tolerance_px)
+        sel2 = rloc[m2]
+        if sel2.size >= sel.size:
+            sel = sel2
+            cen, ux, uy, rms, d = _tls_xy(np.take(xy, sel, axis=1))
+        tt = d[0] * ux + d[1] * uy
+        t_lo, t_hi = tt.min(), tt.max()
+        if t_hi - t_lo < min_length_px - 1:
+            continue
+        yield sel, cen[0], cen[1], ux, uy, t_lo, t_hi, rms
+
+
+def _tls_xy(xy: np.ndarray):
+    """:func:`_tls` of the points ``xy`` (2, n), C-contiguous: ``(centre (2,), ux, uy, rms, xy − centre)``.
+
+    The same sums (row by row, pairwise) and closed form as :func:`_tls`,
+    with fewer array operations; the centred points are returned for the
+    projections that follow.
+    """
+    n = xy.shape[1]
+    cen = xy.sum(axis=1) / n
+    d = xy - cen[:, None]
+    q = (d[:, None] * d[None]).reshape(4, n).sum(axis=1)  # Σ dx², Σ dx dy, Σ dy dx, Σ dy²
+    a, b, c = float(q[0]) / n, float(q[1]) / n, float(q[3]) / n
+    half = 0.5 * (a - c)
+    root = math.hypot(half, b)
+    lam_max = 0.5 * (a + c) + root
+    lam_min = 0.5 * (a + c) - root
+    ux, uy = (lam_max - c, b) if a >= c else (b, lam_max - a)
+    norm = math.hypot(ux, uy)
+    if not norm > 0:
+        cx, cy, u, rms = tls_fit(xy[0], xy[1])
+        cen = np.array([cx, cy])
+        return cen, float(u[0]), float(u[1]), rms, xy - cen[:, None]
+    ux, uy = ux / norm, uy / norm
+    if ux < 0 or (ux == 0 and uy < 0):
+        ux, uy = -ux, -uy
+    return cen, ux, uy, math.sqrt(max(lam_min, 0.0)), d
+
+
 def _segments_core(
     edges: np.ndarray,
     *,
@@ -146,48 +318,38 @@ def _segments_core(
     min_votes = max(3, int(0.6 * min_length_px))
     pk_ang, pk_dist = _hough_peaks(h, angles, dists, min_votes, max_lines)
     px, py = cols.astype(float), rows.astype(float)
+    width = int(edges.shape[1])
+    key = rows.astype(np.int64) * width + cols  # row-major order: ascending
     free = np.ones(px.size, dtype=bool)
     n_free = px.size
     segs: list[PixelSegment] = []
-    chunk = 64
     reach_px = 3 * tolerance_px + 2
-    for k0 in range(0, pk_ang.size, chunk):
+    k0 = 0
+    while k0 < pk_ang.size:
         if len(segs) >= max_lines or n_free == 0:
             break
-        # signed distances of the free pixels from the next peaks' lines, all at
-        # once (hough_line: dist = col*cos(angle) + row*sin(angle)); claimed
-        # pixels never come back
-        fidx = np.nonzero(free)[0]
-        ca, sa = np.cos(pk_ang[k0 : k0 + chunk]), np.sin(pk_ang[k0 : k0 + chunk])
-        # (in place: these (chunk, n_free) arrays are the largest of the search)
-        dist_all = np.multiply.outer(ca, px[fidx])
-        dist_all += np.multiply.outer(sa, py[fidx])
-        dist_all -= pk_dist[k0 : k0 + chunk, None]
-        np.abs(dist_all, out=dist_all)
+        # the first 64 peaks claim most pixels; the rest are examined together
+        # (the result does not depend on the chunks: claimed pixels never come back)
+        chunk = FIRST_CHUNK if k0 == 0 else pk_ang.size - k0
         # per peak, the free pixels within reach of its line (see below), as
-        # index lists into fidx (row-major, so grouped by peak): peaks' loops
+        # index lists into fidx (ascending, grouped by peak): peaks' loops
         # then touch only their own band (a few hundred pixels), not every
         # free pixel; those within the tolerance are the peak's own
-        rj, rf = np.nonzero(dist_all <= reach_px)
-        rnear = dist_all[rj, rf] <= tolerance_px
+        fidx = np.nonzero(free)[0]
+        ca, sa = np.cos(pk_ang[k0 : k0 + chunk]), np.sin(pk_ang[k0 : k0 + chunk])
+        xy = np.stack([px[fidx], py[fidx]])  # the free pixels, indexed by position in fidx below
+        rj, rf, rdist = _band_members(xy[0], xy[1], key[fidx], width, ca, sa, pk_dist[k0 : k0 + chunk], reach_px)
+        first = k0 == 0
+        k0 += chunk
+        rnear = rdist <= tolerance_px
         bounds = np.searchsorted(rj, np.arange(ca.size + 1))
-        jj, ff = rj[rnear], rf[rnear]
         lfree = np.ones(fidx.size, dtype=bool)  # free[fidx], kept up to date
-        # peaks without a long enough run among the pixels free now never get
-        # one (claims only split and shorten runs): found for the whole chunk
-        # at once, with a hair of slack so that rounding never drops a peak
-        viable = np.bincount(jj, minlength=ca.size) >= min_votes
-        if jj.size:
-            tq = -px[fidx[ff]] * sa[jj] + py[fidx[ff]] * ca[jj]
-            o = np.lexsort((tq, jj))
-            jj, tq = jj[o], tq[o]
-            cut = np.nonzero((np.diff(jj) != 0) | (np.diff(tq) > max_gap_px + 1e-9))[0] + 1
-            rs, re = np.r_[0, cut], np.r_[cut, jj.size]
-            long_run = (re - rs >= min_votes) & (tq[re - 1] - tq[rs] >= min_length_px - 2 - 1e-9)
-            has_run = np.zeros(ca.size, dtype=bool)
-            has_run[jj[rs[long_run]]] = True
-            viable &= has_run
-        cand_j = np.nonzero(viable)[0]
+        if first:
+            # the strongest peaks nearly all have a run: no pre-selection
+            cand_j = np.arange(ca.size)
+        else:
+            cand_j = np.nonzero(_viable_peaks(xy, rj[rnear], rf[rnear], ca, sa, min_votes=min_votes,
+                                              max_gap_px=max_gap_px, min_length_px=min_length_px))[0]
         for j in cand_j:
             if len(segs) >= max_lines or n_free == 0:
                 break
@@ -198,46 +360,15 @@ def _segments_core(
             nloc = rloc[rnear[b0:b1][keep]]
             if nloc.size < min_votes:
                 continue
-            c, s = ca[j], sa[j]
-            idx = fidx[nloc]
-            # free pixels within reach of this peak's runs once refitted: the
-            # refitted line stays within the tolerance band of the Hough line
-            # along the run, so 3 tolerances + 2 px hold every pixel it can
-            # collect (the re-collection below scans these, not all pixels)
-            reach = fidx[rloc]
-            rx, ry = px[reach], py[reach]
-            ix, iy = px[idx], py[idx]
-            t = iy * c - ix * s
-            order = np.argsort(t)
-            ts = t[order]
-            br = np.nonzero(np.diff(ts) > max_gap_px)[0] + 1
-            starts = np.concatenate([[0], br])
-            ends = np.concatenate([br, [ts.size]])
-            # only runs long enough in pixels and in extent are examined
-            good = (ends - starts >= min_votes) & (ts[ends - 1] - ts[starts] >= min_length_px - 2)
-            for st, en in zip(starts[good].tolist(), ends[good].tolist()):
-                sel = idx[order[st:en]]
-                sx, sy = px[sel], py[sel]
-                cx, cy, u, rms = _tls(sx, sy)
-                # one re-collection around the refined line, inside the run's span
-                ts_ = (sx - cx) * u[0] + (sy - cy) * u[1]
-                tt = (rx - cx) * u[0] + (ry - cy) * u[1]
-                dd = (ry - cy) * u[0] - (rx - cx) * u[1]
-                m2 = free[reach] & (tt >= ts_.min() - 1) & (tt <= ts_.max() + 1) & (np.abs(dd) <= tolerance_px)
-                sel2 = reach[m2]
-                if sel2.size >= sel.size:
-                    sel = sel2
-                    sx, sy = px[sel], py[sel]
-                    cx, cy, u, rms = _tls(sx, sy)
-                tt = (sx - cx) * u[0] + (sy - cy) * u[1]
-                t_lo, t_hi = tt.min(), tt.max()
-                if t_hi - t_lo < min_length_px - 1:
-                    continue
-                free[sel] = False
+            for sel, cx, cy, ux, uy, t_lo, t_hi, rms in _peak_runs(xy, lfree, nloc, rloc, ca[j], sa[j],
+                                                                    min_votes=min_votes, max_gap_px=max_gap_px,
+                                                                    min_length_px=min_length_px,
+                                                                    tolerance_px=tolerance_px):
+                lfree[sel] = False
                 n_free -= sel.size
-                lfree[np.searchsorted(fidx, sel)] = False
-                segs.append(PixelSegment(float(cx), float(cy), float(u[0]), float(u[1]),
-                                         float(t_lo), float(t_hi), int(sel.size), rms))
+                segs.append(PixelSegment(float(cx), float(cy), float(ux), float(uy), float(t_lo), float(t_hi),
+                                         int(sel.size), rms))
+        free[fidx[~lfree]] = False
     return segs
 
 

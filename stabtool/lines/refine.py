@@ -146,15 +146,8 @@ def _clear_of_other_lines(segs, seg_id, rows, centre, alx, offs) -> np.ndarray:
     close = ((x_lo[:, None] <= x_hi[None, :]) & (x_lo[None, :] <= x_hi[:, None])
              & (y_lo[:, None] <= y_hi[None, :]) & (y_lo[None, :] <= y_hi[:, None]))
     np.fill_diagonal(close, False)
-    ncand = close.sum(1)
-    if ncand.any():
-        # (profile, other segment) pairs: each profile against its own segment's candidates
-        cand = np.nonzero(close)[1]  # candidates of segment 0, then 1, ... (row-major)
-        start = np.concatenate([[0], np.cumsum(ncand)[:-1]])
-        cnt = ncand[seg_id]
-        pi = np.repeat(np.arange(n_prof), cnt)
-        k = np.arange(pi.size) - np.repeat(np.cumsum(cnt) - cnt, cnt)
-        j = cand[start[seg_id[pi]] + k]
+    pi, j = _profile_segment_pairs(close, seg_id, rows, alx, cx, cy, ux, uy, t0, t1)
+    if pi.size:
         a = alx[pi]
         r = rows[pi].astype(float)
         # along x: the other line at y = row gives x; along y: at x = column gives y
@@ -167,6 +160,58 @@ def _clear_of_other_lines(segs, seg_id, rows, centre, alx, offs) -> np.ndarray:
         np.maximum.at(left, pi[neg], d[neg])
     o = offs[None, :]
     return (o < right[:, None] - CUT_MARGIN_PX) & (o > left[:, None] + CUT_MARGIN_PX)
+
+
+def _profile_segment_pairs(close, seg_id, rows, alx, cx, cy, ux, uy, t0, t1):
+    """(profile, other segment) pairs to test in :func:`_clear_of_other_lines`: ``(pi, j)``.
+
+    Every pair of a profile with the segments ``close`` to its own. When the
+    profiles come in blocks per segment with rising rows (as
+    :func:`_all_profiles` makes them), only the rows where the other
+    segment's (extended) line can cross the profile's row are taken: its
+    parameter range ``[t0, t1]`` maps to a row interval, widened by 1 row
+    (the exact test follows); the pairs left out could never hit.
+    """
+    n_prof = rows.size
+    ncand = close.sum(1)
+    cand = np.nonzero(close)  # (segment, other) pairs, row-major
+    new_blk = np.diff(seg_id) > 0
+    ordered = (n_prof > 0 and bool(np.all(np.diff(seg_id) >= 0)) and bool(np.all((np.diff(rows) > 0) | new_blk))
+               and bool(np.all((alx[1:] == alx[:-1]) | new_blk)))
+    if not ordered or not ncand.any():
+        start = np.concatenate([[0], np.cumsum(ncand)[:-1]])
+        cnt = ncand[seg_id]
+        pi = np.repeat(np.arange(n_prof), cnt)
+        k = np.arange(pi.size) - np.repeat(np.cumsum(cnt) - cnt, cnt)
+        return pi, cand[1][start[seg_id[pi]] + k]
+    si, sj = cand
+    # the profiles of segment si: a contiguous block; its along-x flag from the block's first profile
+    first = np.searchsorted(seg_id, si, side="left")
+    last = np.searchsorted(seg_id, si, side="right")
+    has = first < last
+    a = alx[np.minimum(first, n_prof - 1)]
+    q = np.where(a, uy[sj], ux[sj])
+    p0 = np.where(a, cy[sj], cx[sj])
+    with np.errstate(invalid="ignore"):
+        ra, rb = p0 + q * t0[sj], p0 + q * t1[sj]
+        r_lo = np.floor(np.minimum(ra, rb)) - 1.0
+        r_hi = np.ceil(np.maximum(ra, rb)) + 1.0
+    ok = has & (q != 0) & np.isfinite(r_lo) & np.isfinite(r_hi)
+    # (segment, row) as one ascending integer key; the interval's ends clipped to the rows' span
+    rmin, rmax = int(rows.min()), int(rows.max())
+    span = rmax - rmin + 4
+    key = seg_id.astype(np.int64) * span + (rows - rmin + 1)
+    base = si.astype(np.int64) * span - rmin + 1
+    r_lo = np.where(ok, np.clip(r_lo, rmin - 1, rmax + 1), 0).astype(np.int64)
+    r_hi = np.where(ok, np.clip(r_hi, rmin - 1, rmax + 1), 0).astype(np.int64)
+    lo = np.searchsorted(key, base + r_lo, side="left")
+    hi = np.searchsorted(key, base + r_hi, side="right")
+    lo = np.maximum(lo, first)
+    hi = np.minimum(hi, last)
+    n = np.where(ok, np.maximum(hi - lo, 0), 0)
+    pj = np.repeat(sj, n)
+    pi = np.repeat(lo, n) + (np.arange(pj.size) - np.repeat(np.cumsum(n) - n, n))
+    return pi, pj
 
 
 #: profile rows of a dot line end this far (px) from its vertices with the other dot family
@@ -455,19 +500,19 @@ def refine_segments(
 def _refine_once(segs, values, axes, *, families, along_x, halfwidth_px, max_points, shapes, edges, end_trim,
                  bounds=None):
     hw = int(halfwidth_px)
-    out = [RefinedLine(line=ln, step_height=float("nan"), refined=False, shape="none", along_x=bool(a))
-           for ln, a in zip(_segments_to_lines(segs, axes, families), along_x)]
+    # the segments that give no line keep their Hough/TLS line (made at the end, for those only)
+    out: list[RefinedLine | None] = [None] * len(segs)
     extra: list[RefinedLine] = []
     trims = [max(2.0, end_trim * s.length_px) for s in segs]
     ext = _all_profiles(values, segs, along_x, hw, max_points, trims, edges, bounds)
     if ext is None:
-        return out
+        return _with_unrefined(out, segs, axes, families, along_x)
     seg_id, rows, centre, U, Y, M = ext
     okrows = (M.sum(1) >= hw + 2) & M[:, hw - 1 : hw + 2].all(1)
     enough = np.bincount(seg_id[okrows], minlength=len(segs)) >= 4
     sel = okrows & enough[seg_id]
     if not sel.any():
-        return out
+        return _with_unrefined(out, segs, axes, families, along_x)
     seg_id, rows, centre, U, Y, M = seg_id[sel], rows[sel], centre[sel], U[sel], Y[sel], M[sel]
     # one block of consecutive profiles per segment
     blk_seg, starts = np.unique(seg_id, return_index=True)
@@ -588,7 +633,7 @@ def _refine_once(segs, values, axes, *, families, along_x, halfwidth_px, max_poi
         else:
             wv, wv_err = float("nan"), float("nan")
         sign = int(np.sign(h_med[j]) * np.sign(step_p)) if kind == "step" else 0
-        line = TransitionLine(family=out[k].line.family, x0=float(x0), y0=float(y0), slope=float(slope),
+        line = TransitionLine(family=families[k], x0=float(x0), y0=float(y0), slope=float(slope),
                               slope_stderr=float(slope_err), position_stderr=float(pos_err),
                               start=(float(start[0]), float(start[1])), end=(float(end[0]), float(end[1])),
                               width_V=float(wv), width_stderr_V=float(wv_err), n_points=int(n_keep[j]),
@@ -596,7 +641,18 @@ def _refine_once(segs, values, axes, *, families, along_x, halfwidth_px, max_poi
         kj = keep[j]
         out[k] = RefinedLine(line=line, step_height=float(h_abs[j]), refined=True, shape=kind,
                              points=(T[j][kj], P[j][kj], S[j][kj]), along_x=along)
-    return out + extra
+    return _with_unrefined(out, segs, axes, families, along_x) + extra
+
+
+def _with_unrefined(out, segs, axes, families, along_x) -> list[RefinedLine]:
+    """``out`` with every missing entry (None) set to its segment's Hough/TLS line, not refined."""
+    miss = [k for k, r in enumerate(out) if r is None]
+    if miss:
+        lines = _segments_to_lines([segs[k] for k in miss], axes, [families[k] for k in miss])
+        for k, ln in zip(miss, lines):
+            out[k] = RefinedLine(line=ln, step_height=float("nan"), refined=False, shape="none",
+                                 along_x=bool(along_x[k]))
+    return out
 
 
 #: a profile must have samples on the map (not cut off by its border or by missing data) up to
