@@ -695,9 +695,12 @@ def coupling_to_mutual_ratio(da: xr.DataArray, fit: DiagramFit, *, thermal_width
         if not resolved(tc.value_ueV):
             return CouplingRatio(upper_limit=(tc.value_ueV + 2 * tc.error_ueV) / ecm_ueV)
         return CouplingRatio(tc.value_ueV / ecm_ueV, tc.error_ueV / ecm_ueV, _NAN)
-    # segments fitted but flagged (e.g. resolution-limited): keep a clearly resolved value as an estimate
+    # segments fitted but flagged as resolution-limited or uncertain: keep a clearly resolved value as an
+    # estimate. Any other flag means the fit did not measure t (a line wider than half the cut leaves
+    # t unconstrained: seen at t/E_Cm ≈ 100 with a zero error on a sample map)
     vals = [(r["t_ueV"], r["fit_error_ueV"]) for r in tc.per_segment
-            if np.isfinite(r["t_ueV"]) and r["t_ueV"] > 3 * r["fit_error_ueV"]]
+            if np.isfinite(r["t_ueV"]) and r["t_ueV"] > 3 * r["fit_error_ueV"] > 0
+            and all(("resolution-limited" in m) or ("uncertainty" in m) for m in r["warnings"])]
     if vals:
         v = float(np.median([a for a, _ in vals]))
         if not resolved(v):
