@@ -683,7 +683,9 @@ def _row_corrected_map(da: xr.DataArray, detection: LineDetection | None) -> xr.
     """
     from .preprocess.background import row_offset_test
 
-    proc = None if detection is None else detection.processed
+    if detection is None:
+        return da
+    proc = detection.processed
     if proc is None or np.shape(proc) != da.shape or not np.isfinite(detection.noise_level):
         return da
     if not row_offset_test(np.asarray(da.values, float), detection.noise_level).significant:

@@ -104,7 +104,7 @@ def _row_offsets_core(values: np.ndarray, exclude: np.ndarray | None = None, noi
             if d.shape[1] % 2 == 0:
                 rowmed = (d[:, :h].max(axis=1) + rowmed) / 2
         else:
-            rowmed = np.nanmedian(np.where(fin, d, np.nan), axis=1) if d.size else 0.0
+            rowmed = np.nanmedian(np.where(fin, d, np.nan), axis=1) if d.size else np.zeros(d.shape[0])
         med = np.where(cnt >= 3, rowmed, 0.0)
     med = np.nan_to_num(med)
     steps[1:] = med
