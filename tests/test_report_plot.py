@@ -224,3 +224,20 @@ def test_cached_text_lands_where_matplotlib_draws_it():
     for axis in (0, 1):
         r, g = np.flatnonzero((ref > 64).any(axis=axis)), np.flatnonzero((got > 64).any(axis=axis))
         assert abs(int(r[0]) - int(g[0])) <= 1 and abs(int(r[-1]) - int(g[-1])) <= 1
+
+
+def test_doubts_box_wraps_warnings_at_words_and_marks_cuts():
+    from stabtool.report.plot import _doubt_lines
+
+    long = "virtual-gate matrix error 0.0055 with the possible tunnel-coupling bias 0.0104 is 0.0117, " \
+           "more than the 0.0067 an ok map allows"
+    text = _doubt_lines([long, "second doubt"], width=60)
+    lines = text.split("\n")
+    assert all(len(line) <= 60 for line in lines)
+    # every word of the first warning is shown whole, in order, before the second warning
+    first = " ".join(line[2:] for line in lines[:2]).removesuffix(" …")
+    assert first.split() == long.split()[: len(first.split())]
+    assert lines[0].startswith("! ") and lines[1].startswith("  ") and lines[-1] == "! second doubt"
+    cut = _doubt_lines(["word " * 100], width=60, per_warning=2)
+    assert cut.count("\n") == 1 and cut.endswith("…")
+    assert _doubt_lines([f"doubt {i}" for i in range(10)], max_lines=6).count("\n") == 5

@@ -257,7 +257,7 @@ def _overlays(res: Any, ax: Any, *, n_pixels: int, max_labels: int, texts: _Text
                    bbox={"boxstyle": "round", "fc": "white", "ec": "0.5", "alpha": 0.85})]
     if not res.quality.ok and res.quality.warnings:
         boxes.append(_text(ax, texts, "doubts", 0.01, 0.01,
-                           "\n".join("! " + w[:110] for w in res.quality.doubts_first()[:4]),
+                           _doubt_lines(res.quality.doubts_first()),
                            transform=ax.transAxes, va="bottom", ha="left", zorder=4, fontsize=6.5, color="#b00000",
                            bbox={"boxstyle": "round", "fc": "white", "ec": "#b00000", "alpha": 0.85}))
     if cs is not None:
@@ -274,6 +274,27 @@ def _overlays(res: Any, ax: Any, *, n_pixels: int, max_labels: int, texts: _Text
                   bbox={"boxstyle": "round,pad=0.15", "fc": "white", "ec": "none", "alpha": 0.65})
     if texts is not None:
         texts.hide_unused()
+
+
+def _doubt_lines(warnings: Any, *, width: int = 110, per_warning: int = 2, max_lines: int = 6) -> str:
+    """The doubts box text: each warning wrapped at word boundaries, at most ``per_warning`` lines.
+
+    A warning cut short ends in "…"; at most ``max_lines`` lines in all (the first warnings,
+    doubts first as given).
+    """
+    import textwrap
+
+    lines: list[str] = []
+    for w in warnings:
+        wrapped = textwrap.wrap(str(w), width - 2, break_on_hyphens=False) or [""]
+        if len(wrapped) > per_warning:
+            wrapped = wrapped[:per_warning]
+            wrapped[-1] = wrapped[-1][: width - 4] + " …"
+        room = max_lines - len(lines)
+        if room <= 0:
+            break
+        lines.extend((("! " if i == 0 else "  ") + t) for i, t in enumerate(wrapped[:room]))
+    return "\n".join(lines)
 
 
 def _label_anchors(ax: Any, shown: list[dict], cs: Any, da: Any, *, boxes: list[Any], legend: Any,
