@@ -36,7 +36,7 @@ from itertools import pairwise
 import numpy as np
 from scipy.special import fdtrc  # F survival function, = scipy.stats.f.sf(x, dfn, dfd)
 
-from ..lines.joint import clustered_slope_variance
+from ..lines.joint import _median, clustered_slope_variance
 from ..lines.result import TransitionLine
 
 __all__ = ["RelocatedFamily", "SplitFamily", "clustered_slope_error", "relocate_family", "split_at_crossings"]
@@ -231,22 +231,11 @@ def split_at_crossings(
 def median(a: np.ndarray) -> float:
     """Median of a 1-D array, the same number as :func:`numpy.median` at a fraction of its overhead.
 
-    One :func:`numpy.partition` at the middle order statistic(s) and the last
-    element (NaN sorts last: any NaN gives NaN, as in :func:`numpy.median`);
-    the mean of the two middle values for an even size. NaN for an empty array.
+    :func:`stabtool.lines.joint._median` (one :func:`numpy.partition`) as a
+    Python float; any NaN gives NaN, and so does an empty array.
     """
     a = np.asarray(a, float).ravel()
-    n = a.size
-    if n == 0:
-        return float("nan")
-    h = n // 2
-    kth = [h, n - 1] if n % 2 else [h - 1, h, n - 1]
-    part = np.partition(a, kth)
-    if np.isnan(part[-1]):
-        return float("nan")
-    if n % 2:
-        return float(part[h])
-    return float((part[h - 1] + part[h]) / 2.0)
+    return float("nan") if a.size == 0 else float(_median(a))
 
 
 def _to_v(idx: np.ndarray | float, axis: np.ndarray) -> np.ndarray:

@@ -9,7 +9,7 @@ import numpy as np
 
 from ..mapdata import MapAxes
 from ._geometry import steps
-from .joint import JointFit, LinePoints, bending_significance, fit_family
+from .joint import JointFit, LinePoints, _fit_family, _median, _stack, bending_significance
 from .refine import RefinedLine
 from .result import TransitionLine
 
@@ -100,8 +100,12 @@ def _vertex_positions(r: RefinedLine, tab: dict) -> tuple[float, float]:
     return va, vb
 
 
-def _vertex_positions_all(rs: Sequence[RefinedLine], tab: dict) -> np.ndarray:
-    """:func:`_vertex_positions` of many refined lines (all with points) at once: (m, 2) array."""
+def _vertex_positions_all(rs: Sequence[RefinedLine], tab: dict, lo: np.ndarray | None = None,
+                          hi: np.ndarray | None = None) -> np.ndarray:
+    """:func:`_vertex_positions` of many refined lines (all with points) at once: (m, 2) array.
+
+    ``lo``, ``hi`` (m,): the smallest and largest ``t`` of each line, when already known.
+    """
     m = len(rs)
     out = np.full((m, 2), np.nan)
     if m == 0:
@@ -109,8 +113,9 @@ def _vertex_positions_all(rs: Sequence[RefinedLine], tab: dict) -> np.ndarray:
     sx, sy = tab["sx"], tab["sy"]
     alx = np.array([r.along_x for r in rs], bool)
     tstep = np.where(alx, sy, sx)
-    lo = np.array([float(r.points[0].min()) for r in rs])
-    hi = np.array([float(r.points[0].max()) for r in rs])
+    if lo is None or hi is None:
+        lo = np.array([float(r.points[0].min()) for r in rs])
+        hi = np.array([float(r.points[0].max()) for r in rs])
     span = hi - lo
     pa, da = _point_dir([r.line for r in rs])  # (m, 2)
     pb, db = tab["pb"], tab["db"]  # (o, 2)
@@ -188,13 +193,13 @@ def thermal_vertex_gap(members: Sequence[RefinedLine], others: Sequence[Transiti
     s_m, s_o = s_m[np.isfinite(s_m)], s_o[np.isfinite(s_o)]
     if s_m.size == 0 or s_o.size == 0:
         return 0.0
-    s1, s2 = (float(np.median(s_m)), float(np.median(s_o))) if steep else (float(np.median(s_o)), float(np.median(s_m)))
+    s1, s2 = (float(_median(s_m)), float(_median(s_o))) if steep else (float(_median(s_o)), float(_median(s_m)))
     if s1 == 0 or not np.isfinite(s1):
         return 0.0
     f = abs(1.0 - s2 / s1)
     if f < 0.05:
         return 0.0
-    return float(k * np.median(w_o) / f)
+    return float(k * _median(w_o) / f)
 
 
 def family_fit(members: Sequence[RefinedLine], others: Sequence[TransitionLine], axes: MapAxes, *,
@@ -220,8 +225,8 @@ def family_fit(members: Sequence[RefinedLine], others: Sequence[TransitionLine],
         s_l = np.array([r.line.slope for r in rs])
         e_l = np.array([r.line.slope_stderr for r in rs])
         v, ve = (1.0 / s_l, e_l / s_l**2) if steep else (s_l, e_l)
-        med = np.median(v)
-        rsig = 1.4826 * np.median(np.abs(v - med))
+        med = _median(v)
+        rsig = 1.4826 * _median(np.abs(v - med))
         keep = np.abs(v - med) <= 4 * max(rsig, 1e-12) + 2 * ve
         if keep.sum() >= 3:
             rs = [r for r, k in zip(rs, keep) if k]
@@ -229,27 +234,41 @@ def family_fit(members: Sequence[RefinedLine], others: Sequence[TransitionLine],
     tstep = sy if along else sx
     lps, full = [], []
     tab = _others_table(others, axes) if others else None
-    verts = _vertex_positions_all(rs, tab) if tab is not None else np.full((len(rs), 2), np.nan)
+    # smallest and largest t of every line (exact: min/max over the runs of the stacked t)
+    ts = [r.points[0] for r in rs]
+    first = np.cumsum([0] + [t.size for t in ts[:-1]])
+    t_all = np.concatenate(ts).astype(float, copy=False)
+    lo_a, hi_a = np.minimum.reduceat(t_all, first), np.maximum.reduceat(t_all, first)
+    lo, hi = lo_a.tolist(), hi_a.tolist()
+    verts = _vertex_positions_all(rs, tab, lo_a, hi_a) if tab is not None else np.full((len(rs), 2), np.nan)
     gap_th = thermal_vertex_gap(rs, others, steep=steep)
-    for r, (va, vb) in zip(rs, verts):
+    gap_px = VERTEX_GAP_PX * tstep
+    for r, (va, vb), t_lo, t_hi in zip(rs, verts, lo, hi):
         t, p, s = r.points
-        gap = max(VERTEX_GAP_PX * tstep, VERTEX_GAP_FRAC * np.ptp(t), gap_th)
-        ok = np.ones(t.size, bool)
-        for v in (va, vb):
-            if np.isfinite(v):
-                ok &= np.abs(t - v) >= gap
-        if ok.sum() < 4:
-            ok[:] = True
-            va = vb = float("nan")
-        lps.append(LinePoints(t=t[ok], p=p[ok], sig=s[ok], vertices=(va, vb)))
-        full.append(LinePoints(t=t, p=p, sig=s))
-    straight_all = fit_family(full, bend=False)
-    # with no point near a vertex left out, the two straight fits see the same points
+        fin_a, fin_b = va == va, vb == vb  # not NaN (vertex positions are finite or NaN)
+        if fin_a or fin_b:
+            ptp = (t_hi - t_lo) if t.dtype == np.float64 else np.ptp(t)  # (= np.ptp(t) for float64 t)
+            gap = max(gap_px, VERTEX_GAP_FRAC * ptp, gap_th)
+            if fin_a and fin_b:
+                ok = (np.abs(t - va) >= gap) & (np.abs(t - vb) >= gap)
+            else:
+                ok = np.abs(t - (va if fin_a else vb)) >= gap
+            n_ok = int(np.count_nonzero(ok))
+            if n_ok < 4:
+                va = vb = float("nan")
+            elif n_ok < t.size:
+                t, p, s = t[ok], p[ok], s[ok]
+        lps.append(LinePoints(t=t, p=p, sig=s, vertices=(va, vb)))
+        full.append(LinePoints(t=r.points[0], p=r.points[1], sig=r.points[2]))
+    st_full = _stack(full)
+    straight_all = _fit_family(full, st_full, bend=False) if st_full is not None else None
+    # with no point near a vertex left out, the two straight fits see the same points (and the same stack)
     trimmed = any(lp.t.size != f.t.size for lp, f in zip(lps, full))
-    straight = fit_family(lps, bend=False) if trimmed else straight_all
+    st = _stack(lps) if trimmed else st_full
+    straight = (_fit_family(lps, st, bend=False) if st is not None else None) if trimmed else straight_all
     if straight is None or straight_all is None:
         return None
-    bent = fit_family(lps, bend=True)
+    bent = _fit_family(lps, st, bend=True)
     pval = bending_significance(straight, bent) if bent is not None else 1.0
     z = float("nan")
     if bent is not None and bent.bend_terms > 0:

@@ -31,6 +31,39 @@ from scipy.special import fdtrc  # F survival function, = scipy.stats.f.sf(x, df
 __all__ = ["LinePoints", "JointFit", "fit_family", "bending_significance", "clustered_slope_variance"]
 
 
+def _median(x: np.ndarray) -> np.floating:
+    """``np.median`` of a 1-D float array, bit for bit, with less call overhead (one ``np.partition``).
+
+    Like ``np.median``: the mean of the two middle values for even sizes,
+    NaN when the array holds a NaN (NaN sorts last in the partition).
+    """
+    n = x.size
+    if n == 0:
+        return np.median(x)
+    k = n // 2
+    if n % 2:
+        part = np.partition(x, (k, n - 1))
+        m = part[k]
+    else:
+        part = np.partition(x, (k - 1, k, n - 1))
+        m = (part[k - 1] + part[k]) / 2
+    return part[n - 1] if np.isnan(part[n - 1]) else m
+
+
+def _pinv(A: np.ndarray) -> np.ndarray:
+    """``np.linalg.pinv(A)``; a 1×1 positive ``A`` of ordinary magnitude takes ``1/a`` directly.
+
+    For such a matrix the SVD is ``a = 1 · a · 1`` and the pseudo-inverse is
+    exactly ``1/a`` (checked bit for bit against ``np.linalg.pinv``, see
+    tests/test_lines_family_kernels.py); other cases go to ``np.linalg.pinv``.
+    """
+    if A.shape == (1, 1):
+        a = A[0, 0]
+        if 1e-100 < a < 1e100:
+            return np.array([[1.0 / a]])
+    return np.linalg.pinv(A)
+
+
 @dataclass(frozen=True)
 class LinePoints:
     """Crossing points of one line, in volts.
@@ -82,11 +115,19 @@ class JointFit:
     slope_stderr_iid: float = float("nan")
 
 
-def _design(lines: Sequence[LinePoints], bend: bool, shared: bool):
-    """Stacked points with the shared columns only (slope, bending terms) and the line index of each point.
+def _line_sums(lid: np.ndarray, w: np.ndarray, S: np.ndarray, n_lines: int) -> np.ndarray:
+    """``Σ_{i ∈ line} w_i S_ic`` for every line and column: (n_lines, k) (one ``bincount`` per column)."""
+    if S.shape[1] == 1:
+        return np.bincount(lid, w * S[:, 0], minlength=n_lines)[:, None]
+    return np.stack([np.bincount(lid, w * S[:, c], minlength=n_lines) for c in range(S.shape[1])], 1)
 
-    Lines with fewer than three usable points are left out; bending terms
-    ``span/(t − τ)`` only for lines with at least eight.
+
+def _stack(lines: Sequence[LinePoints]):
+    """The part of :func:`_design` that does not depend on the model: usable points stacked, line by line.
+
+    Returns ``(cnt, t, y, sig, lid, tms)`` (points per line, then the usable
+    points of the lines with at least three, their line index and each
+    line's mean ``t``), or None when no line has three usable points.
     """
     n_lines = len(lines)
     if n_lines == 0:
@@ -106,14 +147,32 @@ def _design(lines: Sequence[LinePoints], bend: bool, shared: bool):
     t, lid = T[pts], LID[pts]
     tms = np.full(n_lines, np.nan)
     tms[used] = np.bincount(lid, t, minlength=n_lines)[used] / cnt[used]
+    return cnt, t, P[pts], SG[pts], lid, tms
+
+
+def _design(lines: Sequence[LinePoints], bend: bool, shared: bool, stacked=None):
+    """Stacked points with the shared columns only (slope, bending terms) and the line index of each point.
+
+    Lines with fewer than three usable points are left out; bending terms
+    ``span/(t − τ)`` only for lines with at least eight. ``stacked``: the
+    result of :func:`_stack` for the same ``lines``, when already made.
+    """
+    if stacked is None:
+        stacked = _stack(lines)
+        if stacked is None:
+            return None
+    n_lines = len(lines)
+    cnt, t, y, sig, lid, tms = stacked
     cols = [t - tms[lid]]
     if bend:
         V = np.array([lp.vertices for lp in lines], float).reshape(n_lines, 2)
         V[cnt < 8] = np.nan
         hi = np.full(n_lines, -np.inf)
         lo = np.full(n_lines, np.inf)
-        np.maximum.at(hi, lid, t)
-        np.minimum.at(lo, lid, t)
+        # lid is non-decreasing (lines stacked in order): per-line extremes over the runs of equal lid
+        first = np.flatnonzero(np.concatenate(([True], lid[1:] != lid[:-1])))
+        hi[lid[first]] = np.maximum.reduceat(t, first)
+        lo[lid[first]] = np.minimum.reduceat(t, first)
         with np.errstate(invalid="ignore"):
             span = np.maximum(hi - lo, 1e-300)
         if shared:
@@ -131,7 +190,7 @@ def _design(lines: Sequence[LinePoints], bend: bool, shared: bool):
     S = np.stack(cols, 1)
     used_b = np.abs(S[:, 1:]).sum(0) > 0
     S = S[:, np.concatenate([[True], used_b])]
-    return S, P[pts], SG[pts], lid, tms, int(used_b.sum())
+    return S, y, sig, lid, tms, int(used_b.sum())
 
 
 def fit_family(
@@ -170,46 +229,57 @@ def fit_family(
     of the full design with one offset column per line, at the cost of a
     (1 + n_bend)² solve instead of one of size (1 + n_lines + n_bend)².
     """
-    des = _design(lines, bend, shared_bend)
+    return _fit_family(lines, None, bend=bend, shared_bend=shared_bend, n_clip=n_clip)
+
+
+def _fit_family(lines: Sequence[LinePoints], stacked, *, bend: bool = False, shared_bend: bool = True,
+                n_clip: float = 3.5) -> JointFit | None:
+    """:func:`fit_family` with the model-independent stacking of :func:`_stack` given (None: made here).
+
+    The straight and the bent fit of one family's points share it.
+    """
+    des = _design(lines, bend, shared_bend, stacked)
     if des is None:
         return None
     S, y, s, lid, tms, n_bend = des
     n_lines = len(lines)
-    n_used_lines = int(np.unique(lid).size)
+    n_used_lines = int(np.count_nonzero(np.bincount(lid, minlength=n_lines)))
     n_par = S.shape[1] + n_used_lines
     w_all = 1.0 / s**2
     keep = np.ones(y.size, bool)
     beta = cov = off = None
     for _ in range(8):
-        if keep.sum() <= n_par + 2:
+        if np.count_nonzero(keep) <= n_par + 2:
             return None
         w = np.where(keep, w_all, 0.0)
         sw = np.bincount(lid, w, minlength=n_lines)
         swn = np.where(sw > 0, sw, 1.0)
         ym = np.bincount(lid, w * y, minlength=n_lines) / swn
-        Sm = np.stack([np.bincount(lid, w * S[:, c], minlength=n_lines) for c in range(S.shape[1])], 1) / swn[:, None]
+        Sm = _line_sums(lid, w, S, n_lines) / swn[:, None]
         Sc = S - Sm[lid]
         yc = y - ym[lid]
-        A = (Sc.T * w) @ Sc
+        ScTw = Sc.T * w
+        A = ScTw @ Sc
         try:
-            cov = np.linalg.pinv(A)
+            cov = _pinv(A)
         except np.linalg.LinAlgError:
             return None
-        beta = cov @ ((Sc.T * w) @ yc)
+        beta = cov @ (ScTw @ yc)
         off = ym - Sm @ beta
-        r = (y - off[lid] - S @ beta) / s
+        res = y - off[lid] - S @ beta
+        r = res / s
         rk = r[keep]
-        scale = max(1.4826 * np.median(np.abs(rk - np.median(rk))), 1.0)
+        scale = max(1.4826 * _median(np.abs(rk - _median(rk))), 1.0)
         new = np.abs(r) <= n_clip * scale
         if np.array_equal(new, keep):
             break
         keep = new
-    r = (y - off[lid] - S @ beta) / s
+    # (the residuals of the last iteration's beta and offsets: r and res are up to date)
     chi2 = float((r[keep] ** 2).sum())
     dof = max(int(keep.sum()) - n_par, 1)
     chi2r = chi2 / dof
     var_iid = float(cov[0, 0] * max(chi2r, 1.0))
-    se = float(np.sqrt(max(var_iid, clustered_slope_variance(Sc, w, y - off[lid] - S @ beta, lid, cov, n_lines))))
+    se = float(np.sqrt(max(var_iid, clustered_slope_variance(Sc, w, res, lid, cov, n_lines))))
     has = np.bincount(lid, keep.astype(float), minlength=n_lines) > 0
     offsets = np.where(np.isfinite(tms) & has, off, np.nan)
     return JointFit(slope=float(beta[0]), slope_stderr=se, offsets=offsets, chi2_red=float(chi2r),
@@ -235,12 +305,12 @@ def clustered_slope_variance(Sc: np.ndarray, w: np.ndarray, r: np.ndarray, lid: 
     """
     on = w > 0
     n = int(on.sum())
-    g_lines = int(np.unique(lid[on]).size)
+    g_lines = int(np.count_nonzero(np.bincount(lid[on], minlength=n_lines)))
     k_par = Sc.shape[1] + g_lines
     if g_lines < 2 or n <= k_par:
         return 0.0
     wr = w * r
-    u = np.stack([np.bincount(lid, wr * Sc[:, c], minlength=n_lines) for c in range(Sc.shape[1])], 1)
+    u = _line_sums(lid, wr, Sc, n_lines)
     meat = u.T @ u * (g_lines / (g_lines - 1) * (n - 1) / (n - k_par))
     v = float((cov @ meat @ cov)[0, 0])
     return v if np.isfinite(v) and v > 0 else 0.0
