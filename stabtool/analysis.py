@@ -432,7 +432,7 @@ def _length_order(lengths: Sequence[float]) -> np.ndarray:
 
 
 def _cuts_along_line(x: np.ndarray, y: np.ndarray, z: np.ndarray, ln: Any, which: int,
-                     half: float) -> tuple[np.ndarray, np.ndarray] | None:
+                     half: float, *, clear: Any = None) -> tuple[np.ndarray, np.ndarray] | None:
     """Cuts along the dot's own gate through the central 70 % of ``ln``, aligned on it and stacked.
 
     ``x`` (nx,), ``y`` (ny,), ``z`` (ny, nx): the map. Returns (voltage relative to the line,
@@ -450,6 +450,11 @@ def _cuts_along_line(x: np.ndarray, y: np.ndarray, z: np.ndarray, ln: Any, which
     if rows.size < 3:
         return None
     centre = np.asarray(at(cross[rows]), float).reshape(-1)
+    if clear is not None:  # keep the cuts clear of the other dot's lines (fit.linewidth.clear_of_lines)
+        m = clear(cross[rows], centre)
+        rows, centre = rows[m], centre[m]
+        if rows.size < 3:
+            return None
     d = along[None, :] - centre[:, None]
     sig = zz[rows]
     ok = (np.abs(d) <= half) & np.isfinite(sig)
@@ -462,7 +467,8 @@ def _cuts_along_line(x: np.ndarray, y: np.ndarray, z: np.ndarray, ln: Any, which
     return d[ok], (sig - mean[:, None])[ok]
 
 
-def _widths_from_map(da: xr.DataArray, fit: DiagramFit, which: int, *, max_lines: int = 12) -> tuple[float, float]:
+def _widths_from_map(da: xr.DataArray, fit: DiagramFit, which: int, *, max_lines: int = 12,
+                     clearance_V: float | None = None) -> tuple[float, float]:
     """Fermi width across the dot lines, fitted on the map.
 
     For every line used by the fit (the ``max_lines`` longest), the cuts along
@@ -472,9 +478,12 @@ def _widths_from_map(da: xr.DataArray, fit: DiagramFit, which: int, *, max_lines
     lines at once (:func:`stabtool.fit.fermi.fit_fermi_steps`; a line whose
     batched fit does not converge is refitted by
     :func:`stabtool.fit.fermi.fit_fermi_step`). Returns the weighted mean
-    width and its standard error (V).
+    width and its standard error (V). With ``clearance_V``, only cuts whose
+    window stays that far from every line of the other dot (along the other
+    dot's gate) are used (:func:`stabtool.fit.linewidth.clear_of_lines`).
     """
     from .fit.fermi import fit_fermi_step, fit_fermi_steps
+    from .fit.linewidth import clear_of_lines
 
     fam_lines = fit.lines1 if which == 0 else fit.lines2
     grp = fit.line_groups[which]
@@ -484,7 +493,15 @@ def _widths_from_map(da: xr.DataArray, fit: DiagramFit, which: int, *, max_lines
     x = np.asarray(da[da.dims[-1]].values, float)
     y = np.asarray(da[da.dims[0]].values, float)
     z = np.asarray(da.values, float)
-    cuts = [c for c in (_cuts_along_line(x, y, z, ln, which, half) for ln in lines) if c is not None]
+    clear = None
+    if clearance_V is not None and np.isfinite(clearance_V) and clearance_V > 0:
+        others = fit.lines2 if which == 0 else fit.lines1
+
+        def clear(cross_v: np.ndarray, centre_v: np.ndarray) -> np.ndarray:
+            return clear_of_lines(cross_v, centre_v, half_V=half, other_lines=others, which=which,
+                                  clearance_V=float(clearance_V))
+
+    cuts = [c for c in (_cuts_along_line(x, y, z, ln, which, half, clear=clear) for ln in lines) if c is not None]
     if not cuts:
         return float("nan"), float("nan")
     batch = fit_fermi_steps([c[0] for c in cuts], [c[1] for c in cuts], centre_guess_V=0.0)
@@ -535,9 +552,21 @@ def _scale(
 
     if temperature_K is not None and fit.ok:
         ws, es = np.full(2, np.nan), np.full(2, np.nan)
+        # first pass on all cuts gives each dot's width; the second keeps only the cuts clear
+        # of the other dot's lines by CLEARANCE_WIDTHS of its width (fit.linewidth.clear_of_lines)
+        from .fit.linewidth import CLEARANCE_WIDTHS, choose_clear_width
+
+        first = [_widths_from_map(da, fit, i) for i in range(2)]
         for i in range(2):
             lines = fit.lines1 if i == 0 else fit.lines2
-            w, e = _widths_from_map(da, fit, i)
+            w, e = first[i]
+            if np.isfinite(w) and np.isfinite(first[1 - i][0]):
+                w_c, e_c = _widths_from_map(da, fit, i, clearance_V=CLEARANCE_WIDTHS * first[1 - i][0])
+                cw = choose_clear_width(w, e, w_c, e_c)
+                w, e = cw.width_V, cw.error_V
+                details[f"width_dot{i + 1}_cuts"] = cw.choice
+                if cw.warning:
+                    q = q.with_warning(f"dot{i + 1} lines: {cw.warning}")
             source = "Fermi fits on stacked map cuts"
             if not np.isfinite(w):
                 w_l = [ln.width_V for ln in lines]
