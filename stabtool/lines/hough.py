@@ -64,6 +64,26 @@ class PixelSegment:
         return float(sig / (np.sqrt(n) * max(spread, 1e-9)))
 
 
+def _principal_axis(a: float, b: float, c: float) -> tuple[float, float, float] | None:
+    """Unit major axis ``(ux, uy)`` (ux ≥ 0) and minor eigenvalue of the 2×2 covariance ``[[a, b], [b, c]]``.
+
+    Closed form of the symmetric 2×2 eigenproblem; None when the axis is undefined
+    (all points coincide).
+    """
+    half = 0.5 * (a - c)
+    root = math.hypot(half, b)
+    lam_max = 0.5 * (a + c) + root
+    lam_min = 0.5 * (a + c) - root
+    ux, uy = (lam_max - c, b) if a >= c else (b, lam_max - a)
+    norm = math.hypot(ux, uy)
+    if not norm > 0:
+        return None
+    ux, uy = ux / norm, uy / norm
+    if ux < 0 or (ux == 0 and uy < 0):
+        ux, uy = -ux, -uy
+    return ux, uy, lam_min
+
+
 def _tls(px: np.ndarray, py: np.ndarray):
     """Total-least-squares line through points: centre, unit direction, perpendicular rms.
 
@@ -74,17 +94,10 @@ def _tls(px: np.ndarray, py: np.ndarray):
     cx, cy = px.sum() / n, py.sum() / n
     dx, dy = px - cx, py - cy
     a, b, c = float((dx * dx).sum()) / n, float((dx * dy).sum()) / n, float((dy * dy).sum()) / n
-    half = 0.5 * (a - c)
-    root = math.hypot(half, b)
-    lam_max = 0.5 * (a + c) + root
-    lam_min = 0.5 * (a + c) - root
-    ux, uy = (lam_max - c, b) if a >= c else (b, lam_max - a)
-    norm = math.hypot(ux, uy)
-    if not norm > 0:
+    axis = _principal_axis(a, b, c)
+    if axis is None:
         return tls_fit(px, py)
-    ux, uy = ux / norm, uy / norm
-    if ux < 0 or (ux == 0 and uy < 0):
-        ux, uy = -ux, -uy
+    ux, uy, lam_min = axis
     return cx, cy, np.array([ux, uy]), math.sqrt(max(lam_min, 0.0))
 
 
@@ -285,19 +298,12 @@ def _tls_xy(xy: np.ndarray):
     d = xy - cen[:, None]
     q = (d[:, None] * d[None]).reshape(4, n).sum(axis=1)  # Σ dx², Σ dx dy, Σ dy dx, Σ dy²
     a, b, c = float(q[0]) / n, float(q[1]) / n, float(q[3]) / n
-    half = 0.5 * (a - c)
-    root = math.hypot(half, b)
-    lam_max = 0.5 * (a + c) + root
-    lam_min = 0.5 * (a + c) - root
-    ux, uy = (lam_max - c, b) if a >= c else (b, lam_max - a)
-    norm = math.hypot(ux, uy)
-    if not norm > 0:
+    axis = _principal_axis(a, b, c)
+    if axis is None:
         cx, cy, u, rms = tls_fit(xy[0], xy[1])
         cen = np.array([cx, cy])
         return cen, float(u[0]), float(u[1]), rms, xy - cen[:, None]
-    ux, uy = ux / norm, uy / norm
-    if ux < 0 or (ux == 0 and uy < 0):
-        ux, uy = -ux, -uy
+    ux, uy, lam_min = axis
     return cen, ux, uy, math.sqrt(max(lam_min, 0.0)), d
 
 
