@@ -743,6 +743,23 @@ def _basis(xn: np.ndarray, yn: np.ndarray) -> np.ndarray:
     return np.stack([np.ones_like(xn), xn, yn, xn * xn, xn * yn, yn * yn])
 
 
+def _two_lowest_states(prob_: _Problem, theta: np.ndarray,
+                       band_w: float) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """The lowest and second-lowest charge states at every fitted pixel, and whether it is near a line.
+
+    Returns ``(a1, a2, b1, b2, near)``: occupations (N1, N2) of the lowest state ``a`` and the
+    next ``b``, each of shape (p,), and ``near`` (bool, (p,)): the two states' energies lie within
+    :data:`BAND_WIDTHS` line widths of each other.
+    """
+    n1, n2, f, _ = _state_weights(prob_.px, prob_.py, theta, prob_.n_min, energies=True)
+    order = np.argsort(f, axis=0)[:2]
+    cols = np.arange(f.shape[1])
+    a1, a2 = n1[order[0], cols], n2[order[0], cols]
+    b1, b2 = n1[order[1], cols], n2[order[1], cols]
+    near = (f[order[1], cols] - f[order[0], cols]) * theta[8] < BAND_WIDTHS * band_w
+    return a1, a2, b1, b2, near
+
+
 def _local_steps(prob_: _Problem, theta: np.ndarray, coef: np.ndarray, states: _States,
                  band_w: float) -> np.ndarray:
     """Signal change for one added electron on dot1, dot2, evaluated on the lines.
@@ -754,12 +771,7 @@ def _local_steps(prob_: _Problem, theta: np.ndarray, coef: np.ndarray, states: _
     (shape (2, 3); NaN without such pixels). A peak-shaped sensor's step changes size, even
     sign, across the map, hence the sizes.
     """
-    n1, n2, f, _ = _state_weights(prob_.px, prob_.py, theta, prob_.n_min, energies=True)
-    order = np.argsort(f, axis=0)[:2]
-    cols = np.arange(f.shape[1])
-    a1, a2 = n1[order[0], cols], n2[order[0], cols]
-    b1, b2 = n1[order[1], cols], n2[order[1], cols]
-    near = (f[order[1], cols] - f[order[0], cols]) * theta[8] < BAND_WIDTHS * band_w
+    a1, a2, b1, b2, near = _two_lowest_states(prob_, theta, band_w)
     poly = np.concatenate([states.polynomials(coef), np.zeros((6, 1))], axis=1)
     ns = states.states.shape[0]
     ia, ib = states.index(a1, a2), states.index(b1, b2)
@@ -864,12 +876,7 @@ def _curvature_field(prob_: _Problem, theta: np.ndarray, coef: np.ndarray, state
         to the range of the others), or steps of opposite sign for the two dots
         (``ρ ≤ 0``: not one sensor).
     """
-    n1, n2, f, _ = _state_weights(prob_.px, prob_.py, theta, prob_.n_min, energies=True)
-    order = np.argsort(f, axis=0)[:2]
-    cols = np.arange(f.shape[1])
-    a1, a2 = n1[order[0], cols], n2[order[0], cols]
-    b1, b2 = n1[order[1], cols], n2[order[1], cols]
-    near = (f[order[1], cols] - f[order[0], cols]) * theta[8] < BAND_WIDTHS * band_w
+    a1, a2, b1, b2, near = _two_lowest_states(prob_, theta, band_w)
     inter = near & (np.abs(a1 - b1) == 1) & (a1 - b1 == b2 - a2)
     if not inter.any():
         return None
