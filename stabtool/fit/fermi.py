@@ -179,8 +179,9 @@ def _grid_search(
     nb = base.shape[1]
     p = nb + 1
     best = (np.inf, _NAN, _NAN)
+    half_d = 0.5 * (x[None, :] - centres[:, None])  # the same for every width (as in _step)
     for w in widths:
-        st = _step(x[None, :], centres[:, None], w) * wt[None, :]  # (n_c, n)
+        st = 0.5 * (1.0 + np.tanh(half_d / w)) * wt[None, :]  # _step(x, centres, w), (n_c, n)
         ata = np.empty((centres.size, p, p))
         ata[:, :nb, :nb] = bb
         sb = st @ base
@@ -580,6 +581,28 @@ def _solve_batch(a: np.ndarray, b: np.ndarray) -> np.ndarray:
             return out
 
 
+def _row_nanmedian(a: np.ndarray) -> np.ndarray:
+    """``np.nanmedian(a, axis=1)`` of a 2-D array, bit for bit, without a Python loop over rows.
+
+    NumPy takes the median of long rows one row at a time (``apply_along_axis``);
+    here every row is sorted once (NaNs last) and the middle value, or the mean
+    ``(lo + hi) / 2`` of the two middle values, is read off the finite count
+    (all-NaN rows give NaN). Same arithmetic as :func:`numpy.median`.
+    """
+    a = np.asarray(a, float)
+    k = a.shape[0]
+    if a.ndim != 2 or a.shape[1] == 0:
+        return np.full(k, np.nan)
+    srt = np.sort(a, axis=1)  # NaNs sort to the end
+    n = np.count_nonzero(~np.isnan(a), axis=1)
+    rows = np.arange(k)
+    hi = np.minimum(n // 2, a.shape[1] - 1)
+    lo = np.maximum((n - 1) // 2, 0)
+    with np.errstate(invalid="ignore"):
+        out = np.where(n % 2 == 1, srt[rows, hi], (srt[rows, lo] + srt[rows, hi]) / 2.0)
+    return np.where(n > 0, out, np.nan)
+
+
 def _batch_model(x, p):
     """Model, tanh and F(1 − F) of ``b0 + b1 x + h F((x − x0)/w)`` on (k, n) samples; p (k, 5)."""
     x0, lw, h, b0, b1 = (p[:, i : i + 1] for i in range(5))
@@ -594,6 +617,22 @@ def _batch_jac(x, p, f, q, w):
     h = p[:, 2:3]
     dx0 = -h * q / w
     return np.stack([dx0, dx0 * (x - p[:, 0:1]), f, np.ones_like(x), x], axis=1)
+
+
+def _batch_jac_weighted(x, p, f, q, w, wt, xw):
+    """``_batch_jac(x, p, f, q, w) * wt[:, None, :]``, element for element, without the constant rows' products.
+
+    ``xw`` = ``x * wt``; the row of ones times ``wt`` is ``wt`` itself.
+    """
+    h = p[:, 2:3]
+    dx0 = -h * q / w
+    J = np.empty((x.shape[0], 5, x.shape[1]))
+    np.multiply(dx0, wt, out=J[:, 0])
+    np.multiply(dx0 * (x - p[:, 0:1]), wt, out=J[:, 1])
+    np.multiply(f, wt, out=J[:, 2])
+    J[:, 3] = wt
+    J[:, 4] = xw
+    return J
 
 
 def fit_fermi_steps(
@@ -671,13 +710,13 @@ def fit_fermi_steps(
     dv = np.diff(np.where(m, V, np.nan), axis=1)
     with np.errstate(invalid="ignore"), warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
-        step_v = np.nanmedian(np.where(dv > 0, dv, np.nan), axis=1)
+        step_v = _row_nanmedian(np.where(dv > 0, dv, np.nan))
         ds = np.diff(np.where(m, S, np.nan), axis=1)
-        dmed = np.nanmedian(ds, axis=1)
-        noise = 1.4826 * np.nanmedian(np.abs(ds - dmed[:, None]), axis=1) / np.sqrt(2.0)
+        dmed = _row_nanmedian(ds)
+        noise = 1.4826 * _row_nanmedian(np.abs(ds - dmed[:, None])) / np.sqrt(2.0)
         noise = np.where(n_pts >= 4, noise, np.nan)
         Sm = np.where(m, S, np.nan)
-        ym = np.nanmedian(Sm, axis=1)
+        ym = _row_nanmedian(Sm)
         ys = np.nanstd(Sm, axis=1)
     usable &= np.isfinite(step_v)
     ym = np.where(np.isfinite(ym), ym, 0.0)
@@ -699,9 +738,10 @@ def fit_fermi_steps(
     p = np.zeros((k, 5))
     sw, sx, sxx = wt.sum(1), (wt * X).sum(1), (wt * X * X).sum(1)
     sy, sxy, syy = (wt * Y).sum(1), (wt * X * Y).sum(1), (wt * Y * Y).sum(1)
+    dX = X - x0g[:, None]  # the same for every width
     for j in range(nw):
         w = grid_w[:, j : j + 1]
-        F = (0.5 + 0.5 * np.tanh((X - x0g[:, None]) * (0.5 / w))) * wt
+        F = (0.5 + 0.5 * np.tanh(dX * (0.5 / w))) * wt
         A = np.empty((k, 3, 3))
         A[:, 0, 0] = (F * F).sum(1)
         A[:, 0, 1] = A[:, 1, 0] = F.sum(1)
@@ -721,19 +761,23 @@ def fit_fermi_steps(
     active = usable & np.isfinite(cost)
     converged = np.zeros(k, bool)
     eye = np.eye(5)
+    XW = X * wt  # the constant Jacobian row, weighted
     for _ in range(max_iter):
         if not np.any(active):
             break
         ia = np.nonzero(active)[0]
-        J = _batch_jac(X[ia], p[ia], f[ia], q[ia], w[ia]) * wt[ia, None, :]
+        # all traces active: plain views instead of gathered copies (same values)
+        sel = slice(None) if ia.size == k else ia
+        Xa, wta = X[sel], wt[sel]
+        J = _batch_jac_weighted(Xa, p[sel], f[sel], q[sel], w[sel], wta, XW[sel])
         A = J @ J.transpose(0, 2, 1)
-        g = (J @ r[ia][:, :, None])[:, :, 0]
+        g = (J @ r[sel][:, :, None])[:, :, 0]
         dA = np.einsum("kii->ki", A)
         step = -_solve_batch(A + lam[ia, None, None] * (dA[:, :, None] * eye) + 1e-30 * eye, g)
-        pt = p[ia] + step
+        pt = p[sel] + step
         pt[:, 1] = np.clip(pt[:, 1], np.log(1e-6), np.log(10.0))
-        mt, ft, qt, wtt = _batch_model(X[ia], pt)
-        rt = (mt - Y[ia]) * wt[ia]
+        mt, ft, qt, wtt = _batch_model(Xa, pt)
+        rt = (mt - Y[sel]) * wta
         ct = np.sum(rt * rt, axis=1)
         good = np.isfinite(ct) & (ct <= cost[ia])
         gi = ia[good]

@@ -35,9 +35,8 @@ see :mod:`stabtool.physics.thermal`.
 
 from __future__ import annotations
 
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass, field
-from typing import Any
 
 import numpy as np
 
@@ -180,20 +179,32 @@ def clear_of_lines(
     keep = np.ones(cross.size, bool)
     if not np.isfinite(clearance_V) or clearance_V <= 0:
         return keep
+    lines = list(other_lines)
+    if not lines or cross.size == 0:
+        return keep
     lo, hi = centre - half_V, centre + half_V
-    for ln in other_lines:
+    # all other lines at once, one row per line (the same arithmetic as TransitionLine.x_at / y_at)
+    ends = np.array([(ln.start[1], ln.end[1]) if which == 1 else (ln.start[0], ln.end[0]) for ln in lines], float)
+    par = np.array([(ln.x0, ln.y0, ln.slope) for ln in lines], float)
+    x0, y0, slope = par[:, 0:1], par[:, 1:2], par[:, 2:3]
+    s0, s1 = np.min(ends, axis=1)[:, None], np.max(ends, axis=1)[:, None]
+
+    def pos(v: np.ndarray) -> np.ndarray:
         # cuts along y at x = cross: other line x(y); cuts along x at y = cross: other line y(x)
-        s0, s1 = sorted((ln.start[1], ln.end[1])) if which == 1 else sorted((ln.start[0], ln.end[0]))
-        pos: Callable[[np.ndarray], Any] = ln.x_at if which == 1 else ln.y_at
-        a = np.maximum(lo, s0 - half_V)
-        b = np.minimum(hi, s1 + half_V)
-        near = a <= b
-        if not near.any():
-            continue
-        da = cross - np.asarray(pos(a), float)
-        db = cross - np.asarray(pos(b), float)
-        dmin = np.where(np.sign(da) != np.sign(db), 0.0, np.minimum(np.abs(da), np.abs(db)))
-        keep &= ~(near & (dmin < clearance_V))
+        with np.errstate(all="ignore"):
+            if which == 1:
+                return np.where(np.isinf(slope), x0 + 0.0 * v, x0 + (v - y0) / slope)
+            return y0 + slope * (v - x0)
+
+    a = np.maximum(lo, s0 - half_V)  # (n_lines, n)
+    b = np.minimum(hi, s1 + half_V)
+    near = a <= b
+    if not near.any():
+        return keep
+    da = cross - pos(a)
+    db = cross - pos(b)
+    dmin = np.where(np.sign(da) != np.sign(db), 0.0, np.minimum(np.abs(da), np.abs(db)))
+    keep &= ~np.any(near & (dmin < clearance_V), axis=0)
     return keep
 
 

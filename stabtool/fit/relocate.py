@@ -584,7 +584,7 @@ def _fit_window(z: np.ndarray, x: np.ndarray, y: np.ndarray, lines: list[Transit
     b_err = b_iid = np.nan
     n_used = 0
     bend = bend_err = between = float("nan")
-    for _ in range(n_iter):
+    for it in range(n_iter):
         # all crossing points of the family in flat arrays, ``lid`` = line index of each point
         s_all, c_all, lid = _crossings(zz, scan_axis, cross_axis, spans, mids, b, trim=trim, half_px=half_px,
                                        noise=max(noise, 1e-30))
@@ -608,6 +608,11 @@ def _fit_window(z: np.ndarray, x: np.ndarray, y: np.ndarray, lines: list[Transit
             mask = new_mask
         cnt, cm, sm = _line_means(lid, n_lines_in, mask, s_all, c_all)
         good = cnt >= 3
+        if it < n_iter - 1:
+            # an intermediate pass only moves the predicted positions: its error, bend and
+            # scatter statistics would be overwritten by the last pass (same numbers, less work)
+            mids = [(float(sm[i]), float(cm[i])) if good[i] else mid for i, mid in enumerate(mids0)]
+            continue
         use = mask & good[lid]
         n_used = int(cnt[good].sum())
         n_lines = int(good.sum())
