@@ -40,8 +40,10 @@ come out biased. Fitting the term freely (one linear coefficient per
 same reason (it is a line shift) and was measured to make ΔV1 worse.
 So the curvature is *measured*: the levels of the four states around each
 interdot line give ``κ1/κ2`` and the relative curvature ``T = g''κ2/g'``
-(:func:`_curvature_field`, a polynomial in the charge coordinate
-``s = ρ N1 + N2``, ``ρ = κ1/κ2``), and the map is refitted with the levels
+(:func:`_curvature_field`, a polynomial in the operating-point coordinate
+``u = s − (λ/κ2)·(x, y)`` with the charge coordinate ``s = ρ N1 + N2``,
+``ρ = κ1/κ2``, and the gate drift ``λ/κ2`` measured from the same levels),
+and the map is refitted with the levels
 mixed by tilted weights ``p_N (1 + ½ T (s_N − ⟨s⟩))`` (``T`` taken at the
 transition's centre), which equals ``⟨L⟩ − ½ g'' Var(d)`` to second order
 and keeps the model linear in the levels (no new nonlinear parameter).
@@ -55,8 +57,18 @@ tilt: ΔV1 −0.44 → −0.08 % / −0.26 → −0.04 %, ΔV2 −0.18 → −0.
 ΔV, δ 1.6–5.4 → 0.7–1.2); on 160² maps (6 seeds each) ΔV1 −0.28 → −0.06 % /
 −0.15 → −0.02 %, δ −0.96…−1.55 → −0.50…−0.88 %, M unchanged (ΔV1 pull
 still 1.9 on gaas-double, whose statistical error there is 0.045 %).
-The rest (δ ≈ −0.6 %, also on noiseless maps)
-is beyond the second order and the measurement of ``T``. On maps with sharp
+Those numbers are for ``T`` in ``s`` alone, constant along each line. The
+operating point also drifts with the gates, so ``T`` changes along a line,
+the line shift changes from end to end and tilts the lines: M stayed off
+by −0.001 (noiseless linear read-out: 0.0000; noiseless curved sensor:
+−0.0008 / −0.0013). With ``T`` in ``u`` (20 seeds per preset, 112²,
+SNR 30): M12 −0.00096 → −0.00052 / −0.00080 → −0.00002, M21 −0.00036 →
++0.00027 / −0.00067 → +0.00048 (standard error ≈ 0.0003 per 10 seeds);
+δ1/δ2 −0.68/−0.58 → −0.45/−0.26 % and −0.66/−0.65 → −0.21/−0.05 %; ΔV
+unchanged within 0.01 %. The rest (M12 ≈ −0.0005 on gaas-double, also
+noiseless, where ``|ρT|`` reaches 0.67) is beyond the second order.
+:data:`CURVATURE_MIN_SPREAD` keeps ``T`` constant when all blocks sit at
+one operating point (a sensor whose gate drift cancels its charge drift). On maps with sharp
 lines (width at the lower bound) nothing changes; on a linear read-out
 ``T`` comes out ≈ 0; the map must show at least
 :data:`CURVATURE_MIN_BLOCKS` interdot lines with fitted pixels (on the
@@ -655,7 +667,7 @@ class _Problem:
         colmap[use] = np.arange(int(use.sum()))
         data, cols, rr = [], [], []
         # mixing weights of the states' levels (the thermal probabilities, tilted by the sensor's curvature)
-        wt = pr if self.tilt is None else pr * self.tilt.factor(rows, pr, n1[keep], n2[keep], p)[0]
+        wt = pr if self.tilt is None else pr * self.tilt.factor(rows, pr, n1[keep], n2[keep], p, self.phi)[0]
         for b in range(6):
             c = colmap[b, inv]
             m = c >= 0
@@ -795,8 +807,8 @@ class _Tilt:
     ----------
     coef : ndarray, shape (nb,)
         Polynomial (basis 1, u, u², ``u = s − s0``; the first ``nb`` terms)
-        of ``T = g'' κ2 / g'`` (dimensionless) in the charge coordinate
-        ``s = ρ N1 + N2`` of a transition's centre.
+        of ``T = g'' κ2 / g'`` (dimensionless) in the operating-point coordinate
+        ``u = s − gate·(x, y)`` of a transition's centre (``s = ρ N1 + N2``, x, y normalised).
     ratio : float
         ``ρ = κ1/κ2``, the dots' relative shift of the sensor per electron.
     lo, hi : float
@@ -813,6 +825,8 @@ class _Tilt:
     hi: float
     blocks: int
     s0: float = 0.0
+    #: ``λ/κ2`` along the normalised x, y: the operating point's drift with the gates in charge units
+    gate: tuple[float, float] = (0.0, 0.0)
 
     def at(self, ms: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """``T`` and ``∂T/∂s`` at charge coordinates ``ms`` (clipped to the measured range)."""
@@ -824,7 +838,7 @@ class _Tilt:
         return np.clip(raw, self.lo, self.hi), np.where(inside, c[1] + 2 * c[2] * u, 0.0)
 
     def factor(self, col: np.ndarray, pk: np.ndarray, k1: np.ndarray, k2: np.ndarray,
-               p: int) -> tuple[np.ndarray, ...]:
+               p: int, phi: np.ndarray) -> tuple[np.ndarray, ...]:
         """Tilt ``1 + ½ T (s_N − ⟨s⟩)`` of every (state, pixel) entry (``s = ρ N1 + N2``), and per entry
         ``T``, ``∂T/∂s_c``, ``s_N − ⟨s⟩``, ``∂s_c/∂p_N``.
 
@@ -838,14 +852,21 @@ class _Tilt:
         qk = pk * (1.0 - pk)
         qs = np.maximum(np.bincount(col, weights=qk, minlength=p), 1e-300)
         sc = np.bincount(col, weights=qk * sk, minlength=p) / qs
-        t, dt = self.at(sc)
+        t, dt = self.at(sc - self.gate[0] * phi[1] - self.gate[1] * phi[2])
         ds = sk - ms[col]
         dsc = (sk - sc[col]) * (1.0 - 2.0 * pk) / qs[col]
         return 1.0 + 0.5 * t[col] * ds, t[col], dt[col], ds, dsc
 
     def to_json(self) -> dict[str, Any]:
         return {"kappa_ratio_12": self.ratio, "relative_curvature_range": [self.lo, self.hi],
-                "polynomial": [float(v) for v in self.coef], "charge_centre": self.s0, "blocks": int(self.blocks)}
+                "polynomial": [float(v) for v in self.coef], "charge_centre": self.s0, "blocks": int(self.blocks),
+                "gate_drift": [float(v) for v in self.gate]}
+
+
+#: spread of the blocks' operating-point coordinate (charge units) below which ``T`` is taken
+#: constant (twice this for a quadratic); on generator maps it is 2.6–5.6 for the standard sensor
+#: and 0.03–0.07 for one whose gate drift cancels the charge drift (set by those two cases).
+CURVATURE_MIN_SPREAD = 0.5
 
 
 def _curvature_field(prob_: _Problem, theta: np.ndarray, coef: np.ndarray, states: _States,
@@ -859,9 +880,11 @@ def _curvature_field(prob_: _Problem, theta: np.ndarray, coef: np.ndarray, state
     ``B1 = ½(L10 − L00 + L11 − L01) = −g' κ1``, ``B2 = ½(L01 − L00 + L11 − L10) = −g' κ2``;
     hence ``ρ = κ1/κ2 = B1/B2`` (one value for the map, by least squares over the blocks)
     and the relative curvature ``T = g'' κ2/g' = −2D/(B1 + ρ B2)`` per block (all to second
-    order in κ). ``T`` follows the sensor's operating point, which moves by ``κ`` with every
-    electron and only slowly with the gates (a compensated sensor), so it is fitted as a
-    polynomial in the block's charge coordinate ``s = ρ(k + ½) + m + ½`` (constant below
+    order in κ). ``T`` follows the sensor's operating point ``d``, which moves by ``κ`` with every
+    electron and by ``λ`` with the gates; ``λ/κ2`` comes from the same levels (their mean
+    gradient ``g'λ`` over the step ``−g'κ2``, one value for the map), so ``T`` is fitted as a
+    polynomial in the operating-point coordinate ``u = s − (λ/κ2)·(x, y)``, with the block's
+    charge coordinate ``s = ρ(k + ½) + m + ½`` and (x, y) its pixels' mean (constant below
     :data:`CURVATURE_LINEAR_BLOCKS` blocks, linear below :data:`CURVATURE_QUADRATIC_BLOCKS`,
     else quadratic), weighted by the pixels of each block. (A polynomial in x, y instead
     cannot follow ``T`` from line to line, and one in both is ill-conditioned with ≈ 10
@@ -887,9 +910,12 @@ def _curvature_field(prob_: _Problem, theta: np.ndarray, coef: np.ndarray, state
     trusted = np.r_[np.all(states.colmap[:3] >= 0, axis=0), False]
     phi = prob_.phi[:, inter]
     lv = []
+    grad = np.zeros((2, phi.shape[1]))  # mean gradient of the four levels along normalised x, y
     for d1_, d2_ in ((0, 0), (1, 0), (0, 1), (1, 1)):
         i = states.index(k + d1_, m + d2_)
         lv.append((np.sum(poly[:, i] * phi, axis=0), trusted[np.minimum(i, ns)] & (i < ns)))
+        c = poly[:, i]
+        grad += 0.25 * np.stack([c[1] + 2 * c[3] * phi[1] + c[4] * phi[2], c[2] + c[4] * phi[1] + 2 * c[5] * phi[2]])
     good = lv[0][1] & lv[1][1] & lv[2][1] & lv[3][1]
     if not good.any():
         return None
@@ -907,23 +933,33 @@ def _curvature_field(prob_: _Problem, theta: np.ndarray, coef: np.ndarray, state
     s1 = bmean(0.5 * (l10 - l00 + l11 - l01))
     s2 = bmean(0.5 * (l01 - l00 + l11 - l10))
     kb, mb = bmean(k[good].astype(float)), bmean(m[good].astype(float))
+    gx, gy = bmean(grad[0][good]), bmean(grad[1][good])
+    xb, yb = bmean(phi[1][good]), bmean(phi[2][good])
     w = cnt[big].astype(float)
     ratio = float(np.sum(w * s1 * s2) / np.sum(w * s2 * s2))
     if not np.isfinite(ratio) or ratio <= 0:
         return None
+    # the operating point also drifts with the gates: level gradient g'λ over the step −g'κ2 gives λ/κ2
+    h = (s1 + ratio * s2) / (2.0 * ratio)
+    gate = (-float(np.sum(w * gx * h) / np.sum(w * h * h)), -float(np.sum(w * gy * h) / np.sum(w * h * h)))
     t_b = -2.0 * d_b / (s1 + ratio * s2)
     # blocks where the curvature is too strong for the second-order expansion (near a peak's top)
     fine = np.isfinite(t_b) & (np.abs(t_b) * ratio <= 1.0)
     if fine.sum() < CURVATURE_MIN_BLOCKS:
         return None
-    t_b, kb, mb, w = t_b[fine], kb[fine], mb[fine], w[fine]
-    sb = ratio * (kb + 0.5) + mb + 0.5  # charge coordinate of the block centre
+    t_b, kb, mb, w, xb, yb = t_b[fine], kb[fine], mb[fine], w[fine], xb[fine], yb[fine]
+    # coordinate of the operating point (charge units) at the block's pixels
+    sb = ratio * (kb + 0.5) + mb + 0.5 - gate[0] * xb - gate[1] * yb
     s0 = float(np.average(sb, weights=w))
     nb = 3 if t_b.size >= CURVATURE_QUADRATIC_BLOCKS else 2 if t_b.size >= CURVATURE_LINEAR_BLOCKS else 1
+    # a sensor whose gate drift cancels its charge drift along the blocks sees them all at one
+    # operating point: the slope of T along u is then not measured (keep the terms the spread carries)
+    spread = float(np.ptp(sb))
+    nb = min(nb, 1 if spread < CURVATURE_MIN_SPREAD else 2 if spread < 2 * CURVATURE_MIN_SPREAD else 3)
     u = sb - s0
     sw = np.sqrt(w)
     sol = np.linalg.lstsq(np.stack([np.ones_like(u), u, u * u], 1)[:, :nb] * sw[:, None], t_b * sw, rcond=None)[0]
-    return _Tilt(sol, ratio, float(t_b.min()), float(t_b.max()), int(t_b.size), s0)
+    return _Tilt(sol, ratio, float(t_b.min()), float(t_b.max()), int(t_b.size), s0, gate)
 
 
 def _thermal(x: np.ndarray, y: np.ndarray, theta: np.ndarray,
@@ -976,7 +1012,7 @@ def _model_and_jacobian(
             return pred, None, outside
         pc = pk * (lin - pred[col])  # p_N (L_N − ⟨L⟩)
     else:
-        tw, t_n, dt_n, ds, dsc = states.tilt.factor(col, pk, k1, k2, p)
+        tw, t_n, dt_n, ds, dsc = states.tilt.factor(col, pk, k1, k2, p, phi)
         pred = np.bincount(col, weights=pk * tw * lin, minlength=p)
         if not jac:
             return pred, None, outside
