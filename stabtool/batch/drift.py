@@ -19,7 +19,7 @@ import itertools
 import json
 import math
 import os
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any, Sequence
@@ -407,41 +407,36 @@ class PreparedSweep:
     """A sweep of a series whose feature image was saved by the batch (``numpy.save``).
 
     ``source`` is the map file (the sweep's label, and what is loaded instead when the
-    feature file cannot be read or was made with another smoothing); the grid, time and
-    gates are those of its :class:`SweepFeature`.
+    feature file cannot be read or was made with another smoothing); ``header`` is its
+    :class:`SweepFeature` without the image (grid, time, gates, smoothing).
     """
 
     source: str
     feature_path: str
-    x: np.ndarray
-    y: np.ndarray
-    time: str | None
-    x_gate: str
-    y_gate: str
-    smooth_px: float
-    dx: float
-    dy: float
+    header: SweepFeature
 
     @classmethod
     def of(cls, source: str, feature_path: str, feat: SweepFeature) -> PreparedSweep:
         """The sweep ``source`` whose ``feat.img`` was saved to ``feature_path``."""
-        return cls(source, feature_path, feat.x, feat.y, feat.time, feat.x_gate, feat.y_gate, feat.smooth_px,
-                   feat.dx, feat.dy)
+        return cls(source, feature_path, replace(feat, img=np.empty((0, 0))))
+
+    @property
+    def time(self) -> str | None:
+        return self.header.time
 
 
 def _sweep(item: Any, ref_x: np.ndarray | None, ref_y: np.ndarray | None, *,
            smooth_px: float) -> tuple[_Prepared, np.ndarray, np.ndarray]:
     """A series item (DataArray, path or :class:`PreparedSweep`) prepared on the reference grid."""
     if isinstance(item, PreparedSweep):
-        if item.smooth_px == smooth_px:
+        h = item.header
+        if h.smooth_px == smooth_px:
             try:
                 img = np.load(item.feature_path, allow_pickle=False)
             except (OSError, ValueError):
                 img = None
-            if img is not None and img.shape == (item.y.size, item.x.size):
-                feat = SweepFeature(img, item.x, item.y, item.time, item.x_gate, item.y_gate, smooth_px,
-                                    item.dx, item.dy)
-                return _place(feat, ref_x, ref_y, label=item.source)
+            if img is not None and img.shape == (h.y.size, h.x.size):
+                return _place(replace(h, img=img), ref_x, ref_y, label=item.source)
         item = item.source
     da, label = _load(item)
     return _prepare(da, ref_x, ref_y, smooth_px=smooth_px, label=label)

@@ -29,6 +29,7 @@ from collections.abc import Mapping
 import numpy as np
 
 from ..quality import Quality
+from .uncertainty import _pct
 
 __all__ = ["SCALE_GOAL", "SCALE_SIGMAS", "scale_error_verdict"]
 
@@ -87,7 +88,7 @@ def scale_error_verdict(
         rel = abs(err / val) if np.isfinite(err) else np.inf
         if rel > lim:
             q = q.with_warning(
-                f"{name} = {val:.4g} ± {err:.2g} {unit} ({100 * rel:.1f} %): stated error above "
+                f"{name} = {val:.4g} ± {err:.2g} {unit} ({_pct(rel, lim)} %): stated error above "
                 f"{100 * lim:.1f} %, the {100 * goal:g} % goal is not {sigmas:g} σ"
             )
     return q

@@ -324,9 +324,7 @@ def _label_anchors(ax: Any, shown: list[dict], cs: Any, da: Any, *, boxes: list[
     half_ws = np.array([0.5 * (0.62 * len(f"({r['n1']},{r['n2']})") + 0.3) * fontsize * pt + 1.0 for r in shown])
     to_px = ax.transData.transform
     anchors = to_px(np.array(out))
-    ax_, ay_ = anchors[:, :1], anchors[:, 1:]
-    hits = ((ax_ + half_ws[:, None] > ext[:, 0]) & (ax_ - half_ws[:, None] < ext[:, 2])
-            & (ay_ + half_h > ext[:, 1]) & (ay_ - half_h < ext[:, 3])).any(axis=1)
+    hits = _overlaps_any(anchors[:, 0], anchors[:, 1], half_ws, half_h, ext)
     if not hits.any():
         return out
     frame = ax.bbox
@@ -341,8 +339,7 @@ def _label_anchors(ax: Any, shown: list[dict], cs: Any, da: Any, *, boxes: list[
         cx, cy = px_x[ix], py_y[iy]
         clear = ((cx - half_w >= frame.x0) & (cx + half_w <= frame.x1)
                  & (cy - half_h >= frame.y0) & (cy + half_h <= frame.y1))
-        for e in ext:
-            clear &= ~((cx + half_w > e[0]) & (cx - half_w < e[2]) & (cy + half_h > e[1]) & (cy - half_h < e[3]))
+        clear &= ~_overlaps_any(cx, cy, half_w, half_h, ext)
         if clear.sum() < max(min_pixels, 1):
             out[i] = None
             continue
@@ -351,6 +348,19 @@ def _label_anchors(ax: Any, shown: list[dict], cs: Any, da: Any, *, boxes: list[
         k = int(np.argmin((x[ix] - mx) ** 2 / np.ptp(x) ** 2 + (y[iy] - my) ** 2 / np.ptp(y) ** 2))
         out[i] = (1e3 * float(x[ix[k]]), 1e3 * float(y[iy[k]]))
     return out
+
+
+def _overlaps_any(cx: np.ndarray, cy: np.ndarray, half_w: Any, half_h: float, ext: np.ndarray) -> np.ndarray:
+    """Whether a box of half-size (``half_w``, ``half_h``) centred at each (cx, cy) overlaps any extent.
+
+    ``cx``, ``cy``, ``half_w``: shape (n,) (or ``half_w`` a scalar), display pixels; ``ext``:
+    (m, 4) rows ``x0, y0, x1, y1``. Returns bool, shape (n,).
+    """
+    cx, cy = np.asarray(cx, float)[:, None], np.asarray(cy, float)[:, None]
+    hw = np.asarray(half_w, float)
+    hw = hw[:, None] if hw.ndim else hw
+    return ((cx + hw > ext[:, 0]) & (cx - hw < ext[:, 2]) & (cy + half_h > ext[:, 1])
+            & (cy - half_h < ext[:, 3])).any(axis=1)
 
 
 _LEGEND_EXTENTS: dict = {}
