@@ -314,16 +314,24 @@ def records_table(records: Iterable[BatchRecord]) -> tuple[list[str], list[dict[
     rows : list of dict
         One per record.
     """
+    recs, columns = _sorted_with_columns(records)
+    return columns, [r.row() for r in recs]
+
+
+def _sorted_with_columns(records: Iterable[BatchRecord]) -> tuple[list[BatchRecord], list[str]]:
+    """Records in table order (input order, then file name) and the table's columns.
+
+    :data:`BASE_COLUMNS` first, then every other column in order of first appearance.
+    """
     recs = sorted(records, key=lambda r: (r.order, r.file))
-    rows = [r.row() for r in recs]
     columns = list(BASE_COLUMNS)
     seen = set(columns)
-    for row in rows:
-        for key in row:
+    for r in recs:
+        for key in r._row_keys():
             if key not in seen:
                 seen.add(key)
                 columns.append(key)
-    return columns, rows
+    return recs, columns
 
 
 def _cell(value: Any) -> str:
@@ -345,14 +353,7 @@ def write_csv(path: str | os.PathLike[str], records: Iterable[BatchRecord], *,
     kept there and reused while the columns stay the same, so a rebuild formats only
     the new records. The file is the same with or without it.
     """
-    recs = sorted(records, key=lambda r: (r.order, r.file))
-    columns = list(BASE_COLUMNS)
-    seen = set(columns)
-    for r in recs:
-        for key in r._row_keys():
-            if key not in seen:
-                seen.add(key)
-                columns.append(key)
+    recs, columns = _sorted_with_columns(records)
     if cache is None:
         cache = {}
     key_cols = tuple(columns)
