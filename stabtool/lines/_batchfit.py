@@ -271,6 +271,20 @@ def _constant_block(c: np.ndarray) -> np.ndarray:
 _C_KEYS = ("m", "mu", "muu", "my", "muy")
 
 
+def _half_tanh_and_f1mf(u, centre, w, *, t_out, q_out):
+    """``t = tanh((u − centre)/(2w))`` into ``t_out`` and ``F(1 − F) = (1 − t²)/4`` into ``q_out``.
+
+    ``F = (1 + t)/2`` is the Fermi step; both buffers are returned.
+    """
+    t = np.subtract(u, centre, out=t_out)
+    t *= 0.5 / w
+    np.tanh(t, out=t)
+    q = np.multiply(t, t, out=q_out)
+    q *= -0.25
+    q += 0.25  # F (1 − F)
+    return t, q
+
+
 def _shape_and_residual(out, pp, u, y, m, kind, tmp):
     """Line shape φ, ``dphi`` and the masked residual at ``pp`` (5, n) into ``out`` (3, k, n).
 
@@ -280,21 +294,11 @@ def _shape_and_residual(out, pp, u, y, m, kind, tmp):
     phi, dphi, r = out[0], out[1], out[2]
     w = np.exp(pp[4])
     if kind == "step":
-        t = np.subtract(u, pp[3], out=phi)
-        t *= 0.5 / w
-        np.tanh(t, out=t)
-        q = np.multiply(t, t, out=dphi)
-        q *= -0.25
-        q += 0.25  # F (1 − F)
+        t, _ = _half_tanh_and_f1mf(u, pp[3], w, t_out=phi, q_out=dphi)
         t *= 0.5
         t += 0.5  # F
     else:
-        t = np.subtract(u, pp[3], out=tmp)
-        t *= 0.5 / w
-        np.tanh(t, out=t)
-        q = np.multiply(t, t, out=phi)
-        q *= -0.25
-        q += 0.25  # F (1 − F)
+        t, q = _half_tanh_and_f1mf(u, pp[3], w, t_out=tmp, q_out=phi)
         np.multiply(q, -4.0, out=dphi)
         dphi *= t  # 4F(1−F)(1−2F) (times −4 and 4 are exact)
         phi *= 4.0  # 4F(1−F)
