@@ -115,7 +115,7 @@ def test_without_the_mask_the_same_map_is_biased(monkeypatch):
 
 
 def test_kept_medians_equal_numpy_median_of_the_kept_entries():
-    from stabtool.preprocess.background import _kept_medians
+    from stabtool.preprocess._nan import kept_row_medians as _kept_medians
 
     rng = np.random.default_rng(0)
     for n in (7, 8, 51):  # odd and even rows, every parity of kept / left-out counts

@@ -585,22 +585,19 @@ def _row_nanmedian(a: np.ndarray) -> np.ndarray:
     """``np.nanmedian(a, axis=1)`` of a 2-D array, bit for bit, without a Python loop over rows.
 
     NumPy takes the median of long rows one row at a time (``apply_along_axis``);
-    here every row is sorted once (NaNs last) and the middle value, or the mean
-    ``(lo + hi) / 2`` of the two middle values, is read off the finite count
-    (all-NaN rows give NaN). Same arithmetic as :func:`numpy.median`.
+    here one selection per row does it
+    (:func:`stabtool.preprocess._nan.kept_row_medians` of the non-NaN entries;
+    all-NaN rows give NaN).
     """
+    from ..preprocess._nan import kept_row_medians
+
     a = np.asarray(a, float)
     k = a.shape[0]
     if a.ndim != 2 or a.shape[1] == 0:
         return np.full(k, np.nan)
-    srt = np.sort(a, axis=1)  # NaNs sort to the end
-    n = np.count_nonzero(~np.isnan(a), axis=1)
-    rows = np.arange(k)
-    hi = np.minimum(n // 2, a.shape[1] - 1)
-    lo = np.maximum((n - 1) // 2, 0)
-    with np.errstate(invalid="ignore"):
-        out = np.where(n % 2 == 1, srt[rows, hi], (srt[rows, lo] + srt[rows, hi]) / 2.0)
-    return np.where(n > 0, out, np.nan)
+    keep = ~np.isnan(a)
+    cnt = np.count_nonzero(keep, axis=1)
+    return np.where(cnt > 0, kept_row_medians(a, keep, cnt), np.nan)
 
 
 def _batch_model(x, p):

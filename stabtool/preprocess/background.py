@@ -16,7 +16,7 @@ import numpy as np
 import xarray as xr
 
 from ._checks import as_map_array
-from ._nan import nan_gaussian
+from ._nan import kept_row_medians, nan_gaussian
 
 __all__ = ["RowOffsetTest", "correct_row_offsets", "default_background_sigma", "remove_background", "row_offset_test"]
 
@@ -156,7 +156,7 @@ def _masked_row_offsets(values: np.ndarray, exclude: np.ndarray, noise: float,
         return plain
     s2 = np.pi / 2 * 2.0 * noise**2  # n × variance of a median of n differences
     with np.errstate(all="ignore"):
-        med = _kept_medians(d, keep, cnt)
+        med = kept_row_medians(d, keep, cnt)
         med_plain = np.diff(plain)
         var_c = np.where(good, s2 / np.maximum(cnt, 1), 0.0)
         var_d = np.where(good, s2 * np.maximum(1.0 / np.maximum(cnt, 1) - 1.0 / np.maximum(n_fin, 1), 0.0), 0.0)
@@ -183,29 +183,6 @@ def _masked_row_offsets(values: np.ndarray, exclude: np.ndarray, noise: float,
     steps[1:] = np.nan_to_num(med)
     off = np.cumsum(steps)
     return off - np.median(off)
-
-
-def _kept_medians(d: np.ndarray, keep: np.ndarray, cnt: np.ndarray) -> np.ndarray:
-    """Median of the ``keep`` entries of each row of ``d`` (``cnt`` of them; garbage where none).
-
-    One selection instead of a sort: of the e left-out entries of a row,
-    ⌊e/2⌋ become −∞ and the rest +∞, so the kept order statistics
-    ``(c−1)//2`` and ``c//2`` land on the full row's ``n//2 − 1`` or ``n//2``
-    (n = c + e, checked for every parity of c and e).
-    """
-    n = d.shape[1]
-    out = np.where(keep, d, np.inf)
-    drop = ~keep
-    low = drop & (np.cumsum(drop, axis=1) <= ((n - cnt) // 2)[:, None])
-    out[low] = -np.inf
-    h = n // 2
-    out.partition((max(h - 1, 0), h), axis=1)
-    f = (n - cnt) // 2
-    r = np.arange(d.shape[0])
-    lo = np.clip(f + (cnt - 1) // 2, 0, n - 1)
-    hi = np.clip(f + cnt // 2, 0, n - 1)
-    with np.errstate(invalid="ignore"):  # rows with nothing kept: −∞ + ∞
-        return (out[r, lo] + out[r, hi]) / 2
 
 
 def correct_row_offsets(da: xr.DataArray) -> xr.DataArray:
