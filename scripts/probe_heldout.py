@@ -77,13 +77,18 @@ class ProbeMap:
     meta: dict = field(default_factory=dict)
 
 
-def _device(r: np.random.Generator):
+def _device(r: np.random.Generator, mutual_fraction: tuple[float, float] | None = None):
     from stabtool.simulate.device import Device
 
     cg = r.uniform(2, 30, 2)  # aF
     cx = cg[::-1] * r.uniform(0.05, 0.5, 2)
     cm = r.uniform(0.05, 0.4) * min(cg) * 2
-    ctot = cg + cx + cm + r.uniform(5, 120, 2)
+    rest = r.uniform(5, 120, 2)
+    if mutual_fraction is not None:
+        # strongly coupled dots: Cm / C_total of the larger dot (= E_Cm/E_C of the smaller) drawn in range
+        f = r.uniform(*mutual_fraction)
+        cm = f * float(np.max(cg + cx + rest)) / (1 - f)
+    ctot = cg + cx + cm + rest
     return Device(cdg_aF=[[cg[0], cx[0]], [cx[1], cg[1]]], cdd_aF=[[ctot[0], -cm], [-cm, ctot[1]]],
                   gate_names=["GX", "GY"], dot_names=["L", "R"])
 
@@ -114,7 +119,8 @@ def _transfer(kind: str, d: np.ndarray, phi: float) -> np.ndarray:
 
 
 def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[str, ...] = SENSORS,
-             noise: tuple[str, ...] | None = None, tunnel_coupling_ueV: float = 0.0) -> ProbeMap:
+             noise: tuple[str, ...] | None = None, tunnel_coupling_ueV: float = 0.0,
+             mutual_fraction: tuple[float, float] | None = None) -> ProbeMap:
     """Build held-out map ``seed`` (deterministic in all arguments).
 
     Parameters
@@ -129,12 +135,15 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
         None draws each with probability ½.
     tunnel_coupling_ueV : float
         Interdot tunnel coupling of the rendered truth (0 = none).
+    mutual_fraction : (float, float), optional
+        Draw ``Cm`` so that ``Cm / C_total`` of the larger dot (``E_Cm/E_C``
+        of the smaller one) lies in this range: strongly coupled dots.
     """
     from stabtool.simulate import simulate_map
     from stabtool.simulate.quick import double_dot_window
 
     r = np.random.default_rng([seed, 7919])
-    dev = _device(r)
+    dev = _device(r, mutual_fraction)
     xr_, yr_ = double_dot_window(dev, x_gate="GX", y_gate="GY", electrons=r.uniform(3.5, 6))
     T = float(r.uniform(0.03, 0.25))
     ny, nx = (int(v) for v in r.integers(size[0], size[1] + 1, 2))
@@ -237,6 +246,8 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--noise", default=None,
                    help=f"extra noise on every map, subset of {','.join(NOISES)} or 'none' (default: each with p=½)")
     p.add_argument("--tunnel-ueV", type=float, default=0.0, help="interdot tunnel coupling of the truth (µeV)")
+    p.add_argument("--mutual", default=None,
+                   help="'A:B': draw Cm / C_total of the larger dot in [A, B] (strongly coupled dots)")
     p.add_argument("--out", default=None, help="folder for one PNG per map (the analysis plot)")
     p.add_argument("--verbose", action="store_true", help="print every warning of every map")
     a = p.parse_args(argv)
@@ -259,7 +270,8 @@ def main(argv: list[str] | None = None) -> int:
     print(f"{'seed':>4} {'sensor':8} {'noise':26} {'snr':>4} {'shape':>9}  ok    vg      cdg     la      ec    "
           f"  t/s  first doubts (warnings that clear ok are marked '!')")
     for s in _parse_seeds(a.seeds):
-        pm = make_map(s, size=(lo, hi), sensors=sensors, noise=noise, tunnel_coupling_ueV=a.tunnel_ueV)
+        pm = make_map(s, size=(lo, hi), sensors=sensors, noise=noise, tunnel_coupling_ueV=a.tunnel_ueV,
+                      mutual_fraction=tuple(float(v) for v in a.mutual.split(":")) if a.mutual else None)
         t0 = time.perf_counter()
         try:
             res = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data)
@@ -272,8 +284,10 @@ def main(argv: list[str] | None = None) -> int:
         rows.append(ev)
         ws = list(j["quality"]["warnings"])
         flags = getattr(res.quality, "doubtful_flags", None) if res is not None else None
-        if flags and len(flags) == len(ws):
-            # what blocks ok first (marked "!"), then the notes
+        if flags and len(flags) == len(res.quality.warnings):
+            # what blocks ok first (marked "!"), then the notes; the flags follow the verdict's own
+            # order, not the JSON's (which already lists the doubts first)
+            ws = list(res.quality.warnings)
             ws = ["! " + w for w, f in zip(ws, flags) if f] + [w for w, f in zip(ws, flags) if not f]
         doubt = ws if a.verbose else [w for w in ws if w.startswith("! ")][:2]
         m = pm.meta
