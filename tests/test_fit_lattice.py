@@ -89,3 +89,64 @@ def test_merge_fragments_groups_as_specified_and_weights_members():
             assert out.pos[g] == pytest.approx(np.sum(w * seg.pos[m]), rel=1e-12)
             assert out.pos_err[g] == pytest.approx(np.sqrt(np.sum(w**2 * seg.pos_err[m] ** 2)), rel=1e-12)
             assert (out.lo[g], out.hi[g]) == (seg.lo[m].min(), seg.hi[m].max())
+
+
+def _dot2_segments(dv2, d2, n1s, n2s, c2=0.003):
+    """Dot2 lines at V'2 = ΔV2 (N2 − ½) + δ2 N1 + c2 (van der Wiel et al., RMP 75, 1 (2003)), exact."""
+    n1, n2 = (a.ravel() for a in np.meshgrid(n1s, n2s))
+    pos = dv2 * (n2 - 0.5) + d2 * n1 + c2
+    k = pos.size
+    seg = FamilySegments(pos=pos, pos_err=np.full(k, 1e-6), lo=n1 * 0.01, hi=n1 * 0.01 + 0.008, lever=np.zeros(k))
+    return seg, np.column_stack([n1, n2])
+
+
+def test_a_mutual_shift_slipped_by_one_addition_voltage_is_folded_back():
+    from stabtool.fit.lattice import _fit_family, _fold_mutual
+
+    dv2, d2 = 0.006, 0.00012  # weakly coupled dots: δ2/ΔV2 = E_Cm/E_C2 = 0.02
+    seg, labels = _dot2_segments(dv2, d2, np.arange(4), np.arange(3))
+    slipped = labels.copy()
+    slipped[:, 1] -= slipped[:, 0]  # one electron of dot2 lost per dot1 band: δ2 reads as ΔV2 + δ2
+    fit = _fit_family(seg, slipped, 1, 0.0)
+    assert fit.params[1] == pytest.approx(dv2 + d2, rel=1e-6)  # the positions alone cannot tell
+    fits, labs = _fold_mutual([None, fit], [None, slipped], (seg, seg), 0.0)
+    assert fits[1].params[1] == pytest.approx(d2, rel=1e-6)
+    assert fits[1].params[0] == pytest.approx(dv2, rel=1e-9)
+    np.testing.assert_array_equal(labs[1], labels)
+
+
+def test_a_mutual_shift_below_half_the_addition_voltage_is_kept():
+    from stabtool.fit.lattice import _fit_family, _fold_mutual
+
+    dv2, d2 = 0.006, 0.0024  # strongly coupled: E_Cm/E_C2 = 0.4 (common practice, no source: < ½)
+    seg, labels = _dot2_segments(dv2, d2, np.arange(4), np.arange(3))
+    fit = _fit_family(seg, labels, 1, 0.0)
+    fits, labs = _fold_mutual([None, fit], [None, labels], (seg, seg), 0.0)
+    assert fits[1] is fit and labs[1] is labels
+
+
+@pytest.mark.parametrize("cm", [25.0, 30.0, 34.0])
+def test_strongly_coupled_dots_give_the_exact_cell(cm):
+    # E_Cm/E_C = Cm/C = 0.31–0.43: the dot1 segments of neighbouring charge bands overlap in extent,
+    # so band pairs add position differences between the multiples of ΔV1; the cell stays exact
+    t = truth_from_capacitances(**{**WORKED, "cm": cm})
+    assert 0.3 < t.mutual_V[0] / t.addition_V[0] < 0.45
+    fit = fit_diagram(honeycomb_detection(t, x=AXIS, y=AXIS, offset_V=(0.01, 0.012)))
+    assert fit.quality.ok, fit.quality.warnings
+    np.testing.assert_allclose(fit.addition_V, t.addition_V, rtol=1e-9)
+    np.testing.assert_allclose(fit.mutual_V, t.mutual_V, rtol=1e-9)
+    np.testing.assert_allclose(fit.cdg_aF, t.cdg, rtol=1e-9)
+
+
+def test_a_mutual_shift_above_half_the_addition_voltage_is_reported_doubtful():
+    # δ_i/ΔV_i = E_Cm/E_Ci (van der Wiel et al., RMP 75, 1 (2003)); at 0.6 the positions cannot tell
+    # it from a labelling slipped by one electron per band (δ − ΔV = −0.4 ΔV): the fit folds δ into
+    # (−ΔV/2, ΔV/2] and a negative δ, unphysical, makes the result doubtful instead of wrong
+    t = truth_from_capacitances(**{**WORKED, "cm": 48.0})
+    np.testing.assert_allclose(t.mutual_V / t.addition_V, 0.6)
+    fit = fit_diagram(honeycomb_detection(t, x=AXIS, y=AXIS, offset_V=(0.01, 0.012)))
+    assert not fit.quality.ok
+    assert any("is negative (unphysical)" in w for w in fit.quality.warnings)
+    # the weakly coupled honeycomb of the same gates is not flagged
+    good = fit_diagram(honeycomb_detection(truth_from_capacitances(**WORKED), x=AXIS, y=AXIS, offset_V=(0.01, 0.012)))
+    assert good.quality.ok and not any("negative" in w for w in good.quality.warnings)

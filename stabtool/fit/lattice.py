@@ -232,6 +232,12 @@ def _band_step(fam: FamilySegments) -> np.ndarray | None:
     cand = np.nonzero(excess >= 0.85 * best)[0]
     period = float(grid[cand[-1]])
     k1 = np.abs(dp_a - period) < 0.15 * period
+    for m in (2, 3):
+        # a sub-multiple can win the comb when pairs of neighbouring bands (strongly coupled dots:
+        # their extents overlap too) add differences between the multiples of the true step
+        if np.any(k1):
+            break
+        k1 = np.abs(dp_a - m * period) < 0.15 * m * period
     if not np.any(k1):
         return None
     return np.array([median(dp_a[k1]), median(dm_a[k1])])
@@ -336,6 +342,39 @@ def _fit_family(fam: FamilySegments, labels: np.ndarray, which: int, err_floor: 
     return _FamilyFit(params, cov3, g3, resid, chi2, resolved)
 
 
+def _fold_mutual(
+    fits: list[_FamilyFit | None], labels: list[np.ndarray], fams: tuple[FamilySegments, FamilySegments],
+    err_floor_V: float,
+) -> tuple[list[_FamilyFit | None], list[np.ndarray]]:
+    """Relabel a family whose mutual shift left ``(−ΔV/2, ΔV/2]``, and refit it.
+
+    The position model ``ΔV (N − ½) + δ N_other + c`` is unchanged by
+    ``N → N + k N_other, δ → δ − k ΔV``: the positions alone fix δ only modulo
+    ΔV. In the constant-interaction model ``δ_i/ΔV_i = E_Cm/E_Ci`` lies in
+    ``[0, 1)`` and well below ½ for two dots (``Cm`` a fraction of a dot's
+    total capacitance); a δ near ΔV is the labelling slipping by one electron
+    per band of the other dot, which turns Cdg of that dot nonsensical
+    (common practice, no source). A folded δ that comes out significantly
+    negative is left to the caller's consistency checks.
+    """
+    out_fits, out_labels = list(fits), list(labels)
+    for i, fit in enumerate(fits):
+        if fit is None or not fit.mutual_resolved:
+            continue
+        dv, dm = fit.params[0], fit.params[1]
+        if not (np.isfinite(dv) and np.isfinite(dm) and dv > 0):
+            continue
+        k = int(np.floor(dm / dv + 0.5))  # the branch with δ − k ΔV in [−ΔV/2, ΔV/2)
+        if k == 0:
+            continue
+        lab = labels[i].copy()
+        lab[:, i] += k * lab[:, 1 - i]
+        refit = _fit_family(fams[i], lab, i, err_floor_V)
+        if refit is not None:
+            out_fits[i], out_labels[i] = refit, lab
+    return out_fits, out_labels
+
+
 def _cells(fam: FamilySegments, labels: np.ndarray, which: int) -> tuple[np.ndarray, np.ndarray]:
     lookup = {(int(a), int(b)): fam.pos[k] for k, (a, b) in enumerate(labels)}
     add, mut = [], []
@@ -389,13 +428,76 @@ def fit_lattice(
         return _failed("no two dot1 lines bound the same charge band: ΔV1 undetermined", k1, k2)
     if b is None:
         return _failed("no two dot2 lines bound the same charge band: ΔV2 undetermined", k1, k2)
+    first = _lattice_from_steps(dot1, dot2, a, b, interdot_extent=interdot_extent, err_floor_V=err_floor_V,
+                                n_iter=n_iter)
+    miss = _misfit(first)
+    if miss <= CONSISTENT_MISFIT:
+        return first
+    # strongly coupled dots: the band steps may be other vectors of the same lattice; an alternative
+    # is taken only when it explains every line (the one that does best)
+    best, best_miss = first, CONSISTENT_MISFIT
+    for a2, b2 in _alternative_steps(a, b):
+        alt = _lattice_from_steps(dot1, dot2, a2, b2, interdot_extent=interdot_extent, err_floor_V=err_floor_V,
+                                  n_iter=n_iter)
+        m = _misfit(alt)
+        if m <= best_miss:
+            best, best_miss = alt, m
+    return best
+
+
+#: A lattice fit with position residuals and cell-to-cell spreads below this fraction of the
+#: addition voltage (and no negative mutual shift) is taken as it is.
+CONSISTENT_MISFIT = 0.1
+
+
+def _misfit(lat: LatticeFit) -> float:
+    """Largest position residual or per-cell spread in units of ΔV (inf for a failed or unphysical cell)."""
+    if not lat.ok or not np.all(lat.addition_V > 0):
+        return float("inf")
+    dv = lat.addition_V
+    if np.any(lat.mutual_V < -0.05 * dv):  # δ_i/ΔV_i = E_Cm/E_Ci ≥ 0
+        return float("inf")
+    terms = [np.max(np.abs(r)) / dv[i] for i, r in enumerate((lat.residuals1, lat.residuals2)) if r.size]
+    terms += [sp / dv[i] for i, sp in enumerate(lat.addition_spread_V) if np.isfinite(sp)]
+    return float(max(terms)) if terms else 0.0
+
+
+def _alternative_steps(a: np.ndarray, b: np.ndarray) -> list[tuple[np.ndarray, np.ndarray]]:
+    """Other candidate band steps in the lattice spanned by the two found ones.
+
+    ``a = (ΔV1, δ2)`` is the dot1 step ``A`` in ``(V'1, V'2)``; ``b = (ΔV2, δ1)``
+    the dot2 step ``B = (δ1, ΔV2)``. When the dots are strongly coupled, pairs
+    of neighbouring bands overlap and a band step can come out as ``k B − j A``:
+    the candidates are ``(B + j A)/k`` and ``(A + j B)/k`` (``k`` = 1, 2) whose
+    mutual shift is physical, ``0 ≤ δ/ΔV < ½`` (a little below 0 allowed).
+    """
+    A = np.array([a[0], a[1]], float)
+    B = np.array([b[1], b[0]], float)
+    out = []
+    combos = [(1, j) for j in (-2, -1, 1, 2)] + [(2, j) for j in (-1, 1)]
+    for k, j in combos:
+        Bn = (B + j * A) / k  # new dot2 step, (δ1, ΔV2)
+        if Bn[1] > 0 and A[0] > 0 and -0.05 * A[0] <= Bn[0] < 0.5 * A[0]:
+            out.append((a, np.array([Bn[1], Bn[0]])))
+        An = (A + j * B) / k  # new dot1 step, (ΔV1, δ2)
+        if An[0] > 0 and B[1] > 0 and -0.05 * B[1] <= An[1] < 0.5 * B[1]:
+            out.append((np.array([An[0], An[1]]), b))
+    return out
+
+
+def _lattice_from_steps(
+    dot1: FamilySegments, dot2: FamilySegments, a: np.ndarray, b: np.ndarray, *,
+    interdot_extent: tuple[float, float] | None, err_floor_V: float, n_iter: int,
+) -> LatticeFit:
+    """Labels and cell from the band steps ``a = (ΔV1, δ2)``, ``b = (ΔV2, δ1)`` as the first cell."""
+    k1, k2 = len(dot1), len(dot2)
     dv = np.array([a[0], b[0]])
     dm = np.array([b[1], a[1]])
     if interdot_extent is not None:
         for i in range(2):
             if not np.isfinite(dm[i]) or abs(dm[i]) < 1e-12:
                 dm[i] = interdot_extent[i]
-    dm = np.where(np.abs(dm) < 0.45 * dv, dm, 0.1 * dv)
+    dm = np.where(np.abs(dm) < 0.5 * dv, dm, 0.1 * dv)  # δ/ΔV = E_Cm/E_C: below ½ (see _fold_mutual)
     # label origin: the longest dot1 line; lengths equal to 1e-9 relative (rounding noise of
     # their computation) count as equal and the first such line wins (deterministic choice)
     ext = np.asarray(dot1.hi - dot1.lo, float)
@@ -420,6 +522,7 @@ def fit_lattice(
     if fits[0] is None or fits[1] is None:
         bad = "dot1" if fits[0] is None else "dot2"
         return _failed(f"{bad} lines span fewer than two transitions of their dot: cell undetermined", k1, k2)
+    fits, labels = _fold_mutual(fits, labels, (dot1, dot2), err_floor_V)
     f1, f2 = fits
     assert f1 is not None and f2 is not None
     mutual = np.array([f1.params[1], f2.params[1]])

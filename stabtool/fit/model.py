@@ -468,6 +468,14 @@ def _fit_once(
         q = q.with_warning("non-positive addition voltage: line labelling failed")
     if np.any(np.abs(mutual) >= lat.addition_V):
         q = q.with_warning("mutual shift larger than the addition voltage: inconsistent lattice")
+    for i in range(2):
+        # δ_i/ΔV_i = E_Cm/E_Ci ≥ 0 in the constant-interaction model; the lattice fit keeps δ in
+        # (−ΔV/2, ΔV/2], so a significantly negative δ is a labelling it cannot settle
+        if mutual[i] < -MUTUAL_SIGMAS * merr[i]:
+            q = q.with_warning(
+                f"mutual shift δ{i + 1} = {mutual[i] * 1e3:.3g} ± {merr[i] * 1e3:.2g} mV is negative "
+                "(unphysical): the charge labelling of the lines is ambiguous"
+            )
     # the checks that read only the stated errors (ΔV ≤ 5 %, Cdg ≤ MAX_CDG_REL_ERROR, M ≤ MAX_VG_ERROR)
     # are made by error_verdict below, with messages that print enough digits
     result = DiagramFit(
