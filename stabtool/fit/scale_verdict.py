@@ -4,7 +4,7 @@ An ok result promises its lever arms and charging energies within the 5 %
 goal of the project. A number whose own stated error is a large fraction of
 that goal cannot keep the promise, however good its central value looks:
 then the verdict is doubtful ("never report ok when unsure"), as the
-virtual-gate matrix of a clean map must have its bound at 3 stated σ
+virtual-gate matrix of a clean map must have its bound at 2 stated σ
 (:data:`stabtool.analysis.CLEAN_VG_SIGMAS`).
 
 Seen on a held-out map (Gaussian sensor peak, row random walk, SNR 60):
