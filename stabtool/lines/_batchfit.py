@@ -16,7 +16,8 @@ Marquardt 1963, doi:10.1137/0111030) on all profiles in parallel.
 Implementation: samples are stored as (k, n) arrays (profile index last, so
 every reduction runs over the short sample axis with the long profile axis
 vectorised); the normal equations are built from the analytic Jacobian, one
-fused product-and-sum (``einsum``) per distinct entry, and solved by Gaussian
+fused product-and-sum (``einsum``) per distinct entry (for a few hundred
+profiles or fewer, one for all entries), and solved by Gaussian
 elimination written out over the whole batch (the 3×3 and 5×5 systems are
 symmetric positive definite, so no pivoting is needed). A singular system
 makes only its own profile fail. The residual and line shape of each accepted
@@ -147,17 +148,21 @@ def _grid_start(uT, yT, mT, c0, kind):
         t = len(grid)
         sums = np.einsum("tk,kn->tn", np.concatenate([phis, phis * u1, phis * phis]), mT)
         spy = np.einsum("tk,kn->tn", phis, yT)
-        # all trials at once (t, n); the first of the lowest finite residual sums wins
-        a, b, h, ssr = _project(sums[:t], sums[t : 2 * t], sums[2 * t :], spy, base, yy)
+        # all trials at once (t, n); the first of the lowest finite residual sums wins (the
+        # baseline only for the winners: the same numbers, elementwise)
+        sp, sup = sums[:t], sums[t : 2 * t]
+        h, ssr = _project_height(sp, sup, sums[2 * t :], spy, base, yy)
         ssr = np.where(np.isfinite(ssr), ssr, np.inf)
         k = np.argmin(ssr, axis=0)
         cols = np.arange(n)
-        won = np.isfinite(ssr[k, cols])
+        h, ssr = h[k, cols], ssr[k, cols]
+        won = np.isfinite(ssr)
+        a, b = _project_baseline(h, sp[k, cols], sup[k, cols], base)
         gc = np.array([c for c, _ in grid])
         gw = np.array([np.log(w0) for _, w0 in grid])
         best[:] = np.nan
         best[5] = np.inf
-        np.copyto(best, np.stack([a[k, cols], b[k, cols], h[k, cols], gc[k], gw[k], ssr[k, cols]]), where=won)
+        np.copyto(best, np.stack([a, b, h, gc[k], gw[k], ssr]), where=won)
     else:
         for c, w0 in grid:
             _grid_trial(best, _grid_shape(uT, c, w0, kind), c, w0, uT, yT, mT, base, yy)
@@ -179,15 +184,27 @@ def _project(sp, sup, spp, spy, base, yy):
 
     φ and y with the baseline projected out: ``h = ⟨φ', y'⟩ / ⟨φ', φ'⟩``.
     """
+    h, ssr = _project_height(sp, sup, spp, spy, base, yy)
+    a, b = _project_baseline(h, sp, sup, base)
+    return a, b, h, ssr
+
+
+def _project_height(sp, sup, spp, spy, base, yy):
+    """The height ``h`` and SSR of :func:`_project`."""
     bi00, bi01, bi11, my, muy = base
     q0, q1 = bi00 * sp + bi01 * sup, bi01 * sp + bi11 * sup  # B⁻¹ (Σφ, Σuφ)
     spp_r = spp - (sp * q0 + sup * q1)
     spy_r = spy - (my * q0 + muy * q1)
     h = spy_r / spp_r
-    ssr = yy - spy_r * h
+    return h, yy - spy_r * h
+
+
+def _project_baseline(h, sp, sup, base):
+    """The baseline ``(a, b)`` of :func:`_project` for the height ``h``."""
+    bi00, bi01, bi11, my, muy = base
     a = bi00 * (my - h * sp) + bi01 * (muy - h * sup)
     b = bi01 * (my - h * sp) + bi11 * (muy - h * sup)
-    return a, b, h, ssr
+    return a, b
 
 
 def _grid_trial(best, phi, c, w0, uT, yT, mT, base, yy):
@@ -243,7 +260,7 @@ class _Active:
         self.cur = np.empty_like(self.data)
         self.trial = np.empty_like(self.data)
         self.tmp = np.empty_like(yT)
-        self.jtj0 = _constant_block(self.c)
+        self.design = _design_buffer(self.data)
         _shape_and_residual(self.cur, self.p, self.u, yT, mT, kind, self.tmp)
 
     def keep(self, sel):
@@ -256,15 +273,19 @@ class _Active:
         if not self.shared_u:
             self.u = np.compress(sel, self.u, axis=1)
         self.p, self.ssr, self.lam, self.c = self.p[:, sel], self.ssr[sel], self.lam[sel], self.c[:, sel]
-        self.jtj0 = _constant_block(self.c)
+        self.design = _design_buffer(self.data)
 
 
-def _constant_block(c: np.ndarray) -> np.ndarray:
-    """``JᵀJ`` (5, 5, n) with its parameter-free entries (baseline a, b) set from the sums ``c``; the rest 0."""
-    out = np.zeros((5, 5, c.shape[1]))
-    out[0, 0], out[0, 1], out[1, 1] = c[0], c[1], c[2]
-    out[1, 0] = out[0, 1]
-    return out
+def _design_buffer(data: np.ndarray) -> np.ndarray | None:
+    """(6, k, n) buffer ``m, m u, J₀, J₁, J₂, r`` of the fused normal equations, ``m, m u`` filled in.
+
+    None for more than ``FUSED_MAX_PROFILES`` profiles (they take the separate sums).
+    """
+    if data.shape[2] > FUSED_MAX_PROFILES:
+        return None
+    X = np.empty((6,) + data.shape[1:])
+    X[:2] = data[1:]
+    return X
 
 
 #: order of the parameter-free sums in ``_Active.c``
@@ -324,18 +345,26 @@ def _fit_batch(u, y, mask, kind, halfwidth, n_iter) -> BatchFit:
     p = p[:5].copy()
     act = np.arange(n)
     frz = np.zeros(n, bool)  # active profiles already converged, left out at the next compaction
+    nf = 0
     lo_w, hi_w = np.log(0.05), np.log(4 * halfwidth)
     log_sharp = np.log(SHARP_W)
     a = _Active(uT, yT, mT, c0, p, ssr, kind)
     for _ in range(n_iter):
         if act.size == 0:
             break
-        A, g = _normal_equations_active(a)
+        A, g, diag = _normal_equations_active(a)  # (diag: the diagonal of each system, a (5, n_act) view)
         la = a.lam
-        diag = A.reshape(25, -1)[::6]  # the diagonal of each system, a (5, n_act) view
         D = diag + 1e-12
         diag += la * D
-        step = _solve_vector(A, g)
+        if nf and act.size <= COMPACT_MIN_PROFILES:
+            # a small batch keeps its converged profiles until all have converged (see below);
+            # their steps are never used, so only the others' systems are solved (each system
+            # is solved on its own: the same numbers)
+            live = np.flatnonzero(~frz)
+            step = np.zeros((5, act.size))
+            step[:, live] = _solve_vector(A[:, :, live], g[:, live])
+        else:
+            step = _solve_vector(A, g)
         trial = a.p + step
         np.minimum(np.maximum(trial[4], lo_w, out=trial[4]), hi_w, out=trial[4])  # (np.clip, cheaper to call)
         _shape_and_residual(a.trial, trial, a.u, a.data[0], a.data[1], kind, a.tmp)
@@ -372,6 +401,7 @@ def _fit_batch(u, y, mask, kind, halfwidth, n_iter) -> BatchFit:
             act = act[keep]
             a.keep(keep)
             frz = np.zeros(act.size, bool)
+            nf = 0
     if act.size:
         p[:, act] = a.p
         ssr[act] = a.ssr
@@ -398,35 +428,33 @@ def _normal_equations_active(a: _Active):
 
     For up to ``FUSED_MAX_PROFILES`` profiles the same sums with fewer calls
     (the late iterations run on a few dozen profiles, where each call's
-    overhead is the cost): the three parameter-dependent Jacobian columns
-    ``J`` are summed against ``m``, ``m u`` and the residual in three
-    contractions and against themselves in one (all nine products); every
-    entry is the same sequential sum over the samples. More profiles take
-    :func:`_normal_equations` itself (fewer products).
+    overhead is the cost): the columns ``m, m u, J₀, J₁, J₂`` and the
+    residual, stacked in ``a.design``, are summed against each other in one
+    contraction (5 × 6 products; ``Σ m·m = Σ m`` and ``Σ (m u)² = Σ m u²``
+    as the mask is 0/1); every entry is the same sequential sum over the
+    samples. More profiles take :func:`_normal_equations` itself (fewer
+    products). Returns ``(JᵀJ, Jᵀr, diagonal)``, the last a writable
+    (5, n) view of the diagonal of ``JᵀJ``.
     """
     y, m, mu = a.data
     phi, dphi, r = a.cur
     pp = a.p
     w = np.exp(pp[4])
-    J = np.empty((3,) + y.shape)
+    X = a.design
+    J = np.empty((3,) + y.shape) if X is None else X[2:5]
     np.multiply(m, phi, out=J[0])
     np.multiply(m, dphi, out=J[1])
     J[1] *= -(pp[2] / w)  # ∂/∂u0 = −(h/w) m ∂φ
     np.subtract(a.u, pp[3], out=J[2])
     J[2] *= J[1]  # ∂/∂log w = (u − u0) ∂/∂u0
-    if y.shape[1] > FUSED_MAX_PROFILES:
+    if X is None:
         # many profiles: the separate sums (fewer products; the calls' overhead is small here)
-        return _normal_equations(pp, a.u, y, m, "", {"m": a.c[0], "mu": a.c[1], "muu": a.c[2]}, phi, dphi,
+        A, g = _normal_equations(pp, a.u, y, m, "", {"m": a.c[0], "mu": a.c[1], "muu": a.c[2]}, phi, dphi,
                                  mu=mu, r=r, jacobian=J)
-    JTJ = a.jtj0.copy()
-    side = np.einsum("ikn,jkn->ijn", J, a.data[1:])  # Σ J_i m, Σ J_i m u
-    JTJ[2:, :2] = side
-    JTJ[:2, 2:] = side.transpose(1, 0, 2)
-    JTJ[2:, 2:] = np.einsum("ikn,jkn->ijn", J, J)
-    g = np.empty((5, y.shape[1]))
-    np.einsum("jkn,kn->jn", a.data[1:], r, out=g[:2])
-    np.einsum("ikn,kn->in", J, r, out=g[2:])
-    return JTJ, g
+        return A, g, A.reshape(25, -1)[::6]
+    X[5] = r
+    M = np.einsum("ikn,jkn->ijn", X[:5], X)  # (5, 6, n): JᵀJ and Jᵀr
+    return M[:, :5], M[:, 5], M.reshape(30, -1)[::7]
 
 
 #: Active profiles up to which the normal equations are built in a few fused contractions.

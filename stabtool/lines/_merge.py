@@ -95,17 +95,25 @@ def drop_duplicates(lines: list, px_scale: tuple[float, float], *, max_distance_
         # 9 sample points of every line i, projected on every line j
         P = A[:, None, :] + ts[None, :, None] * U[:, None, :]  # (i, 9, 2)
         rel = P[:, None, :, :] - A[None, :, None, :]  # (i, j, 9, 2)
-        tt = (rel * UU[None, :, None, :]).sum(-1)
-        dist = np.abs(rel[..., 0] * -UU[None, :, None, 1] + rel[..., 1] * UU[None, :, None, 0])
+        rx, ry = rel[..., 0], rel[..., 1]
+        ux_, uy_ = UU[None, :, None, 0], UU[None, :, None, 1]
+        tt = rx * ux_ + ry * uy_  # (the sum over the two components)
+        dist = np.abs(rx * -uy_ + ry * ux_)
         inside = (tt >= -1) & (tt <= LL[None, :, None] + 1)
-        # median over the inside samples (= nanmedian of dist with the others NaN): sort, pick the middle
+        # median over the inside samples (= nanmedian of dist with the others NaN): sort, pick the
+        # middle; only for the pairs that can pass (at least three inside samples, the nearest
+        # within max_distance_px: the median is no nearer than that, a NaN sorting last)
         cnt = inside.sum(2)
-        srt = np.sort(np.where(inside, dist, np.inf), axis=2)
-        lo = np.clip((cnt - 1) // 2, 0, 8)[..., None]
-        hi = np.clip(cnt // 2, 0, 8)[..., None]
+        dq = np.where(inside, dist, np.inf)
+        cand = (LL[None, :] > 0) & (cnt >= 3) & (np.fmin.reduce(dq, axis=2) <= max_distance_px)
+        srt = np.sort(dq[cand], axis=1)
+        c = cnt[cand]
+        r = np.arange(c.size)
         with np.errstate(invalid="ignore"):
-            med = 0.5 * (np.take_along_axis(srt, lo, 2)[..., 0] + np.take_along_axis(srt, hi, 2)[..., 0])
-        dup[np.ix_(ids, ids)] = (LL[None, :] > 0) & (cnt >= 3) & (med <= max_distance_px)
+            med = 0.5 * (srt[r, np.clip((c - 1) // 2, 0, 8)] + srt[r, np.clip(c // 2, 0, 8)])
+        d = np.zeros(cand.shape, bool)
+        d[cand] = med <= max_distance_px
+        dup[np.ix_(ids, ids)] = d
     rank = sorted(range(n), key=lambda i: (-lines[i].n_points, lines[i].slope_stderr))
     kept = np.zeros(n, bool)
     for i in rank:

@@ -32,6 +32,13 @@ def pixel_angle_deg(line: TransitionLine, axes: MapAxes) -> float:
     return float(np.degrees(np.arctan(s_px)))
 
 
+def _pixel_angles_deg(slopes: np.ndarray, axes: MapAxes) -> np.ndarray:
+    """:func:`pixel_angle_deg` of lines with these slopes (dV_y/dV_x), all at once (the same numbers)."""
+    dx, dy = steps(axes)
+    with np.errstate(invalid="ignore"):
+        return np.where(np.isinf(slopes), 90.0, np.degrees(np.arctan(slopes * (dx / dy))))
+
+
 def _otsu_split(a: np.ndarray, w: np.ndarray) -> tuple[float, float]:
     """Best threshold and separation score (gap / pooled spread) for 1-D weighted data.
 
@@ -95,7 +102,7 @@ def classify_lines(lines: Sequence[TransitionLine], axes: MapAxes, *, tolerance_
     if n == 0:
         return out
     s = np.array([ln.slope for ln in lines])
-    ang = np.array([pixel_angle_deg(ln, axes) for ln in lines])
+    ang = _pixel_angles_deg(s, axes)
     length_px = np.array([max(ln.n_points, 1) for ln in lines], float)
     # "negative" in volts: the sign of the slope dV_y/dV_x
     neg = s < 0

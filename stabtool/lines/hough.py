@@ -125,6 +125,14 @@ def _max_filter5(a: np.ndarray) -> np.ndarray:
     return _max5_axis(_max5_axis(a, 0), 1)
 
 
+def _nonzero_2d(mask: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """``np.nonzero`` of a 2-D boolean array (row and column indices, row-major order).
+
+    From the flat indices (several times faster than ``np.nonzero`` on a 2-D array).
+    """
+    return np.divmod(np.flatnonzero(mask), mask.shape[1])
+
+
 def _hough_peaks(h: np.ndarray, angles: np.ndarray, dists: np.ndarray, min_votes: int, max_peaks: int):
     """Local maxima of the accumulator (5 distance × 5 angle bins, angle wrapping), strongest first.
 
@@ -136,7 +144,7 @@ def _hough_peaks(h: np.ndarray, angles: np.ndarray, dists: np.ndarray, min_votes
     m0 = _max5_axis(h, 0)  # the ρ pass commutes with the ρ → −ρ flip of the wrap
     mp = np.concatenate([m0[::-1, -2:], m0, m0[::-1, :2]], axis=1)  # θ = ±90° wrap with ρ → −ρ
     mx = _max5_axis(mp, 1)[:, 2:-2]
-    cand = np.nonzero((h >= mx) & (h >= min_votes))
+    cand = _nonzero_2d((h >= mx) & (h >= min_votes))
     votes = h[cand].astype(np.int64)
     order = np.argsort(-votes, kind="stable")[: 2 * max_peaks]
     return angles[cand[1][order]], dists[cand[0][order]]
@@ -177,7 +185,7 @@ def _band_members(px: np.ndarray, py: np.ndarray, key: np.ndarray, width: int, c
         dd += np.multiply.outer(sa, py)
         dd -= dist[:, None]
         np.abs(dd, out=dd)
-        line, pix = np.nonzero(dd <= reach)
+        line, pix = _nonzero_2d(dd <= reach)
         return line, pix, dd[line, pix]
     rows_u = py[np.r_[True, py[1:] != py[:-1]]]  # rows holding pixels (ascending; py is)
     x_lo, x_hi = px.min(), px.max()
@@ -316,7 +324,7 @@ def _segments_core(
     angle_step_deg: float,
     max_lines: int,
 ) -> list[PixelSegment]:
-    rows, cols = np.nonzero(edges)
+    rows, cols = _nonzero_2d(edges)
     if rows.size < 2:
         return []
     theta = np.deg2rad(np.arange(-90.0, 90.0, angle_step_deg))

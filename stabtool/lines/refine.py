@@ -38,32 +38,9 @@ def _all_profiles(values: np.ndarray, segs, along_x, halfwidth: int, max_points:
     profile, segments in order, or None when no segment has a profile.
     """
     ny, nx = values.shape
-    nseg = len(segs)
-    if nseg == 0:
+    if len(segs) == 0:
         return None
-    # per-segment quantities as arrays (the same arithmetic as one segment at a time)
-    cx = np.array([q.cx for q in segs]); cy = np.array([q.cy for q in segs])
-    ux = np.array([q.ux for q in segs]); uy = np.array([q.uy for q in segs])
-    t0 = np.array([q.t0 for q in segs]); t1 = np.array([q.t1 for q in segs])
-    sx, sy, ex, ey = cx + t0 * ux, cy + t0 * uy, cx + t1 * ux, cy + t1 * uy
-    alx_s = np.asarray(along_x, bool)
-    a0, a1 = np.where(alx_s, sy, sx), np.where(alx_s, ey, ex)  # param = row (along x) or column
-    b0, b1 = np.where(alx_s, sx, sy), np.where(alx_s, ex, ey)  # position across
-    n_par = np.where(alx_s, ny, nx)
-    tr = np.asarray(trims, float)
-    lo, hi = np.minimum(a0, a1) + tr, np.maximum(a0, a1) - tr
-    if bounds is not None:
-        # rows fixed by the vertices (see _vertex_bounds), where known and
-        # not far from the segment's own (else the vertex is doubtful: a
-        # broken segment or a wrong intersection)
-        b_lo, b_hi = bounds[:, 0], bounds[:, 1]
-        with np.errstate(invalid="ignore"):
-            d_lo, d_hi = b_lo - lo, b_hi - hi
-            lo = np.where((-VERTEX_MAX_EXTEND_PX <= d_lo) & (d_lo <= VERTEX_MAX_SHRINK_PX), b_lo, lo)
-            hi = np.where((-VERTEX_MAX_SHRINK_PX <= d_hi) & (d_hi <= VERTEX_MAX_EXTEND_PX), b_hi, hi)
-    r0 = np.maximum(np.ceil(lo), 0).astype(int)
-    r1 = np.minimum(np.floor(hi), n_par - 1).astype(int)
-    use = (a1 != a0) & (r1 >= r0)
+    a0, a1, b0, b1, r0, r1, use = _row_ranges(segs, along_x, values.shape, trims, bounds)
     if not use.any():
         return None
     ks = np.nonzero(use)[0]
@@ -103,6 +80,41 @@ def _all_profiles(values: np.ndarray, segs, along_x, halfwidth: int, max_points:
         mask &= _clear_of_other_lines(segs, seg_id, rows, centre, alx, offs)
     u = np.broadcast_to(offs[None, :].astype(float), y.shape)
     return seg_id, rows, centre, u, y, mask
+
+
+def _row_ranges(segs, along_x, shape: tuple[int, int], trims, bounds: np.ndarray | None = None):
+    """The rows (along x) or columns of each segment that :func:`_all_profiles` takes profiles at.
+
+    Returns ``(a0, a1, b0, b1, r0, r1, use)`` per segment: the end points'
+    coordinates along the profile rows (``a``) and across them (``b``), the
+    first and last row ``r0, r1`` and whether the segment has any (``use``).
+    They do not depend on the profiles' half-length.
+    """
+    ny, nx = shape
+    # per-segment quantities as arrays (the same arithmetic as one segment at a time)
+    cx = np.array([q.cx for q in segs]); cy = np.array([q.cy for q in segs])
+    ux = np.array([q.ux for q in segs]); uy = np.array([q.uy for q in segs])
+    t0 = np.array([q.t0 for q in segs]); t1 = np.array([q.t1 for q in segs])
+    sx, sy, ex, ey = cx + t0 * ux, cy + t0 * uy, cx + t1 * ux, cy + t1 * uy
+    alx_s = np.asarray(along_x, bool)
+    a0, a1 = np.where(alx_s, sy, sx), np.where(alx_s, ey, ex)  # param = row (along x) or column
+    b0, b1 = np.where(alx_s, sx, sy), np.where(alx_s, ex, ey)  # position across
+    n_par = np.where(alx_s, ny, nx)
+    tr = np.asarray(trims, float)
+    lo, hi = np.minimum(a0, a1) + tr, np.maximum(a0, a1) - tr
+    if bounds is not None:
+        # rows fixed by the vertices (see _vertex_bounds), where known and
+        # not far from the segment's own (else the vertex is doubtful: a
+        # broken segment or a wrong intersection)
+        b_lo, b_hi = bounds[:, 0], bounds[:, 1]
+        with np.errstate(invalid="ignore"):
+            d_lo, d_hi = b_lo - lo, b_hi - hi
+            lo = np.where((-VERTEX_MAX_EXTEND_PX <= d_lo) & (d_lo <= VERTEX_MAX_SHRINK_PX), b_lo, lo)
+            hi = np.where((-VERTEX_MAX_SHRINK_PX <= d_hi) & (d_hi <= VERTEX_MAX_EXTEND_PX), b_hi, hi)
+    r0 = np.maximum(np.ceil(lo), 0).astype(int)
+    r1 = np.minimum(np.floor(hi), n_par - 1).astype(int)
+    use = (a1 != a0) & (r1 >= r0)
+    return a0, a1, b0, b1, r0, r1, use
 
 
 #: cut each profile where another segment's line (extended by CUT_EXTEND_PX) crosses it
@@ -482,9 +494,16 @@ def refine_segments(
                        max_points=max_points, shapes=shapes, edges=edges, end_trim=end_trim, bounds=bounds)
     n = len(segs)
     head, extra = out[:n], out[n:]
+    can = np.ones(n, bool)
+    if widen > 1 and not all(r.refined for r in head):
+        # a segment with fewer profile rows than a line needs fails at any window length (its
+        # rows do not depend on it); a pass that could only refit such segments is left out
+        # (they still take part in a pass with others: their lines cut the others' profiles)
+        _, _, _, _, r0, r1, use = _row_ranges(segs, along_x, values.shape, _end_trims(segs, end_trim), bounds)
+        can = use & (np.minimum(r1 - r0 + 1, max_points) >= MIN_LINE_PROFILES)
     for _ in range(2 if widen > 1 else 0):
         redo = [k for k in range(n) if not head[k].refined]
-        if not redo:
+        if not redo or not can[redo].any():
             break
         hw *= int(widen)
         again = _refine_once([segs[k] for k in redo], values, axes, families=[families[k] for k in redo],
@@ -497,19 +516,28 @@ def refine_segments(
     return head + extra
 
 
+#: fewest usable profiles (rows with the line's centre samples on the map) a segment is fitted with
+MIN_LINE_PROFILES = 4
+
+
+def _end_trims(segs, end_trim: float) -> list[float]:
+    """Rows (px) left out at each end of every segment: ``max(2, end_trim · length)``."""
+    return [max(2.0, end_trim * s.length_px) for s in segs]
+
+
 def _refine_once(segs, values, axes, *, families, along_x, halfwidth_px, max_points, shapes, edges, end_trim,
                  bounds=None):
     hw = int(halfwidth_px)
     # the segments that give no line keep their Hough/TLS line (made at the end, for those only)
     out: list[RefinedLine | None] = [None] * len(segs)
     extra: list[RefinedLine] = []
-    trims = [max(2.0, end_trim * s.length_px) for s in segs]
+    trims = _end_trims(segs, end_trim)
     ext = _all_profiles(values, segs, along_x, hw, max_points, trims, edges, bounds)
     if ext is None:
         return _with_unrefined(out, segs, axes, families, along_x)
     seg_id, rows, centre, U, Y, M = ext
     okrows = (M.sum(1) >= hw + 2) & M[:, hw - 1 : hw + 2].all(1)
-    enough = np.bincount(seg_id[okrows], minlength=len(segs)) >= 4
+    enough = np.bincount(seg_id[okrows], minlength=len(segs)) >= MIN_LINE_PROFILES
     sel = okrows & enough[seg_id]
     if not sel.any():
         return _with_unrefined(out, segs, axes, families, along_x)
