@@ -433,15 +433,21 @@ def fit_lattice(
     miss = _misfit(first)
     if miss <= CONSISTENT_MISFIT:
         return first
-    # strongly coupled dots: the band steps may be other vectors of the same lattice; an alternative
-    # is taken only when it explains every line (the one that does best)
-    best, best_miss = first, CONSISTENT_MISFIT
+    # strongly coupled dots: the band steps may be other vectors of the same lattice. An alternative
+    # is taken only when it explains every line; of those, the largest cell (a sub-lattice of the
+    # true one explains the lines too, with half the cell), then the smallest misfit
+    best, best_key = first, None
     for a2, b2 in _alternative_steps(a, b):
         alt = _lattice_from_steps(dot1, dot2, a2, b2, interdot_extent=interdot_extent, err_floor_V=err_floor_V,
                                   n_iter=n_iter)
         m = _misfit(alt)
-        if m <= best_miss:
-            best, best_miss = alt, m
+        if m > CONSISTENT_MISFIT:
+            continue
+        dv, dm = alt.addition_V, alt.mutual_V
+        area = abs(dv[0] * dv[1] - np.nan_to_num(dm[0]) * np.nan_to_num(dm[1]))
+        key = (round(area / abs(a[0] * b[0]), 6), -m)
+        if best_key is None or key > best_key:
+            best, best_key = alt, key
     return best
 
 
@@ -455,7 +461,9 @@ def _misfit(lat: LatticeFit) -> float:
     if not lat.ok or not np.all(lat.addition_V > 0):
         return float("inf")
     dv = lat.addition_V
-    if np.any(lat.mutual_V < -0.05 * dv):  # δ_i/ΔV_i = E_Cm/E_Ci ≥ 0
+    # δ_i/ΔV_i = E_Cm/E_Ci ≥ 0: a δ below zero by more than 3 standard errors is unphysical
+    dm_err = np.sqrt(np.abs(np.diag(lat.cov)[[1, 4]]))
+    if np.any(lat.mutual_V < -3.0 * np.nan_to_num(dm_err, nan=0.0) - 0.01 * dv):
         return float("inf")
     terms = [np.max(np.abs(r)) / dv[i] for i, r in enumerate((lat.residuals1, lat.residuals2)) if r.size]
     terms += [sp / dv[i] for i, sp in enumerate(lat.addition_spread_V) if np.isfinite(sp)]
