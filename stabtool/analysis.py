@@ -926,8 +926,8 @@ class Analyzer:
         sm = float(np.nanmax(fit.vg_matrix_error)) if fit.ok else np.nan
         if clean and sm > vg_limit:  # sm is NaN without a fit
             q = q.with_warning(
-                f"virtual-gate matrix error {sm:.4f} is above {vg_limit:.4f}, the {CLEAN_VG_BOUND} goal of a "
-                f"clean map (SNR {snr_clean:.1f}) over {CLEAN_VG_SIGMAS:g} stated σ"
+                f"virtual-gate matrix error {sm:.4f} is above {vg_limit:.4f}: an ok clean map (SNR "
+                f"{snr_clean:.1f}) needs its {CLEAN_VG_BOUND} goal to be {CLEAN_VG_SIGMAS:g} stated σ"
             )
         t3 = time.perf_counter()
         triangles = None

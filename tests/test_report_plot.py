@@ -241,3 +241,16 @@ def test_doubts_box_wraps_warnings_at_words_and_marks_cuts():
     cut = _doubt_lines(["word " * 100], width=60, per_warning=2)
     assert cut.count("\n") == 1 and cut.endswith("…")
     assert _doubt_lines([f"doubt {i}" for i in range(10)], max_lines=6).count("\n") == 5
+
+
+def test_doubts_box_marks_doubts_with_bang_and_notes_with_a_dot():
+    from stabtool.quality import Quality
+    from stabtool.report.plot import _doubt_lines, _doubts_and_flags
+
+    q = Quality().with_warning("a note", doubtful=False).with_warning("the doubt").with_warning("another note",
+                                                                                                doubtful=False)
+    warnings, flags = _doubts_and_flags(q)
+    text = _doubt_lines(warnings, doubtful=flags)
+    assert text.splitlines() == ["! the doubt", "· a note", "· another note"]
+    # without known flags every warning is shown as a doubt
+    assert _doubt_lines(["x", "y"]).splitlines() == ["! x", "! y"]

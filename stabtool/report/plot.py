@@ -256,8 +256,8 @@ def _overlays(res: Any, ax: Any, *, n_pixels: int, max_labels: int, texts: _Text
                    zorder=4, fontsize=7.5, family="monospace",
                    bbox={"boxstyle": "round", "fc": "white", "ec": "0.5", "alpha": 0.85})]
     if not res.quality.ok and res.quality.warnings:
-        boxes.append(_text(ax, texts, "doubts", 0.01, 0.01,
-                           _doubt_lines(res.quality.doubts_first()),
+        warnings, doubtful = _doubts_and_flags(res.quality)
+        boxes.append(_text(ax, texts, "doubts", 0.01, 0.01, _doubt_lines(warnings, doubtful=doubtful),
                            transform=ax.transAxes, va="bottom", ha="left", zorder=4, fontsize=6.5, color="#b00000",
                            bbox={"boxstyle": "round", "fc": "white", "ec": "#b00000", "alpha": 0.85}))
     if cs is not None:
@@ -276,16 +276,29 @@ def _overlays(res: Any, ax: Any, *, n_pixels: int, max_labels: int, texts: _Text
         texts.hide_unused()
 
 
-def _doubt_lines(warnings: Any, *, width: int = 110, per_warning: int = 2, max_lines: int = 6) -> str:
+def _doubts_and_flags(quality: Any) -> tuple[list[str], list[bool] | None]:
+    """The warnings, doubts first, and per warning whether it cleared ``ok`` (None when not known)."""
+    first = list(quality.doubts_first())
+    flags = quality.doubtful_flags
+    if len(flags) != len(quality.warnings) or quality.ok == any(flags):
+        return first, None
+    n_doubts = sum(bool(f) for f in flags)
+    return first, [i < n_doubts for i in range(len(first))]
+
+
+def _doubt_lines(warnings: Any, *, doubtful: Any = None, width: int = 110, per_warning: int = 2,
+                 max_lines: int = 6) -> str:
     """The doubts box text: each warning wrapped at word boundaries, at most ``per_warning`` lines.
 
     A warning cut short ends in "…"; at most ``max_lines`` lines in all (the first warnings,
-    doubts first as given).
+    doubts first as given). Each warning starts with "!" when it made the result doubtful and
+    with "·" when it is a note; ``doubtful`` (one bool per warning) says which, all "!" if None.
     """
     import textwrap
 
+    flags = [True] * len(warnings) if doubtful is None else [bool(f) for f in doubtful]
     lines: list[str] = []
-    for w in warnings:
+    for w, flag in zip(warnings, flags):
         wrapped = textwrap.wrap(str(w), width - 2, break_on_hyphens=False) or [""]
         if len(wrapped) > per_warning:
             wrapped = wrapped[:per_warning]
@@ -293,7 +306,8 @@ def _doubt_lines(warnings: Any, *, width: int = 110, per_warning: int = 2, max_l
         room = max_lines - len(lines)
         if room <= 0:
             break
-        lines.extend((("! " if i == 0 else "  ") + t) for i, t in enumerate(wrapped[:room]))
+        bullet = "! " if flag else "· "
+        lines.extend(((bullet if i == 0 else "  ") + t) for i, t in enumerate(wrapped[:room]))
     return "\n".join(lines)
 
 
