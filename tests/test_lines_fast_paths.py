@@ -4,7 +4,8 @@ numpy's percentile, nonzero and nanmedian, the one-line-at-a-time pixel
 angle, the profile fit's solve of every system (against
 scipy.optimize.least_squares for the fitted crossing) and the refit passes
 of refine_segments, which are left out when no segment they would refit
-can give a line. Inputs are seeded random arrays or small drawn maps.
+can give a line, and the refit of a Hough run on the pixels it already
+has. Inputs are seeded random arrays or small drawn maps.
 """
 
 from __future__ import annotations
@@ -13,6 +14,7 @@ import numpy as np
 import pytest
 from scipy.optimize import least_squares
 
+import stabtool.lines.hough as hough_mod
 import stabtool.lines.refine as refine_mod
 from stabtool.lines._batchfit import fit_profiles
 from stabtool.lines._merge import drop_duplicates
@@ -157,3 +159,58 @@ def test_refit_passes_are_left_out_when_no_segment_can_give_a_line(monkeypatch):
             for s, f, a, hw in ((line, "dot1", True, 6), (stub, "dot2", False, 24))]
     assert got[1].line == want[1].line and got[1].refined == want[1].refined
     assert got[0].line.slope == want[0].line.slope
+
+
+def _peak_runs_always_refitted(xy, lfree, nloc, rloc, c, s, *, min_votes, max_gap_px, min_length_px, tolerance_px):
+    """The plain rule of hough._peak_runs: every run is refitted on its re-collected pixels
+    when they are at least as many (the shortcut skips the refit when they are the same pixels)."""
+    rxy = np.take(xy, rloc, axis=1)
+    t = xy[1][nloc] * c - xy[0][nloc] * s
+    order = np.argsort(t)
+    ts = t[order]
+    br = np.nonzero(np.diff(ts) > max_gap_px)[0] + 1
+    starts, ends = np.r_[0, br], np.r_[br, ts.size]
+    good = (ends - starts >= min_votes) & (ts[ends - 1] - ts[starts] >= min_length_px - 2)
+    for st, en in zip(starts[good].tolist(), ends[good].tolist()):
+        sel = nloc[order[st:en]]
+        cen, ux, uy, rms, d = hough_mod._tls_xy(np.take(xy, sel, axis=1))
+        ts_ = d[0] * ux + d[1] * uy
+        e = rxy - cen[:, None]
+        tt, dd = e[0] * ux + e[1] * uy, e[1] * ux - e[0] * uy
+        m2 = lfree[rloc] & (tt >= ts_.min() - 1) & (tt <= ts_.max() + 1) & (np.abs(dd) <= tolerance_px)
+        if m2.sum() >= sel.size:
+            sel = rloc[m2]
+            cen, ux, uy, rms, d = hough_mod._tls_xy(np.take(xy, sel, axis=1))
+        tt = d[0] * ux + d[1] * uy
+        if tt.max() - tt.min() < min_length_px - 1:
+            continue
+        yield sel, cen[0], cen[1], ux, uy, tt.min(), tt.max(), rms
+
+
+def test_segments_without_the_repeated_refit_equal_those_of_the_plain_rule(monkeypatch):
+    # drawn edge maps: straight lines of both slopes with gaps and jitter, plus stray pixels
+    rng = np.random.default_rng(27)
+    for trial in range(4):
+        edges = np.zeros((96, 120), bool)
+        for _ in range(6):
+            slope = rng.choice([-2.3, -0.4, 0.9]) * rng.uniform(0.8, 1.2)
+            x0, y0 = rng.uniform(20, 100), rng.uniform(20, 76)
+            for t in np.arange(-40, 40, 0.7):
+                if rng.random() < 0.08:
+                    continue  # a gap
+                x = x0 + t / np.hypot(1, slope) + rng.normal(0, 0.3)
+                y = y0 + slope * t / np.hypot(1, slope) + rng.normal(0, 0.3)
+                if 0 <= round(y) < 96 and 0 <= round(x) < 120:
+                    edges[round(y), round(x)] = True
+        edges |= rng.random(edges.shape) < 0.01
+        kw = dict(min_length_px=8.0, max_gap_px=3.0, tolerance_px=1.5, angle_step_deg=0.5, max_lines=400)
+        got = hough_mod._segments_core(edges, **kw)
+        monkeypatch.setattr(hough_mod, "_peak_runs", _peak_runs_always_refitted)
+        want = hough_mod._segments_core(edges, **kw)
+        monkeypatch.undo()
+        assert len(got) == len(want) > 3
+        for g, w in zip(got, want):
+            assert g.n_pixels == w.n_pixels
+            # (the same pixels summed in another order: the last bits only)
+            np.testing.assert_allclose([g.cx, g.cy, g.ux, g.uy, g.t0, g.t1, g.rms_px],
+                                       [w.cx, w.cy, w.ux, w.uy, w.t0, w.t1, w.rms_px], rtol=1e-12, atol=1e-12)

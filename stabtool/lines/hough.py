@@ -275,20 +275,24 @@ def _peak_runs(xy, lfree, nloc, rloc, c, s, *, min_votes, max_gap_px, min_length
     # only runs long enough in pixels and in extent are examined
     good = (ends - starts >= min_votes) & (ts[ends - 1] - ts[starts] >= min_length_px - 2)
     for st, en in zip(starts[good].tolist(), ends[good].tolist()):
-        sel = nloc[order[st:en]]
+        # (in ascending order, as the re-collection below returns them: when it
+        # collects the same pixels, which it mostly does, the refit would repeat
+        # the same sums and is skipped)
+        sel = np.sort(nloc[order[st:en]])
         cen, ux, uy, rms, d = _tls_xy(np.take(xy, sel, axis=1))
         # one re-collection around the refined line, inside the run's span
         ts_ = d[0] * ux + d[1] * uy
+        t_lo, t_hi = ts_.min(), ts_.max()
         e = rxy - cen[:, None]
         tt = e[0] * ux + e[1] * uy
         dd = e[1] * ux - e[0] * uy
-        m2 = lfree[rloc] & (tt >= ts_.min() - 1) & (tt <= ts_.max() + 1) & (np.abs(dd) <= tolerance_px)
-        sel2 = rloc[m2]
-        if sel2.size >= sel.size:
+        m2 = lfree[rloc] & (tt >= t_lo - 1) & (tt <= t_hi + 1) & (np.abs(dd) <= tolerance_px)
+        sel2 = rloc[m2]  # (ascending: rloc is)
+        if sel2.size > sel.size or (sel2.size == sel.size and not np.array_equal(sel2, sel)):
             sel = sel2
             cen, ux, uy, rms, d = _tls_xy(np.take(xy, sel, axis=1))
-        tt = d[0] * ux + d[1] * uy
-        t_lo, t_hi = tt.min(), tt.max()
+            tt = d[0] * ux + d[1] * uy
+            t_lo, t_hi = tt.min(), tt.max()
         if t_hi - t_lo < min_length_px - 1:
             continue
         yield sel, cen[0], cen[1], ux, uy, t_lo, t_hi, rms
