@@ -205,6 +205,7 @@ class AnalysisResult:
     timings_s: dict = field(default_factory=dict)
     tunnel: Any = None
     coupling: Any = None
+    transport: Any = None  # TransportLattice of a transport map without dot lines, else None
 
     # ----------------------------------------------------------------- numbers
     @property
@@ -250,11 +251,18 @@ class AnalysisResult:
 
         The pair of cell (N1, N2) lies at ``V' = (ΔV1 (N1 − ½) + δ1 N2 + c1,
         ΔV2 (N2 + ½) + δ2 (N1 − 1) + c2)`` and that point plus ``(δ1, δ2)``
-        (the two ends of the interdot segment). Empty when the fit failed.
-        Computed once per result (the JSON and the plot both use it); read-only.
+        (the two ends of the interdot segment). On a transport map without dot
+        lines, the measured current spots of a consistent triple-point lattice.
+        Empty when the fit failed. Computed once per result (the JSON and the
+        plot both use it); read-only.
         """
         d = self.diagram
         lat = d.lattice
+        t = self.transport
+        if not d.ok and t is not None and t.consistent:
+            spots = np.array(t.points_V, float).reshape(-1, 2)
+            spots.flags.writeable = False
+            return spots
         if not d.ok or lat is None or not d.mutual_resolved:
             return np.zeros((0, 2))
         dv, dm, c = d.addition_V, d.mutual_V, d.offsets_V
@@ -330,6 +338,21 @@ class AnalysisResult:
             "tunnel_to_mutual_ratio": self.coupling.to_json() if self.coupling is not None else None,
             "timings_s": self.timings_s,
         }
+        t = self.transport
+        if t is not None and not d.ok and t.consistent:
+            # transport map: Cdg (and, with resolved pairs, M, ΔV, δ) from the triple-point lattice
+            out["gate_capacitance_aF"], out["gate_capacitance_aF_error"] = t.cdg_aF, t.cdg_aF_error
+            if t.vg_matrix is not None and t.pair_quality.ok:
+                out["virtual_gate_matrix"], out["virtual_gate_matrix_error"] = t.vg_matrix, t.vg_matrix_error
+                out["addition_voltages_V"] = {"dot1": t.addition_V[0], "dot2": t.addition_V[1]}
+                out["addition_voltages_V_error"] = {"dot1": t.addition_V_error[0], "dot2": t.addition_V_error[1]}
+                out["mutual_shifts_V"] = {"dot1": t.mutual_V[0], "dot2": t.mutual_V[1]}
+                out["mutual_shifts_V_error"] = {"dot1": t.mutual_V_error[0], "dot2": t.mutual_V_error[1]}
+            out["triple_point_lattice"] = {
+                "points_V": t.points_V, "basis_V": t.basis_V, "basis_V_error": t.basis_V_error,
+                "pair_resolved": t.pair_resolved, "pair_V": t.pair_V, "pair_V_error": t.pair_V_error,
+                "n_cells": t.n_cells, "n_outliers": t.n_outliers,
+            }
         return _nan_to_none(out)
 
     def _spreads(self) -> dict:
@@ -1019,6 +1042,36 @@ class Analyzer:
                                               electron_temperature_K=self.electron_temperature_K)
             q = q.merge(tunnel.quality)
             timings["tunnel"] = time.perf_counter() - t4
+        transport = None
+        if not fit.ok:  # no usable dot lines (a transport map shows the triple points only)
+            from .fit.transport_lattice import find_transport_spots, fit_transport_lattice
+
+            spots = find_transport_spots(da)
+            if spots.sparse:
+                # a transport map (current only at the triple points): no dot lines to fit, but the
+                # lattice of triple points gives Cdg; the line failures are kept as notes
+                t5 = time.perf_counter()
+                # bias triangles at the given bias fix the dot assignment when the lattice alone cannot
+                alpha = np.asarray(triangles.lever_arm, float) if triangles else None
+                transport = fit_transport_lattice(da, spots=spots, lever_arm=alpha)
+                if transport.consistent:
+                    # the energy reference keeps its own verdict; the failures of the line fit become notes
+                    own = set(scale.quality.warnings)
+                    lines_q = q
+                    q = q.without(lambda w: w not in own).merge(transport.quality).with_warning(
+                        "transport map: gate capacitances from the lattice of triple points; the other "
+                        "quantities need dot lines or an energy reference", doubtful=not transport)
+                    for w in transport.pair_quality.warnings if transport.vg_matrix is not None else ():
+                        q = q.with_warning(f"virtual gates not reported: {w}", doubtful=False)
+                    for w in lines_q.warnings:
+                        if w not in own:
+                            q = q.with_warning(f"lines: {w}", doubtful=False)
+                else:  # the line fit's failures stand; the spots say why they are no lattice either
+                    why = transport.quality.doubts_first()
+                    q = q.with_warning("the map looks like a transport map, but its current spots form no "
+                                       "consistent lattice of triple points" + (f" ({why[0]})" if why else ""),
+                                       doubtful=False)
+                timings["transport_lattice"] = time.perf_counter() - t5
         timings["total"] = time.perf_counter() - t0
         if not q.ok:
             warnings.warn(
@@ -1026,7 +1079,8 @@ class Analyzer:
                 QualityWarning, stacklevel=2,
             )
         return AnalysisResult(data=da, detection=detection, diagram=fit, scale=scale, charge_states=states,
-                              refinement=refinement, quality=q, timings_s=timings, tunnel=tunnel, coupling=coupling)
+                              refinement=refinement, quality=q, timings_s=timings, tunnel=tunnel, coupling=coupling,
+                              transport=transport)
 
 
 def analyze(da_or_path: xr.DataArray | str | os.PathLike[str], **kwargs: Any) -> AnalysisResult | DiamondAnalysisResult:
