@@ -170,7 +170,8 @@ def register(subparsers: Any) -> None:
     p.add_argument("--temperature", type=float, metavar="K", help="electron temperature (default: preset's)")
     p.add_argument("--tunnel", type=float, default=0.0, metavar="UEV", help="interdot tunnel coupling t, µeV")
     p.add_argument("--readout", choices=("sensor", "charge", "transport"), default="sensor")
-    p.add_argument("--bias", type=float, default=0.0, metavar="MV", help="source-drain bias for transport, mV")
+    p.add_argument("--bias-mV", "--bias", dest="bias", type=float, default=0.0, metavar="MV",
+                   help="source-drain bias for transport, mV (the name analyze takes too)")
     p.add_argument("--compensation", type=float, default=0.0, help="sensor crosstalk compensation 0..1")
     p.add_argument("--snr", type=float, default=None, help="white noise: charge-step height / noise std")
     p.add_argument("--row-noise", type=float, default=0.0, help="1/f row offsets, std in step heights")
