@@ -292,3 +292,22 @@ def test_interrupted_sweep_with_missing_rows():
                       artefacts=Artefacts(snr=20.0, interrupted=0.15), rng=4)
     assert np.isnan(sm.data.values).any()
     _check_cdg(sm, fit_transport_lattice(sm.data))
+
+
+@pytest.mark.regression
+@pytest.mark.parametrize("bias_mV", [0.02, 0.3])
+def test_analyze_reads_cdg_off_a_transport_map(bias_mV):
+    # spots at small bias, bias triangles (about 7 % of the map) at 0.3 mV: both are transport maps
+    # whose lattice gives Cdg = e [A B]^-1 (van der Wiel et al., RMP 75, 1 (2003)); the JSON carries it
+    from stabtool.analysis import Analyzer
+
+    sm = _transport("gaas-double", bias_mV=bias_mV)
+    res = Analyzer()(sm.data)
+    assert res.transport is not None and res.transport.consistent
+    j = res.to_json()
+    truth = np.array(sm.truth.to_json()["gate_capacitance_aF"])
+    cdg, err = np.array(j["gate_capacitance_aF"], float), np.array(j["gate_capacitance_aF_error"], float)
+    np.testing.assert_allclose(cdg, truth, rtol=0.02)
+    assert np.all(np.abs(cdg - truth) <= 3 * err)
+    assert len(j["triple_points_V"]) == len(res.transport.points_V)
+    assert any(w.startswith("transport map:") for w in j["quality"]["warnings"])
