@@ -245,6 +245,15 @@ class AnalysisResult:
     def _charging(self) -> tuple[dict, dict]:
         return charging_energies(self.scale, self.diagram)
 
+    @property
+    def gate_capacitance(self) -> tuple[np.ndarray, np.ndarray]:
+        """``(Cdg, error)`` in aF, shape (2, 2) each: from the diagram, or on a transport map without
+        dot lines from a consistent lattice of triple points (NaN when neither)."""
+        t = self.transport
+        if not self.diagram.ok and t is not None and t.consistent:
+            return t.cdg_aF, t.cdg_aF_error
+        return self.diagram.cdg_aF, self.diagram.cdg_aF_error
+
     @functools.cached_property
     def triple_points(self) -> np.ndarray:
         """Triple points (x, y) in volts, shape (k, 2), predicted by the fitted lattice inside the map.
@@ -341,7 +350,7 @@ class AnalysisResult:
         t = self.transport
         if t is not None and not d.ok and t.consistent:
             # transport map: Cdg (and, with resolved pairs, M, ΔV, δ) from the triple-point lattice
-            out["gate_capacitance_aF"], out["gate_capacitance_aF_error"] = t.cdg_aF, t.cdg_aF_error
+            out["gate_capacitance_aF"], out["gate_capacitance_aF_error"] = self.gate_capacitance
             if t.vg_matrix is not None and t.pair_quality.ok:
                 out["virtual_gate_matrix"], out["virtual_gate_matrix_error"] = t.vg_matrix, t.vg_matrix_error
                 out["addition_voltages_V"] = {"dot1": t.addition_V[0], "dot2": t.addition_V[1]}
@@ -395,8 +404,9 @@ class AnalysisResult:
             ds["n2"] = (da.dims, lab[..., 1].astype(np.int32), {"long_name": "dot2 occupation"})
         ds["virtual_gate_matrix"] = (("virtual_gate", "gate"), self.diagram.vg_matrix)
         ds["virtual_gate_matrix_error"] = (("virtual_gate", "gate"), self.diagram.vg_matrix_error)
-        ds["gate_capacitance_aF"] = (("dot", "gate"), self.diagram.cdg_aF, {"units": "aF"})
-        ds["gate_capacitance_aF_error"] = (("dot", "gate"), self.diagram.cdg_aF_error, {"units": "aF"})
+        cdg, cdg_err = self.gate_capacitance
+        ds["gate_capacitance_aF"] = (("dot", "gate"), cdg, {"units": "aF"})
+        ds["gate_capacitance_aF_error"] = (("dot", "gate"), cdg_err, {"units": "aF"})
         ds["lever_arm"] = (("dot", "gate"), self.lever_arm)
         ds = ds.assign_coords(dot=["dot1", "dot2"], gate=[self.x_gate, self.y_gate],
                               virtual_gate=[f"{self.x_gate}'", f"{self.y_gate}'"])

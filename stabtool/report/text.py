@@ -42,8 +42,10 @@ def summary_text(res: Any) -> str:
         )
     else:
         lines.append("mutual shifts: unresolved")
-    c, ce = d.cdg_aF, d.cdg_aF_error
-    lines.append("gate capacitances Cdg (aF), rows dots, columns (x, y):")
+    c, ce = res.gate_capacitance
+    t = res.transport
+    source = " from the triple-point lattice" if not d.ok and t is not None and t.consistent else ""
+    lines.append(f"gate capacitances Cdg (aF){source}, rows dots, columns (x, y):")
     for i in range(2):
         lines.append("  [" + ", ".join(fmt_pm(c[i, k], ce[i, k]) for k in range(2)) + "]")
     if j["lever_arm"] is not None:
