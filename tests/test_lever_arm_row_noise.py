@@ -79,7 +79,7 @@ def _heldout_like_map(seed: int, T: float = 0.23, walk: float = 1.0):
 def test_analysis_doubts_a_lever_arm_whose_stated_error_exceeds_the_goal():
     """α11 from α22 · δ2/δ1 (dot1 lines resolution-limited) carries ~5 %: the verdict must say so.
 
-    Needs scratch/lever5/proposed.diff (analysis calls fit.scale_verdict).
+    (The analysis calls stabtool.fit.scale_verdict.scale_error_verdict.)
     """
     from stabtool.analysis import Analyzer
 

@@ -8,8 +8,9 @@ doi:10.1103/RevModPhys.75.1). The lines of the dot2 family are located column
 by column along y, where row offsets look like steps too: with strong offsets
 the map the lines are measured on must be the row-corrected one.
 
-The tests that use :func:`stabtool.preprocess.background.row_offset_test`
-need the row-offset gate of the analysis (``scratch/lines5b/proposed.diff``).
+The tests of the analysis check its row-offset gate
+(:func:`stabtool.preprocess.background.row_offset_test` deciding which map the
+lines are measured on).
 """
 
 from __future__ import annotations
