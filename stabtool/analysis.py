@@ -1062,8 +1062,8 @@ class Analyzer:
                 # lattice of triple points gives Cdg; the line failures are kept as notes
                 t5 = time.perf_counter()
                 # bias triangles at the given bias fix the dot assignment when the lattice alone cannot
-                alpha = np.asarray(triangles.lever_arm, float) if triangles else None
-                transport = fit_transport_lattice(da, spots=spots, lever_arm=alpha)
+                alpha_triangles = np.asarray(triangles.lever_arm, float) if triangles else None
+                transport = fit_transport_lattice(da, spots=spots, lever_arm=alpha_triangles)
                 if transport.consistent:
                     # the energy reference keeps its own verdict; the failures of the line fit become notes
                     own = set(scale.quality.warnings)
