@@ -243,7 +243,8 @@ def _detect_core(values: np.ndarray, axes, cfg: LineDetector) -> LineDetection:
     jumps: list[ChargeJump] = []
     excluded: list[int] = []
     if cfg.detect_jumps:
-        for r, s in _jumps_core(work):
+        # (row offsets leave the x differences, so the noise σ, unchanged)
+        for r, s in _jumps_core(work, noise=noise):
             jumps.append(ChargeJump(row=r, y=float(axes.y[r]), shift_x_V=float(s * axes.dx)))
             excluded.extend([r - 1, r])
     excluded_rows = np.array(sorted({r for r in excluded if 0 <= r < ny}), dtype=int)

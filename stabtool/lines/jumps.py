@@ -10,6 +10,7 @@ from scipy.fft import irfft, next_fast_len, rfft
 from ..mapdata import MapAxes
 from ..preprocess._checks import check_map
 from ..preprocess._nan import fill_nan
+from ..preprocess.noise import MAX_NOISE_SAMPLES, _noise_core
 from .result import ChargeJump
 
 __all__ = ["detect_charge_jumps"]
@@ -23,27 +24,20 @@ def _median3(a: np.ndarray, b: np.ndarray, c: np.ndarray) -> np.ndarray:
     return np.maximum(np.minimum(a, b), np.minimum(np.maximum(a, b), c))
 
 
-def _despiked(img: np.ndarray) -> np.ndarray:
+def _despiked(img: np.ndarray, noise: float) -> np.ndarray:
     """``img`` with isolated single-pixel outliers replaced by the median of their x neighbours.
 
     A spike in one block of rows and none in the next reads as a pattern
     shift. A pixel counts as a spike when it stands out by ``SPIKE_SIGMAS``
-    noise σ from the median of three both along x and along y: a step keeps
-    its pixel inside the three-point median across it, and a narrow line (a
-    transport peak) is continued by its neighbours along the line, so only
-    isolated outliers go (common practice, no source). The noise σ is the
-    robust spread of the x differences of every fourth row, ``1.4826
-    median|d| / √2`` (the differences of a map centre on zero).
+    times the white-noise σ ``noise`` from the median of three both along x
+    and along y: a step keeps its pixel inside the three-point median across
+    it, and a narrow line (a transport peak) is continued by its neighbours
+    along the line, so only isolated outliers go (common practice, no source).
     """
     ny, nx = img.shape
-    if ny < 3 or nx < 3:
+    if ny < 3 or nx < 3 or not noise > 0:
         return img
-    d = np.abs(np.diff(img[::4], axis=1)).ravel()
-    k = d.size // 2
-    sigma = 1.4826 * float(np.partition(d, k)[k]) / np.sqrt(2.0)
-    if not sigma > 0:
-        return img
-    lim = SPIKE_SIGMAS * sigma
+    lim = SPIKE_SIGMAS * noise
     centre = img[:, 1:-1]
     mx = _median3(img[:, :-2], centre, img[:, 2:])
     r, c = np.nonzero(np.abs(centre - mx) > lim)
@@ -61,13 +55,18 @@ def _despiked(img: np.ndarray) -> np.ndarray:
     return out
 
 
-def _jumps_core(values: np.ndarray, block: int = 4, min_shift_px: float = 2.0) -> list[tuple[int, float]]:
+def _jumps_core(values: np.ndarray, block: int = 4, min_shift_px: float = 2.0,
+                noise: float | None = None) -> list[tuple[int, float]]:
+    """Rows after which the pattern shifts, with the shift in pixels; ``noise``: the map's
+    white-noise σ when the caller has it (else :func:`stabtool.preprocess.noise._noise_core`)."""
     ny, nx = values.shape
     if ny < 4 * block or nx < 16:
         return []
+    if noise is None:
+        noise = _noise_core(values, MAX_NOISE_SAMPLES)
     finite = np.isfinite(values)
     img = values if finite.all() else fill_nan(values)
-    gx = np.abs(ndi.gaussian_filter1d(_despiked(img), 1.0, axis=1, order=1))
+    gx = np.abs(ndi.gaussian_filter1d(_despiked(img, noise), 1.0, axis=1, order=1))
     valid_rows = finite.mean(1) > 0.8
     max_lag = max(4, nx // 8)
     lags = np.full(ny, np.nan)
