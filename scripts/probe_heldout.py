@@ -283,12 +283,11 @@ def main(argv: list[str] | None = None) -> int:
         ev.update(pm.meta, time=dt)
         rows.append(ev)
         ws = list(j["quality"]["warnings"])
-        flags = getattr(res.quality, "doubtful_flags", None) if res is not None else None
-        if flags and len(flags) == len(res.quality.warnings):
-            # what blocks ok first (marked "!"), then the notes; the flags follow the verdict's own
-            # order, not the JSON's (which already lists the doubts first)
-            ws = list(res.quality.warnings)
-            ws = ["! " + w for w, f in zip(ws, flags) if f] + [w for w, f in zip(ws, flags) if not f]
+        if res is not None:
+            # what blocks ok first (marked "!"), then the notes
+            first, flags = res.quality.doubts_first_flagged()
+            if flags is not None:
+                ws = [("! " if f else "") + w for w, f in zip(first, flags)]
         doubt = ws if a.verbose else [w for w in ws if w.startswith("! ")][:2]
         m = pm.meta
         tag = " SILENT-FAIL(" + ",".join(ev["beyond"]) + ")" if ev["silent"] else ""

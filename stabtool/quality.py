@@ -74,6 +74,17 @@ class Quality:
             return self.warnings
         return tuple(w for w, d in zip(self.warnings, f) if d) + tuple(w for w, d in zip(self.warnings, f) if not d)
 
+    def doubts_first_flagged(self) -> tuple[tuple[str, ...], tuple[bool, ...] | None]:
+        """:meth:`doubts_first` and, per warning in that order, whether it cleared ``ok``.
+
+        The flags are None when the per-warning doubts are not known.
+        """
+        f = self._flags()
+        if f is None:
+            return self.warnings, None
+        n_doubts = sum(f)
+        return self.doubts_first(), tuple(i < n_doubts for i in range(len(f)))
+
     def to_dict(self) -> dict:
         """JSON form ``{"ok": bool, "warnings": [...]}``, the warnings that cleared ``ok`` first."""
         return {"ok": bool(self.ok), "warnings": list(self.doubts_first())}

@@ -120,3 +120,12 @@ def test_quality_lists_the_doubts_before_the_notes():
     assert Quality(ok=False, warnings=("x", "y")).doubts_first() == ("x", "y")
     # the JSON (and so the CLI, the batch table and the summary) lists them in the same order
     assert q.to_dict() == {"ok": False, "warnings": ["doubt b", "note a", "note c"]}
+
+
+def test_quality_flags_each_warning_in_the_doubts_first_order():
+    from stabtool.quality import Quality
+
+    q = Quality().with_warning("note a", doubtful=False).with_warning("doubt b").with_warning("note c", doubtful=False)
+    assert q.doubts_first_flagged() == (("doubt b", "note a", "note c"), (True, False, False))
+    # doubts unknown: the warnings as they are, no flags
+    assert Quality(ok=False, warnings=("x", "y")).doubts_first_flagged() == (("x", "y"), None)

@@ -245,11 +245,11 @@ def test_doubts_box_wraps_warnings_at_words_and_marks_cuts():
 
 def test_doubts_box_marks_doubts_with_bang_and_notes_with_a_dot():
     from stabtool.quality import Quality
-    from stabtool.report.plot import _doubt_lines, _doubts_and_flags
+    from stabtool.report.plot import _doubt_lines
 
     q = Quality().with_warning("a note", doubtful=False).with_warning("the doubt").with_warning("another note",
                                                                                                 doubtful=False)
-    warnings, flags = _doubts_and_flags(q)
+    warnings, flags = q.doubts_first_flagged()
     text = _doubt_lines(warnings, doubtful=flags)
     assert text.splitlines() == ["! the doubt", "· a note", "· another note"]
     # without known flags every warning is shown as a doubt

@@ -259,7 +259,7 @@ def _overlays(res: Any, ax: Any, *, n_pixels: int, max_labels: int, texts: _Text
                    zorder=4, fontsize=7.5, family="monospace",
                    bbox={"boxstyle": "round", "fc": "white", "ec": "0.5", "alpha": 0.85})]
     if not res.quality.ok and res.quality.warnings:
-        warnings, doubtful = _doubts_and_flags(res.quality)
+        warnings, doubtful = res.quality.doubts_first_flagged()
         boxes.append(_text(ax, texts, "doubts", 0.01, 0.01, _doubt_lines(warnings, doubtful=doubtful),
                            transform=ax.transAxes, va="bottom", ha="left", zorder=4, fontsize=6.5, color="#b00000",
                            bbox={"boxstyle": "round", "fc": "white", "ec": "#b00000", "alpha": 0.85}))
@@ -277,16 +277,6 @@ def _overlays(res: Any, ax: Any, *, n_pixels: int, max_labels: int, texts: _Text
                   bbox={"boxstyle": "round,pad=0.15", "fc": "white", "ec": "none", "alpha": 0.65})
     if texts is not None:
         texts.hide_unused()
-
-
-def _doubts_and_flags(quality: Any) -> tuple[list[str], list[bool] | None]:
-    """The warnings, doubts first, and per warning whether it cleared ``ok`` (None when not known)."""
-    first = list(quality.doubts_first())
-    flags = quality.doubtful_flags
-    if len(flags) != len(quality.warnings) or quality.ok == any(flags):
-        return first, None
-    n_doubts = sum(bool(f) for f in flags)
-    return first, [i < n_doubts for i in range(len(first))]
 
 
 def _doubt_lines(warnings: Any, *, doubtful: Any = None, width: int = 110, per_warning: int = 2,
