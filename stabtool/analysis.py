@@ -246,12 +246,18 @@ class AnalysisResult:
         return charging_energies(self.scale, self.diagram)
 
     @property
+    def from_triple_points(self) -> bool:
+        """Do the numbers come from the lattice of triple points (a transport map without dot lines
+        whose current spots form a consistent lattice) rather than from the diagram?"""
+        t = self.transport
+        return bool(not self.diagram.ok and t is not None and t.consistent)
+
+    @property
     def gate_capacitance(self) -> tuple[np.ndarray, np.ndarray]:
         """``(Cdg, error)`` in aF, shape (2, 2) each: from the diagram, or on a transport map without
         dot lines from a consistent lattice of triple points (NaN when neither)."""
-        t = self.transport
-        if not self.diagram.ok and t is not None and t.consistent:
-            return t.cdg_aF, t.cdg_aF_error
+        if self.from_triple_points:
+            return self.transport.cdg_aF, self.transport.cdg_aF_error
         return self.diagram.cdg_aF, self.diagram.cdg_aF_error
 
     @functools.cached_property
@@ -267,9 +273,8 @@ class AnalysisResult:
         """
         d = self.diagram
         lat = d.lattice
-        t = self.transport
-        if not d.ok and t is not None and t.consistent:
-            spots = np.array(t.points_V, float).reshape(-1, 2)
+        if self.from_triple_points:
+            spots = np.array(self.transport.points_V, float).reshape(-1, 2)
             spots.flags.writeable = False
             return spots
         if not d.ok or lat is None or not d.mutual_resolved:
@@ -348,7 +353,7 @@ class AnalysisResult:
             "timings_s": self.timings_s,
         }
         t = self.transport
-        if t is not None and not d.ok and t.consistent:
+        if self.from_triple_points:
             # transport map: Cdg (and, with resolved pairs, M, ΔV, δ) from the triple-point lattice
             out["gate_capacitance_aF"], out["gate_capacitance_aF_error"] = self.gate_capacitance
             if t.vg_matrix is not None and t.pair_quality.ok:

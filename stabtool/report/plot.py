@@ -66,8 +66,7 @@ def _key_numbers(res: Any) -> str:
     if d.mutual_resolved:
         rows.append(f"δ1, δ2 = {1e3 * d.mutual_V[0]:.3g}, {1e3 * d.mutual_V[1]:.3g} mV")
     c, ce = res.gate_capacitance
-    t = res.transport
-    if not d.ok and t is not None and t.consistent:  # a transport map: Cdg from the triple-point lattice
+    if res.from_triple_points:  # a transport map
         rows.append("Cdg from the triple-point lattice:")
     rows.append(f"Cdg = [[{fmt_pm(c[0, 0], ce[0, 0], digits=3)}, {fmt_pm(c[0, 1], ce[0, 1], digits=3)}],")
     rows.append(f"       [{fmt_pm(c[1, 0], ce[1, 0], digits=3)}, {fmt_pm(c[1, 1], ce[1, 1], digits=3)}]] aF")

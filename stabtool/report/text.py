@@ -43,8 +43,7 @@ def summary_text(res: Any) -> str:
     else:
         lines.append("mutual shifts: unresolved")
     c, ce = res.gate_capacitance
-    t = res.transport
-    source = " from the triple-point lattice" if not d.ok and t is not None and t.consistent else ""
+    source = " from the triple-point lattice" if res.from_triple_points else ""
     lines.append(f"gate capacitances Cdg (aF){source}, rows dots, columns (x, y):")
     for i in range(2):
         lines.append("  [" + ", ".join(fmt_pm(c[i, k], ce[i, k]) for k in range(2)) + "]")
