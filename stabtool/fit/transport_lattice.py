@@ -87,6 +87,7 @@ from ..physics.triple_points import cdg_from_lattice, diagram_from_pair
 from ..quality import Quality
 from .model import MAX_CDG_REL_ERROR
 from .transport_spots import THRESHOLD_SIGMAS, TransportSpots, _axes, _spots, find_transport_spots
+from .uncertainty import propagate
 
 __all__ = ["TransportLattice", "TransportSpots", "find_transport_spots", "fit_lattice_points", "fit_transport_lattice"]
 
@@ -386,21 +387,20 @@ def _lsq(p: np.ndarray, lab: np.ndarray, site: np.ndarray, with_pair: bool,
 
 
 def _propagate(f: Callable[[np.ndarray], np.ndarray], theta: np.ndarray, cov: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Value and standard error of ``f(theta)`` (any array) by a central-difference Jacobian."""
-    val = np.asarray(f(theta), float)
-    var = np.zeros_like(val)
+    """Value and standard error of ``f(theta)`` (any array); ``theta`` (npar, 2) holds the x and
+    y fits, independent with covariances ``cov[0]``, ``cov[1]``
+    (:func:`stabtool.fit.uncertainty.propagate` on the stacked parameters)."""
     npar = theta.shape[0]
-    for c in range(2):
-        jac = []
-        for i in range(npar):
-            h = 1e-6 * max(np.max(np.abs(theta[1:3])), 1e-300)
-            tp, tm = theta.copy(), theta.copy()
-            tp[i, c] += h
-            tm[i, c] -= h
-            jac.append((np.asarray(f(tp), float) - np.asarray(f(tm), float)) / (2 * h))
-        jm = np.stack(jac, axis=-1)  # (..., npar)
-        var = var + np.einsum("...i,ij,...j->...", jm, cov[c], jm)
-    return val, np.sqrt(var)
+    flat = np.concatenate([theta[:, 0], theta[:, 1]])
+    block = np.zeros((2 * npar, 2 * npar))
+    block[:npar, :npar], block[npar:, npar:] = cov[0], cov[1]
+
+    def f_flat(q: np.ndarray) -> np.ndarray:
+        return np.asarray(f(np.column_stack([q[:npar], q[npar:]])), float).ravel()
+
+    val = np.asarray(f(theta), float)
+    _, err = propagate(f_flat, flat, block)
+    return val, err.reshape(val.shape)
 
 
 # ----------------------------------------------------------------------------- basis
