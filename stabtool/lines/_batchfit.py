@@ -387,7 +387,7 @@ def _fit_batch(u, y, mask, kind, halfwidth, n_iter) -> BatchFit:
     for it in range(n_iter):
         if act.size == 0:
             break
-        if it == n_iter - SETTLE_ITER:
+        if REQUIRE_CONVERGED and it == n_iter - SETTLE_ITER:  # (only the rule reads it)
             u_snap = p[3].copy()
             u_snap[act] = a.p[3]
         A, g, diag = _normal_equations_active(a)  # (diag: the diagonal of each system, a (5, n_act) view)
@@ -446,10 +446,12 @@ def _fit_batch(u, y, mask, kind, halfwidth, n_iter) -> BatchFit:
         ssr[act] = a.ssr
         conv[act[frz]] = True
     fit = _finish(p, ssr, uT, yT, mT, c0, kind, halfwidth)
+    if not REQUIRE_CONVERGED:
+        return replace(fit, converged=conv)
     usable = conv | (SHARP_UNCONVERGED_USABLE & (fit.width < 0.7))
     if SETTLE_ITER and u_snap is not None:
         usable |= np.abs(p[3] - u_snap) <= SETTLE_SIGMA * fit.u0_err
-    return replace(fit, ok=fit.ok & usable if REQUIRE_CONVERGED else fit.ok, converged=conv)
+    return replace(fit, ok=fit.ok & usable, converged=conv)
 
 
 def _accept(a: _Active, good: np.ndarray) -> None:
