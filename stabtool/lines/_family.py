@@ -40,6 +40,12 @@ class FamilyFit:
     bend_z: float = float("nan")
 
 
+def _points(r: RefinedLine) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """``r.points`` of a line known to have them (callers keep only lines with points)."""
+    assert r.points is not None
+    return r.points
+
+
 def _point_dir(lines: Sequence[TransitionLine]) -> tuple[np.ndarray, np.ndarray]:
     s = np.array([l.slope for l in lines], float)
     p = np.array([[l.x0, l.y0] for l in lines], float).reshape(-1, 2)
@@ -114,8 +120,8 @@ def _vertex_positions_all(rs: Sequence[RefinedLine], tab: dict, lo: np.ndarray |
     alx = np.array([r.along_x for r in rs], bool)
     tstep = np.where(alx, sy, sx)
     if lo is None or hi is None:
-        lo = np.array([float(r.points[0].min()) for r in rs])
-        hi = np.array([float(r.points[0].max()) for r in rs])
+        lo = np.array([float(_points(r)[0].min()) for r in rs])
+        hi = np.array([float(_points(r)[0].max()) for r in rs])
     span = hi - lo
     pa, da = _point_dir([r.line for r in rs])  # (m, 2)
     pb, db = tab["pb"], tab["db"]  # (o, 2)
@@ -235,7 +241,7 @@ def family_fit(members: Sequence[RefinedLine], others: Sequence[TransitionLine],
     lps, full = [], []
     tab = _others_table(others, axes) if others else None
     # smallest and largest t of every line (exact: min/max over the runs of the stacked t)
-    ts = [r.points[0] for r in rs]
+    ts = [_points(r)[0] for r in rs]  # (rs: only lines with points, see the filter above)
     first = np.cumsum([0] + [t.size for t in ts[:-1]])
     t_all = np.concatenate(ts).astype(float, copy=False)
     lo_a, hi_a = np.minimum.reduceat(t_all, first), np.maximum.reduceat(t_all, first)
@@ -244,7 +250,8 @@ def family_fit(members: Sequence[RefinedLine], others: Sequence[TransitionLine],
     gap_th = thermal_vertex_gap(rs, others, steep=steep)
     gap_px = VERTEX_GAP_PX * tstep
     for r, (va, vb), t_lo, t_hi in zip(rs, verts, lo, hi):
-        t, p, s = r.points
+        pts = _points(r)
+        t, p, sg = pts
         fin_a, fin_b = va == va, vb == vb  # not NaN (vertex positions are finite or NaN)
         if fin_a or fin_b:
             ptp = (t_hi - t_lo) if t.dtype == np.float64 else np.ptp(t)  # (= np.ptp(t) for float64 t)
@@ -257,9 +264,9 @@ def family_fit(members: Sequence[RefinedLine], others: Sequence[TransitionLine],
             if n_ok < 4:
                 va = vb = float("nan")
             elif n_ok < t.size:
-                t, p, s = t[ok], p[ok], s[ok]
-        lps.append(LinePoints(t=t, p=p, sig=s, vertices=(va, vb)))
-        full.append(LinePoints(t=r.points[0], p=r.points[1], sig=r.points[2]))
+                t, p, sg = t[ok], p[ok], sg[ok]
+        lps.append(LinePoints(t=t, p=p, sig=sg, vertices=(va, vb)))
+        full.append(LinePoints(t=pts[0], p=pts[1], sig=pts[2]))
     st_full = _stack(full)
     straight_all = _fit_family(full, st_full, bend=False) if st_full is not None else None
     # with no point near a vertex left out, the two straight fits see the same points (and the same stack)

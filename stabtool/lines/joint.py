@@ -31,7 +31,7 @@ from scipy.special import fdtrc  # F survival function, = scipy.stats.f.sf(x, df
 __all__ = ["LinePoints", "JointFit", "fit_family", "bending_significance", "clustered_slope_variance"]
 
 
-def _median(x: np.ndarray) -> np.floating:
+def _median(x: np.ndarray) -> np.float64:
     """``np.median`` of a 1-D float array, bit for bit, with less call overhead (one ``np.partition``).
 
     Like ``np.median``: the mean of the two middle values for even sizes,
@@ -122,7 +122,13 @@ def _line_sums(lid: np.ndarray, w: np.ndarray, S: np.ndarray, n_lines: int) -> n
     return np.stack([np.bincount(lid, w * S[:, c], minlength=n_lines) for c in range(S.shape[1])], 1)
 
 
-def _stack(lines: Sequence[LinePoints]):
+#: what :func:`_stack` returns: ``(cnt, t, y, sig, lid, tms)``
+_Stacked = tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]
+#: what :func:`_design` returns: ``(S, y, sig, lid, tms, n_bend)``
+_Design = tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray, int]
+
+
+def _stack(lines: Sequence[LinePoints]) -> _Stacked | None:
     """The part of :func:`_design` that does not depend on the model: usable points stacked, line by line.
 
     Returns ``(cnt, t, y, sig, lid, tms)`` (points per line, then the usable
@@ -150,7 +156,8 @@ def _stack(lines: Sequence[LinePoints]):
     return cnt, t, P[pts], SG[pts], lid, tms
 
 
-def _design(lines: Sequence[LinePoints], bend: bool, shared: bool, stacked=None):
+def _design(lines: Sequence[LinePoints], bend: bool, shared: bool,
+            stacked: _Stacked | None = None) -> _Design | None:
     """Stacked points with the shared columns only (slope, bending terms) and the line index of each point.
 
     Lines with fewer than three usable points are left out; bending terms
@@ -232,8 +239,8 @@ def fit_family(
     return _fit_family(lines, None, bend=bend, shared_bend=shared_bend, n_clip=n_clip)
 
 
-def _fit_family(lines: Sequence[LinePoints], stacked, *, bend: bool = False, shared_bend: bool = True,
-                n_clip: float = 3.5) -> JointFit | None:
+def _fit_family(lines: Sequence[LinePoints], stacked: _Stacked | None, *, bend: bool = False,
+                shared_bend: bool = True, n_clip: float = 3.5) -> JointFit | None:
     """:func:`fit_family` with the model-independent stacking of :func:`_stack` given (None: made here).
 
     The straight and the bent fit of one family's points share it.
@@ -274,6 +281,8 @@ def _fit_family(lines: Sequence[LinePoints], stacked, *, bend: bool = False, sha
         if np.array_equal(new, keep):
             break
         keep = new
+    # the loop runs at least once, and every pass that does not return sets beta, cov and off
+    assert beta is not None and cov is not None and off is not None
     # (the residuals of the last iteration's beta and offsets: r and res are up to date)
     chi2 = float((r[keep] ** 2).sum())
     dof = max(int(keep.sum()) - n_par, 1)
