@@ -19,6 +19,10 @@ was not tuned on:
   - ``rf``: a rotated I/Q mix ``cos φ · Re r + sin φ · Im r`` of the complex
     Lorentzian response ``r = 1/(1 − i d)`` (a reflectometry resonator
     read at a random demodulation phase φ);
+  - ``comb`` (opt-in, ``--sensors``): a sensor dot with several Coulomb peaks
+    across the map, ``Σ_k sech²(d − k P)`` with the period ``P`` 3–6 peak
+    widths and the operating point drifting over 1–2.5 periods: the charge
+    steps change sign and vanish between the peaks;
   - ``transport`` (opt-in, ``--sensors``): the generator's double-dot current
     at a small bias (only the triple points conduct: the analysis is expected
     to fail, never to report ok);
@@ -59,7 +63,7 @@ from typing import Any
 import numpy as np
 
 SENSORS = ("lorentz", "gauss", "sech2", "rf")
-ALL_SENSORS = SENSORS + ("transport",)
+ALL_SENSORS = SENSORS + ("comb", "transport")
 NOISES = ("pink", "walk", "spikes", "drift")
 SNRS = (4.0, 8.0, 20.0, 60.0)
 
@@ -162,6 +166,16 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
     if kind == "transport":
         sig = q / max(np.nanpercentile(np.abs(q), 99.9), 1e-300)
         h = 1.0
+    elif kind == "comb":
+        period = r.uniform(3, 6)
+        span = r.uniform(1, 2.5) * period
+        ang = r.uniform(0, 2 * np.pi)
+        detune = (r.uniform(0, period) + span * (math.cos(ang) * X + math.sin(ang) * Y)
+                  + r.choice([-1, 1]) * 0.35 * q)
+        ks = np.arange(np.floor(detune.min() / period) - 1, np.ceil(detune.max() / period) + 2)
+        sig = sum(1.0 / np.cosh(detune - k * period) ** 2 for k in ks)
+        dq = np.abs(np.diff(q, axis=1)) > 0.5
+        h = float(np.median(np.abs(np.diff(sig, axis=1))[dq])) if dq.any() else 0.1
     else:
         detune = (r.uniform(-1.5, 1.5) + r.uniform(-2, 2) * X + r.uniform(-2, 2) * Y
                   + r.choice([-1, 1]) * 0.35 * q)

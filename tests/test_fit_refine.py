@@ -73,6 +73,69 @@ def test_relocation_recovers_a_common_slope():
     assert rel.stderr < 0.01
 
 
+def _steps_on_a_slope(rng, *, n_rows=400, n=25, step_at=8.3, height=1.0, slope_per_px=0.3, noise=0.05):
+    """Cuts across a line: a step of ``height`` between samples on a linear background, white noise."""
+    u = np.arange(n)
+    base = slope_per_px * u * rng.choice([-1.0, 1.0], (n_rows, 1))
+    return base + height * (u[None, :] > step_at) + rng.normal(0, noise, (n_rows, n))
+
+
+def test_change_points_follow_the_step_on_a_sloped_sensor_background():
+    # a sensor flank adds a background ramp (here 7 step heights over the cut): the mean-shift
+    # change point is pulled towards the cut's middle; the nested least-squares fit with a
+    # straight background (Draper and Smith, Applied Regression Analysis, ch. 6) is not
+    from stabtool.fit.relocate import _change_points, _split_rows
+
+    rng = np.random.default_rng(5)
+    profs = _steps_on_a_slope(rng)
+    true_split = 8.5  # between samples 8 and 9
+    plain = _split_rows(profs, 0.05)
+    assert np.nanmedian(np.abs(plain - true_split)) > 2.0  # why the background is modelled
+    got = _change_points(profs, 0.05)
+    assert np.isfinite(got).all()
+    assert np.median(np.abs(got - true_split)) < 0.2
+    assert np.mean(np.abs(got - true_split) <= 0.5) > 0.95
+
+
+def test_change_points_on_a_flat_background_are_the_mean_shift_ones():
+    # no background slope: the slope test (3σ for one extra parameter) passes rarely, so the
+    # positions are the mean-shift change points (one parameter fewer, less scatter)
+    from stabtool.fit.relocate import _change_points, _split_rows
+
+    rng = np.random.default_rng(6)
+    profs = _steps_on_a_slope(rng, slope_per_px=0.0, noise=0.3, n_rows=1000)
+    same = np.isclose(_change_points(profs, 0.3), _split_rows(profs, 0.3), rtol=0, atol=0, equal_nan=True)
+    # P(χ²₁ > 9) = 0.27 % (scipy.stats.chi2.sf(9, 1)); the split may differ too, so allow 1 %
+    assert np.mean(same) > 0.99
+
+
+def test_relocation_on_a_curved_sensor_background_recovers_the_slope(monkeypatch):
+    import stabtool.fit.relocate as relocate
+    from stabtool.fit.relocate import relocate_family
+    from stabtool.lines.result import TransitionLine
+
+    # the three parallel steps of test_relocation_recovers_a_common_slope under a sensor response
+    # that rises and falls by 8 step heights along the lines (a sensor swept through its peaks):
+    # the background gradient changes along every line, and so would a mean-shift bias
+    x = np.linspace(0, 0.1, 101)
+    y = np.linspace(0, 0.06, 61)
+    xx, yy = np.meshgrid(x, y)
+    b = 0.3
+    z = sum((xx > xk + b * yy).astype(float) for xk in (0.02, 0.045, 0.07))
+    z = z + 8.0 * np.sin(2 * np.pi * (0.6 * xx / 0.1 + 0.9 * yy / 0.06))
+    z = z + np.random.default_rng(1).normal(0, 0.1, z.shape)
+    lines = [TransitionLine(family="dot1", x0=xk + b * 0.03 + 0.0007, y0=0.03, slope=1 / 0.33, slope_stderr=0.1,
+                            position_stderr=1e-4, start=(xk, 0.0), end=(xk + b * 0.06, 0.06)) for xk in (0.02, 0.045, 0.07)]
+    rel = relocate_family(z, x, y, lines, which=0, initial=0.33, noise=0.1)
+    assert rel.ok
+    assert rel.inv_or_slope == pytest.approx(b, abs=3 * rel.stderr + 1e-3)
+    assert rel.stderr < 0.01
+    # why: with mean-shift change points only, the slope is 0.25 (15 % off)
+    monkeypatch.setattr(relocate, "_change_points", relocate._split_rows)
+    biased = relocate_family(z, x, y, lines, which=0, initial=0.33, noise=0.1)
+    assert abs(biased.inv_or_slope - b) > 0.02
+
+
 def _bench_map(preset, snr, seed, size=112):
     from stabtool.bench.grid import BenchCase
     from stabtool.bench.maps import make_case_map
@@ -372,8 +435,11 @@ def test_refinement_flags_a_transport_map():
     tr = sm.data.copy()
     tr.values = cur + np.random.default_rng(1).normal(0, 0.05, cur.shape)
     ref = refine_model(tr, fit)
+    # the refinement never vouches for it; which check says so depends on where the fit ends (the
+    # structure test sat at z = 4.2 against 4.0 in one version, the fit stopped unconverged in another)
     assert not ref.ok
-    assert ref.structure.flagged
+    assert ref.structure.flagged or any("did not converge" in w or "does not describe" in w
+                                        for w in ref.quality.warnings)
 
 
 @pytest.mark.regression
@@ -429,3 +495,20 @@ def test_stated_m_error_covers_a_small_tunnel_coupling():
     mt = np.array(sm.truth.to_json()["virtual_gate_matrix"])
     for i, j in ((0, 1), (1, 0)):
         assert abs(m[i, j] - mt[i, j]) <= 3 * e[i, j], (i, j, m[i, j] - mt[i, j], e[i, j])
+
+
+def test_an_unconverged_refinement_makes_the_map_doubtful():
+    # a map the model fit could not settle on is not checked against the model: doubtful, with the reason
+    # (held-out maps whose fit did not converge carried numbers beyond the bounds in 20 of 21 cases)
+    from stabtool.fit.model import fit_diagram
+    from stabtool.fit.refine import refine_model
+    from stabtool.lines import detect_lines
+
+    da, _ = _sensor_map(3)
+    fit = fit_diagram(detect_lines(da), data=da)
+    assert fit.ok
+    cut_short = refine_model(da, fit, max_iter=1)
+    assert not cut_short.converged
+    assert not cut_short.ok and not cut_short.quality.ok
+    assert any("did not converge in 1 steps" in w for w in cut_short.quality.warnings)
+    assert refine_model(da, fit).converged  # the same map with the usual step budget
