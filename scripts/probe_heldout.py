@@ -44,6 +44,7 @@ Usage::
     python scripts/probe_heldout.py --seeds 0:24
     python scripts/probe_heldout.py --seeds 1,10,11 --verbose --out /tmp/probe
     python scripts/probe_heldout.py --seeds 0:12 --sensors rf --noise pink,drift
+    python scripts/probe_heldout.py --seeds 0:24 --start-e=-3:-2.2   # empty corner: absolute labels checked
 
 The map factory :func:`make_map` and :func:`evaluate` are importable (for
 scratch experiments that patch the analysis).
@@ -124,7 +125,8 @@ def _transfer(kind: str, d: np.ndarray, phi: float) -> np.ndarray:
 
 def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[str, ...] = SENSORS,
              noise: tuple[str, ...] | None = None, tunnel_coupling_ueV: float = 0.0,
-             mutual_fraction: tuple[float, float] | None = None) -> ProbeMap:
+             mutual_fraction: tuple[float, float] | None = None,
+             start_e: tuple[float, float] | None = None) -> ProbeMap:
     """Build held-out map ``seed`` (deterministic in all arguments).
 
     Parameters
@@ -142,13 +144,19 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
     mutual_fraction : (float, float), optional
         Draw ``Cm`` so that ``Cm / C_total`` of the larger dot (``E_Cm/E_C``
         of the smaller one) lies in this range: strongly coupled dots.
+    start_e : (float, float), optional
+        Draw the induced charge of both dots at the window's low corner in this
+        range (default 0.35): below −1 the map shows the empty (0, 0) region
+        well below the first lines (few-electron maps).
     """
     from stabtool.simulate import simulate_map
     from stabtool.simulate.quick import double_dot_window
 
     r = np.random.default_rng([seed, 7919])
     dev = _device(r, mutual_fraction)
-    xr_, yr_ = double_dot_window(dev, x_gate="GX", y_gate="GY", electrons=r.uniform(3.5, 6))
+    electrons = r.uniform(3.5, 6)
+    e0 = 0.35 if start_e is None else float(np.random.default_rng([seed, 17]).uniform(*start_e))
+    xr_, yr_ = double_dot_window(dev, x_gate="GX", y_gate="GY", electrons=electrons + 0.35 - e0, start_e=e0)
     T = float(r.uniform(0.03, 0.25))
     ny, nx = (int(v) for v in r.integers(size[0], size[1] + 1, 2))
     kind = str(r.choice(list(sensors)))
@@ -228,11 +236,38 @@ def evaluate(result_json: dict, truth: dict, *, snr: float) -> dict:
     if j.get("charging_energy_meV") and t.get("charging_energy_meV"):
         keys = ("dot1", "dot2", "mutual")
         ec = _rel([j["charging_energy_meV"].get(k) for k in keys], [t["charging_energy_meV"].get(k) for k in keys])
+    wrong_labels = _wrong_absolute_labels(j, t)
     vg_bound = VG_CLEAN if snr >= CLEAN_SNR else VG_NOISY
     beyond = [name for name, e, b in (("vg", vg, vg_bound), ("cdg", cdg, CDG_REL), ("la", la, LA_REL),
                                       ("ec", ec, EC_REL)) if np.isfinite(e) and e > b]
     ok = bool(j["quality"]["ok"])
-    return dict(ok=ok, vg=vg, cdg=cdg, la=la, ec=ec, beyond=beyond, silent=ok and bool(beyond))
+    return dict(ok=ok, vg=vg, cdg=cdg, la=la, ec=ec, beyond=beyond, silent=ok and bool(beyond),
+                wrong_labels=wrong_labels)
+
+
+def _wrong_absolute_labels(j: dict, t: dict) -> int:
+    """Charge-state regions whose occupation, claimed absolute for a dot, is not the ground state there.
+
+    Ground state: ``argmin_N ½ (e(N − N0) − Cdg V)ᵀ Cdd⁻¹ (e(N − N0) − Cdg V)`` over N ∈ [0, 15]²
+    (the conventions' energy with the device's offset charges N0), at each region's centroid.
+    """
+    cs, dev = j.get("charge_states") or {}, t.get("device") or {}
+    absolute = cs.get("absolute") or {}
+    claimed = [bool(absolute.get("dot1")), bool(absolute.get("dot2"))]
+    if not any(claimed) or not dev:
+        return 0
+    from stabtool.physics.constants import E_AC
+
+    cdg, cdd = np.asarray(dev["cdg_aF"], float), np.asarray(dev["cdd_aF"], float)
+    n0 = np.asarray(dev.get("offset_charge_e") or np.zeros(cdd.shape[0]), float)
+    inv = np.linalg.inv(cdd)
+    grid = np.array([(a, b) for a in range(16) for b in range(16)], float)
+    wrong = 0
+    for reg in cs.get("regions") or []:
+        d = E_AC * (grid - n0) - cdg @ np.array([reg["x"], reg["y"]])
+        n = grid[np.argmin(0.5 * np.einsum("ki,ij,kj->k", d, inv, d))]
+        wrong += any(c and reg[key] != int(n[i]) for i, (c, key) in enumerate(zip(claimed, ("n1", "n2"))))
+    return wrong
 
 
 def _fmt(v: float, nd: int = 4) -> str:
@@ -262,6 +297,9 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--tunnel-ueV", type=float, default=0.0, help="interdot tunnel coupling of the truth (µeV)")
     p.add_argument("--mutual", default=None,
                    help="'A:B': draw Cm / C_total of the larger dot in [A, B] (strongly coupled dots)")
+    p.add_argument("--start-e", default=None,
+                   help="'A:B': induced charge of both dots at the low corner (default 0.35); e.g. --start-e=-3:-2.2 for "
+                        "maps with the empty (0,0) region well below the first lines")
     p.add_argument("--out", default=None, help="folder for one PNG per map (the analysis plot)")
     p.add_argument("--verbose", action="store_true", help="print every warning of every map")
     a = p.parse_args(argv)
@@ -285,7 +323,8 @@ def main(argv: list[str] | None = None) -> int:
           f"  t/s  first doubts (warnings that clear ok are marked '!')")
     for s in _parse_seeds(a.seeds):
         pm = make_map(s, size=(lo, hi), sensors=sensors, noise=noise, tunnel_coupling_ueV=a.tunnel_ueV,
-                      mutual_fraction=tuple(float(v) for v in a.mutual.split(":")) if a.mutual else None)
+                      mutual_fraction=tuple(float(v) for v in a.mutual.split(":")) if a.mutual else None,
+                      start_e=tuple(float(v) for v in a.start_e.split(":")) if a.start_e else None)
         t0 = time.perf_counter()
         try:
             res = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data)
@@ -294,7 +333,8 @@ def main(argv: list[str] | None = None) -> int:
             res, j = None, {"quality": {"ok": False, "warnings": [f"CRASH {type(exc).__name__}: {exc}"]}}
         dt = time.perf_counter() - t0
         ev = evaluate(j, pm.truth, snr=pm.meta["snr"])
-        ev.update(pm.meta, time=dt)
+        absolute = (j.get("charge_states") or {}).get("absolute") or {}
+        ev.update(pm.meta, time=dt, absolute=any(bool(v) for v in absolute.values()))
         rows.append(ev)
         ws = list(j["quality"]["warnings"])
         if res is not None:
@@ -305,6 +345,8 @@ def main(argv: list[str] | None = None) -> int:
         doubt = ws if a.verbose else [w for w in ws if w.startswith("! ")][:2]
         m = pm.meta
         tag = " SILENT-FAIL(" + ",".join(ev["beyond"]) + ")" if ev["silent"] else ""
+        if ev["wrong_labels"]:
+            tag += f" WRONG-ABSOLUTE-LABELS({ev['wrong_labels']} regions)"
         print(f"{s:4d} {m['sensor']:8} {m['noise']:26} {m['snr']:4.0f} {m['shape'][0]:4d}x{m['shape'][1]:<4d} "
               f"{'OK ' if ev['ok'] else 'no '} {_fmt(ev['vg'])} {_fmt(ev['cdg'])} {_fmt(ev['la'])} {_fmt(ev['ec'])} "
               f"{dt:5.1f}{tag}  | " + ("\n      - ".join([""] + doubt) if a.verbose else "; ".join(w[:60] for w in doubt)),
@@ -334,6 +376,9 @@ def main(argv: list[str] | None = None) -> int:
     within = [r for r in rows if not r["beyond"] and np.isfinite(r["vg"]) and np.isfinite(r["cdg"])]
     print(f"maps whose reported vg and Cdg are within the bounds: {len(within)}/{n} "
           f"(of which ok: {sum(r['ok'] for r in within)})")
+    n_abs = sum(1 for r in rows if r["absolute"])
+    bad = [str(r["seed"]) for r in rows if r["wrong_labels"]]
+    print(f"absolute charge states claimed on {n_abs}/{n} maps; wrong on {len(bad)} ({', '.join(bad) or 'none'})")
     for k in ALL_SENSORS:
         sub = [r for r in rows if r["sensor"] == k]
         if sub:

@@ -283,6 +283,14 @@ class AnalysisResult:
         minv = np.linalg.inv(d.vg_matrix)
         labels = np.vstack([lat.labels1, lat.labels2])
         lo, hi = labels.min(axis=0) - 1, labels.max(axis=0) + 1
+        cs = self.charge_states
+        if cs is not None:
+            # an empty dot has no transitions below its lowest line: no triple points there (the cell's
+            # pair involves N1 − 1 ≥ 0 and the dot2 line N2 → N2 + 1 with N2 ≥ 0)
+            if cs.absolute[0]:
+                lo[0] = max(lo[0], int(lat.labels1[:, 0].min()))
+            if cs.absolute[1]:
+                lo[1] = max(lo[1], int(lat.labels2[:, 1].min()) - 1)
         x = np.asarray(self.data[self.data.dims[-1]].values, float)
         y = np.asarray(self.data[self.data.dims[0]].values, float)
         pts = []
@@ -864,7 +872,7 @@ class Analyzer:
 
     @staticmethod
     def _states(da: xr.DataArray, fit: DiagramFit, detection: LineDetection | None, x: np.ndarray,
-                y: np.ndarray) -> ChargeStates:
+                y: np.ndarray, *, allow_absolute: bool = True) -> ChargeStates:
         lat = fit.lattice
         assert lat is not None
         lowest = (int(lat.labels1[:, 0].min()), int(lat.labels2[:, 1].min()))
@@ -872,6 +880,7 @@ class Analyzer:
         return label_charge_states(
             x, y, fit.vg_matrix, addition_V=fit.addition_V, mutual_V=np.maximum(fit.mutual_V, 0.0),
             offsets_V=fit.offsets_V, lowest_line=lowest, snr=snr, valid=np.isfinite(np.asarray(da.values)),
+            allow_absolute=allow_absolute and fit.labels_consistent,
         )
 
     def analyze_file(self, path: str | os.PathLike[str], **load_kwargs: Any) -> AnalysisResult | DiamondAnalysisResult:
@@ -943,10 +952,19 @@ class Analyzer:
                 adoption = adopt_refinement(fit, refinement)
                 q = q.merge(refinement.quality).merge(adoption.quality)
                 adopted = adoption.adopted
-                if adopted:
-                    fit = adoption.fit
-                    states = self._states(da, fit, detection, x, y)
+                # an empty corner counts lines from the lowest label: not claimed when the model fit
+                # could not settle on the map or does not describe it (held-out maps with an empty
+                # corner: the wrong absolute labellings came with a lattice doubt, an unconverged fit or
+                # residual structure)
+                sound = refinement.converged and not (refinement.structure is not None
+                                                      and refinement.structure.flagged)
+                if adopted or (not sound and states.absolute != (False, False)):
+                    fit = adoption.fit if adopted else fit
+                    states = self._states(da, fit, detection, x, y, allow_absolute=sound)
                 timings["refine"] = time.perf_counter() - t2
+            if states.withheld:
+                q = q.with_warning("the map reaches below the lowest lines far enough to call the dots empty, but "
+                                   "the line labelling is doubtful: charge states are relative", doubtful=False)
         if fit.ok:
             from .fit.uncertainty import error_verdict
 

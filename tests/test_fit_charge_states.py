@@ -55,6 +55,24 @@ def test_empty_corner_gives_absolute_occupations():
     assert cs2.absolute == (False, False)
 
 
+def test_a_doubtful_labelling_keeps_the_occupations_relative():
+    # an empty corner counts electrons from the lowest line's label; when the lattice leaves the
+    # labelling in doubt (held-out maps: every wrong absolute label, up to 1.0 confident, came with
+    # such a doubt) the labels stay relative, and the result says an empty corner was withheld
+    t = truth_from_capacitances(**WORKED)
+    x = np.linspace(-0.04, 0.06, 100)
+    y = np.linspace(-0.04, 0.06, 100)
+    off = np.array([-3 * t.addition_V[0] - 3 * t.mutual_V[0], -3 * t.addition_V[1] - 3 * t.mutual_V[1]])
+    kw = dict(addition_V=t.addition_V, mutual_V=t.mutual_V, offsets_V=off, lowest_line=(4, 4), snr=50.0)
+    sure = label_charge_states(x, y, t.m, **kw)
+    held = label_charge_states(x, y, t.m, allow_absolute=False, **kw)
+    assert sure.absolute == (True, True) and not sure.withheld
+    assert held.absolute == (False, False) and held.withheld
+    assert held.confidence == (0.0, 0.0) and not held.few_electron
+    assert held.labels.min() == 0  # relative to the lowest state seen
+    assert held.to_json()["absolute_withheld"] is True
+
+
 def test_regions_list_every_state_with_its_pixel_count_and_centroid():
     t = truth_from_capacitances(**WORKED)
     x = np.linspace(-0.005, 0.06, 70)

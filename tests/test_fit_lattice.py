@@ -147,6 +147,8 @@ def test_a_mutual_shift_above_half_the_addition_voltage_is_reported_doubtful():
     fit = fit_diagram(honeycomb_detection(t, x=AXIS, y=AXIS, offset_V=(0.01, 0.012)))
     assert not fit.quality.ok
     assert any("is negative (unphysical)" in w for w in fit.quality.warnings)
+    assert not fit.labels_consistent  # no absolute occupations from this labelling
     # the weakly coupled honeycomb of the same gates is not flagged
     good = fit_diagram(honeycomb_detection(truth_from_capacitances(**WORKED), x=AXIS, y=AXIS, offset_V=(0.01, 0.012)))
     assert good.quality.ok and not any("negative" in w for w in good.quality.warnings)
+    assert good.labels_consistent

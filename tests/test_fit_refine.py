@@ -436,10 +436,10 @@ def test_refinement_flags_a_transport_map():
     tr.values = cur + np.random.default_rng(1).normal(0, 0.05, cur.shape)
     ref = refine_model(tr, fit)
     # the refinement never vouches for it; which check says so depends on where the fit ends (the
-    # structure test sat at z = 4.2 against 4.0 in one version, the fit stopped unconverged in another)
+    # structure test sat at z = 4.2 against 4.0 in one version, 3.7 in another where the weak steps
+    # (SNR 0.4) said it; the fit stopped unconverged in a third)
     assert not ref.ok
-    assert ref.structure.flagged or any("did not converge" in w or "does not describe" in w
-                                        for w in ref.quality.warnings)
+    assert not ref.quality.ok and ref.quality.warnings
 
 
 @pytest.mark.regression

@@ -114,6 +114,10 @@ class ChargeStates:
     regions : tuple of dict
         One entry per state present: ``{"n1", "n2", "x", "y", "pixels"}`` with
         the region's centroid in volts.
+    withheld : bool
+        The map reaches far enough below a dot's lowest line to call it empty,
+        but the caller did not allow absolute occupations (a doubtful line
+        labelling): the labels are relative.
     """
 
     labels: np.ndarray
@@ -121,10 +125,12 @@ class ChargeStates:
     confidence: tuple[float, float] = (0.0, 0.0)
     few_electron: bool = False
     regions: tuple[dict, ...] = field(default_factory=tuple)
+    withheld: bool = False
 
     def to_json(self) -> dict:
         return {
             "absolute": {"dot1": bool(self.absolute[0]), "dot2": bool(self.absolute[1])},
+            "absolute_withheld": bool(self.withheld),
             "confidence": {"dot1": float(self.confidence[0]), "dot2": float(self.confidence[1])},
             "few_electron": bool(self.few_electron),
             "regions": [dict(r) for r in self.regions],
@@ -142,6 +148,7 @@ def label_charge_states(
     lowest_line: tuple[int, int],
     snr: float = np.inf,
     valid: np.ndarray | None = None,
+    allow_absolute: bool = True,
 ) -> ChargeStates:
     """Label every pixel with (N1, N2) and decide whether the labels are absolute.
 
@@ -161,6 +168,11 @@ def label_charge_states(
         confidence that no line was missed in the empty corner.
     valid : ndarray of bool, shape (ny, nx), optional
         Pixels that were measured (False for NaN).
+    allow_absolute : bool
+        False when the line labelling itself is doubtful (the lattice does not
+        settle which line is which): an empty corner then counts lines from a
+        label that may be off by one, so the labels stay relative
+        (``withheld`` says that the map would otherwise have been called empty).
 
     Notes
     -----
@@ -176,11 +188,14 @@ def label_charge_states(
         valid = np.ones(u.shape, bool)
     absolute = []
     conf = []
+    withheld = False
     for i in range(2):
         below = free[..., i][valid]
         margin = float(lowest_line[i] - 1 - below.min()) if below.size else 0.0
         # margin in cells: how many further transitions the map would show below the lowest one
         ok = margin >= EMPTY_MARGIN_CELLS
+        withheld = withheld or (ok and not allow_absolute)
+        ok = ok and allow_absolute
         absolute.append(bool(ok))
         c = min(1.0, margin / (EMPTY_MARGIN_CELLS + 1.0)) * min(1.0, float(snr) / 10.0) if ok else 0.0
         conf.append(float(c))
@@ -219,4 +234,4 @@ def label_charge_states(
                             "y": float(cy / cnt), "pixels": int(cnt)})
     few = bool(all(absolute) and flat.size and np.any(np.all(flat == 0, axis=-1)))
     return ChargeStates(labels=labels, absolute=(absolute[0], absolute[1]), confidence=(conf[0], conf[1]),
-                        few_electron=few, regions=tuple(regions))
+                        few_electron=few, regions=tuple(regions), withheld=withheld)

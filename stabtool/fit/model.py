@@ -92,6 +92,11 @@ class DiagramFit:
         Index of the merged dot1 / dot2 line that each detected line belongs to.
     lines1, lines2, interdot : tuple of TransitionLine
     quality : Quality
+    labels_consistent : bool
+        False when the lattice leaves the charge labelling of the lines in
+        doubt (lines off one lattice, cells of different size, a δ that is
+        undetermined, negative or not below ΔV): the occupations are then
+        not claimed absolute (:func:`stabtool.fit.charge_states.label_charge_states`).
     """
 
     ok: bool
@@ -118,6 +123,7 @@ class DiagramFit:
     interdot: tuple[TransitionLine, ...] = field(default_factory=tuple)
     quality: Quality = field(default_factory=Quality)
     staircase_families: tuple[str, ...] = ()
+    labels_consistent: bool = True
 
     def __bool__(self) -> bool:
         return self.ok
@@ -430,10 +436,11 @@ def _fit_once(
     cov[:2, 2:] = (g @ cov_m).T
     mutual = lat.mutual_V.copy()
     resolved = True
+    consistent = True  # the lattice settles the charge labelling (see DiagramFit.labels_consistent)
     for i in range(2):
         if not np.isfinite(mutual[i]):
             q = q.with_warning(f"δ{i + 1} undetermined: no dot{i + 1} lines in two charge bands and no interdot segment")
-            resolved = False
+            resolved = consistent = False
             mutual[i] = 0.0
             cov[3 + 2 * i, 3 + 2 * i] = (0.3 * lat.addition_V[i]) ** 2
     p[3], p[5] = mutual
@@ -457,21 +464,26 @@ def _fit_once(
     for i, name in enumerate(("dot1", "dot2")):
         spread = lat.addition_spread_V[i]
         if np.isfinite(spread) and spread > MAX_CELL_SPREAD * lat.addition_V[i]:
+            consistent = False
             q = q.with_warning(
                 f"{name} addition voltage varies from cell to cell by {100 * spread / lat.addition_V[i]:.0f} % "
                 "(not periodic; reported value is the fitted mean)"
             )
         res = lat.residuals1 if i == 0 else lat.residuals2
         if res.size and np.max(np.abs(res)) > 0.2 * lat.addition_V[i]:
+            consistent = False
             q = q.with_warning(f"{name} lines do not fit one charge lattice (residual {np.max(np.abs(res)) * 1e3:.3g} mV)")
     if np.any(lat.addition_V <= 0):
+        consistent = False
         q = q.with_warning("non-positive addition voltage: line labelling failed")
     if np.any(np.abs(mutual) >= lat.addition_V):
+        consistent = False
         q = q.with_warning("mutual shift larger than the addition voltage: inconsistent lattice")
     for i in range(2):
         # δ_i/ΔV_i = E_Cm/E_Ci ≥ 0 in the constant-interaction model; the lattice fit keeps δ in
         # (−ΔV/2, ΔV/2], so a significantly negative δ is a labelling it cannot settle
         if mutual[i] < -MUTUAL_SIGMAS * merr[i]:
+            consistent = False
             q = q.with_warning(
                 f"mutual shift δ{i + 1} = {mutual[i] * 1e3:.3g} ± {merr[i] * 1e3:.2g} mV is negative "
                 "(unphysical): the charge labelling of the lines is ambiguous"
@@ -502,6 +514,7 @@ def _fit_once(
         lines2=lines2,
         interdot=inter,
         quality=q,
+        labels_consistent=consistent,
     )
     return replace(result, quality=error_verdict(result))
 

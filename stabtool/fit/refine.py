@@ -1049,7 +1049,7 @@ def refine_model(
     charge_states: Any = None,
     max_points: int = MAX_POINTS,
     width_guess_V: float | None = None,
-    max_iter: int = 8,
+    max_iter: int = 16,
     sensor_curvature: bool = True,
 ) -> Refinement:
     """Fit the constant-interaction model to the map, starting from ``fit``.

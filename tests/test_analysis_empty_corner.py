@@ -1,0 +1,65 @@
+"""Maps that reach the empty (0, 0) region: absolute occupations and triple points only where lines meet.
+
+The ground state is the argmin over N ≥ 0 of the constant-interaction energy
+``½ (e(N − N0) − Cdg V)ᵀ Cdd⁻¹ (e(N − N0) − Cdg V)`` (van der Wiel et al.,
+Rev. Mod. Phys. 75, 1 (2003)), evaluated here by brute force.
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pytest
+
+from stabtool.analysis import Analyzer
+from stabtool.physics.constants import E_AC
+from stabtool.simulate import simulate_map
+from stabtool.simulate.device import Device
+from stabtool.simulate.quick import double_dot_window
+
+DEVICE = Device(cdg_aF=[[10.0, 2.0], [1.8, 9.0]], cdd_aF=[[70.0, -12.0], [-12.0, 75.0]], gate_names=["PA", "PB"],
+                dot_names=["L", "R"], name="kestrel-7")
+
+
+def _ground_state(x: float, y: float) -> tuple[int, int]:
+    inv = np.linalg.inv(DEVICE.cdd)
+    n = np.array([(a, b) for a in range(12) for b in range(12)], float)
+    d = E_AC * (n - DEVICE.offsets) - DEVICE.cdg @ np.array([x, y])
+    k = int(np.argmin(np.einsum("ki,ij,kj->k", d, inv, d)))
+    return int(n[k, 0]), int(n[k, 1])
+
+
+@pytest.fixture(scope="module")
+def result():
+    # the window starts 2.6 electrons below the first transition of each dot: an empty corner of
+    # more than two addition voltages (stabtool.fit.charge_states.EMPTY_MARGIN_CELLS)
+    xr_, yr_ = double_dot_window(DEVICE, x_gate="PA", y_gate="PB", electrons=7.0, start_e=-2.6)
+    sm = simulate_map(DEVICE, x_gate="PA", y_gate="PB", x_range_V=xr_, y_range_V=yr_, shape=(160, 160),
+                      temperature_K=0.05, readout="charge", rng=2)
+    da = sm.data.copy(data=sm.data.values + np.random.default_rng(3).normal(0, 0.02, sm.data.shape))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return Analyzer()(da)
+
+
+def test_the_empty_corner_gives_the_ground_state_occupations(result):
+    cs = result.to_json()["charge_states"]
+    assert cs["absolute"] == {"dot1": True, "dot2": True} and cs["few_electron"]
+    assert not cs["absolute_withheld"]
+    big = [r for r in cs["regions"] if r["pixels"] >= 50]
+    assert len(big) >= 9
+    for r in big:
+        assert (r["n1"], r["n2"]) == _ground_state(r["x"], r["y"]), r
+
+
+def test_triple_points_sit_where_charge_states_meet(result):
+    pts = np.asarray(result.to_json()["triple_points_V"], float)
+    assert len(pts) >= 4
+    dv = result.diagram.addition_V
+    ang = np.linspace(0, 2 * np.pi, 12, endpoint=False)
+    for x, y in pts:
+        # around a triple point the ground state takes at least two values within a fifth of a cell
+        # (none inside the empty region, where no line is)
+        around = {_ground_state(x + 0.2 * dv[0] * np.cos(a), y + 0.2 * dv[1] * np.sin(a)) for a in ang}
+        assert len(around) >= 2, (x, y, around)
