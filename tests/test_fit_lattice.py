@@ -152,3 +152,42 @@ def test_a_mutual_shift_above_half_the_addition_voltage_is_reported_doubtful():
     good = fit_diagram(honeycomb_detection(truth_from_capacitances(**WORKED), x=AXIS, y=AXIS, offset_V=(0.01, 0.012)))
     assert good.quality.ok and not any("negative" in w for w in good.quality.warnings)
     assert good.labels_consistent
+
+
+def _honeycomb_segments(dv, dm, c, n=5, keep2=None):
+    """Dot1 and dot2 segments of an n×n honeycomb in virtual coordinates, exact (CI model, van der Wiel
+    et al., RMP 75, 1 (2003)); ``keep2(n1, n2, lo, hi)`` may cut the dot2 extents."""
+    n1, n2 = (a.ravel() for a in np.meshgrid(np.arange(n), np.arange(n), indexing="ij"))
+    pos1 = dv[0] * (n1 - 0.5) + dm[0] * n2 + c[0]
+    lo1, hi1 = dv[1] * (n2 - 0.5) + dm[1] * n1 + c[1], dv[1] * (n2 + 0.5) + dm[1] * (n1 - 1) + c[1]
+    pos2 = dv[1] * (n2 - 0.5) + dm[1] * n1 + c[1]
+    lo2, hi2 = dv[0] * (n1 - 0.5) + dm[0] * n2 + c[0], dv[0] * (n1 + 0.5) + dm[0] * (n2 - 1) + c[0]
+    if keep2 is not None:
+        lo2, hi2 = keep2(n1, n2, lo2, hi2)
+    k = n1.size
+    err = np.full(k, 1e-7)
+    return (FamilySegments(pos=pos1, pos_err=err, lo=lo1, hi=hi1, lever=np.zeros(k)),
+            FamilySegments(pos=pos2, pos_err=err, lo=lo2, hi=hi2, lever=np.zeros(k)))
+
+
+def test_segments_cut_short_by_an_insensitive_sensor_keep_the_exact_cell():
+    # A sensor swept through its own Coulomb peaks loses the charge steps between them: segments end
+    # early. Here every dot2 segment keeps 60 % of its extent, the lower part in even and the upper part
+    # in odd dot2 bands, so the extent midpoints of a band pair differ by δ1 ± 0.4 ΔV1 instead of δ1.
+    from stabtool.fit.lattice import _band_step
+
+    dv, dm, c = np.array([6e-3, 7e-3]), np.array([0.3e-3, 0.4e-3]), np.array([1e-3, 2e-3])
+
+    def cut(n1, n2, lo, hi):
+        low = n2 % 2 == 0
+        return np.where(low, lo, hi - 0.6 * (hi - lo)), np.where(low, lo + 0.6 * (hi - lo), hi)
+
+    d1, d2 = _honeycomb_segments(dv, dm, c, keep2=cut)
+    # the premise: the midpoint guess of δ1 is far off (the positions are exact)
+    assert abs(_band_step(d2)[1] - dm[0]) > 0.2 * dv[0]
+    lat = fit_lattice(d1, d2)
+    assert lat.ok
+    # the positions alone fix the cell: δ1 from the dot1 lines of neighbouring dot2 bands
+    np.testing.assert_allclose(lat.addition_V, dv, rtol=1e-9)
+    np.testing.assert_allclose(lat.mutual_V, dm, rtol=1e-6)
+    assert np.max(np.abs(lat.residuals1)) < 1e-9 and np.max(np.abs(lat.residuals2)) < 1e-9
