@@ -54,19 +54,29 @@ def test_refinement_on_a_generator_map():
     assert ref.residual_ratio < 3.0
 
 
-def test_relocation_recovers_a_common_slope():
-    from stabtool.fit.relocate import relocate_family
+def _three_parallel_steps(background=None):
+    """Three parallel sharp steps x = x_k + b y (b = 0.3 dx/dy) on a 1 mV grid, white noise 0.1, plus
+    ``background(xx, yy)``; with TransitionLines 0.7 mV off and at a slope 10 % off, as a detector gives."""
     from stabtool.lines.result import TransitionLine
 
-    # three parallel sharp steps x = x_k + b y on a 1 mV grid, b = 0.3 (dx/dy), white noise
     x = np.linspace(0, 0.1, 101)
     y = np.linspace(0, 0.06, 61)
     xx, yy = np.meshgrid(x, y)
     b = 0.3
     z = sum((xx > xk + b * yy).astype(float) for xk in (0.02, 0.045, 0.07))
+    if background is not None:
+        z = z + background(xx, yy)
     z = z + np.random.default_rng(1).normal(0, 0.1, z.shape)
     lines = [TransitionLine(family="dot1", x0=xk + b * 0.03 + 0.0007, y0=0.03, slope=1 / 0.33, slope_stderr=0.1,
                             position_stderr=1e-4, start=(xk, 0.0), end=(xk + b * 0.06, 0.06)) for xk in (0.02, 0.045, 0.07)]
+    return x, y, z, lines, b
+
+
+def test_relocation_recovers_a_common_slope():
+    from stabtool.fit.relocate import relocate_family
+
+    # three parallel sharp steps x = x_k + b y on a 1 mV grid, b = 0.3 (dx/dy), white noise
+    x, y, z, lines, b = _three_parallel_steps()
     rel = relocate_family(z, x, y, lines, which=0, initial=0.33, noise=0.1)
     assert rel.ok
     assert rel.inv_or_slope == pytest.approx(b, abs=3 * rel.stderr + 1e-3)
@@ -112,20 +122,12 @@ def test_change_points_on_a_flat_background_are_the_mean_shift_ones():
 def test_relocation_on_a_curved_sensor_background_recovers_the_slope(monkeypatch):
     import stabtool.fit.relocate as relocate
     from stabtool.fit.relocate import relocate_family
-    from stabtool.lines.result import TransitionLine
 
     # the three parallel steps of test_relocation_recovers_a_common_slope under a sensor response
     # that rises and falls by 8 step heights along the lines (a sensor swept through its peaks):
     # the background gradient changes along every line, and so would a mean-shift bias
-    x = np.linspace(0, 0.1, 101)
-    y = np.linspace(0, 0.06, 61)
-    xx, yy = np.meshgrid(x, y)
-    b = 0.3
-    z = sum((xx > xk + b * yy).astype(float) for xk in (0.02, 0.045, 0.07))
-    z = z + 8.0 * np.sin(2 * np.pi * (0.6 * xx / 0.1 + 0.9 * yy / 0.06))
-    z = z + np.random.default_rng(1).normal(0, 0.1, z.shape)
-    lines = [TransitionLine(family="dot1", x0=xk + b * 0.03 + 0.0007, y0=0.03, slope=1 / 0.33, slope_stderr=0.1,
-                            position_stderr=1e-4, start=(xk, 0.0), end=(xk + b * 0.06, 0.06)) for xk in (0.02, 0.045, 0.07)]
+    x, y, z, lines, b = _three_parallel_steps(
+        background=lambda xx, yy: 8.0 * np.sin(2 * np.pi * (0.6 * xx / 0.1 + 0.9 * yy / 0.06)))
     rel = relocate_family(z, x, y, lines, which=0, initial=0.33, noise=0.1)
     assert rel.ok
     assert rel.inv_or_slope == pytest.approx(b, abs=3 * rel.stderr + 1e-3)
