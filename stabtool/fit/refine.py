@@ -1251,9 +1251,10 @@ def refine_model(
     params["width_V2"] = float(theta[8] / theta[5])
     errors["width_V2"] = float(params["width_V2"] * np.hypot(err[8] / theta[8], err[5] / theta[5]))
     if not converged:
-        # doubtful: the map is then not checked against the model (held-out probe seeds 0–127: 21 maps
-        # did not converge, 20 of them with numbers beyond the fitter bounds, Cdg up to 345 % off; one
-        # map read by a multi-peak sensor was otherwise reported ok with a Cdg element 3 % off)
+        # doubtful: the map is then not checked against the model (held-out probe seeds 0–127, with 8
+        # steps: 21 maps did not converge, 20 of them with numbers beyond the fitter bounds, Cdg up to
+        # 345 % off; one map read by a multi-peak sensor was otherwise reported ok with a Cdg element 3 %
+        # off). With 16 steps, 1 of 24 probe maps does not converge (3 with 8).
         q = q.with_warning(f"model fit to the map did not converge in {max_iter} steps: the lines are not "
                            "checked against the map")
     if structure.flagged:
