@@ -69,7 +69,8 @@ def summary_text(res: Any) -> str:
     cs = res.charge_states
     if cs is not None:
         kind = ["absolute" if a else "relative" for a in cs.absolute]
-        lines.append(f"charge states: N1 {kind[0]}, N2 {kind[1]}" + ("; few-electron regime" if cs.few_electron else ""))
+        lines.append(f"charge states: N1 {kind[0]}, N2 {kind[1]}" + ("; few-electron regime" if cs.few_electron else "")
+                     + ("; empty corner in view, absolute labels withheld (doubtful labelling)" if cs.withheld else ""))
     if res.refinement is not None:
         r = res.refinement
         lines.append(f"model fit to the map: residual / noise = {r.residual_ratio:.2f}")
