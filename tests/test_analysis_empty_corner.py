@@ -63,3 +63,32 @@ def test_triple_points_sit_where_charge_states_meet(result):
         # (none inside the empty region, where no line is)
         around = {_ground_state(x + 0.2 * dv[0] * np.cos(a), y + 0.2 * dv[1] * np.sin(a)) for a in ang}
         assert len(around) >= 2, (x, y, around)
+
+
+def test_only_interdot_segments_along_a_pair_of_triple_points_count_as_interdot():
+    # the interdot line joins the two triple points of a cell (van der Wiel et al. 2003, Fig. 3);
+    # a short segment through a vertex at another angle is not one (drawn "set aside" in the plot)
+    from dataclasses import replace
+
+    from stabtool.analysis import AnalysisResult
+    from stabtool.lines.result import TransitionLine
+    from stabtool.simulate import quick_double_dot
+
+    sm = quick_double_dot("gaas-double", shape=(200, 200), snr=30, rng=3)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        res = Analyzer()(sm.data)
+    truth = sm.truth.to_json()["slopes"]["interdot"]
+    found = res.diagram.interdot
+    assert len(found) >= 1 and res.interdot_on_pairs.all()
+    assert all(abs(ln.slope / truth - 1) < 0.25 for ln in found)
+    # the same result with a vertical and a flat segment through its first triple point added
+    x0, y0 = res.triple_points[0]
+    h = 0.3 * res.diagram.addition_V.min()
+    junk = (TransitionLine(family="interdot", x0=x0, y0=y0, slope=float("inf"), slope_stderr=1.0,
+                           position_stderr=1e-4, start=(x0, y0 - h), end=(x0, y0 + h)),
+            TransitionLine(family="interdot", x0=x0, y0=y0, slope=0.0, slope_stderr=1.0,
+                           position_stderr=1e-4, start=(x0 - h, y0), end=(x0 + h, y0)))
+    more = AnalysisResult(**{**{f: getattr(res, f) for f in res.__dataclass_fields__},
+                             "diagram": replace(res.diagram, interdot=found + junk)})
+    assert more.interdot_on_pairs.tolist() == [True] * len(found) + [False, False]

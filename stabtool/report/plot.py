@@ -224,8 +224,12 @@ def _overlays(res: Any, ax: Any, *, n_pixels: int, max_labels: int, texts: _Text
     da = res.data
     d = res.diagram
     aside: list[np.ndarray] = []
+    # interdot segments that join no predicted pair of triple points are shown set aside
+    on_pairs = np.asarray(getattr(res, "interdot_on_pairs", np.ones(len(d.interdot), bool)), bool)
     for i_fam, (fam, lines) in enumerate((("dot1", d.lines1), ("dot2", d.lines2), ("interdot", d.interdot))):
         groups = d.line_groups[i_fam] if i_fam < 2 and d.lattice is not None else None
+        if i_fam == 2 and on_pairs.size == len(lines):
+            groups = np.where(on_pairs, 0, -1)
         n_used = int(np.sum(groups >= 0)) if groups is not None else len(lines)
         segs = []
         for k, ln in enumerate(lines):
