@@ -267,8 +267,7 @@ def _split_rows(profs: np.ndarray, noise: float) -> np.ndarray:
     m, n = profs.shape
     if m == 0 or n < 2:
         return np.full(m, np.nan)
-    pos, _ = _located(_mean_shift_stats(profs), noise)
-    return pos
+    return _located(_mean_shift_stats(profs), noise)
 
 
 def _mean_shift_stats(profs: np.ndarray) -> np.ndarray:
@@ -284,8 +283,8 @@ def _mean_shift_stats(profs: np.ndarray) -> np.ndarray:
     return np.abs(left - right) * np.sqrt(k * (n - k) / n)
 
 
-def _sloped_shift_stats(profs: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Change-point statistics of a mean shift on a linear background, shape (m, n − 1), and the detrended SST.
+def _sloped_shift_stats(profs: np.ndarray) -> np.ndarray:
+    """Change-point statistics of a mean shift on a linear background, shape (m, n − 1).
 
     Model ``y = a + b u + h·[u ≥ k]``: with ``r`` the residual of the straight
     line fitted to the profile, the step regressor's residual-sum reduction
@@ -308,11 +307,11 @@ def _sloped_shift_stats(profs: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     stat = np.abs(tail) / np.sqrt(np.maximum(d_k, 1e-12))
     stat[:, 0] = 0.0
     stat[:, -1] = 0.0
-    return stat, np.einsum("ij,ij->i", resid, resid)
+    return stat
 
 
-def _located(stat: np.ndarray, noise: float) -> tuple[np.ndarray, np.ndarray]:
-    """Sub-pixel split of the largest statistic per row (parabola through its neighbours) and that maximum.
+def _located(stat: np.ndarray, noise: float) -> np.ndarray:
+    """Sub-pixel split of the largest statistic per row (parabola through its neighbours).
 
     Position NaN where the maximum is below ``3.5 · noise``.
     """
@@ -328,7 +327,7 @@ def _located(stat: np.ndarray, noise: float) -> tuple[np.ndarray, np.ndarray]:
     with np.errstate(divide="ignore", invalid="ignore"):
         shift = np.clip(0.5 * (a - cc) / np.where(use, den, -1.0), -0.5, 0.5)
     pos = pos + np.where(use, shift, 0.0)
-    return np.where(peak < 3.5 * noise, np.nan, pos), peak
+    return np.where(peak < 3.5 * noise, np.nan, pos)
 
 
 #: A profile's background slope is modelled when its two plateaus share a slope of more than this many
@@ -385,19 +384,13 @@ def _change_points(profs: np.ndarray, noise: float) -> np.ndarray:
     (one parameter fewer). The plateaus leave out the samples next to the
     split, so that a thermally broadened step is not read as a slope.
     """
-    m, n = profs.shape
-    if m == 0 or n < 2:
-        return np.full(m, np.nan)
-    pos0, _ = _located(_mean_shift_stats(profs), noise)
-    if n < SLOPE_MIN_SAMPLES:
+    pos0 = _split_rows(profs, noise)
+    if profs.shape[0] == 0 or profs.shape[1] < SLOPE_MIN_SAMPLES:
         return pos0
     sloped = _plateau_slope_z2(profs, pos0) > SLOPE_TEST_VARIANCES * noise**2
-    if not sloped.any():
-        return pos0
-    pos1, _ = _located(_sloped_shift_stats(profs[sloped])[0], noise)
-    out = pos0.copy()
-    out[sloped] = pos1
-    return out
+    if sloped.any():
+        pos0[sloped] = _located(_sloped_shift_stats(profs[sloped]), noise)
+    return pos0
 
 
 def _crossings(zz, scan_axis, cross_axis, spans, mids, b, *, trim, half_px, noise):
