@@ -29,7 +29,7 @@ from .errors import InputError, QualityWarning
 from .fit.charge_states import ChargeStates, label_charge_states
 from .fit.model import MAX_VG_ERROR, DiagramFit, fit_diagram
 from .lines.result import LineDetection
-from .mapdata import validate_map, x_gate, y_gate
+from .mapdata import map_axes, validate_map, x_gate, y_gate
 from .physics import FERMI_FWHM_FACTOR, lever_arm_from_width
 from .quality import Quality
 
@@ -306,12 +306,13 @@ class AnalysisResult:
         lo, hi = labels.min(axis=0) - 1, labels.max(axis=0) + 1
         cs = self.charge_states
         if cs is not None:
+            lowest = _lowest_lines(lat)
             if cs.absolute[0]:
-                lo[0] = max(lo[0], int(lat.labels1[:, 0].min()))
+                lo[0] = max(lo[0], lowest[0])
             if cs.absolute[1]:
-                lo[1] = max(lo[1], int(lat.labels2[:, 1].min()) - 1)
-        x = np.asarray(self.data[self.data.dims[-1]].values, float)
-        y = np.asarray(self.data[self.data.dims[0]].values, float)
+                lo[1] = max(lo[1], lowest[1] - 1)
+        axes = map_axes(self.data)
+        x, y = axes.x, axes.y
         pairs, inside = [], []
         for n1 in range(int(lo[0]), int(hi[0]) + 1):
             for n2 in range(int(lo[1]), int(hi[1]) + 1):
@@ -344,9 +345,8 @@ class AnalysisResult:
         pairs, _ = self._vertex_pairs
         if not len(pairs):
             return np.ones(len(lines), bool)
-        x = np.asarray(self.data[self.data.dims[-1]].values, float)
-        y = np.asarray(self.data[self.data.dims[0]].values, float)
-        px = np.array([abs(float(np.median(np.diff(x)))), abs(float(np.median(np.diff(y))))])
+        axes = map_axes(self.data)
+        px = np.array([abs(axes.dx), abs(axes.dy)])
         ends = pairs / px  # (k, 2, 2) in pixels
         mid = ends.mean(axis=1)
         vec = ends[:, 1] - ends[:, 0]
@@ -641,7 +641,8 @@ def _scale(
     estimates: list[tuple[str, np.ndarray, np.ndarray]] = []
     details: dict[str, Any] = {}
     ratio, ratio_err = fit.alpha_ratio, fit.alpha_ratio_error  # α11/α22
-    ax_steps = (abs(float(np.median(np.diff(da[da.dims[-1]].values)))), abs(float(np.median(np.diff(da[da.dims[0]].values)))))
+    axes = map_axes(da)
+    ax_steps = (abs(axes.dx), abs(axes.dy))
 
     def complete(name: str, a: np.ndarray, e: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         a, e = a.copy(), e.copy()
@@ -805,6 +806,11 @@ def _lever_arm_from_file(path: str, da: xr.DataArray) -> tuple[np.ndarray, np.nd
     return a, e
 
 
+def _lowest_lines(lat: Any) -> tuple[int, int]:
+    """Labels of the lowest dot1 and dot2 transitions of a lattice fit (N1, resp. N2, after the transition)."""
+    return int(lat.labels1[:, 0].min()), int(lat.labels2[:, 1].min())
+
+
 # ------------------------------------------------------------------ pipeline
 def _row_corrected_map(da: xr.DataArray, detection: LineDetection | None) -> xr.DataArray:
     """The map the lines are measured on: the detector's row-corrected map when row offsets are significant.
@@ -933,7 +939,7 @@ class Analyzer:
                 y: np.ndarray, *, allow_absolute: bool = True) -> ChargeStates:
         lat = fit.lattice
         assert lat is not None
-        lowest = (int(lat.labels1[:, 0].min()), int(lat.labels2[:, 1].min()))
+        lowest = _lowest_lines(lat)
         snr = detection.snr if detection is not None and np.isfinite(detection.snr) else 10.0
         return label_charge_states(
             x, y, fit.vg_matrix, addition_V=fit.addition_V, mutual_V=np.maximum(fit.mutual_V, 0.0),
@@ -990,7 +996,6 @@ class Analyzer:
                 q = q.with_warning("line detection doubtful")
         else:
             from .lines.result import LineDetection as _LD  # empty detection
-            from .mapdata import map_axes
 
             fit = fit_diagram(_LD(axes=map_axes(da), families={}, unassigned=(), jumps=(),
                                   excluded_rows=np.zeros(0, int), noise_level=np.nan, snr=np.nan, quality=Quality()))
