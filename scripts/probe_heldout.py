@@ -126,7 +126,8 @@ def _transfer(kind: str, d: np.ndarray, phi: float) -> np.ndarray:
 def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[str, ...] = SENSORS,
              noise: tuple[str, ...] | None = None, tunnel_coupling_ueV: float = 0.0,
              mutual_fraction: tuple[float, float] | None = None,
-             start_e: tuple[float, float] | None = None) -> ProbeMap:
+             start_e: tuple[float, float] | None = None,
+             coupling_ratio: tuple[float, float] | None = None) -> ProbeMap:
     """Build held-out map ``seed`` (deterministic in all arguments).
 
     Parameters
@@ -148,6 +149,11 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
         Draw the induced charge of both dots at the window's low corner in this
         range (default 0.35): below −1 the map shows the empty (0, 0) region
         well below the first lines (few-electron maps).
+    coupling_ratio : (float, float), optional
+        Draw the ratio of the sensor's coupling to dot 2 over its coupling to
+        dot 1 log-uniformly in this range (default 0.65, the generator's): a
+        sensor nearer one dot shows that dot's lines strongly and the other
+        dot's faintly; near 1 the interdot transition hardly moves the sensor.
     """
     from stabtool.simulate import simulate_map
     from stabtool.simulate.quick import double_dot_window
@@ -164,7 +170,13 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
     snr = float(r.choice(SNRS))
     phi = float(r.uniform(0, 2 * np.pi))
     readout = "transport" if kind == "transport" else "charge"
-    kw = dict(bias_mV=0.02) if kind == "transport" else {}
+    kw: dict[str, Any] = dict(bias_mV=0.02) if kind == "transport" else {}
+    if coupling_ratio is not None:
+        from stabtool.simulate.sensor import SensorModel
+
+        lo_c, hi_c = np.log(coupling_ratio[0]), np.log(coupling_ratio[1])
+        ratio = float(np.exp(np.random.default_rng([seed, 29]).uniform(lo_c, hi_c)))
+        kw["sensor"] = SensorModel(coupling_mV=[0.6, 0.6 * ratio])
     sm = simulate_map(dev, x_gate="GX", y_gate="GY", x_range_V=xr_, y_range_V=yr_, shape=(ny, nx),
                       temperature_K=T, readout=readout, tunnel_coupling_ueV=tunnel_coupling_ueV,
                       rng=seed, **kw)
@@ -300,6 +312,8 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--start-e", default=None,
                    help="'A:B': induced charge of both dots at the low corner (default 0.35); e.g. --start-e=-3:-2.2 for "
                         "maps with the empty (0,0) region well below the first lines")
+    p.add_argument("--coupling", default=None,
+                   help="'A:B': draw the sensor's dot-2/dot-1 coupling ratio log-uniformly in [A, B] (default 0.65)")
     p.add_argument("--out", default=None, help="folder for one PNG per map (the analysis plot)")
     p.add_argument("--verbose", action="store_true", help="print every warning of every map")
     a = p.parse_args(argv)
@@ -324,7 +338,8 @@ def main(argv: list[str] | None = None) -> int:
     for s in _parse_seeds(a.seeds):
         pm = make_map(s, size=(lo, hi), sensors=sensors, noise=noise, tunnel_coupling_ueV=a.tunnel_ueV,
                       mutual_fraction=tuple(float(v) for v in a.mutual.split(":")) if a.mutual else None,
-                      start_e=tuple(float(v) for v in a.start_e.split(":")) if a.start_e else None)
+                      start_e=tuple(float(v) for v in a.start_e.split(":")) if a.start_e else None,
+                      coupling_ratio=tuple(float(v) for v in a.coupling.split(":")) if a.coupling else None)
         t0 = time.perf_counter()
         try:
             res = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data)
@@ -335,6 +350,7 @@ def main(argv: list[str] | None = None) -> int:
         ev = evaluate(j, pm.truth, snr=pm.meta["snr"])
         absolute = (j.get("charge_states") or {}).get("absolute") or {}
         ev.update(pm.meta, time=dt, absolute=any(bool(v) for v in absolute.values()))
+        ev["crashed"] = res is None
         rows.append(ev)
         ws = list(j["quality"]["warnings"])
         if res is not None:
@@ -379,6 +395,8 @@ def main(argv: list[str] | None = None) -> int:
     n_abs = sum(1 for r in rows if r["absolute"])
     bad = [str(r["seed"]) for r in rows if r["wrong_labels"]]
     print(f"absolute charge states claimed on {n_abs}/{n} maps; wrong on {len(bad)} ({', '.join(bad) or 'none'})")
+    crashed = [str(r["seed"]) for r in rows if r["crashed"]]
+    print(f"analyses that raised an exception: {len(crashed)} ({', '.join(crashed) or 'none'})")
     for k in ALL_SENSORS:
         sub = [r for r in rows if r["sensor"] == k]
         if sub:
