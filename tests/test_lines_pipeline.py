@@ -263,8 +263,10 @@ def test_broad_lines_at_low_snr_are_found_at_the_selected_scale():
             counts[sel].append(min(len(res.family("dot1")), len(res.family("dot2"))))
             if rel_errors(res, truth).max() > 0.02:
                 assert not res.quality.ok
-    assert min(counts[True]) >= 2  # both families found on every map
-    assert min(counts[False]) < 2  # the base scale alone misses a family
+    # both families found on every map at the selected scale (the base scale alone found one
+    # family on one of these maps before the contrast floor was set per orientation; its
+    # second family's lines are now found too, with slopes 4–25 % off and a doubtful verdict)
+    assert min(counts[True]) >= 2
 
 
 def test_crossings_near_the_map_border_stay_on_the_half_occupation_line():

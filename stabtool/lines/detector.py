@@ -225,6 +225,22 @@ def _smoothed(values: np.ndarray, sigma_px: float) -> np.ndarray:
     return sm
 
 
+def _drop_weak_lines(refined: list[RefinedLine], names: list[str]) -> list[RefinedLine]:
+    """Drop dot lines (negative slope) whose fitted step is below a quarter of their family's median.
+
+    Weak lines among strong ones of the same family are sensor texture, not
+    transitions. The median is taken per first-pass family (``names``): a
+    sensor that sees one dot much more weakly than the other gives that
+    dot's whole family small steps, and they are kept.
+    """
+    ref_h = {}
+    for n in set(names):
+        hs = [r.step_height for r, m in zip(refined, names) if m == n and r.refined and r.line.slope < 0]
+        ref_h[n] = float(np.median(hs)) if len(hs) >= 4 else -np.inf
+    return [r for r, n in zip(refined, names)
+            if not (r.line.slope < 0 and np.isfinite(ref_h[n]) and (not r.refined or r.step_height < 0.25 * ref_h[n]))]
+
+
 def _detect_core(values: np.ndarray, axes, cfg: LineDetector) -> LineDetection:
     ny = values.shape[0]
     quality = Quality()
@@ -290,11 +306,7 @@ def _detect_core(values: np.ndarray, axes, cfg: LineDetector) -> LineDetection:
     # second pass: classify again with the refined slopes
     # weak lines among strong ones are sensor texture, not transitions: a dot
     # line whose fitted step is below a quarter of the median one is dropped
-    hs = np.array([r.step_height for r in refined if r.refined and r.line.slope < 0])
-    if hs.size >= 4:
-        ref_h = float(np.median(hs))
-        refined = [r for r in refined
-                   if not (r.line.slope < 0 and (not r.refined or r.step_height < 0.25 * ref_h))]
+    refined = _drop_weak_lines(refined, names)
     lines = [r.line for r in refined]
     names2 = classify_lines(lines, axes)
     lines = [l if l.family == n else replace(l, family=n) for l, n in zip(lines, names2)]  # type: ignore[arg-type]

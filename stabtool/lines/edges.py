@@ -267,14 +267,16 @@ def _nms_at(ci: np.ndarray, ax: np.ndarray, ay: np.ndarray, mc: np.ndarray, magn
     return (mc >= magnitude(ci + step)) & (mc > magnitude(ci - step))
 
 
-def _hysteresis(ci: np.ndarray, mc: np.ndarray, low: float, high: float, shape: tuple[int, int]) -> np.ndarray:
+def _hysteresis(ci: np.ndarray, mc: np.ndarray, low: float | np.ndarray, high: float | np.ndarray,
+                shape: tuple[int, int]) -> np.ndarray:
     """Hysteresis thresholding of the magnitudes ``mc`` at flat indices ``ci`` (zero elsewhere).
 
     The same result as :func:`skimage.filters.apply_hysteresis_threshold`
     on the full magnitude image: pixels above ``low`` connected (4-neighbours,
-    :func:`scipy.ndimage.label`) to a pixel above ``high``.
+    :func:`scipy.ndimage.label`) to a pixel above ``high``. The thresholds
+    are numbers or, per pixel, arrays like ``mc``.
     """
-    low = min(low, high)
+    low = np.minimum(low, high)
     mask_low = np.zeros(shape[0] * shape[1], bool)
     mask_low[ci[mc > low]] = True
     labels, n = ndi.label(mask_low.reshape(shape))
@@ -283,6 +285,56 @@ def _hysteresis(ci: np.ndarray, mc: np.ndarray, low: float, high: float, shape: 
     hit[lab[ci[mc > high]]] = True
     hit[0] = False
     return hit[labels]
+
+
+#: orientation bins of the contrast floor (gradient direction modulo 180°, 15° each)
+N_ORIENTATION_BINS = 12
+#: strong pixels a bin needs for a reference of its own
+ORIENTATION_MIN_PIXELS = 20
+#: an orientation whose strong edges are below this fraction of the map's is a faint family
+FAINT_RATIO = 0.4
+#: lowest per-orientation reference, as a fraction of the whole map's
+ORIENTATION_FLOOR = 0.2
+
+
+def _orientation_bins(gx: np.ndarray, gy: np.ndarray) -> np.ndarray:
+    """Bin (0 … N_ORIENTATION_BINS − 1) of the gradient direction modulo 180°."""
+    ang = np.arctan2(gy, gx) % np.pi
+    return np.minimum((ang * (N_ORIENTATION_BINS / np.pi)).astype(int), N_ORIENTATION_BINS - 1)
+
+
+def _orientation_references(ms: np.ndarray, bins: np.ndarray, ref: float) -> np.ndarray:
+    """Reference magnitude of the contrast floor per orientation bin, shape (N_ORIENTATION_BINS,).
+
+    ``ms`` are the strong (above the high threshold, suppressed) magnitudes,
+    ``bins`` their orientation bins and ``ref`` the map's reference (their
+    95th percentile). A bin whose strong pixels (pooled with the two
+    neighbouring bins: a line's gradient directions spread over them) are at
+    least ``ORIENTATION_MIN_PIXELS`` and have a 95th percentile below
+    ``FAINT_RATIO · ref`` holds a faint family: its reference is that
+    percentile, but not below ``ORIENTATION_FLOOR · ref``. Every other bin
+    keeps ``ref``, so maps whose families are of comparable contrast get the
+    same edges as with one floor.
+    """
+    out = np.full(N_ORIENTATION_BINS, float(ref))
+    order = np.argsort(bins, kind="stable")
+    ms_sorted = ms[order]
+    edges = np.searchsorted(bins[order], np.arange(N_ORIENTATION_BINS + 1))
+    faint = ms_sorted < FAINT_RATIO * ref
+    n_bin = np.diff(edges)
+    below = np.concatenate([[0], np.cumsum(faint)])
+    n_faint = below[edges[1:]] - below[edges[:-1]]
+    for b in range(N_ORIENTATION_BINS):
+        nb = [(b - 1) % N_ORIENTATION_BINS, b, (b + 1) % N_ORIENTATION_BINS]
+        n_pool = int(n_bin[nb].sum())
+        # (the 95th percentile, interpolated at 0.95 (n − 1), is below FAINT_RATIO·ref only if
+        # the pool's lowest floor(0.95 (n − 1)) + 1 are)
+        if n_pool < ORIENTATION_MIN_PIXELS or n_faint[nb].sum() < int(0.95 * (n_pool - 1)) + 1:
+            continue
+        rb = _percentile_linear(np.concatenate([ms_sorted[edges[k]:edges[k + 1]] for k in nb]), 0.95)
+        if rb < FAINT_RATIO * ref:
+            out[b] = max(rb, ORIENTATION_FLOOR * ref)
+    return out
 
 
 def _sobel(a: np.ndarray, axis: int) -> np.ndarray:
@@ -409,23 +461,32 @@ def _edge_core(values: np.ndarray, sigma_px: float, noise: float, low: float, hi
     # contrast floor: at high SNR, weak structure (sensor curvature, residual
     # ramps) is far above the noise; keep only edges within a factor of the
     # strong ones (common practice for Canny thresholds, no source). The
-    # suppression (a pixel-by-pixel test) runs first on the candidates above
-    # the high threshold, which fix the floor, then on those between the
-    # final low threshold and that: the pixels below the final low threshold
-    # never become edges (the same edges as suppressing every candidate)
+    # strong ones are those of the same orientation when that orientation's
+    # edges are all much weaker than the map's (a family of a dot the sensor
+    # hardly sees): see _orientation_references. The suppression (a
+    # pixel-by-pixel test) runs first on the candidates above the high
+    # threshold, which fix the floor, then on those between the lowest final
+    # low threshold and that: the pixels below it never become edges (the
+    # same edges as suppressing every candidate)
     strong_sel = mc > high
     cs, ms = suppressed(strong_sel)
-    hi0 = high
+    hi0, lo0 = high, low
+    ref_bin = None
     if contrast_floor > 0 and ms.size >= 20:
-        ref = _percentile_linear(ms, 0.95)
-        high = max(high, contrast_floor * ref)
-        low = max(low, 0.5 * contrast_floor * ref)
+        ref_bin = _orientation_references(ms, _orientation_bins(gxf[cs], gyf[cs]), _percentile_linear(ms, 0.95))
+        high = max(high, contrast_floor * float(ref_bin.min()))
+        low = max(low, 0.5 * contrast_floor * float(ref_bin.min()))
     cw, mw = suppressed(~strong_sel & (mc > low))
     if low >= hi0:
         cs_keep = ms > low
         cs, ms = cs[cs_keep], ms[cs_keep]
     ci, mc = np.concatenate([cs, cw]), np.concatenate([ms, mw])
-    edges = _hysteresis(ci, mc, low, high, gx.shape)
+    if ref_bin is None:
+        edges = _hysteresis(ci, mc, low, high, gx.shape)
+    else:
+        ref_pix = ref_bin[_orientation_bins(gxf[ci], gyf[ci])]
+        edges = _hysteresis(ci, mc, np.maximum(lo0, 0.5 * contrast_floor * ref_pix),
+                            np.maximum(hi0, contrast_floor * ref_pix), gx.shape)
     out = (edges, float(np.hypot(sx, sy) / np.sqrt(2)), low, high, valid)
     if with_gradient:
         return out + ((gx, gy, sx, sy),)
