@@ -1016,11 +1016,11 @@ class Analyzer:
                 q = q.merge(refinement.quality).merge(adoption.quality)
                 adopted = adoption.adopted
                 # an empty corner counts lines from the lowest label: not claimed when the model fit
-                # could not settle on the map or does not describe it (held-out maps with an empty
-                # corner: the wrong absolute labellings came with a lattice doubt, an unconverged fit or
-                # residual structure)
-                sound = refinement.converged and not (refinement.structure is not None
-                                                      and refinement.structure.flagged)
+                # could not settle on the map, does not describe it or disagrees with the lines (held-out
+                # maps with an empty corner: the wrong absolute labellings came with a lattice doubt, an
+                # unconverged fit, residual structure or a disagreement)
+                sound = (refinement.converged and not adoption.disagreed
+                         and not (refinement.structure is not None and refinement.structure.flagged))
                 if adopted or (not sound and states.absolute != (False, False)):
                     fit = adoption.fit if adopted else fit
                     states = self._states(da, fit, detection, x, y, allow_absolute=sound)

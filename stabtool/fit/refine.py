@@ -1344,6 +1344,9 @@ class Adoption:
         ``DISAGREEMENT_SHARE · |refined − line-based|`` of ``(ΔV1, δ1, ΔV2, δ2)``
         (V) in the adopted error, 0 for δ (:data:`ADOPTION_DISAGREEMENT`; NaN
         when not adopted).
+    disagreed : bool
+        The refinement is sound but disagrees with the line-based estimate
+        beyond ``MAX_DISAGREEMENT_SIGMA`` on one of the checked numbers.
     """
 
     fit: DiagramFit
@@ -1353,6 +1356,7 @@ class Adoption:
     disagreement_term: np.ndarray = field(default_factory=lambda: np.full(2, np.nan))
     weight_refined: np.ndarray = field(default_factory=lambda: np.full(4, np.nan))
     addition_mutual_term: np.ndarray = field(default_factory=lambda: np.full(4, np.nan))
+    disagreed: bool = False
 
 
 def adopt_refinement(fit: DiagramFit, ref: Refinement) -> Adoption:
@@ -1447,7 +1451,7 @@ def adopt_refinement(fit: DiagramFit, ref: Refinement) -> Adoption:
         what = ", ".join(f"{names[i]} ({z[i]:.1f} σ)" for i in bad)
         q = q.with_warning(f"the model fit to the map disagrees with the line-based estimate on {what}: "
                            "line-based numbers kept")
-        return Adoption(fit, False, z, q)
+        return Adoption(fit, False, z, q, disagreed=True)
     # lattice numbers at the refined M: p_D(M) ≈ p_D + G ΔM, G = ∂(ΔV1, δ1, ΔV2, δ2)/∂(M12, M21)
     g = fit.lattice.grad_m[[0, 1, 3, 4]]
     if not np.all(np.isfinite(g)):
