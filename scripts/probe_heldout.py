@@ -31,7 +31,10 @@ was not tuned on:
   ``--noise``): white at SNR 4–60 (SNR = median charge-step height of the
   transferred signal / white-noise std, the generator's definition), pink 2-D
   (1/f amplitude spectrum), row random walk (slow-axis offsets), rare spikes,
-  slow gain drift (multiplicative, along the measurement time).
+  slow gain drift (multiplicative, along the measurement time); opt-in with
+  ``--noise``: ``telegraph`` (a charge trap switching the sensor between two
+  offsets at random moments) and ``hum`` (mains pickup: a sinusoid in
+  measurement time, i.e. straight stripes across the map).
 
 Every map prints one line (errors against the truth, the verdict, the first
 warnings); the summary gives coverage (fraction reported ok), silent failures
@@ -66,6 +69,7 @@ import numpy as np
 SENSORS = ("lorentz", "gauss", "sech2", "rf")
 ALL_SENSORS = SENSORS + ("comb", "transport")
 NOISES = ("pink", "walk", "spikes", "drift")
+OPT_NOISES = ("telegraph", "hum")  # only when asked for by --noise (the default draws stay as they were)
 SNRS = (4.0, 8.0, 20.0, 60.0)
 
 # issue bounds of the fitter (same numbers as stabtool.bench.bounds.FITTER_BOUNDS)
@@ -138,8 +142,8 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
     sensors : tuple of str
         Sensor kinds to draw from (see the module docstring).
     noise : tuple of str or None
-        Extra noise components (subset of ``pink, walk, spikes, drift``);
-        None draws each with probability ½.
+        Extra noise components (subset of ``pink, walk, spikes, drift``,
+        ``telegraph, hum``); None draws each of the first four with probability ½.
     tunnel_coupling_ueV : float
         Interdot tunnel coupling of the rendered truth (0 = none).
     mutual_fraction : (float, float), optional
@@ -211,6 +215,21 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
         out = out + np.cumsum(r.normal(0, 0.3 * sigma, ny))[:, None]
     if "spikes" in extras:
         out = out + (r.random(sig.shape) < 0.001) * r.normal(0, 5 * h, sig.shape)
+    if "telegraph" in extras:
+        # a charge trap next to the sensor: a two-level offset of 0.3–1 step heights that switches at
+        # random moments of the sweep (row-major time), mean dwell 200–5000 points
+        t_len = ny * nx
+        dwell = r.uniform(200, 5000)
+        n_sw = r.poisson(t_len / dwell)
+        state = np.zeros(t_len)
+        for k in np.sort(r.integers(0, t_len, n_sw)):
+            state[k:] = 1 - state[k:]
+        out = out + r.uniform(0.3, 1.0) * h * r.choice([-1, 1]) * state.reshape(ny, nx)
+    if "hum" in extras:
+        # mains pickup: a sinusoid in measurement time, period 6–40 points along the fast axis, amplitude
+        # 0.2–0.8 step heights (straight stripes across the map)
+        t = np.arange(ny * nx, dtype=float).reshape(ny, nx)
+        out = out + r.uniform(0.2, 0.8) * h * np.sin(2 * np.pi * t / r.uniform(6, 40) + r.uniform(0, 2 * np.pi))
     if "drift" in extras:
         t = (np.arange(ny * nx) / (ny * nx)).reshape(ny, nx)  # measurement time, row-major
         out = (out - np.median(out)) * (1 + r.uniform(-0.3, 0.3) * t + 0.1 * np.sin(2 * np.pi * r.uniform(0.5, 2) * t))
@@ -305,7 +324,8 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--sensors", default=",".join(SENSORS),
                    help=f"sensor kinds to draw from, of {','.join(ALL_SENSORS)} (default: all but transport)")
     p.add_argument("--noise", default=None,
-                   help=f"extra noise on every map, subset of {','.join(NOISES)} or 'none' (default: each with p=½)")
+                   help=f"extra noise on every map, subset of {','.join(NOISES + OPT_NOISES)} or 'none' "
+                        f"(default: each of {','.join(NOISES)} with p=½)")
     p.add_argument("--tunnel-ueV", type=float, default=0.0, help="interdot tunnel coupling of the truth (µeV)")
     p.add_argument("--mutual", default=None,
                    help="'A:B': draw Cm / C_total of the larger dot in [A, B] (strongly coupled dots)")
@@ -327,8 +347,8 @@ def main(argv: list[str] | None = None) -> int:
     if bad:
         p.error(f"--sensors: unknown kind(s) {bad}; expected some of {ALL_SENSORS}")
     noise = None if a.noise is None else tuple(n for n in a.noise.split(",") if n and n != "none")
-    if noise and any(n not in NOISES for n in noise):
-        p.error(f"--noise: expected some of {NOISES} or 'none', got {a.noise!r}")
+    if noise and any(n not in NOISES + OPT_NOISES for n in noise):
+        p.error(f"--noise: expected some of {NOISES + OPT_NOISES} or 'none', got {a.noise!r}")
     if a.out:
         os.makedirs(a.out, exist_ok=True)
     rows = []
