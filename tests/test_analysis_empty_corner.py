@@ -94,18 +94,18 @@ def test_only_interdot_segments_along_a_pair_of_triple_points_count_as_interdot(
     assert more.interdot_on_pairs.tolist() == [True] * len(found) + [False, False]
 
 
-def test_no_absolute_labels_when_the_model_fit_disagrees_with_the_lines():
-    # A held-out probe map (scripts/probe_heldout.py, seed 23 with the empty corner well inside the
-    # window: gauss sensor, row walk, spikes, gain drift, SNR 60). The model fit to the map disagrees
-    # with the line-based lattice there, and the lattice's absolute labelling was wrong on three
-    # regions. Absolute occupations, where claimed, must be the constant-interaction ground state.
+def _probe_map(seed: int, **options):
     import sys
     from pathlib import Path
 
     sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "scripts"))
     from probe_heldout import make_map
 
-    pm = make_map(23, start_e=(-3.0, -2.2))
+    return make_map(seed, **options)
+
+
+def _claimed_labels_off_the_ground_state(pm) -> list:
+    """Regions whose occupation, claimed absolute for a dot, is not the ground state at the region's centroid."""
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         res = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data)
@@ -115,8 +115,38 @@ def test_no_absolute_labels_when_the_model_fit_disagrees_with_the_lines():
     n0 = np.asarray(dev.get("offset_charge_e") or [0.0, 0.0], float)
     grid = np.array([(a, b) for a in range(16) for b in range(16)], float)
     claimed = [bool((cs.get("absolute") or {}).get(k)) for k in ("dot1", "dot2")]
+    wrong = []
     for reg in cs["regions"]:
         d = E_AC * (grid - n0) - cdg @ np.array([reg["x"], reg["y"]])
         truth = grid[np.argmin(np.einsum("ki,ij,kj->k", d, inv, d))]
-        for i, key in enumerate(("n1", "n2")):
-            assert not claimed[i] or reg[key] == int(truth[i]), (reg, truth)
+        if any(claimed[i] and reg[key] != int(truth[i]) for i, key in enumerate(("n1", "n2"))):
+            wrong.append((reg, truth))
+    return wrong
+
+
+def test_no_absolute_labels_when_the_model_fit_disagrees_with_the_lines():
+    # A held-out probe map (scripts/probe_heldout.py, seed 23 with the empty corner well inside the
+    # window: gauss sensor, row walk, spikes, gain drift, SNR 60). The model fit to the map disagrees
+    # with the line-based lattice there, and the lattice's absolute labelling was wrong on three
+    # regions. Absolute occupations, where claimed, must be the constant-interaction ground state.
+    assert _claimed_labels_off_the_ground_state(_probe_map(23, start_e=(-3.0, -2.2))) == []
+
+
+def test_no_absolute_labels_from_a_lattice_known_to_worse_than_ten_percent():
+    # Probe seed 9 with mains pickup (SNR 4): a gate capacitance known to 108 % came with absolute
+    # labels wrong on 14 regions.
+    assert _claimed_labels_off_the_ground_state(_probe_map(9, noise=("hum",))) == []
+
+
+def test_the_lattice_uncertainty_rule_reads_the_relative_gate_capacitance_errors():
+    from types import SimpleNamespace
+
+    from stabtool.analysis import ABSOLUTE_MAX_CDG_REL, _lattice_too_uncertain
+
+    cdg = np.array([[10.0, 2.0], [1.5, 9.0]])
+    fit = SimpleNamespace(cdg_aF=cdg, cdg_aF_error=0.5 * ABSOLUTE_MAX_CDG_REL * cdg)
+    assert not _lattice_too_uncertain(fit)
+    fit.cdg_aF_error = np.array([[0.1, 0.3], [0.1, 0.1]])  # 15 % on the 2 aF element
+    assert _lattice_too_uncertain(fit)
+    fit.cdg_aF_error = np.array([[0.1, np.nan], [0.1, 0.1]])
+    assert _lattice_too_uncertain(fit)
