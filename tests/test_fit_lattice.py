@@ -216,3 +216,14 @@ def test_lowest_band_segments_running_into_the_empty_region_keep_the_exact_cell(
     monkeypatch.setattr(lattice, "LONG_SEGMENT_GAIN", 0.0)
     slipped = fit_lattice(d1, d2)
     assert slipped.ok and slipped.mutual_V[1] < 0.85 * dm[1]
+
+
+def test_a_band_step_of_zero_fails_with_a_reason_instead_of_raising():
+    # held-out probe seed 135 (rf sensor, SNR 8): the dot1 band step came out 0 and inverting the
+    # cell [[ΔV1, δ1], [δ2, ΔV2]] raised LinAlgError out of the whole analysis
+    from stabtool.fit.lattice import _lattice_from_steps
+
+    dot1, dot2 = _honeycomb_segments(np.array([2e-3, 1e-3]), np.array([2e-4, 1e-4]), np.array([0.0, 0.0]), n=3)
+    fit = _lattice_from_steps(dot1, dot2, np.array([0.0, 1e-4]), np.array([1e-3, 2e-4]), interdot_extent=None,
+                              err_floor_V=1e-6, n_iter=5)
+    assert not fit.ok and "degenerate" in fit.reason
