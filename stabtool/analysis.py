@@ -1043,7 +1043,8 @@ class Analyzer:
                 timings["refine"] = time.perf_counter() - t2
             if states.withheld:
                 q = q.with_warning("the map reaches below the lowest lines far enough to call the dots empty, but "
-                                   "the line labelling is doubtful: charge states are relative", doubtful=False)
+                                   "the line labelling is doubtful or, at this SNR, a line near the low corner "
+                                   "may have been missed: charge states are relative", doubtful=False)
         if fit.ok:
             from .fit.uncertainty import error_verdict
 

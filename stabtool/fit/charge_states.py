@@ -26,6 +26,12 @@ __all__ = ["EMPTY_MARGIN_CELLS", "ChargeStates", "ground_state_labels", "label_c
 
 #: Cells (addition voltages) of line-free map needed below the lowest line to call a dot empty.
 EMPTY_MARGIN_CELLS = 2.0
+#: Confidence an absolute assignment must exceed (else the labels stay relative and ``withheld`` is set).
+#: Held-out probe maps at SNR 4–5 (confidence ≤ 0.5): 4 of 9 such claims were wrong, whole dots
+#: numbered one or two too high where a line near the low corner went undetected (seeds 239 and 285
+#: of the ordinary probe, which have no empty corner at all); above 0.5, 2 of 20, on a few small
+#: regions at the map's border.
+MIN_ABSOLUTE_CONFIDENCE = 0.5
 
 
 def ground_state_labels(
@@ -117,7 +123,9 @@ class ChargeStates:
     withheld : bool
         The map reaches far enough below a dot's lowest line to call it empty,
         but the caller did not allow absolute occupations (a doubtful line
-        labelling): the labels are relative.
+        labelling) or the confidence is not above ``MIN_ABSOLUTE_CONFIDENCE``
+        (a low SNR: a line near the low corner may have been missed): the
+        labels are relative.
     """
 
     labels: np.ndarray
@@ -178,7 +186,8 @@ def label_charge_states(
     -----
     Confidence per dot: ``min(1, margin / (EMPTY_MARGIN_CELLS + 1)) ·
     min(1, snr / 10)`` where ``margin`` is how many addition voltages of the
-    map lie below the lowest line (common practice, no source).
+    map lie below the lowest line (common practice, no source). Absolute
+    labels need a confidence above ``MIN_ABSOLUTE_CONFIDENCE``.
     """
     xx, yy = np.meshgrid(x, y)
     u = m[0, 0] * xx + m[0, 1] * yy
@@ -194,11 +203,13 @@ def label_charge_states(
         margin = float(lowest_line[i] - 1 - below.min()) if below.size else 0.0
         # margin in cells: how many further transitions the map would show below the lowest one
         ok = margin >= EMPTY_MARGIN_CELLS
-        withheld = withheld or (ok and not allow_absolute)
-        ok = ok and allow_absolute
-        absolute.append(bool(ok))
         c = min(1.0, margin / (EMPTY_MARGIN_CELLS + 1.0)) * min(1.0, float(snr) / 10.0) if ok else 0.0
-        conf.append(float(c))
+        # below MIN_ABSOLUTE_CONFIDENCE a line missed in the empty corner is about as likely as not
+        sure = allow_absolute and c > MIN_ABSOLUTE_CONFIDENCE
+        withheld = withheld or (ok and not sure)
+        ok = ok and sure
+        absolute.append(bool(ok))
+        conf.append(float(c) if ok else 0.0)
     n_min: tuple[int | None, int | None] = (
         lowest_line[0] - 1 if absolute[0] else None,
         lowest_line[1] - 1 if absolute[1] else None,

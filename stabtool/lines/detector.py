@@ -303,10 +303,9 @@ def _detect_core(values: np.ndarray, axes, cfg: LineDetector) -> LineDetection:
             and scale.width_px >= RESCUE_MIN_WIDTH_PX):
         # broad lines whose edges needed a larger scale: rescue the segments whose profiles fail
         refined = _rescue_broad(refined, segs, work, axes, names, along, edges, scale.width_px, cfg)
-    # second pass: classify again with the refined slopes
-    # weak lines among strong ones are sensor texture, not transitions: a dot
-    # line whose fitted step is below a quarter of the median one is dropped
+    # weak lines among strong ones of their family are sensor texture, not transitions
     refined = _drop_weak_lines(refined, names)
+    # second pass: classify again with the refined slopes
     lines = [r.line for r in refined]
     names2 = classify_lines(lines, axes)
     lines = [l if l.family == n else replace(l, family=n) for l, n in zip(lines, names2)]  # type: ignore[arg-type]

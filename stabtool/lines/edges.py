@@ -38,7 +38,8 @@ class EdgeMap:
         σ of one Sobel gradient component of the smoothed noise (signal units
         per pixel, pixel frame); thresholds are multiples of it.
     low_threshold, high_threshold : float
-        Hysteresis thresholds used, in the same units.
+        Hysteresis thresholds used, in the same units (the lowest ones where
+        the contrast floor differs between orientations).
     sigma_px : float
         Canny Gaussian σ, pixels.
     valid : ndarray of bool, shape (ny, nx)
