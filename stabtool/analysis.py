@@ -26,7 +26,7 @@ import numpy as np
 import xarray as xr
 
 from .errors import InputError, QualityWarning
-from .fit.charge_states import ChargeStates, label_charge_states
+from .fit.charge_states import MIN_ABSOLUTE_CONFIDENCE, ChargeStates, label_charge_states
 from .fit.model import MAX_VG_ERROR, DiagramFit, fit_diagram
 from .lines.result import LineDetection
 from .mapdata import map_axes, validate_map, x_gate, y_gate
@@ -952,7 +952,8 @@ class Analyzer:
 
     @staticmethod
     def _states(da: xr.DataArray, fit: DiagramFit, detection: LineDetection | None, x: np.ndarray,
-                y: np.ndarray, *, allow_absolute: bool = True) -> ChargeStates:
+                y: np.ndarray, *, allow_absolute: bool = True,
+                min_confidence: float = MIN_ABSOLUTE_CONFIDENCE) -> ChargeStates:
         lat = fit.lattice
         assert lat is not None
         lowest = _lowest_lines(lat)
@@ -960,7 +961,7 @@ class Analyzer:
         return label_charge_states(
             x, y, fit.vg_matrix, addition_V=fit.addition_V, mutual_V=np.maximum(fit.mutual_V, 0.0),
             offsets_V=fit.offsets_V, lowest_line=lowest, snr=snr, valid=np.isfinite(np.asarray(da.values)),
-            allow_absolute=allow_absolute and fit.labels_consistent,
+            allow_absolute=allow_absolute and fit.labels_consistent, min_confidence=min_confidence,
         )
 
     def analyze_file(self, path: str | os.PathLike[str], **load_kwargs: Any) -> AnalysisResult | DiamondAnalysisResult:
@@ -1020,8 +1021,11 @@ class Analyzer:
         adopted = False
         x = np.asarray(da[da.dims[-1]].values, float)
         y = np.asarray(da[da.dims[0]].values, float)
+        allow = True  # the labelling may count electrons from an empty corner (see below)
         if fit.ok and fit.lattice is not None:
-            states = self._states(da, fit, detection, x, y)
+            # the model fit starts from the lattice's own labelling: an empty corner helps it even
+            # where the reported labels stay relative for a low SNR (MIN_ABSOLUTE_CONFIDENCE)
+            states = self._states(da, fit, detection, x, y, min_confidence=0.0)
             if self.refine:
                 t2 = time.perf_counter()
                 from .fit.refine import adopt_refinement, refine_model
@@ -1035,27 +1039,30 @@ class Analyzer:
                 # could not settle on the map, does not describe it or disagrees with the lines (held-out
                 # maps with an empty corner: the wrong absolute labellings came with a lattice doubt, an
                 # unconverged fit, residual structure or a disagreement)
-                sound = (refinement.converged and not adoption.disagreed
+                allow = (refinement.converged and not adoption.disagreed
                          and not (refinement.structure is not None and refinement.structure.flagged))
-                if adopted or (not sound and states.absolute != (False, False)):
-                    fit = adoption.fit if adopted else fit
-                    states = self._states(da, fit, detection, x, y, allow_absolute=sound)
+                fit = adoption.fit if adopted else fit
                 timings["refine"] = time.perf_counter() - t2
-            if states.withheld:
-                q = q.with_warning("the map reaches below the lowest lines far enough to call the dots empty, but "
-                                   "the line labelling is doubtful or, at this SNR, a line near the low corner "
-                                   "may have been missed: charge states are relative", doubtful=False)
         if fit.ok:
             from .fit.uncertainty import error_verdict
 
             fit = replace(fit, quality=error_verdict(fit))  # error checks on the final errors
-            if states is not None and states.absolute != (False, False) and _lattice_too_uncertain(fit):
-                # counting lines from the empty corner needs a lattice known to a fraction of a cell
-                states = self._states(da, fit, detection, x, y, allow_absolute=False)
+        if states is not None:
+            # the reported labels: absolute only from a sound fit, a lattice known to a fraction of a
+            # cell (ABSOLUTE_MAX_CDG_REL) and a confidence above MIN_ABSOLUTE_CONFIDENCE
+            too_uncertain = bool(fit.ok and _lattice_too_uncertain(fit))
+            weak = any(a and c <= MIN_ABSOLUTE_CONFIDENCE for a, c in zip(states.absolute, states.confidence))
+            if adopted or (states.absolute != (False, False) and (not allow or too_uncertain or weak)):
+                states = self._states(da, fit, detection, x, y, allow_absolute=allow and not too_uncertain)
+            if states.withheld and too_uncertain:
                 q = q.with_warning("the map reaches below the lowest lines far enough to call the dots empty, "
                                    "but the charge lattice is too uncertain (a gate capacitance known to worse "
                                    f"than {100 * ABSOLUTE_MAX_CDG_REL:.0f} %): charge states are relative",
                                    doubtful=False)
+            elif states.withheld:
+                q = q.with_warning("the map reaches below the lowest lines far enough to call the dots empty, but "
+                                   "the line labelling is doubtful or, at this SNR, a line near the low corner "
+                                   "may have been missed: charge states are relative", doubtful=False)
         q = q.merge(fit.quality)
         # the detector's SNR (edge contrast) runs about half the step-height SNR of the refinement
         # (median step / noise std, the generator's definition): the larger one decides

@@ -157,6 +157,7 @@ def label_charge_states(
     snr: float = np.inf,
     valid: np.ndarray | None = None,
     allow_absolute: bool = True,
+    min_confidence: float = MIN_ABSOLUTE_CONFIDENCE,
 ) -> ChargeStates:
     """Label every pixel with (N1, N2) and decide whether the labels are absolute.
 
@@ -181,6 +182,9 @@ def label_charge_states(
         settle which line is which): an empty corner then counts lines from a
         label that may be off by one, so the labels stay relative
         (``withheld`` says that the map would otherwise have been called empty).
+    min_confidence : float
+        Absolute labels need a confidence above this (default
+        ``MIN_ABSOLUTE_CONFIDENCE``; 0 keeps every assignment the margin allows).
 
     Notes
     -----
@@ -205,7 +209,7 @@ def label_charge_states(
         ok = margin >= EMPTY_MARGIN_CELLS
         c = min(1.0, margin / (EMPTY_MARGIN_CELLS + 1.0)) * min(1.0, float(snr) / 10.0) if ok else 0.0
         # below MIN_ABSOLUTE_CONFIDENCE a line missed in the empty corner is about as likely as not
-        sure = allow_absolute and c > MIN_ABSOLUTE_CONFIDENCE
+        sure = allow_absolute and c > min_confidence
         withheld = withheld or (ok and not sure)
         ok = ok and sure
         absolute.append(bool(ok))
