@@ -266,6 +266,9 @@ class Refinement:
         over the noise standard deviation.
     structure : StructureTest or None
         The test for sharp residual structure over the whole map.
+    model : ndarray, shape (ny, nx), or None
+        The fitted model over the whole map (NaN near states it has not seen);
+        not part of the JSON.
     curvature : dict or None
         The sensor curvature the levels were mixed with (``kappa_ratio_12`` = κ1/κ2,
         ``relative_curvature_range`` of ``T = g''κ2/g'`` over the blocks, its
@@ -290,6 +293,7 @@ class Refinement:
     snr: float = float("nan")
     structure: StructureTest | None = None
     curvature: dict | None = None
+    model: np.ndarray | None = field(default=None, repr=False, compare=False)
 
     def __bool__(self) -> bool:
         return self.ok
@@ -1276,7 +1280,8 @@ def refine_model(
     return Refinement(ok=q.ok and converged, params=params, errors=errors, cov=cov, residual_ratio=ratio,
                       noise=noise, step=(g1, g2), width_resolved=width_resolved, stride=(sy, sx), n_min=n_min,
                       quality=q, n_points=int(pz.size), iterations=it, converged=converged, snr=snr,
-                      structure=structure, curvature=curvature.to_json() if curvature is not None else None)
+                      structure=structure, curvature=curvature.to_json() if curvature is not None else None,
+                      model=full)
 
 
 #: Systematic floor added in quadrature to the refined errors of (M12, M21, ΔV1, δ1, ΔV2, δ2):
