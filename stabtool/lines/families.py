@@ -138,6 +138,25 @@ def classify_lines(lines: Sequence[TransitionLine], axes: MapAxes, *, tolerance_
             names[mem] = labels[k]
     pos = s > 0
     if pos.any():
-        mem = _members(a, length_px, pos, tolerance_deg)
-        names[mem] = "interdot"
+        # a family of dot lines within a few degrees of the x or y axis has members whose measured
+        # slope comes out positive: within tolerance_deg of the family's orientation (modulo 180°,
+        # signed) they join it. Held-out probe (seeds 0:128 and five other sets): 5 of 424 maps
+        # changed, 3 for the better (a Cdg error of 61 % → 4 %, 362 % → 23 %, 2433 % → no numbers),
+        # one from no numbers to doubtful ones; none ok
+        for fam in ("dot1", "dot2"):
+            sel = names == fam
+            if sel.sum() < 2:
+                continue
+            ref = float(np.median(ang[sel]))
+            join = pos & (np.abs(_wrapped(ang - ref)) <= tolerance_deg)
+            names[join] = fam
+            pos &= ~join
+        if pos.any():
+            mem = _members(a, length_px, pos, tolerance_deg)
+            names[mem] = "interdot"
     return [str(v) for v in names]
+
+
+def _wrapped(d: np.ndarray) -> np.ndarray:
+    """Angle differences (degrees) wrapped into [−90, 90): lines have no direction."""
+    return (np.asarray(d, float) + 90.0) % 180.0 - 90.0
