@@ -176,3 +176,20 @@ def test_tunnel_coupled_map_is_not_ok_beyond_the_clean_bound(preset, t_ueV):
         # these two maps are biased beyond the bound (0.0072 and 0.0061 seen): they must be flagged
         assert err > 0.005 and not j["quality"]["ok"]
         assert any("tunnel" in w or "broad interdot" in w for w in j["quality"]["warnings"])
+
+
+def test_a_detuning_cut_sampled_in_descending_order_does_not_break_the_analysis():
+    # held-out probe map (scripts/probe_heldout.py seed 40, 40–90 px maps: 47×59, sech² sensor, SNR 8):
+    # its interdot cut ran against the detuning axis and the polarisation fit raised out of the analysis
+    import sys
+    from pathlib import Path
+
+    sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "scripts"))
+    from probe_heldout import make_map
+
+    pm = make_map(40, size=(40, 90))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        j = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data).to_json()
+    assert j["quality"]["ok"] is False  # (a 47×59 map with a line labelling that failed)
+    assert "tunnel_coupling_ueV" in j

@@ -348,8 +348,11 @@ def _fit_cut(s: np.ndarray, g: np.ndarray, geo: _CutGeometry, *, scale_sigma: fl
     its value per degree of freedom.
     """
     kt_ueV = geo.kt * 1e6
-    step_s = float(np.median(np.diff(s)))
-    span = float(s[-1] - s[0])
+    # (the cut may run either way along the detuning axis: held-out probe seed 40 of 40–90 px maps
+    # had descending samples, and the fit's bounds came out reversed)
+    step_s = float(abs(np.median(np.diff(s))))
+    s_lo, s_hi = float(min(s[0], s[-1])), float(max(s[0], s[-1]))
+    span = s_hi - s_lo
     if geo.whiten is not None and np.isfinite(geo.pixel_noise) and geo.pixel_noise > 0:
         noise = float(geo.pixel_noise)  # the whitened residuals are in pixel-noise units
         point_noise = noise * float(np.sqrt(np.mean(np.sum(np.linalg.inv(geo.whiten) ** 2, axis=1))))
@@ -376,7 +379,7 @@ def _fit_cut(s: np.ndarray, g: np.ndarray, geo: _CutGeometry, *, scale_sigma: fl
             out[i] = float(r @ r)
         return out
 
-    centres = np.linspace(s[0] + 0.15 * span, s[-1] - 0.15 * span, 21)
+    centres = np.linspace(s_lo + 0.15 * span, s_hi - 0.15 * span, 21)
     c = costs(centres, 0.0)
     s0 = float(centres[int(np.argmin(c))])
     t_max = 0.25 * span * geo.a_eps * 1e6
@@ -393,8 +396,8 @@ def _fit_cut(s: np.ndarray, g: np.ndarray, geo: _CutGeometry, *, scale_sigma: fl
             free = [0, 1, 2] if sf > 0 else [0, 1]
         else:
             free = [0, 2] if sf > 0 else [0]
-        lb = np.array([s[0] / ds, 0.0, 1.0 - 5 * sf])[free]
-        ub = np.array([s[-1] / ds, np.inf, 1.0 + 5 * sf])[free]
+        lb = np.array([s_lo / ds, 0.0, 1.0 - 5 * sf])[free]
+        ub = np.array([s_hi / ds, np.inf, 1.0 + 5 * sf])[free]
 
         def full(q):
             v = np.array([start[0], start[1] if fixed_tau is None else fixed_tau / dt, 1.0])
