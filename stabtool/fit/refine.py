@@ -266,6 +266,9 @@ class Refinement:
         over the noise standard deviation.
     structure : StructureTest or None
         The test for sharp residual structure over the whole map.
+    weak_steps : bool
+        The typical step, or a quarter of the steps, is weak against the noise
+        (a sensor blind in part of the map: lines there may go unseen).
     model : ndarray, shape (ny, nx), or None
         The fitted model over the whole map (NaN near states it has not seen);
         not part of the JSON.
@@ -294,6 +297,7 @@ class Refinement:
     structure: StructureTest | None = None
     curvature: dict | None = None
     model: np.ndarray | None = field(default=None, repr=False, compare=False)
+    weak_steps: bool = False
 
     def __bool__(self) -> bool:
         return self.ok
@@ -1268,6 +1272,8 @@ def refine_model(
             f"({x[ix]:.4g}, {y[iy]:.4g}) V, {1 + structure.excess:.1f}× the noise variance of pixel "
             f"differences (z = {structure.z:.0f}, threshold {structure.z_crit:.1f})"
         )
+    weak_steps = bool((np.isfinite(step_typ) and step_typ < WEAK_STEP_SNR * sig)
+                      or (np.isfinite(step_min) and step_min < WEAK_QUARTILE_SNR * sig))
     if np.isfinite(step_typ) and step_typ < WEAK_STEP_SNR * sig:
         q = q.with_warning(
             f"charge steps are weak: typical step {step_typ:.3g} vs noise {sig:.3g} (SNR {step_typ / sig:.1f})"
@@ -1281,7 +1287,7 @@ def refine_model(
                       noise=noise, step=(g1, g2), width_resolved=width_resolved, stride=(sy, sx), n_min=n_min,
                       quality=q, n_points=int(pz.size), iterations=it, converged=converged, snr=snr,
                       structure=structure, curvature=curvature.to_json() if curvature is not None else None,
-                      model=full)
+                      model=full, weak_steps=weak_steps)
 
 
 #: Systematic floor added in quadrature to the refined errors of (M12, M21, ΔV1, δ1, ΔV2, δ2):

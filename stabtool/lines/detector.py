@@ -14,7 +14,7 @@ from ..preprocess.noise import MAX_NOISE_SAMPLES, _noise_core
 from ..quality import Quality
 from ._geometry import steps
 from ._merge import drop_duplicates, merge_collinear
-from .edges import DEFAULT_HIGH_SIGMAS, DEFAULT_LOW_SIGMAS, EdgeScale, _edge_core, _select_scale
+from .edges import DEFAULT_HIGH_SIGMAS, DEFAULT_LOW_SIGMAS, FAINT_RATIO, EdgeScale, _edge_core, _select_scale
 from ._family import family_fit
 from .families import classify_lines, pixel_angle_deg
 from .hough import _segments_core, _segments_to_lines
@@ -228,17 +228,25 @@ def _smoothed(values: np.ndarray, sigma_px: float) -> np.ndarray:
 def _drop_weak_lines(refined: list[RefinedLine], names: list[str]) -> list[RefinedLine]:
     """Drop dot lines (negative slope) whose fitted step is below a quarter of their family's median.
 
-    Weak lines among strong ones of the same family are sensor texture, not
-    transitions. The median is taken per first-pass family (``names``): a
-    sensor that sees one dot much more weakly than the other gives that
-    dot's whole family small steps, and they are kept.
+    Weak lines among strong ones are sensor texture, not transitions. The
+    median is over all dot lines, except for a first-pass family (``names``)
+    whose own median is below ``FAINT_RATIO`` of it: a sensor that sees one
+    dot much more weakly than the other gives that dot's whole family small
+    steps, and they are kept (measured against their own median).
     """
+    dot = [(r, n) for r, n in zip(refined, names) if r.refined and r.line.slope < 0]
+    if len(dot) < 4:
+        return refined
+    ref_all = float(np.median([r.step_height for r, _ in dot]))
     ref_h = {}
     for n in set(names):
-        hs = [r.step_height for r, m in zip(refined, names) if m == n and r.refined and r.line.slope < 0]
-        ref_h[n] = float(np.median(hs)) if len(hs) >= 4 else -np.inf
+        hs = [r.step_height for r, m in dot if m == n]
+        # a family of its own contrast only when it is clearly fainter than the map's lines (as the
+        # edge map's contrast floor, FAINT_RATIO); otherwise the median over all dot lines
+        own = float(np.median(hs)) if len(hs) >= 4 else np.inf
+        ref_h[n] = own if own < FAINT_RATIO * ref_all else ref_all
     return [r for r, n in zip(refined, names)
-            if not (r.line.slope < 0 and np.isfinite(ref_h[n]) and (not r.refined or r.step_height < 0.25 * ref_h[n]))]
+            if not (r.line.slope < 0 and (not r.refined or r.step_height < 0.25 * ref_h[n]))]
 
 
 def _detect_core(values: np.ndarray, axes, cfg: LineDetector) -> LineDetection:
