@@ -97,6 +97,9 @@ class DiagramFit:
         doubt (lines off one lattice, cells of different size, a δ that is
         undetermined, negative or not below ΔV): the occupations are then
         not claimed absolute (:func:`stabtool.fit.charge_states.label_charge_states`).
+    remeasured : bool
+        The lines were re-measured on the map (False: the slopes are the
+        given lines' own, e.g. the detector's).
     """
 
     ok: bool
@@ -124,6 +127,7 @@ class DiagramFit:
     quality: Quality = field(default_factory=Quality)
     staircase_families: tuple[str, ...] = ()
     labels_consistent: bool = True
+    remeasured: bool = True
 
     def __bool__(self) -> bool:
         return self.ok
@@ -345,6 +349,7 @@ def _fit_once(
         q = q.with_warning("slope errors unknown (single line in a family): uncertainties understated")
     used1, n_drop1 = _reliable(lines1, inv1, steep=True)
     used2, n_drop2 = _reliable(lines2, s2, steep=False)
+    remeasured = True
     if data is not None:
         z = np.asarray(data.values, float)
         xa = np.asarray(data[data.dims[-1]].values, float)
@@ -384,6 +389,7 @@ def _fit_once(
             s2, s2_err = results[1].inv_or_slope, results[1].stderr
         else:
             q = q.with_warning("lines could not be re-measured on the map; slopes from the detector", doubtful=False)
+            remeasured = False
     s1 = (1.0 / inv1 if inv1 != 0 else np.inf) if np.isfinite(inv1) else np.nan
     s1_err = inv1_err * s1**2 if np.isfinite(inv1_err) and np.isfinite(s1) else np.nan
     slopes.update(dot1=s1, dot2=s2)
@@ -513,6 +519,7 @@ def _fit_once(
         lines1=lines1,
         lines2=lines2,
         interdot=inter,
+        remeasured=remeasured,
         quality=q,
         labels_consistent=consistent,
     )
@@ -646,7 +653,10 @@ def fit_diagram(
                                     lines=pred[name])
         second = _fit_once(replace(detection, families=fams), data=data, relocate=True, err_floor_px=err_floor_px,
                            merge_tol_px=PIECE_MERGE_PX, noise=noise)
-        if second.ok:
+        # the predicted lines must have been measured on the map: otherwise their slopes are the
+        # lattice's own, identical, and the pass would state a virtual-gate error of 1e-17 (bench
+        # case 80, si-sige SNR 3 with 1/f rows, seen with an intermediate detector)
+        if second.ok and second.remeasured:
             cands.append(second)
     # among the unbiased passes, the one with the smaller virtual-gate error
     best = min(cands, key=lambda f: float(np.nanmax(f.vg_matrix_error)))
