@@ -14,7 +14,8 @@ from ..preprocess.noise import MAX_NOISE_SAMPLES, _noise_core
 from ..quality import Quality
 from ._geometry import steps
 from ._merge import drop_duplicates, merge_collinear
-from .edges import DEFAULT_HIGH_SIGMAS, DEFAULT_LOW_SIGMAS, FAINT_RATIO, EdgeScale, _edge_core, _select_scale
+from .edges import (DEFAULT_HIGH_SIGMAS, DEFAULT_LOW_SIGMAS, FAINT_RATIO, EdgeScale, _edge_core, _select_scale,
+                    dot_line_bins)
 from ._family import family_fit
 from .families import classify_lines, pixel_angle_deg
 from .hough import _segments_core, _segments_to_lines
@@ -113,10 +114,11 @@ RESCUE_MIN_WIDTH_PX = 1.0
 RESCUE_SMOOTHING = 0.5
 
 
-def _select_edges(work: np.ndarray, noise: float, cfg: LineDetector) -> tuple[np.ndarray, EdgeScale]:
+def _select_edges(work: np.ndarray, noise: float, cfg: LineDetector,
+                  faint_bins: np.ndarray | None = None) -> tuple[np.ndarray, EdgeScale]:
     """Edge map at the scale selected from the width of the map's edges."""
     edges, scale = _select_scale(work, noise, sigma_px=cfg.sigma_px, max_sigma_px=cfg.max_sigma_px,
-                                 low=cfg.low_sigmas, high=cfg.high_sigmas)
+                                 low=cfg.low_sigmas, high=cfg.high_sigmas, faint_bins=faint_bins)
     return edges, scale
 
 
@@ -284,10 +286,13 @@ def _detect_core(values: np.ndarray, axes, cfg: LineDetector) -> LineDetection:
             f"{len(jumps)} charge jump(s) at row(s) {', '.join(str(j.row) for j in jumps)}: "
             "the rows at each jump were excluded and the pieces analysed separately", doubtful=False)
     # edges and segments, at a scale matched to the width of the lines
+    # a faint family (a sensor that hardly sees one dot) gets its own contrast floor, but only among
+    # the dot lines' orientations: interdot lines are faint on most sensors
+    faint_bins = dot_line_bins(float(axes.dx), float(axes.dy))
     if cfg.scale_selection:
-        edges, scale = _select_edges(work, noise, cfg)
+        edges, scale = _select_edges(work, noise, cfg, faint_bins)
     else:
-        edges, *_ = _edge_core(work, cfg.sigma_px, noise, cfg.low_sigmas, cfg.high_sigmas)
+        edges, *_ = _edge_core(work, cfg.sigma_px, noise, cfg.low_sigmas, cfg.high_sigmas, faint_bins=faint_bins)
         scale = None
     if ROW_OFFSETS_CLEAR_OF_LINES:
         work = _offsets_clear_of_lines(values, work, edges, scale, excluded_rows, noise, plain_offsets)

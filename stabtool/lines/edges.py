@@ -298,13 +298,26 @@ FAINT_RATIO = 0.4
 ORIENTATION_FLOOR = 0.2
 
 
+def dot_line_bins(x_step: float, y_step: float) -> np.ndarray:
+    """Orientation bins (boolean, ``N_ORIENTATION_BINS``) of the gradient across a dot line.
+
+    Dot lines have negative slopes dV_y/dV_x; in the pixel frame (column,
+    row) that is a negative slope when the two axis steps have the same sign,
+    and the gradient across such a line points into the first quadrant
+    (0°–90°); otherwise into the second.
+    """
+    first = np.arange(N_ORIENTATION_BINS) < N_ORIENTATION_BINS // 2
+    return first if x_step * y_step > 0 else ~first
+
+
 def _orientation_bins(gx: np.ndarray, gy: np.ndarray) -> np.ndarray:
     """Bin (0 … N_ORIENTATION_BINS − 1) of the gradient direction modulo 180°."""
     ang = np.arctan2(gy, gx) % np.pi
     return np.minimum((ang * (N_ORIENTATION_BINS / np.pi)).astype(int), N_ORIENTATION_BINS - 1)
 
 
-def _orientation_references(ms: np.ndarray, bins: np.ndarray, ref: float) -> np.ndarray:
+def _orientation_references(ms: np.ndarray, bins: np.ndarray, ref: float, *,
+                            allowed: np.ndarray | None = None) -> np.ndarray:
     """Reference magnitude of the contrast floor per orientation bin, shape (N_ORIENTATION_BINS,).
 
     ``ms`` are the strong (above the high threshold, suppressed) magnitudes,
@@ -315,7 +328,10 @@ def _orientation_references(ms: np.ndarray, bins: np.ndarray, ref: float) -> np.
     ``FAINT_RATIO · ref`` holds a faint family: its reference is that
     percentile, but not below ``ORIENTATION_FLOOR · ref``. Every other bin
     keeps ``ref``, so maps whose families are of comparable contrast get the
-    same edges as with one floor.
+    same edges as with one floor. ``allowed`` (boolean per bin) limits the
+    faint references to some orientations (the dot lines' quadrant: the
+    interdot lines, fainter than the dot lines on most sensors, keep the
+    map's floor).
     """
     out = np.full(N_ORIENTATION_BINS, float(ref))
     order = np.argsort(bins, kind="stable")
@@ -326,6 +342,8 @@ def _orientation_references(ms: np.ndarray, bins: np.ndarray, ref: float) -> np.
     below = np.concatenate([[0], np.cumsum(faint)])
     n_faint = below[edges[1:]] - below[edges[:-1]]
     for b in range(N_ORIENTATION_BINS):
+        if allowed is not None and not allowed[b]:
+            continue
         nb = [(b - 1) % N_ORIENTATION_BINS, b, (b + 1) % N_ORIENTATION_BINS]
         n_pool = int(n_bin[nb].sum())
         # (the 95th percentile, interpolated at 0.95 (n − 1), is below FAINT_RATIO·ref only if
@@ -388,12 +406,14 @@ def _percentile_linear(x: np.ndarray, q: float) -> float:
 
 
 def _edge_core(values: np.ndarray, sigma_px: float, noise: float, low: float, high: float,
-               contrast_floor: float = 0.2, *, with_gradient: bool = False):
+               contrast_floor: float = 0.2, *, with_gradient: bool = False, faint_bins: np.ndarray | None = None):
     """Edge map of ``values`` at one scale (see :func:`edge_map`).
 
     Returns ``(edges, gradient_noise, low, high, valid)``; with
     ``with_gradient`` also ``(gx, gy, sx, sy)``: the smoothed gradient
     components in noise units and their noise σ (signal units per pixel).
+    ``faint_bins`` (boolean, ``N_ORIENTATION_BINS``) limits the faint-family
+    contrast floor to those orientation bins (None: every bin).
     """
     valid = np.isfinite(values)
     img = values if valid.all() else fill_nan(values)
@@ -474,7 +494,8 @@ def _edge_core(values: np.ndarray, sigma_px: float, noise: float, low: float, hi
     hi0, lo0 = high, low
     ref_bin = None
     if contrast_floor > 0 and ms.size >= 20:
-        ref_bin = _orientation_references(ms, _orientation_bins(gxf[cs], gyf[cs]), _percentile_linear(ms, 0.95))
+        ref_bin = _orientation_references(ms, _orientation_bins(gxf[cs], gyf[cs]), _percentile_linear(ms, 0.95),
+                                          allowed=faint_bins)
         high = max(high, contrast_floor * float(ref_bin.min()))
         low = max(low, 0.5 * contrast_floor * float(ref_bin.min()))
     cw, mw = suppressed(~strong_sel & (mc > low))
@@ -563,10 +584,10 @@ PROBE_MAX_PIXELS = 128 * 128
 
 
 def _select_scale(values: np.ndarray, noise: float, *, sigma_px: float, max_sigma_px: float, low: float,
-                  high: float) -> tuple[np.ndarray, EdgeScale]:
+                  high: float, faint_bins: np.ndarray | None = None) -> tuple[np.ndarray, EdgeScale]:
     """Edge map at the selected scale and the :class:`EdgeScale` (core of :func:`edge_scale`)."""
     sa, sb = float(sigma_px), PROBE_FACTOR * float(sigma_px)
-    ra = _edge_core(values, sa, noise, low, high, with_gradient=True)
+    ra = _edge_core(values, sa, noise, low, high, with_gradient=True, faint_bins=faint_bins)
     # the width is a property of the lines, not of every pixel: on a large map the
     # larger probe scale runs on a central window of at most PROBE_MAX_PIXELS
     ny, nx = values.shape
@@ -574,7 +595,7 @@ def _select_scale(values: np.ndarray, noise: float, *, sigma_px: float, max_sigm
     wy, wx = min(ny, int(np.ceil(ny * f))), min(nx, int(np.ceil(nx * f)))
     y0, x0 = (ny - wy) // 2, (nx - wx) // 2
     win = (slice(y0, y0 + wy), slice(x0, x0 + wx))
-    rb = _edge_core(values[win], sb, noise, low, high, with_gradient=True)
+    rb = _edge_core(values[win], sb, noise, low, high, with_gradient=True, faint_bins=faint_bins)
     edges_b = rb[0]
     if f < 1.0:
         # away from the window's border (its smoothing sees a replicated edge there)
@@ -594,7 +615,7 @@ def _select_scale(values: np.ndarray, noise: float, *, sigma_px: float, max_sigm
         return ra[0], replace(scale, sigma_px=sa)
     if abs(sel - sb) <= 0.1 and f == 1.0:
         return rb[0], replace(scale, sigma_px=sb)
-    return _edge_core(values, sel, noise, low, high)[0], scale
+    return _edge_core(values, sel, noise, low, high, faint_bins=faint_bins)[0], scale
 
 
 def edge_scale(
