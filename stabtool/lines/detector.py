@@ -228,7 +228,7 @@ def _smoothed(values: np.ndarray, sigma_px: float) -> np.ndarray:
 
 
 def _drop_weak_lines(refined: list[RefinedLine], names: list[str]) -> list[RefinedLine]:
-    """Drop dot lines (negative slope) whose fitted step is below a quarter of their family's median.
+    """Drop dot lines (negative slope) whose fitted step is below a quarter of the median step.
 
     Weak lines among strong ones are sensor texture, not transitions. The
     median is over all dot lines, except for a first-pass family (``names``)
