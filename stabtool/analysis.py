@@ -822,9 +822,9 @@ def _lattice_too_uncertain(fit) -> bool:
     Held-out probe map with mains pickup (seed 9 of ``--noise hum``, SNR 4): a Cdg element known to
     108 % came with absolute labels wrong on 14 regions.
     """
-    c, e = np.abs(np.asarray(fit.cdg_aF, float)), np.asarray(fit.cdg_aF_error, float)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        rel = e / c
+    from .fit.uncertainty import relative_cdg_errors
+
+    rel = relative_cdg_errors(fit)
     return not bool(np.all(np.isfinite(rel)) and np.max(rel) <= ABSOLUTE_MAX_CDG_REL)
 
 

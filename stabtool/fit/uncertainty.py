@@ -17,7 +17,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["error_verdict", "numeric_jacobian", "propagate"]
+__all__ = ["error_verdict", "numeric_jacobian", "propagate", "relative_cdg_errors"]
 
 
 def numeric_jacobian(
@@ -87,6 +87,13 @@ def _pct(value: float, bound: float) -> str:
     return f"{100 * value:.4g}"
 
 
+def relative_cdg_errors(fit: Any) -> np.ndarray:
+    """``|σ(Cdg) / Cdg|`` of every element of ``fit.cdg_aF`` (NaN where an element is 0 or unknown)."""
+    cdg, err = np.asarray(fit.cdg_aF, float), np.asarray(fit.cdg_aF_error, float)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.abs(err / np.where(cdg != 0, np.abs(cdg), np.nan))
+
+
 def error_verdict(fit: Any) -> Any:
     """Quality of a diagram fit with its error-based checks redone on its current errors.
 
@@ -114,9 +121,7 @@ def error_verdict(fit: Any) -> Any:
         rel = fit.addition_V_error[i] / fit.addition_V[i]
         if rel > 0.05:
             q = q.with_warning(f"{name} addition voltage uncertain ({_pct(rel, 0.05)} % > 5 %)")
-    cdg, err = np.asarray(fit.cdg_aF, float), np.asarray(fit.cdg_aF_error, float)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        rel_cdg = np.abs(err / np.where(cdg != 0, np.abs(cdg), np.nan))
+    rel_cdg = relative_cdg_errors(fit)
     if not np.all(rel_cdg <= MAX_CDG_REL_ERROR):
         worst = float(np.nanmax(rel_cdg)) if np.any(np.isfinite(rel_cdg)) else float("nan")
         q = q.with_warning(
