@@ -1272,13 +1272,13 @@ def refine_model(
             f"({x[ix]:.4g}, {y[iy]:.4g}) V, {1 + structure.excess:.1f}× the noise variance of pixel "
             f"differences (z = {structure.z:.0f}, threshold {structure.z_crit:.1f})"
         )
-    weak_steps = bool((np.isfinite(step_typ) and step_typ < WEAK_STEP_SNR * sig)
-                      or (np.isfinite(step_min) and step_min < WEAK_QUARTILE_SNR * sig))
-    if np.isfinite(step_typ) and step_typ < WEAK_STEP_SNR * sig:
+    weak_typical = bool(np.isfinite(step_typ) and step_typ < WEAK_STEP_SNR * sig)
+    weak_quarter = bool(np.isfinite(step_min) and step_min < WEAK_QUARTILE_SNR * sig)
+    if weak_typical:
         q = q.with_warning(
             f"charge steps are weak: typical step {step_typ:.3g} vs noise {sig:.3g} (SNR {step_typ / sig:.1f})"
         )
-    elif np.isfinite(step_min) and step_min < WEAK_QUARTILE_SNR * sig:
+    elif weak_quarter:
         q = q.with_warning(
             f"charge steps are weak: a quarter of the steps are below {step_min:.3g} vs noise {sig:.3g} "
             f"(SNR {step_min / sig:.1f}; a peak-shaped sensor near its maximum)"
@@ -1287,7 +1287,7 @@ def refine_model(
                       noise=noise, step=(g1, g2), width_resolved=width_resolved, stride=(sy, sx), n_min=n_min,
                       quality=q, n_points=int(pz.size), iterations=it, converged=converged, snr=snr,
                       structure=structure, curvature=curvature.to_json() if curvature is not None else None,
-                      model=full, weak_steps=weak_steps)
+                      model=full, weak_steps=weak_typical or weak_quarter)
 
 
 #: Systematic floor added in quadrature to the refined errors of (M12, M21, ΔV1, δ1, ΔV2, δ2):
