@@ -833,13 +833,13 @@ def _without_switching(fit_map: xr.DataArray, fit: DiagramFit, states: ChargeSta
 
     When the fit to the map leaves sharp residual structure, the residual's
     rows are searched for piecewise-constant offsets (a charge trap switching
-    the sensor during the sweep, :func:`stabtool.preprocess.switching.switching_offsets`).
+    the sensor during the sweep, :func:`stabtool.fit.switching.switching_offsets`).
     If some are found and the fit to the map without them converges and
     leaves no sharp structure, that fit and that map are used. Returns
     ``(refinement, map, note)`` (the note empty when nothing changed).
     """
     from .fit.refine import refine_model
-    from .preprocess.switching import switching_offsets
+    from .fit.switching import switching_offsets
 
     st = refinement.structure
     if st is None or not st.flagged or refinement.model is None or not np.isfinite(refinement.noise):

@@ -14,6 +14,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .relocate import _mean_shift_stats
+
 __all__ = ["SwitchingOffsets", "switching_offsets"]
 
 #: Shortest piece of a row on either side of a switch, pixels.
@@ -52,22 +54,19 @@ class SwitchingOffsets:
 def _cusum_split(r: np.ndarray, sigma: float) -> tuple[int, float]:
     """Best split of ``r`` (finite, 1-D) into two constant pieces: ``(index, statistic in σ)``.
 
-    The statistic is the standardised difference of the two pieces' means,
-    ``|m₂ − m₁| √(n₁ n₂ / n) / σ``, of the clipped values.
+    The statistic is the mean-shift statistic of the line re-measurement
+    (:func:`stabtool.fit.relocate._mean_shift_stats`) of the clipped values,
+    ``|m₂ − m₁| √(n₁ n₂ / n) / σ``, over splits leaving ``MIN_PIECE_PX`` on
+    each side.
     """
     n = r.size
-    c = np.clip(r, -CLIP_SIGMAS * sigma, CLIP_SIGMAS * sigma)
-    cs = np.cumsum(c)
-    s = np.arange(MIN_PIECE_PX, n - MIN_PIECE_PX + 1)
-    if s.size == 0:
+    if n < 2 * MIN_PIECE_PX:
         return 0, 0.0
-    n1 = s.astype(float)
-    n2 = n - n1
-    m1 = cs[s - 1] / n1
-    m2 = (cs[-1] - cs[s - 1]) / n2
-    t = np.abs(m2 - m1) * np.sqrt(n1 * n2 / n) / sigma
+    c = np.clip(r, -CLIP_SIGMAS * sigma, CLIP_SIGMAS * sigma)
+    # (entry k − 1 of the statistics is the split after k samples)
+    t = _mean_shift_stats(c[None, :])[0, MIN_PIECE_PX - 1 : n - MIN_PIECE_PX] / sigma
     k = int(np.argmax(t))
-    return int(s[k]), float(t[k])
+    return MIN_PIECE_PX + k, float(t[k])
 
 
 def _uniform(piece: np.ndarray, level: float, half_step: float) -> bool:

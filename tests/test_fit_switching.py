@@ -1,4 +1,4 @@
-"""Sensor switching offsets (stabtool.preprocess.switching) and their removal before the map fit.
+"""Sensor switching offsets (stabtool.fit.switching) and their removal before the map fit.
 
 A charge trap next to the sensor switches it between two levels at random
 moments of the sweep (random telegraph noise, common practice, no source); a
@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 
 from stabtool.analysis import Analyzer
-from stabtool.preprocess.switching import switching_offsets
+from stabtool.fit.switching import switching_offsets
 from stabtool.simulate import quick_double_dot
 
 
