@@ -305,6 +305,14 @@ def _fmt(v: float, nd: int = 4) -> str:
     return "  -   " if not np.isfinite(v) else f"{v:.{nd}f}"
 
 
+def _range(text: str | None) -> tuple[float, float] | None:
+    """``'A:B'`` → ``(A, B)``; None stays None."""
+    if not text:
+        return None
+    lo, hi = (float(v) for v in text.split(":"))
+    return lo, hi
+
+
 def _parse_seeds(text: str) -> list[int]:
     out: list[int] = []
     for part in text.split(","):
@@ -357,9 +365,7 @@ def main(argv: list[str] | None = None) -> int:
           f"  t/s  first doubts (warnings that clear ok are marked '!')")
     for s in _parse_seeds(a.seeds):
         pm = make_map(s, size=(lo, hi), sensors=sensors, noise=noise, tunnel_coupling_ueV=a.tunnel_ueV,
-                      mutual_fraction=tuple(float(v) for v in a.mutual.split(":")) if a.mutual else None,
-                      start_e=tuple(float(v) for v in a.start_e.split(":")) if a.start_e else None,
-                      coupling_ratio=tuple(float(v) for v in a.coupling.split(":")) if a.coupling else None)
+                      mutual_fraction=_range(a.mutual), start_e=_range(a.start_e), coupling_ratio=_range(a.coupling))
         t0 = time.perf_counter()
         try:
             res = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data)

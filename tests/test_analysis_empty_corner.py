@@ -11,6 +11,7 @@ import warnings
 
 import numpy as np
 import pytest
+from _probe import make_map
 
 from stabtool.analysis import Analyzer
 from stabtool.physics.constants import E_AC
@@ -94,16 +95,6 @@ def test_only_interdot_segments_along_a_pair_of_triple_points_count_as_interdot(
     assert more.interdot_on_pairs.tolist() == [True] * len(found) + [False, False]
 
 
-def _probe_map(seed: int, **options):
-    import sys
-    from pathlib import Path
-
-    sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "scripts"))
-    from probe_heldout import make_map
-
-    return make_map(seed, **options)
-
-
 def _claimed_labels_off_the_ground_state(pm) -> list:
     """Regions whose occupation, claimed absolute for a dot, is not the ground state at the region's centroid."""
     with warnings.catch_warnings():
@@ -129,20 +120,20 @@ def test_no_absolute_labels_when_the_model_fit_disagrees_with_the_lines():
     # window: gauss sensor, row walk, spikes, gain drift, SNR 60). The model fit to the map disagrees
     # with the line-based lattice there, and the lattice's absolute labelling was wrong on three
     # regions. Absolute occupations, where claimed, must be the constant-interaction ground state.
-    assert _claimed_labels_off_the_ground_state(_probe_map(23, start_e=(-3.0, -2.2))) == []
+    assert _claimed_labels_off_the_ground_state(make_map(23, start_e=(-3.0, -2.2))) == []
 
 
 @pytest.mark.parametrize("seed", [239, 285])
 def test_no_absolute_labels_at_snr_four_where_a_low_line_went_undetected(seed):
     # ordinary probe maps (no empty corner in the window) at SNR 4: a line near the low corner went
     # undetected and the dots were called empty, with whole dots numbered one or two too high
-    assert _claimed_labels_off_the_ground_state(_probe_map(seed)) == []
+    assert _claimed_labels_off_the_ground_state(make_map(seed)) == []
 
 
 def test_no_absolute_labels_from_a_lattice_known_to_worse_than_ten_percent():
     # Probe seed 9 with mains pickup (SNR 4): a gate capacitance known to 108 % came with absolute
     # labels wrong on 14 regions.
-    assert _claimed_labels_off_the_ground_state(_probe_map(9, noise=("hum",))) == []
+    assert _claimed_labels_off_the_ground_state(make_map(9, noise=("hum",))) == []
 
 
 def test_the_lattice_uncertainty_rule_reads_the_relative_gate_capacitance_errors():

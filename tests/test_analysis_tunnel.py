@@ -181,11 +181,7 @@ def test_tunnel_coupled_map_is_not_ok_beyond_the_clean_bound(preset, t_ueV):
 def test_a_detuning_cut_sampled_in_descending_order_does_not_break_the_analysis():
     # held-out probe map (scripts/probe_heldout.py seed 40, 40–90 px maps: 47×59, sech² sensor, SNR 8):
     # its interdot cut ran against the detuning axis and the polarisation fit raised out of the analysis
-    import sys
-    from pathlib import Path
-
-    sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "scripts"))
-    from probe_heldout import make_map
+    from _probe import make_map
 
     pm = make_map(40, size=(40, 90))
     with warnings.catch_warnings():

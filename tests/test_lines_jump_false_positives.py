@@ -9,18 +9,13 @@ are the held-out probe's strongly coupled double dots (constant-interaction
 ground state, other sensor and noise models), which contain no charge jump.
 """
 
-import sys
-from pathlib import Path
-
 import numpy as np
 import pytest
+from _probe import make_map
 from test_lines_pipeline import render
 
 from stabtool.lines import detect_charge_jumps
 from stabtool.lines.jumps import _jumps_core
-
-sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "scripts"))
-from probe_heldout import make_map  # noqa: E402
 
 
 @pytest.mark.parametrize("seed", [24, 39])  # long hexagon edges; both reported jumps before the seam test
