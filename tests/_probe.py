@@ -10,6 +10,6 @@ import sys
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "scripts"))
-from probe_heldout import make_map  # noqa: E402
+from probe_heldout import make_map
 
 __all__ = ["make_map"]

@@ -11,6 +11,7 @@ are gone; there a step is found by a change-point search along the row.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from itertools import pairwise
 
 import numpy as np
 
@@ -137,11 +138,11 @@ def switching_offsets(residual: np.ndarray, noise: float, *, threshold: float | 
             cuts.append(s)
         if not cuts:
             continue
-        edges = [0] + sorted(cuts) + [v.size]
-        levels = [float(np.median(v[p:q])) for p, q in zip(edges[:-1], edges[1:])]
+        spans = list(pairwise([0, *sorted(cuts), v.size]))
+        levels = [float(np.median(v[p:q])) for p, q in spans]
         base = float(np.median(v))  # the row's own level stays (the row-offset correction's)
-        for (p, q), lev in zip(zip(edges[:-1], edges[1:]), levels):
+        for (p, q), lev in zip(spans, levels):
             out[r, cols[p:q]] = lev - base
-        for s, (l0, l1) in zip(edges[1:-1], zip(levels[:-1], levels[1:])):
+        for (s, _), (l0, l1) in zip(spans[1:], pairwise(levels)):
             found.append((r, int(cols[s]), l1 - l0))
     return SwitchingOffsets(out, tuple(found))
