@@ -828,15 +828,17 @@ def _lattice_too_uncertain(fit) -> bool:
     return not bool(np.all(np.isfinite(rel)) and np.max(rel) <= ABSOLUTE_MAX_CDG_REL)
 
 
-def _without_switching(fit_map: xr.DataArray, fit: DiagramFit, states: ChargeStates, refinement: Any):
+def _without_switching(fit_map: xr.DataArray, fit: DiagramFit, states: ChargeStates, refinement: Any, *,
+                       width_guess_V: float | None):
     """Remove sensor switching offsets when they are what the model fit left in its residual.
 
     When the fit to the map leaves sharp residual structure, the residual's
     rows are searched for piecewise-constant offsets (a charge trap switching
     the sensor during the sweep, :func:`stabtool.fit.switching.switching_offsets`).
     If some are found and the fit to the map without them converges and
-    leaves no sharp structure, that fit and that map are used. Returns
-    ``(refinement, map, note)`` (the note empty when nothing changed).
+    leaves no sharp structure, that fit and that map are used (the fit
+    started as the first, from ``width_guess_V``). Returns ``(refinement,
+    map, note)`` (the note empty when nothing changed).
     """
     from .fit.refine import refine_model
     from .fit.switching import switching_offsets
@@ -849,7 +851,7 @@ def _without_switching(fit_map: xr.DataArray, fit: DiagramFit, states: ChargeSta
     if not sw.n_switches:
         return refinement, fit_map, ""
     fixed = fit_map.copy(data=z - np.nan_to_num(sw.offsets))
-    again = refine_model(fixed, fit, charge_states=states, width_guess_V=_median_dot1_width(fit))
+    again = refine_model(fixed, fit, charge_states=states, width_guess_V=width_guess_V)
     if not again.converged or again.structure is None or again.structure.flagged:
         return refinement, fit_map, ""
     steps = np.abs([s for *_, s in sw.switches])
@@ -1060,9 +1062,10 @@ class Analyzer:
                 t2 = time.perf_counter()
                 from .fit.refine import adopt_refinement, refine_model
 
-                refinement = refine_model(fit_map, fit, charge_states=states,
-                                          width_guess_V=_median_dot1_width(fit))
-                refinement, fit_map, switch_note = _without_switching(fit_map, fit, states, refinement)
+                width_guess = _median_dot1_width(fit)
+                refinement = refine_model(fit_map, fit, charge_states=states, width_guess_V=width_guess)
+                refinement, fit_map, switch_note = _without_switching(fit_map, fit, states, refinement,
+                                                                      width_guess_V=width_guess)
                 adoption = adopt_refinement(fit, refinement)
                 q = q.merge(refinement.quality).merge(adoption.quality)
                 if switch_note:
