@@ -454,9 +454,9 @@ def test_adopted_error_of_m_carries_the_disagreement_with_the_lines():
     from stabtool.fit.model import fit_diagram
     from stabtool.fit.refine import (
         DISAGREEMENT_SHARE,
-        SYSTEMATIC_FLOOR,
         adopt_refinement,
         refine_model,
+        systematic_floor_m,
     )
     from stabtool.lines import detect_lines
 
@@ -464,7 +464,7 @@ def test_adopted_error_of_m_carries_the_disagreement_with_the_lines():
     fit = fit_diagram(detect_lines(bm.data), data=bm.data)
     ref = refine_model(bm.data, fit)
     vec, cov = ref.vector()
-    floor = min(max(ref.params["width_px1"], 0.1), 1.0) * SYSTEMATIC_FLOOR[0]
+    floor = systematic_floor_m(vec[:2], min(max(ref.params["width_px1"], 0.1), 1.0))[0]
     shift = 1.5 * np.sqrt(fit.param_cov[0, 0] + cov[0, 0] + floor**2)
     p = fit.params.copy()
     p[0] = vec[0] + shift
