@@ -25,11 +25,11 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import xarray as xr
 
-from .errors import InputError, QualityWarning
+from .errors import InputError, PartialSweepWarning, QualityWarning
 from .fit.charge_states import MIN_ABSOLUTE_CONFIDENCE, ChargeStates, label_charge_states
 from .fit.model import MAX_VG_ERROR, DiagramFit, fit_diagram
 from .lines.result import LineDetection
-from .mapdata import map_axes, validate_map, x_gate, y_gate
+from .mapdata import map_axes, validate_map, without_infinities, x_gate, y_gate
 from .physics import FERMI_FWHM_FACTOR, lever_arm_from_width
 from .quality import Quality
 
@@ -1003,7 +1003,11 @@ class Analyzer:
         return self(load(path, **load_kwargs))
 
     def __call__(self, da: xr.DataArray) -> AnalysisResult | DiamondAnalysisResult:
-        validate_map(da)
+        da = without_infinities(da)
+        with warnings.catch_warnings():
+            # the NaN fraction: said by the loader and in the detector's quality warnings
+            warnings.simplefilter("ignore", PartialSweepWarning)
+            validate_map(da)
         from .fit.diamond_map import analyze_diamond_map, is_bias_axis
 
         if self.mode == "diamonds" or (self.mode == "auto" and is_bias_axis(da)):

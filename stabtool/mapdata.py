@@ -23,7 +23,7 @@ import xarray as xr
 from .errors import InputError, PartialSweepWarning
 from .units import to_volts
 
-__all__ = ["MapAxes", "make_map", "validate_map", "map_axes", "x_gate", "y_gate"]
+__all__ = ["MapAxes", "make_map", "validate_map", "without_infinities", "map_axes", "x_gate", "y_gate"]
 
 
 @dataclass(frozen=True)
@@ -147,6 +147,30 @@ def _check_axis(values: np.ndarray, gate: str, source: str | None) -> None:
         )
 
 
+def without_infinities(da: xr.DataArray, *, source: str | None = None) -> xr.DataArray:
+    """``da`` with its infinite points made missing (NaN); ``da`` itself when it has none.
+
+    An instrument writes ±inf for an overflowed or failed read-out; such a
+    point carries no signal, like a point the sweep never reached, and every
+    step of the analysis is NaN-aware. Warns :class:`PartialSweepWarning`
+    with the fraction (the NaN count of :func:`validate_map` then includes them).
+    """
+    values = np.asarray(da.values)
+    if not np.issubdtype(values.dtype, np.floating):
+        return da
+    inf = np.isinf(values)
+    if not inf.any():
+        return da
+    src = source if source is not None else da.attrs.get("source")
+    warnings.warn(
+        f"{src or 'map'}: {100 * inf.mean():.1f} % of the points are infinite (overflow or a failed read-out); "
+        "treated as missing",
+        PartialSweepWarning,
+        stacklevel=2,
+    )
+    return da.copy(data=np.where(inf, np.nan, values))
+
+
 def validate_map(da: xr.DataArray, *, source: str | None = None) -> xr.DataArray:
     """Check that ``da`` is a usable map; return it unchanged.
 
@@ -169,10 +193,10 @@ def validate_map(da: xr.DataArray, *, source: str | None = None) -> xr.DataArray
     values = np.asarray(da.values, dtype=np.float64)
     finite = np.isfinite(values)
     if not finite.any():
-        raise InputError(src, "the map holds no finite values (all NaN)")
+        raise InputError(src, "the map holds no finite values (all NaN or infinite)")
     if np.nanmax(values) == np.nanmin(values):
         raise InputError(src, "the map is constant; there is nothing to analyse")
-    missing = 1.0 - finite.mean()
+    missing = float((~finite).mean())
     if missing > 0:
         warnings.warn(
             f"{src or 'map'}: {100 * missing:.1f} % of the points are missing (NaN)",

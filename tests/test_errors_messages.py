@@ -134,7 +134,7 @@ CASES = [
     (one_d_csv, {}, r"trace\.csv: 1-D data: the header has 2 column"),
     (one_d_nc, {}, r"trace\.nc: 1-D data"),
     (three_d_nc, {}, r"cube\.nc: 3-D data: variable 'sensor' has dims \('rep', 'PB', 'PA'\); select a 2-D slice with isel=\{'rep': 0\} \(CLI: --isel rep=0\)"),
-    (all_nan, {}, r"nan\.csv: the map holds no finite values \(all NaN\)"),
+    (all_nan, {}, r"nan\.csv: the map holds no finite values \(all NaN or infinite\)"),
     (constant, {}, r"c\.csv: the map is constant"),
     (unknown_unit_csv, {}, r"u\.csv: unknown unit 'mA' in gate column 'PA \(mA\)'; accepted voltage units: V, mV, uV"),
     (unknown_unit_nc, {}, r"u\.nc: unknown unit 'furlong' on coordinate 'PA'; accepted voltage units"),

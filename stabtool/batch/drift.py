@@ -29,7 +29,7 @@ import xarray as xr
 
 from ..errors import InputError
 from ..io.atomic import atomic_savefig
-from ..mapdata import map_axes, validate_map
+from ..mapdata import map_axes, validate_map, without_infinities
 from ..quality import Quality
 
 __all__ = [
@@ -380,6 +380,7 @@ def feature_of(da: xr.DataArray, *, smooth_px: float = DEFAULT_SMOOTH_PX) -> Swe
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", StabtoolWarning)
+        da = without_infinities(da)
         validate_map(da)
     da = _ascending(da)
     ax = map_axes(da)

@@ -26,7 +26,7 @@ from pathlib import Path
 import xarray as xr
 
 from ..errors import InputError, PartialSweepWarning
-from ..mapdata import validate_map
+from ..mapdata import validate_map, without_infinities
 from ._common import atomic_write
 from ._text import is_number, read_text_table
 from .csv_grid import is_grid_header, read_grid, write_grid
@@ -136,6 +136,7 @@ def load(
             da.attrs["source_format"] = "NetCDF/HDF5"
         elif kind == "npz":
             da.attrs["source_format"] = "npz"
+        da = without_infinities(da, source=src)
         validate_map(da, source=src)
     def generic(w: warnings.WarningMessage) -> bool:  # validate_map's NaN count
         return issubclass(w.category, PartialSweepWarning) and str(w.message).endswith("are missing (NaN)")

@@ -90,7 +90,7 @@ def _choose_variable(ds: xr.Dataset, src: str, var: str | None) -> str:
         return higher[0]
     if higher:
         raise InputError(src, f"several variables with more than 2 dimensions ({', '.join(higher)}); choose one with var=...")
-    dims = ", ".join(f"{n} ({ds[n].ndim}-D)" for n in names)
+    dims = ", ".join(f"{n} ({' × '.join(map(str, ds[n].shape)) or 'scalar'})" for n in names)
     raise InputError(
         src,
         f"1-D data: no 2-D variable (variables: {dims}); a map needs "

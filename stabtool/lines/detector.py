@@ -104,6 +104,8 @@ class LineDetector:
         """Detect, sort and refine the transition lines of ``da``."""
         axes = check_map(da)
         values = np.asarray(da.values, dtype=np.float64)
+        if np.isinf(values).any():  # an overflowed read-out is a missing point (mapdata.without_infinities)
+            values = np.where(np.isinf(values), np.nan, values)
         return _detect_core(values, axes, self)
 
 
@@ -254,8 +256,7 @@ def _drop_weak_lines(refined: list[RefinedLine], names: list[str]) -> list[Refin
 def _detect_core(values: np.ndarray, axes, cfg: LineDetector) -> LineDetection:
     ny = values.shape[0]
     quality = Quality()
-    finite = np.isfinite(values)
-    missing = 1.0 - finite.mean()
+    missing = float((~np.isfinite(values)).mean())
     if missing > 0:
         quality = quality.with_warning(f"{100 * missing:.1f} % of the points are missing (NaN); analysed the rest",
                                        doubtful=missing > 0.5)
