@@ -91,12 +91,17 @@ def assess_quality(
             s = np.array([l.slope for l in fam.lines])
             e = np.array([l.slope_stderr for l in fam.lines])
             steep = np.median(np.abs(s)) > 1
-            v, ve = (1 / s, e / s**2) if steep else (s, e)
-            w = 1 / np.maximum(ve, 1e-300) ** 2
-            m = (w * v).sum() / w.sum()
+            with np.errstate(divide="ignore", invalid="ignore"):  # (a vertical or flat line: checked below)
+                v, ve = (1 / s, e / s**2) if steep else (s, e)
+            # a line whose slope (or error) is not finite in the family's own parametrisation cannot
+            # be weighed; the others are, as long as three remain
+            use = np.isfinite(v) & np.isfinite(ve)
+            v, ve = v[use], ve[use]
+            w = 1 / np.maximum(ve, 1e-150) ** 2  # (finite: a zero error must not make the mean NaN)
+            m = (w * v).sum() / w.sum() if v.size else np.nan
             chi2 = float((w * (v - m) ** 2).sum())
-            p = float(chdtrc(v.size - 1, chi2))
-            spread = 1.4826 * np.median(np.abs(v - np.median(v))) / abs(np.median(v))
+            p = float(chdtrc(v.size - 1, chi2)) if v.size >= 3 else 1.0
+            spread = 1.4826 * np.median(np.abs(v - np.median(v))) / abs(np.median(v)) if v.size >= 3 else 0.0
             if p < 1e-3 and spread > MAX_REL_SLOPE_SPREAD:
                 q = q.with_warning(f"{name} lines are not parallel: slopes scatter by {100 * spread:.1f} % "
                                    f"(χ² p = {p:.1g})")
