@@ -53,3 +53,66 @@ def test_bad_lever_arm_option_is_a_usage_error(map_file, capsys):
     with pytest.raises(SystemExit) as exc:
         main(["analyze", str(map_file), "--lever-arm", "abc"])
     assert exc.value.code == 2
+
+
+def _saved(tmp_path, name, values, x=None, y=None):
+    import numpy as np
+    import xarray as xr
+
+    ny, nx = values.shape
+    x = np.linspace(0.0, 0.05, nx) if x is None else x
+    y = np.linspace(0.0, 0.04, ny) if y is None else y
+    path = tmp_path / name
+    xr.DataArray(values, dims=("PB", "PA"), coords={"PA": x, "PB": y}, name="signal").to_dataset().to_netcdf(
+        path, engine="h5netcdf")
+    return path
+
+
+def _run_cli(*args):
+    """``python -m stabtool.cli.main ARGS`` as a user runs it: (exit code, stdout, stderr)."""
+    import subprocess
+    import sys
+
+    p = subprocess.run([sys.executable, "-m", "stabtool.cli.main", *map(str, args)], capture_output=True,
+                       text=True, timeout=300)
+    return p.returncode, p.stdout, p.stderr
+
+
+def test_infinite_points_are_missing_points_and_the_plot_is_written(map_file, tmp_path):
+    # an instrument writes ±inf for an overflowed read-out: those points are missing, the map is
+    # analysed and plotted (the colour scale once came out infinite and the plot raised)
+    import numpy as np
+    import xarray as xr
+
+    with xr.open_dataset(map_file, engine="h5netcdf") as ds:
+        name = next(iter(ds.data_vars))
+        da = ds[name].load()
+    v = np.asarray(da.values, float).copy()
+    v[np.random.default_rng(0).random(v.shape) < 0.05] = np.inf
+    path = _saved(tmp_path, "overflowed.nc", v, x=da[da.dims[1]].values, y=da[da.dims[0]].values)
+    png = tmp_path / "overflowed.png"
+    code, out, err = _run_cli("analyze", path, "--json", "--no-refine", "--plot", png)
+    assert code == 0, err
+    assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    assert "infinite" in err and "treated as missing" in err and "Traceback" not in err
+    assert json.loads(out)["virtual_gate_matrix"] is not None
+
+
+def test_a_map_with_no_lines_gives_no_numeric_noise_on_stderr(tmp_path):
+    # a bare ramp: the doubtful verdict is the one message (no numpy floating-point notes, no
+    # empty-legend note from the plot)
+    import numpy as np
+
+    path = _saved(tmp_path, "ramp.nc", np.add.outer(np.arange(40.0), np.arange(50.0)))
+    code, _, err = _run_cli("analyze", path, "--plot", tmp_path / "ramp.png")
+    lines = [ln for ln in err.splitlines() if ln]
+    assert code == 0 and len(lines) == 1 and "analysis doubtful" in lines[0], err
+
+
+def test_all_infinite_map_is_bad_input(tmp_path, capsys):
+    import numpy as np
+
+    path = _saved(tmp_path, "dead.nc", np.full((20, 30), np.inf))
+    assert main(["analyze", str(path)]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "dead.nc" in err and "no finite values" in err

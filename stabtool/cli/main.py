@@ -118,6 +118,12 @@ def main(argv: Sequence[str] | None = None) -> int:
     if getattr(args, "quiet", False):
         warnings.simplefilter("ignore", StabtoolWarning)
     debug = bool(os.environ.get("STABTOOL_DEBUG"))
+    if not debug:
+        # numpy's floating-point notes (a NaN or an overflow inside a step that handles it) say
+        # nothing a user can act on; what matters reaches the quality warnings
+        warnings.filterwarnings("ignore", category=RuntimeWarning, module="numpy")
+        warnings.filterwarnings("ignore", message=r"(invalid value|divide by zero|overflow) encountered",
+                                category=RuntimeWarning)
     try:
         return int(args.func(args) or 0)
     except StabtoolError as exc:

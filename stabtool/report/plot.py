@@ -256,7 +256,8 @@ def _overlays(res: Any, ax: Any, *, n_pixels: int, max_labels: int, texts: _Text
     if cs is not None:
         kind = "absolute" if all(cs.absolute) else ("relative" if not any(cs.absolute) else "partly absolute")
         ax.add_line(Line2D([], [], ls="none", marker="None", color="k", label=f"(N1,N2): {kind}"))
-    legend = ax.legend(loc="upper right", fontsize=8, framealpha=0.85)
+    # (a map with no lines has nothing to list: no empty legend box)
+    legend = ax.legend(loc="upper right", fontsize=8, framealpha=0.85) if ax.get_legend_handles_labels()[0] else None
     # the boxes above the charge-state labels (zorder 3) whatever the order the artists were made in
     boxes = [_text(ax, texts, "key", 0.01, 0.99, _key_numbers(res), transform=ax.transAxes, va="top", ha="left",
                    zorder=4, fontsize=7.5, family="monospace",
