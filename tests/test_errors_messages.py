@@ -88,6 +88,16 @@ def three_d_nc(p):
     return p / "cube.nc"
 
 
+def binary_csv(p):
+    (p / "bin.csv").write_bytes(bytes(range(256)) * 4)
+    return p / "bin.csv"
+
+
+def all_inf(p):
+    (p / "inf.csv").write_text("PA (mV),PB (mV),sensor (nA)\n0,0,inf\n1,0,-inf\n0,1,inf\n1,1,inf\n")
+    return p / "inf.csv"
+
+
 def all_nan(p):
     (p / "nan.csv").write_text("PA (mV),PB (mV),sensor (nA)\n0,0,nan\n1,0,nan\n0,1,\n1,1,nan\n")
     return p / "nan.csv"
@@ -135,10 +145,12 @@ CASES = [
     (one_d_nc, {}, r"trace\.nc: 1-D data"),
     (three_d_nc, {}, r"cube\.nc: 3-D data: variable 'sensor' has dims \('rep', 'PB', 'PA'\); select a 2-D slice with isel=\{'rep': 0\} \(CLI: --isel rep=0\)"),
     (all_nan, {}, r"nan\.csv: the map holds no finite values \(all NaN or infinite\)"),
+    (all_inf, {}, r"inf\.csv: the map holds no finite values \(all NaN or infinite\)"),
     (constant, {}, r"c\.csv: the map is constant"),
     (unknown_unit_csv, {}, r"u\.csv: unknown unit 'mA' in gate column 'PA \(mA\)'; accepted voltage units: V, mV, uV"),
     (unknown_unit_nc, {}, r"u\.nc: unknown unit 'furlong' on coordinate 'PA'; accepted voltage units"),
     (unknown_format, {}, r"m\.bin: unknown format \(suffix '\.bin'\); accepted: \.nc"),
+    (binary_csv, {}, r"bin\.csv: binary content in a \.csv file: not a text table"),
     (saved_nc, {"var": "sensr"},
      r"v\.nc: no variable named 'sensr'; did you mean 'sensor'\?"),
     (text_in_number, {"var": "sensro"}, r"t\.csv: no column named 'sensro'; did you mean 'sensor'\?"),

@@ -96,6 +96,9 @@ def detect_format(path: str | os.PathLike[str]) -> str:
         raise InputError(src, "corrupt .npz: the file is not a zip archive")
     if kind == "text" and suffix in NETCDF_SUFFIXES + NPZ_SUFFIXES:  # pragma: no cover
         kind = None
+    if kind is None and suffix in TEXT_SUFFIXES:
+        raise InputError(src, f"binary content in a {suffix} file: not a text table (corrupt, or another format "
+                              f"under this name); accepted: {_ACCEPTED}")
     if kind is None or (kind == "text" and suffix not in TEXT_SUFFIXES and not _looks_tabular(head)):
         raise InputError(src, f"unknown format (suffix {suffix or 'none'!r}); accepted: {_ACCEPTED}")
     return kind
