@@ -33,8 +33,10 @@ was not tuned on:
   (1/f amplitude spectrum), row random walk (slow-axis offsets), rare spikes,
   slow gain drift (multiplicative, along the measurement time); opt-in with
   ``--noise``: ``telegraph`` (a charge trap switching the sensor between two
-  offsets at random moments) and ``hum`` (mains pickup: a sinusoid in
-  measurement time, i.e. straight stripes across the map).
+  offsets at random moments), ``hum`` (mains pickup: a sinusoid in
+  measurement time, i.e. straight stripes across the map) and ``lag`` (a fast
+  serpentine sweep read through a one-pole low-pass of 0.5–3 points: the lines
+  zig-zag from row to row).
 
 Every map prints one line (errors against the truth, the verdict, the first
 warnings); the summary gives coverage (fraction reported ok), silent failures
@@ -69,7 +71,7 @@ import numpy as np
 SENSORS = ("lorentz", "gauss", "sech2", "rf")
 ALL_SENSORS = SENSORS + ("comb", "transport")
 NOISES = ("pink", "walk", "spikes", "drift")
-OPT_NOISES = ("telegraph", "hum")  # only when asked for by --noise (the default draws stay as they were)
+OPT_NOISES = ("telegraph", "hum", "lag")  # only when asked for by --noise (the default draws stay as they were)
 SNRS = (4.0, 8.0, 20.0, 60.0)
 
 # issue bounds of the fitter (same numbers as stabtool.bench.bounds.FITTER_BOUNDS)
@@ -230,6 +232,18 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
         # 0.2–0.8 step heights (straight stripes across the map)
         t = np.arange(ny * nx, dtype=float).reshape(ny, nx)
         out = out + r.uniform(0.2, 0.8) * h * np.sin(2 * np.pi * t / r.uniform(6, 40) + r.uniform(0, 2 * np.pi))
+    if "lag" in extras:
+        # a fast serpentine sweep read through a low-pass (an RC filter or a lock-in time constant):
+        # rows alternate direction and the one-pole filter of τ = 0.5–3 points lags each row along its
+        # own direction, so the lines zig-zag by about ±τ points from row to row
+        from scipy.signal import lfilter
+
+        a = math.exp(-1.0 / r.uniform(0.5, 3.0))
+        snake = out.copy()
+        snake[1::2] = snake[1::2, ::-1]
+        flat = lfilter([1 - a], [1, -a], snake.ravel(), zi=[a * snake.flat[0]])[0]
+        out = flat.reshape(ny, nx)
+        out[1::2] = out[1::2, ::-1].copy()
     if "drift" in extras:
         t = (np.arange(ny * nx) / (ny * nx)).reshape(ny, nx)  # measurement time, row-major
         out = (out - np.median(out)) * (1 + r.uniform(-0.3, 0.3) * t + 0.1 * np.sin(2 * np.pi * r.uniform(0.5, 2) * t))

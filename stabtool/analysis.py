@@ -697,6 +697,7 @@ def _scale(
                 details[f"width_dot{i + 1}_V"] = w
                 details[f"width_dot{i + 1}_V_error"] = e
                 details["width_source"] = source
+        ws, q = _thermal_consistency(ws, es, details, ratio, ratio_err, ax_steps, q)
         a: np.ndarray = np.array([lever_arm_from_width(wi, temperature_K) if np.isfinite(wi) else np.nan for wi in ws])
         e_a: np.ndarray = a * es / ws
         if np.all(np.isfinite(a)) and np.isfinite(ratio):
@@ -776,6 +777,56 @@ def _scale(
         q = q.with_warning(f"{best_name}: only one lever arm determined; α and E_C of the other dot are null")
     return EnergyScale(alpha_diag=np.asarray(best_a, float), alpha_diag_error=np.asarray(best_e, float),
                        reference=best_name, details=details, quality=q, full_alpha=full[0], full_alpha_error=full[1])
+
+
+#: A resolved family is broader than thermal when the width it implies for a resolution-limited
+#: family exceeds that family's own measured width (an upper bound on its thermal width) by this
+#: factor and by 3σ (see :func:`_thermal_consistency`).
+THERMAL_BOUND_MARGIN = 1.25
+#: Fermi width (pixels) below which a measured width only says "unresolved" (the bound used then).
+SHARP_WIDTH_BOUND_PX = 0.5
+
+
+def _thermal_consistency(ws: np.ndarray, es: np.ndarray, details: dict[str, Any], ratio: float, ratio_err: float,
+                         ax_steps: tuple[float, float], q: Quality) -> tuple[np.ndarray, Quality]:
+    """Withhold a resolved family's width when the other, resolution-limited, family shows it non-thermal.
+
+    Both dots' lines are broadened by the same ``k_B T``: ``w_i = k_B T/(e α_ii)`` along each
+    dot's own plunger (constant-interaction model; van der Wiel et al., Rev. Mod. Phys. 75, 1
+    (2003)), so ``w2 = w1 · α11/α22``, the ratio the diagram gives (δ2/δ1). A family measured
+    resolution-limited has a thermal width below its measured one (or below half a pixel when it
+    measured narrower, :data:`SHARP_WIDTH_BOUND_PX`); when the resolved family's
+    width implies a clearly larger one, the resolved lines are broadened by something else — a
+    low-pass on the fast axis of a quick sweep (which widens the lines cut along it and not the
+    others), tunnel or lifetime broadening, noise — and the temperature would give a lever arm far
+    too small with a small stated error (held-out probe, serpentine sweeps through a one-pole filter
+    of 0.5–3 points: α off by 50–90 % at stated errors of 8–12 %). The width is then not used
+    (NaN) and a note says why. ``ws``, ``es`` in volts along x (dot1) and y (dot2).
+    """
+    limited = [details.get(f"width_dot{i + 1}_V_resolution_limited", np.nan) for i in range(2)]
+    if not np.isfinite(ratio) or ratio <= 0:
+        return ws, q
+    ws = ws.copy()
+    for i in range(2):
+        j = 1 - i
+        if not (np.isfinite(ws[i]) and np.isfinite(limited[j])):
+            continue
+        factor = ratio if i == 0 else 1.0 / ratio  # w_j = w_i · α_ii/α_jj
+        pred = ws[i] * factor
+        pred_err = pred * np.hypot(es[i] / ws[i] if np.isfinite(es[i]) else 0.0, ratio_err / ratio)
+        # (a step narrower than a pixel fits to any width below ≈ 0.3 px: half a pixel bounds it)
+        bound = max(float(limited[j]), SHARP_WIDTH_BOUND_PX * ax_steps[j])
+        if pred > THERMAL_BOUND_MARGIN * bound and pred - 3 * pred_err > bound:
+            details[f"width_dot{i + 1}_V_not_thermal"] = float(ws[i])
+            q = q.with_warning(
+                f"dot{i + 1} lines are broader than thermal: their width implies dot{j + 1} lines "
+                f"{FERMI_FWHM_FACTOR * pred / ax_steps[j]:.1f} px wide (FWHM), but those measure under "
+                f"{FERMI_FWHM_FACTOR * bound / ax_steps[j]:.1f} px (fast-axis low-pass, tunnel or lifetime "
+                "broadening?); no lever arm from the temperature",
+                doubtful=False,
+            )
+            ws[i] = np.nan
+    return ws, q
 
 
 def _lever_arm_from_file(path: str, da: xr.DataArray) -> tuple[np.ndarray, np.ndarray]:
