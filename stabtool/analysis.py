@@ -636,6 +636,7 @@ def _scale(
     lever_arm: tuple[float, ...] | None,
     lever_arm_file: str | None,
     triangles: Any = None,
+    fast_axis_lag_V: float = 0.0,
 ) -> EnergyScale:
     q = Quality()
     estimates: list[tuple[str, np.ndarray, np.ndarray]] = []
@@ -697,6 +698,7 @@ def _scale(
                 details[f"width_dot{i + 1}_V"] = w
                 details[f"width_dot{i + 1}_V_error"] = e
                 details["width_source"] = source
+        ws, q = _lag_broadened(ws, fit, fast_axis_lag_V, q)
         ws, q = _thermal_consistency(ws, es, details, ratio, ratio_err, ax_steps, q)
         a: np.ndarray = np.array([lever_arm_from_width(wi, temperature_K) if np.isfinite(wi) else np.nan for wi in ws])
         e_a: np.ndarray = a * es / ws
@@ -777,6 +779,56 @@ def _scale(
         q = q.with_warning(f"{best_name}: only one lever arm determined; α and E_C of the other dot are null")
     return EnergyScale(alpha_diag=np.asarray(best_a, float), alpha_diag_error=np.asarray(best_e, float),
                        reference=best_name, details=details, quality=q, full_alpha=full[0], full_alpha_error=full[1])
+
+
+#: A read-out lag broadens a family's lines beyond use for the temperature when its smear (along the
+#: family's profile direction) exceeds this fraction of the Fermi width: an exponential smear of
+#: mean τ adds τ² to the Fermi variance π²w²/3, a width bias of ≈ 3τ²/(2π²w²), 2.4 % at τ = 0.4 w.
+LAG_WIDTH_FRACTION = 0.4
+
+
+def _aligned_serpentine(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, float, Quality]:
+    """The map with alternate rows aligned when they are shifted along x; the lag (V along x, ≥ 0).
+
+    See :mod:`stabtool.preprocess.serpentine`. The lag returned is half the
+    shift (each direction's delay), 0 when none was found.
+    """
+    from .preprocess.serpentine import align_alternate_rows, alternate_row_shift
+
+    values = np.asarray(da.values, float)
+    shift = alternate_row_shift(values)
+    if not shift.significant:
+        return da, 0.0, q
+    dx = abs(float(map_axes(da).dx))
+    q = q.with_warning(
+        f"alternate rows are shifted by {shift.shift_px:+.2f} ± {shift.stderr_px:.2f} px along {x_gate(da)} "
+        "(a serpentine sweep read with a lag?): rows aligned on their midpoint before the analysis",
+        doubtful=False,
+    )
+    return da.copy(data=align_alternate_rows(values, shift.shift_px)), 0.5 * abs(shift.shift_px) * dx, q
+
+
+def _lag_broadened(ws: np.ndarray, fit: DiagramFit, lag_V: float, q: Quality) -> tuple[np.ndarray, Quality]:
+    """Leave out the widths that a fast-axis read-out lag of ``lag_V`` (V along x) broadens.
+
+    The lag smears each row along x by about ``lag_V``: across a dot1 line (cut
+    along x) by ``lag_V``, across a dot2 line (cut along y, slope ``s2``) by
+    ``|s2| lag_V``. A width whose smear exceeds :data:`LAG_WIDTH_FRACTION` of it
+    is not used for the temperature lever arm.
+    """
+    if not lag_V > 0:
+        return ws, q
+    ws = ws.copy()
+    smear = (lag_V, abs(fit.slopes.get("dot2", np.nan)) * lag_V)
+    for i in range(2):
+        if np.isfinite(ws[i]) and not smear[i] <= LAG_WIDTH_FRACTION * ws[i]:
+            q = q.with_warning(
+                f"dot{i + 1} lines: the read-out lag smears them by {smear[i] / ws[i]:.2f} of their width; "
+                "no lever arm from the temperature",
+                doubtful=False,
+            )
+            ws[i] = np.nan
+    return ws, q
 
 
 #: A resolved family is broader than thermal when the width it implies for a resolution-limited
@@ -1067,6 +1119,7 @@ class Analyzer:
         t0 = time.perf_counter()
         detector = self.detector or _default_detector
         q = Quality()
+        da, lag_V, q = _aligned_serpentine(da, q)
         detection: LineDetection | None
         try:
             detection = detector(da)
@@ -1183,7 +1236,7 @@ class Analyzer:
             triangles = fit_bias_triangles(da, bias_V=1e-3 * self.bias_mV,
                                            electron_temperature_K=self.electron_temperature_K)
         scale = _scale(fit_map, fit, temperature_K=self.electron_temperature_K, lever_arm=self.lever_arm,
-                       lever_arm_file=self.lever_arm_file, triangles=triangles)
+                       lever_arm_file=self.lever_arm_file, triangles=triangles, fast_axis_lag_V=lag_V)
         if (self.electron_temperature_K is not None and refinement is not None and refinement.ok
                 and refinement.width_resolved):
             # cross-check only: α11 = k_B T_e/(e w1) from the width fitted to the whole map
