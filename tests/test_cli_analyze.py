@@ -74,7 +74,7 @@ def _run_cli(*args):
     import sys
 
     p = subprocess.run([sys.executable, "-m", "stabtool.cli.main", *map(str, args)], capture_output=True,
-                       text=True, timeout=300)
+                       text=True, timeout=300, check=False)
     return p.returncode, p.stdout, p.stderr
 
 

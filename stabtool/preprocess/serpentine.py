@@ -33,7 +33,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["AlternateRowShift", "alternate_row_shift", "align_alternate_rows", "MIN_SHIFT_PX", "MIN_SHIFT_SIGMAS"]
+__all__ = ["MIN_SHIFT_PX", "MIN_SHIFT_SIGMAS", "AlternateRowShift", "align_alternate_rows", "alternate_row_shift"]
 
 #: Smallest alternate-row shift (pixels) that is corrected (a tenth of the 1/√12 px quantisation
 #: of a sharp line's crossing is below any effect on the numbers).
