@@ -808,6 +808,21 @@ def _aligned_serpentine(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, flo
     return da.copy(data=align_alternate_rows(values, shift.shift_px)), 0.5 * abs(shift.shift_px) * dx, q
 
 
+def _without_pickup(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, Quality]:
+    """The map without periodic pickup in measurement time (:mod:`stabtool.preprocess.pickup`)."""
+    from .preprocess.pickup import remove_pickup
+
+    values, tones = remove_pickup(np.asarray(da.values, float))
+    if not tones:
+        return da, q
+    spread = float(np.nanpercentile(values, 95) - np.nanpercentile(values, 5))
+    what = ", ".join(f"period {p.period_points:.2f} points, amplitude {p.amplitude:.3g} "
+                     f"({100 * p.amplitude / spread:.0f} % of the map's 5–95 % range)" for p in tones)
+    q = q.with_warning(f"periodic pickup in measurement time removed (rows measured along {x_gate(da)} one "
+                       f"after another): {what}", doubtful=False)
+    return da.copy(data=np.where(np.isfinite(da.values), values, np.nan)), q
+
+
 def _lag_broadened(ws: np.ndarray, fit: DiagramFit, lag_V: float, q: Quality) -> tuple[np.ndarray, Quality]:
     """Leave out the widths that a fast-axis read-out lag of ``lag_V`` (V along x) broadens.
 
@@ -1120,6 +1135,7 @@ class Analyzer:
         detector = self.detector or _default_detector
         q = Quality()
         da, lag_V, q = _aligned_serpentine(da, q)
+        da, q = _without_pickup(da, q)
         detection: LineDetection | None
         try:
             detection = detector(da)

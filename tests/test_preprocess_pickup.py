@@ -1,0 +1,87 @@
+"""Periodic pickup in measurement time (mains hum) is found, fitted and removed; line structure is not.
+
+The frequency is the periodogram maximum, the maximum-likelihood estimate for
+one sinusoid in white noise (D. C. Rife and R. R. Boorstyn, IEEE Trans. Inf.
+Theory 20, 591 (1974)); amplitude and phase follow by linear least squares.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from stabtool.preprocess.pickup import find_pickup, remove_pickup
+from stabtool.simulate import quick_double_dot
+
+
+def _map(seed=3, snr=30.0, preset="gaas-double", shape=(120, 150)):
+    return np.asarray(quick_double_dot(preset, shape=shape, snr=snr, rng=seed).data.values, float)
+
+
+def _step(v):
+    """Typical charge step: the median of the largest 1 % of |Δx| (the lines' steps)."""
+    d = np.abs(np.diff(v, axis=1)).ravel()
+    return float(np.median(np.sort(d)[-max(1, d.size // 100):]))
+
+
+@pytest.mark.parametrize("period,rel_amp,phase", [(9.7, 0.5, 0.3), (23.7, 0.3, 2.0), (6.4, 0.8, -1.0)])
+def test_a_tone_in_measurement_time_is_recovered(period, rel_amp, phase):
+    v = _map()
+    amp = rel_amp * _step(v)
+    t = np.arange(v.size, dtype=float).reshape(v.shape)
+    hum = amp * np.sin(2 * np.pi * t / period + phase)
+    p = find_pickup(v + hum)
+    assert p is not None
+    assert p.period_points == pytest.approx(period, rel=1e-4)
+    assert p.amplitude == pytest.approx(amp, rel=0.05)
+    cleaned, tones = remove_pickup(v + hum)
+    assert len(tones) == 1
+    # what is left of the tone: a small fraction of it
+    assert np.sqrt(np.mean((cleaned - v) ** 2)) < 0.1 * amp / np.sqrt(2)
+
+
+@pytest.mark.parametrize("seed,snr,preset", [(1, 30.0, "gaas-double"), (2, 5.0, "si-sige-double"),
+                                             (3, 10.0, "si-mos-double"), (4, 3.0, "ge-double"),
+                                             (5, 100.0, "gaas-double")])
+def test_maps_without_pickup_are_left_alone(seed, snr, preset):
+    v = _map(seed, snr, preset)
+    cleaned, tones = remove_pickup(v)
+    assert tones == []
+    np.testing.assert_array_equal(cleaned, v)
+
+
+def test_two_tones_are_both_removed():
+    v = _map(7)
+    a = _step(v)
+    t = np.arange(v.size, dtype=float).reshape(v.shape)
+    hum = 0.6 * a * np.sin(2 * np.pi * t / 11.1) + 0.3 * a * np.sin(2 * np.pi * t / 5.3 + 1.0)
+    cleaned, tones = remove_pickup(v + hum)
+    assert sorted(round(p.period_points, 2) for p in tones) == [5.3, 11.1]
+    assert np.sqrt(np.mean((cleaned - v) ** 2)) < 0.05 * a
+
+
+def test_a_tone_repeating_with_the_rows_is_left_alone():
+    # 150 points per row and a period of 9.3: the tone's phase advances by 0.13 cycle per row, its
+    # stripes are nearly vertical and, like transition lines, repeat from row to row: not searched
+    v = _map()
+    t = np.arange(v.size, dtype=float).reshape(v.shape)
+    assert v.shape[1] / 9.3 % 1 == pytest.approx(0.129, abs=1e-3)
+    assert find_pickup(v + 0.5 * _step(v) * np.sin(2 * np.pi * t / 9.3)) is None
+
+
+@pytest.mark.regression
+def test_analysis_of_a_map_with_hum_removes_it_and_keeps_the_virtual_gates():
+    import warnings
+
+    from stabtool.analysis import Analyzer
+
+    sm = quick_double_dot("si-sige-double", shape=(140, 140), snr=30.0, rng=1)
+    v = np.asarray(sm.data.values, float)
+    t = np.arange(v.size, dtype=float).reshape(v.shape)
+    hum = 0.6 * _step(v) * np.sin(2 * np.pi * t / 13.7 + 0.4)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        j = Analyzer()(sm.data.copy(data=v + hum)).to_json()
+    assert any(w.startswith("periodic pickup in measurement time removed") for w in j["quality"]["warnings"])
+    m, mt = np.array(j["virtual_gate_matrix"]), np.array(sm.truth.to_json()["virtual_gate_matrix"])
+    assert np.max(np.abs(m - mt)) <= 0.005
