@@ -32,6 +32,7 @@ peaks reached 96 and explained at most 0.98.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from itertools import pairwise
 
 import numpy as np
 from scipy.fft import next_fast_len
@@ -108,9 +109,7 @@ def find_pickup(values: np.ndarray) -> Pickup | None:
     if ok.sum() < 0.5 * n:
         return None
     y = np.where(ok, y - np.nanmean(y), 0.0)
-    d = np.diff(y)
-    d[nx - 1 :: nx] = 0.0  # the jump from the end of one row to the start of the next
-    d[~(ok[1:] & ok[:-1])] = 0.0
+    d = _time_differences(y, ok, nx)
     n_fft = next_fast_len(d.size, real=True)  # (zero padding: a prime length would be slow)
     spec = np.abs(np.fft.rfft(d * np.hanning(d.size), n_fft))
     freq = np.fft.rfftfreq(n_fft)
@@ -135,13 +134,18 @@ def find_pickup(values: np.ndarray) -> Pickup | None:
     # a tone explains its peak: what the pure sinusoid leaves within ± 4 bins must be a trace
     # (the structure of the map concentrated off the row harmonics leaves 2–60 % there)
     rest = np.where(ok, y - tone.signal((ny, nx)).ravel(), 0.0)
-    before = _local_power(d, k, n_fft)
-    after_d = np.diff(rest)
-    after_d[nx - 1 :: nx] = 0.0
-    after_d[~(ok[1:] & ok[:-1])] = 0.0
-    if not _local_power(after_d, k, n_fft) <= (1.0 - MIN_EXPLAINED) * before:
+    after = _local_power(_time_differences(rest, ok, nx), k, n_fft)
+    if not after <= (1.0 - MIN_EXPLAINED) * _local_power(d, k, n_fft):
         return None
     return tone
+
+
+def _time_differences(y: np.ndarray, ok: np.ndarray, nx: int) -> np.ndarray:
+    """Successive differences of the time series ``y``; 0 across a row's end and next to a missing point."""
+    d = np.diff(y)
+    d[nx - 1 :: nx] = 0.0  # the jump from the end of one row to the start of the next
+    d[~(ok[1:] & ok[:-1])] = 0.0
+    return d
 
 
 def _running_level(spec: np.ndarray, size: int) -> np.ndarray:
@@ -152,7 +156,7 @@ def _running_level(spec: np.ndarray, size: int) -> np.ndarray:
     """
     nb = max(1, spec.size // size)
     edges = np.linspace(0, spec.size, nb + 1).astype(int)
-    med = np.array([np.median(spec[a:b]) for a, b in zip(edges[:-1], edges[1:])])
+    med = np.array([np.median(spec[a:b]) for a, b in pairwise(edges)])
     centres = 0.5 * (edges[:-1] + edges[1:] - 1)
     return np.interp(np.arange(spec.size), centres, med)
 
