@@ -180,7 +180,9 @@ class AnalysisResult:
     Attributes
     ----------
     data : xarray.DataArray
-        The analysed map.
+        The map as measured (infinite points made missing). Corrections the
+        analysis made before reading it (alternate rows aligned, periodic
+        pickup removed) are stated in the quality notes.
     detection : LineDetection or None
         Lines found (None when detection itself failed).
     diagram : DiagramFit
@@ -820,7 +822,7 @@ def _without_pickup(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, Quality
                      f"({100 * p.amplitude / spread:.0f} % of the map's 5–95 % range)" for p in tones)
     q = q.with_warning(f"periodic pickup in measurement time removed (rows measured along {x_gate(da)} one "
                        f"after another): {what}", doubtful=False)
-    return da.copy(data=np.where(np.isfinite(da.values), values, np.nan)), q
+    return da.copy(data=values), q
 
 
 def _lag_broadened(ws: np.ndarray, fit: DiagramFit, lag_V: float, q: Quality) -> tuple[np.ndarray, Quality]:
@@ -1134,6 +1136,7 @@ class Analyzer:
         t0 = time.perf_counter()
         detector = self.detector or _default_detector
         q = Quality()
+        measured = da  # (the result holds the map as measured; the analysis reads it corrected)
         da, lag_V, q = _aligned_serpentine(da, q)
         da, q = _without_pickup(da, q)
         detection: LineDetection | None
@@ -1370,7 +1373,7 @@ class Analyzer:
                 f"{da.attrs.get('source', 'map')}: analysis doubtful: {'; '.join(q.doubts_first()[:3])}",
                 QualityWarning, stacklevel=2,
             )
-        return AnalysisResult(data=da, detection=detection, diagram=fit, scale=scale, charge_states=states,
+        return AnalysisResult(data=measured, detection=detection, diagram=fit, scale=scale, charge_states=states,
                               refinement=refinement, quality=q, timings_s=timings, tunnel=tunnel, coupling=coupling,
                               transport=transport)
 
