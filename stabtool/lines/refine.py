@@ -751,7 +751,7 @@ def _interpolated_crossings(fit: BatchFit, U: np.ndarray, Y: np.ndarray, M: np.n
     den = F1 - F0
     # noise of one sample in units of the height, from the profile residuals
     dof = np.maximum(M.sum(1) - 5, 1)
-    with np.errstate(invalid="ignore", divide="ignore"):  # a failed profile's NaN stays in its row (not good)
+    with np.errstate(invalid="ignore", divide="ignore"):  # (a failed profile: NaN, and its row is not `good`)
         sn = np.sqrt(fit.ssr / dof) / np.abs(h)
     # at low SNR the interpolation is noisier than the pixel quantisation (1/√12 px): midpoint kept
     good = sharp & M[rows, j0] & M[rows, j0 + 1] & np.isfinite(den) & (den > 0.3) & (sn < 0.2)
