@@ -789,40 +789,46 @@ def _scale(
 LAG_WIDTH_FRACTION = 0.4
 
 
-def _aligned_serpentine(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, float, Quality]:
-    """The map with alternate rows aligned when they are shifted along x; the lag (V along x, ≥ 0).
+def _corrected_readout(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, float, Quality]:
+    """The map without periodic pickup and with alternate rows aligned; the read-out lag (V along x, ≥ 0).
 
-    See :mod:`stabtool.preprocess.serpentine`. The lag returned is half the
-    shift (each direction's delay), 0 when none was found.
+    Order matters: the pickup is a tone in measurement time of the map as
+    measured (aligning rows first would shift it by a fraction of a sample on
+    alternate rows), and that time runs along a serpentine when alternate rows
+    are shifted, so the shift is measured first, the pickup removed in the
+    right time order, the shift measured again on the map without it, and the
+    rows aligned. See :mod:`stabtool.preprocess.serpentine` and
+    :mod:`stabtool.preprocess.pickup`. The lag returned is half the shift
+    (each direction's delay), 0 when none was found.
     """
+    from .preprocess.pickup import remove_pickup
     from .preprocess.serpentine import align_alternate_rows, alternate_row_shift
 
-    values = np.asarray(da.values, float)
-    shift = alternate_row_shift(values)
-    if not shift.significant:
+    raw = np.asarray(da.values, float)
+    shift = alternate_row_shift(raw)
+    snake = shift.significant
+    values, tones = remove_pickup(raw, snake=snake)
+    if tones:
+        spread = float(np.nanpercentile(values, 95) - np.nanpercentile(values, 5))
+        what = ", ".join(f"period {p.period_points:.2f} points, amplitude {p.amplitude:.3g} "
+                         f"({100 * p.amplitude / spread:.0f} % of the map's 5–95 % range)" for p in tones)
+        order = "back and forth" if snake else "one after another"
+        q = q.with_warning(f"periodic pickup in measurement time removed (rows measured along {x_gate(da)} "
+                           f"{order}): {what}", doubtful=False)
+        if snake:
+            shift = alternate_row_shift(values)
+    lag_V = 0.0
+    if shift.significant:
+        q = q.with_warning(
+            f"alternate rows are shifted by {shift.shift_px:+.2f} ± {shift.stderr_px:.2f} px along {x_gate(da)} "
+            "(a serpentine sweep read with a lag?): rows aligned on their midpoint before the analysis",
+            doubtful=False,
+        )
+        values = align_alternate_rows(values, shift.shift_px)
+        lag_V = 0.5 * abs(shift.shift_px) * abs(float(map_axes(da).dx))
+    if not tones and not shift.significant:
         return da, 0.0, q
-    dx = abs(float(map_axes(da).dx))
-    q = q.with_warning(
-        f"alternate rows are shifted by {shift.shift_px:+.2f} ± {shift.stderr_px:.2f} px along {x_gate(da)} "
-        "(a serpentine sweep read with a lag?): rows aligned on their midpoint before the analysis",
-        doubtful=False,
-    )
-    return da.copy(data=align_alternate_rows(values, shift.shift_px)), 0.5 * abs(shift.shift_px) * dx, q
-
-
-def _without_pickup(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, Quality]:
-    """The map without periodic pickup in measurement time (:mod:`stabtool.preprocess.pickup`)."""
-    from .preprocess.pickup import remove_pickup
-
-    values, tones = remove_pickup(np.asarray(da.values, float))
-    if not tones:
-        return da, q
-    spread = float(np.nanpercentile(values, 95) - np.nanpercentile(values, 5))
-    what = ", ".join(f"period {p.period_points:.2f} points, amplitude {p.amplitude:.3g} "
-                     f"({100 * p.amplitude / spread:.0f} % of the map's 5–95 % range)" for p in tones)
-    q = q.with_warning(f"periodic pickup in measurement time removed (rows measured along {x_gate(da)} one "
-                       f"after another): {what}", doubtful=False)
-    return da.copy(data=values), q
+    return da.copy(data=values), lag_V, q
 
 
 def _lag_broadened(ws: np.ndarray, fit: DiagramFit, lag_V: float, q: Quality) -> tuple[np.ndarray, Quality]:
@@ -1137,8 +1143,7 @@ class Analyzer:
         detector = self.detector or _default_detector
         q = Quality()
         measured = da  # (the result holds the map as measured; the analysis reads it corrected)
-        da, lag_V, q = _aligned_serpentine(da, q)
-        da, q = _without_pickup(da, q)
+        da, lag_V, q = _corrected_readout(da, q)
         detection: LineDetection | None
         try:
             detection = detector(da)

@@ -97,9 +97,14 @@ def _fit_tone(y: np.ndarray, ok: np.ndarray, t: np.ndarray, f: float) -> tuple[f
     return float(np.hypot(a, b)), float(np.arctan2(b, a)), float(a * a + b * b)
 
 
-def find_pickup(values: np.ndarray) -> Pickup | None:
-    """The strongest pickup tone of a map (rows along x, measured in row-major order), or None."""
-    v = np.asarray(values, float)
+def find_pickup(values: np.ndarray, *, snake: bool = False) -> Pickup | None:
+    """The strongest pickup tone of a map (rows along x, measured one after another), or None.
+
+    ``snake``: the rows were swept back and forth (odd rows from high to low
+    x); the tone is then sought in that time order, where a pattern repeating
+    row to row repeats every two rows.
+    """
+    v = _in_time_order(np.asarray(values, float), snake)
     ny, nx = v.shape
     n = ny * nx
     if ny < 4 or nx < 8:
@@ -116,7 +121,8 @@ def find_pickup(values: np.ndarray) -> Pickup | None:
     bg = _running_level(spec, max(31, spec.size // 50))
     with np.errstate(divide="ignore", invalid="ignore"):
         ratio = spec / bg
-    grid = np.abs(freq * nx - np.round(freq * nx))
+    period = 2 * nx if snake else nx  # (a serpentine pattern repeats after a forward and a backward row)
+    grid = np.abs(freq * period - np.round(freq * period))
     search = (freq > 1.0 / nx) & (freq < 1.0 / MIN_PERIOD) & (grid > OFF_GRID) & np.isfinite(ratio)
     if not search.any():
         return None
@@ -167,14 +173,28 @@ def _local_power(d: np.ndarray, k: int, n_fft: int, half: int = 4) -> float:
     return float(spec[max(k - half, 0) : k + half + 1].sum())
 
 
-def remove_pickup(values: np.ndarray, *, max_tones: int = MAX_TONES) -> tuple[np.ndarray, list[Pickup]]:
-    """``values`` without its pickup tones (up to ``max_tones``) and the tones removed."""
+def remove_pickup(values: np.ndarray, *, max_tones: int = MAX_TONES,
+                  snake: bool = False) -> tuple[np.ndarray, list[Pickup]]:
+    """``values`` without its pickup tones (up to ``max_tones``) and the tones removed.
+
+    ``snake`` as in :func:`find_pickup` (the tones' time ``t`` then runs along
+    the serpentine).
+    """
     v = np.asarray(values, float).copy()
     tones: list[Pickup] = []
     for _ in range(max_tones):
-        p = find_pickup(v)
+        p = find_pickup(v, snake=snake)
         if p is None:
             break
-        v = v - p.signal(v.shape)
+        v = v - _in_time_order(p.signal(v.shape), snake)
         tones.append(p)
     return v, tones
+
+
+def _in_time_order(v: np.ndarray, snake: bool) -> np.ndarray:
+    """A map laid out in measurement order: odd rows reversed for a serpentine sweep (its own inverse)."""
+    if not snake:
+        return v
+    out = v.copy()
+    out[1::2] = out[1::2, ::-1]
+    return out
