@@ -807,16 +807,22 @@ def _corrected_readout(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, floa
     raw = np.asarray(da.values, float)
     shift = alternate_row_shift(raw)
     snake = shift.significant
-    values, tones = remove_pickup(raw, snake=snake)
-    if tones:
+    values, found = raw, False
+    # a serpentine sweep's time runs back and forth; a row-major tone is still looked for after it
+    # (rows shifted by another cause, or a sweep that returns without measuring)
+    for order in ((True, False) if snake else (False,)):
+        values, tones = remove_pickup(values, snake=order)
+        if not tones:
+            continue
+        found = True
         spread = float(np.nanpercentile(values, 95) - np.nanpercentile(values, 5))
         what = ", ".join(f"period {p.period_points:.2f} points, amplitude {p.amplitude:.3g} "
                          f"({100 * p.amplitude / spread:.0f} % of the map's 5–95 % range)" for p in tones)
-        order = "back and forth" if snake else "one after another"
+        how = "back and forth" if order else "one after another"
         q = q.with_warning(f"periodic pickup in measurement time removed (rows measured along {x_gate(da)} "
-                           f"{order}): {what}", doubtful=False)
-        if snake:
-            shift = alternate_row_shift(values)
+                           f"{how}): {what}", doubtful=False)
+    if found and snake:
+        shift = alternate_row_shift(values)
     lag_V = 0.0
     if shift.significant:
         q = q.with_warning(
@@ -826,7 +832,7 @@ def _corrected_readout(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, floa
         )
         values = align_alternate_rows(values, shift.shift_px)
         lag_V = 0.5 * abs(shift.shift_px) * abs(float(map_axes(da).dx))
-    if not tones and not shift.significant:
+    if not found and not shift.significant:
         return da, 0.0, q
     return da.copy(data=values), lag_V, q
 
