@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from _readout import serpentine_low_pass
 
 from stabtool.preprocess.pickup import find_pickup, remove_pickup
 from stabtool.simulate import quick_double_dot
@@ -106,8 +107,6 @@ def test_hum_on_a_serpentine_sweep_read_with_a_lag():
     # the tone would no longer be one), then the shift is measured again on the map without it
     import warnings
 
-    from scipy.signal import lfilter
-
     from stabtool.analysis import Analyzer
 
     sm = quick_double_dot("si-sige-double", shape=(140, 140), snr=30.0, rng=1)
@@ -116,10 +115,7 @@ def test_hum_on_a_serpentine_sweep_read_with_a_lag():
     t[1::2] = t[1::2, ::-1]
     v = v + 0.6 * _step(v) * np.sin(2 * np.pi * t / 13.7 + 0.4)
     a = np.exp(-1 / 1.5)
-    snake = v.copy()
-    snake[1::2] = snake[1::2, ::-1]
-    flat = lfilter([1 - a], [1, -a], snake.ravel(), zi=[a * snake.flat[0]])[0].reshape(v.shape)
-    flat[1::2] = flat[1::2, ::-1].copy()
+    flat = serpentine_low_pass(v, a)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         j = Analyzer()(sm.data.copy(data=flat)).to_json()

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from scipy.signal import lfilter
+from _readout import serpentine_low_pass
 
 from stabtool.preprocess.serpentine import MIN_SHIFT_PX, align_alternate_rows, alternate_row_shift
 from stabtool.simulate import quick_double_dot
@@ -70,10 +70,7 @@ def test_one_pole_low_pass_on_a_serpentine_sweep_is_found_and_aligned():
     v = _map(5, 60.0)
     a = np.exp(-1 / 1.5)
     mean_delay = a / (1 - a)
-    snake = v.copy()
-    snake[1::2] = snake[1::2, ::-1]
-    flat = lfilter([1 - a], [1, -a], snake.ravel(), zi=[a * snake.flat[0]])[0].reshape(v.shape)
-    flat[1::2] = flat[1::2, ::-1].copy()
+    flat = serpentine_low_pass(v, a)
     r = alternate_row_shift(flat)
     assert r.significant and r.shift_px < 0
     assert mean_delay <= abs(r.shift_px) <= 2 * mean_delay
@@ -98,10 +95,7 @@ def test_analysis_aligns_a_serpentine_map_and_keeps_the_virtual_gates():
     sm = quick_double_dot("si-sige-double", shape=(140, 140), snr=30.0, rng=1)
     v = np.asarray(sm.data.values, float)
     a = np.exp(-1 / 1.5)
-    snake = v.copy()
-    snake[1::2] = snake[1::2, ::-1]
-    flat = lfilter([1 - a], [1, -a], snake.ravel(), zi=[a * snake.flat[0]])[0].reshape(v.shape)
-    flat[1::2] = flat[1::2, ::-1].copy()
+    flat = serpentine_low_pass(v, a)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         j = Analyzer()(sm.data.copy(data=flat)).to_json()

@@ -1,0 +1,17 @@
+"""Read-out artefacts applied to a test map in measurement order (shared by the pre-processing tests)."""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy.signal import lfilter
+
+__all__ = ["serpentine_low_pass"]
+
+
+def serpentine_low_pass(values: np.ndarray, a: float) -> np.ndarray:
+    """``values`` swept back and forth (odd rows from high to low x) through ``y_n = (1 − a) x_n + a y_(n−1)``."""
+    snake = np.asarray(values, float).copy()
+    snake[1::2] = snake[1::2, ::-1]
+    flat = lfilter([1 - a], [1, -a], snake.ravel(), zi=[a * snake.flat[0]])[0].reshape(snake.shape)
+    flat[1::2] = flat[1::2, ::-1].copy()
+    return flat
