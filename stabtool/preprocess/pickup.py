@@ -24,9 +24,10 @@ the map that happens to peak off the row harmonics changes along the sweep
 and leaves some. Up to :data:`MAX_TONES` tones are removed one after the
 other (harmonics of the mains are tones of their own). Measured on the
 held-out probe (mains pickup of period 6–40 points and 0.2–0.8 charge steps):
-peaks of 67–1135 on 27 of 48 maps, every one explained to ≥ 0.995; on 224
-maps without pickup (ordinary, row walk, telegraph) the highest off-grid
-peaks reached 96 and explained at most 0.98.
+off-grid peaks of 67–1135 on 27 of 48 maps, every one explained to ≥ 0.995
+(26 above the threshold, so removed); on 224 maps without pickup (ordinary,
+row walk, telegraph) the highest off-grid peaks reached 96 and explained at
+most 0.98.
 """
 
 from __future__ import annotations
