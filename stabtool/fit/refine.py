@@ -1303,19 +1303,6 @@ def refine_model(
 #: artefacts (w1 ≈ 1 px) 0.84 without, 0.72 with. The floor is kept; it blocked no ok verdict there
 #: (every map stopped by the clean-map rule has a sandwich error alone above 0.005/3).
 SYSTEMATIC_FLOOR = (0.0015, 0.0015, 0.003, 0.02, 0.003, 0.02)
-#: The floor of M12, M21 is a floor on the direction of the lines: an angle error ``ε`` of a line of
-#: slope ``−1/M12`` (dot1) or ``−M21`` (dot2) moves the element by ``(1 + M²) ε`` (``d(cot θ)/dθ``).
-#: The floor above was measured where ``M ≲ 0.5`` (a factor ≤ 1.25); a strongly cross-coupled dot
-#: with ``M12 = 1.57`` (held-out strongly coupled seed 38, an I/Q sensor over a drifting operating
-#: point, Fermi width 0.27 px) had a refined M12 off by −0.0051 at any noise level with a sandwich
-#: error of 0.0005, and with a linear read-out of the same device it was exact: a sensor-model bias
-#: in the line direction. With the factor its stated error is 0.0019 (2.7σ; 0.0013 and 3.9σ before),
-#: still below the clean-map limit 0.0025, so that map stays ok beyond the bound. Measured on the
-#: held-out probe (440 maps in sets of 24–64: ordinary 0–127, sensor coupling 0.1–3 0–127, row walk,
-#: strongly coupled, sensor comb, empty corner): ok verdicts 61 → 59, no map beyond the bounds that
-#: was not before. Scaling the floor down less for sharp lines (to half, not a tenth) made seed 38
-#: doubtful but cost 22 of those 61 ok verdicts, mostly through the relative errors of small
-#: off-diagonal Cdg, which showed no failure with the smaller floor.
 #: Largest normalised difference between the refined and the line-based value for adoption.
 MAX_DISAGREEMENT_SIGMA = 3.0
 #: Share of the refined − line-based difference of (M12, M21) added in quadrature to the stated
@@ -1346,6 +1333,23 @@ ADOPTION_DISAGREEMENT = (1.0, 0.0, 1.0, 0.0)
 
 def systematic_floor_m(m: np.ndarray, smear: float) -> np.ndarray:
     """Systematic floor of the refined ``(M12, M21)``: :data:`SYSTEMATIC_FLOOR` in the lines' direction.
+
+    An angle error ``ε`` of a line of slope ``−1/M12`` (dot1) or ``−M21``
+    (dot2) moves the element by ``(1 + M²) ε`` (``d(cot θ)/dθ``). The floor
+    was measured where ``M ≲ 0.5`` (a factor ≤ 1.25); a strongly
+    cross-coupled dot with ``M12 = 1.57`` (held-out strongly coupled seed 38,
+    an I/Q sensor over a drifting operating point, Fermi width 0.27 px) had a
+    refined M12 off by −0.0051 at any noise level with a sandwich error of
+    0.0005, and with a linear read-out of the same device it was exact: a
+    sensor-model bias in the line direction. With the factor its stated error
+    is 0.0019 (2.7σ; 0.0013 and 3.9σ before), still below the clean-map limit
+    0.0025, so that map stays ok beyond the bound. Measured on the held-out
+    probe (440 maps in sets of 24–64: ordinary 0–127, sensor coupling 0.1–3
+    0–127, row walk, strongly coupled, sensor comb, empty corner): ok verdicts
+    61 → 59, no map beyond the bounds that was not before. Scaling the floor
+    down less for sharp lines (to half, not a tenth) made seed 38 doubtful but
+    cost 22 of those 61 ok verdicts, mostly through the relative errors of
+    small off-diagonal Cdg, which showed no failure with the smaller floor.
 
     Parameters
     ----------
@@ -1479,8 +1483,7 @@ def adopt_refinement(fit: DiagramFit, ref: Refinement) -> Adoption:
     vec, cov = ref.vector()
     # the idealisation matters in proportion to the thermal smearing: full floor from a width of one pixel
     smear = float(np.clip(ref.params.get("width_px1", 1.0), 0.1, 1.0))
-    floor = smear * np.array(SYSTEMATIC_FLOOR) * np.array([1, 1, abs(vec[2]), abs(vec[3]), abs(vec[4]), abs(vec[5])])
-    floor[:2] = systematic_floor_m(vec[:2], smear)
+    floor = np.concatenate([systematic_floor_m(vec[:2], smear), smear * np.array(SYSTEMATIC_FLOOR[2:]) * np.abs(vec[2:6])])
     cov = cov + np.diag(floor**2)
     line_err = np.sqrt(np.clip(np.diag(fit.param_cov), 0, None))
     z = np.abs(vec - fit.params) / np.sqrt(np.diag(cov) + line_err**2)
