@@ -151,18 +151,21 @@ def align_alternate_rows(values: np.ndarray, shift_px: float) -> np.ndarray:
     """
     v = np.asarray(values, float)
     out = np.empty_like(v)
-    nx = v.shape[1]
-    x = np.arange(nx, dtype=float)
-    for k in range(v.shape[0]):
-        move = -0.5 * shift_px if k % 2 == 1 else 0.5 * shift_px
-        src = x - move  # the value now at x was at x − move
-        row = v[k]
-        i0 = np.floor(src).astype(int)
-        t = src - i0
-        inside = (i0 >= 0) & (i0 + 1 <= nx - 1)
-        i0c = np.clip(i0, 0, nx - 2)
-        val = (1 - t) * row[i0c] + t * row[i0c + 1]
-        exact = np.isclose(t, 0.0) & (i0 >= 0) & (i0 <= nx - 1)
-        val = np.where(exact, row[np.clip(i0, 0, nx - 1)], val)
-        out[k] = np.where(inside | exact, val, np.nan)
+    out[0::2] = _moved(v[0::2], 0.5 * shift_px)
+    out[1::2] = _moved(v[1::2], -0.5 * shift_px)
     return out
+
+
+def _moved(rows: np.ndarray, move: float) -> np.ndarray:
+    """``rows`` (k, nx) moved by ``move`` pixels along x: the value now at x was at x − move."""
+    nx = rows.shape[1]
+    src = np.arange(nx, dtype=float) - move
+    i0 = np.floor(src).astype(int)
+    t = src - i0
+    inside = (i0 >= 0) & (i0 + 1 <= nx - 1)
+    i0c = np.clip(i0, 0, nx - 2)
+    val = (1 - t) * rows[:, i0c] + t * rows[:, i0c + 1]
+    # a whole-pixel move takes the sample itself (also the last one, and beside a missing point)
+    exact = np.isclose(t, 0.0) & (i0 >= 0) & (i0 <= nx - 1)
+    val = np.where(exact, rows[:, np.clip(i0, 0, nx - 1)], val)
+    return np.where(inside | exact, val, np.nan)
