@@ -23,7 +23,8 @@ import xarray as xr
 from .errors import InputError, PartialSweepWarning
 from .units import to_volts
 
-__all__ = ["MapAxes", "make_map", "validate_map", "without_infinities", "map_axes", "x_gate", "y_gate"]
+__all__ = ["MapAxes", "make_map", "validate_map", "without_infinities", "infinities_as_missing", "map_axes",
+           "x_gate", "y_gate"]
 
 
 @dataclass(frozen=True)
@@ -158,17 +159,23 @@ def without_infinities(da: xr.DataArray, *, source: str | None = None) -> xr.Dat
     values = np.asarray(da.values)
     if not np.issubdtype(values.dtype, np.floating):
         return da
-    inf = np.isinf(values)
-    if not inf.any():
+    finite_or_nan = infinities_as_missing(values)
+    if finite_or_nan is values:
         return da
     src = source if source is not None else da.attrs.get("source")
     warnings.warn(
-        f"{src or 'map'}: {100 * inf.mean():.1f} % of the points are infinite (overflow or a failed read-out); "
-        "treated as missing",
+        f"{src or 'map'}: {100 * np.isinf(values).mean():.1f} % of the points are infinite (overflow or a failed "
+        "read-out); treated as missing",
         PartialSweepWarning,
         stacklevel=2,
     )
-    return da.copy(data=np.where(inf, np.nan, values))
+    return da.copy(data=finite_or_nan)
+
+
+def infinities_as_missing(values: np.ndarray) -> np.ndarray:
+    """``values`` (float) with ±inf made NaN; the array itself when it holds none (see :func:`without_infinities`)."""
+    inf = np.isinf(values)
+    return np.where(inf, np.nan, values) if inf.any() else values
 
 
 def validate_map(da: xr.DataArray, *, source: str | None = None) -> xr.DataArray:

@@ -8,6 +8,7 @@ import numpy as np
 import xarray as xr
 
 from ..errors import InputError
+from ..mapdata import infinities_as_missing
 from ..preprocess._checks import check_map
 from ..preprocess.background import _row_offsets_core
 from ..preprocess.noise import MAX_NOISE_SAMPLES, _noise_core
@@ -103,9 +104,7 @@ class LineDetector:
     def __call__(self, da: xr.DataArray) -> LineDetection:
         """Detect, sort and refine the transition lines of ``da``."""
         axes = check_map(da)
-        values = np.asarray(da.values, dtype=np.float64)
-        if np.isinf(values).any():  # an overflowed read-out is a missing point (mapdata.without_infinities)
-            values = np.where(np.isinf(values), np.nan, values)
+        values = infinities_as_missing(np.asarray(da.values, dtype=np.float64))  # (an overflowed read-out)
         return _detect_core(values, axes, self)
 
 
