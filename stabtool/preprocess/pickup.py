@@ -117,7 +117,7 @@ def find_pickup(values: np.ndarray, *, snake: bool = False) -> Pickup | None:
     y = np.where(ok, y - np.nanmean(y), 0.0)
     d = _time_differences(y, ok, nx)
     n_fft = next_fast_len(d.size, real=True)  # (zero padding: a prime length would be slow)
-    spec = np.abs(np.fft.rfft(d * np.hanning(d.size), n_fft))
+    spec = _spectrum(d, n_fft)
     freq = np.fft.rfftfreq(n_fft)
     bg = _running_level(spec, max(31, spec.size // 50))
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -141,8 +141,8 @@ def find_pickup(values: np.ndarray, *, snake: bool = False) -> Pickup | None:
     # a tone explains its peak: what the pure sinusoid leaves within ± 4 bins must be a trace
     # (the structure of the map concentrated off the row harmonics leaves 2–60 % there)
     rest = np.where(ok, y - tone.signal((ny, nx)).ravel(), 0.0)
-    after = _local_power(_time_differences(rest, ok, nx), k, n_fft)
-    if not after <= (1.0 - MIN_EXPLAINED) * _local_power(d, k, n_fft):
+    after = _local_power(_spectrum(_time_differences(rest, ok, nx), n_fft), k)
+    if not after <= (1.0 - MIN_EXPLAINED) * _local_power(spec, k):
         return None
     return tone
 
@@ -168,10 +168,14 @@ def _running_level(spec: np.ndarray, size: int) -> np.ndarray:
     return np.interp(np.arange(spec.size), centres, med)
 
 
-def _local_power(d: np.ndarray, k: int, n_fft: int, half: int = 4) -> float:
-    """Power of the Hann-windowed spectrum of ``d`` (``n_fft`` points) in the bins ``k ± half``."""
-    spec = np.abs(np.fft.rfft(d * np.hanning(d.size), n_fft)) ** 2
-    return float(spec[max(k - half, 0) : k + half + 1].sum())
+def _spectrum(d: np.ndarray, n_fft: int) -> np.ndarray:
+    """Amplitude spectrum of ``d`` through a Hann window, zero-padded to ``n_fft`` points."""
+    return np.abs(np.fft.rfft(d * np.hanning(d.size), n_fft))
+
+
+def _local_power(spec: np.ndarray, k: int, half: int = 4) -> float:
+    """Power of the amplitude spectrum ``spec`` in the bins ``k ± half``."""
+    return float((spec[max(k - half, 0) : k + half + 1] ** 2).sum())
 
 
 def remove_pickup(values: np.ndarray, *, max_tones: int = MAX_TONES,
