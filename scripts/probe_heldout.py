@@ -36,7 +36,8 @@ was not tuned on:
   offsets at random moments), ``hum`` (mains pickup: a sinusoid in
   measurement time, i.e. straight stripes across the map) and ``lag`` (a fast
   serpentine sweep read through a one-pole low-pass of 0.5–3 points: the lines
-  zig-zag from row to row).
+  zig-zag from row to row) and ``filter`` (the same low-pass on an ordinary sweep, every row in one
+  direction: the lines shift and broaden along x).
 
 Every map prints one line (errors against the truth, the verdict, the first
 warnings); the summary gives coverage (fraction reported ok), silent failures
@@ -71,7 +72,7 @@ import numpy as np
 SENSORS = ("lorentz", "gauss", "sech2", "rf")
 ALL_SENSORS = SENSORS + ("comb", "transport")
 NOISES = ("pink", "walk", "spikes", "drift")
-OPT_NOISES = ("telegraph", "hum", "lag")  # only when asked for by --noise (the default draws stay as they were)
+OPT_NOISES = ("telegraph", "hum", "lag", "filter")  # only when asked for by --noise (the default draws stay as they were)
 SNRS = (4.0, 8.0, 20.0, 60.0)
 
 # issue bounds of the fitter (same numbers as stabtool.bench.bounds.FITTER_BOUNDS)
@@ -244,6 +245,13 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
         flat = lfilter([1 - a], [1, -a], snake.ravel(), zi=[a * snake.flat[0]])[0]
         out = flat.reshape(ny, nx)
         out[1::2] = out[1::2, ::-1].copy()
+    if "filter" in extras:
+        # an ordinary (row-major, one-direction) sweep read through a one-pole low-pass of 0.5–3 points
+        # (a lock-in time constant): every line moves by about τ along x and its x-profile broadens
+        from scipy.signal import lfilter
+
+        a = math.exp(-1.0 / r.uniform(0.5, 3.0))
+        out = lfilter([1 - a], [1, -a], out, axis=1, zi=a * out[:, :1])[0]
     if "drift" in extras:
         t = (np.arange(ny * nx) / (ny * nx)).reshape(ny, nx)  # measurement time, row-major
         out = (out - np.median(out)) * (1 + r.uniform(-0.3, 0.3) * t + 0.1 * np.sin(2 * np.pi * r.uniform(0.5, 2) * t))

@@ -796,11 +796,17 @@ def _corrected_readout(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, floa
     measured (aligning rows first would shift it by a fraction of a sample on
     alternate rows), and that time runs along a serpentine when alternate rows
     are shifted, so the shift is measured first, the pickup removed in the
-    right time order, the shift measured again on the map without it, and the
-    rows aligned. See :mod:`stabtool.preprocess.serpentine` and
-    :mod:`stabtool.preprocess.pickup`. The lag returned is half the shift
-    (each direction's delay), 0 when none was found.
+    right time order. A one-pole low-pass along the rows (a read-out time
+    constant) is then measured from the noise and undone in each row's
+    measurement direction, which also removes the serpentine shift it caused;
+    the shift is measured again and what is left of it aligned. See
+    :mod:`stabtool.preprocess.serpentine`, :mod:`stabtool.preprocess.pickup`
+    and :mod:`stabtool.preprocess.lowpass`. The lag returned is the smear that
+    may remain along x: half the shift left (each direction's delay) or the
+    time constant's standard error, whichever is larger; 0 when neither was
+    found.
     """
+    from .preprocess.lowpass import row_low_pass, undo_row_low_pass
     from .preprocess.pickup import remove_pickup
     from .preprocess.serpentine import align_alternate_rows, alternate_row_shift
 
@@ -821,9 +827,23 @@ def _corrected_readout(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, floa
         how = "back and forth" if order else "one after another"
         q = q.with_warning(f"periodic pickup in measurement time removed (rows measured along {x_gate(da)} "
                            f"{how}): {what}", doubtful=False)
+    dx = abs(float(map_axes(da).dx))
+    lp = row_low_pass(values, serpentine=snake, odd_rows_forward=snake and shift.shift_px > 0)
+    residual_px = 0.0
+    if lp.significant:
+        found = True
+        values = undo_row_low_pass(values, lp)
+        residual_px = lp.tau_stderr_points
+        how = ("back and forth" if lp.serpentine else "from first to last column" if lp.forward
+               else "from last to first column")
+        q = q.with_warning(
+            f"read-out low-pass along {x_gate(da)} (rows measured {how}, judged from the {lp.direction_from}): "
+            f"one-pole time constant {lp.tau_points:.2f} ± {lp.tau_stderr_points:.2f} points "
+            f"(a = {lp.coefficient:.3f}, from the noise's correlation along the rows); undone before the analysis",
+            doubtful=False,
+        )
     if found and snake:
         shift = alternate_row_shift(values)
-    lag_V = 0.0
     if shift.significant:
         q = q.with_warning(
             f"alternate rows are shifted by {shift.shift_px:+.2f} ± {shift.stderr_px:.2f} px along {x_gate(da)} "
@@ -831,10 +851,10 @@ def _corrected_readout(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, floa
             doubtful=False,
         )
         values = align_alternate_rows(values, shift.shift_px)
-        lag_V = 0.5 * abs(shift.shift_px) * abs(float(map_axes(da).dx))
+        residual_px = max(residual_px, 0.5 * abs(shift.shift_px))
     if not found and not shift.significant:
         return da, 0.0, q
-    return da.copy(data=values), lag_V, q
+    return da.copy(data=values), residual_px * dx, q
 
 
 def _lag_broadened(ws: np.ndarray, fit: DiagramFit, lag_V: float, q: Quality) -> tuple[np.ndarray, Quality]:

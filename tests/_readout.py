@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 from scipy.signal import lfilter
 
-__all__ = ["serpentine_low_pass"]
+__all__ = ["row_low_pass_filtered", "serpentine_low_pass"]
 
 
 def serpentine_low_pass(values: np.ndarray, a: float) -> np.ndarray:
@@ -15,3 +15,12 @@ def serpentine_low_pass(values: np.ndarray, a: float) -> np.ndarray:
     flat = lfilter([1 - a], [1, -a], snake.ravel(), zi=[a * snake.flat[0]])[0].reshape(snake.shape)
     flat[1::2] = flat[1::2, ::-1].copy()
     return flat
+
+
+def row_low_pass_filtered(values: np.ndarray, a: float) -> np.ndarray:
+    """``values`` swept row by row towards increasing column index through ``y_n = (1 − a) x_n + a y_(n−1)``.
+
+    Each row starts from the filter's steady state at its first point.
+    """
+    v = np.asarray(values, float)
+    return lfilter([1 - a], [1, -a], v, axis=1, zi=a * v[:, :1])[0]

@@ -84,10 +84,11 @@ def test_one_pole_low_pass_on_a_serpentine_sweep_is_found_and_aligned():
 
 
 @pytest.mark.regression
-def test_analysis_aligns_a_serpentine_map_and_keeps_the_virtual_gates():
+def test_analysis_undoes_a_serpentine_low_pass_and_keeps_the_virtual_gates():
     # a generator map swept back and forth through a one-pole low-pass of 1.5 points: the analysis
-    # says so, aligns the rows, and the virtual gates stay within the clean-map bound 0.005 of the
-    # issue (measured 0.0007 on this seed; 0.0003 without the lag)
+    # measures the filter from the noise, undoes it in each row's direction (which removes the
+    # zig-zag), says so, and the virtual gates stay within the clean-map bound 0.005 of the issue
+    # (measured 0.0006 on this seed; 0.0007 with the rows only aligned, 0.0003 without the lag)
     import warnings
 
     from stabtool.analysis import Analyzer
@@ -99,16 +100,20 @@ def test_analysis_aligns_a_serpentine_map_and_keeps_the_virtual_gates():
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         j = Analyzer()(sm.data.copy(data=flat)).to_json()
-    assert any(w.startswith("alternate rows are shifted by -1.") for w in j["quality"]["warnings"])
+    note = [w for w in j["quality"]["warnings"] if w.startswith("read-out low-pass")]
+    assert note and "back and forth" in note[0]
+    tau = float(note[0].split("time constant ")[1].split(" ")[0])
+    assert abs(tau - 1.5) < 0.2
     m, mt = np.array(j["virtual_gate_matrix"]), np.array(sm.truth.to_json()["virtual_gate_matrix"])
     assert np.max(np.abs(m - mt)) <= 0.005
 
 
 @pytest.mark.regression
 def test_lag_smeared_lines_give_no_temperature_lever_arm():
-    # held-out probe map (serpentine sweep through a one-pole low-pass, seed 10): after the alignment
-    # the smear still broadens the dot1 lines to 9× their thermal width; the temperature gave
-    # α11 = 0.031 against a true 0.28 with a stated 8.5 %
+    # held-out probe map (serpentine sweep through a one-pole low-pass of 0.5–3 points, seed 10):
+    # with the rows only aligned, the smear broadened the dot1 lines to 9× their thermal width and
+    # the temperature gave α11 = 0.031 against a true 0.28 with a stated 8.5 %. With the low-pass
+    # undone the lines are resolution-limited (0.6 px FWHM, measured), as the truth's are: no lever arm.
     import warnings
 
     from _probe import make_map
@@ -120,4 +125,6 @@ def test_lag_smeared_lines_give_no_temperature_lever_arm():
         warnings.simplefilter("ignore")
         j = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data).to_json()
     assert j["lever_arm"] is None
-    assert any("read-out lag smears them" in w for w in j["quality"]["warnings"])
+    ws = j["quality"]["warnings"]
+    assert any(w.startswith("read-out low-pass") for w in ws)
+    assert any(w.startswith("dot1 lines are") and "resolution-limited" in w for w in ws)
