@@ -128,3 +128,20 @@ def test_lag_smeared_lines_give_no_temperature_lever_arm():
     ws = j["quality"]["warnings"]
     assert any(w.startswith("read-out low-pass") for w in ws)
     assert any(w.startswith("dot1 lines are") and "resolution-limited" in w for w in ws)
+
+
+def test_widths_smeared_by_the_remaining_lag_are_not_used():
+    # a smear of 0.5·10⁻⁴ V along x: across a dot1 line (cut along x) half of its 10⁻⁴ V width,
+    # beyond the 0.4 the rule allows; across a dot2 line of slope −0.5 (cut along y) a quarter
+    from types import SimpleNamespace
+
+    from stabtool.analysis import LAG_WIDTH_FRACTION, _lag_broadened
+    from stabtool.quality import Quality
+
+    assert 0.25 < LAG_WIDTH_FRACTION < 0.5
+    fit = SimpleNamespace(slopes={"dot1": -3.0, "dot2": -0.5})
+    ws, q = _lag_broadened(np.array([1e-4, 1e-4]), fit, 0.5e-4, Quality())
+    assert np.isnan(ws[0]) and ws[1] == 1e-4
+    assert any(w.startswith("dot1 lines: the read-out lag smears them by 0.50") for w in q.warnings)
+    same, q0 = _lag_broadened(np.array([1e-4, 1e-4]), fit, 0.0, Quality())
+    assert np.all(same == 1e-4) and not q0.warnings
