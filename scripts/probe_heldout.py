@@ -37,7 +37,9 @@ was not tuned on:
   measurement time, i.e. straight stripes across the map) and ``lag`` (a fast
   serpentine sweep read through a one-pole low-pass of 0.5–3 points: the lines
   zig-zag from row to row) and ``filter`` (the same low-pass on an ordinary sweep, every row in one
-  direction: the lines shift and broaden along x).
+  direction: the lines shift and broaden along x) and ``stripes`` (the mains pickup of ``hum`` with a
+  wait of 2–50 point times before each row, so that the tone's phase steps from row to row by an
+  arbitrary amount: straight stripes at any angle).
 
 Every map prints one line (errors against the truth, the verdict, the first
 warnings); the summary gives coverage (fraction reported ok), silent failures
@@ -72,7 +74,7 @@ import numpy as np
 SENSORS = ("lorentz", "gauss", "sech2", "rf")
 ALL_SENSORS = SENSORS + ("comb", "transport")
 NOISES = ("pink", "walk", "spikes", "drift")
-OPT_NOISES = ("telegraph", "hum", "lag", "filter")  # only when asked for by --noise (the default draws stay as they were)
+OPT_NOISES = ("telegraph", "hum", "lag", "filter", "stripes")  # only when asked for by --noise (the default draws stay as they were)
 SNRS = (4.0, 8.0, 20.0, 60.0)
 
 # issue bounds of the fitter (same numbers as stabtool.bench.bounds.FITTER_BOUNDS)
@@ -232,6 +234,12 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
         # mains pickup: a sinusoid in measurement time, period 6–40 points along the fast axis, amplitude
         # 0.2–0.8 step heights (straight stripes across the map)
         t = np.arange(ny * nx, dtype=float).reshape(ny, nx)
+        out = out + r.uniform(0.2, 0.8) * h * np.sin(2 * np.pi * t / r.uniform(6, 40) + r.uniform(0, 2 * np.pi))
+    if "stripes" in extras:
+        # mains pickup with a wait of 2–50 point times before each row (the gate's return): the tone runs
+        # on during the wait, so its phase steps by a fixed amount from row to row (stripes at any angle)
+        wait = r.uniform(2, 50)
+        t = np.arange(ny)[:, None] * (nx + wait) + np.arange(nx)[None, :]
         out = out + r.uniform(0.2, 0.8) * h * np.sin(2 * np.pi * t / r.uniform(6, 40) + r.uniform(0, 2 * np.pi))
     if "lag" in extras:
         # a fast serpentine sweep read through a low-pass (an RC filter or a lock-in time constant):

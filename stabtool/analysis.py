@@ -792,11 +792,14 @@ LAG_WIDTH_FRACTION = 0.4
 def _corrected_readout(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, float, Quality]:
     """The map without periodic pickup and with alternate rows aligned; the read-out lag (V along x, ≥ 0).
 
-    Order matters: the pickup is a tone in measurement time of the map as
-    measured (aligning rows first would shift it by a fraction of a sample on
-    alternate rows), and that time runs along a serpentine when alternate rows
-    are shifted, so the shift is measured first, the pickup removed in the
-    right time order. A one-pole low-pass along the rows (a read-out time
+    Order matters. On a map swept one way, periodic pickup is looked for first
+    as straight stripes (a plane wave, :mod:`stabtool.preprocess.stripes`: a
+    tone whose phase steps by a fixed amount from row to row, which includes a
+    tone continuous in row-major time), then as a tone in row-major time
+    (:mod:`stabtool.preprocess.pickup`). On a serpentine sweep the tone runs
+    along the serpentine: the row shift is measured first and the pickup
+    removed in that time order, before any alignment (aligning rows first
+    would shift the tone by a fraction of a sample on alternate rows). A one-pole low-pass along the rows (a read-out time
     constant) is then measured from the noise and undone in each row's
     measurement direction, which also removes the serpentine shift it caused;
     the shift is measured again and what is left of it aligned. See
@@ -809,11 +812,24 @@ def _corrected_readout(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, floa
     from .preprocess.lowpass import row_low_pass, undo_row_low_pass
     from .preprocess.pickup import remove_pickup
     from .preprocess.serpentine import align_alternate_rows, alternate_row_shift
+    from .preprocess.stripes import remove_stripes
 
     raw = np.asarray(da.values, float)
     shift = alternate_row_shift(raw)
     snake = shift.significant
     values, found = raw, False
+    if not snake:
+        # a tone whose phase steps by a fixed amount from row to row (a wait before each row, or none):
+        # straight stripes at any angle, one plane wave of the map
+        values, waves = remove_stripes(values)
+        if waves:
+            found = True
+            spread = float(np.nanpercentile(values, 95) - np.nanpercentile(values, 5))
+            what = ", ".join(f"period {w.period_points:.2f} points along {x_gate(da)}, phase step "
+                             f"{360 * (w.fy % 1):.0f}° per row, amplitude {w.amplitude:.3g} "
+                             f"({100 * w.amplitude / spread:.0f} % of the map's 5–95 % range)" for w in waves)
+            q = q.with_warning(f"periodic pickup removed (straight stripes across the map: a tone whose phase "
+                               f"steps from row to row): {what}", doubtful=False)
     # a serpentine sweep's time runs back and forth; a row-major tone is still looked for after it
     # (rows shifted by another cause, or a sweep that returns without measuring)
     for order in ((True, False) if snake else (False,)):
