@@ -161,15 +161,35 @@ def _row_differences(v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _fit(d: np.ndarray, ok: np.ndarray, fx: float, fy: float) -> tuple[float, float]:
-    """Least-squares ``(a, b)`` of ``a sin + b cos`` of the plane wave (fx, fy), fitted to its x-differences ``d``."""
+    """Least-squares ``(a, b)`` of ``a sin + b cos`` of the plane wave (fx, fy), fitted to its x-differences ``d``.
+
+    The wave separates, ``sin(α_j + β_i) = sin α_j cos β_i + cos α_j sin β_i``, so on rows without
+    missing points every sum is a product of a row vector, the map and a column vector (no
+    trigonometry over the map); rows with some points missing take the sums point by point.
+    """
     ny, nd = d.shape
-    i = np.arange(ny, dtype=float)[:, None]
-    j = np.arange(nd + 1, dtype=float)[None, :]
-    phase = 2 * np.pi * (fx * j + fy * i)
-    s, c = np.diff(np.sin(phase), axis=1), np.diff(np.cos(phase), axis=1)
-    s, c = np.where(ok, s, 0.0), np.where(ok, c, 0.0)
-    m = np.array([[np.vdot(s, s), np.vdot(s, c)], [np.vdot(s, c), np.vdot(c, c)]])
-    rhs = np.array([np.vdot(s, d), np.vdot(c, d)])
+    alpha = 2 * np.pi * fx * np.arange(nd + 1, dtype=float)
+    beta = 2 * np.pi * fy * np.arange(ny, dtype=float)
+    ds, dc = np.diff(np.sin(alpha)), np.diff(np.cos(alpha))  # the wave's x-differences: ds cos β + dc sin β
+    cb, sb = np.cos(beta), np.sin(beta)
+    full = ok.all(axis=1)
+    m = np.zeros((2, 2))
+    rhs = np.zeros(2)
+    if full.any():
+        c, sn, dd = cb[full], sb[full], d[full]
+        dds, ddc = dd @ ds, dd @ dc
+        rhs += [c @ dds + sn @ ddc, c @ ddc - sn @ dds]
+        sss, scc, ssc = ds @ ds, dc @ dc, ds @ dc
+        c2, s2, cs = c @ c, sn @ sn, c @ sn
+        m += [[sss * c2 + 2 * ssc * cs + scc * s2, ssc * (c2 - s2) + (scc - sss) * cs],
+              [ssc * (c2 - s2) + (scc - sss) * cs, scc * c2 - 2 * ssc * cs + sss * s2]]
+    part = ~full & ok.any(axis=1)
+    if part.any():
+        c, sn, mask, dd = cb[part, None], sb[part, None], ok[part], d[part]
+        bs = np.where(mask, ds * c + dc * sn, 0.0)
+        bc = np.where(mask, dc * c - ds * sn, 0.0)
+        rhs += [np.vdot(bs, dd), np.vdot(bc, dd)]
+        m += [[np.vdot(bs, bs), np.vdot(bs, bc)], [np.vdot(bs, bc), np.vdot(bc, bc)]]
     try:
         a, b = np.linalg.solve(m, rhs)
     except np.linalg.LinAlgError:
