@@ -39,7 +39,8 @@ was not tuned on:
   zig-zag from row to row) and ``filter`` (the same low-pass on an ordinary sweep, every row in one
   direction: the lines shift and broaden along x) and ``stripes`` (the mains pickup of ``hum`` with a
   wait of 2–50 point times before each row, so that the tone's phase steps from row to row by an
-  arbitrary amount: straight stripes at any angle).
+  arbitrary amount: straight stripes at any angle) and ``rowhum`` (the same tone on rows started at
+  random moments: its phase is random from row to row).
 
 Every map prints one line (errors against the truth, the verdict, the first
 warnings); the summary gives coverage (fraction reported ok), silent failures
@@ -74,7 +75,7 @@ import numpy as np
 SENSORS = ("lorentz", "gauss", "sech2", "rf")
 ALL_SENSORS = SENSORS + ("comb", "transport")
 NOISES = ("pink", "walk", "spikes", "drift")
-OPT_NOISES = ("telegraph", "hum", "lag", "filter", "stripes")  # only when asked for by --noise (the default draws stay as they were)
+OPT_NOISES = ("telegraph", "hum", "lag", "filter", "stripes", "rowhum")  # only when asked for by --noise (the default draws stay as they were)
 SNRS = (4.0, 8.0, 20.0, 60.0)
 
 # issue bounds of the fitter (same numbers as stabtool.bench.bounds.FITTER_BOUNDS)
@@ -241,6 +242,12 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
         wait = r.uniform(2, 50)
         t = np.arange(ny)[:, None] * (nx + wait) + np.arange(nx)[None, :]
         out = out + r.uniform(0.2, 0.8) * h * np.sin(2 * np.pi * t / r.uniform(6, 40) + r.uniform(0, 2 * np.pi))
+    if "rowhum" in extras:
+        # mains pickup on rows started at random moments (software-timed rows): the tone's phase is
+        # random from one row to the next
+        phase = r.uniform(0, 2 * np.pi, (ny, 1))
+        t = np.arange(nx)[None, :]
+        out = out + r.uniform(0.2, 0.8) * h * np.sin(2 * np.pi * t / r.uniform(6, 40) + phase)
     if "lag" in extras:
         # a fast serpentine sweep read through a low-pass (an RC filter or a lock-in time constant):
         # rows alternate direction and the one-pole filter of τ = 0.5–3 points lags each row along its

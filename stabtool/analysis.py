@@ -796,7 +796,9 @@ def _corrected_readout(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, floa
     as straight stripes (a plane wave, :mod:`stabtool.preprocess.stripes`: a
     tone whose phase steps by a fixed amount from row to row, which includes a
     tone continuous in row-major time), then as a tone in row-major time
-    (:mod:`stabtool.preprocess.pickup`). On a serpentine sweep the tone runs
+    (:mod:`stabtool.preprocess.pickup`), then (on any map) as a tone whose
+    phase is random from row to row (:mod:`stabtool.preprocess.row_tone`).
+    On a serpentine sweep the tone runs
     along the serpentine: the row shift is measured first and the pickup
     removed in that time order, before any alignment (aligning rows first
     would shift the tone by a fraction of a sample on alternate rows). A one-pole low-pass along the rows (a read-out time
@@ -811,6 +813,7 @@ def _corrected_readout(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, floa
     """
     from .preprocess.lowpass import row_low_pass, undo_row_low_pass
     from .preprocess.pickup import remove_pickup
+    from .preprocess.row_tone import remove_row_tones
     from .preprocess.serpentine import align_alternate_rows, alternate_row_shift
     from .preprocess.stripes import remove_stripes
 
@@ -843,6 +846,15 @@ def _corrected_readout(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, floa
         how = "back and forth" if order else "one after another"
         q = q.with_warning(f"periodic pickup in measurement time removed (rows measured along {x_gate(da)} "
                            f"{how}): {what}", doubtful=False)
+    # a tone whose phase is random from row to row (rows started at moments of their own)
+    values, row_tones = remove_row_tones(values)
+    if row_tones:
+        found = True
+        spread = float(np.nanpercentile(values, 95) - np.nanpercentile(values, 5))
+        what = ", ".join(f"period {t.period_points:.2f} points along {x_gate(da)}, rms amplitude {t.amplitude:.3g} "
+                         f"({100 * t.amplitude / spread:.0f} % of the map's 5–95 % range)" for t in row_tones)
+        q = q.with_warning(f"periodic pickup removed row by row (a tone whose phase is random from row to row): "
+                           f"{what}", doubtful=False)
     dx = abs(float(map_axes(da).dx))
     lp = row_low_pass(values, serpentine=snake, odd_rows_forward=snake and shift.shift_px > 0)
     residual_px = 0.0
