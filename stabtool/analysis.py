@@ -789,6 +789,12 @@ def _scale(
 LAG_WIDTH_FRACTION = 0.4
 
 
+def _range_share(values: np.ndarray, amplitude: float) -> str:
+    """``amplitude`` as a share of the map's 5–95 % range, for the notes on removed pickup."""
+    spread = float(np.nanpercentile(values, 95) - np.nanpercentile(values, 5))
+    return f"{100 * amplitude / spread:.0f} % of the map's 5–95 % range"
+
+
 def _corrected_readout(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, float, Quality]:
     """The map without periodic pickup and with alternate rows aligned; the read-out lag (V along x, ≥ 0).
 
@@ -827,10 +833,9 @@ def _corrected_readout(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, floa
         values, waves = remove_stripes(values)
         if waves:
             found = True
-            spread = float(np.nanpercentile(values, 95) - np.nanpercentile(values, 5))
             what = ", ".join(f"period {w.period_points:.2f} points along {x_gate(da)}, phase step "
                              f"{360 * (w.fy % 1):.0f}° per row, amplitude {w.amplitude:.3g} "
-                             f"({100 * w.amplitude / spread:.0f} % of the map's 5–95 % range)" for w in waves)
+                             f"({_range_share(values, w.amplitude)})" for w in waves)
             q = q.with_warning(f"periodic pickup removed (straight stripes across the map: a tone whose phase "
                                f"steps from row to row): {what}", doubtful=False)
     # a serpentine sweep's time runs back and forth; a row-major tone is still looked for after it
@@ -840,9 +845,8 @@ def _corrected_readout(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, floa
         if not tones:
             continue
         found = True
-        spread = float(np.nanpercentile(values, 95) - np.nanpercentile(values, 5))
         what = ", ".join(f"period {p.period_points:.2f} points, amplitude {p.amplitude:.3g} "
-                         f"({100 * p.amplitude / spread:.0f} % of the map's 5–95 % range)" for p in tones)
+                         f"({_range_share(values, p.amplitude)})" for p in tones)
         how = "back and forth" if order else "one after another"
         q = q.with_warning(f"periodic pickup in measurement time removed (rows measured along {x_gate(da)} "
                            f"{how}): {what}", doubtful=False)
@@ -850,9 +854,8 @@ def _corrected_readout(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, floa
     values, row_tones = remove_row_tones(values)
     if row_tones:
         found = True
-        spread = float(np.nanpercentile(values, 95) - np.nanpercentile(values, 5))
         what = ", ".join(f"period {t.period_points:.2f} points along {x_gate(da)}, rms amplitude {t.amplitude:.3g} "
-                         f"({100 * t.amplitude / spread:.0f} % of the map's 5–95 % range)" for t in row_tones)
+                         f"({_range_share(values, t.amplitude)})" for t in row_tones)
         q = q.with_warning(f"periodic pickup removed row by row (a tone whose phase is random from row to row): "
                            f"{what}", doubtful=False)
     dx = abs(float(map_axes(da).dx))

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 from scipy.signal import lfilter
 
-__all__ = ["row_low_pass_filtered", "serpentine_low_pass"]
+__all__ = ["charge_step", "row_low_pass_filtered", "serpentine_low_pass"]
 
 
 def serpentine_low_pass(values: np.ndarray, a: float) -> np.ndarray:
@@ -24,3 +24,9 @@ def row_low_pass_filtered(values: np.ndarray, a: float) -> np.ndarray:
     """
     v = np.asarray(values, float)
     return lfilter([1 - a], [1, -a], v, axis=1, zi=a * v[:, :1])[0]
+
+
+def charge_step(values: np.ndarray) -> float:
+    """Typical charge step of a map: the median of the largest 1 % of |Δx| (the lines' steps)."""
+    d = np.abs(np.diff(np.asarray(values, float), axis=1)).ravel()
+    return float(np.median(np.sort(d)[-max(1, d.size // 100):]))

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from _readout import serpentine_low_pass
+from _readout import charge_step, serpentine_low_pass
 
 from stabtool.preprocess.pickup import find_pickup, remove_pickup
 from stabtool.simulate import quick_double_dot
@@ -19,16 +19,10 @@ def _map(seed=3, snr=30.0, preset="gaas-double", shape=(120, 150)):
     return np.asarray(quick_double_dot(preset, shape=shape, snr=snr, rng=seed).data.values, float)
 
 
-def _step(v):
-    """Typical charge step: the median of the largest 1 % of |Δx| (the lines' steps)."""
-    d = np.abs(np.diff(v, axis=1)).ravel()
-    return float(np.median(np.sort(d)[-max(1, d.size // 100):]))
-
-
 @pytest.mark.parametrize("period,rel_amp,phase", [(9.7, 0.5, 0.3), (23.7, 0.3, 2.0), (6.4, 0.8, -1.0)])
 def test_a_tone_in_measurement_time_is_recovered(period, rel_amp, phase):
     v = _map()
-    amp = rel_amp * _step(v)
+    amp = rel_amp * charge_step(v)
     t = np.arange(v.size, dtype=float).reshape(v.shape)
     hum = amp * np.sin(2 * np.pi * t / period + phase)
     p = find_pickup(v + hum)
@@ -53,7 +47,7 @@ def test_maps_without_pickup_are_left_alone(seed, snr, preset):
 
 def test_two_tones_are_both_removed():
     v = _map(7)
-    a = _step(v)
+    a = charge_step(v)
     t = np.arange(v.size, dtype=float).reshape(v.shape)
     hum = 0.6 * a * np.sin(2 * np.pi * t / 11.1) + 0.3 * a * np.sin(2 * np.pi * t / 5.3 + 1.0)
     cleaned, tones = remove_pickup(v + hum)
@@ -67,13 +61,13 @@ def test_a_tone_repeating_with_the_rows_is_left_alone():
     v = _map()
     t = np.arange(v.size, dtype=float).reshape(v.shape)
     assert v.shape[1] / 9.3 % 1 == pytest.approx(0.129, abs=1e-3)
-    assert find_pickup(v + 0.5 * _step(v) * np.sin(2 * np.pi * t / 9.3)) is None
+    assert find_pickup(v + 0.5 * charge_step(v) * np.sin(2 * np.pi * t / 9.3)) is None
 
 
 def test_a_tone_of_a_serpentine_sweep_is_found_in_its_time_order():
     # rows swept back and forth: the tone runs along the serpentine (odd rows from high to low x)
     v = _map()
-    amp = 0.5 * _step(v)
+    amp = 0.5 * charge_step(v)
     t = np.arange(v.size, dtype=float).reshape(v.shape)
     t[1::2] = t[1::2, ::-1]
     hum = amp * np.sin(2 * np.pi * t / 12.3 + 0.7)
@@ -91,7 +85,7 @@ def test_analysis_of_a_map_with_hum_removes_it_and_keeps_the_virtual_gates():
     sm = quick_double_dot("si-sige-double", shape=(140, 140), snr=30.0, rng=1)
     v = np.asarray(sm.data.values, float)
     t = np.arange(v.size, dtype=float).reshape(v.shape)
-    hum = 0.6 * _step(v) * np.sin(2 * np.pi * t / 13.7 + 0.4)
+    hum = 0.6 * charge_step(v) * np.sin(2 * np.pi * t / 13.7 + 0.4)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         j = Analyzer()(sm.data.copy(data=v + hum)).to_json()
@@ -115,7 +109,7 @@ def test_hum_on_a_serpentine_sweep_read_with_a_lag():
     v = np.asarray(sm.data.values, float)
     t = np.arange(v.size, dtype=float).reshape(v.shape)
     t[1::2] = t[1::2, ::-1]
-    v = v + 0.6 * _step(v) * np.sin(2 * np.pi * t / 13.7 + 0.4)
+    v = v + 0.6 * charge_step(v) * np.sin(2 * np.pi * t / 13.7 + 0.4)
     a = np.exp(-1 / 1.5)
     flat = serpentine_low_pass(v, a)
     with warnings.catch_warnings():

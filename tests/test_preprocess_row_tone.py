@@ -12,6 +12,7 @@ import warnings
 
 import numpy as np
 import pytest
+from _readout import charge_step
 
 from stabtool.preprocess.row_tone import find_row_tone, remove_row_tones
 from stabtool.simulate import quick_double_dot
@@ -19,12 +20,6 @@ from stabtool.simulate import quick_double_dot
 
 def _map(seed=3, snr=30.0, preset="gaas-double", shape=(150, 180)):
     return np.asarray(quick_double_dot(preset, shape=shape, snr=snr, rng=seed).data.values, float)
-
-
-def _step(v):
-    """Typical charge step: the median of the largest 1 % of |Δx| (the lines' steps)."""
-    d = np.abs(np.diff(v, axis=1)).ravel()
-    return float(np.median(np.sort(d)[-max(1, d.size // 100):]))
 
 
 def _row_hum(shape, period, amp, seed=0):
@@ -35,7 +30,7 @@ def _row_hum(shape, period, amp, seed=0):
 @pytest.mark.parametrize("period,rel_amp", [(7.3, 0.5), (17.9, 0.3), (33.1, 0.6)])
 def test_a_tone_with_random_row_phases_is_recovered(period, rel_amp):
     v = _map()
-    amp = rel_amp * _step(v)
+    amp = rel_amp * charge_step(v)
     hum = _row_hum(v.shape, period, amp)
     t = find_row_tone(v + hum)
     assert t is not None
@@ -59,7 +54,7 @@ def test_a_plane_wave_is_left_to_the_stripes_search():
     # phase stepping by a fixed amount from row to row: coherent, not this model's
     v = _map(seed=4)
     i, j = np.mgrid[0 : v.shape[0], 0 : v.shape[1]]
-    assert find_row_tone(v + 0.5 * _step(v) * np.sin(2 * np.pi * (j / 11.3 + 0.37 * i))) is None
+    assert find_row_tone(v + 0.5 * charge_step(v) * np.sin(2 * np.pi * (j / 11.3 + 0.37 * i))) is None
 
 
 @pytest.mark.regression

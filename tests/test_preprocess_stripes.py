@@ -12,6 +12,7 @@ import warnings
 
 import numpy as np
 import pytest
+from _readout import charge_step
 
 from stabtool.preprocess.stripes import find_stripes, remove_stripes
 from stabtool.simulate import quick_double_dot
@@ -19,12 +20,6 @@ from stabtool.simulate import quick_double_dot
 
 def _map(seed=3, snr=30.0, preset="gaas-double", shape=(130, 170)):
     return np.asarray(quick_double_dot(preset, shape=shape, snr=snr, rng=seed).data.values, float)
-
-
-def _step(v):
-    """Typical charge step: the median of the largest 1 % of |Δx| (the lines' steps)."""
-    d = np.abs(np.diff(v, axis=1)).ravel()
-    return float(np.median(np.sort(d)[-max(1, d.size // 100):]))
 
 
 def _wave(shape, period, phase_step_turns, amp, phase=0.7):
@@ -36,7 +31,7 @@ def _wave(shape, period, phase_step_turns, amp, phase=0.7):
 @pytest.mark.parametrize("period,step_turns,rel_amp", [(9.7, 0.37, 0.5), (23.7, 0.81, 0.3), (6.4, 0.12, 0.8)])
 def test_stripes_at_any_angle_are_recovered(period, step_turns, rel_amp):
     v = _map()
-    amp = rel_amp * _step(v)
+    amp = rel_amp * charge_step(v)
     hum = _wave(v.shape, period, step_turns, amp)
     w = find_stripes(v + hum)
     assert w is not None
@@ -55,7 +50,7 @@ def test_a_tone_continuous_in_row_major_time_is_a_plane_wave():
     v = _map(seed=5)
     period = 13.3
     t = np.arange(v.size, dtype=float).reshape(v.shape)
-    w = find_stripes(v + 0.4 * _step(v) * np.sin(2 * np.pi * t / period))
+    w = find_stripes(v + 0.4 * charge_step(v) * np.sin(2 * np.pi * t / period))
     assert w is not None
     assert w.period_points == pytest.approx(period, rel=2e-3)
     assert (w.fy - v.shape[1] / period + 0.5) % 1 - 0.5 == pytest.approx(0.0, abs=2e-3)
@@ -74,7 +69,7 @@ def test_telegraph_switching_is_not_stripes():
     rng = np.random.default_rng(4)
     v = _map(seed=6)
     state = (np.cumsum(rng.random(v.size) < 1 / 400) % 2).reshape(v.shape)
-    assert find_stripes(v + 0.7 * _step(v) * state) is None
+    assert find_stripes(v + 0.7 * charge_step(v) * state) is None
 
 
 @pytest.mark.regression
