@@ -817,7 +817,7 @@ def _corrected_readout(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, floa
     time constant's standard error, whichever is larger; 0 when neither was
     found.
     """
-    from .preprocess.lowpass import row_low_pass, undo_row_low_pass
+    from .preprocess.lowpass import agrees_with_shift, row_low_pass, undo_row_low_pass
     from .preprocess.pickup import remove_pickup
     from .preprocess.row_tone import remove_row_tones
     from .preprocess.serpentine import align_alternate_rows, alternate_row_shift
@@ -860,10 +860,23 @@ def _corrected_readout(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, floa
                            f"{what}", doubtful=False)
     dx = abs(float(map_axes(da).dx))
     lp = row_low_pass(values, serpentine=snake, odd_rows_forward=snake and shift.shift_px > 0)
+    # on a serpentine the rows' shift must be the filter's (else the coefficient is not trusted)
+    use_lp = lp.significant and (not snake or agrees_with_shift(lp, shift.shift_px))
     residual_px = 0.0
-    if lp.significant:
+    undone = undo_row_low_pass(values, lp) if use_lp else values
+    if use_lp and not lp.serpentine:
+        apart = alternate_row_shift(undone)
+        if apart.significant:
+            # undoing one direction on every row set alternate rows apart: the sweep ran back and forth
+            # (its zig-zag hidden by other noise before); the rows set apart ran the other way, and
+            # by about twice the filter's delay
+            lp = row_low_pass(values, serpentine=True, odd_rows_forward=apart.shift_px > 0)
+            use_lp = lp.significant and agrees_with_shift(lp, 0.5 * apart.shift_px)
+            undone = undo_row_low_pass(values, lp) if use_lp else values
+            snake = True
+    if use_lp:
         found = True
-        values = undo_row_low_pass(values, lp)
+        values = undone
         residual_px = lp.tau_stderr_points
         how = ("back and forth" if lp.serpentine else "from first to last column" if lp.forward
                else "from last to first column")

@@ -87,6 +87,32 @@ def test_generator_maps_without_a_filter_are_left_alone():
         assert not r.significant, (preset, r)
 
 
+def test_a_serpentine_shift_agrees_only_with_its_own_filter():
+    # rows swept both ways through a = e^(−1/1.5) sit apart by one to two mean delays a/(1 − a)
+    # (tests/test_preprocess_serpentine.py); a coefficient of 0.94 (a 16-point delay) read from
+    # noise that other artefacts correlate does not explain a 1.5-point zig-zag
+    from stabtool.preprocess.lowpass import agrees_with_shift
+    from stabtool.preprocess.serpentine import alternate_row_shift
+
+    v = np.asarray(quick_double_dot("si-sige-double", shape=(140, 140), snr=30.0, rng=1).data.values, float)
+    a = math.exp(-1 / 1.5)
+    flat = serpentine_low_pass(v, a)
+    shift = alternate_row_shift(flat).shift_px
+    r = row_low_pass(flat, serpentine=True, odd_rows_forward=shift > 0)
+    assert r.significant and agrees_with_shift(r, shift)
+    common = {"stderr": 0.01, "lag1": 0.94, "lag2": 0.94, "across": 0.0}
+    assert not agrees_with_shift(RowLowPass(0.94, **common), shift)
+
+
+@pytest.mark.regression
+@pytest.mark.parametrize("preset,electrons", [("linear-array-4", 14.0), ("linear-array-8", 10.0)])
+def test_dense_broad_lines_are_not_a_low_pass(preset, electrons):
+    # at 0.4 K the lines of an array cover most of the map: their tails correlated the unmasked
+    # differences along x (a₁ ≈ 0.2–0.35, a₂ ≈ 0.04–0.17) until maps more than half masked were left alone
+    sm = quick_double_dot(preset, shape=(160, 200), snr=60.0, temperature_K=0.4, electrons=electrons, rng=1)
+    assert not row_low_pass(np.asarray(sm.data.values, float)).significant
+
+
 @pytest.mark.regression
 def test_analysis_undoes_the_low_pass_and_the_lever_arms_come_back():
     # gaas-double at 0.35 K, 200², SNR 20: lines ~5 px wide. Through a one-pole low-pass of

@@ -38,18 +38,19 @@ through the filter to white, at its original level.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from scipy import ndimage as ndi
 
-__all__ = ["MIN_COEFFICIENT", "RowLowPass", "row_low_pass", "undo_row_low_pass"]
+__all__ = ["MIN_COEFFICIENT", "RowLowPass", "agrees_with_shift", "row_low_pass", "undo_row_low_pass"]
 
 #: Smallest filter coefficient ``a`` that is undone (τ ≈ 0.6 points: below it the
 #: estimate's own bias, up to ~0.1 on high-SNR maps, is comparable with ``a``).
 MIN_COEFFICIENT = 0.2
-#: The lag-2 estimate must agree with the lag-1 estimate to this (plus 3 standard errors).
-SHAPE_TOLERANCE = 0.15
+#: The lag-2 estimate must agree with the lag-1 estimate to this plus 3 of its own standard errors
+#: (dense, broad lines of a 4-dot array at 0.4 K gave a₁ ≈ 0.2–0.35 with a₂ 0.04–0.17: not a filter).
+SHAPE_TOLERANCE = 0.05
 #: Largest coefficient undone (τ ≈ 20 points: beyond it the filter is an averaging over the row).
 MAX_COEFFICIENT = 0.95
 #: Mask of the lines: local mean of |f| (5×5) above this many robust σ of f, or |f| above 4 σ.
@@ -60,6 +61,10 @@ REFERENCE_ON_NOISE = 0.04
 MIN_ASYMMETRY = 0.02
 #: Fewest pairs of unmasked values along x for an estimate.
 MIN_PAIRS = 2000
+#: Largest fraction of the mixed differences masked as lines: beyond it the lines cover the map and
+#: their tails, not the noise, set the correlations (dense broad lines of a 4-dot array at 0.4 K:
+#: 57–76 % masked, a₁ ≈ 0.3 without a filter; filtered probe maps: at most 43 %).
+MAX_MASKED = 0.5
 #: Largest window (points per side, at the map's centre) the estimate reads.
 MAX_WINDOW = 384
 
@@ -78,6 +83,8 @@ class RowLowPass:
         across-row correction, in quadrature.
     lag1, lag2, across : float
         The raw estimates ``a₁``, ``a₂`` and the across-row reading.
+    lag2_stderr : float
+        Statistical error of ``a₂`` (``σ(ρ₂)/|ρ₁|``).
     forward : bool
         Rows (the even ones on a serpentine sweep) measured towards increasing column index.
     serpentine : bool
@@ -93,6 +100,7 @@ class RowLowPass:
     lag1: float
     lag2: float
     across: float
+    lag2_stderr: float = float("nan")
     forward: bool = True
     serpentine: bool = False
     asymmetry: float = float("nan")
@@ -117,7 +125,7 @@ class RowLowPass:
         if not (np.isfinite(a) and np.isfinite(e)):
             return False
         return bool(MIN_COEFFICIENT <= a <= MAX_COEFFICIENT and a >= 3 * e
-                    and abs(self.lag2 - self.lag1) <= SHAPE_TOLERANCE + 3 * e)
+                    and abs(self.lag2 - self.lag1) <= SHAPE_TOLERANCE + 3 * self.lag2_stderr)
 
 
 def row_low_pass(values: np.ndarray, *, serpentine: bool = False, odd_rows_forward: bool = False) -> RowLowPass:
@@ -148,25 +156,42 @@ def row_low_pass(values: np.ndarray, *, serpentine: bool = False, odd_rows_forwa
     bad = _line_mask(f)
     (r1, r2), n_pairs = _lag_correlations(f, bad, (1, 2))
     (q,), _ = _lag_correlations(f.T, bad.T, (step,))
-    if n_pairs < MIN_PAIRS or not (np.isfinite(r1) and np.isfinite(q)) or r1 >= 0:
+    if n_pairs < MIN_PAIRS or bad.mean() > MAX_MASKED or not (np.isfinite(r1) and np.isfinite(q)) or r1 >= 0:
         return nan
     lag1, lag2 = 1 + 2 * r1, r2 / r1
     across = 1 + 2 * q  # (lag `step` across rows: f's rows share one row of the map there)
     excess = max(across - REFERENCE_ON_NOISE, 0.0)
     a = lag1 - excess
     # f's values along x are themselves pairwise differences: about 1.5× the independent-sample error
-    stat = 2 * 1.5 / np.sqrt(n_pairs)
-    err = float(np.hypot(stat, excess))
+    se_rho = 1.5 / np.sqrt(n_pairs)
+    err = float(np.hypot(2 * se_rho, excess))
+    found = RowLowPass(float(a), err, float(lag1), float(lag2), float(across), lag2_stderr=float(se_rho / abs(r1)))
     if serpentine:
-        return RowLowPass(float(a), err, float(lag1), float(lag2), float(across), forward=not odd_rows_forward,
-                          serpentine=True, direction_from="serpentine shift")
-    found = RowLowPass(float(a), err, float(lag1), float(lag2), float(across))
+        return replace(found, forward=not odd_rows_forward, serpentine=True, direction_from="serpentine shift")
     if not found.significant:
         return found
     t = tail_asymmetry(v)
     clear = bool(np.isfinite(t) and abs(t) >= MIN_ASYMMETRY)
-    return RowLowPass(float(a), err, float(lag1), float(lag2), float(across), forward=not (clear and t < 0),
-                      asymmetry=t, direction_from="line tails" if clear else "stored order")
+    return replace(found, forward=not (clear and t < 0), asymmetry=t,
+                   direction_from="line tails" if clear else "stored order")
+
+
+def agrees_with_shift(lp: RowLowPass, shift_px: float) -> bool:
+    """Whether a serpentine's alternate-row shift is what the filter ``lp`` makes of it.
+
+    A one-pole filter delays a step by ``a/(1 − a)`` points on average (the
+    mean of its geometric impulse response) and by less at its steepest
+    point; rows swept both ways then sit apart by between one and two such
+    delays (measured on generator maps, ``tests/test_preprocess_serpentine.py``).
+    Accepted: ``|shift|`` within [0.8, 2.5] mean delays. A coefficient read
+    from noise that other artefacts correlate (a switching sensor, a residual
+    tone) comes out too large and fails it.
+    """
+    a = lp.coefficient
+    if not (np.isfinite(a) and 0 < a < 1 and np.isfinite(shift_px)):
+        return False
+    delay = a / (1 - a)
+    return bool(0.8 * delay <= abs(shift_px) <= 2.5 * delay)
 
 
 def tail_asymmetry(values: np.ndarray) -> float:
