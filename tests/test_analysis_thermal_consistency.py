@@ -55,3 +55,18 @@ def test_held_out_map_with_non_thermal_dot2_lines_reports_no_temperature_lever_a
         j = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data).to_json()
     assert j["lever_arm"] is None
     assert any("dot2 lines are broader than thermal" in w for w in j["quality"]["warnings"])
+
+
+def test_without_the_diagrams_ratio_a_generous_lever_arm_prior_still_bounds_the_width():
+    # mutual shifts unresolved (no α11/α22 from the diagram): the lever arms are taken to lie within
+    # LEVER_ARM_RATIO_PRIOR (10×) of each other (common practice, no source)
+    from stabtool.analysis import LEVER_ARM_RATIO_PRIOR
+
+    assert LEVER_ARM_RATIO_PRIOR == 10.0
+    # dot1 23 px wide implies dot2 at least 2.3 px, but dot2 measures under 0.3 px: not thermal
+    ws, q = _check(23e-4, 1e-5, 0.3e-4, np.nan)
+    assert np.isnan(ws[0])
+    assert any("even with the lever arms 10× apart" in w for w in q.warnings)
+    # dot1 3 px wide allows dot2 down to 0.3 px: kept
+    ws, q = _check(3e-4, 3e-6, 0.3e-4, np.nan)
+    assert ws[0] == 3e-4 and not q.warnings
