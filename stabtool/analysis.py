@@ -31,6 +31,7 @@ from .fit.model import MAX_VG_ERROR, DiagramFit, fit_diagram
 from .lines.result import LineDetection
 from .mapdata import map_axes, validate_map, without_infinities, x_gate, y_gate
 from .physics import FERMI_FWHM_FACTOR, lever_arm_from_width
+from .preprocess.readout import corrected_readout
 from .quality import Quality
 
 if TYPE_CHECKING:
@@ -789,118 +790,6 @@ def _scale(
 LAG_WIDTH_FRACTION = 0.4
 
 
-def _range_share(values: np.ndarray, amplitude: float) -> str:
-    """``amplitude`` as a share of the map's 5–95 % range, for the notes on removed pickup."""
-    spread = float(np.nanpercentile(values, 95) - np.nanpercentile(values, 5))
-    return f"{100 * amplitude / spread:.0f} % of the map's 5–95 % range"
-
-
-def _corrected_readout(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, float, Quality]:
-    """The map without periodic pickup and with alternate rows aligned; the read-out lag (V along x, ≥ 0).
-
-    Order matters. On a map swept one way, periodic pickup is looked for first
-    as straight stripes (a plane wave, :mod:`stabtool.preprocess.stripes`: a
-    tone whose phase steps by a fixed amount from row to row, which includes a
-    tone continuous in row-major time), then as a tone in row-major time
-    (:mod:`stabtool.preprocess.pickup`), then (on any map) as a tone whose
-    phase is random from row to row (:mod:`stabtool.preprocess.row_tone`).
-    On a serpentine sweep the tone runs
-    along the serpentine: the row shift is measured first and the pickup
-    removed in that time order, before any alignment (aligning rows first
-    would shift the tone by a fraction of a sample on alternate rows). A one-pole low-pass along the rows (a read-out time
-    constant) is then measured from the noise and undone in each row's
-    measurement direction, which also removes the serpentine shift it caused;
-    the shift is measured again and what is left of it aligned. See
-    :mod:`stabtool.preprocess.serpentine`, :mod:`stabtool.preprocess.pickup`
-    and :mod:`stabtool.preprocess.lowpass`. The lag returned is the smear that
-    may remain along x: half the shift left (each direction's delay) or the
-    time constant's standard error, whichever is larger; 0 when neither was
-    found.
-    """
-    from .preprocess.lowpass import agrees_with_shift, row_low_pass, undo_row_low_pass
-    from .preprocess.pickup import remove_pickup
-    from .preprocess.row_tone import remove_row_tones
-    from .preprocess.serpentine import align_alternate_rows, alternate_row_shift
-    from .preprocess.stripes import remove_stripes
-
-    raw = np.asarray(da.values, float)
-    shift = alternate_row_shift(raw)
-    snake = shift.significant
-    values, found = raw, False
-    if not snake:
-        # a tone whose phase steps by a fixed amount from row to row (a wait before each row, or none):
-        # straight stripes at any angle, one plane wave of the map
-        values, waves = remove_stripes(values)
-        if waves:
-            found = True
-            what = ", ".join(f"period {w.period_points:.2f} points along {x_gate(da)}, phase step "
-                             f"{360 * (w.fy % 1):.0f}° per row, amplitude {w.amplitude:.3g} "
-                             f"({_range_share(values, w.amplitude)})" for w in waves)
-            q = q.with_warning(f"periodic pickup removed (straight stripes across the map: a tone whose phase "
-                               f"steps from row to row): {what}", doubtful=False)
-    # a serpentine sweep's time runs back and forth; a row-major tone is still looked for after it
-    # (rows shifted by another cause, or a sweep that returns without measuring)
-    for order in ((True, False) if snake else (False,)):
-        values, tones = remove_pickup(values, snake=order)
-        if not tones:
-            continue
-        found = True
-        what = ", ".join(f"period {p.period_points:.2f} points, amplitude {p.amplitude:.3g} "
-                         f"({_range_share(values, p.amplitude)})" for p in tones)
-        how = "back and forth" if order else "one after another"
-        q = q.with_warning(f"periodic pickup in measurement time removed (rows measured along {x_gate(da)} "
-                           f"{how}): {what}", doubtful=False)
-    # a tone whose phase is random from row to row (rows started at moments of their own)
-    values, row_tones = remove_row_tones(values)
-    if row_tones:
-        found = True
-        what = ", ".join(f"period {t.period_points:.2f} points along {x_gate(da)}, rms amplitude {t.amplitude:.3g} "
-                         f"({_range_share(values, t.amplitude)})" for t in row_tones)
-        q = q.with_warning(f"periodic pickup removed row by row (a tone whose phase is random from row to row): "
-                           f"{what}", doubtful=False)
-    dx = abs(float(map_axes(da).dx))
-    lp = row_low_pass(values, serpentine=snake, odd_rows_forward=snake and shift.shift_px > 0)
-    # on a serpentine the rows' shift must be the filter's (else the coefficient is not trusted)
-    use_lp = lp.significant and (not snake or agrees_with_shift(lp, shift.shift_px))
-    residual_px = 0.0
-    undone = undo_row_low_pass(values, lp) if use_lp else values
-    if use_lp and not lp.serpentine:
-        apart = alternate_row_shift(undone)
-        if apart.significant:
-            # undoing one direction on every row set alternate rows apart: the sweep ran back and forth
-            # (its zig-zag hidden by other noise before); the rows set apart ran the other way, and
-            # by about twice the filter's delay
-            lp = row_low_pass(values, serpentine=True, odd_rows_forward=apart.shift_px > 0)
-            use_lp = lp.significant and agrees_with_shift(lp, 0.5 * apart.shift_px)
-            undone = undo_row_low_pass(values, lp) if use_lp else values
-            snake = True
-    if use_lp:
-        found = True
-        values = undone
-        residual_px = lp.tau_stderr_points
-        how = ("back and forth" if lp.serpentine else "from first to last column" if lp.forward
-               else "from last to first column")
-        q = q.with_warning(
-            f"read-out low-pass along {x_gate(da)} (rows measured {how}, judged from the {lp.direction_from}): "
-            f"one-pole time constant {lp.tau_points:.2f} ± {lp.tau_stderr_points:.2f} points "
-            f"(a = {lp.coefficient:.3f}, from the noise's correlation along the rows); undone before the analysis",
-            doubtful=False,
-        )
-    if found and snake:
-        shift = alternate_row_shift(values)
-    if shift.significant:
-        q = q.with_warning(
-            f"alternate rows are shifted by {shift.shift_px:+.2f} ± {shift.stderr_px:.2f} px along {x_gate(da)} "
-            "(a serpentine sweep read with a lag?): rows aligned on their midpoint before the analysis",
-            doubtful=False,
-        )
-        values = align_alternate_rows(values, shift.shift_px)
-        residual_px = max(residual_px, 0.5 * abs(shift.shift_px))
-    if not found and not shift.significant:
-        return da, 0.0, q
-    return da.copy(data=values), residual_px * dx, q
-
-
 def _lag_broadened(ws: np.ndarray, fit: DiagramFit, lag_V: float, q: Quality) -> tuple[np.ndarray, Quality]:
     """Leave out the widths that a fast-axis read-out lag of ``lag_V`` (V along x) broadens.
 
@@ -1225,7 +1114,7 @@ class Analyzer:
         detector = self.detector or _default_detector
         q = Quality()
         measured = da  # (the result holds the map as measured; the analysis reads it corrected)
-        da, lag_V, q = _corrected_readout(da, q)
+        da, lag_V, q = corrected_readout(da, q)
         detection: LineDetection | None
         try:
             detection = detector(da)
