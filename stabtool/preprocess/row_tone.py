@@ -50,9 +50,11 @@ MIN_PERIOD = 2.2
 MAX_TONES = 2
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class RowTone:
     """A tone of one frequency along the rows with an amplitude and phase of its own in every row.
+
+    (Compared by identity: its per-row coefficients are arrays.)
 
     Attributes
     ----------
