@@ -90,9 +90,7 @@ class RowLowPass:
     serpentine : bool
         Alternate rows run the other way.
     asymmetry : float
-        The lines' tail statistic ``T``.
-    direction_from : str
-        What set the direction: ``"serpentine shift"``, ``"line tails"`` or ``"stored order"``.
+        The lines' tail statistic ``T`` (NaN on a serpentine, or when no filter was found).
     """
 
     coefficient: float
@@ -104,7 +102,18 @@ class RowLowPass:
     forward: bool = True
     serpentine: bool = False
     asymmetry: float = float("nan")
-    direction_from: str = "stored order"
+
+    @property
+    def direction_from(self) -> str:
+        """What set the direction: ``"serpentine shift"``, ``"line tails"`` or ``"stored order"``."""
+        if self.serpentine:
+            return "serpentine shift"
+        return "line tails" if self._tails_clear else "stored order"
+
+    @property
+    def _tails_clear(self) -> bool:
+        """The lines' tail statistic is at least :data:`MIN_ASYMMETRY` either way."""
+        return bool(np.isfinite(self.asymmetry) and abs(self.asymmetry) >= MIN_ASYMMETRY)
 
     @property
     def tau_points(self) -> float:
@@ -167,13 +176,12 @@ def row_low_pass(values: np.ndarray, *, serpentine: bool = False, odd_rows_forwa
     err = float(np.hypot(2 * se_rho, excess))
     found = RowLowPass(float(a), err, float(lag1), float(lag2), float(across), lag2_stderr=float(se_rho / abs(r1)))
     if serpentine:
-        return replace(found, forward=not odd_rows_forward, serpentine=True, direction_from="serpentine shift")
+        return replace(found, forward=not odd_rows_forward, serpentine=True)
     if not found.significant:
         return found
-    t = tail_asymmetry(v)
-    clear = bool(np.isfinite(t) and abs(t) >= MIN_ASYMMETRY)
-    return replace(found, forward=not (clear and t < 0), asymmetry=t,
-                   direction_from="line tails" if clear else "stored order")
+    measured = replace(found, asymmetry=tail_asymmetry(v))
+    # tails towards lower column index mean rows swept that way; otherwise the stored order stands
+    return replace(measured, forward=not (measured._tails_clear and measured.asymmetry < 0))
 
 
 def agrees_with_shift(lp: RowLowPass, shift_px: float) -> bool:
