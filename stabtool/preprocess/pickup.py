@@ -38,7 +38,7 @@ from itertools import pairwise
 import numpy as np
 from scipy.fft import next_fast_len
 
-__all__ = ["MAX_TONES", "MIN_EXPLAINED", "OFF_GRID", "PEAK_RATIO", "Pickup", "find_pickup", "remove_pickup"]
+__all__ = ["MAX_TONES", "MIN_EXPLAINED", "OFF_GRID", "PEAK_RATIO", "Pickup", "find_pickup", "remove_pickup", "running_level"]
 
 #: A peak must stand this many times above the running median of the spectrum.
 PEAK_RATIO = 100.0
@@ -119,7 +119,7 @@ def find_pickup(values: np.ndarray, *, snake: bool = False) -> Pickup | None:
     n_fft = next_fast_len(d.size, real=True)  # (zero padding: a prime length would be slow)
     spec = _spectrum(d, n_fft)
     freq = np.fft.rfftfreq(n_fft)
-    bg = _running_level(spec, max(31, spec.size // 50))
+    bg = running_level(spec, max(31, spec.size // 50))
     with np.errstate(divide="ignore", invalid="ignore"):
         ratio = spec / bg
     period = 2 * nx if snake else nx  # (a serpentine pattern repeats after a forward and a backward row)
@@ -155,7 +155,7 @@ def _time_differences(y: np.ndarray, ok: np.ndarray, nx: int) -> np.ndarray:
     return d
 
 
-def _running_level(spec: np.ndarray, size: int) -> np.ndarray:
+def running_level(spec: np.ndarray, size: int) -> np.ndarray:
     """Local level of a spectrum: medians of blocks of ``size`` bins, interpolated between their centres.
 
     (A running median of the same width, at a fraction of its cost on long series; a narrow

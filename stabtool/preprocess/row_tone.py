@@ -31,8 +31,8 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import ndimage as ndi
 
-from .pickup import _running_level
-from .stripes import _row_differences
+from .pickup import running_level
+from .stripes import row_differences
 
 __all__ = ["MAX_COHERENCE", "MAX_RESIDUAL_RATIO", "PEAK_RATIO", "RowTone", "find_row_tone", "remove_row_tones"]
 
@@ -102,7 +102,7 @@ def find_row_tone(values: np.ndarray) -> RowTone | None:
     v = np.asarray(values, float)
     if v.ndim != 2 or v.shape[0] < 16 or v.shape[1] < 16:
         return None
-    d, ok = _row_differences(v)
+    d, ok = row_differences(v)
     if ok.mean() < 0.5:
         return None
     ny, nd = d.shape
@@ -110,7 +110,7 @@ def find_row_tone(values: np.ndarray) -> RowTone | None:
     spec = np.fft.rfft(d * window, axis=1)
     mean_power = (np.abs(spec) ** 2).mean(axis=0)
     freq = np.fft.rfftfreq(nd)
-    level = _running_level(mean_power, max(15, nd // 20))
+    level = running_level(mean_power, max(15, nd // 20))
     with np.errstate(divide="ignore", invalid="ignore"):
         ratio = np.where((freq >= MIN_PERIODS_PER_ROW / v.shape[1]) & (freq <= 1.0 / MIN_PERIOD),
                          mean_power / level, 0.0)

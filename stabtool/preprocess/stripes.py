@@ -32,7 +32,8 @@ import numpy as np
 from scipy import ndimage as ndi
 from scipy.fft import rfft2
 
-__all__ = ["LEVEL_BINS", "MAX_WAVES", "MIN_EXPLAINED", "PEAK_RATIO", "Stripes", "find_stripes", "remove_stripes"]
+__all__ = ["LEVEL_BINS", "MAX_WAVES", "MIN_EXPLAINED", "PEAK_RATIO", "Stripes", "find_stripes", "remove_stripes",
+           "row_differences"]
 
 #: A peak of the 2-D power spectrum must stand this many times above the local level.
 PEAK_RATIO = 1e3
@@ -99,7 +100,7 @@ def find_stripes(values: np.ndarray) -> Stripes | None:
     v = np.asarray(values, float)
     if v.ndim != 2 or v.shape[0] < 8 or v.shape[1] < 16:
         return None
-    d, ok = _row_differences(v)
+    d, ok = row_differences(v)
     if ok.mean() < 0.5:
         return None
     ny, nd = d.shape
@@ -149,7 +150,7 @@ def remove_stripes(values: np.ndarray, *, max_waves: int = MAX_WAVES) -> tuple[n
     return v, waves
 
 
-def _row_differences(v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def row_differences(v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """x-differences (0 where a point is missing, each row's median removed) and where they exist."""
     d = np.diff(v, axis=1)
     ok = np.isfinite(d)
