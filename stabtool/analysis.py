@@ -225,6 +225,24 @@ class AnalysisResult:
     def y_gate(self) -> str:
         return y_gate(self.data)
 
+    def model_fit_tunnel_coupling_ueV(self) -> dict | None:
+        """Interdot tunnel coupling from the adopted model fit with the coupling (µeV), or None.
+
+        ``t = e α11 · t'`` with ``t'`` the fitted :data:`stabtool.fit.refine.TUNNEL_PARAM`
+        (V of the x gate); the error combines those of ``t'`` and ``α11``. None when the
+        adopted fit has no coupling or no energy reference fixes ``α11``.
+        """
+        from .fit.refine import TUNNEL_PARAM
+
+        ref = self.refinement
+        if ref is None or TUNNEL_PARAM not in (ref.params or {}):
+            return None
+        a, ae = float(self.lever_arm[0, 0]), float(self.lever_arm_error[0, 0])
+        if not (np.isfinite(a) and a > 0):
+            return None
+        tv, te = ref.params[TUNNEL_PARAM], ref.errors[TUNNEL_PARAM]
+        return {"value": 1e6 * a * tv, "error": 1e6 * float(np.hypot(a * te, tv * ae))}
+
     @property
     def lever_arm(self) -> np.ndarray:
         """α = diag(α11, α22) · M, shape (2, 2); NaN without an energy reference.
@@ -419,6 +437,7 @@ class AnalysisResult:
             "tunnel_coupling_upper_limit_ueV": self.tunnel.upper_limit_ueV if self.tunnel is not None else None,
             "tunnel_coupling_details": self.tunnel.to_json() if self.tunnel is not None else None,
             "tunnel_to_mutual_ratio": self.coupling.to_json() if self.coupling is not None else None,
+            "tunnel_coupling_model_fit_ueV": self.model_fit_tunnel_coupling_ueV(),
             "timings_s": self.timings_s,
         }
         t = self.transport
@@ -903,6 +922,27 @@ def _lever_arm_from_file(path: str, da: xr.DataArray) -> tuple[np.ndarray, np.nd
     return a, e
 
 
+def _is_bend_doubt(w: str) -> bool:
+    """The detector's note that dot lines bend towards the triple points (not one already explained)."""
+    return w.startswith("detector:") and "bend" in w and "[" not in w
+
+
+def _tunnel_evidence(q: Quality, refinement: Any, adoption: Any) -> bool:
+    """Whether to refit the map with the interdot tunnel coupling.
+
+    After a converged model fit without it: the detector saw the dot lines
+    bend towards the triple points, or the model leaves sharp structure, or
+    it disagrees with the lines (each a sign of triple points rounded by a
+    coupling; the refit is adopted only when it resolves one,
+    :func:`stabtool.fit.refine.adopt_tunnel_refinement`).
+    """
+    if refinement is None or not refinement.converged or not refinement.params:
+        return False
+    bend = any(_is_bend_doubt(w) for w in q.warnings)
+    structure = refinement.structure is not None and refinement.structure.flagged
+    return bool(bend or structure or adoption.disagreed)
+
+
 def _lowest_lines(lat: Any) -> tuple[int, int]:
     """Labels of the lowest dot1 and dot2 transitions of a lattice fit (N1, resp. N2, after the transition)."""
     return int(lat.labels1[:, 0].min()), int(lat.labels2[:, 1].min())
@@ -1154,6 +1194,7 @@ class Analyzer:
         states = None
         refinement = None
         adopted = False
+        tunnel_modelled = False  # the adopted model fit includes the interdot tunnel coupling
         x = np.asarray(da[da.dims[-1]].values, float)
         y = np.asarray(da[da.dims[0]].values, float)
         allow = True  # the labelling may count electrons from an empty corner (see below)
@@ -1163,13 +1204,26 @@ class Analyzer:
             states = self._states(da, fit, detection, x, y, min_confidence=0.0)
             if self.refine:
                 t2 = time.perf_counter()
-                from .fit.refine import adopt_refinement, refine_model
+                from .fit.refine import adopt_refinement, adopt_tunnel_refinement, refine_model
 
                 width_guess = _median_dot1_width(fit)
                 refinement = refine_model(fit_map, fit, charge_states=states, width_guess_V=width_guess)
                 refinement, fit_map, switch_note = _without_switching(fit_map, fit, states, refinement,
                                                                       width_guess_V=width_guess)
                 adoption = adopt_refinement(fit, refinement)
+                if _tunnel_evidence(q, refinement, adoption):
+                    # dot lines pushed apart near the triple points: refit with the tunnel coupling
+                    with_t = refine_model(fit_map, fit, charge_states=states, width_guess_V=width_guess,
+                                          tunnel_start_V=refinement.params["width_V1"], start=refinement)
+                    tunnel_adoption = adopt_tunnel_refinement(fit, with_t)
+                    if tunnel_adoption.adopted:
+                        refinement, adoption = with_t, tunnel_adoption
+                        tunnel_modelled = True
+                        bends = [w for w in q.warnings if _is_bend_doubt(w)]
+                        q = q.without(lambda w: w in bends)
+                        for w in bends:
+                            q = q.with_warning(f"{w} [modelled: interdot tunnel coupling fitted to the map]",
+                                               doubtful=False)
                 q = q.merge(refinement.quality).merge(adoption.quality)
                 if switch_note:
                     # doubtful all the same: on the generator's telegraph maps (sensor switching only) the
@@ -1267,6 +1321,9 @@ class Analyzer:
             # ≈ BIAS_PER_T_OVER_ECM · t/E_Cm, which is not in the statistical error of M: with the
             # four-state interdot fit the central value tracks the truth (seen: 0.062 for a true 0.062,
             # GaAs t = 20 µeV, where a 3σ-low rule let |ΔM| = 0.0072 pass as ok)
+            if tunnel_modelled:
+                # the model fit that set M has the coupling in it: the bias is not left in M
+                bias = float("nan")
             if np.isfinite(bias) and bias > MAX_TUNNEL_VG_BIAS:
                 q = q.with_warning(
                     f"broad interdot lines (t/E_Cm ≈ {coupling.value:.3f} ± {coupling.error:.3f}): the dot lines "
@@ -1285,7 +1342,7 @@ class Analyzer:
             # 2σ bound on t/E_Cm: value + 2σ when resolved, else the upper limit
             t_high = (coupling.value + 2 * coupling.error) if np.isfinite(bias) else coupling.upper_limit
             high = BIAS_PER_T_OVER_ECM * t_high if np.isfinite(t_high) else np.nan
-            bends = [w for w in q.warnings if w.startswith("detector:") and "bend" in w]
+            bends = [w for w in q.warnings if _is_bend_doubt(w)]
             if bends and adopted and np.isfinite(high) and high <= MAX_TUNNEL_VG_BIAS:
                 # the CI model without tunnel coupling describes the map, its M agrees with the lines and
                 # the interdot width (with the fitted thermal width) bounds the bias below the limit:
@@ -1303,7 +1360,7 @@ class Analyzer:
 
             alpha = scale.alpha_diag[:, None] * fit.vg_matrix
             vg_err = fit.vg_matrix_error.copy()
-            if coupling is not None and np.isfinite(coupling.expected_vg_bias):
+            if coupling is not None and np.isfinite(coupling.expected_vg_bias) and not tunnel_modelled:
                 # the tunnel-coupling bias of M (not in its stated error) moves the detuning scale too
                 off = ~np.eye(2, dtype=bool)
                 vg_err[off] = np.hypot(vg_err[off], coupling.expected_vg_bias)

@@ -38,6 +38,7 @@ from typing import Any, ClassVar
 
 import numpy as np
 
+from ..fit.refine import TUNNEL_PARAM
 from ..io.atomic import atomic_write_bytes
 from .text import fmt_pm
 
@@ -65,6 +66,14 @@ def _key_numbers(res: Any) -> str:
     ]
     if d.mutual_resolved:
         rows.append(f"δ1, δ2 = {1e3 * d.mutual_V[0]:.3g}, {1e3 * d.mutual_V[1]:.3g} mV")
+    ref = getattr(res, "refinement", None)
+    if ref is not None and TUNNEL_PARAM in (ref.params or {}):  # the adopted model fit has the coupling
+        t_ueV = res.model_fit_tunnel_coupling_ueV()
+        if t_ueV is not None:
+            rows.append(f"t = {fmt_pm(t_ueV['value'], t_ueV['error'], digits=3)} µeV (model fit, gap 2t)")
+        else:
+            tv, te = ref.params[TUNNEL_PARAM], ref.errors[TUNNEL_PARAM]
+            rows.append(f"t/(e α11) = {fmt_pm(tv, te, scale=1e3, unit='mV')} (model fit)")
     c, ce = res.gate_capacitance
     if res.from_triple_points:  # a transport map
         rows.append("Cdg from the triple-point lattice:")
