@@ -1582,6 +1582,18 @@ class Adoption:
     tunnel: bool = False
 
 
+def _with_floor(fit: DiagramFit, ref: Refinement) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The refined ``(M12, M21, ΔV1, δ1, ΔV2, δ2)``, their covariance with :data:`SYSTEMATIC_FLOOR`
+    added, and each one's |refined − line-based| over the combined standard error."""
+    vec, cov = ref.vector()
+    # the idealisation matters in proportion to the thermal smearing: full floor from a width of one pixel
+    smear = float(np.clip(ref.params.get("width_px1", 1.0), 0.1, 1.0))
+    floor = np.concatenate([systematic_floor_m(vec[:2], smear), smear * np.array(SYSTEMATIC_FLOOR[2:]) * np.abs(vec[2:6])])
+    cov = cov + np.diag(floor**2)
+    line_err = np.sqrt(np.clip(np.diag(fit.param_cov), 0, None))
+    return vec, cov, np.abs(vec - fit.params) / np.sqrt(np.diag(cov) + line_err**2)
+
+
 def adopt_refinement(fit: DiagramFit, ref: Refinement) -> Adoption:
     """Use the refined numbers when the global fit is sound and agrees with the lines.
 
@@ -1651,13 +1663,7 @@ def adopt_refinement(fit: DiagramFit, ref: Refinement) -> Adoption:
     z = np.full(6, np.nan)
     if not fit.ok or not ref.params or fit.lattice is None:
         return Adoption(fit, False, z, q)
-    vec, cov = ref.vector()
-    # the idealisation matters in proportion to the thermal smearing: full floor from a width of one pixel
-    smear = float(np.clip(ref.params.get("width_px1", 1.0), 0.1, 1.0))
-    floor = np.concatenate([systematic_floor_m(vec[:2], smear), smear * np.array(SYSTEMATIC_FLOOR[2:]) * np.abs(vec[2:6])])
-    cov = cov + np.diag(floor**2)
-    line_err = np.sqrt(np.clip(np.diag(fit.param_cov), 0, None))
-    z = np.abs(vec - fit.params) / np.sqrt(np.diag(cov) + line_err**2)
+    vec, cov, z = _with_floor(fit, ref)
     names = ("M12", "M21", "ΔV1", "δ1", "ΔV2", "δ2")
     check = np.ones(6, bool)
     if not fit.mutual_resolved:
@@ -1750,12 +1756,7 @@ def adopt_tunnel_refinement(fit: DiagramFit, ref: Refinement) -> Adoption:
             and t <= TUNNEL_MAX_OVER_MUTUAL * ref.params["mutual_V1"]
             and t >= TUNNEL_MIN_OVER_THERMAL * ref.params["width_V1"]):
         return Adoption(fit, False, z, q)
-    vec, cov = ref.vector()
-    smear = float(np.clip(ref.params.get("width_px1", 1.0), 0.1, 1.0))
-    floor = np.concatenate([systematic_floor_m(vec[:2], smear), smear * np.array(SYSTEMATIC_FLOOR[2:]) * np.abs(vec[2:6])])
-    cov = cov + np.diag(floor**2)
-    line_err = np.sqrt(np.clip(np.diag(fit.param_cov), 0, None))
-    z = np.abs(vec - fit.params) / np.sqrt(np.diag(cov) + line_err**2)
+    vec, cov, z = _with_floor(fit, ref)
     new = _fit_with_params(fit, vec.copy(), cov, vec[:2])
     q = q.with_warning(
         f"virtual gates from the model fit to the map with interdot tunnel coupling t/(e α11) = "
