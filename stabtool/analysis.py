@@ -1215,7 +1215,7 @@ class Analyzer:
                     # dot lines pushed apart near the triple points: refit with the tunnel coupling
                     with_t = refine_model(fit_map, fit, charge_states=states, width_guess_V=width_guess,
                                           tunnel_start_V=refinement.params["width_V1"], start=refinement)
-                    tunnel_adoption = adopt_tunnel_refinement(fit, with_t)
+                    tunnel_adoption = adopt_tunnel_refinement(fit, with_t, plain=refinement)
                     if tunnel_adoption.adopted:
                         refinement, adoption = with_t, tunnel_adoption
                         tunnel_modelled = True
