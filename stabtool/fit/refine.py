@@ -82,6 +82,12 @@ units of ``e α11`` volts:
 ``V' = M V``, ``r = α22/α11 = δ1/δ2``, weights ``exp(−F/w1)`` with the Fermi
 width ``w1 = k_B T/(e α11)`` along x (the dot2 width along y is ``w1/r``).
 
+Interdot tunnel coupling (optional, ``refine_model(..., tunnel_start_V=…)``): a
+tenth parameter ``t/(e α11)`` couples the states that differ by one electron
+moved between the dots, and ``p_N`` becomes the diagonal of the thermal density
+matrix (:func:`tunnel_mixed_probabilities`); the dot lines then bend towards the
+triple points as they do in a tunnel-coupled device.
+
 The linear coefficients (up to six per charge state) are solved at every
 step (variable projection); the nine nonlinear ones
 ``(M12, M21, ΔV1, ΔV2, δ1, r, c1, c2, w1)`` by a damped Gauss–Newton
@@ -244,8 +250,10 @@ class Refinement:
         The fit converged, the model describes the map (no sharp residual
         structure, :func:`residual_structure_test`) and the steps are not weak.
     params, errors : dict
-        Refined values and standard errors of ``PARAM_NAMES`` plus derived
-        ``mutual_V2`` (δ2 = δ1/r) and ``width_V2`` (w1/r); errors from the
+        Refined values and standard errors of ``PARAM_NAMES`` (and
+        :data:`TUNNEL_PARAM` when fitted) plus derived ``mutual_V2`` (δ2 = δ1/r)
+        and ``width_V2`` (w1/r), and values ``width_px1``, ``mutual_px1``,
+        ``mutual_px2`` (w1 and δ1 in x pixels, δ2 in y pixels); errors from the
         row-clustered sandwich covariance.
     cov : ndarray, shape (9, 9) or (10, 10)
         Covariance of ``PARAM_NAMES`` (and :data:`TUNNEL_PARAM` when fitted;
