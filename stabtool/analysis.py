@@ -1211,7 +1211,9 @@ class Analyzer:
                 refinement, fit_map, switch_note = _without_switching(fit_map, fit, states, refinement,
                                                                       width_guess_V=width_guess)
                 adoption = adopt_refinement(fit, refinement)
-                if _tunnel_evidence(q, refinement, adoption):
+                # (not after sensor switching was taken out: that map stays doubtful, and its residue is
+                # what the structure test sees)
+                if not switch_note and _tunnel_evidence(q, refinement, adoption):
                     # dot lines pushed apart near the triple points: refit with the tunnel coupling
                     with_t = refine_model(fit_map, fit, charge_states=states, width_guess_V=width_guess,
                                           tunnel_start_V=refinement.params["width_V1"], start=refinement)
