@@ -172,9 +172,12 @@ def test_tunnel_coupled_map_is_not_ok_beyond_the_clean_bound(preset, t_ueV):
         assert err <= 0.005
     if t_ueV == 0.0:
         assert j["quality"]["ok"], j["quality"]["warnings"]
+    elif any("interdot tunnel coupling t/(e α11)" in w for w in j["quality"]["warnings"]):
+        # corrected: the model fit with the coupling was adopted (gaas-double 20 µeV: 0.0014 off)
+        assert err <= 0.005
     else:
-        # these two maps are biased beyond the bound (0.0072 and 0.0061 seen): they must be flagged
-        assert err > 0.005 and not j["quality"]["ok"]
+        # straight lines and the plain model fit are biased (0.0072 and 0.0061 seen): flagged
+        assert not j["quality"]["ok"]
         assert any("tunnel" in w or "broad interdot" in w for w in j["quality"]["warnings"])
 
 

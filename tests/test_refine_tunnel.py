@@ -202,3 +202,25 @@ def test_stated_errors_of_the_coupled_fit_cover_its_remaining_bias(seed):
     assert np.all(err <= 2 * stated)
     if res.quality.ok:  # an ok clean map promises |ΔM| ≤ 0.005
         assert np.all(err <= 0.005)
+
+
+@pytest.mark.regression
+def test_score_test_stays_quiet_without_a_coupling():
+    """The score is about standard normal on an uncoupled map (one-sided trigger at 3)."""
+    _, plain, _, _ = _fits(0.0, seed=1)
+    assert np.isfinite(plain.tunnel_score) and plain.tunnel_score < 3.0
+
+
+@pytest.mark.regression
+def test_weak_coupling_without_bending_notes_is_not_reported_ok_beyond_the_bound():
+    """gaas-double, t = 20 µeV (2.3 k_B T), seed 2: no bend note, no structure, the plain fit agrees with
+    the lines, and it was reported ok with M 0.007 off; the score test sends it to the coupled fit."""
+    sm = quick_double_dot("gaas-double", snr=30.0, rng=2, temperature_K=0.1, tunnel_coupling_ueV=20.0,
+                          shape=(112, 112))
+    m = np.asarray(sm.truth.to_json()["virtual_gate_matrix"])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        res = Analyzer(electron_temperature_K=0.1)(sm.data)
+    err = max(abs(res.diagram.vg_matrix[0, 1] - m[0, 1]), abs(res.diagram.vg_matrix[1, 0] - m[1, 0]))
+    assert "tunnel_V1" in res.refinement.params
+    assert err < 0.005

@@ -283,6 +283,10 @@ class Refinement:
     weak_steps : bool
         The typical step, or a quarter of the steps, is weak against the noise
         (a sensor blind in part of the map: lines there may go unseen).
+    tunnel_score : float
+        Score test for an interdot tunnel coupling at a fit without one
+        (:func:`_tunnel_score`, standard normal without a coupling; NaN when
+        the coupling was fitted).
     model : ndarray, shape (ny, nx), or None
         The fitted model over the whole map (NaN near states it has not seen);
         not part of the JSON.
@@ -312,6 +316,8 @@ class Refinement:
     curvature: dict | None = None
     model: np.ndarray | None = field(default=None, repr=False, compare=False)
     weak_steps: bool = False
+    #: score test of an interdot tunnel coupling at this fit (:func:`_tunnel_score`; NaN when not computed)
+    tunnel_score: float = float("nan")
 
     def __bool__(self) -> bool:
         return self.ok
@@ -1203,6 +1209,36 @@ def _model_and_jacobian(
     return pred, out, outside
 
 
+def _tunnel_score(prob_: _Problem, theta: np.ndarray, coef: np.ndarray, states: _States, a: sp.csr_matrix,
+                  ata: np.ndarray, jp: np.ndarray, res: np.ndarray) -> float:
+    """Score test (Rao 1948) for an interdot tunnel coupling at a converged fit without one.
+
+    The model depends on the coupling through ``s = t²`` (the thermal density matrix is even in
+    ``t``), so its derivative in ``s`` at ``s = 0`` (a forward difference at ``t = 0.1 w1``, linear
+    coefficients fixed) is projected off the linear columns and the nine fitted ones, and its
+    product with the residual is divided by the row-clustered standard deviation of that product.
+    Positive values mean a coupling would lower the residual; without one the score is about
+    standard normal.
+
+    C. R. Rao, "Large sample tests of statistical hypotheses concerning several parameters with
+    applications to problems of estimation", Proc. Camb. Phil. Soc. 44, 50 (1948),
+    doi:10.1017/S0305004100023987.
+    """
+    t = 0.1 * float(theta[8])
+    base = _model_and_jacobian(prob_.px, prob_.py, prob_.phi, theta, coef, states, prob_.n_min,
+                               thermal=_thermal(prob_.px, prob_.py, theta, prob_.n_min))[0]
+    th = np.r_[theta, t]
+    up = _model_and_jacobian(prob_.px, prob_.py, prob_.phi, th, coef, states, prob_.n_min,
+                             thermal=_thermal(prob_.px, prob_.py, th, prob_.n_min))[0]
+    js = (up - base) / (t * t)
+    js = js - a @ np.linalg.solve(ata, np.asarray(a.T @ js))
+    js = js - jp @ np.linalg.lstsq(jp, js, rcond=None)[0]
+    contrib = js * res
+    per_row = np.bincount(np.unique(prob_.rows, return_inverse=True)[1], weights=contrib)
+    den = float(np.sqrt(np.sum(per_row**2)))
+    return float(contrib.sum() / den) if den > 0 else float("nan")
+
+
 def refine_model(
     da: xr.DataArray,
     fit: DiagramFit,
@@ -1405,6 +1441,7 @@ def refine_model(
     dof = max(pz.size - n_par - n_lin, 1)
     chi2 = float(cost / dof) / sig**2
     cov = clustered_covariance(jp, res, prow, dof=dof) * STAT_INFLATION**2
+    score = _tunnel_score(prob_, theta, coef, states, a, ata, jp, res) if n_par == 9 else float("nan")
     err = np.sqrt(np.clip(np.diag(cov), 0, None))
 
     # ------------------------------------------------------------- verdict
@@ -1466,7 +1503,7 @@ def refine_model(
                       noise=noise, step=(g1, g2), width_resolved=width_resolved, stride=(sy, sx), n_min=n_min,
                       quality=q, n_points=int(pz.size), iterations=it, converged=converged, snr=snr,
                       structure=structure, curvature=curvature.to_json() if curvature is not None else None,
-                      model=full, weak_steps=weak_typical or weak_quarter)
+                      model=full, weak_steps=weak_typical or weak_quarter, tunnel_score=score)
 
 
 #: Systematic floor added in quadrature to the refined errors of (M12, M21, ΔV1, δ1, ΔV2, δ2):
