@@ -82,6 +82,16 @@ def test_excluded_states_stay_empty_and_zero_coupling_is_boltzmann():
     np.testing.assert_allclose(tunnel_mixed_probabilities(f, 0.0), w / w.sum(axis=0), atol=1e-15)
 
 
+def _analysed(t_ueV: float, seed: int, **analyzer_kwargs):
+    """A gaas-double map (SNR 30, 112², 100 mK) with coupling ``t_ueV``, its analysis and the true M."""
+    sm = quick_double_dot("gaas-double", snr=30.0, rng=seed, temperature_K=0.1, tunnel_coupling_ueV=t_ueV,
+                          shape=(112, 112))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        res = Analyzer(**analyzer_kwargs)(sm.data)
+    return sm, res, np.asarray(sm.truth.to_json()["virtual_gate_matrix"])
+
+
 @cache
 def _fits(t_ueV: float, seed: int):
     sm = quick_double_dot("gaas-double", snr=30.0, rng=seed, temperature_K=0.1, tunnel_coupling_ueV=t_ueV,
@@ -123,12 +133,7 @@ def test_tunnel_coupled_fit_recovers_virtual_gates_and_coupling():
 
 @pytest.mark.regression
 def test_analysis_adopts_the_coupled_fit_and_says_so():
-    sm = quick_double_dot("gaas-double", snr=30.0, rng=2, temperature_K=0.1, tunnel_coupling_ueV=40.0,
-                          shape=(112, 112))
-    m = np.asarray(sm.truth.to_json()["virtual_gate_matrix"])
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        res = Analyzer(electron_temperature_K=0.1)(sm.data)
+    _, res, m = _analysed(40.0, seed=2, electron_temperature_K=0.1)
     j = res.to_json()
     assert any("interdot tunnel coupling t/(e α11)" in w for w in j["quality"]["warnings"])
     assert "tunnel_V1" in res.refinement.params
@@ -164,23 +169,16 @@ def test_a_coupling_beyond_the_mutual_charging_energy_below_thermal_or_unresolve
 @pytest.mark.regression
 def test_model_fit_coupling_in_microelectronvolts_with_a_known_lever_arm():
     """t = e α11 t' within the specification's 10 % when α11 is given (the truth's)."""
-    sm = quick_double_dot("gaas-double", snr=30.0, rng=2, temperature_K=0.1, tunnel_coupling_ueV=40.0,
-                          shape=(112, 112))
-    a = np.asarray(sm.truth.lever_arm)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        j = Analyzer(electron_temperature_K=0.1, lever_arm=(a[0, 0], a[1, 1]))(sm.data).to_json()
+    a = np.asarray(quick_double_dot("gaas-double", rng=2, shape=(8, 8)).truth.lever_arm)  # the preset's α
+    _, res, _ = _analysed(40.0, seed=2, electron_temperature_K=0.1, lever_arm=(a[0, 0], a[1, 1]))
+    j = res.to_json()
     t = j["tunnel_coupling_model_fit_ueV"]
     assert t is not None and t["error"] > 0
     assert t["value"] == pytest.approx(40.0, rel=0.10)
 
 
 def test_no_model_fit_coupling_without_an_energy_reference():
-    sm = quick_double_dot("gaas-double", snr=30.0, rng=2, temperature_K=0.1, tunnel_coupling_ueV=40.0,
-                          shape=(112, 112))
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        res = Analyzer()(sm.data)
+    _, res, _ = _analysed(40.0, seed=2)
     assert "tunnel_V1" in res.refinement.params  # the coupled fit was adopted ...
     assert res.to_json()["tunnel_coupling_model_fit_ueV"] is None  # ... but nothing fixes α11
 
@@ -190,12 +188,7 @@ def test_no_model_fit_coupling_without_an_energy_reference():
 def test_stated_errors_of_the_coupled_fit_cover_its_remaining_bias(seed):
     """gaas-double, t = 40 µeV: the coupled fit leaves M ≈ 0.004 off, 4 statistical σ on these seeds
     (measured); the adopted error carries a share of the coupling's correction and covers it at 2 σ."""
-    sm = quick_double_dot("gaas-double", snr=30.0, rng=seed, temperature_K=0.1, tunnel_coupling_ueV=40.0,
-                          shape=(112, 112))
-    m = np.asarray(sm.truth.to_json()["virtual_gate_matrix"])
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        res = Analyzer(electron_temperature_K=0.1)(sm.data)
+    _, res, m = _analysed(40.0, seed=seed, electron_temperature_K=0.1)
     assert "tunnel_V1" in res.refinement.params
     err = np.abs(np.array([res.diagram.vg_matrix[0, 1] - m[0, 1], res.diagram.vg_matrix[1, 0] - m[1, 0]]))
     stated = np.array([res.diagram.vg_matrix_error[0, 1], res.diagram.vg_matrix_error[1, 0]])
@@ -215,12 +208,7 @@ def test_score_test_stays_quiet_without_a_coupling():
 def test_weak_coupling_without_bending_notes_is_not_reported_ok_beyond_the_bound():
     """gaas-double, t = 20 µeV (2.3 k_B T), seed 2: no bend note, no structure, the plain fit agrees with
     the lines, and it was reported ok with M 0.007 off; the score test sends it to the coupled fit."""
-    sm = quick_double_dot("gaas-double", snr=30.0, rng=2, temperature_K=0.1, tunnel_coupling_ueV=20.0,
-                          shape=(112, 112))
-    m = np.asarray(sm.truth.to_json()["virtual_gate_matrix"])
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        res = Analyzer(electron_temperature_K=0.1)(sm.data)
+    _, res, m = _analysed(20.0, seed=2, electron_temperature_K=0.1)
     err = max(abs(res.diagram.vg_matrix[0, 1] - m[0, 1]), abs(res.diagram.vg_matrix[1, 0] - m[1, 0]))
     assert "tunnel_V1" in res.refinement.params
     assert err < 0.005
