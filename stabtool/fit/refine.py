@@ -675,7 +675,7 @@ class _Problem:
         self.phi = _basis(xn, yn)  # (6, p)
         #: the sensor's curvature along the charges (None: linear mixing of the states' levels)
         self.tilt: _Tilt | None = None
-        #: finite-difference steps of the tunnel-mixed model's Jacobian (None: a millionth of each parameter)
+        #: finite-difference steps of the tunnel-mixed model's Jacobian (set with the coupling)
         self.fd_step: np.ndarray | None = None
         self._cache: tuple | None = None
 
@@ -752,7 +752,8 @@ class _Problem:
                                        thermal=_thermal(self.px, self.py, th, self.n_min))[0]
 
         out = np.empty((self.px.size, theta.size))
-        steps = self.fd_step if self.fd_step is not None else 1e-6 * np.maximum(np.abs(theta), 1e-3)
+        steps = self.fd_step
+        assert steps is not None  # (set by refine_model with the coupling)
         base = None if central else model(theta)
         for i, h in enumerate(steps):
             up, down = theta.copy(), theta.copy()
@@ -1225,8 +1226,7 @@ def _tunnel_score(prob_: _Problem, theta: np.ndarray, coef: np.ndarray, states: 
     doi:10.1017/S0305004100023987.
     """
     t = 0.1 * float(theta[8])
-    base = _model_and_jacobian(prob_.px, prob_.py, prob_.phi, theta, coef, states, prob_.n_min,
-                               thermal=_thermal(prob_.px, prob_.py, theta, prob_.n_min))[0]
+    base = prob_.pz - res  # the model at the fit
     th = np.r_[theta, t]
     up = _model_and_jacobian(prob_.px, prob_.py, prob_.phi, th, coef, states, prob_.n_min,
                              thermal=_thermal(prob_.px, prob_.py, th, prob_.n_min))[0]
@@ -1751,7 +1751,7 @@ def adopt_refinement(fit: DiagramFit, ref: Refinement) -> Adoption:
     new_cov[2:, :2] = cov_md.T
     # the assumed correlation of the two estimates need not be consistent with the rest of the joint
     # covariance: a negative direction of the result is turned positive (never understates an error)
-    new = _fit_with_params(fit, p, new_cov, vec[:2])
+    new = _fit_with_params(fit, p, new_cov)
     q = q.with_warning("virtual gates refined by the model fit to the map", doubtful=False)
     return Adoption(new, True, z, q, disagreement_term=sys_m, weight_refined=_weights(
         np.sqrt(np.diag(cov_line)), np.sqrt(np.diag(cov_ref)), fit.mutual_resolved), addition_mutual_term=sys_d)
@@ -1817,7 +1817,7 @@ def adopt_tunnel_refinement(fit: DiagramFit, ref: Refinement, plain: Refinement 
     if plain is not None and plain.params:
         shift_term = TUNNEL_SHIFT_SHARE * np.abs(vec - plain.vector()[0])
         cov = cov + np.diag(shift_term**2)
-    new = _fit_with_params(fit, vec.copy(), cov, vec[:2])
+    new = _fit_with_params(fit, vec.copy(), cov)
     q = q.with_warning(
         f"virtual gates from the model fit to the map with interdot tunnel coupling t/(e α11) = "
         f"{1e3 * t:.3g} ± {1e3 * st:.2g} mV of the x gate: the dot lines bend towards the triple points, "
@@ -1826,10 +1826,10 @@ def adopt_tunnel_refinement(fit: DiagramFit, ref: Refinement, plain: Refinement 
                     addition_mutual_term=shift_term[2:], tunnel=True)
 
 
-def _fit_with_params(fit: DiagramFit, p: np.ndarray, new_cov: np.ndarray, m_new: np.ndarray) -> DiagramFit:
+def _fit_with_params(fit: DiagramFit, p: np.ndarray, new_cov: np.ndarray) -> DiagramFit:
     """``fit`` with the parameters ``p = (M12, M21, ΔV1, δ1, ΔV2, δ2)`` and their covariance, every derived
-    number (slopes, Cdg, α11/α22) propagated and the error verdict redone; ``m_new`` is the new (M12, M21)
-    that the offsets follow."""
+    number (slopes, Cdg, α11/α22) and the offsets (which follow the new M) propagated and the error
+    verdict redone."""
     from dataclasses import replace
 
     from .model import MUTUAL_SIGMAS, _derived
@@ -1861,7 +1861,7 @@ def _fit_with_params(fit: DiagramFit, p: np.ndarray, new_cov: np.ndarray, m_new:
         addition_V_error=err[[2, 4]].copy(),
         mutual_V=p[[3, 5]].copy(),
         mutual_V_error=err[[3, 5]].copy(),
-        offsets_V=fit.offsets_V + np.nan_to_num(fit.lattice.grad_m[[2, 5]]) @ (m_new - fit.params[:2]),
+        offsets_V=fit.offsets_V + np.nan_to_num(fit.lattice.grad_m[[2, 5]]) @ (p[:2] - fit.params[:2]),
         cdg_aF=values[:4].reshape(2, 2),
         cdg_aF_error=errors[:4].reshape(2, 2),
         alpha_ratio=float(values[4]) if resolved else float("nan"),

@@ -38,7 +38,6 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from ..fit.refine import TUNNEL_PARAM
 from ..io.atomic import atomic_write_bytes
 from .text import fmt_pm
 
@@ -66,6 +65,8 @@ def _key_numbers(res: Any) -> str:
     ]
     if d.mutual_resolved:
         rows.append(f"δ1, δ2 = {1e3 * d.mutual_V[0]:.3g}, {1e3 * d.mutual_V[1]:.3g} mV")
+    from ..fit.refine import TUNNEL_PARAM  # (not at import: the plots need no fitter otherwise)
+
     ref = getattr(res, "refinement", None)
     if ref is not None and TUNNEL_PARAM in (ref.params or {}):  # the adopted model fit has the coupling
         t_ueV = res.model_fit_tunnel_coupling_ueV()
