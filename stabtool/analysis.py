@@ -1394,6 +1394,9 @@ class Analyzer:
                 alpha_triangles = np.asarray(triangles.lever_arm, float) if triangles else None
                 transport = fit_transport_lattice(da, spots=spots, lever_arm=alpha_triangles)
                 if transport.consistent:
+                    # the lines the failed line fit saw are no dot lines: their slopes give no virtual gates
+                    nan22 = np.full((2, 2), np.nan)
+                    fit = replace(fit, vg_matrix=nan22, vg_matrix_error=nan22.copy())
                     # the energy reference keeps its own verdict; the failures of the line fit become notes
                     own = set(scale.quality.warnings)
                     lines_q = q

@@ -5,6 +5,8 @@ van der Wiel et al., Rev. Mod. Phys. 75, 1 (2003)), so every number has a
 closed-form truth.
 """
 
+from dataclasses import replace
+
 import numpy as np
 import pytest
 from _fit import WORKED, honeycomb_detection, truth_from_capacitances
@@ -209,3 +211,23 @@ def test_a_pass_whose_lines_could_not_be_measured_does_not_win_on_a_zero_error(m
     fit = fit_diagram(det, data=sm.data)
     assert fit.ok and not fit.remeasured
     assert np.nanmin(fit.vg_matrix_error[[0, 1], [1, 0]]) > 1e-4  # the detector's slope errors, not 0
+
+
+def test_without_a_cell_the_slopes_still_give_the_virtual_gates():
+    # one dot1 line only: no charge cell (ΔV1 needs two dot1 lines of a band), but the slopes
+    # fix M = [[1, −1/s1], [−s2, 1]] (conventions; van der Wiel et al. 2003): it is reported
+    # with the slopes' errors, the fit stays doubtful and everything the cell gives stays NaN
+    t = truth_from_capacitances(**WORKED)
+    det = honeycomb_detection(t, x=AXIS, y=AXIS, offset_V=(0.01, 0.012), slope_noise=0.005, pos_noise_V=1e-4, rng=4)
+    one = det.families["dot1"]
+    longest = max(one.lines, key=lambda ln: ln.length_V)
+    fams = dict(det.families, dot1=replace(one, slope=float("nan"), slope_stderr=float("nan"), lines=(longest,)))
+    fit = fit_diagram(replace(det, families=fams))
+    assert not fit.ok
+    assert any("too few lines" in w for w in fit.quality.warnings)
+    s1, s2 = fit.slopes["dot1"], fit.slopes["dot2"]
+    np.testing.assert_allclose(fit.vg_matrix, [[1.0, -1.0 / s1], [-s2, 1.0]], rtol=1e-12)
+    err = fit.vg_matrix_error[[0, 1], [1, 0]]
+    assert np.all(np.isfinite(err)) and np.all(err > 0)
+    assert np.all(np.abs(fit.vg_matrix - t.m)[[0, 1], [1, 0]] < 4 * err)
+    assert np.all(np.isnan(fit.cdg_aF)) and np.all(np.isnan(fit.addition_V))

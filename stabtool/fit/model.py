@@ -258,12 +258,15 @@ def _derived(p: np.ndarray) -> np.ndarray:
     return np.concatenate([cdg.ravel(), [ratio, s1, s2, s3]])
 
 
-def _empty_fit(reason: str, slopes: dict, slope_errors: dict, lines1, lines2, inter, q: Quality) -> DiagramFit:
+def _empty_fit(reason: str, slopes: dict, slope_errors: dict, lines1, lines2, inter, q: Quality,
+               vg: tuple[np.ndarray, np.ndarray] | None = None) -> DiagramFit:
+    """A failed fit: the slopes (and, with ``vg``, the virtual-gate matrix and its error) and nothing else."""
     nan2 = np.full(2, np.nan)
     nan22 = np.full((2, 2), np.nan)
+    m, m_err = vg if vg is not None else (nan22, nan22.copy())
     return DiagramFit(
         ok=False, slopes=slopes, slope_errors=slope_errors, params=np.full(6, np.nan),
-        param_cov=np.full((6, 6), np.nan), vg_matrix=nan22, vg_matrix_error=nan22.copy(),
+        param_cov=np.full((6, 6), np.nan), vg_matrix=m, vg_matrix_error=m_err,
         addition_V=nan2, addition_V_error=nan2.copy(), mutual_V=nan2.copy(), mutual_V_error=nan2.copy(),
         offsets_V=nan2.copy(), cdg_aF=nan22.copy(), cdg_aF_error=nan22.copy(), alpha_ratio=np.nan,
         alpha_ratio_error=np.nan, mutual_resolved=False, lattice=None, lines1=tuple(lines1),
@@ -428,7 +431,14 @@ def _fit_once(
     seg1, seg2 = merged
     lat = fit_lattice(seg1, seg2, interdot_extent=inter_ext, err_floor_V=err_floor_px * px)
     if not lat:
-        return _empty_fit(lat.reason, slopes, slope_errors, lines1, lines2, inter, q)
+        # no cell, but the slopes fix the virtual gates: M is reported with the slopes' errors (the
+        # fit stays doubtful)
+        vg_err = np.array([[0.0, inv1_err], [s2_err, 0.0]])
+        vg = (m, vg_err) if np.all(np.isfinite(vg_err)) else None
+        if vg is not None:
+            q = q.with_warning("virtual-gate matrix from the line slopes alone (no charge cell checks them)",
+                               doubtful=False)
+        return _empty_fit(lat.reason, slopes, slope_errors, lines1, lines2, inter, q, vg=vg)
     p = np.array([m12, m21, lat.addition_V[0], lat.mutual_V[0], lat.addition_V[1], lat.mutual_V[1]])
     cov = np.zeros((6, 6))
     cov_m = np.diag([np.nan_to_num(inv1_err) ** 2, np.nan_to_num(s2_err) ** 2])
