@@ -290,7 +290,7 @@ ERR_FLOOR_PX = 0.05
 
 def _fit_once(
     detection: LineDetection, *, data: Any = None, relocate: bool = True, err_floor_px: float = ERR_FLOOR_PX,
-    merge_tol_px: float = 1.5, noise: float | None = None,
+    merge_tol_px: float = 1.5, noise: float | None = None, keep_clear: bool = False,
 ) -> DiagramFit:
     """Virtual gates, addition voltages, mutual shifts and Cdg from detected lines.
 
@@ -316,6 +316,9 @@ def _fit_once(
     noise : float, optional
         Noise standard deviation of the map (default: :func:`stabtool.fit.contrast.map_noise`
         of ``data``); :func:`fit_diagram` computes it once for all passes.
+    keep_clear : bool
+        Keep lines whose step is clear on its own though weak beside the
+        family's strong ones (:func:`stabtool.fit.contrast.line_contrast`).
 
     Returns
     -------
@@ -360,7 +363,8 @@ def _fit_once(
         noise_map = map_noise(z) if noise is None else float(noise)
         kept = []
         for which, (used, lines) in enumerate(((used1, lines1), (used2, lines2))):
-            con = line_contrast(z, xa, ya, [lines[i] for i in used], which=which, noise=noise_map)
+            con = line_contrast(z, xa, ya, [lines[i] for i in used], which=which, noise=noise_map,
+                                keep_clear=keep_clear)
             kept.append(used[con.keep] if con.keep.sum() >= 2 else used)
         n_drop1 += len(used1) - len(kept[0])
         n_drop2 += len(used2) - len(kept[1])
@@ -631,9 +635,31 @@ def fit_diagram(
     virtual coordinates are fitted by the lattice model; the covariance of
     ``(M12, M21, ΔV1, δ1, ΔV2, δ2)`` includes ``∂V'_1/∂M12 = y`` and
     ``∂V'_2/∂M21 = x`` and is propagated to ``Cdg`` and ``α11/α22``.
+
+    When no pass gives a cell, the passes are repeated keeping the lines
+    whose step is clear on its own though weak beside the family's strong
+    ones (``keep_clear`` of :func:`stabtool.fit.contrast.line_contrast`: a
+    sensor whose sensitivity varies over the map), and their result is used
+    when it has a cell.
     """
     noise = map_noise(np.asarray(data.values, float)) if data is not None else None
-    first = _fit_once(detection, data=data, relocate=relocate, err_floor_px=err_floor_px, noise=noise)
+    fit = _fit_passes(detection, data=data, relocate=relocate, err_floor_px=err_floor_px, noise=noise)
+    if fit.ok or data is None:
+        return fit
+    clear = _fit_passes(detection, data=data, relocate=relocate, err_floor_px=err_floor_px, noise=noise,
+                        keep_clear=True)
+    if not clear.ok:
+        return fit
+    return replace(clear, quality=clear.quality.with_warning(
+        "lines with clear steps that are weak beside their family's strongest were kept to find the charge "
+        "cell (the sensor's sensitivity varies over the map)", doubtful=False))
+
+
+def _fit_passes(detection: LineDetection, *, data: Any, relocate: bool, err_floor_px: float,
+                noise: float | None, keep_clear: bool = False) -> DiagramFit:
+    """The passes of :func:`fit_diagram` (``keep_clear`` in every one), the best one chosen."""
+    first = _fit_once(detection, data=data, relocate=relocate, err_floor_px=err_floor_px, noise=noise,
+                      keep_clear=keep_clear)
     if data is None or not relocate:
         return first
     # piecewise pass: segments cut where the other family's lines cross them (staircases merged by the
@@ -646,7 +672,7 @@ def fit_diagram(
         if stair or not first.ok:
             # the piecewise pass only where it is needed: a staircase, or a failed first pass
             piece = _fit_once(pieces, data=data, relocate=True, err_floor_px=err_floor_px,
-                              merge_tol_px=PIECE_MERGE_PX, noise=noise)
+                              merge_tol_px=PIECE_MERGE_PX, noise=noise, keep_clear=keep_clear)
     cands = [f for f in ((first if not stair else None), piece) if f is not None and f.ok]
     if not cands:
         if stair and first.ok:
@@ -662,7 +688,7 @@ def fit_diagram(
             fams[name] = LineFamily(name=name, slope=float("nan"), slope_stderr=float("nan"),  # type: ignore[arg-type]
                                     lines=pred[name])
         second = _fit_once(replace(detection, families=fams), data=data, relocate=True, err_floor_px=err_floor_px,
-                           merge_tol_px=PIECE_MERGE_PX, noise=noise)
+                           merge_tol_px=PIECE_MERGE_PX, noise=noise, keep_clear=keep_clear)
         # the predicted lines must have been measured on the map: otherwise their slopes are the
         # lattice's own, identical, and the pass would state a virtual-gate error of 1e-17 (bench
         # case 80, si-sige SNR 3 with 1/f rows, seen with an intermediate detector)
