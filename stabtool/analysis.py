@@ -1029,6 +1029,26 @@ def _row_corrected_map(da: xr.DataArray, detection: LineDetection | None) -> xr.
     return da.copy(data=np.asarray(proc, float))
 
 
+def _jumps_as_lattice(da: xr.DataArray, detection: LineDetection) -> tuple[LineDetection, xr.DataArray, DiagramFit] | None:
+    """Detection, map and fit of ``da`` with no charge jumps, when that gives a consistent charge cell.
+
+    Called when the detector found charge jumps and the lines then gave no
+    cell. A dot2 line nearly parallel to the rows moves every dot1 line by
+    the mutual shift δ1 within a few rows, which the jump test cannot tell
+    from a shift of the whole pattern; without the jumps' rows left out the
+    lines may fit one lattice (``ok`` and ``labels_consistent``), which a
+    real jump would spoil. None otherwise.
+    """
+    from .lines import detect_lines
+
+    again = detect_lines(da, detect_jumps=False)
+    fit_map = _row_corrected_map(da, again)
+    fit = fit_diagram(again, data=fit_map)
+    if not (fit.ok and fit.labels_consistent):
+        return None
+    return again, fit_map, fit
+
+
 def _default_detector(da: xr.DataArray) -> LineDetection:
     from . import lines as _lines
 
@@ -1175,11 +1195,21 @@ class Analyzer:
         timings["detect"] = time.perf_counter() - t0
         t1 = time.perf_counter()
         fit_map = _row_corrected_map(da, detection)
+        fit = fit_diagram(detection, data=fit_map) if detection is not None else None
+        if fit is not None and not fit.ok and detection is not None and detection.jumps and self.detector is None:
+            # the pattern shifts the detector took for charge jumps may be the honeycomb's own: dot1
+            # lines step by δ1 where they cross a dot2 line that runs along the rows
+            lattice = _jumps_as_lattice(da, detection)
+            if lattice is not None:
+                rows = ", ".join(str(j.row) for j in detection.jumps)
+                detection, fit_map, fit = lattice
+                q = q.with_warning(f"the pattern shifts at row(s) {rows} are the charge lattice's (dot1 lines "
+                                   "stepping where dot2 lines run along the rows), not charge jumps", doubtful=False)
         if fit_map is not da:
             q = q.with_warning("row offsets (slow-axis noise) beyond the white noise: lines measured on the "
                                "row-corrected map", doubtful=False)
         if detection is not None:
-            fit = fit_diagram(detection, data=fit_map)
+            assert fit is not None
             # the lines are re-checked and re-measured on the map by the fitter: the
             # detector's own doubts are kept as notes when the fit succeeded
             for w in detection.quality.warnings:
