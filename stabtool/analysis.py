@@ -27,7 +27,7 @@ import xarray as xr
 
 from .errors import InputError, PartialSweepWarning, QualityWarning
 from .fit.charge_states import MIN_ABSOLUTE_CONFIDENCE, ChargeStates, label_charge_states
-from .fit.model import MAX_VG_ERROR, DiagramFit, fit_diagram
+from .fit.model import MAX_VG_ERROR, VG_FROM_SLOPES_NOTE, DiagramFit, fit_diagram
 from .lines.result import LineDetection
 from .mapdata import map_axes, validate_map, without_infinities, x_gate, y_gate
 from .physics import FERMI_FWHM_FACTOR, lever_arm_from_width
@@ -1436,7 +1436,7 @@ class Analyzer:
                     for w in transport.pair_quality.warnings if transport.vg_matrix is not None else ():
                         q = q.with_warning(f"virtual gates not reported: {w}", doubtful=False)
                     for w in lines_q.warnings:
-                        if w not in own:
+                        if w not in own and w != VG_FROM_SLOPES_NOTE:  # (those virtual gates were dropped)
                             q = q.with_warning(f"lines: {w}", doubtful=False)
                 else:  # the line fit's failures stand; the spots say why they are no lattice either
                     why = transport.quality.doubts_first()

@@ -10,7 +10,12 @@ import warnings
 import numpy as np
 import pytest
 
-from stabtool.fit.contrast import MIN_STEP_FRACTION, MIN_STEP_SIGMAS, MIN_STEP_SIGMAS_ALONE, line_contrast
+from stabtool.fit.contrast import (
+    MIN_STEP_FRACTION,
+    MIN_STEP_SIGMAS,
+    MIN_STEP_SIGMAS_ALONE,
+    line_contrast,
+)
 from stabtool.lines.result import TransitionLine
 
 NY, NX = 120, 160

@@ -315,5 +315,6 @@ def test_analyze_reads_cdg_off_a_transport_map(bias_mV):
     # triangles' edges that the failed line fit saw (at 0.3 mV those give M12 ≈ 0.13 for 0.31)
     if res.transport.vg_matrix is None or not res.transport.pair_quality.ok:
         assert j["virtual_gate_matrix"] == [[None, None], [None, None]]
+        assert not any("line slopes" in w for w in j["quality"]["warnings"])
     else:
         np.testing.assert_allclose(j["virtual_gate_matrix"], sm.truth.to_json()["virtual_gate_matrix"], atol=0.02)

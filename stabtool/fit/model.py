@@ -286,6 +286,8 @@ def _empty_fit(reason: str, slopes: dict, slope_errors: dict, lines1, lines2, in
 #: understated error takes over the fit), so 0.05 px. The floor still covers
 #: systematics other than quantisation (DEVELOPERS.md, "Lattice position floor").
 ERR_FLOOR_PX = 0.05
+#: Note of a fit without a cell whose virtual-gate matrix comes from the two families' slopes.
+VG_FROM_SLOPES_NOTE = "virtual-gate matrix from the line slopes alone (no charge cell checks them)"
 
 
 def _fit_once(
@@ -440,8 +442,7 @@ def _fit_once(
         vg_err = np.array([[0.0, inv1_err], [s2_err, 0.0]])
         vg = (m, vg_err) if np.all(np.isfinite(vg_err)) else None
         if vg is not None:
-            q = q.with_warning("virtual-gate matrix from the line slopes alone (no charge cell checks them)",
-                               doubtful=False)
+            q = q.with_warning(VG_FROM_SLOPES_NOTE, doubtful=False)
         return _empty_fit(lat.reason, slopes, slope_errors, lines1, lines2, inter, q, vg=vg)
     p = np.array([m12, m21, lat.addition_V[0], lat.mutual_V[0], lat.addition_V[1], lat.mutual_V[1]])
     cov = np.zeros((6, 6))
