@@ -231,3 +231,19 @@ def test_without_a_cell_the_slopes_still_give_the_virtual_gates():
     assert np.all(np.isfinite(err)) and np.all(err > 0)
     assert np.all(np.abs(fit.vg_matrix - t.m)[[0, 1], [1, 0]] < 4 * err)
     assert np.all(np.isnan(fit.cdg_aF)) and np.all(np.isnan(fit.addition_V))
+
+
+def test_without_a_cell_a_doubtful_detection_gives_no_virtual_gates():
+    # the same single-dot1-line detection marked doubtful by the detector: slopes from a doubtful
+    # detection are no basis for M without a cell to check them (bench maps at SNR 1–10 with such
+    # detections had slopes-only M 0.004–4 off), so M stays NaN with the slopes still reported
+    t = truth_from_capacitances(**WORKED)
+    det = honeycomb_detection(t, x=AXIS, y=AXIS, offset_V=(0.01, 0.012), slope_noise=0.005, pos_noise_V=1e-4, rng=4)
+    one = det.families["dot1"]
+    longest = max(one.lines, key=lambda ln: ln.length_V)
+    fams = dict(det.families, dot1=replace(one, slope=float("nan"), slope_stderr=float("nan"), lines=(longest,)))
+    doubtful = replace(det, families=fams, quality=det.quality.with_warning("low signal-to-noise ratio"))
+    assert not doubtful.quality.ok
+    fit = fit_diagram(doubtful)
+    assert not fit.ok and np.all(np.isnan(fit.vg_matrix))
+    assert np.isfinite(fit.slopes["dot1"]) and np.isfinite(fit.slopes["dot2"])
