@@ -213,16 +213,22 @@ def test_a_pass_whose_lines_could_not_be_measured_does_not_win_on_a_zero_error(m
     assert np.nanmin(fit.vg_matrix_error[[0, 1], [1, 0]]) > 1e-4  # the detector's slope errors, not 0
 
 
-def test_without_a_cell_the_slopes_still_give_the_virtual_gates():
-    # one dot1 line only: no charge cell (ΔV1 needs two dot1 lines of a band), but the slopes
-    # fix M = [[1, −1/s1], [−s2, 1]] (conventions; van der Wiel et al. 2003): it is reported
-    # with the slopes' errors, the fit stays doubtful and everything the cell gives stays NaN
+def _single_dot1_line():
+    """The worked example's truth and its honeycomb detection with the longest dot1 line only."""
     t = truth_from_capacitances(**WORKED)
     det = honeycomb_detection(t, x=AXIS, y=AXIS, offset_V=(0.01, 0.012), slope_noise=0.005, pos_noise_V=1e-4, rng=4)
     one = det.families["dot1"]
     longest = max(one.lines, key=lambda ln: ln.length_V)
     fams = dict(det.families, dot1=replace(one, slope=float("nan"), slope_stderr=float("nan"), lines=(longest,)))
-    fit = fit_diagram(replace(det, families=fams))
+    return t, replace(det, families=fams)
+
+
+def test_without_a_cell_the_slopes_still_give_the_virtual_gates():
+    # one dot1 line only: no charge cell (ΔV1 needs two dot1 lines of a band), but the slopes
+    # fix M = [[1, −1/s1], [−s2, 1]] (conventions; van der Wiel et al. 2003): it is reported
+    # with the slopes' errors, the fit stays doubtful and everything the cell gives stays NaN
+    t, det = _single_dot1_line()
+    fit = fit_diagram(det)
     assert not fit.ok
     assert any("too few lines" in w for w in fit.quality.warnings)
     s1, s2 = fit.slopes["dot1"], fit.slopes["dot2"]
@@ -237,12 +243,8 @@ def test_without_a_cell_a_doubtful_detection_gives_no_virtual_gates():
     # the same single-dot1-line detection marked doubtful by the detector: slopes from a doubtful
     # detection are no basis for M without a cell to check them (bench maps at SNR 1–10 with such
     # detections had slopes-only M 0.004–4 off), so M stays NaN with the slopes still reported
-    t = truth_from_capacitances(**WORKED)
-    det = honeycomb_detection(t, x=AXIS, y=AXIS, offset_V=(0.01, 0.012), slope_noise=0.005, pos_noise_V=1e-4, rng=4)
-    one = det.families["dot1"]
-    longest = max(one.lines, key=lambda ln: ln.length_V)
-    fams = dict(det.families, dot1=replace(one, slope=float("nan"), slope_stderr=float("nan"), lines=(longest,)))
-    doubtful = replace(det, families=fams, quality=det.quality.with_warning("low signal-to-noise ratio"))
+    _, det = _single_dot1_line()
+    doubtful = replace(det, quality=det.quality.with_warning("low signal-to-noise ratio"))
     assert not doubtful.quality.ok
     fit = fit_diagram(doubtful)
     assert not fit.ok and np.all(np.isnan(fit.vg_matrix))
