@@ -647,10 +647,18 @@ def fit_diagram(
     when it has a cell.
     """
     noise = map_noise(np.asarray(data.values, float)) if data is not None else None
-    fit = _fit_passes(detection, data=data, relocate=relocate, err_floor_px=err_floor_px, noise=noise)
+    # piecewise detection: segments cut where the other family's lines cross them (staircases merged by
+    # the detector across charge bands when δ is a few pixels), and the families that are significantly
+    # staircases (they rule out the pass on the detector's segments); the same for every set of passes
+    cuts = None
+    if data is not None and relocate:
+        pieces, splits = _piecewise_detection(detection)
+        if splits is not None:
+            cuts = (pieces, _staircases(data, detection, splits, noise=noise))
+    fit = _fit_passes(detection, cuts, data=data, relocate=relocate, err_floor_px=err_floor_px, noise=noise)
     if fit.ok or data is None:
         return fit
-    clear = _fit_passes(detection, data=data, relocate=relocate, err_floor_px=err_floor_px, noise=noise,
+    clear = _fit_passes(detection, cuts, data=data, relocate=relocate, err_floor_px=err_floor_px, noise=noise,
                         keep_clear=True)
     if not clear.ok:
         return fit
@@ -659,20 +667,21 @@ def fit_diagram(
         "cell (the sensor's sensitivity varies over the map)", doubtful=False))
 
 
-def _fit_passes(detection: LineDetection, *, data: Any, relocate: bool, err_floor_px: float,
-                noise: float | None, keep_clear: bool = False) -> DiagramFit:
-    """The passes of :func:`fit_diagram` (``keep_clear`` in every one), the best one chosen."""
+def _fit_passes(detection: LineDetection, cuts: tuple[LineDetection, list[str]] | None, *, data: Any,
+                relocate: bool, err_floor_px: float, noise: float | None, keep_clear: bool = False) -> DiagramFit:
+    """The passes of :func:`fit_diagram` (``keep_clear`` in every one), the best one chosen.
+
+    ``cuts``: the piecewise detection and the staircase families (None when nothing is cut).
+    """
     first = _fit_once(detection, data=data, relocate=relocate, err_floor_px=err_floor_px, noise=noise,
                       keep_clear=keep_clear)
     if data is None or not relocate:
         return first
-    # piecewise pass: segments cut where the other family's lines cross them (staircases merged by the
-    # detector across charge bands when δ is a few pixels); a significant staircase rules out the first pass
-    pieces, splits = _piecewise_detection(detection)
+    # piecewise pass; a significant staircase rules out the first pass
     piece: DiagramFit | None = None
     stair: list[str] = []
-    if splits is not None:
-        stair = _staircases(data, detection, splits, noise=noise)
+    if cuts is not None:
+        pieces, stair = cuts
         if stair or not first.ok:
             # the piecewise pass only where it is needed: a staircase, or a failed first pass
             piece = _fit_once(pieces, data=data, relocate=True, err_floor_px=err_floor_px,

@@ -361,6 +361,13 @@ def _noise(z: np.ndarray) -> float:
     return float(1.4826 * np.median(np.abs(d - np.median(d))) / np.sqrt(2)) if d.size else float("nan")
 
 
+def _cluster_runs(clusters: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The points sorted by cluster (stable) and where each cluster's run starts in that order:
+    ``np.add.reduceat(values[order], starts)`` sums ``values`` over every cluster (ascending labels)."""
+    order = np.argsort(clusters, kind="stable")
+    return order, np.r_[0, np.flatnonzero(np.diff(clusters[order])) + 1]
+
+
 def clustered_covariance(jac: np.ndarray, res: np.ndarray, clusters: np.ndarray, *, dof: int) -> np.ndarray:
     """Cluster-robust (sandwich) covariance of least-squares parameters, never below the plain one.
 
@@ -395,10 +402,8 @@ def clustered_covariance(jac: np.ndarray, res: np.ndarray, clusters: np.ndarray,
         hinv = np.linalg.pinv(jac.T @ jac)
     except np.linalg.LinAlgError:
         return np.full((k, k), np.nan)
-    score = jac * res[:, None]
-    order = np.argsort(clusters, kind="stable")
-    starts = np.r_[0, np.flatnonzero(np.diff(clusters[order])) + 1]
-    sums = np.add.reduceat(score[order], starts, axis=0)
+    order, starts = _cluster_runs(clusters)
+    sums = np.add.reduceat((jac * res[:, None])[order], starts, axis=0)
     g = sums.shape[0]
     n = res.size
     meat = sums.T @ sums * (g / max(g - 1, 1)) * ((n - 1) / max(dof, 1))
@@ -1234,7 +1239,8 @@ def _tunnel_score(prob_: _Problem, theta: np.ndarray, coef: np.ndarray, states: 
     js = js - a @ np.linalg.solve(ata, np.asarray(a.T @ js))
     js = js - jp @ np.linalg.lstsq(jp, js, rcond=None)[0]
     contrib = js * res
-    per_row = np.bincount(np.unique(prob_.rows, return_inverse=True)[1], weights=contrib)
+    order, starts = _cluster_runs(prob_.rows)
+    per_row = np.add.reduceat(contrib[order], starts)
     den = float(np.sqrt(np.sum(per_row**2)))
     return float(contrib.sum() / den) if den > 0 else float("nan")
 
