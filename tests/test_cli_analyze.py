@@ -116,3 +116,21 @@ def test_all_infinite_map_is_bad_input(tmp_path, capsys):
     assert main(["analyze", str(path)]) == 2
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and "dead.nc" in err and "no finite values" in err
+
+
+def test_missing_rows_give_only_the_missing_points_note_and_the_verdict_on_stderr(map_file, tmp_path):
+    # a sweep that lost 15 rows in the middle (a paused instrument): numpy's "All-NaN slice"
+    # note from the row medians of the pickup search once reached the user as a warning
+    import numpy as np
+    import xarray as xr
+
+    with xr.open_dataset(map_file, engine="h5netcdf") as ds:
+        da = ds[next(iter(ds.data_vars))].load()
+    v = np.asarray(da.values, float).copy()
+    v[40:55] = np.nan
+    path = _saved(tmp_path, "paused.nc", v, x=da[da.dims[1]].values, y=da[da.dims[0]].values)
+    code, out, err = _run_cli("analyze", path, "--json", "--no-refine")
+    assert code == 0, err
+    assert json.loads(out)["slopes"]["dot1"] is not None
+    assert "All-NaN" not in err and "Traceback" not in err
+    assert all(("missing" in ln) or ("analysis doubtful" in ln) for ln in err.splitlines() if ln), err

@@ -26,6 +26,7 @@ plane wave removes :data:`MIN_EXPLAINED` of the power within ± 2 bins of it
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass
 
 import numpy as np
@@ -154,7 +155,8 @@ def row_differences(v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """x-differences (0 where a point is missing, each row's median removed) and where they exist."""
     d = np.diff(v, axis=1)
     ok = np.isfinite(d)
-    with np.errstate(all="ignore"):
+    with np.errstate(all="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # a row without any difference (all NaN): median NaN → 0
         med = np.nanmedian(np.where(ok, d, np.nan), axis=1, keepdims=True) if not ok.all() else np.median(
             d, axis=1, keepdims=True)
     d = np.where(ok, d - np.nan_to_num(med), 0.0)
