@@ -113,6 +113,30 @@ def test_cli_writes_csv_json_png_and_reports_the_jump(tmp_path, capsys):
     assert (tmp_path / "out" / "drift.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
 
 
+def test_cli_leaves_a_survey_of_another_window_out_of_the_repeats(tmp_path, capsys):
+    # a night's folder holds an earlier, wider survey beside the repeats: taken as the reference
+    # it made every repeat "overlap less than half of the first window" and the verdict doubtful
+    # (common practice, no source: drift is measured between sweeps of the same window)
+    maps, truth, (sx, _) = night(n=6, seed=300)
+    folder = tmp_path / "night"
+    folder.mkdir()
+    for k, da in enumerate(maps):
+        save_map(da, folder / f"sweep_{k:02d}.nc")
+    (x0, x1), (y0, y1) = (float(maps[0]["PA"].min()), float(maps[0]["PA"].max())), \
+        (float(maps[0]["PB"].min()), float(maps[0]["PB"].max()))
+    survey = sweep(window=((x0 - (x1 - x0), x1 + (x1 - x0)), (y0 - (y1 - y0), y1 + (y1 - y0))), seed=9)
+    survey.attrs["time"] = "2026-11-30T21:30:00"
+    save_map(survey, folder / "survey.nc")
+    code = main(["drift", str(folder), "--out", str(tmp_path / "out")])
+    out = capsys.readouterr().out
+    assert code == 0
+    assert "6 sweeps of PA/PB" in out and "survey.nc" in out.splitlines()[-2]
+    data = json.loads((tmp_path / "out" / "drift.json").read_text())
+    assert data["quality"]["ok"] and [j["index"] for j in data["jumps"]] == [JUMP_AT]
+    assert any("survey.nc" in w and "left out" in w for w in data["quality"]["warnings"])
+    assert data["sweeps"][-1]["offset_x_mV"] == pytest.approx(1e3 * (truth[-1, 0] - truth[0, 0]), abs=1e3 * 0.25 * sx)
+
+
 def test_cli_names_the_faulty_input(tmp_path, capsys):
     code = main(["drift", str(tmp_path / "nothing_here"), "--out", str(tmp_path / "out")])
     assert code == 2

@@ -25,7 +25,7 @@ import numpy as np
 
 from .store import CAUTION, BatchRecord, atomic_write_text
 
-__all__ = ["KEY_QUANTITIES", "write_summary", "drift_for_batch", "find_repeated_series"]
+__all__ = ["KEY_QUANTITIES", "write_summary", "drift_for_batch", "find_repeated_series", "series_of_files"]
 
 #: (column of the flat table, label, scale to display unit, unit) of the trend plots and table.
 KEY_QUANTITIES: tuple[tuple[str, str, float, str], ...] = (
@@ -205,22 +205,40 @@ def find_repeated_series(
         if len(group) < min_sweeps:
             continue
         heads = [h for h in (_header_of(r) for r in group) if h is not None]
-        if heads and all(_parse_time(h["time"]) is not None for h in heads):
-            earliest = datetime.min.replace(tzinfo=timezone.utc)
-            heads.sort(key=lambda h: _parse_time(h["time"]) or earliest)  # first = reference
-        clusters: list[list[dict]] = []
-        for h in heads:
-            for c in clusters:
-                first = c[0]
-                if (first["gates"] == h["gates"] and first["device"] == h["device"]
-                        and first["shape"] == h["shape"]
-                        and _overlap(first["window"], h["window"]) >= min_overlap):
-                    c.append(h)
-                    break
-            else:
-                clusters.append([h])
-        series.extend([[h["path"] for h in c] for c in clusters if len(c) >= min_sweeps])
+        series.extend(_series_of_headers(heads, min_sweeps=min_sweeps, min_overlap=min_overlap))
     return series
+
+
+def series_of_files(paths: Sequence[str], *, min_sweeps: int = 2,
+                    min_overlap: float = 0.7) -> list[list[str]] | None:
+    """Series of repeated sweeps among map files (the rule of :func:`find_repeated_series`).
+
+    Returns None when a file cannot be read (its error is for the caller to report).
+    """
+    heads = [_map_header(str(p)) for p in paths]
+    if any(h is None for h in heads):
+        return None
+    return _series_of_headers([h for h in heads if h is not None], min_sweeps=min_sweeps, min_overlap=min_overlap)
+
+
+def _series_of_headers(heads: list[dict], *, min_sweeps: int, min_overlap: float) -> list[list[str]]:
+    """Cluster map headers into series: the earliest map of each series (by time when every map
+    has one, else as given) is its reference window."""
+    if heads and all(_parse_time(h["time"]) is not None for h in heads):
+        earliest = datetime.min.replace(tzinfo=timezone.utc)
+        heads = sorted(heads, key=lambda h: _parse_time(h["time"]) or earliest)  # first = reference
+    clusters: list[list[dict]] = []
+    for h in heads:
+        for c in clusters:
+            first = c[0]
+            if (first["gates"] == h["gates"] and first["device"] == h["device"]
+                    and first["shape"] == h["shape"]
+                    and _overlap(first["window"], h["window"]) >= min_overlap):
+                c.append(h)
+                break
+        else:
+            clusters.append([h])
+    return [[h["path"] for h in c] for c in clusters if len(c) >= min_sweeps]
 
 
 #: Series of at least this many sweeps are registered on the batch's worker pool.

@@ -1,6 +1,8 @@
 """'stabtool drift INPUTS... --out DIR': drift and jumps across repeated sweeps.
 
-INPUTS are repeated sweeps of the same two gates (files, folders or globs).
+INPUTS are repeated sweeps of the same two gates (files, folders or globs);
+maps of another window, shape or gate pair in the same folder (a survey, a
+zoom) are left out and named, the largest series of repeats is measured.
 They are put in time order (the sweeps' time attribute, else the file
 names), each is registered to the first by phase correlation in volts, and
 the pattern offset versus time is written to DIR as 'drift.csv',
@@ -14,6 +16,7 @@ from __future__ import annotations
 
 import argparse
 import json
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
@@ -30,18 +33,44 @@ def run(args: argparse.Namespace) -> int:
         from ..errors import InputError
 
         raise InputError(args.out, "--out must be a folder, but a file of that name exists")
-    paths = discover_inputs(args.inputs, exclude=[out])
-    res = measure_drift([str(p) for p in paths], upsample=args.upsample,
-                        jump_threshold=args.jump_threshold)
+    paths = [str(p) for p in discover_inputs(args.inputs, exclude=[out])]
+    paths, left_out = _one_series(paths)
+    res = measure_drift(paths, upsample=args.upsample, jump_threshold=args.jump_threshold)
+    if left_out:
+        names = ", ".join(Path(p).name for p in left_out)
+        res = replace(res, quality=res.quality.with_warning(
+            f"{len(left_out)} map(s) of another window, shape or gate pair left out (not repeats of this "
+            f"series): {names}", doubtful=False))
     written = res.write_outputs(out)
     if args.json:
         print(json.dumps(res.to_json(), indent=1))
     elif not args.quiet:
         print(f"{len(res.files)} sweeps of {res.x_gate}/{res.y_gate}: {res.verdict()}")
+        if left_out:
+            print(f"left out (another window, shape or gate pair): {', '.join(Path(p).name for p in left_out)}")
         last_x, last_y = 1e3 * res.offset_x_V[-1], 1e3 * res.offset_y_V[-1]
         print(f"last sweep offset: ({last_x:+.3f}, {last_y:+.3f}) mV; "
               f"written {', '.join(str(p) for p in written.values())}")
     return 0
+
+
+def _one_series(paths: list[str]) -> tuple[list[str], list[str]]:
+    """The largest series of repeated sweeps among ``paths`` and the maps left out of it.
+
+    A night's folder often holds a survey and a zoom beside the repeats; registering
+    those to the repeats gives offsets of whole cells, not drift. The series are found
+    as the batch finds them (same gates, shape and device, windows overlapping by 70 %).
+    All maps are kept when a file cannot be read (the drift reports it) or when no two
+    maps form a series.
+    """
+    from ..batch.summary import series_of_files
+
+    series = series_of_files(paths)
+    if not series:
+        return paths, []
+    best = max(series, key=len)  # (ties: the earliest series)
+    keep = set(best)
+    return [p for p in paths if p in keep], [p for p in paths if p not in keep]
 
 
 def register(subparsers: Any) -> None:
