@@ -1446,8 +1446,12 @@ class Analyzer:
                 timings["transport_lattice"] = time.perf_counter() - t5
         timings["total"] = time.perf_counter() - t0
         if not q.ok:
+            # the reasons only (the notes are in the result): at most three
+            ws, flags = q.doubts_first_flagged()
+            reasons = [w for w, f in zip(ws, flags) if f] if flags is not None else list(ws)
             warnings.warn(
-                f"{da.attrs.get('source', 'map')}: analysis doubtful: {'; '.join(q.doubts_first()[:3])}",
+                f"{da.attrs.get('source', 'map')}: analysis doubtful: {'; '.join((reasons or list(ws))[:3])}"
+                + (f" (and {len(reasons) - 3} more)" if len(reasons) > 3 else ""),
                 QualityWarning, stacklevel=2,
             )
         return AnalysisResult(data=measured, detection=detection, diagram=fit, scale=scale, charge_states=states,

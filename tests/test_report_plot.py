@@ -254,3 +254,36 @@ def test_doubts_box_marks_doubts_with_bang_and_notes_with_a_dot():
     assert text.splitlines() == ["! the doubt", "· a note", "· another note"]
     # without known flags every warning is shown as a doubt
     assert _doubt_lines(["x", "y"]).splitlines() == ["! x", "! y"]
+
+
+@pytest.mark.parametrize("verdict_ok", [False, True])
+def test_the_warnings_sit_under_the_map_not_on_it(result, verdict_ok):
+    """Doubts (red) or an ok map's notes (grey) are drawn below the axes: no line or label of the
+    map is hidden under them (they once covered the map's lower left corner)."""
+    from stabtool.quality import Quality
+    from stabtool.report.plot import _Frame
+
+    q = Quality().with_warning("a note", doubtful=False)
+    q = q if verdict_ok else q.with_warning("the doubt")
+    frame = _Frame(PLOT_DPI)
+    frame.draw(replace(result, quality=q), max_labels=40)
+    frame.fig.canvas.draw()
+    renderer = frame.fig.canvas.get_renderer()
+    boxes = [t for t in frame.ax.texts if t.get_visible() and t.get_text().lstrip().startswith(("!", "·"))]
+    assert len(boxes) == 1
+    text = boxes[0].get_text()
+    assert text.splitlines() == (["· a note"] if verdict_ok else ["! the doubt", "· a note"])
+    ext = boxes[0].get_bbox_patch().get_window_extent(renderer)
+    assert ext.y1 < frame.ax.bbox.y0 and ext.y0 >= 0  # below the map, inside the figure
+    assert ext.x0 >= frame.ax.bbox.x0 - 5 and ext.x1 <= frame.fig.bbox.x1
+
+
+def test_the_text_summary_lists_the_doubts_first_and_marks_them(result):
+    from stabtool.quality import Quality
+    from stabtool.report.text import summary_text
+
+    res = result
+    q = Quality().with_warning("a note", doubtful=False).with_warning("the doubt")
+    text = summary_text(replace(res, quality=q))
+    tail = text.splitlines()[-3:]
+    assert tail[0].startswith("quality: DOUBTFUL") and tail[1:] == ["  ! the doubt", "  · a note"]

@@ -23,8 +23,8 @@ Where the time of a per-map PNG goes, and what the batch path does about it:
   is; the colour bar is a fixed ramp whose axis follows the colour limits
   (:class:`_GreyScale`). matplotlib's resampler and colour bar rebuild took
   ~16 and ~12 ms per map.
-* Charge-state labels avoid the key-number box, the doubts box and the legend
-  (:func:`_label_anchors`).
+* Charge-state labels avoid the key-number box and the legend
+  (:func:`_label_anchors`); the warnings sit in a band under the map, off it.
 * Encoding: RGB PNG straight from the canvas buffer by Pillow at zlib level 1
   (:func:`_encode_png`).
 """
@@ -45,8 +45,15 @@ __all__ = ["FAMILY_COLOURS", "plot_result", "render_png", "save_plot"]
 
 #: Colours of the line families (colour-blind-safe Okabe–Ito palette).
 FAMILY_COLOURS = {"dot1": "#E69F00", "dot2": "#56B4E9", "interdot": "#CC79A7"}
+#: Characters per line of the warnings box (6.5 pt text across the map's width).
+WARNING_LINE_CHARS = 150
 #: Figure size (inches) and resolution of the per-map plots.
-FIGSIZE_IN = (9.5, 7.0)
+FIGSIZE_IN = (9.5, 8.0)
+#: Height (inches) of the band under the map that holds the warnings (doubts of a doubtful map,
+#: notes of an ok one): kept off the map, so no line or label is hidden under them.
+WARNING_BAND_IN = 1.0
+#: Top of the warnings box, inches below the map's lower edge (under the tick and axis labels).
+WARNING_BOX_DROP_IN = 0.55
 PLOT_DPI = 100
 #: zlib level of the PNGs (1: fast, files about 20 % larger than at the default 6).
 PNG_COMPRESS_LEVEL = 1
@@ -272,11 +279,17 @@ def _overlays(res: Any, ax: Any, *, n_pixels: int, max_labels: int, texts: _Text
     boxes = [_text(ax, texts, "key", 0.01, 0.99, _key_numbers(res), transform=ax.transAxes, va="top", ha="left",
                    zorder=4, fontsize=7.5, family="monospace",
                    bbox={"boxstyle": "round", "fc": "white", "ec": "0.5", "alpha": 0.85})]
-    if not res.quality.ok and res.quality.warnings:
+    if res.quality.warnings:
+        # under the map (not on it): the doubts of a doubtful map in red, the notes of an ok one in grey
+        from matplotlib.transforms import ScaledTranslation
+
         warnings, doubtful = res.quality.doubts_first_flagged()
-        boxes.append(_text(ax, texts, "doubts", 0.01, 0.01, _doubt_lines(warnings, doubtful=doubtful),
-                           transform=ax.transAxes, va="bottom", ha="left", zorder=4, fontsize=6.5, color="#b00000",
-                           bbox={"boxstyle": "round", "fc": "white", "ec": "#b00000", "alpha": 0.85}))
+        colour = "#b00000" if not res.quality.ok else "0.3"
+        below = ax.transAxes + ScaledTranslation(0.0, -WARNING_BOX_DROP_IN, ax.figure.dpi_scale_trans)
+        _text(ax, texts, "doubts" if not res.quality.ok else "notes", 0.0, 0.0,
+              _doubt_lines(warnings, doubtful=doubtful, width=WARNING_LINE_CHARS), transform=below, va="top",
+              ha="left", zorder=4, fontsize=6.5, color=colour, clip_on=False,
+              bbox={"boxstyle": "round", "fc": "white", "ec": colour, "alpha": 0.85})
     if cs is not None:
         regions = sorted(cs.regions, key=lambda r: -r["pixels"])[:max_labels]
         minpix = 0.002 * n_pixels
@@ -322,7 +335,7 @@ def _label_anchors(ax: Any, shown: list[dict], cs: Any, da: Any, *, boxes: list[
                    fontsize: float, min_pixels: float) -> list[tuple[float, float] | None]:
     """Where to put each charge-state label (mV): its region's centroid, unless a box covers it there.
 
-    A label whose box would overlap the key-number box, the doubts box or the legend moves to
+    A label whose box would overlap a box on the map (the key numbers) or the legend moves to
     the middle of the part of its region that is clear of them (the clear pixel nearest to that
     part's centroid); with fewer than ``min_pixels`` clear pixels it is left out (None).
     The label size is estimated from its character count (no text layout per label).
@@ -475,8 +488,9 @@ def plot_result(res: Any, *, ax: Any = None, max_labels: int = 40) -> Any:
     """Draw ``res`` on a matplotlib Axes (created with pyplot if None); return the Figure.
 
     The map, the line families (segments set aside greyed), the triple
-    points, the charge-state labels and a box with the key numbers; the
-    quality warnings of a doubtful result in red.
+    points, the charge-state labels and a box with the key numbers; under
+    the map the warnings: a doubtful result's in red (doubts first), an ok
+    one's notes in grey.
     """
     if ax is None:
         import matplotlib.pyplot as plt
@@ -498,7 +512,7 @@ def _fixed_layout_figure(dpi: float) -> tuple[Any, Any, Any]:
     _fast_canvas(fig)
     # margins in inches: tick labels + axis label on the left and bottom, title on top,
     # colour bar with its label on the right
-    left, bottom, top, right = 0.80, 0.60, 0.35, 1.15
+    left, bottom, top, right = 0.80, 0.60 + WARNING_BAND_IN, 0.35, 1.15
     cb_gap, cb_w = 0.08, 0.22
     ax = fig.add_axes((left / w, bottom / h, (w - left - right) / w, (h - bottom - top) / h))
     cax = fig.add_axes(((w - right + cb_gap) / w, bottom / h, cb_w / w, (h - bottom - top) / h))

@@ -74,7 +74,10 @@ def summary_text(res: Any) -> str:
     if res.refinement is not None:
         r = res.refinement
         lines.append(f"model fit to the map: residual / noise = {r.residual_ratio:.2f}")
-    lines.append(f"quality: {'ok' if res.quality.ok else 'DOUBTFUL'}")
-    for w in res.quality.warnings:
-        lines.append(f"  - {w}")
+    lines.append(f"quality: {'ok' if res.quality.ok else 'DOUBTFUL'}"
+                 + ("" if res.quality.ok or not res.quality.warnings else " ('!' made it doubtful, '·' notes)"))
+    warnings, doubtful = res.quality.doubts_first_flagged()
+    flags = doubtful if doubtful is not None else [not res.quality.ok] * len(warnings)
+    for w, flag in zip(warnings, flags):
+        lines.append(f"  {'!' if flag else '·'} {w}")
     return "\n".join(lines)
