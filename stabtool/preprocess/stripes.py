@@ -22,6 +22,13 @@ least-squares amplitude within half a bin and accepted only if the fitted
 plane wave removes :data:`MIN_EXPLAINED` of the power within ± 2 bins of it
 (the 1-D rule's test, :mod:`stabtool.preprocess.pickup`). Up to
 :data:`MAX_WAVES` are removed one after the other.
+
+One dot's transitions alone (equally spaced parallel lines across the whole
+map) are a plane wave too, with a peak as high as a tone's; but their
+x-differences are a train of narrow pulses whose second harmonic is about as
+strong as the fundamental, where a tone has none. A peak with such a
+harmonic is the device's own staircase: it and its harmonics are passed over
+(:func:`_is_pulse_train`).
 """
 
 from __future__ import annotations
@@ -46,6 +53,12 @@ MIN_EXPLAINED = 0.99
 MIN_PERIODS_PER_ROW = 4.0
 #: Shortest period along x searched (points).
 MIN_PERIOD = 2.2
+#: A candidate whose second harmonic holds at least this share of its power (x-differences) ...
+HARMONIC_POWER_SHARE = 0.01
+#: ... standing this many times above the local level is a staircase of charge lines, not pickup.
+HARMONIC_PEAK_RATIO = 10.0
+#: Staircases of charge lines (:func:`_is_pulse_train`) passed over in one search for a tone.
+MAX_STAIRCASES = 2
 #: Most plane waves removed.
 MAX_WAVES = 3
 _EULER_GAMMA = 0.5772156649015329
@@ -116,8 +129,19 @@ def find_stripes(values: np.ndarray) -> Stripes | None:
     search = ((fx >= MIN_PERIODS_PER_ROW / v.shape[1]) & (fx <= 1.0 / MIN_PERIOD)
               & (np.abs(fy) >= 1.5 / ny))
     ratio = np.where(search, ratio, 0.0)
-    k = np.unravel_index(int(np.argmax(ratio)), ratio.shape)
-    if not ratio[k] >= PEAK_RATIO:
+    for _ in range(MAX_STAIRCASES + 1):
+        k = np.unravel_index(int(np.argmax(ratio)), ratio.shape)
+        if not ratio[k] >= PEAK_RATIO:
+            return None
+        g0 = float(fx[0, k[1]]), float(fy[k[0], 0])
+        if not _is_pulse_train(power, level, k, *g0, ny, nd):
+            break
+        # a staircase of charge lines: its whole harmonic series is left out of the search
+        for n in range(1, int(0.5 / g0[0]) + 2):
+            b = _harmonic_bin(n, *g0, ny, nd)
+            if b is not None:
+                ratio[[(b[0] + dy) % ny for dy in (-1, 0, 1)], max(b[1] - 1, 0) : b[1] + 2] = 0.0
+    else:
         return None
     # refine to the least-squares amplitude's maximum within ± half a bin (three nested 5 × 5 grids,
     # each a quarter of the one before: a residual error below 0.01 bin leaves < 0.1 % of the power)
@@ -136,6 +160,42 @@ def find_stripes(values: np.ndarray) -> Stripes | None:
     if not _near(after, k) <= (1.0 - MIN_EXPLAINED) * _near(power, k):
         return None
     return wave
+
+
+def _harmonic_bin(n: int, gx: float, gy: float, ny: int, nd: int) -> tuple[int, int] | None:
+    """The rfft2 bin (row, column) of the frequency (n gx, n gy), folded into [0, ½] along x; None off the grid."""
+    fx2, fy2 = (n * gx) % 1.0, n * gy
+    if fx2 > 0.5:  # aliased: the sampled wave is the one at (1 − fx2, −fy2)
+        fx2, fy2 = 1.0 - fx2, -fy2
+    col = int(round(fx2 * nd))
+    if col < 1 or col > nd // 2:
+        return None
+    return int(round(fy2 * ny)) % ny, col
+
+
+def _is_pulse_train(power: np.ndarray, level: np.ndarray, k: tuple, gx: float, gy: float, ny: int,
+                    nd: int) -> bool:
+    """Whether the spectral peak ``k`` at (gx, gy) has a strong second harmonic: a charge staircase.
+
+    Equally spaced parallel charge lines (one dot's transitions across the whole map: a plunger
+    swept against a barrier, or one dot of a pair still empty) make a plane-wave peak as high as a
+    tone's, but their x-differences are a train of narrow pulses, whose even harmonics are about
+    as strong as the fundamental (a step of Fermi width ``w`` and spacing ``P`` damps harmonic ``n``
+    by ``(πqw)/sinh(πqw)``, ``q = 2πn/P``). Pickup from a tone is a sinusoid, and a symmetric
+    periodic pickup (mains) has odd harmonics only. So a second harmonic of at least
+    :data:`HARMONIC_POWER_SHARE` of the fundamental's power, itself a spectral peak
+    (:data:`HARMONIC_PEAK_RATIO` over its local level), marks the pattern as the device's own.
+    """
+    b = _harmonic_bin(2, gx, gy, ny, nd)
+    if b is None:
+        return False
+    rows = [(b[0] + dy) % ny for dy in (-1, 0, 1)]
+    cols = slice(max(b[1] - 1, 0), min(b[1] + 2, power.shape[1]))
+    p2 = power[rows, cols]
+    i = np.unravel_index(int(np.argmax(p2)), p2.shape)
+    peak2 = float(p2[i])
+    lev2 = float(level[rows, cols][i])
+    return bool(peak2 >= HARMONIC_POWER_SHARE * float(power[k]) and peak2 >= HARMONIC_PEAK_RATIO * lev2)
 
 
 def remove_stripes(values: np.ndarray, *, max_waves: int = MAX_WAVES) -> tuple[np.ndarray, list[Stripes]]:
