@@ -138,9 +138,9 @@ def find_stripes(values: np.ndarray) -> Stripes | None:
             break
         # a staircase of charge lines: its whole harmonic series is left out of the search
         for n in range(1, int(0.5 / g0[0]) + 2):
-            b = _harmonic_bin(n, *g0, ny, nd)
-            if b is not None:
-                ratio[[(b[0] + dy) % ny for dy in (-1, 0, 1)], max(b[1] - 1, 0) : b[1] + 2] = 0.0
+            hb = _harmonic_bin(n, *g0, ny, nd)
+            if hb is not None:
+                ratio[[(hb[0] + dy) % ny for dy in (-1, 0, 1)], max(hb[1] - 1, 0) : hb[1] + 2] = 0.0
     else:
         return None
     # refine to the least-squares amplitude's maximum within ± half a bin (three nested 5 × 5 grids,
@@ -167,10 +167,10 @@ def _harmonic_bin(n: int, gx: float, gy: float, ny: int, nd: int) -> tuple[int, 
     fx2, fy2 = (n * gx) % 1.0, n * gy
     if fx2 > 0.5:  # aliased: the sampled wave is the one at (1 − fx2, −fy2)
         fx2, fy2 = 1.0 - fx2, -fy2
-    col = int(round(fx2 * nd))
+    col = round(fx2 * nd)
     if col < 1 or col > nd // 2:
         return None
-    return int(round(fy2 * ny)) % ny, col
+    return round(fy2 * ny) % ny, col
 
 
 def _is_pulse_train(power: np.ndarray, level: np.ndarray, k: tuple, gx: float, gy: float, ny: int,
