@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 from scipy.signal import lfilter
 
-__all__ = ["charge_step", "row_low_pass_filtered", "serpentine_low_pass"]
+__all__ = ["charge_step", "row_low_pass_filtered", "serpentine_low_pass", "staircase"]
 
 
 def serpentine_low_pass(values: np.ndarray, a: float) -> np.ndarray:
@@ -24,6 +24,19 @@ def row_low_pass_filtered(values: np.ndarray, a: float) -> np.ndarray:
     """
     v = np.asarray(values, float)
     return lfilter([1 - a], [1, -a], v, axis=1, zi=a * v[:, :1])[0]
+
+
+def staircase(*, slope=-2.5, spacing_px=22.35, width_px=0.45, shape=(120, 150), step=0.08, noise=0.01, seed=1):
+    """One dot's transitions across the whole map: parallel Fermi steps (the conventions' occupation
+    f = 1/(1 + exp((V − V0)/w))), ``spacing_px`` apart along a row, slope ``slope`` in pixels
+    (row index per column index), on a sensor with its own gate slope and white noise."""
+    rng = np.random.default_rng(seed)
+    i = np.arange(shape[0], dtype=float)[:, None]
+    j = np.arange(shape[1], dtype=float)[None, :]
+    u = (j - i / slope) / spacing_px  # lines j = j0 + i/slope
+    n_lines = int(np.ceil((shape[1] + shape[0] / abs(slope)) / spacing_px)) + 2
+    occ = sum(1.0 / (1.0 + np.exp(-(u - k) * spacing_px / width_px)) for k in range(-n_lines, n_lines + 1))
+    return 1.0 - step * occ + 0.3 * j / shape[1] + rng.normal(0.0, noise, shape)
 
 
 def charge_step(values: np.ndarray) -> float:

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from _readout import charge_step, serpentine_low_pass
+from _readout import charge_step, serpentine_low_pass, staircase
 
 from stabtool.preprocess.pickup import find_pickup, remove_pickup
 from stabtool.simulate import quick_double_dot
@@ -121,3 +121,41 @@ def test_hum_on_a_serpentine_sweep_read_with_a_lag():
     assert shift and "± 0.0" in shift[0]  # measured on the map without the pickup: to a few hundredths
     m, mt = np.array(j["virtual_gate_matrix"]), np.array(sm.truth.to_json()["virtual_gate_matrix"])
     assert np.max(np.abs(m - mt)) <= 0.005
+
+
+@pytest.mark.parametrize("slope,spacing_px", [(-0.2, 29.8), (-0.3, 20.9), (-0.5, 11.9)])
+def test_one_dots_shallow_staircase_is_not_a_tone(slope, spacing_px):
+    # shallow parallel lines repeat along each row and shift from row to row: in measurement time a
+    # nearly periodic signal, but a pulse train in the differences (strong second harmonic), which
+    # a sinusoidal tone is not; it was once removed as pickup and no line was found afterwards
+    assert find_pickup(staircase(slope=slope, spacing_px=spacing_px)) is None
+
+
+def test_a_tone_over_a_shallow_staircase_is_still_found():
+    v = staircase(slope=-0.3, spacing_px=20.9)
+    t = np.arange(v.size, dtype=float).reshape(v.shape)
+    p = find_pickup(v + 0.4 * 0.08 * np.sin(2 * np.pi * t / 13.3 + 0.4))
+    assert p is not None
+    assert 1.0 / p.frequency == pytest.approx(13.3, rel=2e-3)
+    assert p.amplitude == pytest.approx(0.4 * 0.08, rel=0.05)
+
+
+@pytest.mark.regression
+def test_analysis_of_a_shallow_staircase_finds_its_lines():
+    import warnings
+
+    import xarray as xr
+
+    from stabtool.analysis import Analyzer
+
+    v = staircase(slope=-0.2, spacing_px=29.8)
+    x = np.linspace(0.0, 0.1, v.shape[1])
+    y = np.linspace(0.0, 0.08, v.shape[0])
+    slope_V = -0.2 * (y[1] - y[0]) / (x[1] - x[0])
+    da = xr.DataArray(v, dims=("PB", "PA"), coords={"PA": x, "PB": y}, name="sensor", attrs={"units": "nA"})
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        j = Analyzer()(da).to_json()
+    assert j["slopes"]["dot2"] == pytest.approx(slope_V, rel=5e-3)
+    assert j["slopes"]["dot1"] is None and not j["quality"]["ok"]
+    assert not any("pickup" in w for w in j["quality"]["warnings"])

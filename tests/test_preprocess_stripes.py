@@ -12,7 +12,7 @@ import warnings
 
 import numpy as np
 import pytest
-from _readout import charge_step
+from _readout import charge_step, staircase
 
 from stabtool.preprocess.stripes import find_stripes, remove_stripes
 from stabtool.simulate import quick_double_dot
@@ -91,27 +91,16 @@ def test_analysis_removes_stripes_and_keeps_the_virtual_gates():
     assert np.max(np.abs(m - mt)) <= 0.005
 
 
-def _staircase(*, slope=-2.5, spacing_px=22.35, width_px=0.45, shape=(120, 150), step=0.08, noise=0.01, seed=1):
-    """One dot's transitions across the whole map: parallel Fermi steps (the conventions' occupation
-    f = 1/(1 + exp((V − V0)/w))), equally spaced, on a sensor with its own gate slope and white noise."""
-    rng = np.random.default_rng(seed)
-    i = np.arange(shape[0], dtype=float)[:, None]
-    j = np.arange(shape[1], dtype=float)[None, :]
-    u = (j - i / slope) / spacing_px  # lines j = j0 + i/slope: dV_y/dV_x = slope on equal steps
-    occ = sum(1.0 / (1.0 + np.exp(-(u - k) * spacing_px / width_px)) for k in range(-10, 20))
-    return 1.0 - step * occ + 0.3 * j / shape[1] + rng.normal(0.0, noise, shape)
-
-
 @pytest.mark.parametrize("slope,width_px", [(-2.5, 0.45), (-2.5, 1.2), (-1.5, 0.45), (-8.0, 0.8)])
 def test_one_dots_staircase_is_not_stripes(slope, width_px):
     # equally spaced parallel lines make a plane-wave peak as high as a tone's; their x-differences
     # are a pulse train with even harmonics, a tone is a sinusoid (it was once removed as pickup
     # and the lines' slopes came out 2.45 and 2.47 for 2.5, split into two families)
-    assert find_stripes(_staircase(slope=slope, width_px=width_px)) is None
+    assert find_stripes(staircase(slope=slope, width_px=width_px)) is None
 
 
 def test_a_tone_over_a_staircase_is_still_found():
-    v = _staircase()
+    v = staircase()
     hum = _wave(v.shape, 9.7, 0.37, 0.4 * 0.08)
     w = find_stripes(v + hum)
     assert w is not None
@@ -125,7 +114,7 @@ def test_analysis_of_one_dots_staircase_gives_its_slope_and_no_second_family():
 
     from stabtool.analysis import Analyzer
 
-    v = _staircase()
+    v = staircase()
     x = np.linspace(0.0, 0.1, v.shape[1])
     y = np.linspace(0.0, 0.08, v.shape[0])
     slope_V = -2.5 * (y[1] - y[0]) / (x[1] - x[0])  # the staircase's slope is in pixels

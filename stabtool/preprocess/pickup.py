@@ -28,6 +28,13 @@ off-grid peaks of 67–1135 on 27 of 48 maps, every one explained to ≥ 0.995
 (26 above the threshold, so removed); on 224 maps without pickup (ordinary,
 row walk, telegraph) the highest off-grid peaks reached 96 and explained at
 most 0.98.
+
+One dot's transitions alone (equally spaced parallel lines over the whole
+map, shallow enough to cross the rows) repeat along each row and shift from
+row to row: off the row harmonics too, and explained by a sinusoid almost as
+well as a tone. Their differences are a pulse train, though, with a second
+harmonic about as strong as the fundamental, which a tone lacks: such a peak
+and its harmonics are passed over (:func:`_is_pulse_train`).
 """
 
 from __future__ import annotations
@@ -48,6 +55,12 @@ MIN_EXPLAINED = 0.99
 OFF_GRID = 0.15
 #: Most tones removed.
 MAX_TONES = 3
+#: A peak whose second harmonic holds at least this share of its power (differences) ...
+HARMONIC_POWER_SHARE = 0.01
+#: ... standing this many times (in power) above the local level is a staircase of charge lines.
+HARMONIC_PEAK_RATIO = 10.0
+#: Staircases passed over in one search for a tone.
+MAX_STAIRCASES = 2
 #: Shortest period searched (points); longer than about a row's worth of points is drift, not pickup.
 MIN_PERIOD = 2.2
 
@@ -127,8 +140,18 @@ def find_pickup(values: np.ndarray, *, snake: bool = False) -> Pickup | None:
     search = (freq > 1.0 / nx) & (freq < 1.0 / MIN_PERIOD) & (grid > OFF_GRID) & np.isfinite(ratio)
     if not search.any():
         return None
-    k = int(np.argmax(np.where(search, ratio, 0.0)))
-    if not ratio[k] >= PEAK_RATIO:
+    cand = np.where(search, ratio, 0.0)
+    for _ in range(MAX_STAIRCASES + 1):
+        k = int(np.argmax(cand))
+        if not cand[k] >= PEAK_RATIO:
+            return None
+        if not _is_pulse_train(spec, bg, k, n_fft):
+            break
+        # one dot's staircase along the rows: its harmonic series is left out of the search
+        for m in range(1, int(0.5 * n_fft / max(k, 1)) + 2):
+            h = _harmonic_index(m, k, n_fft)
+            cand[max(h - 2, 0) : h + 3] = 0.0
+    else:
         return None
     # refine within ± one bin of the differenced series (the periodogram maximum)
     t = np.arange(n, dtype=float)
@@ -145,6 +168,31 @@ def find_pickup(values: np.ndarray, *, snake: bool = False) -> Pickup | None:
     if not after <= (1.0 - MIN_EXPLAINED) * _local_power(spec, k):
         return None
     return tone
+
+
+def _harmonic_index(m: int, k: int, n_fft: int) -> int:
+    """The rfft bin of harmonic ``m`` of bin ``k`` (of an ``n_fft``-point transform), folded about Nyquist."""
+    h = (m * k) % n_fft
+    return n_fft - h if h > n_fft // 2 else h
+
+
+def _is_pulse_train(spec: np.ndarray, bg: np.ndarray, k: int, n_fft: int) -> bool:
+    """Whether the peak at bin ``k`` has a strong second harmonic: one dot's staircase, not a tone.
+
+    Equally spaced parallel charge lines crossing the rows (one dot's transitions over the whole
+    map) repeat along each row and shift from row to row; in measurement time that is a nearly
+    pure periodic signal, but a train of narrow pulses in the differences, with a second
+    harmonic about as strong as the fundamental. A tone is a sinusoid, and mains pickup, being
+    half-wave symmetric, has odd harmonics only (see :mod:`stabtool.preprocess.stripes`, which
+    applies the same test to plane waves).
+    """
+    h = _harmonic_index(2, k, n_fft)
+    if h < 1:
+        return False
+    lo, hi = max(h - 2, 0), min(h + 3, spec.size)
+    j = lo + int(np.argmax(spec[lo:hi]))
+    p2, p1 = float(spec[j]) ** 2, float(spec[k]) ** 2
+    return bool(p2 >= HARMONIC_POWER_SHARE * p1 and spec[j] >= np.sqrt(HARMONIC_PEAK_RATIO) * bg[j])
 
 
 def _time_differences(y: np.ndarray, ok: np.ndarray, nx: int) -> np.ndarray:
