@@ -29,7 +29,14 @@ from .errors import InputError, PartialSweepWarning, QualityWarning
 from .fit.charge_states import MIN_ABSOLUTE_CONFIDENCE, ChargeStates, label_charge_states
 from .fit.model import MAX_VG_ERROR, VG_FROM_SLOPES_NOTE, DiagramFit, fit_diagram
 from .lines.result import LineDetection
-from .mapdata import map_axes, validate_map, without_infinities, x_gate, y_gate
+from .mapdata import (
+    implausible_gate_voltages,
+    map_axes,
+    validate_map,
+    without_infinities,
+    x_gate,
+    y_gate,
+)
 from .physics import FERMI_FWHM_FACTOR, lever_arm_from_width
 from .preprocess.readout import corrected_readout
 from .quality import Quality
@@ -1182,6 +1189,9 @@ class Analyzer:
         t0 = time.perf_counter()
         detector = self.detector or _default_detector
         q = Quality()
+        units_doubt = implausible_gate_voltages(da)
+        if units_doubt is not None:
+            q = q.with_warning(units_doubt)  # (mV read as V: every capacitance 1000× off)
         measured = da  # (the result holds the map as measured; the analysis reads it corrected)
         da, lag_V, q = corrected_readout(da, q)
         detection: LineDetection | None

@@ -23,8 +23,8 @@ import xarray as xr
 from .errors import InputError, PartialSweepWarning
 from .units import to_volts
 
-__all__ = ["MapAxes", "make_map", "validate_map", "without_infinities", "infinities_as_missing", "map_axes",
-           "x_gate", "y_gate"]
+__all__ = ["PLAUSIBLE_GATE_V", "MapAxes", "implausible_gate_voltages", "infinities_as_missing", "make_map",
+           "map_axes", "validate_map", "without_infinities", "x_gate", "y_gate"]
 
 
 @dataclass(frozen=True)
@@ -211,3 +211,24 @@ def validate_map(da: xr.DataArray, *, source: str | None = None) -> xr.DataArray
             stacklevel=2,
         )
     return da
+
+
+#: Largest gate voltage (V) taken at face value: the gates of a gate-defined dot device stay within a
+#: few volts (common practice, no source); a coordinate beyond it is most likely in mV without a unit.
+PLAUSIBLE_GATE_V = 20.0
+
+
+def implausible_gate_voltages(da: xr.DataArray) -> str | None:
+    """A one-line doubt when a gate coordinate (in volts) reaches beyond :data:`PLAUSIBLE_GATE_V`, else None."""
+    far = []
+    for dim in da.dims:
+        v = np.asarray(da[dim].values, float)
+        top = float(np.nanmax(np.abs(v))) if v.size and np.isfinite(v).any() else 0.0
+        if top > PLAUSIBLE_GATE_V:
+            far.append(f"{dim} reaches {top:.4g} V")
+    if not far:
+        return None
+    return (f"gate voltages read as volts: {', '.join(far)}, beyond the few volts of a dot device's gates; "
+            "if they are mV, give the coordinates a units attribute (slopes and the virtual-gate matrix do not "
+            "depend on it; capacitances, addition voltages and lever arms do)")
+

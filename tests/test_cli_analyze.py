@@ -134,3 +134,22 @@ def test_missing_rows_give_only_the_missing_points_note_and_the_verdict_on_stder
     assert json.loads(out)["slopes"]["dot1"] is not None
     assert "All-NaN" not in err and "Traceback" not in err
     assert all(("missing" in ln) or ("analysis doubtful" in ln) for ln in err.splitlines() if ln), err
+
+
+def test_gate_voltages_in_mv_without_a_unit_make_the_analysis_doubtful(map_file, tmp_path, capsys):
+    # coordinates 18–250 with no units attribute are read as volts; a dot device's gates stay within
+    # a few volts (common practice, no source), so the capacitances would be 1000× off: not ok
+    import numpy as np
+    import xarray as xr
+
+    with xr.open_dataset(map_file, engine="h5netcdf") as ds:
+        da = ds[next(iter(ds.data_vars))].load()
+    x, y = 1e3 * da[da.dims[1]].values, 1e3 * da[da.dims[0]].values
+    path = _saved(tmp_path, "millivolts.nc", np.asarray(da.values, float), x=x, y=y)
+    assert main(["analyze", str(path), "--json", "--no-refine", "--quiet"]) == 0
+    j = json.loads(capsys.readouterr().out)
+    assert not j["quality"]["ok"]
+    assert j["quality"]["warnings"][0].startswith("gate voltages read as volts: PB reaches")
+    assert main(["analyze", str(map_file), "--json", "--no-refine", "--quiet"]) == 0
+    same = json.loads(capsys.readouterr().out)
+    assert j["slopes"]["dot1"] == pytest.approx(same["slopes"]["dot1"], rel=1e-9)

@@ -93,13 +93,19 @@ def test_fewer_than_two_sweeps_is_an_input_error():
         measure_drift([sweep(seed=1)])
 
 
-@pytest.mark.regression
-def test_cli_writes_csv_json_png_and_reports_the_jump(tmp_path, capsys):
-    maps, truth, (sx, _) = night(n=7, seed=300)
+def _night_folder(tmp_path, maps, *, mixed_formats=False):
+    """The sweeps written to ``tmp_path/night`` (NetCDF, or NetCDF and NPZ alternately)."""
     folder = tmp_path / "night"
     folder.mkdir()
     for k, da in enumerate(maps):
-        save_map(da, folder / f"sweep_{k:02d}{'.nc' if k % 2 else '.npz'}")
+        save_map(da, folder / f"sweep_{k:02d}{'.npz' if mixed_formats and not k % 2 else '.nc'}")
+    return folder
+
+
+@pytest.mark.regression
+def test_cli_writes_csv_json_png_and_reports_the_jump(tmp_path, capsys):
+    maps, truth, (sx, _) = night(n=7, seed=300)
+    folder = _night_folder(tmp_path, maps, mixed_formats=True)
     code = main(["drift", str(folder), "--out", str(tmp_path / "out")])
     assert code == 0
     out = capsys.readouterr().out
@@ -118,10 +124,7 @@ def test_cli_leaves_a_survey_of_another_window_out_of_the_repeats(tmp_path, caps
     # it made every repeat "overlap less than half of the first window" and the verdict doubtful
     # (common practice, no source: drift is measured between sweeps of the same window)
     maps, truth, (sx, _) = night(n=6, seed=300)
-    folder = tmp_path / "night"
-    folder.mkdir()
-    for k, da in enumerate(maps):
-        save_map(da, folder / f"sweep_{k:02d}.nc")
+    folder = _night_folder(tmp_path, maps)
     (x0, x1), (y0, y1) = (float(maps[0]["PA"].min()), float(maps[0]["PA"].max())), \
         (float(maps[0]["PB"].min()), float(maps[0]["PB"].max()))
     survey = sweep(window=((x0 - (x1 - x0), x1 + (x1 - x0)), (y0 - (y1 - y0), y1 + (y1 - y0))), seed=9)

@@ -138,24 +138,3 @@ def test_a_tone_over_a_shallow_staircase_is_still_found():
     assert p is not None
     assert 1.0 / p.frequency == pytest.approx(13.3, rel=2e-3)
     assert p.amplitude == pytest.approx(0.4 * 0.08, rel=0.05)
-
-
-@pytest.mark.regression
-def test_analysis_of_a_shallow_staircase_finds_its_lines():
-    import warnings
-
-    import xarray as xr
-
-    from stabtool.analysis import Analyzer
-
-    v = staircase(slope=-0.2, spacing_px=29.8)
-    x = np.linspace(0.0, 0.1, v.shape[1])
-    y = np.linspace(0.0, 0.08, v.shape[0])
-    slope_V = -0.2 * (y[1] - y[0]) / (x[1] - x[0])
-    da = xr.DataArray(v, dims=("PB", "PA"), coords={"PA": x, "PB": y}, name="sensor", attrs={"units": "nA"})
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        j = Analyzer()(da).to_json()
-    assert j["slopes"]["dot2"] == pytest.approx(slope_V, rel=5e-3)
-    assert j["slopes"]["dot1"] is None and not j["quality"]["ok"]
-    assert not any("pickup" in w for w in j["quality"]["warnings"])

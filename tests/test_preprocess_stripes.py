@@ -106,22 +106,3 @@ def test_a_tone_over_a_staircase_is_still_found():
     assert w is not None
     assert w.period_points == pytest.approx(9.7, rel=1e-2)
     assert w.amplitude == pytest.approx(0.4 * 0.08, rel=0.05)
-
-
-@pytest.mark.regression
-def test_analysis_of_one_dots_staircase_gives_its_slope_and_no_second_family():
-    import xarray as xr
-
-    from stabtool.analysis import Analyzer
-
-    v = staircase()
-    x = np.linspace(0.0, 0.1, v.shape[1])
-    y = np.linspace(0.0, 0.08, v.shape[0])
-    slope_V = -2.5 * (y[1] - y[0]) / (x[1] - x[0])  # the staircase's slope is in pixels
-    da = xr.DataArray(v, dims=("PB", "PA"), coords={"PA": x, "PB": y}, name="sensor", attrs={"units": "nA"})
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        j = Analyzer()(da).to_json()
-    assert j["slopes"]["dot1"] == pytest.approx(slope_V, rel=5e-3)
-    assert j["slopes"]["dot2"] is None and not j["quality"]["ok"]
-    assert not any("pickup" in w for w in j["quality"]["warnings"])
