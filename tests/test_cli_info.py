@@ -63,3 +63,23 @@ def test_real_subprocess_exit_code_and_no_traceback(files, tmp_path):
         f"stabtool: error: {bad}: line 3 (data row 2), column 'sensor (nA)': 'x' is not a number"
     )
     assert "PA" in proc.stdout
+
+
+def test_gates_beyond_twenty_volts_get_a_note(tmp_path, capsys):
+    # millivolts stored without a unit are read as volts: 250 "V" on a plunger is not a dot device's
+    # gate voltage (common practice, no source), so the report says what to check
+    import numpy as np
+    import xarray as xr
+
+    da = small_map(nan_tail=False)
+    path = tmp_path / "no_unit.nc"
+    xr.DataArray(np.asarray(da.values), dims=("PB", "PA"), name="sensor",
+                 coords={"PA": np.linspace(0.0, 250.0, da.shape[1]), "PB": np.linspace(0.0, 5.0, da.shape[0])},
+                 ).to_dataset().to_netcdf(path, engine="h5netcdf")
+    assert main(["info", str(path)]) == 0
+    out = capsys.readouterr().out
+    assert "note      gate voltages read as volts: PA reaches 250 V" in out and "PB" not in out.split("note")[1]
+    in_volts = tmp_path / "in_volts.nc"
+    save_map(da, in_volts)
+    assert main(["info", str(in_volts)]) == 0
+    assert "note" not in capsys.readouterr().out

@@ -18,6 +18,7 @@ import numpy as np
 import xarray as xr
 
 from ..errors import InputError, StabtoolWarning
+from ..mapdata import implausible_gate_voltages
 from ..units import from_volts
 
 __all__ = ["describe", "register", "run"]
@@ -65,6 +66,7 @@ def describe(da: xr.DataArray) -> dict[str, Any]:
         "signal_min": float(np.nanmin(values)),
         "signal_max": float(np.nanmax(values)),
         "attrs": sorted(k for k in da.attrs if k not in ("source", "source_format", "units")),
+        "note": implausible_gate_voltages(da),
     }
 
 
@@ -85,6 +87,8 @@ def _text(info: dict[str, Any]) -> str:
     lines.append(f"  NaN       {100 * info['nan_fraction']:.1f} %")
     if info["attrs"]:
         lines.append(f"  attrs     {', '.join(info['attrs'])}")
+    if info.get("note"):
+        lines.append(f"  note      {info['note']}")
     return "\n".join(lines)
 
 
