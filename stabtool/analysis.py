@@ -32,6 +32,8 @@ from .lines.result import LineDetection
 from .mapdata import (
     implausible_gate_voltages,
     map_axes,
+    signal_gain,
+    signal_range,
     validate_map,
     without_infinities,
     x_gate,
@@ -1193,6 +1195,14 @@ class Analyzer:
         if units_doubt is not None:
             q = q.with_warning(units_doubt)  # (mV read as V: every capacitance 1000× off)
         measured = da  # (the result holds the map as measured; the analysis reads it corrected)
+        gain = signal_gain(da)
+        if gain != 1.0:
+            # a signal in A (1e-10) or in counts (1e5): brought to the order-one scale the pipeline was
+            # validated on (the detector, fitter and model fit carry absolute damping terms and floors)
+            da = da.copy(data=np.asarray(da.values, float) * gain)
+            q = q.with_warning(f"signal multiplied by 2^{int(np.log2(gain))} for the analysis (its 5–95 % range, "
+                               f"{signal_range(measured):.3g} {measured.attrs.get('units', 'a.u.')}, is far from "
+                               "order one); signal values in these notes are in that unit", doubtful=False)
         da, lag_V, q = corrected_readout(da, q)
         detection: LineDetection | None
         try:
