@@ -266,7 +266,28 @@ def fit_profiles(u: np.ndarray, y: np.ndarray, mask: np.ndarray, *, kind: str = 
     errors over the last ``SETTLE_ITER`` steps or it is an unresolved step.
     """
     with np.errstate(all="ignore"):  # a failed profile gives NaN in its own column only
-        return _fit_batch(u, y, mask, kind, halfwidth, n_iter)
+        scale = _batch_scale(y, mask)
+        if scale == 1.0:
+            return _fit_batch(u, y, mask, kind, halfwidth, n_iter)
+        fit = _fit_batch(u, np.asarray(y, float) / scale, mask, kind, halfwidth, n_iter)
+        return replace(fit, height=fit.height * scale, height_err=fit.height_err * scale, ssr=fit.ssr * scale**2,
+                       a=None if fit.a is None else fit.a * scale, b=None if fit.b is None else fit.b * scale)
+
+
+def _batch_scale(y: np.ndarray, mask: np.ndarray) -> float:
+    """The power of two near the profiles' typical spread (median over profiles of max − min).
+
+    The fit's damping and covariance floors are absolute (``+1e-12``, ``+1e-15``), and the
+    Jacobian columns of an unresolved step's width scale with the step height squared, so the
+    fits depended on the signal's unit; divided by a power of two (exact) they do not.
+    """
+    yy = np.where(np.asarray(mask, bool), np.asarray(y, float), np.nan)
+    with np.errstate(all="ignore"):
+        spread = np.nanmax(yy, axis=1) - np.nanmin(yy, axis=1)
+    spread = spread[np.isfinite(spread) & (spread > 0)]
+    if spread.size == 0:
+        return 1.0
+    return float(2.0 ** np.round(np.log2(np.median(spread))))
 
 
 class _Active:
