@@ -281,9 +281,10 @@ def _batch_scale(y: np.ndarray, mask: np.ndarray) -> float:
     Jacobian columns of an unresolved step's width scale with the step height squared, so the
     fits depended on the signal's unit; divided by a power of two (exact) they do not.
     """
-    yy = np.where(np.asarray(mask, bool), np.asarray(y, float), np.nan)
-    with np.errstate(all="ignore"):
-        spread = np.nanmax(yy, axis=1) - np.nanmin(yy, axis=1)
+    m = np.asarray(mask, bool) & np.isfinite(y)
+    yy = np.asarray(y, float)
+    with np.errstate(all="ignore"):  # (a profile without samples gives −inf, left out below)
+        spread = np.where(m, yy, -np.inf).max(axis=1) - np.where(m, yy, np.inf).min(axis=1)
     spread = spread[np.isfinite(spread) & (spread > 0)]
     if spread.size == 0:
         return 1.0
