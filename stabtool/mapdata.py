@@ -243,9 +243,9 @@ def implausible_gate_voltages(da: xr.DataArray) -> str | None:
 SIGNAL_RANGE_BAND = (2.0**-6, 2.0**3)
 
 
-def signal_range(da: xr.DataArray) -> float:
+def signal_range(da: xr.DataArray | np.ndarray) -> float:
     """The 5–95 % range of the map's finite values (their full range when that is zero; NaN if none)."""
-    v = np.asarray(da.values, float)
+    v = np.asarray(da.values if isinstance(da, xr.DataArray) else da, float)
     v = v[np.isfinite(v)]
     if v.size < 2:
         return float("nan")

@@ -24,7 +24,7 @@ from __future__ import annotations
 import numpy as np
 import xarray as xr
 
-from ..mapdata import map_axes, x_gate
+from ..mapdata import map_axes, signal_range, x_gate
 from ..quality import Quality
 from .lowpass import agrees_with_shift, row_low_pass, undo_row_low_pass
 from .pickup import remove_pickup
@@ -143,5 +143,5 @@ def _without_low_pass(values: np.ndarray, snake: bool, shift: AlternateRowShift,
 
 def _range_share(values: np.ndarray, amplitude: float) -> str:
     """``amplitude`` as a share of the map's 5–95 % range, for the notes on removed pickup."""
-    spread = float(np.nanpercentile(values, 95) - np.nanpercentile(values, 5))
+    spread = signal_range(values)
     return f"{100 * amplitude / spread:.0f} % of the map's 5–95 % range"

@@ -40,6 +40,9 @@ import numpy as np
 from scipy import ndimage as ndi
 from scipy.fft import rfft2
 
+# the staircase rule's thresholds are those of the tones in measurement time (one rule, one place)
+from .pickup import HARMONIC_PEAK_RATIO, HARMONIC_POWER_SHARE, MAX_STAIRCASES
+
 __all__ = ["LEVEL_BINS", "MAX_WAVES", "MIN_EXPLAINED", "PEAK_RATIO", "Stripes", "find_stripes", "remove_stripes",
            "row_differences"]
 
@@ -53,12 +56,6 @@ MIN_EXPLAINED = 0.99
 MIN_PERIODS_PER_ROW = 4.0
 #: Shortest period along x searched (points).
 MIN_PERIOD = 2.2
-#: A candidate whose second harmonic holds at least this share of its power (x-differences) ...
-HARMONIC_POWER_SHARE = 0.01
-#: ... standing this many times above the local level is a staircase of charge lines, not pickup.
-HARMONIC_PEAK_RATIO = 10.0
-#: Staircases of charge lines (:func:`_is_pulse_train`) passed over in one search for a tone.
-MAX_STAIRCASES = 2
 #: Most plane waves removed.
 MAX_WAVES = 3
 _EULER_GAMMA = 0.5772156649015329
