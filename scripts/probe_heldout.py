@@ -26,6 +26,10 @@ was not tuned on:
   - ``transport`` (opt-in, ``--sensors``): the generator's double-dot current
     at a small bias (only the triple points conduct: the analysis is expected
     to fail, never to report ok);
+  - ``--lockin`` (opt-in, any charge sensor above): the sensor read through a
+    lock-in on the x gate, i.e. its derivative along x (central difference,
+    modulation ±1 point): the lines are peaks and dips, and the SNR is the
+    median peak height over the white noise;
 
 * noise (white always, the others each with probability ½ unless chosen by
   ``--noise``): white at SNR 4–60 (SNR = median charge-step height of the
@@ -54,6 +58,7 @@ Usage::
     python scripts/probe_heldout.py --seeds 1,10,11 --verbose --out /tmp/probe
     python scripts/probe_heldout.py --seeds 0:12 --sensors rf --noise pink,drift
     python scripts/probe_heldout.py --seeds 0:24 --start-e=-3:-2.2   # empty corner: absolute labels checked
+    python scripts/probe_heldout.py --seeds 0:48 --lockin            # derivative read-out (lines as peaks)
 
 The map factory :func:`make_map` and :func:`evaluate` are importable (for
 scratch experiments that patch the analysis).
@@ -137,7 +142,7 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
              noise: tuple[str, ...] | None = None, tunnel_coupling_ueV: float = 0.0,
              mutual_fraction: tuple[float, float] | None = None,
              start_e: tuple[float, float] | None = None,
-             coupling_ratio: tuple[float, float] | None = None) -> ProbeMap:
+             coupling_ratio: tuple[float, float] | None = None, lockin: bool = False) -> ProbeMap:
     """Build held-out map ``seed`` (deterministic in all arguments).
 
     Parameters
@@ -213,6 +218,13 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
         # step height: median signal change at the x-neighbour charge changes
         dq = np.abs(np.diff(q, axis=1)) > 0.5
         h = float(np.median(np.abs(np.diff(sig, axis=1))[dq])) if dq.any() else 0.1
+    if lockin and kind != "transport":
+        # a lock-in on the x gate: dS/dx (central difference, modulation ±1 px); the line height is the
+        # median largest |derivative| next to the charge changes along x
+        sig = np.gradient(sig, axis=1)
+        dq = np.abs(np.diff(q, axis=1)) > 0.5
+        near = np.maximum(np.abs(sig[:, 1:]), np.abs(sig[:, :-1]))
+        h = float(np.median(near[dq])) if dq.any() else 0.1
     sigma = h / snr
     out = sig + r.normal(0, sigma, sig.shape)
     if "pink" in extras:
@@ -272,7 +284,8 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
         out = (out - np.median(out)) * (1 + r.uniform(-0.3, 0.3) * t + 0.1 * np.sin(2 * np.pi * r.uniform(0.5, 2) * t))
     da.values = out
     da.attrs.pop("stabtool_truth", None)
-    meta = dict(seed=seed, sensor=kind, noise="+".join(("white",) + extras), snr=snr, T=round(T, 3),
+    sensor = kind + ("+lockin" if lockin and kind != "transport" else "")
+    meta = dict(seed=seed, sensor=sensor, noise="+".join(("white",) + extras), snr=snr, T=round(T, 3),
                 shape=(ny, nx))
     return ProbeMap(data=da, truth=sm.truth.to_json(), meta=meta)
 
@@ -379,6 +392,8 @@ def main(argv: list[str] | None = None) -> int:
                         "maps with the empty (0,0) region well below the first lines")
     p.add_argument("--coupling", default=None,
                    help="'A:B': draw the sensor's dot-2/dot-1 coupling ratio log-uniformly in [A, B] (default 0.65)")
+    p.add_argument("--lockin", action="store_true",
+                   help="read every sensor through a lock-in on the x gate: the maps are dS/dx (lines as peaks)")
     p.add_argument("--out", default=None, help="folder for one PNG per map (the analysis plot)")
     p.add_argument("--verbose", action="store_true", help="print every warning of every map")
     a = p.parse_args(argv)
@@ -398,11 +413,12 @@ def main(argv: list[str] | None = None) -> int:
         os.makedirs(a.out, exist_ok=True)
     rows = []
     t_all = time.perf_counter()
-    print(f"{'seed':>4} {'sensor':8} {'noise':26} {'snr':>4} {'shape':>9}  ok    vg      cdg     la      ec    "
+    print(f"{'seed':>4} {'sensor':14} {'noise':26} {'snr':>4} {'shape':>9}  ok    vg      cdg     la      ec    "
           f"  t/s  first doubts (warnings that clear ok are marked '!')")
     for s in _parse_seeds(a.seeds):
         pm = make_map(s, size=(lo, hi), sensors=sensors, noise=noise, tunnel_coupling_ueV=a.tunnel_ueV,
-                      mutual_fraction=_range(a.mutual), start_e=_range(a.start_e), coupling_ratio=_range(a.coupling))
+                      mutual_fraction=_range(a.mutual), start_e=_range(a.start_e), coupling_ratio=_range(a.coupling),
+                      lockin=a.lockin)
         t0 = time.perf_counter()
         try:
             res = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data)
@@ -426,7 +442,7 @@ def main(argv: list[str] | None = None) -> int:
         tag = " SILENT-FAIL(" + ",".join(ev["beyond"]) + ")" if ev["silent"] else ""
         if ev["wrong_labels"]:
             tag += f" WRONG-ABSOLUTE-LABELS({ev['wrong_labels']} regions)"
-        print(f"{s:4d} {m['sensor']:8} {m['noise']:26} {m['snr']:4.0f} {m['shape'][0]:4d}x{m['shape'][1]:<4d} "
+        print(f"{s:4d} {m['sensor']:14} {m['noise']:26} {m['snr']:4.0f} {m['shape'][0]:4d}x{m['shape'][1]:<4d} "
               f"{'OK ' if ev['ok'] else 'no '} {_fmt(ev['vg'])} {_fmt(ev['cdg'])} {_fmt(ev['la'])} {_fmt(ev['ec'])} "
               f"{dt:5.1f}{tag}  | " + ("\n      - ".join([""] + doubt) if a.verbose else "; ".join(w[:60] for w in doubt)),
               flush=True)
