@@ -40,6 +40,7 @@ from .mapdata import (
     y_gate,
 )
 from .physics import FERMI_FWHM_FACTOR, lever_arm_from_width
+from .preprocess.integral import integral_along_rows
 from .preprocess.readout import corrected_readout
 from .quality import Quality
 
@@ -183,6 +184,11 @@ def charging_energies(scale: Any, diagram: Any) -> tuple[dict, dict]:
     )
 
 
+#: Fit the constant-interaction model to a derivative map's integral too (its summed noise is a
+#: random walk along the rows, not the white noise the model fit's checks assume)
+INTEGRAL_MODEL_FIT = False
+
+
 @dataclass(frozen=True)
 class AnalysisResult:
     """Everything ``stabtool analyze`` reports about one map.
@@ -192,7 +198,8 @@ class AnalysisResult:
     data : xarray.DataArray
         The map as measured (infinite points made missing). Corrections the
         analysis made before reading it (alternate rows aligned, periodic
-        pickup removed) are stated in the quality notes.
+        pickup removed; a derivative map's integral along x analysed) are
+        stated in the quality notes.
     detection : LineDetection or None
         Lines found (None when detection itself failed).
     diagram : DiagramFit
@@ -1187,6 +1194,59 @@ class Analyzer:
 
         if self.mode == "diamonds" or (self.mode == "auto" and is_bias_axis(da)):
             return analyze_diamond_map(da)
+        res = self._stability(da)
+        if self.detector is None:
+            res = self._as_derivative_map(da, res)
+        q = res.quality
+        if not q.ok:
+            # the reasons only (the notes are in the result): at most three
+            ws, flags = q.doubts_first_flagged()
+            reasons = [w for w, f in zip(ws, flags) if f] if flags is not None else list(ws)
+            warnings.warn(
+                f"{da.attrs.get('source', 'map')}: analysis doubtful: {'; '.join((reasons or list(ws))[:3])}"
+                + (f" (and {len(reasons) - 3} more)" if len(reasons) > 3 else ""),
+                QualityWarning, stacklevel=2,
+            )
+        return res
+
+    def _as_derivative_map(self, da: xr.DataArray, res: AnalysisResult) -> AnalysisResult:
+        """The analysis of ``da``'s integral along x when its lines are peaks, not steps.
+
+        A lock-in on a gate reads the sensor's derivative (lines as peaks or
+        dips, :mod:`stabtool.lines.profile_shape`); summed along the rows
+        (:func:`stabtool.preprocess.integral.integral_along_rows`) it is a
+        step map again. Wherever a ridge is crossed the sum steps, so the
+        lines keep their places whichever gate was modulated. A lattice that
+        the step analysis found on the peaks themselves (on their flanks) is
+        not kept; a transport map's lattice of triple points is, unless the
+        integral gives an ok result.
+        """
+        from .lines.profile_shape import line_shape
+
+        if res.detection is None:
+            return res
+        shape = line_shape(res.detection)
+        if not shape.peaks:
+            return res
+        what = (f"the lines are peaks, not steps (level ratio {shape.ratio:.3f}, {shape.n_lines} lines; a lock-in's "
+                "derivative?)")
+        import copy
+
+        lines_only = copy.copy(self)
+        lines_only.refine = INTEGRAL_MODEL_FIT
+        again = lines_only._stability(da, integrate=True)
+        timings = {**again.timings_s, "total": res.timings_s.get("total", 0.0) + again.timings_s.get("total", 0.0)}
+        transport = res.transport is not None and res.transport.consistent
+        if not again.diagram.ok or (transport and not again.quality.ok):
+            why = "gave no charge lattice" if not again.diagram.ok else "was doubtful too"
+            # a lattice of the step analysis on peaks rests on the peaks' flanks (each line twice)
+            return replace(res, quality=res.quality.with_warning(
+                f"{what}; their integral along x {why}", doubtful=res.diagram.ok and not transport))
+        return replace(again, timings_s=timings, quality=again.quality.with_warning(
+            f"{what}: analysed its integral along x; widths include the modulation", doubtful=False))
+
+    def _stability(self, da: xr.DataArray, *, integrate: bool = False) -> AnalysisResult:
+        """The analysis of a charge-stability map (``integrate``: of its read-out-corrected integral along x)."""
         timings: dict[str, float] = {}
         t0 = time.perf_counter()
         detector = self.detector or _default_detector
@@ -1204,6 +1264,8 @@ class Analyzer:
                                f"{signal_range(measured):.3g} {measured.attrs.get('units', 'a.u.')}, is far from "
                                "order one); signal values in these notes are in that unit", doubtful=False)
         da, lag_V, q = corrected_readout(da, q)
+        if integrate:
+            da = integral_along_rows(da)
         detection: LineDetection | None
         try:
             detection = detector(da)
@@ -1256,7 +1318,9 @@ class Analyzer:
         tunnel_modelled = False  # the adopted model fit includes the interdot tunnel coupling
         x = np.asarray(da[da.dims[-1]].values, float)
         y = np.asarray(da[da.dims[0]].values, float)
-        allow = True  # the labelling may count electrons from an empty corner (see below)
+        # the labelling may count electrons from an empty corner (see below); not on a derivative map's
+        # integral, whose summed noise may hide the lowest line
+        allow = not integrate
         if fit.ok and fit.lattice is not None:
             # the model fit starts from the lattice's own labelling: an empty corner helps it even
             # where the reported labels stay relative for a low SNR (MIN_ABSOLUTE_CONFIDENCE)
@@ -1465,15 +1529,6 @@ class Analyzer:
                                        doubtful=False)
                 timings["transport_lattice"] = time.perf_counter() - t5
         timings["total"] = time.perf_counter() - t0
-        if not q.ok:
-            # the reasons only (the notes are in the result): at most three
-            ws, flags = q.doubts_first_flagged()
-            reasons = [w for w, f in zip(ws, flags) if f] if flags is not None else list(ws)
-            warnings.warn(
-                f"{da.attrs.get('source', 'map')}: analysis doubtful: {'; '.join((reasons or list(ws))[:3])}"
-                + (f" (and {len(reasons) - 3} more)" if len(reasons) > 3 else ""),
-                QualityWarning, stacklevel=2,
-            )
         return AnalysisResult(data=measured, detection=detection, diagram=fit, scale=scale, charge_states=states,
                               refinement=refinement, quality=q, timings_s=timings, tunnel=tunnel, coupling=coupling,
                               transport=transport)

@@ -1,0 +1,79 @@
+"""The integral of a derivative map along its rows (stabtool.preprocess.integral).
+
+References: the trapezoid rule as implemented by ``scipy.integrate.cumulative_trapezoid``;
+the Fermi step of the conventions (``stabtool.physics.thermal.fermi_occupation``).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import xarray as xr
+from scipy.integrate import cumulative_trapezoid
+
+from stabtool.physics.thermal import fermi_occupation
+from stabtool.preprocess.integral import integral_along_rows, without_spikes
+
+
+def _map(values):
+    ny, nx = values.shape
+    return xr.DataArray(values, dims=("PB", "PA"),
+                        coords={"PA": np.linspace(0, 0.1, nx), "PB": np.linspace(0, 0.08, ny)})
+
+
+def test_the_sum_is_scipys_trapezoid_rule_started_half_a_point_in():
+    # S_i = Σ_{k<i} P_k + P_i/2 = cumulative_trapezoid(P)_i + P_0/2 (unit spacing)
+    rng = np.random.default_rng(3)
+    p = rng.normal(size=(7, 40))
+    s = integral_along_rows(_map(p)).values
+    expected = cumulative_trapezoid(p, axis=1, initial=0.0) + 0.5 * p[:, :1]
+    np.testing.assert_allclose(s, expected, rtol=0, atol=1e-12)
+
+
+@pytest.mark.parametrize("centre", [30.0, 30.25, 30.5, 30.8])
+def test_the_integral_of_a_steps_derivative_crosses_half_height_at_the_step(centre):
+    # a lock-in's central difference of a Fermi step, summed: the half-height crossing is the step's
+    # centre (a plain cumulative sum puts it half a point early)
+    x = np.arange(64, dtype=float)
+    step = 1.0 - fermi_occupation(x, centre, 0.8)
+    p = np.gradient(np.tile(step, (3, 1)), axis=1)
+    s = integral_along_rows(_map(p)).values[1]
+    level = 0.5 * (s[5] + s[-5])
+    i = int(np.flatnonzero(s > level)[0])
+    crossing = i - 1 + (level - s[i - 1]) / (s[i] - s[i - 1])
+    assert crossing == pytest.approx(centre, abs=0.02)
+
+
+def test_missing_points_stay_missing_and_add_nothing():
+    p = np.ones((4, 20))
+    p[1, 5] = np.nan
+    s = integral_along_rows(_map(p)).values
+    assert np.isnan(s[1, 5]) and np.isfinite(np.delete(s.ravel(), 25)).all()
+    assert s[1, 10] == pytest.approx(s[0, 10] - 1.0)  # one point of 1 fewer in the sum
+
+
+def test_isolated_spikes_go_but_one_pixel_ridges_stay():
+    rng = np.random.default_rng(5)
+    p = rng.normal(0.0, 1.0, (80, 90))
+    ridges = np.zeros_like(p)
+    ridges[:, 20] = 20.0  # a vertical ridge one pixel wide (a steep line)
+    ridges[40, :] = -20.0  # a horizontal one (a shallow line)
+    rr = np.arange(80)
+    ridges[rr, 50 + rr // 3] = 20.0  # a steep diagonal one
+    spikes = np.zeros_like(p)
+    where = (np.array([10, 25, 60, 70, 5]), np.array([70, 35, 10, 80, 60]))
+    spikes[where] = [30.0, -25.0, 40.0, 30.0, -35.0]
+    out = without_spikes(p + ridges + spikes, 1.0)
+    assert np.abs(out[where]).max() < 5.0  # the spikes are gone
+    changed = out != p + ridges + spikes
+    assert changed.sum() == len(where[0])  # nothing else moved, no ridge pixel among them
+
+
+def test_a_noiseless_map_loses_nothing_to_the_spike_rule():
+    # without noise every line end stands many σ off its median: the rule also needs the point to stand
+    # above the map's strong features and alone
+    x = np.arange(60, dtype=float)
+    y = np.arange(50, dtype=float)[:, None]
+    v = sum(1.0 - fermi_occupation(x + 0.3 * y, c, 0.5) for c in (12.0, 31.0, 47.0))
+    p = np.gradient(v, axis=1)
+    assert (without_spikes(p, 1e-9) == p).all()
