@@ -40,7 +40,7 @@ from .mapdata import (
     y_gate,
 )
 from .physics import FERMI_FWHM_FACTOR, lever_arm_from_width
-from .preprocess.integral import integral_along_rows
+from .preprocess.integral import integral_along
 from .preprocess.readout import corrected_readout
 from .quality import Quality
 
@@ -187,6 +187,17 @@ def charging_energies(scale: Any, diagram: Any) -> tuple[dict, dict]:
 #: Fit the constant-interaction model to a derivative map's integral too (its summed noise is a
 #: random walk along the rows, not the white noise the model fit's checks assume)
 INTEGRAL_MODEL_FIT = False
+
+
+#: the reason a derivative map summed along y is never ok
+Y_INTEGRAL_DOUBT = "summed along y"
+
+
+def _integral_rank(res: AnalysisResult, order: int) -> tuple:
+    """Sort key of a derivative map's integral analyses: ok first, then with a charge lattice, then
+    the smaller stated virtual-gate error, then the axis the peaks' areas pointed to (``order`` 0)."""
+    err = float(np.nanmax(res.diagram.vg_matrix_error)) if res.diagram.ok else np.inf
+    return (not res.quality.ok, not res.diagram.ok, err if np.isfinite(err) else np.inf, order)
 
 
 @dataclass(frozen=True)
@@ -1210,13 +1221,15 @@ class Analyzer:
         return res
 
     def _as_derivative_map(self, da: xr.DataArray, res: AnalysisResult) -> AnalysisResult:
-        """The analysis of ``da``'s integral along x when its lines are peaks, not steps.
+        """The analysis of ``da``'s integral when its lines are peaks, not steps.
 
         A lock-in on a gate reads the sensor's derivative (lines as peaks or
-        dips, :mod:`stabtool.lines.profile_shape`); summed along the rows
-        (:func:`stabtool.preprocess.integral.integral_along_rows`) it is a
-        step map again. Wherever a ridge is crossed the sum steps, so the
-        lines keep their places whichever gate was modulated. A lattice that
+        dips, :mod:`stabtool.lines.profile_shape`); summed along that gate's
+        axis (:func:`stabtool.preprocess.integral.integral_along`) it is a
+        step map again. The map is summed along x and along y and the better
+        analysis is kept (:func:`_integral_rank`): summed along the wrong
+        axis the steps are still where the ridges are, but one family's are
+        weak (their height goes with the lines' slope). A lattice that
         the step analysis found on the peaks themselves (on their flanks) is
         not kept; a transport map's lattice of triple points is, unless the
         integral gives an ok result.
@@ -1234,19 +1247,30 @@ class Analyzer:
 
         lines_only = copy.copy(self)
         lines_only.refine = INTEGRAL_MODEL_FIT
-        again = lines_only._stability(da, integrate=True)
-        timings = {**again.timings_s, "total": res.timings_s.get("total", 0.0) + again.timings_s.get("total", 0.0)}
+        # the axis the peaks' areas point to first; the other one too, and the better analysis wins
+        axes = (shape.axis, "y" if shape.axis == "x" else "x")
+        runs = [lines_only._stability(da, integrate=a) for a in axes]
+        k = min(range(2), key=lambda i: _integral_rank(runs[i], i))
+        again, axis = runs[k], axes[k]
+        spent = sum(r.timings_s.get("total", 0.0) for r in runs)
+        timings = {**again.timings_s, "total": res.timings_s.get("total", 0.0) + spent}
         transport = res.transport is not None and res.transport.consistent
         if not again.diagram.ok or (transport and not again.quality.ok):
             why = "gave no charge lattice" if not again.diagram.ok else "was doubtful too"
             # a lattice of the step analysis on peaks rests on the peaks' flanks (each line twice)
             return replace(res, quality=res.quality.with_warning(
-                f"{what}; their integral along x {why}", doubtful=res.diagram.ok and not transport))
-        return replace(again, timings_s=timings, quality=again.quality.with_warning(
-            f"{what}: analysed its integral along x; widths include the modulation", doubtful=False))
+                f"{what}; their integrals along x and y {why}", doubtful=res.diagram.ok and not transport))
+        q = again.quality.with_warning(f"{what}: analysed its integral along {axis}; widths include the "
+                                       "modulation", doubtful=False)
+        if axis == "y":
+            # the analysis measures steep lines across the rows, and the sum's noise walks along the
+            # columns: their profiles cross independent walks (probe maps: M21 off by 3.6 stated σ)
+            q = q.with_warning(f"{Y_INTEGRAL_DOUBT}: the stated errors leave out the sum's random walk along "
+                               "the columns")
+        return replace(again, timings_s=timings, quality=q)
 
-    def _stability(self, da: xr.DataArray, *, integrate: bool = False) -> AnalysisResult:
-        """The analysis of a charge-stability map (``integrate``: of its read-out-corrected integral along x)."""
+    def _stability(self, da: xr.DataArray, *, integrate: str | None = None) -> AnalysisResult:
+        """The analysis of a charge-stability map (``integrate``: of its read-out-corrected integral along that axis)."""
         timings: dict[str, float] = {}
         t0 = time.perf_counter()
         detector = self.detector or _default_detector
@@ -1264,8 +1288,8 @@ class Analyzer:
                                f"{signal_range(measured):.3g} {measured.attrs.get('units', 'a.u.')}, is far from "
                                "order one); signal values in these notes are in that unit", doubtful=False)
         da, lag_V, q = corrected_readout(da, q)
-        if integrate:
-            da = integral_along_rows(da)
+        if integrate is not None:
+            da = integral_along(da, integrate)
         detection: LineDetection | None
         try:
             detection = detector(da)
@@ -1320,7 +1344,7 @@ class Analyzer:
         y = np.asarray(da[da.dims[0]].values, float)
         # the labelling may count electrons from an empty corner (see below); not on a derivative map's
         # integral, whose summed noise may hide the lowest line
-        allow = not integrate
+        allow = integrate is None
         if fit.ok and fit.lattice is not None:
             # the model fit starts from the lattice's own labelling: an empty corner helps it even
             # where the reported labels stay relative for a low SNR (MIN_ABSOLUTE_CONFIDENCE)

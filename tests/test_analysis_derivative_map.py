@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 from _probe import make_map as probe_map
 
-from stabtool.analysis import Analyzer
+from stabtool.analysis import Y_INTEGRAL_DOUBT, Analyzer
 from stabtool.simulate import quick_double_dot
 
 PEAKS_NOTE = "the lines are peaks, not steps"
@@ -81,3 +81,17 @@ def test_a_charge_map_is_not_summed():
     sm = quick_double_dot("ge-double", snr=30.0, rng=1)
     j = _analyse(sm.data)
     assert not any(PEAKS_NOTE in w for w in j["quality"]["warnings"])
+
+
+@pytest.mark.regression
+@pytest.mark.parametrize("preset", ["gaas-double", "si-sige-double"])
+def test_a_lockin_on_the_y_gate_is_summed_along_y_and_stays_doubtful(preset):
+    # the numbers come out (measured |ΔM| 0.0005 and 0.0019), but the sum's noise walks along the
+    # columns, across the steep lines' profiles, so the stated errors are too small (held-out probe:
+    # M21 off by 3.6 stated σ) and the map is never ok
+    sm = quick_double_dot(preset, snr=None, rng=1)
+    p = np.gradient(np.asarray(sm.data.values, float), axis=0)
+    j = _analyse(sm.data.copy(data=p))
+    assert any(PEAKS_NOTE in w and "along y" in w for w in j["quality"]["warnings"])
+    assert _vg_error(j, sm.truth.to_json()) <= 0.005
+    assert not j["quality"]["ok"] and any(w.startswith(Y_INTEGRAL_DOUBT) for w in j["quality"]["warnings"])

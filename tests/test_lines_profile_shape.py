@@ -49,3 +49,13 @@ def test_too_few_lines_give_no_verdict():
     da = make_map(v + np.random.default_rng(1).normal(0, 0.01, v.shape), x * 1e-3, np.arange(80) * 1e-3)
     shape = line_shape(detect_lines(da))
     assert np.isnan(shape.ratio) and not shape.peaks
+
+
+@pytest.mark.parametrize("preset", ["gaas-double", "si-mos-double"])
+def test_the_peaks_areas_tell_which_gate_was_modulated(preset):
+    # summed across a line along the modulated axis a derivative steps by the sensor's step of that dot;
+    # the hypothesis that gives the two dots comparable steps wins
+    da = quick_double_dot(preset, snr=None, rng=1).data
+    v = np.asarray(da.values, float)
+    assert line_shape(detect_lines(da.copy(data=np.gradient(v, axis=1)))).axis == "x"
+    assert line_shape(detect_lines(da.copy(data=np.gradient(v, axis=0)))).axis == "y"

@@ -12,7 +12,7 @@ import xarray as xr
 from scipy.integrate import cumulative_trapezoid
 
 from stabtool.physics.thermal import fermi_occupation
-from stabtool.preprocess.integral import integral_along_rows, without_spikes
+from stabtool.preprocess.integral import integral_along, integral_along_rows, without_spikes
 
 
 def _map(values):
@@ -77,3 +77,19 @@ def test_a_noiseless_map_loses_nothing_to_the_spike_rule():
     v = sum(1.0 - fermi_occupation(x + 0.3 * y, c, 0.5) for c in (12.0, 31.0, 47.0))
     p = np.gradient(v, axis=1)
     assert (without_spikes(p, 1e-9) == p).all()
+
+
+def test_summed_along_y_a_steps_derivative_crosses_half_height_at_the_step():
+    # a lock-in on the y gate: the sum runs down the columns; each column's offset is taken off
+    y = np.arange(64, dtype=float)
+    step = 1.0 - fermi_occupation(y, 30.25, 0.8)
+    v = np.tile(step[:, None], (1, 5)) + np.arange(5)[None, :]  # columns at different levels
+    s = integral_along(_map(np.gradient(v, axis=0)), "y").values[:, 2]
+    level = 0.5 * (s[5] + s[-5])
+    i = int(np.flatnonzero(s > level)[0])
+    assert i - 1 + (level - s[i - 1]) / (s[i] - s[i - 1]) == pytest.approx(30.25, abs=0.02)
+
+
+def test_an_unknown_axis_is_refused():
+    with pytest.raises(ValueError, match="axis"):
+        integral_along(_map(np.ones((4, 4))), "z")

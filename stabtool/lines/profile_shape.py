@@ -50,10 +50,13 @@ class LineShape:
     """The level ratio of a map's dot lines (the larger family's weighted median) and their number.
 
     ``ratio`` is NaN (and ``peaks`` False) with fewer than :data:`MIN_LINES` usable lines.
+    ``axis`` is the gate axis ("x" or "y") a derivative map most likely differentiates along
+    (:func:`derivative_axis`; "x" unless both families say otherwise).
     """
 
     ratio: float
     n_lines: int
+    axis: str = "x"
 
     @property
     def peaks(self) -> bool:
@@ -84,6 +87,7 @@ def line_shape(detection: LineDetection, values: np.ndarray | None = None) -> Li
     u = np.arange(-h, h + 1, dtype=float)
     outer = h // 3 + 1
     per_family: dict[str, list[tuple[float, float]]] = {"dot1": [], "dot2": []}
+    steps: dict[str, list[tuple[float, float, float]]] = {"dot1": [], "dot2": []}
     for fam, lines in per_family.items():
         family = detection.families.get(fam)
         for ln in family.lines if family is not None else ():
@@ -102,11 +106,42 @@ def line_shape(detection: LineDetection, values: np.ndarray | None = None) -> Li
             excursion = float(np.max(np.abs(m[h // 2 : -(h // 2)] - 0.5 * (left + right))))
             if excursion > 0:
                 lines.append((abs(right - left) / (2.0 * excursion), excursion * length))
+                area = abs(float(np.sum(m - 0.5 * (left + right))))  # the peak's area across the line (px)
+                steps[fam].append((area / max(abs(nx), 1e-3), area / max(abs(ny), 1e-3), excursion * length))
     n_lines = sum(len(v) for v in per_family.values())
     medians = [_weighted_median(v) for v in per_family.values() if len(v) >= 2]
     if n_lines < MIN_LINES or not medians:
         return LineShape(float("nan"), n_lines)
-    return LineShape(float(max(medians)), n_lines)
+    return LineShape(float(max(medians)), n_lines, derivative_axis(steps))
+
+
+def derivative_axis(steps: dict[str, list[tuple[float, float, float]]]) -> str:
+    """The axis a derivative map most likely differentiates along, from its peaks' areas.
+
+    Summed across a line along x, a derivative along x steps by the sensor's
+    step ``h`` of that dot, and one along y by ``h·|n_y/n_x|`` (``n`` the
+    line's normal, in pixels): so each hypothesis gives each family's sensor
+    step from the peak's area along the normal, ``area/|n_x|`` or
+    ``area/|n_y|``. A charge sensor sees both dots of a pair with steps of the
+    same order (the held-out probe draws their ratio over 0.1–3); the
+    hypothesis whose two family steps are nearer each other (in ratio) wins.
+    The two differ by the ratio of the families' slopes (≈ 10 on a typical
+    honeycomb). ``steps`` holds ``(area/|n_x|, area/|n_y|, weight)`` per line
+    and family. With one family only (fewer than two lines in the other), the
+    derivative is taken across that family's lines: a derivative along x hides
+    the shallow (dot2) lines, nearly parallel to x, and one along y the steep
+    (dot1) lines; with neither, "x".
+    """
+    n1, n2 = len(steps["dot1"]), len(steps["dot2"])
+    if n1 < 2 or n2 < 2:
+        return "y" if n2 >= 2 else "x"
+    hx = {f: _weighted_median([(a, w) for a, _, w in v]) for f, v in steps.items()}
+    hy = {f: _weighted_median([(b, w) for _, b, w in v]) for f, v in steps.items()}
+    if min(*hx.values(), *hy.values()) <= 0:
+        return "x"
+    lx = abs(np.log(hx["dot1"] / hx["dot2"]))
+    ly = abs(np.log(hy["dot1"] / hy["dot2"]))
+    return "y" if ly < lx else "x"
 
 
 def _weighted_median(pairs: list[tuple[float, float]]) -> float:

@@ -30,6 +30,7 @@ import numpy as np
 import xarray as xr
 from scipy import ndimage as ndi
 
+from .background import _row_offsets_core
 from .noise import _noise_core
 
 #: a spike stands this many noise σ from its 3 × 3 median, with no such neighbour
@@ -64,26 +65,42 @@ def without_spikes(values: np.ndarray, noise: float) -> np.ndarray:
     return np.where(spikes, med, v)
 
 
-def integral_along_rows(da: xr.DataArray) -> xr.DataArray:
-    """``da`` summed along each row (centred), isolated spikes taken out first.
+def integral_along(da: xr.DataArray, axis: str = "x") -> xr.DataArray:
+    """``da`` summed along ``axis`` (centred), isolated spikes taken out first.
 
     Missing points (NaN) add nothing to the sum and stay missing. The sum
     is in the map's signal unit times points (not volts), so it keeps the
-    signal's scale.
+    signal's scale. Summed along x, each row keeps an unknown offset (the
+    analysis's row offsets take it off); summed along y, each column does,
+    and the columns' offsets are taken off here (medians of the differences
+    between neighbouring columns, :func:`stabtool.preprocess.background._row_offsets_core`
+    on the transposed sum).
 
     Parameters
     ----------
     da : xarray.DataArray, shape (ny, nx)
         A derivative map (lines as peaks or dips), rows along x.
+    axis : {"x", "y"}
+        The axis the map is a derivative along.
 
     Returns
     -------
     xarray.DataArray
         The same coordinates and attributes, the integrated signal.
     """
+    if axis not in ("x", "y"):
+        raise ValueError(f"axis must be 'x' or 'y', got {axis!r}")
     v = np.asarray(da.values, float)
     finite = np.isfinite(v)
     p = np.where(finite, without_spikes(v, _noise_core(v)), 0.0)
-    s = np.cumsum(p, axis=1) - 0.5 * p
+    ax = 1 if axis == "x" else 0
+    s = np.cumsum(p, axis=ax) - 0.5 * p
     s[~finite] = np.nan
+    if axis == "y":
+        s = s - _row_offsets_core(s.T)[None, :]
     return da.copy(data=s)
+
+
+def integral_along_rows(da: xr.DataArray) -> xr.DataArray:
+    """:func:`integral_along` x."""
+    return integral_along(da, "x")
