@@ -12,7 +12,7 @@ import xarray as xr
 from scipy.integrate import cumulative_trapezoid
 
 from stabtool.physics.thermal import fermi_occupation
-from stabtool.preprocess.integral import integral_along, integral_along_rows, without_spikes
+from stabtool.preprocess.integral import integral_along, without_spikes
 
 
 def _map(values):
@@ -25,7 +25,7 @@ def test_the_sum_is_scipys_trapezoid_rule_started_half_a_point_in():
     # S_i = Σ_{k<i} P_k + P_i/2 = cumulative_trapezoid(P)_i + P_0/2 (unit spacing)
     rng = np.random.default_rng(3)
     p = rng.normal(size=(7, 40))
-    s = integral_along_rows(_map(p)).values
+    s = integral_along(_map(p), "x").values
     expected = cumulative_trapezoid(p, axis=1, initial=0.0) + 0.5 * p[:, :1]
     np.testing.assert_allclose(s, expected, rtol=0, atol=1e-12)
 
@@ -37,7 +37,7 @@ def test_the_integral_of_a_steps_derivative_crosses_half_height_at_the_step(cent
     x = np.arange(64, dtype=float)
     step = 1.0 - fermi_occupation(x, centre, 0.8)
     p = np.gradient(np.tile(step, (3, 1)), axis=1)
-    s = integral_along_rows(_map(p)).values[1]
+    s = integral_along(_map(p), "x").values[1]
     level = 0.5 * (s[5] + s[-5])
     i = int(np.flatnonzero(s > level)[0])
     crossing = i - 1 + (level - s[i - 1]) / (s[i] - s[i - 1])
@@ -47,7 +47,7 @@ def test_the_integral_of_a_steps_derivative_crosses_half_height_at_the_step(cent
 def test_missing_points_stay_missing_and_add_nothing():
     p = np.ones((4, 20))
     p[1, 5] = np.nan
-    s = integral_along_rows(_map(p)).values
+    s = integral_along(_map(p), "x").values
     assert np.isnan(s[1, 5]) and np.isfinite(np.delete(s.ravel(), 25)).all()
     assert s[1, 10] == pytest.approx(s[0, 10] - 1.0)  # one point of 1 fewer in the sum
 

@@ -1,9 +1,10 @@
-"""The integral of a derivative map along its rows: a step map for the line fits.
+"""The integral of a derivative map along one gate's axis: a step map for the line fits.
 
 A lock-in that modulates a gate reads the sensor's derivative ``dS/dV``; its
-lines are peaks or dips. Summed along the rows the map is a step map again:
-wherever a ridge is crossed the sum steps by the ridge's area, so every line
-keeps its place whichever gate was modulated (only the step heights change).
+lines are peaks or dips. Summed along the modulated gate's axis the map is a
+step map again. Wherever a ridge is crossed the sum steps by the ridge's
+area, so every line keeps its place whichever axis the sum runs along (only
+the step heights change, with the lines' slopes).
 
 Three details matter for the line fits downstream:
 
@@ -14,8 +15,8 @@ Three details matter for the line fits downstream:
   than the map's strong features) from their 3 × 3 median whose four
   nearest neighbours all stand off far less. A ridge is never isolated: it
   continues along itself.
-* Nothing is taken off per row. Summing white noise makes a random walk
-  along each row, but any per-row correction of the sum (its mean, a
+* Nothing is taken off per row (for a sum along x). Summing white noise
+  makes a random walk along each row, but any per-row correction of the sum (its mean, a
   polynomial, a high-pass) also takes off part of every step of a line
   that crosses only part of the row, and the rows above and below such a
   line lose different amounts: the shallow lines tilt (seen on noiseless
@@ -100,7 +101,3 @@ def integral_along(da: xr.DataArray, axis: str = "x") -> xr.DataArray:
         s = s - _row_offsets_core(s.T)[None, :]
     return da.copy(data=s)
 
-
-def integral_along_rows(da: xr.DataArray) -> xr.DataArray:
-    """:func:`integral_along` x."""
-    return integral_along(da, "x")
