@@ -189,6 +189,9 @@ def charging_energies(scale: Any, diagram: Any) -> tuple[dict, dict]:
 INTEGRAL_MODEL_FIT = False
 
 
+#: a derivative map's sum whose family along the sum has |M| below this is doubtful (cross-capacitance
+#: ratios of a dot's two plungers below 2 % are rare: common practice, no source)
+STREAK_M = 0.02
 #: the reason a derivative map summed along y is never ok
 Y_INTEGRAL_DOUBT = "summed along y"
 
@@ -1262,6 +1265,15 @@ class Analyzer:
                 f"{what}; their integrals along x and y {why}", doubtful=res.diagram.ok and not transport))
         q = again.quality.with_warning(f"{what}: analysed its integral along {axis}; widths include the "
                                        "modulation", doubtful=False)
+        along = (1, 0) if axis == "x" else (0, 1)  # M21 = −(dot2 slope), M12 = −1/(dot1 slope)
+        m_along = float(again.diagram.vg_matrix[along])
+        if abs(m_along) < STREAK_M:
+            # the summed noise differs from one row (column) to the next, and its streaks run along
+            # the sum: on the probe's lock-in maps the "dot2" family of an x-sum was such streaks on
+            # 25 of 41 maps (slope within 0.03 of 0, M21 off by 0.1–2.8 at tiny stated errors)
+            fam = "dot2" if axis == "x" else "dot1"
+            q = q.with_warning(f"{fam} lines run along the sum ({axis}): M{along[0] + 1}{along[1] + 1} = "
+                               f"{m_along:.3g}; streaks of the summed noise look the same")
         if axis == "y":
             # the analysis measures steep lines across the rows, and the sum's noise walks along the
             # columns: their profiles cross independent walks (probe maps: M21 off by 3.6 stated σ)

@@ -95,3 +95,13 @@ def test_a_lockin_on_the_y_gate_is_summed_along_y_and_stays_doubtful(preset):
     assert any(PEAKS_NOTE in w and "along y" in w for w in j["quality"]["warnings"])
     assert _vg_error(j, sm.truth.to_json()) <= 0.005
     assert not j["quality"]["ok"] and any(w.startswith(Y_INTEGRAL_DOUBT) for w in j["quality"]["warnings"])
+
+
+@pytest.mark.regression
+def test_a_family_along_the_sum_is_taken_for_the_summed_noises_streaks():
+    # probe seed 1 (SNR 60, row walk): the x-sum's "dot2" family was horizontal streaks of the summed
+    # noise (M21 ≈ 0.001, truth 0.95, at a stated error of a few 1e-3); it must say so and stay doubtful
+    pm = probe_map(1, lockin=True)
+    j = _analyse(pm.data, electron_temperature_K=pm.meta["T"])
+    assert any(w.startswith("dot2 lines run along the sum (x)") for w in j["quality"]["warnings"])
+    assert not j["quality"]["ok"]
