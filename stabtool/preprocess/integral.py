@@ -6,7 +6,7 @@ step map again. Wherever a ridge is crossed the sum steps by the ridge's
 area, so every line keeps its place whichever axis the sum runs along (only
 the step heights change, with the lines' slopes).
 
-Three details matter for the line fits downstream:
+Four details matter for the line fits downstream:
 
 * The sum is centred (trapezoid rule, ``S_i = Σ_{k<i} P_k + P_i/2``): a plain
   cumulative sum puts every step half a point early.
@@ -15,14 +15,22 @@ Three details matter for the line fits downstream:
   than the map's strong features) from their 3 × 3 median whose four
   nearest neighbours all stand off far less. A ridge is never isolated: it
   continues along itself.
-* Nothing is taken off per row (for a sum along x). Summing white noise
-  makes a random walk along each row, but any per-row correction of the sum (its mean, a
-  polynomial, a high-pass) also takes off part of every step of a line
-  that crosses only part of the row, and the rows above and below such a
-  line lose different amounts: the shallow lines tilt (seen on noiseless
-  generator maps: the dot-2 virtual-gate element off by 0.005 with the mean
-  taken off, 0.025 with a cubic, 0.0004 without). The row offsets the
-  analysis measures clear of the lines take the walk's level off instead.
+* Offsets of whole rows of the derivative (a lock-in's offset drifting from
+  row to row) are taken off before the sum, which would turn each into a
+  ramp along its row. They come from medians of the differences between
+  neighbouring rows (:func:`stabtool.preprocess.background._row_offsets_core`),
+  which a line crossing between two rows hardly moves (noiseless generator
+  maps: M21 off by 0.0008 with them, 0.0004 without).
+* Nothing else is taken off per row of the sum. Summing white noise makes a
+  random walk along each row, but any per-row correction of the sum itself
+  (its mean, a polynomial, a high-pass) also takes off part of every step
+  of a line that crosses only part of the row, and the rows above and below
+  such a line lose different amounts: the shallow lines tilt (noiseless
+  generator maps: M21 off by 0.005 with the mean taken off, 0.025 with a
+  cubic). The walk stays, and the stated errors of the line fits leave it
+  out (see :mod:`stabtool.analysis`, ``SUM_DOUBT``).
+
+For a sum along y, read "column" for "row".
 """
 
 from __future__ import annotations
@@ -93,7 +101,10 @@ def integral_along(da: xr.DataArray, axis: str = "x") -> xr.DataArray:
         raise ValueError(f"axis must be 'x' or 'y', got {axis!r}")
     v = np.asarray(da.values, float)
     finite = np.isfinite(v)
-    p = np.where(finite, without_spikes(v, _noise_core(v)), 0.0)
+    p = without_spikes(v, _noise_core(v))
+    # offsets of whole rows (columns) of the derivative, which the sum would turn into ramps
+    p = p - _row_offsets_core(p)[:, None] if axis == "x" else p - _row_offsets_core(p.T)[None, :]
+    p = np.where(finite, p, 0.0)
     ax = 1 if axis == "x" else 0
     s = np.cumsum(p, axis=ax) - 0.5 * p
     s[~finite] = np.nan
