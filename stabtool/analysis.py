@@ -1211,7 +1211,13 @@ class Analyzer:
             return analyze_diamond_map(da)
         res = self._stability(da)
         if self.detector is None:
-            res = self._as_derivative_map(da, res)
+            try:
+                res = self._as_derivative_map(da, res)
+            except Exception as exc:  # the ordinary analysis stands; the check's failure is a note
+                if isinstance(exc, InputError):
+                    raise
+                res = replace(res, quality=res.quality.with_warning(
+                    f"the check for a derivative read-out failed ({type(exc).__name__}: {exc})", doubtful=False))
         q = res.quality
         if not q.ok:
             # the reasons only (the notes are in the result): at most three

@@ -106,3 +106,16 @@ def test_a_family_along_the_sum_is_taken_for_the_summed_noises_streaks():
     j = _analyse(pm.data, electron_temperature_K=pm.meta["T"])
     assert any(w.startswith("dot2 lines run along the sum (x)") for w in j["quality"]["warnings"])
     assert not j["quality"]["ok"]
+
+
+def test_a_failing_derivative_check_leaves_the_ordinary_analysis_with_a_note(monkeypatch):
+    from stabtool.lines import profile_shape
+
+    def broken(*args, **kwargs):
+        raise RuntimeError("boom")
+
+    monkeypatch.setattr(profile_shape, "line_shape", broken)
+    sm = quick_double_dot("ge-double", snr=30.0, rng=1)
+    plain = _analyse(sm.data, refine=False)
+    assert any("derivative read-out failed (RuntimeError: boom)" in w for w in plain["quality"]["warnings"])
+    assert plain["virtual_gate_matrix"] is not None
