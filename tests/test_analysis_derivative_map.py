@@ -68,14 +68,15 @@ def test_held_out_lockin_maps_give_the_virtual_gates_and_stay_doubtful(seed):
 
 @pytest.mark.regression
 @pytest.mark.parametrize("preset", ["si-sige-double", "gaas-double", "ge-double", "si-mos-double"])
-def test_noisy_lockin_maps_are_never_ok_beyond_the_bounds(preset):
-    # SNR 30 and 10: the summed noise is a random walk along each row; the verdict must say so when
-    # the numbers suffer (measured SNR 30: |ΔM| 0.0004-0.015, all doubtful)
+def test_noisy_lockin_maps_are_recognised_and_never_ok(preset):
+    # SNR 30 and 10 (99.5th-percentile peak / noise): the lines are recognised as peaks, and the
+    # summed noise's walk keeps the verdict doubtful (measured SNR 30: |ΔM| 0.0009-0.012; SNR 10: no
+    # charge lattice from the sums)
     for snr in (30.0, 10.0):
         sm = quick_double_dot(preset, snr=None, rng=1)
         j = _analyse(_lockin(sm.data, snr, seed=7))
-        if j["quality"]["ok"]:
-            assert _vg_error(j, sm.truth.to_json()) <= (0.005 if snr >= 10 else 0.02)
+        assert any(PEAKS_NOTE in w for w in j["quality"]["warnings"]), (preset, snr)
+        assert not j["quality"]["ok"]
 
 
 @pytest.mark.regression
