@@ -200,8 +200,9 @@ SUM_DOUBT = "derivative map summed along"
 def _integral_rank(res: AnalysisResult, order: int) -> tuple:
     """Sort key of a derivative map's integral analyses: ok first, then with a charge lattice, then
     the smaller stated virtual-gate error, then the axis the peaks' areas pointed to (``order`` 0)."""
-    err = float(np.nanmax(res.diagram.vg_matrix_error)) if res.diagram.ok else np.inf
-    return (not res.quality.ok, not res.diagram.ok, err if np.isfinite(err) else np.inf, order)
+    errors = np.asarray(res.diagram.vg_matrix_error, float)
+    err = float(np.max(errors[np.isfinite(errors)])) if res.diagram.ok and np.isfinite(errors).any() else np.inf
+    return (not res.quality.ok, not res.diagram.ok, err, order)
 
 
 @dataclass(frozen=True)
