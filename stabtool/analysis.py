@@ -193,6 +193,8 @@ INTEGRAL_MODEL_FIT = False
 #: a derivative map's sum whose family along the sum has |M| below this is doubtful (cross-capacitance
 #: ratios of a dot's two plungers below 2 % are rare: common practice, no source)
 STREAK_M = 0.02
+#: what a map measures (``Analyzer(readout=...)``, ``stabtool analyze --readout``)
+READOUTS = ("auto", "charge", "derivative-x", "derivative-y")
 #: the reason a derivative map's sum is never ok (followed by the axis)
 SUM_DOUBT = "derivative map summed along"
 
@@ -1122,6 +1124,12 @@ class Analyzer:
     detector : callable, optional
         ``detector(da) -> LineDetection``; default: the line detector of
         :mod:`stabtool.lines`.
+    readout : {"auto", "charge", "derivative-x", "derivative-y"}
+        What the map measures. "auto" takes a map whose lines are peaks for
+        a derivative read-out (a lock-in on a gate) and analyses its sum
+        (:meth:`_as_derivative_map`); "charge" never does; "derivative-x"
+        and "derivative-y" say the map is the derivative along that gate and
+        analyse its sum along that axis directly.
 
     Examples
     --------
@@ -1140,9 +1148,12 @@ class Analyzer:
         bias_mV: float | None = None,
         mode: str = "auto",
         detector: Callable[[xr.DataArray], LineDetection] | None = None,
+        readout: str = "auto",
     ) -> None:
         if mode not in ("auto", "stability", "diamonds"):
             raise InputError("mode", f"expected 'auto', 'stability' or 'diamonds', got {mode!r}")
+        if readout not in READOUTS:
+            raise InputError("readout", f"expected one of {', '.join(READOUTS)}, got {readout!r}")
         if bias_mV is not None:
             b = float(bias_mV)
             if not (np.isfinite(b) and b != 0):
@@ -1170,6 +1181,7 @@ class Analyzer:
         self.bias_mV = bias_mV
         self.mode = mode
         self.detector = detector
+        self.readout = readout
 
     def __repr__(self) -> str:
         det = "default" if self.detector is None else getattr(self.detector, "__name__", repr(self.detector))
@@ -1177,7 +1189,7 @@ class Analyzer:
             f"Analyzer(electron_temperature_K={self.electron_temperature_K!r}, lever_arm={self.lever_arm!r}, "
             f"lever_arm_file={self.lever_arm_file!r}, refine={self.refine!r}, "
             f"tunnel_coupling={self.tunnel_coupling!r}, bias_mV={self.bias_mV!r}, mode={self.mode!r}, "
-            f"detector={det})"
+            f"detector={det}, readout={self.readout!r})"
         )
 
     @staticmethod
@@ -1210,8 +1222,12 @@ class Analyzer:
 
         if self.mode == "diamonds" or (self.mode == "auto" and is_bias_axis(da)):
             return analyze_diamond_map(da)
-        res = self._stability(da)
-        if self.detector is None:
+        if self.readout.startswith("derivative-"):
+            axis = self.readout[-1]
+            res = self._summed(da, (axis,), f"the map is a derivative along {axis} (as given)")
+        else:
+            res = self._stability(da)
+        if self.detector is None and self.readout == "auto":
             try:
                 res = self._as_derivative_map(da, res)
             except Exception as exc:  # the ordinary analysis stands; the check's failure is a note
@@ -1254,25 +1270,34 @@ class Analyzer:
             return res
         what = (f"the lines are peaks, not steps (level ratio {shape.ratio:.3f}, {shape.n_lines} lines; a lock-in's "
                 "derivative?)")
+        return self._summed(da, (shape.axis, "y" if shape.axis == "x" else "x"), what, first=res)
+
+    def _summed(self, da: xr.DataArray, axes: tuple[str, ...], what: str,
+                first: AnalysisResult | None = None) -> AnalysisResult:
+        """The analysis of ``da``'s sums along ``axes`` (the better one), with the doubts every sum gets.
+
+        ``first`` is the ordinary analysis of a map found to be a derivative
+        map: it stands, with a note, when no sum gives a charge lattice.
+        """
         lines_only = copy.copy(self)
         lines_only.refine = INTEGRAL_MODEL_FIT
-        # the axis the peaks' areas point to first; the other one too, and the better analysis wins
-        axes = (shape.axis, "y" if shape.axis == "x" else "x")
+        # the axis given (or the one the peaks' areas point to) first, and the better analysis wins
         runs = [lines_only._stability(da, integrate=a) for a in axes]
-        k = min(range(2), key=lambda i: _integral_rank(runs[i], i))
+        k = min(range(len(runs)), key=lambda i: _integral_rank(runs[i], i))
         again, axis = runs[k], axes[k]
         spent = sum(r.timings_s.get("total", 0.0) for r in runs)
-        timings = {**again.timings_s, "total": res.timings_s.get("total", 0.0) + spent}
-        transport = res.transport is not None and res.transport.consistent
-        if not again.diagram.ok or (transport and not again.quality.ok):
-            why = "gave no charge lattice" if not again.diagram.ok else "was doubtful too"
-            # a lattice of the step analysis on peaks rests on the peaks' flanks (each line twice)
-            return replace(res, quality=res.quality.with_warning(
-                f"{what}; their integrals along x and y {why}", doubtful=res.diagram.ok and not transport))
+        timings = {**again.timings_s, "total": (first.timings_s.get("total", 0.0) if first else 0.0) + spent}
+        if first is not None:
+            transport = first.transport is not None and first.transport.consistent
+            if not again.diagram.ok or (transport and not again.quality.ok):
+                why = "gave no charge lattice" if not again.diagram.ok else "was doubtful too"
+                # a lattice of the step analysis on peaks rests on the peaks' flanks (each line twice)
+                return replace(first, quality=first.quality.with_warning(
+                    f"{what}; their integrals along x and y {why}", doubtful=first.diagram.ok and not transport))
         q = again.quality.with_warning(f"{what}: analysed its integral along {axis}; widths include the "
                                        "modulation", doubtful=False)
         along = (1, 0) if axis == "x" else (0, 1)  # M21 = −(dot2 slope), M12 = −1/(dot1 slope)
-        m_along = float(again.diagram.vg_matrix[along])
+        m_along = float(again.diagram.vg_matrix[along]) if again.diagram.ok else float("nan")
         if abs(m_along) < STREAK_M:
             # the summed noise differs from one row (column) to the next, and its streaks run along
             # the sum: on the probe's lock-in maps the "dot2" family of an x-sum was such streaks on

@@ -9,6 +9,7 @@ below SNR 10; Cdg 2 %).
 
 from __future__ import annotations
 
+import json
 import warnings
 
 import numpy as np
@@ -120,3 +121,35 @@ def test_a_failing_derivative_check_leaves_the_ordinary_analysis_with_a_note(mon
     plain = _analyse(sm.data, refine=False)
     assert any("derivative read-out failed (RuntimeError: boom)" in w for w in plain["quality"]["warnings"])
     assert plain["virtual_gate_matrix"] is not None
+
+
+@pytest.mark.regression
+def test_the_user_can_say_what_the_map_measures(tmp_path, capsys):
+    from stabtool.cli.main import main
+    from stabtool.io import save_map
+
+    sm = quick_double_dot("gaas-double", snr=None, rng=1)
+    lockin = _lockin(sm.data)
+    # "charge": never summed (the step analysis of the peaks stands, and finds no lattice here)
+    j = _analyse(lockin, readout="charge")
+    assert not any(PEAKS_NOTE in w or SUM_DOUBT in w for w in j["quality"]["warnings"])
+    # "derivative-x": summed along x at once, without the shape test
+    j = _analyse(lockin, readout="derivative-x")
+    assert any("the map is a derivative along x (as given)" in w for w in j["quality"]["warnings"])
+    assert _vg_error(j, sm.truth.to_json()) <= 0.005
+    assert not j["quality"]["ok"]
+    # the same from the command line; a wrong value is a usage error
+    path = tmp_path / "lockin.nc"
+    save_map(lockin, path)
+    assert main(["analyze", str(path), "--readout", "derivative-x", "--json", "--quiet"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert any("(as given)" in w for w in out["quality"]["warnings"])
+    with pytest.raises(SystemExit):
+        main(["analyze", str(path), "--readout", "lockin"])
+
+
+def test_an_unknown_readout_is_refused():
+    from stabtool.errors import InputError
+
+    with pytest.raises(InputError, match="readout"):
+        Analyzer(readout="lockin")

@@ -48,6 +48,7 @@ def run(args: argparse.Namespace) -> int:
         refine=not args.no_refine,
         bias_mV=args.bias_mV,
         mode=args.mode,
+        readout=args.readout,
     )
     res = analyzer(da)
     if args.plot:
@@ -86,6 +87,10 @@ def register(subparsers: Any) -> None:
     p.add_argument("--mode", choices=("auto", "stability", "diamonds"), default="auto",
                    help="map kind; 'auto' treats a map whose y axis is named like a bias (bias, sd, vsd) "
                         "as Coulomb diamonds")
+    p.add_argument("--readout", choices=("auto", "charge", "derivative-x", "derivative-y"), default="auto",
+                   help="what the map measures: 'auto' analyses a map whose lines are peaks (a lock-in's "
+                        "derivative) as its sum along the modulated gate; 'derivative-x'/'derivative-y' say "
+                        "which gate was modulated; 'charge' never sums")
     p.add_argument("--json", action="store_true", help="print the result as one JSON object")
     p.add_argument("--plot", default=None, metavar="OUT.png", help="write a figure of the analysis")
     p.add_argument("--save", default=None, metavar="OUT.nc", help="write the map and all results (NetCDF)")
