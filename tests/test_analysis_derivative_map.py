@@ -15,19 +15,12 @@ import warnings
 import numpy as np
 import pytest
 from _probe import make_map as probe_map
+from _readout import lockin
 
 from stabtool.analysis import SUM_DOUBT, Analyzer
 from stabtool.simulate import quick_double_dot
 
 PEAKS_NOTE = "the lines are peaks, not steps"
-
-
-def _lockin(da, snr=None, seed=0):
-    """The map's central difference along x (modulation ±1 point) with white noise at ``snr``."""
-    p = np.gradient(np.asarray(da.values, float), axis=1)
-    if snr is not None:
-        p = p + np.random.default_rng(seed).normal(0.0, np.percentile(np.abs(p), 99.5) / snr, p.shape)
-    return da.copy(data=p)
 
 
 def _analyse(da, **kw):
@@ -47,7 +40,7 @@ def _vg_error(j, truth):
 def test_a_noiseless_lockin_map_gives_the_virtual_gates(preset, seed):
     # before: no charge lattice on these maps (the step analysis found each peak's two flanks)
     sm = quick_double_dot(preset, snr=None, rng=seed)
-    j = _analyse(_lockin(sm.data))
+    j = _analyse(lockin(sm.data))
     assert any(PEAKS_NOTE in w for w in j["quality"]["warnings"])
     assert _vg_error(j, sm.truth.to_json()) <= 0.005  # measured 0.0001-0.0004
     cdg, cdg_true = np.array(j["gate_capacitance_aF"], float), np.array(sm.truth.to_json()["gate_capacitance_aF"])
@@ -75,7 +68,7 @@ def test_noisy_lockin_maps_are_recognised_and_never_ok(preset):
     # charge lattice from the sums)
     for snr in (30.0, 10.0):
         sm = quick_double_dot(preset, snr=None, rng=1)
-        j = _analyse(_lockin(sm.data, snr, seed=7))
+        j = _analyse(lockin(sm.data, snr, seed=7))
         assert any(PEAKS_NOTE in w for w in j["quality"]["warnings"]), (preset, snr)
         assert not j["quality"]["ok"]
 
@@ -129,18 +122,18 @@ def test_the_user_can_say_what_the_map_measures(tmp_path, capsys):
     from stabtool.io import save_map
 
     sm = quick_double_dot("gaas-double", snr=None, rng=1)
-    lockin = _lockin(sm.data)
+    derivative = lockin(sm.data)
     # "charge": never summed (the step analysis of the peaks stands, and finds no lattice here)
-    j = _analyse(lockin, readout="charge")
+    j = _analyse(derivative, readout="charge")
     assert not any(PEAKS_NOTE in w or SUM_DOUBT in w for w in j["quality"]["warnings"])
     # "derivative-x": summed along x at once, without the shape test
-    j = _analyse(lockin, readout="derivative-x")
+    j = _analyse(derivative, readout="derivative-x")
     assert any("the map is a derivative along x (as given)" in w for w in j["quality"]["warnings"])
     assert _vg_error(j, sm.truth.to_json()) <= 0.005
     assert not j["quality"]["ok"]
     # the same from the command line; a wrong value is a usage error
     path = tmp_path / "lockin.nc"
-    save_map(lockin, path)
+    save_map(derivative, path)
     assert main(["analyze", str(path), "--readout", "derivative-x", "--json", "--quiet"]) == 0
     out = json.loads(capsys.readouterr().out)
     assert any("(as given)" in w for w in out["quality"]["warnings"])

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from _readout import staircase
+from _readout import lockin, staircase
 
 from stabtool.lines import detect_lines
 from stabtool.lines.profile_shape import PEAK_RATIO, line_shape
@@ -18,20 +18,12 @@ from stabtool.mapdata import make_map
 from stabtool.simulate import quick_double_dot
 
 
-def _lockin(da, snr, seed):
-    """The map's central difference along x (a lock-in on the x gate) with white noise at ``snr``."""
-    p = np.gradient(np.asarray(da.values, float), axis=1)
-    if snr is not None:
-        p = p + np.random.default_rng(seed).normal(0.0, np.percentile(np.abs(p), 99.5) / snr, p.shape)
-    return da.copy(data=p)
-
-
 @pytest.mark.parametrize("preset,snr", [("gaas-double", None), ("si-mos-double", 20.0), ("ge-double", 8.0)])
 def test_a_charge_map_steps_and_its_derivative_peaks(preset, snr):
     steps = quick_double_dot(preset, snr=snr, rng=2).data
     shape = line_shape(detect_lines(steps))
     assert shape.ratio > 0.5 and not shape.peaks
-    peaks = _lockin(quick_double_dot(preset, snr=None, rng=2).data, snr, 2)
+    peaks = lockin(quick_double_dot(preset, snr=None, rng=2).data, snr, 2)
     shape = line_shape(detect_lines(peaks))
     assert shape.n_lines >= 3 and shape.ratio < PEAK_RATIO and shape.peaks
 

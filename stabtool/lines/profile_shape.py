@@ -64,21 +64,19 @@ class LineShape:
         return bool(np.isfinite(self.ratio) and self.ratio < PEAK_RATIO)
 
 
-def line_shape(detection: LineDetection, values: np.ndarray | None = None) -> LineShape:
-    """The level ratio of the dot lines of ``detection`` on ``values`` (default: its processed map).
+def line_shape(detection: LineDetection) -> LineShape:
+    """The level ratio of the dot lines of ``detection``, on the map it processed.
 
     Parameters
     ----------
     detection : LineDetection
-        Lines found on the map (their end points are used).
-    values : ndarray, shape (ny, nx), optional
-        The map the profiles are taken on (NaN allowed).
+        Lines found on the map (their end points are used; NaN points are allowed).
 
     Returns
     -------
     LineShape
     """
-    img = np.asarray(detection.processed if values is None else values, float)
+    img = np.asarray(detection.processed, float)
     if img.ndim != 2 or not np.isfinite(img).any():
         return LineShape(float("nan"), 0)
     img = np.where(np.isfinite(img), img, np.nanmedian(img))
