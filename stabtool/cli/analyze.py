@@ -12,6 +12,8 @@ from __future__ import annotations
 import argparse
 from typing import Any
 
+from ._choices import READOUT_CHOICES, READOUT_HELP
+
 __all__ = ["register", "run"]
 
 
@@ -87,10 +89,7 @@ def register(subparsers: Any) -> None:
     p.add_argument("--mode", choices=("auto", "stability", "diamonds"), default="auto",
                    help="map kind; 'auto' treats a map whose y axis is named like a bias (bias, sd, vsd) "
                         "as Coulomb diamonds")
-    p.add_argument("--readout", choices=("auto", "charge", "derivative-x", "derivative-y"), default="auto",
-                   help="what the map measures: 'auto' analyses a map whose lines are peaks (a lock-in's "
-                        "derivative) as its sum along the modulated gate; 'derivative-x'/'derivative-y' say "
-                        "which gate was modulated; 'charge' never sums")
+    p.add_argument("--readout", choices=READOUT_CHOICES, default="auto", help=READOUT_HELP)
     p.add_argument("--json", action="store_true", help="print the result as one JSON object")
     p.add_argument("--plot", default=None, metavar="OUT.png", help="write a figure of the analysis")
     p.add_argument("--save", default=None, metavar="OUT.nc", help="write the map and all results (NetCDF)")

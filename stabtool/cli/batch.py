@@ -17,7 +17,9 @@ import argparse
 import sys
 from typing import Any
 
-__all__ = ["register", "run", "add_analysis_options", "make_analyzer"]
+from ._choices import READOUT_CHOICES, READOUT_HELP
+
+__all__ = ["add_analysis_options", "make_analyzer", "register", "run"]
 
 
 def add_analysis_options(p: argparse.ArgumentParser) -> None:
@@ -32,6 +34,7 @@ def add_analysis_options(p: argparse.ArgumentParser) -> None:
     ref.add_argument("--lever-arm-file", default=None, metavar="FILE",
                      help="lever-arm calibration file")
     p.add_argument("--no-refine", action="store_true", help="skip the global model fit to each map")
+    p.add_argument("--readout", choices=READOUT_CHOICES, default="auto", help=READOUT_HELP)
 
 
 def make_analyzer(args: argparse.Namespace) -> Any:
@@ -43,6 +46,7 @@ def make_analyzer(args: argparse.Namespace) -> Any:
         lever_arm=args.lever_arm,
         lever_arm_file=args.lever_arm_file,
         refine=not args.no_refine,
+        readout=args.readout,
     )
 
 
