@@ -174,3 +174,32 @@ def test_the_batch_measures_drift_from_the_workers_feature_images_without_reload
         np.testing.assert_array_equal(getattr(res, name), getattr(direct, name))
     assert list(res.files) == list(direct.files)
     assert not list((tmp_path / "out").rglob("*.npy"))
+
+
+def test_cli_reads_each_file_once_and_measures_what_the_files_give(tmp_path, monkeypatch, capsys):
+    """Finding the series and measuring the drift share one read per file (the feature images are
+    kept on disk meanwhile, none left behind); the offsets are those of the files read directly."""
+    import stabtool.batch.drift as drift_mod
+    import stabtool.io
+
+    maps, _, _ = night(n=5, seed=301)
+    folder = _night_folder(tmp_path, maps)
+    direct = measure_drift(sorted(str(p) for p in folder.iterdir()))
+    reads = []
+    real = stabtool.io.load
+    monkeypatch.setattr(stabtool.io, "load", lambda path, *a, **k: reads.append(path) or real(path, *a, **k))
+    monkeypatch.setattr(drift_mod, "_load", lambda item: pytest.fail(f"{item} loaded again"))
+    assert main(["drift", str(folder), "--out", str(tmp_path / "out"), "--quiet"]) == 0
+    assert sorted(map(str, reads)) == sorted(str(p) for p in folder.iterdir())
+    data = json.loads((tmp_path / "out" / "drift.json").read_text())
+    assert [s["offset_x_mV"] for s in data["sweeps"]] == pytest.approx(1e3 * direct.offset_x_V, abs=1e-9)
+    assert not list(tmp_path.rglob("*.npy"))
+
+
+def test_cli_names_a_corrupt_file_among_the_sweeps(tmp_path, capsys):
+    maps, _, _ = night(n=3, seed=302)
+    folder = _night_folder(tmp_path, maps)
+    (folder / "sweep_99.nc").write_bytes(b"\x89HDF\r\n\x1a\n" + b"\x00" * 64)
+    code = main(["drift", str(folder), "--out", str(tmp_path / "out")])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2 and len(err) == 1 and "sweep_99.nc" in err[0] and "Traceback" not in err[0]

@@ -25,7 +25,8 @@ import numpy as np
 
 from .store import CAUTION, BatchRecord, atomic_write_text
 
-__all__ = ["KEY_QUANTITIES", "write_summary", "drift_for_batch", "find_repeated_series", "series_of_files"]
+__all__ = ["KEY_QUANTITIES", "drift_for_batch", "find_repeated_series", "series_of_files", "series_of_files_read_once",
+           "write_summary"]
 
 #: (column of the flat table, label, scale to display unit, unit) of the trend plots and table.
 KEY_QUANTITIES: tuple[tuple[str, str, float, str], ...] = (
@@ -134,15 +135,24 @@ def _trend_figure(records: Sequence[BatchRecord], rows: Sequence[dict]) -> str |
 def _map_header(path: str) -> dict | None:
     """Gates, window, device and time of a map file (the map itself is dropped)."""
     from ..io import load
-    from ..mapdata import map_axes
-    from .drift import sweep_time_of
 
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             da = load(path)
-        ax = map_axes(da)
     except Exception:  # noqa: BLE001 - a map that cannot be read is simply not in a series
+        return None
+    return _header_of_map(path, da)
+
+
+def _header_of_map(path: str, da: Any) -> dict | None:
+    """Gates, window, device and time of the map ``da`` read from ``path``."""
+    from ..mapdata import map_axes
+    from .drift import sweep_time_of
+
+    try:
+        ax = map_axes(da)
+    except Exception:  # noqa: BLE001 - a map without usable axes is simply not in a series
         return None
     return {
         "path": path,
@@ -219,6 +229,56 @@ def series_of_files(paths: Sequence[str], *, min_sweeps: int = 2,
     if any(h is None for h in heads):
         return None
     return _series_of_headers([h for h in heads if h is not None], min_sweeps=min_sweeps, min_overlap=min_overlap)
+
+
+def series_of_files_read_once(paths: Sequence[str], feature_dir: str | os.PathLike[str], *,
+                              min_sweeps: int = 2, min_overlap: float = 0.7
+                              ) -> tuple[list[list[str]] | None, dict[str, Any]]:
+    """:func:`series_of_files`, reading each file once for the series and for the drift.
+
+    Each map's drift feature (:func:`stabtool.batch.drift.feature_of`) is
+    saved under ``feature_dir`` while the map is in memory, so that
+    :func:`stabtool.batch.drift.measure_drift` need not load the file again
+    (only one feature image is held at a time).
+
+    Returns
+    -------
+    series : list of list of str, or None
+        As :func:`series_of_files` (None when a file cannot be read).
+    items : dict
+        Per path, what to pass to ``measure_drift``: a
+        :class:`~stabtool.batch.drift.PreparedSweep`, or the path itself
+        where no feature could be made (``measure_drift`` then loads it
+        and reports its fault).
+    """
+    import numpy as np
+
+    from ..io import load
+    from .drift import PreparedSweep, feature_of
+
+    heads: list[dict | None] = []
+    items: dict[str, Any] = {}
+    for k, path in enumerate(str(p) for p in paths):
+        items[path] = path
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                da = load(path)
+        except Exception:  # noqa: BLE001 - reported by measure_drift, which loads it again
+            heads.append(None)
+            continue
+        heads.append(_header_of_map(path, da))
+        try:
+            feat = feature_of(da)
+        except Exception:  # noqa: BLE001 - likewise
+            continue
+        target = Path(feature_dir) / f"sweep-{k:05d}.npy"
+        np.save(target, feat.img, allow_pickle=False)
+        items[path] = PreparedSweep.of(path, str(target), feat)
+    if any(h is None for h in heads):
+        return None, items
+    series = _series_of_headers([h for h in heads if h is not None], min_sweeps=min_sweeps, min_overlap=min_overlap)
+    return series, items
 
 
 def _series_of_headers(heads: list[dict], *, min_sweeps: int, min_overlap: float) -> list[list[str]]:

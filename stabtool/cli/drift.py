@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import tempfile
 from dataclasses import replace
 from pathlib import Path
 from typing import Any
@@ -34,8 +35,9 @@ def run(args: argparse.Namespace) -> int:
 
         raise InputError(args.out, "--out must be a folder, but a file of that name exists")
     paths = [str(p) for p in discover_inputs(args.inputs, exclude=[out])]
-    paths, left_out = _one_series(paths)
-    res = measure_drift(paths, upsample=args.upsample, jump_threshold=args.jump_threshold)
+    with tempfile.TemporaryDirectory(prefix="stabtool-drift-") as features:
+        items, left_out = _one_series(paths, features)
+        res = measure_drift(items, upsample=args.upsample, jump_threshold=args.jump_threshold)
     if left_out:
         names = ", ".join(Path(p).name for p in left_out)
         res = replace(res, quality=res.quality.with_warning(
@@ -54,23 +56,24 @@ def run(args: argparse.Namespace) -> int:
     return 0
 
 
-def _one_series(paths: list[str]) -> tuple[list[str], list[str]]:
+def _one_series(paths: list[str], feature_dir: str) -> tuple[list[Any], list[str]]:
     """The largest series of repeated sweeps among ``paths`` and the maps left out of it.
 
     A night's folder often holds a survey and a zoom beside the repeats; registering
     those to the repeats gives offsets of whole cells, not drift. The series are found
     as the batch finds them (same gates, shape and device, windows overlapping by 70 %).
     All maps are kept when a file cannot be read (the drift reports it) or when no two
-    maps form a series.
+    maps form a series. Each file is read once: the series' items carry the drift
+    features saved under ``feature_dir``.
     """
-    from ..batch.summary import series_of_files
+    from ..batch.summary import series_of_files_read_once
 
-    series = series_of_files(paths)
+    series, items = series_of_files_read_once(paths, feature_dir)
     if not series:
-        return paths, []
+        return [items[p] for p in paths], []
     best = max(series, key=len)  # (ties: the earliest series)
     keep = set(best)
-    return [p for p in paths if p in keep], [p for p in paths if p not in keep]
+    return [items[p] for p in paths if p in keep], [p for p in paths if p not in keep]
 
 
 def register(subparsers: Any) -> None:
