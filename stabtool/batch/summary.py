@@ -270,7 +270,7 @@ def series_of_files_read_once(paths: Sequence[str], feature_dir: str | os.PathLi
         heads.append(_header_of_map(path, da))
         try:
             feat = feature_of(da)
-        except Exception:  # noqa: BLE001 - likewise
+        except Exception:  # noqa: BLE001, S112 - likewise
             continue
         target = Path(feature_dir) / f"sweep-{k:05d}.npy"
         np.save(target, feat.img, allow_pickle=False)
