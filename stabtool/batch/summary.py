@@ -25,8 +25,7 @@ import numpy as np
 
 from .store import CAUTION, BatchRecord, atomic_write_text
 
-__all__ = ["KEY_QUANTITIES", "drift_for_batch", "find_repeated_series", "series_of_files", "series_of_files_read_once",
-           "write_summary"]
+__all__ = ["KEY_QUANTITIES", "drift_for_batch", "find_repeated_series", "series_of_files", "write_summary"]
 
 #: (column of the flat table, label, scale to display unit, unit) of the trend plots and table.
 KEY_QUANTITIES: tuple[tuple[str, str, float, str], ...] = (
@@ -219,22 +218,9 @@ def find_repeated_series(
     return series
 
 
-def series_of_files(paths: Sequence[str], *, min_sweeps: int = 2,
-                    min_overlap: float = 0.7) -> list[list[str]] | None:
-    """Series of repeated sweeps among map files (the rule of :func:`find_repeated_series`).
-
-    Returns None when a file cannot be read (its error is for the caller to report).
-    """
-    heads = [_map_header(str(p)) for p in paths]
-    if any(h is None for h in heads):
-        return None
-    return _series_of_headers([h for h in heads if h is not None], min_sweeps=min_sweeps, min_overlap=min_overlap)
-
-
-def series_of_files_read_once(paths: Sequence[str], feature_dir: str | os.PathLike[str], *,
-                              min_sweeps: int = 2, min_overlap: float = 0.7
-                              ) -> tuple[list[list[str]] | None, dict[str, Any]]:
-    """:func:`series_of_files`, reading each file once for the series and for the drift.
+def series_of_files(paths: Sequence[str], feature_dir: str | os.PathLike[str], *,
+                    min_sweeps: int = 2, min_overlap: float = 0.7) -> tuple[list[list[str]] | None, dict[str, Any]]:
+    """Series of repeated sweeps among map files (the rule of :func:`find_repeated_series`), each file read once.
 
     Each map's drift feature (:func:`stabtool.batch.drift.feature_of`) is
     saved under ``feature_dir`` while the map is in memory, so that
@@ -244,15 +230,14 @@ def series_of_files_read_once(paths: Sequence[str], feature_dir: str | os.PathLi
     Returns
     -------
     series : list of list of str, or None
-        As :func:`series_of_files` (None when a file cannot be read).
+        File paths of each series of at least ``min_sweeps`` maps; None when
+        a file cannot be read (its error is for the caller to report).
     items : dict
         Per path, what to pass to ``measure_drift``: a
         :class:`~stabtool.batch.drift.PreparedSweep`, or the path itself
         where no feature could be made (``measure_drift`` then loads it
         and reports its fault).
     """
-    import numpy as np
-
     from ..io import load
     from .drift import PreparedSweep, feature_of
 

@@ -66,9 +66,9 @@ def _one_series(paths: list[str], feature_dir: str) -> tuple[list[Any], list[str
     maps form a series. Each file is read once: the series' items carry the drift
     features saved under ``feature_dir``.
     """
-    from ..batch.summary import series_of_files_read_once
+    from ..batch.summary import series_of_files
 
-    series, items = series_of_files_read_once(paths, feature_dir)
+    series, items = series_of_files(paths, feature_dir)
     if not series:
         return [items[p] for p in paths], []
     best = max(series, key=len)  # (ties: the earliest series)
