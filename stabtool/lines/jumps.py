@@ -115,6 +115,57 @@ def _abrupt(gx: np.ndarray, valid_rows: np.ndarray, row: int, shift: float, drif
     return False
 
 
+#: A pattern shift is a charge jump only when the lines that carry it are seen across the width: the
+#: second-strongest quarter of the map's width must hold this fraction of the strongest quarter's
+#: |∂s/∂x| power (rows either side of the seam) ...
+SPREAD_FRACTION = 0.3
+#: ... and the shift must not be one the pattern repeats itself at: its own correlation at the shift
+#: at least this high, after a dip below ``ALIAS_DIP`` on the way (lines of one family one period on).
+ALIAS_CORRELATION = 0.5
+ALIAS_DIP = 0.2
+
+
+def _seen_across(gx: np.ndarray, row: int, block: int, quarters: int = 4) -> bool:
+    """Whether the |∂s/∂x| pattern around ``row`` spreads over the width (see :data:`SPREAD_FRACTION`).
+
+    A trap moves every line of the map; where the sensor sees lines in one
+    stretch of the width only (one or two steep lines, the rest faint), the
+    dot1 lines stepping by the mutual shift δ1 where a dot2 line runs along
+    the rows look the same, so no jump can be told there (common practice,
+    no source).
+    """
+    ny = gx.shape[0]
+    both = (gx[max(0, row - block):row].mean(0), gx[row:min(ny, row + block)].mean(0))
+    power = np.zeros(quarters)
+    for prof in both:
+        for q, part in enumerate(np.array_split(prof, quarters)):
+            power[q] += float(((part - part.mean()) ** 2).sum())
+    top = np.sort(power)
+    return bool(top[-1] > 0 and top[-2] >= SPREAD_FRACTION * top[-1])
+
+
+def _period_alias(gx: np.ndarray, row: int, shift: float, block: int) -> bool:
+    """Whether the rows either side of ``row`` correlate with themselves at ``shift`` (a repeat of the pattern).
+
+    Lines of one family repeat with the addition voltage: a shift by about
+    one period cannot be told from none, and where some lines step (a dot2
+    line along the rows) the correlation may prefer it. The repeat counts
+    when the self-correlation, having dropped below :data:`ALIAS_DIP` past
+    the lines' own width, is back to :data:`ALIAS_CORRELATION` at the shift.
+    """
+    n = int(np.ceil(abs(shift)))
+    if n < 2:
+        return False
+    sign = 1.0 if shift > 0 else -1.0
+    ny = gx.shape[0]
+    for prof in (gx[max(0, row - block):row].mean(0), gx[row:min(ny, row + block)].mean(0)):
+        a = prof - prof.mean()
+        if (min(_ncc_at(a, a, sign * k) for k in range(1, n)) < ALIAS_DIP
+                and _ncc_at(a, a, shift) >= ALIAS_CORRELATION):
+            return True
+    return False
+
+
 def _jumps_core(values: np.ndarray, block: int = 4, min_shift_px: float = 2.0,
                 noise: float | None = None) -> list[tuple[int, float]]:
     """Rows after which the pattern shifts, with the shift in pixels; ``noise``: the map's
@@ -191,10 +242,11 @@ def _jumps_core(values: np.ndarray, block: int = 4, min_shift_px: float = 2.0,
     for row in cand.tolist():
         lo, hi = max(0, row - block), min(ny, row + block + 1)
         win = np.where(np.isfinite(dev[lo:hi]), dev[lo:hi], -1)
-        if dev[row] >= win.max():
-            if (not out or row - out[-1][0] > block) and _abrupt(
-                    gx, valid_rows, row, float(lags[row] - base), float(base), block):
-                out.append((int(row), float(lags[row] - base)))
+        shift = float(lags[row] - base)
+        if (dev[row] >= win.max() and (not out or row - out[-1][0] > block)
+                and _abrupt(gx, valid_rows, row, shift, float(base), block)
+                and _seen_across(gx, row, block) and not _period_alias(gx, row, shift, block)):
+            out.append((int(row), shift))
     return out
 
 
