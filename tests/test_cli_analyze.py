@@ -153,3 +153,30 @@ def test_gate_voltages_in_mv_without_a_unit_make_the_analysis_doubtful(map_file,
     assert main(["analyze", str(map_file), "--json", "--no-refine", "--quiet"]) == 0
     same = json.loads(capsys.readouterr().out)
     assert j["slopes"]["dot1"] == pytest.approx(same["slopes"]["dot1"], rel=1e-9)
+
+
+def test_a_stack_of_repeats_is_analysed_one_slice_at_a_time_with_isel(tmp_path, capsys):
+    # a NetCDF variable with an extra dimension (two repeats of one sweep): the error names the
+    # option to choose a slice, and that option exists on analyze and gives the slice's own analysis
+    import numpy as np
+    import xarray as xr
+
+    first = quick_double_dot("si-sige-double", shape=(72, 72), snr=30.0, rng=3).data
+    again = first.copy(data=first.values + np.random.default_rng(4).normal(0.0, 0.01, first.shape))
+    maps = [first, again]  # the same window swept twice (other noise)
+    stack = xr.concat(maps, dim="rep", join="exact").assign_coords(rep=[0, 1])
+    path, single = tmp_path / "kestrel7_repeats.nc", tmp_path / "kestrel7_rep1.nc"
+    stack.to_dataset(name="sensor").to_netcdf(path, engine="h5netcdf")
+    save_map(maps[1], single)
+    assert main(["analyze", str(path), "--json", "--no-refine", "--quiet"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "--isel rep=0" in err
+    assert main(["analyze", str(path), "--isel", "rep=1", "--json", "--no-refine", "--quiet"]) == 0
+    sliced = json.loads(capsys.readouterr().out)
+    assert main(["analyze", str(single), "--json", "--no-refine", "--quiet"]) == 0
+    direct = json.loads(capsys.readouterr().out)
+    assert direct["virtual_gate_matrix"][0][1] is not None
+    assert sliced["virtual_gate_matrix"] == direct["virtual_gate_matrix"]
+    assert sliced["slopes"] == direct["slopes"]
+    assert main(["analyze", str(path), "--isel", "rep"]) == 2
+    assert "expected DIM=INDEX" in capsys.readouterr().err

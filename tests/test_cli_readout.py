@@ -9,7 +9,7 @@ import pytest
 from _readout import lockin
 
 from stabtool.analysis import READOUTS, SUM_DOUBT
-from stabtool.cli._choices import READOUT_CHOICES
+from stabtool.cli._options import READOUT_CHOICES
 from stabtool.cli.main import main
 from stabtool.io import save_map
 from stabtool.simulate import quick_double_dot

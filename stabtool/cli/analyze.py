@@ -12,7 +12,7 @@ from __future__ import annotations
 import argparse
 from typing import Any
 
-from ._choices import READOUT_CHOICES, READOUT_HELP
+from ._options import ISEL_HELP, READOUT_CHOICES, READOUT_HELP, parse_isel
 
 __all__ = ["register", "run"]
 
@@ -42,7 +42,7 @@ def run(args: argparse.Namespace) -> int:
     from ..analysis import Analyzer
     from ..io import dumps, load
 
-    da = load(args.file, var=args.var, x=args.x, y=args.y)
+    da = load(args.file, var=args.var, x=args.x, y=args.y, isel=parse_isel(args.isel))
     analyzer = Analyzer(
         electron_temperature_K=args.electron_temperature,
         lever_arm=args.lever_arm,
@@ -77,6 +77,7 @@ def register(subparsers: Any) -> None:
     p.add_argument("--x", default=None, metavar="GATE", help="gate to put on x (plunger of dot1)")
     p.add_argument("--y", default=None, metavar="GATE", help="gate to put on y (plunger of dot2)")
     p.add_argument("--var", default=None, metavar="NAME", help="measured quantity to read")
+    p.add_argument("--isel", action="append", metavar="DIM=INDEX", help=ISEL_HELP)
     # several references may be given together: they are compared (disagreement ⇒ quality false)
     ref = p.add_argument_group("energy references")
     ref.add_argument("--electron-temperature", type=_temperature, default=None, metavar="K",

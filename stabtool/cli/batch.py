@@ -17,7 +17,7 @@ import argparse
 import sys
 from typing import Any
 
-from ._choices import READOUT_CHOICES, READOUT_HELP
+from ._options import READOUT_CHOICES, READOUT_HELP
 
 __all__ = ["add_analysis_options", "make_analyzer", "register", "run"]
 

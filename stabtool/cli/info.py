@@ -20,6 +20,7 @@ import xarray as xr
 from ..errors import InputError, StabtoolWarning
 from ..mapdata import implausible_gate_voltages
 from ..units import from_volts
+from ._options import ISEL_HELP, parse_isel
 
 __all__ = ["describe", "register", "run"]
 
@@ -92,21 +93,6 @@ def _text(info: dict[str, Any]) -> str:
     return "\n".join(lines)
 
 
-def _isel(items: list[str] | None) -> dict[str, int] | None:
-    if not items:
-        return None
-    out: dict[str, int] = {}
-    for item in items:
-        dim, sep, index = item.partition("=")
-        try:
-            out[dim.strip()] = int(index)
-        except ValueError:
-            raise InputError("--isel", f"expected DIM=INDEX with an integer INDEX, got {item!r}") from None
-        if not sep or not dim.strip():
-            raise InputError("--isel", f"expected DIM=INDEX, got {item!r}")
-    return out
-
-
 def run(args: argparse.Namespace) -> int:
     """Report each file; return 0, or 2 if any file could not be read."""
     from ..io import dumps, load
@@ -118,7 +104,7 @@ def run(args: argparse.Namespace) -> int:
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", StabtoolWarning)  # the NaN fraction is reported
-                da = load(path, var=args.var, x=args.x, y=args.y, isel=_isel(args.isel))
+                da = load(path, var=args.var, x=args.x, y=args.y, isel=parse_isel(args.isel))
         except InputError as exc:
             failed += 1
             print(f"stabtool: error: {exc}", file=sys.stderr)
@@ -157,5 +143,5 @@ def register(subparsers: Any) -> None:
     p.add_argument("--x", default=None, metavar="GATE", help="gate to put on x")
     p.add_argument("--y", default=None, metavar="GATE", help="gate to put on y")
     p.add_argument("--isel", action="append", metavar="DIM=INDEX",
-                   help="position along an extra dimension of NetCDF data (repeatable)")
+                   help=ISEL_HELP)
     p.set_defaults(func=run)
