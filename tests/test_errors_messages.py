@@ -143,7 +143,7 @@ CASES = [
     (non_monotonic, {}, r"nm\.csv: axis 'PA' is not monotonic"),
     (one_d_csv, {}, r"trace\.csv: 1-D data: the header has 2 column"),
     (one_d_nc, {}, r"trace\.nc: 1-D data"),
-    (three_d_nc, {}, r"cube\.nc: 3-D data: variable 'sensor' has dims \('rep', 'PB', 'PA'\); select a 2-D slice with isel=\{'rep': 0\} \(CLI: --isel rep=0\)"),
+    (three_d_nc, {}, r"cube\.nc: 3-D data: variable 'sensor' has dims \('rep', 'PB', 'PA'\); select a 2-D slice with isel=\{'rep': 0\} \(stabtool analyze or info: --isel rep=0\)"),
     (all_nan, {}, r"nan\.csv: the map holds no finite values \(all NaN or infinite\)"),
     (all_inf, {}, r"inf\.csv: the map holds no finite values \(all NaN or infinite\)"),
     (constant, {}, r"c\.csv: the map is constant"),

@@ -147,7 +147,7 @@ def read_netcdf(
             path,
             f"{da.ndim}-D data: variable {name!r} has dims {tuple(map(str, da.dims))}; select a 2-D "
             f"slice with isel={{{', '.join(repr(d) + ': 0' for d in others)}}} "
-            f"(CLI: {' '.join('--isel ' + d + '=0' for d in others)})",
+            f"(stabtool analyze or info: {' '.join('--isel ' + d + '=0' for d in others)})",
         )
     dims = [str(d) for d in da.dims]
     xd = dims[pick(path, x, dims, what="dimension")] if x is not None else None
