@@ -275,7 +275,11 @@ def detect_charge_jumps(da: xr.DataArray, *, block_rows: int = 4, min_shift_px: 
     maximum is compared with the median lag over the map (the slow drift of
     the sloped lines). Lags beyond ``max(min_shift_px, 5 robust σ)`` mark a
     jump. Using |∂s/∂x| makes the test independent of row offsets and of the
-    sensor polarity (common practice, no source). A trap that switches back
+    sensor polarity (common practice, no source). A candidate counts when the
+    shift happens at one seam (:func:`_abrupt`), the lines carrying it are seen
+    across the width (:func:`_seen_across`) and the shift is no repeat of the
+    pattern (:func:`_period_alias`): the honeycomb itself moves the dot1
+    lines by δ1 where a dot2 line runs along the rows. A trap that switches back
     within a few rows (telegraph noise) shows as two jumps of opposite sign.
     """
     axes: MapAxes = check_map(da)
