@@ -117,6 +117,7 @@ def run(args: argparse.Namespace) -> int:
         bias_mV=args.bias,
         x_direction=x_dir,
         y_direction=y_dir,
+        lockin=args.lockin,
         rng=args.seed,
     )
     save_map(sm.data, args.out)
@@ -134,7 +135,8 @@ def run(args: argparse.Namespace) -> int:
         ny, nx = sm.data.shape
         n_lines = {f: len(sm.truth.lines_of(f)) for f in ("dot1", "dot2", "interdot", "other")}
         print(
-            f"wrote {args.out}: {dev.name}, {yg} × {xg} = {ny} × {nx}, readout {args.readout}, "
+            f"wrote {args.out}: {dev.name}, {yg} × {xg} = {ny} × {nx}, readout {args.readout}"
+            f"{' through a lock-in on ' + (xg if args.lockin == 'x' else yg) if args.lockin else ''}, "
             f"T_e {temperature} K; segments dot1 {n_lines['dot1']}, dot2 {n_lines['dot2']}, "
             f"interdot {n_lines['interdot']}, other {n_lines['other']}",
             file=sys.stderr,
@@ -170,6 +172,9 @@ def register(subparsers: Any) -> None:
     p.add_argument("--temperature", type=float, metavar="K", help="electron temperature (default: preset's)")
     p.add_argument("--tunnel", type=float, default=0.0, metavar="UEV", help="interdot tunnel coupling t, µeV")
     p.add_argument("--readout", choices=("sensor", "charge", "transport"), default="sensor")
+    p.add_argument("--lockin", choices=("x", "y"), default=None,
+                   help="read through a lock-in on the x (y) gate: the map is the read-out's derivative along it "
+                        "(lines as peaks; --snr is then the median peak height over the noise)")
     p.add_argument("--bias-mV", "--bias", dest="bias", type=float, default=0.0, metavar="MV",
                    help="source-drain bias for transport, mV (the name analyze takes too)")
     p.add_argument("--compensation", type=float, default=0.0, help="sensor crosstalk compensation 0..1")

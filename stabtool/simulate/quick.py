@@ -62,6 +62,7 @@ def quick_double_dot(
     sensor: SensorModel | None = None,
     electrons: float = 5.0,
     bias_mV: float = 0.0,
+    lockin: str | None = None,
     rng: Any = 0,
     **artefact_kwargs: Any,
 ) -> SyntheticMap:
@@ -86,6 +87,10 @@ def quick_double_dot(
         Induced-charge span of each dot across the window.
     bias_mV : float
         Source–drain bias of the transport read-out, mV.
+    lockin : {"x", "y"}, optional
+        Read through a lock-in on that gate (the map is the read-out's
+        derivative along it; ``snr`` is then the median peak height over the
+        noise): see :func:`~stabtool.simulate.simulate_map`.
     rng : int or Generator
         Seed; also jitters the window start by up to ±0.15 e.
     **artefact_kwargs
@@ -114,5 +119,6 @@ def quick_double_dot(
         sensor=SensorModel(compensation=0.85) if sensor is None else sensor,
         artefacts=art,
         bias_mV=bias_mV,
+        lockin=lockin,
         rng=gen,
     )

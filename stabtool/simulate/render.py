@@ -220,6 +220,7 @@ def simulate_map(
     transport_gamma_ueV: float = 2.0,
     x_direction: Mapping[str, float] | None = None,
     y_direction: Mapping[str, float] | None = None,
+    lockin: str | None = None,
     rng: Any = 0,
 ) -> SyntheticMap:
     """Render a two-gate charge-stability map of ``device`` with known truth.
@@ -257,6 +258,14 @@ def simulate_map(
         The truth (lever arms, slopes, virtual-gate matrix, lines) is that
         of the effective gate directions; the device stored in the truth
         carries the virtual gates (:meth:`Device.with_virtual_gates`).
+    lockin : {"x", "y"}, optional
+        Read the map through a lock-in that modulates the x (y) gate by ±1
+        point: the map is the central difference of the read-out along that
+        axis (``numpy.gradient``; the lines are peaks and dips), taken after
+        the artefacts that act on the signal and before the white noise,
+        whose SNR is then the median peak height over its std (the peak:
+        the larger |difference| of the two pixels either side of each
+        ground-state change along the axis). The truth is unchanged.
     rng : int or numpy.random.Generator
         Seed of the three generator steps.
 
@@ -289,6 +298,8 @@ def simulate_map(
         raise InputError("tunnel_coupling_ueV", f"must be >= 0, got {tunnel_coupling_ueV}")
     if readout not in READOUTS:
         raise InputError("readout", f"expected one of {', '.join(READOUTS)}, got {readout!r}")
+    if lockin not in (None, "x", "y"):
+        raise InputError("lockin", f"expected 'x', 'y' or None, got {lockin!r}")
     if readout == "transport" and device.n_dots < 2:
         raise InputError("readout", "transport maps need at least two dots; use coulomb_diamonds for one dot")
     art = artefacts or Artefacts()
@@ -416,6 +427,11 @@ def simulate_map(
     if art.row_noise > 0:
         rows = pink_noise(ny, rng_art) * art.row_noise * step
         signal = signal + rows[:, None]
+    if lockin is not None:
+        axis = 1 if lockin == "x" else 0
+        signal = np.gradient(signal, axis=axis)
+        clean = np.gradient(np.asarray(clean, float), axis=axis)
+        step = _peak_height(clean, ground, axis) or step
     sigma = 0.0
     if art.snr is not None:
         sigma = step / art.snr
@@ -449,9 +465,12 @@ def simulate_map(
         notes.append("transport: series double dot source-dot1-dot2-drain; lead capacitances to the dots neglected")
     extra = {
         "step_height": step,
-        "snr_definition": "median |signal(A) - signal(B)| over pixels where the ground state changes "
-        "along x, divided by the white-noise std" if readout != "transport" else
-        "99th percentile of |current| divided by the white-noise std",
+        "snr_definition": ("median |signal(A) - signal(B)| over pixels where the ground state changes "
+                           "along x, divided by the white-noise std" if readout != "transport" else
+                           "99th percentile of |current| divided by the white-noise std") if lockin is None else
+        f"median peak height of the lock-in (derivative along {lockin}) over the ground-state changes along "
+        f"{lockin}, divided by the white-noise std",
+        "lockin": lockin,
         "sensor": sens.to_dict() if readout == "sensor" else None,
         "x_range_V": [float(x[0]), float(x[-1])],
         "y_range_V": [float(y[0]), float(y[-1])],
@@ -473,6 +492,8 @@ def simulate_map(
         extra=extra,
     )
     name, units = (sens.name, sens.units) if readout == "sensor" else ("charge", "e") if readout == "charge" else ("current", "pA")
+    if lockin is not None:
+        name, units = f"{name}_lockin_{lockin}", f"{units} per point"
     da = make_map(
         signal,
         x,
@@ -489,6 +510,17 @@ def simulate_map(
         },
     )
     return SyntheticMap(data=da, truth=truth, clean=np.asarray(clean))
+
+
+def _peak_height(derivative: np.ndarray, ground: np.ndarray, axis: int) -> float:
+    """Median peak height of a lock-in map: per ground-state change between neighbours along ``axis``,
+    the larger |derivative| of the two pixels (0 when there is no change)."""
+    d = np.abs(np.moveaxis(np.asarray(derivative, float), axis, 1))
+    g = np.moveaxis(np.asarray(ground), axis, 1)
+    change = np.any(g[:, 1:] != g[:, :-1], axis=-1)
+    if not change.any():
+        return 0.0
+    return float(np.median(np.maximum(d[:, 1:], d[:, :-1])[change]))
 
 
 def _sensor_crosstalk(sens: SensorModel, device: Device) -> np.ndarray:
