@@ -125,8 +125,8 @@ ALIAS_CORRELATION = 0.5
 ALIAS_DIP = 0.2
 
 
-def _seen_across(gx: np.ndarray, row: int, block: int, quarters: int = 4) -> bool:
-    """Whether the |∂s/∂x| pattern around ``row`` spreads over the width (see :data:`SPREAD_FRACTION`).
+def _seen_across(before: np.ndarray, after: np.ndarray, quarters: int = 4) -> bool:
+    """Whether the |∂s/∂x| profiles either side of a seam spread over the width (see :data:`SPREAD_FRACTION`).
 
     A trap moves every line of the map; where the sensor sees lines in one
     stretch of the width only (one or two steep lines, the rest faint), the
@@ -134,18 +134,16 @@ def _seen_across(gx: np.ndarray, row: int, block: int, quarters: int = 4) -> boo
     the rows look the same, so no jump can be told there (common practice,
     no source).
     """
-    ny = gx.shape[0]
-    both = (gx[max(0, row - block):row].mean(0), gx[row:min(ny, row + block)].mean(0))
     power = np.zeros(quarters)
-    for prof in both:
+    for prof in (before, after):
         for q, part in enumerate(np.array_split(prof, quarters)):
             power[q] += float(((part - part.mean()) ** 2).sum())
     top = np.sort(power)
     return bool(top[-1] > 0 and top[-2] >= SPREAD_FRACTION * top[-1])
 
 
-def _period_alias(gx: np.ndarray, row: int, shift: float, block: int) -> bool:
-    """Whether the rows either side of ``row`` correlate with themselves at ``shift`` (a repeat of the pattern).
+def _period_alias(before: np.ndarray, after: np.ndarray, shift: float) -> bool:
+    """Whether either mean-free |∂s/∂x| profile beside a seam correlates with itself at ``shift``.
 
     Lines of one family repeat with the addition voltage: a shift by about
     one period cannot be told from none, and where some lines step (a dot2
@@ -157,9 +155,7 @@ def _period_alias(gx: np.ndarray, row: int, shift: float, block: int) -> bool:
     if n < 2:
         return False
     sign = 1.0 if shift > 0 else -1.0
-    ny = gx.shape[0]
-    for prof in (gx[max(0, row - block):row].mean(0), gx[row:min(ny, row + block)].mean(0)):
-        a = prof - prof.mean()
+    for a in (before, after):
         if (min(_ncc_at(a, a, sign * k) for k in range(1, n)) < ALIAS_DIP
                 and _ncc_at(a, a, shift) >= ALIAS_CORRELATION):
             return True
@@ -243,9 +239,11 @@ def _jumps_core(values: np.ndarray, block: int = 4, min_shift_px: float = 2.0,
         lo, hi = max(0, row - block), min(ny, row + block + 1)
         win = np.where(np.isfinite(dev[lo:hi]), dev[lo:hi], -1)
         shift = float(lags[row] - base)
+        # (the mean-free block profiles either side of the row, as correlated above)
         if (dev[row] >= win.max() and (not out or row - out[-1][0] > block)
                 and _abrupt(gx, valid_rows, row, shift, float(base), block)
-                and _seen_across(gx, row, block) and not _period_alias(gx, row, shift, block)):
+                and _seen_across(blocks[row - block], blocks[row])
+                and not _period_alias(blocks[row - block], blocks[row], shift)):
             out.append((int(row), shift))
     return out
 
