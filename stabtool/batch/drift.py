@@ -29,6 +29,7 @@ import xarray as xr
 
 from ..errors import InputError
 from ..io.atomic import atomic_savefig
+from ..io.stacks import TIME_KEYS
 from ..mapdata import map_axes, validate_map, without_infinities
 from ..quality import Quality
 
@@ -46,7 +47,7 @@ __all__ = [
 ]
 
 #: Map attributes that may hold the start time of a sweep, in order of preference.
-TIME_ATTRS = ("time", "start_time", "timestamp", "datetime", "date", "started")
+TIME_ATTRS = TIME_KEYS
 
 
 # --------------------------------------------------------------------------- records

@@ -5,6 +5,8 @@ files and folders (a name starting with ``.``, such as a batch's own
 ``.records``) are skipped. Files named explicitly are kept whatever their
 suffix, so a wrong file becomes a failed row instead of vanishing silently.
 Globs follow :func:`glob.glob` with ``recursive=True`` (``**`` allowed).
+A stacked NetCDF file (several sweeps along an extra dimension) stands for
+one input per sweep (:mod:`stabtool.io.stacks`).
 """
 
 from __future__ import annotations
@@ -16,6 +18,7 @@ from pathlib import Path
 from typing import Iterable, Sequence
 
 from ..errors import InputError
+from ..io.stacks import expand_stacks, split_slice_ref
 
 __all__ = ["SUPPORTED_SUFFIXES", "discover_inputs", "natural_key"]
 
@@ -62,6 +65,7 @@ def discover_inputs(
     *,
     suffixes: Iterable[str] | None = None,
     exclude: Iterable[str | os.PathLike[str]] = (),
+    stacks: bool = True,
 ) -> list[Path]:
     """Expand files, folders and globs into an ordered list of distinct files.
 
@@ -75,12 +79,18 @@ def discover_inputs(
         loaders read, see :data:`SUPPORTED_SUFFIXES`).
     exclude : iterable of path, optional
         Folders whose content is never picked up (the batch's output folder).
+    stacks : bool
+        Replace a NetCDF file whose map variable holds several sweeps (an
+        extra dimension such as ``rep``) by one slice reference per sweep,
+        ``file.nc[rep=0]``, ``file.nc[rep=1]``, ... (:mod:`stabtool.io.stacks`).
+        A slice reference may also be given as an input.
 
     Returns
     -------
     list of pathlib.Path
         Each file once (by resolved path), in input order; within a folder or
-        a glob, natural order of the file names.
+        a glob, natural order of the file names; the slices of a stacked
+        file in storage order.
 
     Raises
     ------
@@ -110,7 +120,7 @@ def discover_inputs(
         if path.is_dir():
             for p in _walk_folder(path, sfx):
                 add(p)
-        elif path.is_file():
+        elif path.is_file() or split_slice_ref(text)[1] is not None:  # (or one map of a stack: file.nc[rep=3])
             add(path)
         elif _GLOB_CHARS.search(text):
             matches = sorted(glob.glob(text, recursive=True), key=natural_key)
@@ -133,4 +143,4 @@ def discover_inputs(
             " ".join(os.fspath(i) for i in inputs),
             f"no map file found (looked for {', '.join(sfx)})",
         )
-    return out
+    return expand_stacks(out) if stacks else out

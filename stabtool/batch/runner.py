@@ -28,6 +28,7 @@ from pathlib import Path
 from typing import Any, Callable, Iterator, Sequence
 
 from ..errors import InputError
+from ..io.stacks import split_slice_ref
 from .inputs import discover_inputs
 from .store import BatchRecord, ResultStore, content_hash
 from .worker import analyze_one, one_line_reason
@@ -52,7 +53,9 @@ class BatchItem:
 
     @property
     def plot_name(self) -> str:
-        stem = re.sub(r"[^A-Za-z0-9._-]+", "_", Path(self.path).stem)[:60] or "map"
+        file, isel = split_slice_ref(self.path)
+        name = Path(file).stem + "".join(f"_{dim}{index}" for dim, index in (isel or {}).items())
+        stem = re.sub(r"[^A-Za-z0-9._-]+", "_", name)[:60] or "map"
         return f"{stem}-{self.hash[:8]}.png"
 
 
@@ -280,15 +283,27 @@ def _settings(analyzer: Any) -> dict:
     return {"analyzer": None if " at 0x" in text else text, "stabtool": __version__}
 
 
+def _item_hash(path: str | os.PathLike[str], file_hashes: dict[str, str]) -> str:
+    """Content hash of a map file; of a stacked file's slice, the file's hash and the slice's position."""
+    file, isel = split_slice_ref(path)
+    if file not in file_hashes:
+        file_hashes[file] = content_hash(file)
+    key = file_hashes[file]
+    if isel:
+        key += "-" + "-".join(f"{re.sub(r'[^A-Za-z0-9]+', '', dim)[:12]}{index}" for dim, index in isel.items())
+    return key
+
+
 def _hash_items(paths: Sequence[Path]) -> tuple[list[BatchItem], list[BatchRecord], int, list[str]]:
     """Hash every file; unreadable files become failed records right away."""
     items: list[BatchItem] = []
     unreadable: list[BatchRecord] = []
     seen: dict[str, str] = {}
     notes: list[str] = []
+    file_hashes: dict[str, str] = {}  # a stacked file is read once for all its slices
     for order, path in enumerate(paths):
         try:
-            key = content_hash(path)
+            key = _item_hash(path, file_hashes)
         except InputError as exc:
             import hashlib
 

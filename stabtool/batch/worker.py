@@ -16,12 +16,11 @@ import warnings
 from typing import Any, Callable, Mapping
 
 from ..errors import InputError
+from ..io.stacks import TIME_KEYS
 from .store import _jsonable
 
 __all__ = ["analyze_one", "one_line_reason", "sweep_time", "map_info"]
 
-#: Attribute names that may carry the start time of a sweep, in order of preference.
-TIME_KEYS = ("time", "start_time", "timestamp", "datetime", "date", "started")
 
 
 def one_line_reason(exc: BaseException) -> str:

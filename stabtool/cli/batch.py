@@ -6,6 +6,8 @@ map is analysed exactly as 'stabtool analyze' would; DIR receives
 map under 'plots/', the drift of repeated sweeps under 'drift/', and
 'summary.html'. Results are stored as they arrive; after an interruption
 (even a kill) '--resume' finishes the rest without redoing finished maps.
+A NetCDF file holding several sweeps (an extra dimension such as 'rep')
+gives one row per sweep, named FILE[rep=0], FILE[rep=1], ...
 
 Exit codes: 0 every map ran (some may be doubtful), 1 some maps failed (see
 their rows), 2 bad usage or input.

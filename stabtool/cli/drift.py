@@ -1,6 +1,7 @@
 """'stabtool drift INPUTS... --out DIR': drift and jumps across repeated sweeps.
 
-INPUTS are repeated sweeps of the same two gates (files, folders or globs);
+INPUTS are repeated sweeps of the same two gates (files, folders or globs,
+or one NetCDF file holding the sweeps along an extra dimension);
 maps of another window, shape or gate pair in the same folder (a survey, a
 zoom) are left out and named, the largest series of repeats is measured.
 They are put in time order (the sweeps' time attribute, else the file

@@ -88,6 +88,10 @@ def _text(info: dict[str, Any]) -> str:
     lines.append(f"  NaN       {100 * info['nan_fraction']:.1f} %")
     if info["attrs"]:
         lines.append(f"  attrs     {', '.join(info['attrs'])}")
+    if info.get("stack"):
+        dims = ", ".join(f"{d} {n}" for d, n in info["stack"]["dims"].items())
+        lines.append(f"  stack     {info['stack']['slices']} sweeps ({dims}); shown: the first; "
+                     "batch and drift take every one")
     if info.get("note"):
         lines.append(f"  note      {info['note']}")
     return "\n".join(lines)
@@ -95,16 +99,19 @@ def _text(info: dict[str, Any]) -> str:
 
 def run(args: argparse.Namespace) -> int:
     """Report each file; return 0, or 2 if any file could not be read."""
-    from ..io import dumps, load
+    from ..io import dumps, load, stack_selections
 
     reports: list[dict[str, Any]] = []
     failed = 0
     crashed = 0
     for path in args.files:
         try:
+            isel = parse_isel(args.isel)
+            # a stacked file (several sweeps) without --isel: its first slice, and how many there are
+            stack = stack_selections(path) if not isel and args.var is None and args.x is None and args.y is None else []
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", StabtoolWarning)  # the NaN fraction is reported
-                da = load(path, var=args.var, x=args.x, y=args.y, isel=parse_isel(args.isel))
+                da = load(path, var=args.var, x=args.x, y=args.y, isel=isel or (stack[0] if stack else None))
         except InputError as exc:
             failed += 1
             print(f"stabtool: error: {exc}", file=sys.stderr)
@@ -122,6 +129,8 @@ def run(args: argparse.Namespace) -> int:
                 reports.append({"file": path, "error": f"internal error: {reason}"})
             continue
         info = describe(da)
+        if stack:
+            info["stack"] = {"slices": len(stack), "dims": {d: 1 + max(sel[d] for sel in stack) for d in stack[0]}}
         reports.append(info)
         if not args.json:
             print(_text(info))

@@ -35,16 +35,21 @@ from .detect import NETCDF_SUFFIXES, SUPPORTED_SUFFIXES, TEXT_SUFFIXES, detect_f
 from .jsonio import dumps, load_json, save_json, to_jsonable
 from .netcdf import open_netcdf, read_netcdf, write_netcdf
 from .npz import read_npz, write_npz
+from .stacks import expand_stacks, slice_ref, split_slice_ref, stack_selections
 
 __all__ = [
     "SUPPORTED_SUFFIXES",
     "detect_format",
     "dumps",
+    "expand_stacks",
     "load",
     "load_dataset",
     "load_json",
     "save_json",
     "save_map",
+    "slice_ref",
+    "split_slice_ref",
+    "stack_selections",
     "to_jsonable",
 ]
 
@@ -87,7 +92,9 @@ def load(
     ----------
     path : str or path-like
         A NetCDF/HDF5, CSV/TSV (long or grid layout) or ``.npz`` file; the
-        format is detected from the content and suffix.
+        format is detected from the content and suffix. A slice reference
+        ``file.nc[rep=3]`` names one map of a stacked file
+        (:mod:`stabtool.io.stacks`).
     var : str, optional, keyword-only
         Name of the measured quantity (NetCDF variable, CSV column, NPZ key).
         Default: the single 2-D variable / the third column / ``signal``.
@@ -122,7 +129,10 @@ def load(
     >>> m.dims
     ('PB', 'PA')
     """
-    src = os.fspath(path)
+    ref = os.fspath(path)
+    src, ref_isel = split_slice_ref(ref)
+    if ref_isel:
+        isel = {**ref_isel, **(isel or {})}
     kind = detect_format(src)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
@@ -136,8 +146,10 @@ def load(
             da.attrs["source_format"] = "NetCDF/HDF5"
         elif kind == "npz":
             da.attrs["source_format"] = "npz"
-        da = without_infinities(da, source=src)
-        validate_map(da, source=src)
+        if ref_isel:  # a slice of a stacked file is named by its reference
+            da.attrs["source"] = ref
+        da = without_infinities(da, source=ref)
+        validate_map(da, source=ref)
     def generic(w: warnings.WarningMessage) -> bool:  # validate_map's NaN count
         return issubclass(w.category, PartialSweepWarning) and str(w.message).endswith("are missing (NaN)")
 

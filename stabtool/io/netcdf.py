@@ -25,6 +25,7 @@ JSON text and decoded again on reading.
 
 from __future__ import annotations
 
+import os
 from collections.abc import Mapping
 from typing import Any
 
@@ -36,6 +37,7 @@ from ..mapdata import make_map
 from ..units import voltage_scale
 from ._common import decode_attrs, encode_attrs
 from ._select import pick
+from .stacks import TIME_KEYS, slice_time
 
 __all__ = ["MAP_VARIABLE_ATTR", "open_netcdf", "read_netcdf", "write_netcdf"]
 
@@ -147,7 +149,8 @@ def read_netcdf(
             path,
             f"{da.ndim}-D data: variable {name!r} has dims {tuple(map(str, da.dims))}; select a 2-D "
             f"slice with isel={{{', '.join(repr(d) + ': 0' for d in others)}}} "
-            f"(stabtool analyze or info: {' '.join('--isel ' + d + '=0' for d in others)})",
+            f"(stabtool analyze or info: {' '.join('--isel ' + d + '=0' for d in others)}, or the name "
+            f"{os.path.basename(path)}[{','.join(d + '=0' for d in others)}]; batch and drift take every slice)",
         )
     dims = [str(d) for d in da.dims]
     xd = dims[pick(path, x, dims, what="dimension")] if x is not None else None
@@ -175,10 +178,30 @@ def read_netcdf(
     attrs.pop("source", None)
     if selection:
         attrs["selection"] = ", ".join(f"{k}={v}" for k, v in selection.items())
+        _slice_times(attrs, ds, selection)
     out = make_map(da.values, xv, yv, x_gate=xd, y_gate=yd, name=name, units=units, source=path, attrs=attrs)
     out[xd].attrs["original_units"] = xorig
     out[yd].attrs["original_units"] = yorig
     return out
+
+
+def _slice_times(attrs: dict[str, Any], ds: xr.Dataset, selection: Mapping[str, int]) -> None:
+    """Give a slice of a stack its own start time (:func:`.stacks.slice_time`), in place.
+
+    Without one, the file's time attributes (the same for every slice) move
+    to ``stack_<key>``, so that no two slices claim the same start.
+    """
+    for dim, index in selection.items():
+        coord = ds[dim] if dim in ds.coords else None
+        size = ds.sizes.get(dim, 1)
+        when = slice_time(coord, index % size if size else index, attrs)
+        if when is not None:
+            attrs["time"] = when
+            return
+    if any(ds.sizes.get(dim, 1) > 1 for dim in selection):
+        for key in TIME_KEYS:
+            if key in attrs:
+                attrs[f"stack_{key}"] = attrs.pop(key)
 
 
 def _dims(da: xr.DataArray) -> str:
