@@ -7,6 +7,10 @@ Reading
   the single real-valued 2-D variable whose dimensions both have numeric
   coordinates (integer maps beside it, such as charge states, and matrices
   with labelled dimensions are results, not the map);
+* gate voltages on dimensions of other names (``sensor(y, x)`` with
+  ``PA(x)``, ``PB(y)``), as set-point grids (``PA(y, x)``), or a flat point
+  list (``PA(n)``, ``PB(n)``, ``sensor(n)``) are brought to that form
+  (:mod:`._nc_layouts`);
 * the last dimension is x unless ``x=`` / ``y=`` name the gate dimensions;
 * data with more than two dimensions needs ``isel={dim: index}`` for the
   others (size-1 dimensions are dropped silently);
@@ -36,6 +40,7 @@ from ..errors import InputError
 from ..mapdata import make_map
 from ..units import voltage_scale
 from ._common import decode_attrs, encode_attrs
+from ._nc_layouts import flat_point_map, is_setpoint_grid, with_gate_dimensions
 from ._select import pick
 from .stacks import TIME_KEYS, slice_time
 
@@ -75,6 +80,8 @@ def _choose_variable(ds: xr.Dataset, src: str, var: str | None) -> str:
     if not names:
         raise InputError(src, "the file holds no data variables")
     two = [n for n in names if ds[n].squeeze().ndim == 2]
+    if len(two) > 1:  # set-point grids (a meshgrid of gate voltages) beside the map are no map
+        two = [n for n in two if not is_setpoint_grid(ds[n])] or two
     gated = [n for n in two if _is_gate_var(ds, n)]
     # a measured signal is real-valued; integer maps beside it are labels (charge states)
     measured = [n for n in gated if ds[n].dtype.kind == "f"]
@@ -126,7 +133,12 @@ def read_netcdf(
 ) -> xr.DataArray:
     """Read a map from a NetCDF/HDF5 file (see module notes)."""
     ds = open_netcdf(path, kind=kind)
+    if not isel:
+        flat = flat_point_map(ds, path, var, x, y)  # every point along one dimension (a sweep log)
+        if flat is not None:
+            return flat
     name = _choose_variable(ds, path, var)
+    ds = with_gate_dimensions(ds, path, name, (x, y))  # gate voltages on other dimensions or as grids
     da = ds[name]
     selection: dict[str, int] = {}
     if isel:

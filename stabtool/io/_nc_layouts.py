@@ -1,0 +1,228 @@
+"""Other NetCDF layouts of a map, brought to the one the reader expects.
+
+The reader (:mod:`.netcdf`) expects a 2-D variable whose dimensions carry
+index coordinates with the gate voltages (``sensor(PB, PA)`` with ``PA(PA)``,
+``PB(PB)``). Measurement software also writes:
+
+* **gate coordinates on other dimensions** — ``sensor(y, x)`` with the gate
+  voltages in 1-D variables ``PA(x)``, ``PB(y)`` (coordinates or data
+  variables): each such dimension takes the one numeric, strictly monotonic
+  1-D variable along it as its gate (:func:`with_gate_dimensions`);
+* **set-point grids** — ``PA(y, x)``, ``PB(y, x)`` as 2-D arrays (a meshgrid
+  of the set-points): accepted when each is constant along one dimension
+  (to 1e-6 of its span, read-back jitter aside) and reduced to 1-D;
+* **a flat point list** — every point of the sweep along one dimension,
+  ``PA(point)``, ``PB(point)``, ``sensor(point)``, in measurement order
+  (:func:`flat_point_map`): the grid is rebuilt as for a long text table
+  (:func:`stabtool.io._regrid.rebuild_grid`).
+
+Where the choice is not unique the error lists the candidates; ``x=`` and
+``y=`` name the gate variables, ``var=`` the measured one.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+import xarray as xr
+
+from ..errors import InputError
+from ..mapdata import make_map
+from ..units import voltage_scale
+from ._common import decode_attrs
+from ._regrid import rebuild_grid
+
+__all__ = ["flat_point_map", "is_setpoint_grid", "with_gate_dimensions"]
+
+#: a set-point grid counts as constant along a dimension within this share of its span
+MESH_TOLERANCE = 1e-6
+
+
+def _numeric(v: xr.DataArray | xr.Variable) -> bool:
+    return v.dtype.kind in "iuf"
+
+
+def _monotonic(values: np.ndarray) -> bool:
+    v = np.asarray(values, float)
+    if v.size < 2 or not np.all(np.isfinite(v)):
+        return False
+    d = np.diff(v)
+    return bool(np.all(d > 0) or np.all(d < 0))
+
+
+def _has_voltage_units(v: xr.DataArray) -> bool:
+    unit = v.attrs.get("units")
+    if unit is None:
+        return False
+    try:
+        voltage_scale(str(unit))
+    except KeyError:
+        return False
+    return True
+
+
+def _as_profile(v: xr.DataArray, dim: str) -> np.ndarray | None:
+    """The values of a set-point grid ``v`` along ``dim``, when ``v`` is constant along its other dimension."""
+    other = [d for d in v.dims if d != dim]
+    if v.ndim != 2 or len(other) != 1 or not _numeric(v):
+        return None
+    arr = np.asarray(v.transpose(other[0], dim).values, float)
+    if not np.all(np.isfinite(arr)):
+        return None
+    span = float(np.ptp(arr)) or 1.0
+    if np.max(np.ptp(arr, axis=0)) > MESH_TOLERANCE * span:
+        return None
+    return arr.mean(axis=0)
+
+
+def is_setpoint_grid(v: xr.DataArray) -> bool:
+    """A 2-D variable constant along one dimension and strictly monotonic along the other."""
+    if v.ndim != 2:
+        return False
+    for dim in v.dims:
+        prof = _as_profile(v, str(dim))
+        if prof is not None and _monotonic(prof):
+            return True
+    return False
+
+
+def _candidates(ds: xr.Dataset, name: str, dim: str) -> dict[str, np.ndarray]:
+    """Gate-voltage candidates for ``dim`` of variable ``name``: 1-D variables along it, or set-point grids."""
+    out: dict[str, np.ndarray] = {}
+    dims = set(ds[name].dims)
+    for key, v in ds.variables.items():
+        key = str(key)
+        if key in (name, dim) or not _numeric(v):
+            continue
+        if v.dims == (dim,):
+            values = np.asarray(v.values, float)
+        elif v.ndim == 2 and dim in v.dims and set(v.dims) <= dims:
+            prof = _as_profile(ds[key], dim)
+            if prof is None:
+                continue
+            values = prof
+        else:
+            continue
+        if _monotonic(values):
+            out[key] = values
+    return out
+
+
+def with_gate_dimensions(ds: xr.Dataset, src: str, name: str, wanted: tuple[str | None, str | None]) -> xr.Dataset:
+    """``ds`` with each dimension of ``name`` that has no index coordinate renamed to its gate variable.
+
+    Parameters
+    ----------
+    ds : Dataset
+        As opened.
+    src : str
+        File name for errors.
+    name : str
+        The map variable.
+    wanted : (x, y)
+        Gate names the user gave (``x=``, ``y=``); a candidate of that name
+        is chosen among several.
+
+    Returns
+    -------
+    Dataset
+        Unchanged when every dimension has its coordinate.
+    """
+    var = ds[name]
+    for dim in [str(d) for d in var.dims]:
+        if dim in ds.coords and ds[dim].dims == (dim,):
+            continue
+        found = _candidates(ds, name, dim)
+        if not found:
+            continue  # (the reader names the dimension without a coordinate)
+        picks = [k for k in found if k in [w for w in wanted if w is not None]]
+        if len(found) > 1 and len(picks) != 1:
+            volts = [k for k in found if _has_voltage_units(ds[k])]
+            if len(volts) != 1:
+                raise InputError(
+                    src,
+                    f"dimension {dim!r} of variable {name!r} has several gate-voltage candidates "
+                    f"({', '.join(sorted(found))}); choose with x= or y= (stabtool analyze --x / --y)",
+                )
+            picks = volts
+        key = picks[0] if picks else next(iter(found))
+        attrs = dict(ds[key].attrs)
+        ds = ds.drop_vars([key]) if key in ds.variables else ds
+        ds = ds.rename_dims({dim: key}) if key not in ds.dims else ds
+        ds = ds.assign_coords({key: xr.Variable((key,), found[key], attrs=attrs)})
+    return ds
+
+
+def flat_point_map(ds: xr.Dataset, src: str, var: str | None, x: str | None, y: str | None) -> xr.DataArray | None:
+    """The map of a flat point list (see module notes), or None when the file is no such list.
+
+    Gates: ``x=`` / ``y=``; else the two variables with voltage units; else
+    the two coordinates; else the first two variables in file order (x,
+    then y), as for a long text table. The signal: ``var=``, else the one
+    numeric variable left.
+    """
+    ones = [str(k) for k, v in ds.variables.items() if v.ndim == 1 and _numeric(v)]
+    if any(v.ndim >= 2 for v in ds.data_vars.values()):
+        return None
+    by_dim: dict[Any, list[str]] = {}
+    for k in ones:
+        by_dim.setdefault(ds[k].dims[0], []).append(k)
+    groups = [keys for keys in by_dim.values() if len(keys) >= 3]
+    if len(groups) != 1:
+        return None
+    keys = groups[0]
+
+    def named(wanted: str | None) -> str | None:
+        if wanted is None:
+            return None
+        if wanted not in keys:
+            raise InputError(src, f"no variable named {wanted!r} along the point list ({', '.join(keys)})")
+        return wanted
+
+    gx, gy, sv = named(x), named(y), named(var)
+    if gx is None or gy is None:
+        pool = [k for k in keys if k not in (gx, gy, sv)]
+        volts = [k for k in pool if _has_voltage_units(ds[k])]
+        coords = [k for k in pool if k in ds.coords]
+        order = volts if len(volts) == 2 else coords if len(coords) == 2 else pool
+        free = [k for k in order if k not in (gx, gy)]
+        if gx is None:
+            gx = free.pop(0)
+        if gy is None:
+            gy = free.pop(0) if free else None
+    if gy is None or gx == gy:
+        raise InputError(src, f"cannot tell the gate variables of the point list ({', '.join(keys)}); pass x= and y=")
+    if sv is None:
+        rest = [k for k in keys if k not in (gx, gy)]
+        if len(rest) != 1:
+            raise InputError(
+                src,
+                f"several measured variables along the point list ({', '.join(rest)}); choose one with var=",
+            )
+        sv = rest[0]
+    units = []
+    for k in (gx, gy):
+        unit = str(ds[k].attrs.get("units", "V"))
+        try:
+            voltage_scale(unit)
+        except KeyError:
+            raise InputError(src, f"unknown unit {unit!r} on gate variable {k!r}; accepted voltage units: "
+                                  "V, mV, uV (µV), nV") from None
+        units.append(unit)
+    grid = rebuild_grid(src, np.asarray(ds[gx].values, float), np.asarray(ds[gy].values, float),
+                        np.asarray(ds[sv].values, float), names=(gx, gy))
+    attrs = decode_attrs({**ds.attrs, **ds[sv].attrs})
+    unit = str(attrs.pop("units", "a.u."))
+    attrs.pop("source", None)
+    if grid.snapped:
+        attrs["setpoints_snapped"] = 1
+    if grid.n_missing:
+        import warnings
+
+        from ..errors import PartialSweepWarning
+
+        warnings.warn(f"{src}: the sweep is incomplete: {grid.n_missing} of {grid.signal.size} points "
+                      "(in the final sweep line) are missing and kept as NaN", PartialSweepWarning, stacklevel=3)
+    return make_map(grid.signal, grid.x, grid.y, x_gate=gx, y_gate=gy, name=sv, units=unit,
+                    x_units=units[0], y_units=units[1], source=src, attrs=attrs)

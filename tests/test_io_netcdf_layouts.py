@@ -1,0 +1,167 @@
+"""NetCDF layouts other than ``sensor(PB, PA)`` with index coordinates: the same map comes out.
+
+Gate voltages on other dimensions (``sensor(y, x)`` with ``PA(x)``), as set-point
+grids (``PA(y, x)``), or every point listed along one dimension (a sweep log)
+are what measurement software writes besides the canonical form (common
+practice, no source). Each must load to the map the canonical file gives.
+"""
+
+from __future__ import annotations
+
+import sys
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pytest
+import xarray as xr
+
+from stabtool.errors import InputError, PartialSweepWarning
+from stabtool.io import load
+
+sys.path.insert(0, str(Path(__file__).parent))
+from _io_data import small_map
+
+
+@pytest.fixture()
+def canonical():
+    """A 5 × 7 map in volts, y decreasing, no missing points."""
+    return small_map(nan_tail=False)
+
+
+def _same_map(got, want):
+    assert got.dims == want.dims
+    np.testing.assert_allclose(got["PA"].values, want["PA"].values, rtol=0, atol=1e-12)
+    np.testing.assert_allclose(got["PB"].values, want["PB"].values, rtol=0, atol=1e-12)
+    np.testing.assert_array_equal(got.values, want.values)
+
+
+def _raw(m):
+    """Values and gate axes of a map, in V."""
+    return m.values, m["PA"].values, m["PB"].values
+
+
+def test_gate_voltages_on_other_dimensions_as_coordinates_or_variables(tmp_path, canonical):
+    v, x, y = _raw(canonical)
+    xr.Dataset({"sensor": (("y", "x"), v)}, coords={"PA": ("x", x), "PB": ("y", y)}).to_netcdf(
+        tmp_path / "coords.nc", engine="h5netcdf")
+    xr.Dataset({"sensor": (("y", "x"), v), "PA": ("x", x), "PB": ("y", y)}).to_netcdf(
+        tmp_path / "vars.nc", engine="h5netcdf")
+    for name in ("coords.nc", "vars.nc"):
+        _same_map(load(tmp_path / name), canonical)
+
+
+def test_set_point_grids_are_reduced_to_their_axes(tmp_path, canonical):
+    v, x, y = _raw(canonical)
+    X, Y = np.meshgrid(x, y)
+    xr.Dataset({"sensor": (("y", "x"), v)}, coords={"PA": (("y", "x"), X), "PB": (("y", "x"), Y)}).to_netcdf(
+        tmp_path / "mesh_coords.nc", engine="h5netcdf")
+    # as data variables beside the map: they are no second map
+    xr.Dataset({"PA": (("y", "x"), X), "sensor": (("y", "x"), v), "PB": (("y", "x"), Y)}).to_netcdf(
+        tmp_path / "mesh_vars.nc", engine="h5netcdf")
+    for name in ("mesh_coords.nc", "mesh_vars.nc"):
+        _same_map(load(tmp_path / name), canonical)
+
+
+def test_a_grid_that_is_not_rectilinear_is_no_gate_axis(tmp_path, canonical):
+    v, x, y = _raw(canonical)
+    X, Y = np.meshgrid(x, y)
+    xr.Dataset({"sensor": (("y", "x"), v)}, coords={"PA": (("y", "x"), X + 0.1 * Y), "PB": (("y", "x"), Y)}).to_netcdf(
+        tmp_path / "skew.nc", engine="h5netcdf")
+    with pytest.raises(InputError, match="dimension 'x' of variable 'sensor' has no coordinate variable"):
+        load(tmp_path / "skew.nc")
+
+
+def test_several_candidates_are_named_and_x_or_units_choose(tmp_path, canonical):
+    v, x, y = _raw(canonical)
+    ds = xr.Dataset({"sensor": (("y", "x"), v), "PA": ("x", x), "PA_readback": ("x", x + 1e-6), "PB": ("y", y)})
+    ds.to_netcdf(tmp_path / "two.nc", engine="h5netcdf")
+    with pytest.raises(InputError, match=r"several gate-voltage candidates \(PA, PA_readback\)"):
+        load(tmp_path / "two.nc")
+    _same_map(load(tmp_path / "two.nc", x="PA"), canonical)
+    ds["PA"].attrs["units"] = "V"
+    ds.to_netcdf(tmp_path / "units.nc", engine="h5netcdf")
+    _same_map(load(tmp_path / "units.nc"), canonical)
+
+
+def _flat(canonical, *, serpentine=False, jitter=0.0, fast="x", cut=0):
+    v, x, y = _raw(canonical)
+    X, Y = np.meshgrid(x, y)
+    V = v.copy()
+    if serpentine:
+        X[1::2], V[1::2] = X[1::2, ::-1], V[1::2, ::-1]
+    if fast == "y":
+        X, Y, V = X.T, Y.T, V.T
+    xs, ys, vs = X.ravel(), Y.ravel(), V.ravel()
+    if jitter:
+        xs = xs + np.random.default_rng(0).normal(0, jitter, xs.size)
+    n = xs.size - cut
+    return xs[:n], ys[:n], vs[:n]
+
+
+@pytest.mark.parametrize("serpentine,fast", [(False, "x"), (True, "x"), (False, "y")])
+def test_a_flat_point_list_is_put_back_on_its_grid(tmp_path, canonical, serpentine, fast):
+    xs, ys, vs = _flat(canonical, serpentine=serpentine, fast=fast)
+    xr.Dataset({"PA": ("point", xs), "PB": ("point", ys), "sensor": ("point", vs)}).to_netcdf(
+        tmp_path / "flat.nc", engine="h5netcdf")
+    got = load(tmp_path / "flat.nc")
+    assert got.dims == ("PB", "PA")
+    order_y = np.argsort(got["PB"].values)
+    want_y = np.argsort(canonical["PB"].values)
+    np.testing.assert_array_equal(got.values[order_y], canonical.values[want_y])
+
+
+def test_a_flat_list_in_millivolts_with_jittered_read_back_and_named_units(tmp_path, canonical):
+    xs, ys, vs = _flat(canonical, serpentine=True, jitter=1e-7)
+    xr.Dataset({"current": ("n", vs, {"units": "nA"}), "PA": ("n", 1e3 * xs, {"units": "mV"}),
+                "PB": ("n", 1e3 * ys, {"units": "mV"})}).to_netcdf(tmp_path / "log.nc", engine="h5netcdf")
+    got = load(tmp_path / "log.nc")
+    assert got.name == "current" and got.attrs["units"] == "nA"
+    assert got.dims == ("PB", "PA")  # the gates by their voltage units, although listed after the signal
+    np.testing.assert_allclose(got["PA"].values, canonical["PA"].values, atol=1e-6)
+    np.testing.assert_array_equal(got.values, canonical.values)
+    assert got["PA"].attrs["original_units"] == "mV"
+
+
+def test_a_flat_list_with_two_measured_variables_needs_var(tmp_path, canonical):
+    xs, ys, vs = _flat(canonical)
+    xr.Dataset({"PA": ("n", xs), "PB": ("n", ys), "sensor": ("n", vs), "phase": ("n", -vs)}).to_netcdf(
+        tmp_path / "two.nc", engine="h5netcdf")
+    with pytest.raises(InputError, match=r"several measured variables along the point list \(sensor, phase\)"):
+        load(tmp_path / "two.nc")
+    np.testing.assert_array_equal(load(tmp_path / "two.nc", var="phase").values, -canonical.values)
+
+
+def test_an_interrupted_flat_list_keeps_the_missing_points_as_nan(tmp_path, canonical):
+    xs, ys, vs = _flat(canonical, cut=3)
+    xr.Dataset({"PA": ("n", xs), "PB": ("n", ys), "sensor": ("n", vs)}).to_netcdf(tmp_path / "cut.nc", engine="h5netcdf")
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        got = load(tmp_path / "cut.nc")
+    assert any(issubclass(w.category, PartialSweepWarning) for w in caught)
+    assert int(np.isnan(got.values).sum()) == 3
+
+
+def test_a_one_dimensional_trace_is_still_refused(tmp_path, canonical):
+    xs, _, vs = _flat(canonical)
+    xr.Dataset({"PA": ("n", xs), "sensor": ("n", vs)}).to_netcdf(tmp_path / "trace.nc", engine="h5netcdf")
+    with pytest.raises(InputError, match="1-D data"):
+        load(tmp_path / "trace.nc")
+
+
+def test_the_analysis_of_another_layout_equals_the_canonical_one(tmp_path, capsys):
+    import json
+
+    from stabtool.cli.main import main
+
+    src = Path(__file__).parents[1] / "sample_data" / "overnight" / "kestrel-7_repeat_17_0350.nc"
+    m = load(src)
+    v, x, y = m.values, m["PA"].values, m["PB"].values
+    xr.Dataset({"sensor": (("y", "x"), v)}, coords={"PA": ("x", x), "PB": ("y", y)},
+               attrs={"temperature_K": 0.1}).to_netcdf(tmp_path / "layout.nc", engine="h5netcdf")
+    results = []
+    for f in (src, tmp_path / "layout.nc"):
+        assert main(["analyze", str(f), "--json", "--quiet"]) == 0
+        results.append(json.loads(capsys.readouterr().out))
+    for key in ("slopes", "virtual_gate_matrix", "addition_voltages_V", "gate_capacitance_aF"):
+        assert results[0][key] == results[1][key], key
