@@ -109,8 +109,25 @@ def _candidates(ds: xr.Dataset, name: str, dim: str) -> dict[str, np.ndarray]:
     return out
 
 
+def _phony(dim: str) -> bool:
+    """A dimension HDF5 files without dimension scales get (h5netcdf ``phony_dims``)."""
+    return dim.startswith("phony_dim_")
+
+
+def _by_length(ds: xr.Dataset, name: str, size: int) -> dict[str, np.ndarray]:
+    """1-D numeric, strictly monotonic variables of ``size`` on phony dimensions (plain HDF5 arrays)."""
+    out: dict[str, np.ndarray] = {}
+    for key, v in ds.variables.items():
+        key = str(key)
+        if key != name and v.ndim == 1 and _phony(str(v.dims[0])) and v.size == size and _numeric(v):
+            values = np.asarray(v.values, float)
+            if _monotonic(values):
+                out[key] = values
+    return out
+
+
 def with_gate_dimensions(ds: xr.Dataset, src: str, name: str, wanted: tuple[str | None, str | None]) -> xr.Dataset:
-    """``ds`` with each dimension of ``name`` that has no index coordinate renamed to its gate variable.
+    """``ds`` with each gate dimension of ``name`` that has no index coordinate renamed to its gate variable.
 
     Parameters
     ----------
@@ -121,37 +138,59 @@ def with_gate_dimensions(ds: xr.Dataset, src: str, name: str, wanted: tuple[str 
     name : str
         The map variable.
     wanted : (x, y)
-        Gate names the user gave (``x=``, ``y=``); a candidate of that name
-        is chosen among several.
+        Gate names the user gave (``x=``, ``y=``). On a dimension with
+        several candidates, the one named wins. The dimensions of a plain
+        HDF5 array carry no meaning (phony dimensions), so there the
+        candidates are the arrays of the right length, and ``x`` (or an
+        array named ``x``) is sought for the last dimension, ``y`` for the
+        first.
 
     Returns
     -------
     Dataset
-        Unchanged when every dimension has its coordinate.
+        Unchanged when every dimension has its coordinate; else the map
+        variable alone with its gate coordinates (and the file's attributes).
     """
     var = ds[name]
-    for dim in [str(d) for d in var.dims]:
-        if dim in ds.coords and ds[dim].dims == (dim,):
+    dims = [str(d) for d in var.dims]
+    role = {dims[-1]: wanted[0], dims[-2]: wanted[1]} if var.ndim >= 2 else {}
+    chosen: dict[str, tuple[str, np.ndarray]] = {}
+    taken: set[str] = set()
+    for k, dim in enumerate(dims):
+        if (dim in ds.coords and ds[dim].dims == (dim,)) or (k < len(dims) - 2 and not _phony(dim)):
             continue
         found = _candidates(ds, name, dim)
+        if _phony(dim):
+            found.update(_by_length(ds, name, var.shape[k]))
+        found = {key: v for key, v in found.items() if key not in taken}
         if not found:
             continue  # (the reader names the dimension without a coordinate)
-        picks = [k for k in found if k in [w for w in wanted if w is not None]]
+        if _phony(dim):  # (arrays named x and y, as in an .npz, say which is which)
+            axis = "x" if k == len(dims) - 1 else "y"
+            named = role.get(dim)
+            picks = [named] if named is not None and named in found else [key for key in found if key.lower() == axis][:1]
+        else:
+            picks = [key for key in found if key in [w for w in wanted if w is not None]]
         if len(found) > 1 and len(picks) != 1:
-            volts = [k for k in found if _has_voltage_units(ds[k])]
-            if len(volts) != 1:
+            volts = [key for key in found if _has_voltage_units(ds[key])]
+            if len(volts) != 1 or _phony(dim):
                 raise InputError(
                     src,
-                    f"dimension {dim!r} of variable {name!r} has several gate-voltage candidates "
-                    f"({', '.join(sorted(found))}); choose with x= or y= (stabtool analyze --x / --y)",
+                    f"dimension {dim!r} of variable {name!r} ({var.shape[k]} points) has several gate-voltage "
+                    f"candidates ({', '.join(sorted(found))}); choose with x= and y= (stabtool analyze --x / --y)",
                 )
             picks = volts
         key = picks[0] if picks else next(iter(found))
-        attrs = dict(ds[key].attrs)
-        ds = ds.drop_vars([key]) if key in ds.variables else ds
-        ds = ds.rename_dims({dim: key}) if key not in ds.dims else ds
-        ds = ds.assign_coords({key: xr.Variable((key,), found[key], attrs=attrs)})
-    return ds
+        chosen[dim] = (key, found[key])
+        taken.add(key)
+    if not chosen:
+        return ds
+    new_dims = [chosen[d][0] if d in chosen else d for d in dims]
+    coords = {chosen[d][0]: xr.Variable((chosen[d][0],), chosen[d][1], attrs=dict(ds[chosen[d][0]].attrs))
+              for d in chosen}
+    coords.update({d: ds[d].variable for d in dims if d not in chosen and d in ds.coords and ds[d].dims == (d,)})
+    return xr.Dataset({name: xr.Variable(tuple(new_dims), var.values, attrs=dict(var.attrs))}, coords=coords,
+                      attrs=dict(ds.attrs))
 
 
 def flat_point_map(ds: xr.Dataset, src: str, var: str | None, x: str | None, y: str | None) -> xr.DataArray | None:

@@ -8,7 +8,10 @@ Shared by :mod:`.csv_long` and :mod:`.csv_grid`. Rules:
 * the first other non-blank line is the header row;
 * the delimiter is taken from the header row: tab, else comma, else
   semicolon, else runs of white space;
-* empty cells and ``nan`` read as NaN.
+* empty cells and ``nan`` read as NaN;
+* with a tab, semicolon or white-space delimiter, numbers may use a decimal
+  comma (``0,0182``, as spreadsheets in many locales write them): read so
+  when the first data rows hold commas and no decimal point.
 """
 
 from __future__ import annotations
@@ -75,7 +78,16 @@ def read_text_table(path: str) -> TextTable:
             body.append((lineno, line))
     if header is None:
         raise InputError(path, "the file is empty (no header row, only comments or blank lines)")
+    if delimiter != "," and _decimal_comma(body):
+        body = [(n, line.replace(",", ".")) for n, line in body]
+        header = [h.replace(",", ".") if is_number(h.replace(",", ".")) else h for h in header]  # (a grid's x row)
     return TextTable(path, delimiter, header, header_line, body, meta)
+
+
+def _decimal_comma(body: list[tuple[int, str]]) -> bool:
+    """Numbers written with a decimal comma (``0,0182``): commas and no point in the first data rows."""
+    head = [line for _, line in body[:20]]
+    return any("," in line for line in head) and not any("." in line for line in head)
 
 
 def _delimiter(line: str) -> str | None:

@@ -14,7 +14,10 @@ Accepted keys
   ``meta["y"]``, else keys ``x`` and ``y``, else the two 1-D arrays (of
   lengths nx and ny; the first stored is x when both have the same length).
   A key may carry its unit as in a CSV header (``PA_mV``); otherwise the
-  unit comes from ``meta`` or is volts.
+  unit comes from ``meta`` or is volts;
+* a point list instead (only 1-D arrays, three or more of one length: x, y
+  and signal of every point in measurement order): the grid is rebuilt as
+  for a NetCDF point list (:func:`stabtool.io._nc_layouts.flat_point_map`).
 
 Object arrays are never unpickled (``allow_pickle=False``).
 """
@@ -93,6 +96,10 @@ def read_npz(path: str, *, var: str | None = None, x: str | None = None, y: str 
         skey = "signal"
     else:
         multi = [k for k in keys if arrays[k].ndim >= 2]
+        if not multi:
+            flat = _flat_point_list(path, arrays, labels, meta, var=var, x=x, y=y)
+            if flat is not None:
+                return flat
         if len(multi) != 1:
             if not multi:
                 raise InputError(
@@ -169,6 +176,29 @@ def read_npz(path: str, *, var: str | None = None, x: str | None = None, y: str 
         if isinstance(meta.get(key), str):
             out[gate].attrs["original_units"] = meta[key]
     return out
+
+
+def _flat_point_list(path: str, arrays: dict[str, np.ndarray], labels: dict[str, Any], meta: dict[str, Any], *,
+                     var: str | None, x: str | None, y: str | None) -> xr.DataArray | None:
+    """The map of 1-D arrays listing every point (x, y, signal in measurement order), or None.
+
+    As a NetCDF point list (:func:`stabtool.io._nc_layouts.flat_point_map`);
+    array names may carry units (``PA_mV``).
+    """
+    from ._nc_layouts import flat_point_map
+
+    ones = {k: a for k, a in arrays.items() if a.ndim == 1 and a.dtype.kind in "iuf"}
+    sizes = {a.size for a in ones.values()}
+    if len(ones) < 3 or len(sizes) != 1:
+        return None
+    names = [labels[k].name for k in ones]
+    if len(set(names)) != len(names):
+        return None
+    ds = xr.Dataset({labels[k].name: ("point", a, {"units": labels[k].unit} if labels[k].unit else {})
+                     for k, a in ones.items()})
+    attrs = decode_attrs(meta.get("attrs") or {}) if isinstance(meta.get("attrs"), dict) else {}
+    ds.attrs.update({k: v for k, v in attrs.items() if k != "source"})
+    return flat_point_map(ds, path, var, x, y)
 
 
 def _suggest(name: str, keys: list[str]) -> str:

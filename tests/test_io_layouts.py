@@ -1,9 +1,12 @@
-"""NetCDF layouts other than ``sensor(PB, PA)`` with index coordinates: the same map comes out.
+"""File layouts other than the canonical ones: the same map comes out.
 
-Gate voltages on other dimensions (``sensor(y, x)`` with ``PA(x)``), as set-point
-grids (``PA(y, x)``), or every point listed along one dimension (a sweep log)
-are what measurement software writes besides the canonical form (common
-practice, no source). Each must load to the map the canonical file gives.
+NetCDF with gate voltages on other dimensions (``sensor(y, x)`` with
+``PA(x)``), as set-point grids (``PA(y, x)``), or every point listed along
+one dimension (a sweep log); plain HDF5 arrays without dimension scales; an
+.npz point list; text tables with decimal commas. These are what
+measurement software and spreadsheets write besides the canonical form
+(common practice, no source). Each must load to the map the canonical file
+gives, or say which choice it needs.
 """
 
 from __future__ import annotations
@@ -165,3 +168,53 @@ def test_the_analysis_of_another_layout_equals_the_canonical_one(tmp_path, capsy
         results.append(json.loads(capsys.readouterr().out))
     for key in ("slopes", "virtual_gate_matrix", "addition_voltages_V", "gate_capacitance_aF"):
         assert results[0][key] == results[1][key], key
+
+
+def test_plain_hdf5_arrays_are_matched_to_the_map_by_length(tmp_path, canonical):
+    h5py = pytest.importorskip("h5py")
+    v, x, y = _raw(canonical)  # 5 × 7: the lengths say which array is which
+    with h5py.File(tmp_path / "plain.h5", "w") as f:
+        f["PA"], f["PB"], f["sensor"] = x, y, v
+    _same_map(load(tmp_path / "plain.h5"), canonical)
+
+
+def test_plain_hdf5_of_a_square_map_needs_the_gates_named(tmp_path):
+    h5py = pytest.importorskip("h5py")
+    x, y = np.linspace(0.0, 0.1, 6), np.linspace(0.2, 0.3, 6)
+    v = np.add.outer(np.arange(6.0), 10 * np.arange(6.0))
+    with h5py.File(tmp_path / "square.h5", "w") as f:
+        f["PA"], f["PB"], f["sensor"] = x, y, v
+    with pytest.raises(InputError, match=r"several gate-voltage candidates \(PA, PB\); choose with x= and y="):
+        load(tmp_path / "square.h5")
+    got = load(tmp_path / "square.h5", x="PB", y="PA")
+    assert got.dims == ("PA", "PB")
+    np.testing.assert_array_equal(got["PB"].values, y)
+    np.testing.assert_array_equal(got.values, v)
+    with h5py.File(tmp_path / "xy.h5", "w") as f:  # arrays named x and y say it themselves
+        f["x"], f["y"], f["signal"] = x, y, v
+    got = load(tmp_path / "xy.h5")
+    np.testing.assert_array_equal(got["x"].values, x)
+    np.testing.assert_array_equal(got["y"].values, y)
+
+
+def test_an_npz_point_list_is_put_back_on_its_grid(tmp_path, canonical):
+    xs, ys, vs = _flat(canonical, serpentine=True)
+    np.savez(tmp_path / "log.npz", PA_mV=1e3 * xs, PB_mV=1e3 * ys, sensor=vs)
+    got = load(tmp_path / "log.npz")
+    assert got.dims == ("PB", "PA") and got["PA"].attrs["original_units"] == "mV"
+    np.testing.assert_allclose(got["PA"].values, canonical["PA"].values, atol=1e-12)
+    np.testing.assert_array_equal(got.values, canonical.values)
+
+
+def test_text_tables_with_decimal_commas(tmp_path, canonical):
+    from stabtool.io import save_map
+
+    for layout, name in (("long", "map.csv"), ("grid", "map.tsv")):
+        plain = tmp_path / name
+        save_map(canonical, plain, layout=layout)
+        text = plain.read_text().splitlines()
+        # semicolons between cells when the commas become decimal marks (a spreadsheet's export)
+        body = [line if line.startswith("#") else line.replace(",", ";").replace(".", ",") for line in text]
+        comma = tmp_path / f"comma_{name}"
+        comma.write_text("\n".join(body) + "\n")
+        _same_map(load(comma), load(plain))
