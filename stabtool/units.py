@@ -20,6 +20,12 @@ VOLTAGE_SCALE: dict[str, float] = {
     "µV": 1e-6,  # micro sign U+00B5
     "μV": 1e-6,  # Greek mu U+03BC
     "nV": 1e-9,
+    "millivolt": 1e-3,
+    "millivolts": 1e-3,
+    "microvolt": 1e-6,
+    "microvolts": 1e-6,
+    "nanovolt": 1e-9,
+    "nanovolts": 1e-9,
 }
 
 

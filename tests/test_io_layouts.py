@@ -218,3 +218,37 @@ def test_text_tables_with_decimal_commas(tmp_path, canonical):
         comma = tmp_path / f"comma_{name}"
         comma.write_text("\n".join(body) + "\n")
         _same_map(load(comma), load(plain))
+
+
+@pytest.mark.filterwarnings("ignore:You are writing invalid netcdf features")
+def test_a_complex_iq_map_is_read_along_its_principal_axis(tmp_path, capsys):
+    import json
+
+    from stabtool.cli.main import main
+
+    src = Path(__file__).parents[1] / "sample_data" / "overnight" / "kestrel-7_repeat_17_0350.nc"
+    m = load(src)
+    v = m.values
+    rng = np.random.default_rng(1)
+    phase = np.deg2rad(40.0)
+    # a resonator's response moved along one I/Q direction by the charge, with a little noise across it
+    z = (0.3 + 0.2j) + (v - v.mean()) * np.exp(1j * phase) + 1e-3 * rng.normal(size=v.shape) * np.exp(1j * (phase + np.pi / 2))
+    np.savez(tmp_path / "iq.npz", PA=m["PA"].values, PB=m["PB"].values, signal=z)
+    got = load(tmp_path / "iq.npz")
+    assert got.attrs["iq_projection_deg"] % 180 == pytest.approx(40.0, abs=0.1)
+    assert abs(np.corrcoef(got.values.ravel(), v.ravel())[0, 1]) > 0.9999
+    xr.Dataset({"s21": (("PB", "PA"), z)}, coords={"PA": m["PA"].values, "PB": m["PB"].values}).to_netcdf(
+        tmp_path / "iq.nc", engine="h5netcdf", invalid_netcdf=True)
+    assert load(tmp_path / "iq.nc").attrs["iq_projection_deg"] % 180 == pytest.approx(40.0, abs=0.1)
+    results = []
+    for f in (src, tmp_path / "iq.nc"):
+        assert main(["analyze", str(f), "--json", "--quiet", "--no-refine"]) == 0
+        results.append(json.loads(capsys.readouterr().out))
+    np.testing.assert_allclose(np.array(results[1]["virtual_gate_matrix"], float),
+                               np.array(results[0]["virtual_gate_matrix"], float), atol=2e-3)
+
+
+def test_voltage_units_spelled_out():
+    from stabtool.units import voltage_scale
+
+    assert voltage_scale("millivolts") == 1e-3 and voltage_scale("microvolt") == 1e-6

@@ -84,3 +84,25 @@ def decode_attrs(attrs: Mapping[str, Any]) -> dict[str, Any]:
 def fmt_number(value: float) -> str:
     """Shortest text that reads back as the same float (``repr``)."""
     return repr(float(value))
+
+
+def principal_projection(values: np.ndarray) -> tuple[np.ndarray, float]:
+    """A complex (I/Q) map projected on the principal axis of its I/Q cloud, and that axis's angle (degrees).
+
+    Reflectometry read-outs record the resonator's complex response; the
+    charge steps move it along one direction of the I/Q plane, which the
+    largest-variance axis of the points finds (common practice, no source).
+    The real part of ``z·exp(−iθ)`` keeps the full step contrast whatever
+    demodulation phase was set; NaN stays NaN.
+    """
+    z = np.asarray(values, dtype=np.complex128)
+    finite = np.isfinite(z)
+    pts = np.stack([z.real[finite], z.imag[finite]])
+    if pts.shape[1] < 2:
+        return np.where(finite, z.real, np.nan), 0.0
+    cov = np.cov(pts)
+    w, vecs = np.linalg.eigh(cov)
+    vx, vy = vecs[:, int(np.argmax(w))]
+    theta = float(np.arctan2(vy, vx))
+    out = (z * np.exp(-1j * theta)).real
+    return np.where(finite, out, np.nan), float(np.degrees(theta))

@@ -39,7 +39,7 @@ import xarray as xr
 from ..errors import InputError
 from ..mapdata import make_map
 from ..units import voltage_scale
-from ._common import decode_attrs, encode_attrs
+from ._common import decode_attrs, encode_attrs, principal_projection
 from ._nc_layouts import flat_point_map, is_setpoint_grid, with_gate_dimensions
 from ._select import pick
 from .stacks import TIME_KEYS, slice_time
@@ -180,14 +180,18 @@ def read_netcdf(
                 path,
                 f"dimension {d!r} of variable {name!r} has no coordinate variable with the gate voltages",
             )
-    if np.iscomplexobj(da.values):
-        raise InputError(path, f"variable {name!r} is complex; store its magnitude or phase as a real map")
+    projection = None
+    if np.iscomplexobj(da.values):  # an I/Q (reflectometry) map: its principal I/Q axis
+        real, projection = principal_projection(da.values)
+        da = da.copy(data=real)
     xv, xorig = _coord_volts(ds, path, xd, da[xd].values)
     yv, yorig = _coord_volts(ds, path, yd, da[yd].values)
     attrs = decode_attrs({**ds.attrs, **da.attrs})
     attrs.pop(MAP_VARIABLE_ATTR, None)
     units = str(attrs.pop("units", "a.u."))
     attrs.pop("source", None)
+    if projection is not None:
+        attrs["iq_projection_deg"] = round(projection, 3)
     if selection:
         attrs["selection"] = ", ".join(f"{k}={v}" for k, v in selection.items())
         _slice_times(attrs, ds, selection)

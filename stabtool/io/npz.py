@@ -35,7 +35,7 @@ import xarray as xr
 from ..errors import InputError
 from ..mapdata import make_map
 from ..units import voltage_scale
-from ._common import decode_attrs
+from ._common import decode_attrs, principal_projection
 from ._headers import parse_label
 from ._select import pick
 
@@ -114,6 +114,9 @@ def read_npz(path: str, *, var: str | None = None, x: str | None = None, y: str 
         raise InputError(path, f"1-D data: array {skey!r} has shape {signal.shape}; a map needs a 2-D signal")
     if signal.ndim > 2:
         raise InputError(path, f"{signal.ndim}-D data: array {skey!r} has shape {signal.shape}; store a 2-D slice (ny, nx)")
+    projection = None
+    if signal.dtype.kind == "c":  # an I/Q (reflectometry) map: its principal I/Q axis
+        signal, projection = principal_projection(signal)
     if signal.dtype.kind not in "iufb":
         raise InputError(path, f"array {skey!r} holds {signal.dtype} values, not numbers")
     ny, nx = signal.shape
@@ -159,6 +162,8 @@ def read_npz(path: str, *, var: str | None = None, x: str | None = None, y: str 
     yunit = _unit(path, ykey, meta.get("y_units") or ylab.unit)
     attrs = decode_attrs(meta.get("attrs") or {}) if isinstance(meta.get("attrs"), dict) else {}
     attrs.pop("source", None)
+    if projection is not None:
+        attrs["iq_projection_deg"] = round(projection, 3)
     out = make_map(
         signal,
         xv,
