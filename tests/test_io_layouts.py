@@ -240,6 +240,13 @@ def test_a_complex_iq_map_is_read_along_its_principal_axis(tmp_path, capsys):
     xr.Dataset({"s21": (("PB", "PA"), z)}, coords={"PA": m["PA"].values, "PB": m["PB"].values}).to_netcdf(
         tmp_path / "iq.nc", engine="h5netcdf", invalid_netcdf=True)
     assert load(tmp_path / "iq.nc").attrs["iq_projection_deg"] % 180 == pytest.approx(40.0, abs=0.1)
+    # I and Q stored as two real variables: the same map
+    xr.Dataset({"s21_I": (("PB", "PA"), z.real), "s21_Q": (("PB", "PA"), z.imag)},
+               coords={"PA": m["PA"].values, "PB": m["PB"].values}).to_netcdf(tmp_path / "i_q.nc", engine="h5netcdf")
+    pair = load(tmp_path / "i_q.nc")
+    assert pair.name == "s21"
+    np.testing.assert_allclose(pair.values, load(tmp_path / "iq.nc").values, atol=1e-12)
+    assert load(tmp_path / "i_q.nc", var="s21_Q").name == "s21_Q"  # one of them, as asked
     results = []
     for f in (src, tmp_path / "iq.nc"):
         assert main(["analyze", str(f), "--json", "--quiet", "--no-refine"]) == 0

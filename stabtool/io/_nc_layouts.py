@@ -11,6 +11,9 @@ index coordinates with the gate voltages (``sensor(PB, PA)`` with ``PA(PA)``,
 * **set-point grids** — ``PA(y, x)``, ``PB(y, x)`` as 2-D arrays (a meshgrid
   of the set-points): accepted when each is constant along one dimension
   (to 1e-6 of its span, read-back jitter aside) and reduced to 1-D;
+* **I and Q as two variables** — ``I(PB, PA)``, ``Q(PB, PA)`` (or
+  ``sensor_I``, ``sensor_Q``) beside no other map: read as one complex map
+  (:func:`iq_pair`), which the reader projects on its principal I/Q axis;
 * **a flat point list** — every point of the sweep along one dimension,
   ``PA(point)``, ``PB(point)``, ``sensor(point)``, in measurement order
   (:func:`flat_point_map`): the grid is rebuilt as for a long text table
@@ -22,6 +25,7 @@ Where the choice is not unique the error lists the candidates; ``x=`` and
 
 from __future__ import annotations
 
+import re
 from typing import Any
 
 import numpy as np
@@ -33,7 +37,7 @@ from ..units import voltage_scale
 from ._common import decode_attrs
 from ._regrid import rebuild_grid
 
-__all__ = ["flat_point_map", "is_setpoint_grid", "with_gate_dimensions"]
+__all__ = ["flat_point_map", "iq_pair", "is_setpoint_grid", "with_gate_dimensions"]
 
 #: a set-point grid counts as constant along a dimension within this share of its span
 MESH_TOLERANCE = 1e-6
@@ -85,6 +89,28 @@ def is_setpoint_grid(v: xr.DataArray) -> bool:
         if prof is not None and _monotonic(prof):
             return True
     return False
+
+
+def iq_pair(ds: xr.Dataset) -> tuple[str, str, str] | None:
+    """``(I name, Q name, map name)`` when the file's only 2-D real variables are an I/Q pair, else None.
+
+    Names ``I``/``Q`` or ``<name>_I``/``<name>_Q`` (any case, ``-``, ``.``
+    or space as separator); the map is named ``<name>`` (``iq`` without one).
+    """
+    two = [str(n) for n, v in ds.data_vars.items() if v.ndim >= 2 and v.dtype.kind == "f" and not is_setpoint_grid(v)]
+    if len(two) != 2:
+        return None
+    parts = []
+    for n in two:
+        m = re.fullmatch(r"(?:(.*?)[_\-. ])?([IiQq])", n)
+        if m is None:
+            return None
+        parts.append((m.group(1) or "", m.group(2).upper(), n))
+    (p1, k1, n1), (p2, k2, n2) = parts
+    if p1 != p2 or {k1, k2} != {"I", "Q"} or ds[n1].dims != ds[n2].dims:
+        return None
+    i_name, q_name = (n1, n2) if k1 == "I" else (n2, n1)
+    return i_name, q_name, p1 or "iq"
 
 
 def _candidates(ds: xr.Dataset, name: str, dim: str) -> dict[str, np.ndarray]:

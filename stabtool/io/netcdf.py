@@ -40,7 +40,7 @@ from ..errors import InputError
 from ..mapdata import make_map
 from ..units import voltage_scale
 from ._common import decode_attrs, encode_attrs, principal_projection
-from ._nc_layouts import flat_point_map, is_setpoint_grid, with_gate_dimensions
+from ._nc_layouts import flat_point_map, iq_pair, is_setpoint_grid, with_gate_dimensions
 from ._select import pick
 from .stacks import TIME_KEYS, slice_time
 
@@ -137,6 +137,11 @@ def read_netcdf(
         flat = flat_point_map(ds, path, var, x, y)  # every point along one dimension (a sweep log)
         if flat is not None:
             return flat
+    pair = iq_pair(ds) if var is None else None
+    if pair is not None:  # I and Q stored apart: one complex map
+        i_name, q_name, joined = pair
+        iq = (ds[i_name] + 1j * ds[q_name]).assign_attrs(ds[i_name].attrs)
+        ds = ds.drop_vars([i_name, q_name]).assign({joined: iq})
     name = _choose_variable(ds, path, var)
     ds = with_gate_dimensions(ds, path, name, (x, y))  # gate voltages on other dimensions or as grids
     da = ds[name]
