@@ -22,6 +22,7 @@ import os
 from dataclasses import dataclass, field, replace
 from datetime import datetime, timezone
 from pathlib import Path
+from collections.abc import Mapping
 from typing import Any, Sequence
 
 import numpy as np
@@ -428,7 +429,7 @@ class PreparedSweep:
 
 
 def _sweep(item: Any, ref_x: np.ndarray | None, ref_y: np.ndarray | None, *,
-           smooth_px: float) -> tuple[_Prepared, np.ndarray, np.ndarray]:
+           smooth_px: float, load_options: Mapping[str, Any] | None = None) -> tuple[_Prepared, np.ndarray, np.ndarray]:
     """A series item (DataArray, path or :class:`PreparedSweep`) prepared on the reference grid."""
     if isinstance(item, PreparedSweep):
         h = item.header
@@ -440,7 +441,7 @@ def _sweep(item: Any, ref_x: np.ndarray | None, ref_y: np.ndarray | None, *,
             if img is not None and img.shape == (h.y.size, h.x.size):
                 return _place(replace(h, img=img), ref_x, ref_y, label=item.source)
         item = item.source
-    da, label = _load(item)
+    da, label = _load(item, load_options)
     return _prepare(da, ref_x, ref_y, smooth_px=smooth_px, label=label)
 
 
@@ -706,7 +707,8 @@ def _model_curves(res: DriftResult) -> tuple[np.ndarray | None, np.ndarray | Non
 
 
 # --------------------------------------------------------------------------- the series
-def _load(item: xr.DataArray | str | os.PathLike[str]) -> tuple[xr.DataArray, str]:
+def _load(item: xr.DataArray | str | os.PathLike[str],
+          load_options: Mapping[str, Any] | None = None) -> tuple[xr.DataArray, str]:
     if isinstance(item, xr.DataArray):
         return item, str(item.attrs.get("source", item.name or "map"))
     import warnings
@@ -716,7 +718,7 @@ def _load(item: xr.DataArray | str | os.PathLike[str]) -> tuple[xr.DataArray, st
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", PartialSweepWarning)  # missing points are handled
-        return load(item), os.fspath(item)
+        return load(item, **(load_options or {})), os.fspath(item)
 
 
 #: Sweeps per parallel registration task of :func:`measure_drift` (at least 4 tasks are made).
@@ -738,7 +740,7 @@ class _RangeRegistration:
 
 
 def _register_range(first: Any, before: Any, chunk: Sequence[Any], start: int, *, upsample: int,
-                    smooth_px: float) -> _RangeRegistration:
+                    smooth_px: float, load_options: Mapping[str, Any] | None = None) -> _RangeRegistration:
     """Register the sweeps ``chunk`` (positions ``start, start + 1, …`` of the series) to ``first``.
 
     ``first`` is the series' first sweep (the reference and its voltage grid),
@@ -746,11 +748,11 @@ def _register_range(first: Any, before: Any, chunk: Sequence[Any], start: int, *
     needed for the sweep-to-sweep registration of ``chunk[0]``. At most three
     feature images are held at once.
     """
-    ref, ref_x, ref_y = _sweep(first, None, None, smooth_px=smooth_px)
+    ref, ref_x, ref_y = _sweep(first, None, None, smooth_px=smooth_px, load_options=load_options)
     ref_label = ref.label
     prev = ref
     if start >= 2:
-        prev, _, _ = _sweep(before, ref_x, ref_y, smooth_px=smooth_px)
+        prev, _, _ = _sweep(before, ref_x, ref_y, smooth_px=smooth_px, load_options=load_options)
     out = _RangeRegistration([], [], [], [], ref_x, ref_y, ref.x_gate, ref.y_gate)
     nan2 = (math.nan, math.nan)
     ffts: dict = {}  # windowed transforms by image and crop (see _windowed_fft)
@@ -761,7 +763,7 @@ def _register_range(first: Any, before: Any, chunk: Sequence[Any], start: int, *
             out.rows.append((0.0, 0.0, 1.0, 1.0))
             out.chain.append(nan2)
             continue
-        cur, _, _ = _sweep(item, ref_x, ref_y, smooth_px=smooth_px)
+        cur, _, _ = _sweep(item, ref_x, ref_y, smooth_px=smooth_px, load_options=load_options)
         label = cur.label
         out.labels.append(label)
         out.times.append(cur.time)
@@ -789,6 +791,7 @@ def measure_drift(
     jump_threshold: float = 6.0,
     min_match: float = 0.3,
     executor: Any = None,
+    load_options: Mapping[str, Any] | None = None,
 ) -> DriftResult:
     """Pattern offset of each sweep relative to the first, with jumps and slow drift.
 
@@ -815,6 +818,8 @@ def measure_drift(
     executor : concurrent.futures.Executor, optional
         Register chunks of consecutive sweeps in parallel on it (e.g. the
         batch's process pool); the result is the same as without.
+    load_options : mapping, optional
+        ``var``, ``x``, ``y`` for :func:`stabtool.io.load` of the paths.
 
     Returns
     -------
@@ -849,7 +854,7 @@ def measure_drift(
                 labels.append(it.source)
                 times.append(it.time)
                 continue
-            da, label = _load(it)
+            da, label = _load(it, load_options)
             labels.append(label)
             times.append(sweep_time_of(da))
             del da
@@ -857,13 +862,14 @@ def measure_drift(
         items = [items[i] for i in idx]
     n = len(items)
     if executor is None:
-        parts = [_register_range(items[0], None, items, 0, upsample=upsample, smooth_px=smooth_px)]
+        parts = [_register_range(items[0], None, items, 0, upsample=upsample, smooth_px=smooth_px,
+                                 load_options=load_options)]
     else:
         # chunks of consecutive sweeps; each loads the first sweep (and its own predecessor) again
         n_chunks = max(1, min(n, max(4, -(-n // DRIFT_CHUNK))))
         bounds = np.linspace(0, n, n_chunks + 1).round().astype(int)
         futures = [executor.submit(_register_range, items[0], items[a - 1] if a >= 2 else None, items[a:b], int(a),
-                                   upsample=upsample, smooth_px=smooth_px)
+                                   upsample=upsample, smooth_px=smooth_px, load_options=load_options)
                    for a, b in itertools.pairwise(bounds) if b > a]
         parts = [f.result() for f in futures]
     files = [lab for p in parts for lab in p.labels]

@@ -15,7 +15,8 @@ import glob
 import os
 import re
 from pathlib import Path
-from typing import Iterable, Sequence
+from collections.abc import Mapping
+from typing import Any, Iterable, Sequence
 
 from ..errors import InputError
 from ..io.stacks import expand_stacks, split_slice_ref
@@ -66,6 +67,7 @@ def discover_inputs(
     suffixes: Iterable[str] | None = None,
     exclude: Iterable[str | os.PathLike[str]] = (),
     stacks: bool = True,
+    load_options: Mapping[str, Any] | None = None,
 ) -> list[Path]:
     """Expand files, folders and globs into an ordered list of distinct files.
 
@@ -84,6 +86,9 @@ def discover_inputs(
         extra dimension such as ``rep``) by one slice reference per sweep,
         ``file.nc[rep=0]``, ``file.nc[rep=1]``, ... (:mod:`stabtool.io.stacks`).
         A slice reference may also be given as an input.
+    load_options : mapping, optional
+        ``var``, ``x``, ``y`` the maps are read with (they decide which
+        variable and which dimensions a stack has).
 
     Returns
     -------
@@ -143,4 +148,4 @@ def discover_inputs(
             " ".join(os.fspath(i) for i in inputs),
             f"no map file found (looked for {', '.join(sfx)})",
         )
-    return expand_stacks(out) if stacks else out
+    return expand_stacks(out, **(load_options or {})) if stacks else out

@@ -25,13 +25,13 @@ import sys
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Callable, Iterator, Sequence
+from typing import Any, Callable, Iterator, Mapping, Sequence
 
 from ..errors import InputError
 from ..io.stacks import split_slice_ref
 from .inputs import discover_inputs
 from .store import BatchRecord, ResultStore, content_hash
-from .worker import analyze_one, one_line_reason
+from .worker import FileAnalyzer, analyze_one, one_line_reason
 
 __all__ = ["BatchItem", "BatchReport", "run_batch", "default_workers"]
 
@@ -334,6 +334,7 @@ def run_batch(
     drift: bool = True,
     netcdf: bool = True,
     table_interval_s: float = 5.0,
+    load_options: Mapping[str, Any] | None = None,
 ) -> BatchReport:
     """Analyse every map in ``inputs``; write the table, plots and summary to ``out_dir``.
 
@@ -370,6 +371,9 @@ def run_batch(
         Rebuild ``results.csv`` at most this often while running, s (the
         records are written immediately whatever this is); less often when
         a rebuild takes more than 1/20 of it.
+    load_options : mapping, optional
+        ``var``, ``x``, ``y`` of :func:`stabtool.io.load` for every file (the
+        measured quantity and the gates when a file holds several).
 
     Returns
     -------
@@ -387,7 +391,10 @@ def run_batch(
     out = Path(out_dir)
     if out.exists() and not out.is_dir():
         raise InputError(out, "--out must be a folder, but a file of that name exists")
-    paths = discover_inputs(inputs, exclude=[out])
+    options = {k: v for k, v in (load_options or {}).items() if v is not None}
+    paths = discover_inputs(inputs, exclude=[out], load_options=options)
+    if options:
+        analyzer = FileAnalyzer(analyzer, options)
     store = ResultStore(out)
     settings = _settings(analyzer)
     if store.has_records():
@@ -487,7 +494,7 @@ def run_batch(
         if drift:
             from .summary import drift_for_batch
 
-            drift_result = drift_for_batch(ordered, out, executor=pool, prepared=features)
+            drift_result = drift_for_batch(ordered, out, executor=pool, prepared=features, load_options=options)
     finally:
         if pool is not None:
             pool.shutdown(wait=True, cancel_futures=True)

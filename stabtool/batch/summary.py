@@ -131,14 +131,14 @@ def _trend_figure(records: Sequence[BatchRecord], rows: Sequence[dict]) -> str |
 
 
 # --------------------------------------------------------------------------- drift in a batch
-def _map_header(path: str) -> dict | None:
+def _map_header(path: str, load_options: Mapping[str, Any] | None = None) -> dict | None:
     """Gates, window, device and time of a map file (the map itself is dropped)."""
     from ..io import load
 
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            da = load(path)
+            da = load(path, **(load_options or {}))
     except Exception:  # noqa: BLE001 - a map that cannot be read is simply not in a series
         return None
     return _header_of_map(path, da)
@@ -163,7 +163,7 @@ def _header_of_map(path: str, da: Any) -> dict | None:
     }
 
 
-def _header_of(rec: BatchRecord) -> dict | None:
+def _header_of(rec: BatchRecord, load_options: Mapping[str, Any] | None = None) -> dict | None:
     """Header of a record's map from the record itself, else from the file."""
     info = rec.info or {}
     if info.get("window_V") and info.get("x_gate"):
@@ -175,7 +175,7 @@ def _header_of(rec: BatchRecord) -> dict | None:
             "shape": tuple(info.get("shape") or ()),
             "time": rec.time,
         }
-    return _map_header(rec.file)
+    return _map_header(rec.file, load_options)
 
 
 def _overlap(a: tuple[float, float, float, float], b: tuple[float, float, float, float]) -> float:
@@ -188,7 +188,8 @@ def _overlap(a: tuple[float, float, float, float], b: tuple[float, float, float,
 
 
 def find_repeated_series(
-    records: Iterable[BatchRecord], *, min_sweeps: int = 3, min_overlap: float = 0.7
+    records: Iterable[BatchRecord], *, min_sweeps: int = 3, min_overlap: float = 0.7,
+    load_options: Mapping[str, Any] | None = None,
 ) -> list[list[str]]:
     """Group the analysed maps of a batch into series of repeated sweeps.
 
@@ -197,6 +198,9 @@ def find_repeated_series(
     union with the series' first window is at least ``min_overlap``; at
     least ``min_sweeps`` maps. Survey and zoom maps of other windows are
     thereby left out.
+
+    ``load_options`` (``var``, ``x``, ``y``) read a map whose record lacks
+    its window.
 
     Returns
     -------
@@ -213,19 +217,21 @@ def find_repeated_series(
     for group in candidates.values():
         if len(group) < min_sweeps:
             continue
-        heads = [h for h in (_header_of(r) for r in group) if h is not None]
+        heads = [h for h in (_header_of(r, load_options) for r in group) if h is not None]
         series.extend(_series_of_headers(heads, min_sweeps=min_sweeps, min_overlap=min_overlap))
     return series
 
 
 def series_of_files(paths: Sequence[str], feature_dir: str | os.PathLike[str], *,
-                    min_sweeps: int = 2, min_overlap: float = 0.7) -> tuple[list[list[str]] | None, dict[str, Any]]:
+                    min_sweeps: int = 2, min_overlap: float = 0.7,
+                    load_options: Mapping[str, Any] | None = None) -> tuple[list[list[str]] | None, dict[str, Any]]:
     """Series of repeated sweeps among map files (the rule of :func:`find_repeated_series`), each file read once.
 
     Each map's drift feature (:func:`stabtool.batch.drift.feature_of`) is
     saved under ``feature_dir`` while the map is in memory, so that
     :func:`stabtool.batch.drift.measure_drift` need not load the file again
-    (only one feature image is held at a time).
+    (only one feature image is held at a time). ``load_options`` (``var``,
+    ``x``, ``y``) are passed to :func:`stabtool.io.load`.
 
     Returns
     -------
@@ -248,7 +254,7 @@ def series_of_files(paths: Sequence[str], feature_dir: str | os.PathLike[str], *
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")
-                da = load(path)
+                da = load(path, **(load_options or {}))
         except Exception:  # noqa: BLE001 - reported by measure_drift, which loads it again
             heads.append(None)
             continue
@@ -291,7 +297,8 @@ PARALLEL_DRIFT_MIN = 16
 
 
 def drift_for_batch(records: Sequence[BatchRecord], out_dir: str | os.PathLike[str], *,
-                    executor: Any = None, prepared: Mapping[str, Any] | None = None) -> list:
+                    executor: Any = None, prepared: Mapping[str, Any] | None = None,
+                    load_options: Mapping[str, Any] | None = None) -> list:
     """Drift analysis of every series of repeated sweeps in a batch.
 
     Writes ``drift/<name>.csv|json|png`` per series into ``out_dir`` and
@@ -302,17 +309,18 @@ def drift_for_batch(records: Sequence[BatchRecord], out_dir: str | os.PathLike[s
     series run in parallel (:func:`~stabtool.batch.drift.measure_drift`).
     ``prepared`` maps a file path to its saved feature image
     (:class:`~stabtool.batch.drift.PreparedSweep`, made by the batch worker):
-    that sweep is not loaded again (same numbers).
+    that sweep is not loaded again (same numbers). ``load_options``
+    (``var``, ``x``, ``y``) read the others as the batch read them.
     """
     from .drift import measure_drift
 
     out = Path(out_dir) / "drift"
     results = []
-    for paths in find_repeated_series(records):
+    for paths in find_repeated_series(records, load_options=load_options):
         try:
             # already in time order; short series are not worth the pool's round trips
             items = [prepared.get(p, p) for p in paths] if prepared else paths
-            res = measure_drift(items, order="given",
+            res = measure_drift(items, order="given", load_options=load_options,
                                 executor=executor if len(paths) >= PARALLEL_DRIFT_MIN else None)
         except Exception as exc:  # noqa: BLE001 - drift is an extra; the batch stands
             from ..errors import StabtoolWarning

@@ -13,13 +13,36 @@ import os
 import tempfile
 import time
 import warnings
+from dataclasses import dataclass
 from typing import Any, Callable, Mapping
 
 from ..errors import InputError
 from ..io.stacks import TIME_KEYS
 from .store import _jsonable
 
-__all__ = ["analyze_one", "one_line_reason", "sweep_time", "map_info"]
+__all__ = ["FileAnalyzer", "analyze_one", "one_line_reason", "sweep_time", "map_info"]
+
+
+@dataclass(frozen=True)
+class FileAnalyzer:
+    """A pipeline that reads every file with the same load options (``var``, ``x``, ``y``).
+
+    Picklable when the pipeline is; its ``repr`` (kept by a batch to refuse
+    a resume with other settings) names the options.
+    """
+
+    analyzer: Any
+    load_options: Mapping[str, Any]
+
+    def analyze_file(self, path: str) -> Any:
+        """``analyzer.analyze_file(path, **load_options)``."""
+        run = getattr(self.analyzer, "analyze_file", None)
+        if run is None:
+            raise TypeError("load options need a pipeline with analyze_file(path, **load_options)")
+        return run(path, **self.load_options)
+
+    def __repr__(self) -> str:
+        return f"{self.analyzer!r} reading {dict(self.load_options)!r}"
 
 
 

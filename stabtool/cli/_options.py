@@ -7,6 +7,8 @@ for it); ``tests/test_cli_readout.py`` checks that the two agree.
 
 from __future__ import annotations
 
+from typing import Any
+
 from ..errors import InputError
 
 #: ``--readout``: what the map measures
@@ -19,6 +21,19 @@ READOUT_HELP = (
 )
 
 ISEL_HELP = "position along an extra dimension of NetCDF data (repeatable)"
+
+
+def add_load_options(p: Any) -> None:
+    """``--var``, ``--x``, ``--y``: which quantity and gates to read from files holding several."""
+    p.add_argument("--var", default=None, metavar="NAME",
+                   help="measured quantity to read (variable, column or key name), where a file holds several")
+    p.add_argument("--x", default=None, metavar="GATE", help="gate to put on x (plunger of dot1)")
+    p.add_argument("--y", default=None, metavar="GATE", help="gate to put on y (plunger of dot2)")
+
+
+def load_options(args: Any) -> dict[str, str]:
+    """The ``var``, ``x``, ``y`` given on the command line (for :func:`stabtool.io.load`)."""
+    return {k: v for k in ("var", "x", "y") if (v := getattr(args, k, None)) is not None}
 
 
 def parse_isel(items: list[str] | None) -> dict[str, int] | None:

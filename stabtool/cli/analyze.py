@@ -12,7 +12,7 @@ from __future__ import annotations
 import argparse
 from typing import Any
 
-from ._options import ISEL_HELP, READOUT_CHOICES, READOUT_HELP, parse_isel
+from ._options import ISEL_HELP, READOUT_CHOICES, READOUT_HELP, add_load_options, parse_isel
 
 __all__ = ["register", "run"]
 
@@ -74,9 +74,7 @@ def register(subparsers: Any) -> None:
         description=__doc__.split("\n\n")[1] if __doc__ else None,
     )
     p.add_argument("file", metavar="FILE", help="map file (.nc, .h5, .csv, .tsv, .txt, .npz)")
-    p.add_argument("--x", default=None, metavar="GATE", help="gate to put on x (plunger of dot1)")
-    p.add_argument("--y", default=None, metavar="GATE", help="gate to put on y (plunger of dot2)")
-    p.add_argument("--var", default=None, metavar="NAME", help="measured quantity to read")
+    add_load_options(p)
     p.add_argument("--isel", action="append", metavar="DIM=INDEX", help=ISEL_HELP)
     # several references may be given together: they are compared (disagreement ⇒ quality false)
     ref = p.add_argument_group("energy references")

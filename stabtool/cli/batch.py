@@ -19,7 +19,7 @@ import argparse
 import sys
 from typing import Any
 
-from ._options import READOUT_CHOICES, READOUT_HELP
+from ._options import READOUT_CHOICES, READOUT_HELP, add_load_options, load_options
 
 __all__ = ["add_analysis_options", "make_analyzer", "register", "run"]
 
@@ -66,6 +66,7 @@ def run(args: argparse.Namespace) -> int:
         resume=args.resume,
         retry_failed=args.retry_failed,
         progress=not args.quiet,
+        load_options=load_options(args),
     )
     if not args.quiet:
         print(report.summary_line(), file=sys.stderr)
@@ -97,6 +98,7 @@ def register(subparsers: Any) -> None:
                    help="run on an existing dask.distributed cluster (e.g. tcp://host:8786); "
                    "needs the extra 'cluster' and input paths readable by the workers")
     add_analysis_options(p)
+    add_load_options(p)
     p.add_argument("--resume", action="store_true",
                    help="finish an interrupted batch in DIR; finished maps are not redone")
     p.add_argument("--retry-failed", action="store_true",

@@ -22,6 +22,8 @@ from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
+from ._options import add_load_options, load_options
+
 __all__ = ["register", "run"]
 
 
@@ -35,10 +37,11 @@ def run(args: argparse.Namespace) -> int:
         from ..errors import InputError
 
         raise InputError(args.out, "--out must be a folder, but a file of that name exists")
-    paths = [str(p) for p in discover_inputs(args.inputs, exclude=[out])]
+    opts = load_options(args)
+    paths = [str(p) for p in discover_inputs(args.inputs, exclude=[out], load_options=opts)]
     with tempfile.TemporaryDirectory(prefix="stabtool-drift-") as features:
-        items, left_out = _one_series(paths, features)
-        res = measure_drift(items, upsample=args.upsample, jump_threshold=args.jump_threshold)
+        items, left_out = _one_series(paths, features, opts)
+        res = measure_drift(items, upsample=args.upsample, jump_threshold=args.jump_threshold, load_options=opts)
     if left_out:
         names = ", ".join(Path(p).name for p in left_out)
         res = replace(res, quality=res.quality.with_warning(
@@ -57,7 +60,7 @@ def run(args: argparse.Namespace) -> int:
     return 0
 
 
-def _one_series(paths: list[str], feature_dir: str) -> tuple[list[Any], list[str]]:
+def _one_series(paths: list[str], feature_dir: str, opts: dict[str, str]) -> tuple[list[Any], list[str]]:
     """The largest series of repeated sweeps among ``paths`` and the maps left out of it.
 
     A night's folder often holds a survey and a zoom beside the repeats; registering
@@ -69,7 +72,7 @@ def _one_series(paths: list[str], feature_dir: str) -> tuple[list[Any], list[str
     """
     from ..batch.summary import series_of_files
 
-    series, items = series_of_files(paths, feature_dir)
+    series, items = series_of_files(paths, feature_dir, load_options=opts)
     if not series:
         return [items[p] for p in paths], []
     best = max(series, key=len)  # (ties: the earliest series)
@@ -91,6 +94,7 @@ def register(subparsers: Any) -> None:
                    help="registration precision 1/N pixel (default 20)")
     p.add_argument("--jump-threshold", type=float, default=6.0, metavar="Z",
                    help="a jump is a sweep-to-sweep step beyond Z robust standard deviations (default 6)")
+    add_load_options(p)
     p.add_argument("--json", action="store_true", help="print the drift JSON on stdout")
     p.add_argument("--quiet", action="store_true", help="print nothing (the files are still written)")
     p.set_defaults(func=run)

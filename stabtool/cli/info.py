@@ -20,7 +20,7 @@ import xarray as xr
 from ..errors import InputError, StabtoolWarning
 from ..mapdata import implausible_gate_voltages
 from ..units import from_volts
-from ._options import ISEL_HELP, parse_isel
+from ._options import ISEL_HELP, add_load_options, parse_isel
 
 __all__ = ["describe", "register", "run"]
 
@@ -108,7 +108,7 @@ def run(args: argparse.Namespace) -> int:
         try:
             isel = parse_isel(args.isel)
             # a stacked file (several sweeps) without --isel: its first slice, and how many there are
-            stack = stack_selections(path) if not isel and args.var is None and args.x is None and args.y is None else []
+            stack = stack_selections(path, var=args.var, x=args.x, y=args.y) if not isel else []
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", StabtoolWarning)  # the NaN fraction is reported
                 da = load(path, var=args.var, x=args.x, y=args.y, isel=isel or (stack[0] if stack else None))
@@ -148,9 +148,7 @@ def register(subparsers: Any) -> None:
     )
     p.add_argument("files", nargs="+", metavar="FILE", help="map files (.nc, .h5, .csv, .tsv, .txt, .npz)")
     p.add_argument("--json", action="store_true", help="one JSON list on stdout, one object per file")
-    p.add_argument("--var", default=None, help="measured quantity to read (variable, column or key name)")
-    p.add_argument("--x", default=None, metavar="GATE", help="gate to put on x")
-    p.add_argument("--y", default=None, metavar="GATE", help="gate to put on y")
+    add_load_options(p)
     p.add_argument("--isel", action="append", metavar="DIM=INDEX",
                    help=ISEL_HELP)
     p.set_defaults(func=run)

@@ -68,23 +68,24 @@ def split_slice_ref(text: str | os.PathLike[str]) -> tuple[str, dict[str, int] |
     return m["path"], isel
 
 
-def _map_variable(ds: xr.Dataset) -> str | None:
+def _map_variable(ds: xr.Dataset, var: str | None) -> str | None:
     """The variable :func:`stabtool.io.netcdf.read_netcdf` would choose (None when it would fail)."""
     from ..errors import InputError
     from .netcdf import _choose_variable
 
     try:
-        return _choose_variable(ds, "", None)
+        return _choose_variable(ds, "", var)
     except InputError:
         return None
 
 
-def stack_selections(path: str | os.PathLike[str]) -> list[dict[str, int]]:
+def stack_selections(path: str | os.PathLike[str], *, var: str | None = None, x: str | None = None,
+                     y: str | None = None) -> list[dict[str, int]]:
     """Every ``isel`` of a stacked NetCDF map, in storage order; empty for a plain map.
 
-    The map variable is chosen as :func:`stabtool.io.load` chooses it; its
-    last two dimensions are the gates, the others (longer than 1) are
-    stacked. Files that are no NetCDF, cannot be opened or hold no single
+    The map variable is chosen as :func:`stabtool.io.load` chooses it (or
+    named by ``var``); its last two dimensions are the gates (or those named
+    ``x`` and ``y``), the others (longer than 1) are stacked. Files that are no NetCDF, cannot be opened or hold no single
     map give an empty list (loading them then says what is wrong).
     """
     from .detect import detect_format
@@ -100,26 +101,30 @@ def stack_selections(path: str | os.PathLike[str]) -> list[dict[str, int]]:
     kwargs: dict[str, Any] = {"phony_dims": "sort"} if engine == "h5netcdf" else {}
     try:
         with xr.open_dataset(src, engine=engine, decode_times=False, **kwargs) as ds:
-            name = _map_variable(ds)
+            name = _map_variable(ds, var)
             if name is None:
                 return []
             sizes = ds[name].sizes
-            stacked = [str(d) for d in list(ds[name].dims)[:-2] if sizes[d] > 1]
+            dims = [str(d) for d in ds[name].dims]
+            gates = [g for g in (x, y) if g in dims]
+            others = [d for d in dims if d not in gates][: len(dims) - 2] if gates else dims[:-2]
+            stacked = [d for d in others if sizes[d] > 1]
     except Exception:  # noqa: BLE001 - as above
         return []
     ranges = [range(int(sizes[d])) for d in stacked]
     return [dict(zip(stacked, combo)) for combo in itertools.product(*ranges)] if stacked else []
 
 
-def expand_stacks(paths: Sequence[Any]) -> list[Any]:
+def expand_stacks(paths: Sequence[Any], *, var: str | None = None, x: str | None = None,
+                  y: str | None = None) -> list[Any]:
     """``paths`` with each stacked NetCDF file replaced by the slice references of its maps.
 
     Items keep their type (``str`` or :class:`pathlib.Path`); plain files are
-    returned as they are.
+    returned as they are. ``var``, ``x``, ``y`` as for :func:`stack_selections`.
     """
     out: list[Any] = []
     for p in paths:
-        selections = stack_selections(p)
+        selections = stack_selections(p, var=var, x=x, y=y)
         if not selections:
             out.append(p)
             continue
