@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import warnings
 from dataclasses import replace
 
@@ -287,3 +288,18 @@ def test_the_text_summary_lists_the_doubts_first_and_marks_them(result):
     text = summary_text(replace(res, quality=q))
     tail = text.splitlines()[-3:]
     assert tail[0].startswith("quality: DOUBTFUL") and tail[1:] == ["  ! the doubt", "  · a note"]
+
+
+def test_every_output_of_a_matrix_carries_the_caution(result, tmp_path, capsys):
+    # virtual gates go to real devices: the text, the JSON of analyze and its saved file say so
+    from stabtool.cli.main import main
+    from stabtool.io import load_dataset, save_map
+    from stabtool.report.caution import MATRIX_CAUTION
+    from stabtool.report.text import summary_text
+
+    assert f"  caution: {MATRIX_CAUTION}" in summary_text(result).splitlines()
+    path = tmp_path / "map.nc"
+    save_map(result.data, path)
+    assert main(["analyze", str(path), "--json", "--quiet", "--save", str(tmp_path / "out.nc")]) == 0
+    assert json.loads(capsys.readouterr().out)["caution"] == MATRIX_CAUTION
+    assert load_dataset(tmp_path / "out.nc").attrs["caution"] == MATRIX_CAUTION

@@ -27,6 +27,7 @@ import numpy as np
 from ..errors import InputError
 from ..physics.virtual_gates import inverse_variance_mean, square_virtual_matrix
 from ..quality import Quality
+from ..report.caution import MATRIX_CAUTION
 from .measurement import PairMeasurement
 
 __all__ = [
@@ -39,10 +40,7 @@ __all__ = [
 ]
 
 #: Printed with every matrix and stored in its JSON.
-CAUTION = (
-    "This virtual-gate matrix is an estimate with the stated uncertainty; check "
-    "gate-voltage limits and the lab's procedures before applying it to a device."
-)
+CAUTION = MATRIX_CAUTION
 
 
 #: A cross-coupling this large (|M[d, g]| relative to the dot's own plunger) is implausible: a

@@ -34,6 +34,7 @@ import numpy as np
 
 from ..errors import InputError
 from ..io.atomic import atomic_write, atomic_write_bytes, atomic_write_text
+from ..report.caution import RESULTS_CAUTION
 
 __all__ = [
     "STATUSES",
@@ -420,11 +421,7 @@ def write_netcdf(path: str | os.PathLike[str], records: Iterable[BatchRecord]) -
 
 
 #: The caution printed with every batch summary.
-CAUTION = (
-    "These results are estimates from automated image analysis. Check every gate "
-    "voltage against the device's safe limits and follow your lab's procedures "
-    "before applying any virtual-gate matrix or setting to a device."
-)
+CAUTION = RESULTS_CAUTION
 
 
 class ResultStore:

@@ -12,6 +12,7 @@ from __future__ import annotations
 import argparse
 from typing import Any
 
+from ..report.caution import MATRIX_CAUTION
 from ._options import ISEL_HELP, READOUT_CHOICES, READOUT_HELP, add_load_options, parse_isel
 
 __all__ = ["register", "run"]
@@ -53,14 +54,21 @@ def run(args: argparse.Namespace) -> int:
         readout=args.readout,
     )
     res = analyzer(da)
+    out = res.to_json()
+    matrix = out.get("virtual_gate_matrix")
+    caution = MATRIX_CAUTION if matrix is not None and any(v is not None for row in matrix for v in row) else None
     if args.plot:
         res.save_plot(args.plot)
     if args.save:
         from ..io import save_map
 
-        save_map(res.to_dataset(), args.save)
+        ds = res.to_dataset()
+        if caution is not None:
+            ds.attrs["caution"] = caution
+        save_map(ds, args.save)
     if args.json:
-        print(dumps(res.to_json()))
+        # (the conventions' object, plus the caution with a matrix: it may go to a device)
+        print(dumps(out if caution is None else {**out, "caution": caution}))
     else:
         print(res.summary())
     return 0

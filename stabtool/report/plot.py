@@ -39,6 +39,7 @@ from typing import Any, ClassVar
 import numpy as np
 
 from ..io.atomic import atomic_write_bytes
+from .caution import SHORT_CAUTION
 from .text import fmt_pm
 
 __all__ = ["FAMILY_COLOURS", "plot_result", "render_png", "save_plot"]
@@ -101,6 +102,8 @@ def _key_numbers(res: Any) -> str:
     else:
         rows.append("no energy reference")
     rows.append("quality: " + ("ok" if res.quality.ok else "DOUBTFUL"))
+    if np.any(np.isfinite(m)):
+        rows.append(SHORT_CAUTION)
     return "\n".join(rows)
 
 

@@ -6,6 +6,8 @@ from typing import Any
 
 import numpy as np
 
+from .caution import MATRIX_CAUTION
+
 __all__ = ["fmt_pm", "summary_text"]
 
 
@@ -31,6 +33,8 @@ def summary_text(res: Any) -> str:
     lines.append("virtual-gate matrix M (V' = M V):")
     for i in range(2):
         lines.append("  [" + ", ".join(fmt_pm(m[i, k], me[i, k]) for k in range(2)) + "]")
+    if np.any(np.isfinite(m)):
+        lines.append(f"  caution: {MATRIX_CAUTION}")
     lines.append(
         f"addition voltages: dot1 {fmt_pm(d.addition_V[0], d.addition_V_error[0], scale=1e3, unit='mV')}, "
         f"dot2 {fmt_pm(d.addition_V[1], d.addition_V_error[1], scale=1e3, unit='mV')}"
