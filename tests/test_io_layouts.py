@@ -44,35 +44,41 @@ def _raw(m):
     return m.values, m["PA"].values, m["PB"].values
 
 
-def test_gate_voltages_on_other_dimensions_as_coordinates_or_variables(tmp_path, canonical):
+def _gates_as(tmp_path, name, canonical, make, *, as_coords):
+    """``sensor(y, x)`` with the gates ``make(x, y) -> (PA, PB)`` (each a (dims, values) pair) saved to ``name``."""
     v, x, y = _raw(canonical)
-    xr.Dataset({"sensor": (("y", "x"), v)}, coords={"PA": ("x", x), "PB": ("y", y)}).to_netcdf(
-        tmp_path / "coords.nc", engine="h5netcdf")
-    xr.Dataset({"sensor": (("y", "x"), v), "PA": ("x", x), "PB": ("y", y)}).to_netcdf(
-        tmp_path / "vars.nc", engine="h5netcdf")
-    for name in ("coords.nc", "vars.nc"):
-        _same_map(load(tmp_path / name), canonical)
+    pa, pb = make(x, y)
+    gates = {"PA": pa, "PB": pb}
+    ds = (xr.Dataset({"sensor": (("y", "x"), v)}, coords=gates) if as_coords
+          else xr.Dataset({"PA": pa, "sensor": (("y", "x"), v), "PB": pb}))  # (the map between the gates)
+    ds.to_netcdf(tmp_path / name, engine="h5netcdf")
+    return tmp_path / name
 
 
-def test_set_point_grids_are_reduced_to_their_axes(tmp_path, canonical):
-    v, x, y = _raw(canonical)
+def _axes(x, y):
+    return ("x", x), ("y", y)
+
+
+def _mesh(x, y, *, skew=0.0):
     X, Y = np.meshgrid(x, y)
-    xr.Dataset({"sensor": (("y", "x"), v)}, coords={"PA": (("y", "x"), X), "PB": (("y", "x"), Y)}).to_netcdf(
-        tmp_path / "mesh_coords.nc", engine="h5netcdf")
-    # as data variables beside the map: they are no second map
-    xr.Dataset({"PA": (("y", "x"), X), "sensor": (("y", "x"), v), "PB": (("y", "x"), Y)}).to_netcdf(
-        tmp_path / "mesh_vars.nc", engine="h5netcdf")
-    for name in ("mesh_coords.nc", "mesh_vars.nc"):
-        _same_map(load(tmp_path / name), canonical)
+    return (("y", "x"), X + skew * Y), (("y", "x"), Y)
+
+
+@pytest.mark.parametrize("as_coords", [True, False], ids=["coordinates", "variables"])
+def test_gate_voltages_on_other_dimensions(tmp_path, canonical, as_coords):
+    _same_map(load(_gates_as(tmp_path, "axes.nc", canonical, _axes, as_coords=as_coords)), canonical)
+
+
+@pytest.mark.parametrize("as_coords", [True, False], ids=["coordinates", "variables"])
+def test_set_point_grids_are_reduced_to_their_axes(tmp_path, canonical, as_coords):
+    # as data variables beside the map, they are no second map
+    _same_map(load(_gates_as(tmp_path, "mesh.nc", canonical, _mesh, as_coords=as_coords)), canonical)
 
 
 def test_a_grid_that_is_not_rectilinear_is_no_gate_axis(tmp_path, canonical):
-    v, x, y = _raw(canonical)
-    X, Y = np.meshgrid(x, y)
-    xr.Dataset({"sensor": (("y", "x"), v)}, coords={"PA": (("y", "x"), X + 0.1 * Y), "PB": (("y", "x"), Y)}).to_netcdf(
-        tmp_path / "skew.nc", engine="h5netcdf")
+    skew = _gates_as(tmp_path, "skew.nc", canonical, lambda x, y: _mesh(x, y, skew=0.1), as_coords=True)
     with pytest.raises(InputError, match="dimension 'x' of variable 'sensor' has no coordinate variable"):
-        load(tmp_path / "skew.nc")
+        load(skew)
 
 
 def test_several_candidates_are_named_and_x_or_units_choose(tmp_path, canonical):

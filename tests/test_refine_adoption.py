@@ -22,7 +22,7 @@ import warnings
 import numpy as np
 import pytest
 
-from stabtool.fit.refine import ADOPTION_CORRELATION, DISAGREEMENT_SHARE, _combine_addition_mutual
+from stabtool.fit.refine import ADOPTION_CORRELATION, DISAGREEMENT_SHARE, INCONSISTENT_Z, _combine_addition_mutual
 
 
 def _blue(s1, s2, rho):
@@ -62,6 +62,30 @@ def test_weight_is_clipped_so_the_better_estimate_is_never_overtaken():
     want = DISAGREEMENT_SHARE * np.abs(p_ref - p_line) * np.array([1.0, 0.0, 1.0, 0.0])
     np.testing.assert_allclose(term, want, rtol=1e-12, atol=0.0)
     np.testing.assert_allclose(np.diag(cov), s_line**2 + want**2, rtol=1e-12)
+
+
+def test_estimates_inconsistent_under_the_assumed_correlation_get_the_scale_factor():
+    # Two estimates whose difference is z > INCONSISTENT_Z of its own standard error (with the assumed
+    # correlation) cannot both be right: the combined error is multiplied by S = z, the scale factor of
+    # an unconstrained average (Particle Data Group, Review of Particle Physics, "Introduction",
+    # from memory: S = [χ²/(N − 1)]^½, here N = 2). Consistent elements keep their error.
+    s_line = np.array([1.0e-4, 1.6e-4, 1.5e-4, 1.6e-4])
+    s_ref = np.array([0.3e-4, 1.7e-4, 0.6e-4, 1.7e-4])
+    p_line = np.array([38.0e-3, 1.00e-3, 49.0e-3, 2.15e-3])
+    p_ref = p_line + np.array([0.3e-4, 0.5e-4, 0.0, 4.6e-4])  # δ2 apart by ≈ 6 of its σ_Δ
+    rho = np.array(ADOPTION_CORRELATION)
+    sd = np.sqrt(s_line**2 + s_ref**2 - 2 * rho * s_line * s_ref)
+    z = np.abs(p_ref - p_line) / sd
+    assert z[3] > INCONSISTENT_Z > z[:3].max()
+    base = _combine_addition_mutual(p_line, np.diag(s_line**2), np.zeros((2, 4)), p_line, np.diag(s_ref**2),
+                                     np.zeros((2, 4)), mutual=True)[1]
+    value, cov, _, _ = _combine_addition_mutual(p_line, np.diag(s_line**2), np.zeros((2, 4)), p_ref,
+                                                np.diag(s_ref**2), np.zeros((2, 4)), mutual=True)
+    assert p_line[3] < value[3] < p_ref[3]
+    assert np.sqrt(cov[3, 3]) == pytest.approx(z[3] * np.sqrt(base[3, 3]), rel=1e-9)
+    term = DISAGREEMENT_SHARE * np.abs(p_ref - p_line)
+    np.testing.assert_allclose(np.diag(cov)[[0, 2]], np.diag(base)[[0, 2]] + term[[0, 2]] ** 2, rtol=1e-9)
+    np.testing.assert_allclose(cov[1, 1], base[1, 1], rtol=1e-12)
 
 
 def test_unresolved_mutual_shifts_stay_line_based():
