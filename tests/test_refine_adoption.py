@@ -22,7 +22,12 @@ import warnings
 import numpy as np
 import pytest
 
-from stabtool.fit.refine import ADOPTION_CORRELATION, DISAGREEMENT_SHARE, INCONSISTENT_Z, _combine_addition_mutual
+from stabtool.fit.refine import (
+    ADOPTION_CORRELATION,
+    DISAGREEMENT_SHARE,
+    INCONSISTENT_Z,
+    _combine_addition_mutual,
+)
 
 
 def _blue(s1, s2, rho):
