@@ -1486,7 +1486,7 @@ class Analyzer:
         snr_clean = float(np.nanmax(snrs)) if np.any(np.isfinite(snrs)) else np.nan
         clean = bool(np.isfinite(snr_clean) and snr_clean >= CLEAN_SNR_MARGIN * CLEAN_SNR)
         # the largest stated error of M an ok map may have: a clean map promises |ΔM| ≤ 0.005, which
-        # must be at least 3 stated σ; a noisy one 0.02 (the fitter's MAX_VG_ERROR = 0.02/3)
+        # must be at least CLEAN_VG_SIGMAS (2) stated σ; a noisy one 0.02 (the fitter's MAX_VG_ERROR = 0.02/3)
         vg_limit = CLEAN_VG_BOUND / CLEAN_VG_SIGMAS if clean else MAX_VG_ERROR
         sm = float(np.nanmax(fit.vg_matrix_error)) if fit.ok else np.nan
         if clean and sm > vg_limit:  # sm is NaN without a fit
