@@ -89,6 +89,10 @@ def test_each_slice_gets_its_own_time_from_the_stack_coordinate(tmp_path, three_
     el = write_stack(tmp_path / "elapsed.nc", three_sweeps, coord=[0.0, 1800.0, 3600.0],
                      coord_attrs={"units": "s"}, attrs={"time": "2026-11-30T22:00:00"})
     assert load(f"{el}[rep=2]").attrs["time"] == "2026-11-30T23:00:00"
+    # ISO text per slice
+    iso = write_stack(tmp_path / "iso.nc", three_sweeps, coord=["2026-11-30T22:00:00", "2026-11-30T22:20:00",
+                                                                "2026-11-30T22:40:00"])
+    assert load(f"{iso}[rep=1]").attrs["time"] == "2026-11-30T22:20:00"
     # no time per slice: the file's one start time is not every slice's start
     none = write_stack(tmp_path / "none.nc", three_sweeps, attrs={"time": "2026-11-30T22:00:00"})
     attrs = load(f"{none}[rep=1]").attrs

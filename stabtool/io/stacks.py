@@ -15,8 +15,8 @@ the stacked files of a list of inputs into their slice references.
 
 Time of a slice (for ordering and the drift rate): the coordinate of the
 extra dimension when it is a CF time (``units = "hours since 2026-11-30
-22:00"``), or an elapsed time (units ``s``, ``min``, ``h``) added to the
-file's ``time`` attribute. Otherwise the file's single ``time`` attribute
+22:00"``) or ISO text, or an elapsed time (units ``s``, ``min``, ``h``)
+added to the file's ``time`` attribute. Otherwise the file's single ``time`` attribute
 is not the slice's: it is kept as ``stack_time`` and the slice has none,
 so the slices are ordered by position.
 """
@@ -158,6 +158,10 @@ def slice_time(coord: xr.DataArray | None, index: int, attrs: Mapping[str, Any])
     """
     if coord is None or coord.ndim != 1:
         return None
+    if coord.dtype.kind in "OSU":  # ISO text per slice
+        when = _parse_start(coord.values[index].decode() if isinstance(coord.values[index], bytes)
+                            else coord.values[index])
+        return None if when is None else _iso(when)
     units = str(coord.attrs.get("units", "")).strip()
     if " since " in units:  # CF time (Eaton et al., NetCDF Climate and Forecast conventions, sec. 4.4)
         try:
