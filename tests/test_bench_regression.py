@@ -44,8 +44,6 @@ def _id(case):
 #: Cases that miss the fitter bounds today (reported doubtful, so not silent).
 #: Strict: when one starts passing, the marker must go.
 KNOWN_OUT_OF_BOUNDS = {
-    1: "off-diagonal Cdg error ≈ 2.1 % > 2 % on 3–4 px broad lines: the curved sensor response moves "
-    "half-height crossings away from half occupation (ΔV −0.25 %, δ1 −0.6…−1.4 % over 8 seeds)",
     3: "1/f row offsets with weak dot2 steps: broken dot2 segments with failed width fits (VG error ≈ 0.2)",
     4: "SNR 3 with broad lines: the scale-selected edge map finds the dot2 lines, but slopes of single "
     "15–25 px segments are 10–60 % off (dot2 family ≈ 30 %): no two dot1 lines bound a band, no virtual-gate result",

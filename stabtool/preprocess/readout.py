@@ -32,11 +32,12 @@ from .row_tone import remove_row_tones
 from .serpentine import AlternateRowShift, align_alternate_rows, alternate_row_shift
 from .stripes import remove_stripes
 
-__all__ = ["corrected_readout"]
+__all__ = ["corrected_readout", "width_variance_error"]
 
 
-def corrected_readout(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, float, Quality]:
-    """The map with its read-out corrected, the smear that may remain along x (V, ≥ 0), and the notes.
+def corrected_readout(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, float, float, Quality]:
+    """The map with its read-out corrected, the smear that may remain along x and the time constant
+    undone (V, ≥ 0), and the notes.
 
     Parameters
     ----------
@@ -47,17 +48,19 @@ def corrected_readout(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, float
 
     Returns
     -------
-    (xarray.DataArray, float, Quality)
+    (xarray.DataArray, float, float, Quality)
         The corrected map (``da`` itself when nothing was corrected); the
         smear along x that may remain (the larger of the time constant's
         standard error and half the alternate-row shift left, in volts; 0
-        when neither was found); the quality with the notes.
+        when neither was found); the low-pass time constant undone (V, 0
+        when none; with the smear it bounds the line widths' error,
+        :func:`width_variance_error`); the quality with the notes.
     """
     raw = np.asarray(da.values, float)
     shift = alternate_row_shift(raw)
     snake = shift.significant
     values, found, q = _without_pickup(raw, snake, x_gate(da), q)
-    values, lp_found, residual_px, snake, q = _without_low_pass(values, snake, shift, x_gate(da), q)
+    values, lp_found, tau_px, residual_px, snake, q = _without_low_pass(values, snake, shift, x_gate(da), q)
     found = found or lp_found
     if found and snake:
         shift = alternate_row_shift(values)
@@ -70,8 +73,21 @@ def corrected_readout(da: xr.DataArray, q: Quality) -> tuple[xr.DataArray, float
         values = align_alternate_rows(values, shift.shift_px)
         residual_px = max(residual_px, 0.5 * abs(shift.shift_px))
     if not found and not shift.significant:
-        return da, 0.0, q
-    return da.copy(data=values), residual_px * abs(float(map_axes(da).dx)), q
+        return da, 0.0, 0.0, q
+    dx = abs(float(map_axes(da).dx))
+    return da.copy(data=values), residual_px * dx, tau_px * dx, q
+
+
+def width_variance_error(tau: float, tau_error: float) -> float:
+    """How far off a line profile's variance may be once a low-pass of time constant ``tau`` is undone.
+
+    A one-pole filter of time constant τ adds τ² to the variance of a line's
+    profile along the rows; undone with τ̂ = τ ± δτ it leaves
+    ``τ² − τ̂² ≈ ∓(2τδτ + δτ²)`` (units of ``tau`` squared), which for a
+    long filter is much more than δτ² (1.5 points known to 0.2: 0.64
+    points²). Without a filter undone (``tau`` 0) it is ``tau_error²``.
+    """
+    return float(2.0 * abs(tau) * tau_error + tau_error**2)
 
 
 def _without_pickup(values: np.ndarray, snake: bool, gate: str, q: Quality) -> tuple[np.ndarray, bool, Quality]:
@@ -112,8 +128,9 @@ def _without_pickup(values: np.ndarray, snake: bool, gate: str, q: Quality) -> t
 
 
 def _without_low_pass(values: np.ndarray, snake: bool, shift: AlternateRowShift, gate: str,
-                      q: Quality) -> tuple[np.ndarray, bool, float, bool, Quality]:
-    """A row low-pass undone; whether it was, the smear that may remain (points), the sweep serpentine."""
+                      q: Quality) -> tuple[np.ndarray, bool, float, float, bool, Quality]:
+    """A row low-pass undone; whether it was, its time constant and that one's standard error (points),
+    the sweep serpentine."""
     lp = row_low_pass(values, serpentine=snake, odd_rows_forward=snake and shift.shift_px > 0)
     # on a serpentine the rows' shift must be the filter's (else the coefficient is not trusted)
     use = lp.significant and (not snake or agrees_with_shift(lp, shift.shift_px))
@@ -129,7 +146,7 @@ def _without_low_pass(values: np.ndarray, snake: bool, shift: AlternateRowShift,
             undone = undo_row_low_pass(values, lp) if use else values
             snake = True
     if not use:
-        return values, False, 0.0, snake, q
+        return values, False, 0.0, 0.0, snake, q
     how = ("back and forth" if lp.serpentine else "from first to last column" if lp.forward
            else "from last to first column")
     q = q.with_warning(
@@ -138,7 +155,7 @@ def _without_low_pass(values: np.ndarray, snake: bool, shift: AlternateRowShift,
         f"(a = {lp.coefficient:.3f}, from the noise's correlation along the rows); undone before the analysis",
         doubtful=False,
     )
-    return undone, True, lp.tau_stderr_points, snake, q
+    return undone, True, lp.tau_points, lp.tau_stderr_points, snake, q
 
 
 def _range_share(values: np.ndarray, amplitude: float) -> str:
