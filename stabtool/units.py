@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["VOLTAGE_SCALE", "voltage_scale", "to_volts", "from_volts"]
+__all__ = ["VOLTAGE_SCALE", "is_voltage_unit", "voltage_scale", "to_volts", "from_volts"]
 
 #: Multiplier that converts a value in the named unit to volts.
 VOLTAGE_SCALE: dict[str, float] = {
@@ -60,6 +60,17 @@ def voltage_scale(unit: str | None) -> float:
     raise KeyError(
         f"unknown voltage unit {unit!r}; expected one of V, mV, uV (µV), nV"
     )
+
+
+def is_voltage_unit(unit: object) -> bool:
+    """True for a non-empty unit :func:`voltage_scale` knows (V, mV, µV, ...)."""
+    if unit is None or str(unit).strip() == "":
+        return False
+    try:
+        voltage_scale(str(unit))
+    except KeyError:
+        return False
+    return True
 
 
 def to_volts(values: np.ndarray, unit: str | None) -> np.ndarray:

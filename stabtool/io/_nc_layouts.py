@@ -33,7 +33,7 @@ import xarray as xr
 
 from ..errors import InputError
 from ..mapdata import make_map
-from ..units import voltage_scale
+from ..units import is_voltage_unit, voltage_scale
 from ._common import decode_attrs
 from ._regrid import rebuild_grid
 
@@ -56,14 +56,7 @@ def _monotonic(values: np.ndarray) -> bool:
 
 
 def _has_voltage_units(v: xr.DataArray) -> bool:
-    unit = v.attrs.get("units")
-    if unit is None:
-        return False
-    try:
-        voltage_scale(str(unit))
-    except KeyError:
-        return False
-    return True
+    return is_voltage_unit(v.attrs.get("units"))
 
 
 def _as_profile(v: xr.DataArray, dim: str) -> np.ndarray | None:

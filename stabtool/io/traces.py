@@ -34,7 +34,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError
-from ..units import voltage_scale
+from ..units import is_voltage_unit, voltage_scale
 
 __all__ = ["TEMPERATURE_KEYS", "Trace1D", "load_traces"]
 
@@ -300,13 +300,7 @@ def _load_netcdf(path: Path, temp_kind: str | None, temp_name: str | None) -> li
 
 
 def _is_voltage(unit) -> bool:
-    if unit is None:
-        return False
-    try:
-        voltage_scale(str(unit))
-    except KeyError:
-        return False
-    return str(unit).strip() != ""
+    return is_voltage_unit(unit)
 
 
 def _nc_temperature(path, vattrs, fattrs, kind, name) -> tuple[float, str]:
