@@ -11,11 +11,13 @@ from typing import Any
 
 import numpy as np
 
+from ..errors import InputError
 from .atomic import atomic_write
 
 __all__ = [
     "JSON_ATTRS_KEY",
     "atomic_write",
+    "checked_voltage_scale",
     "decode_attrs",
     "encode_attrs",
     "fmt_number",
@@ -79,6 +81,17 @@ def decode_attrs(attrs: Mapping[str, Any]) -> dict[str, Any]:
             with contextlib.suppress(ValueError):
                 out[key] = json.loads(out[key])
     return out
+
+
+def checked_voltage_scale(source: str, unit: str | None, where: str) -> float:
+    """:func:`stabtool.units.voltage_scale` of ``unit``; an unknown one raises an
+    :class:`InputError` naming ``source`` and ``where`` (``"on coordinate 'PA'"``)."""
+    from ..units import voltage_scale
+
+    try:
+        return voltage_scale(unit)
+    except KeyError:
+        raise InputError(source, f"unknown unit {unit!r} {where}; accepted voltage units: V, mV, uV (µV), nV") from None
 
 
 def fmt_number(value: float) -> str:

@@ -33,9 +33,9 @@ import xarray as xr
 
 from ..errors import InputError
 from ..mapdata import make_map
-from ..units import is_voltage_unit, voltage_scale
-from ._common import decode_attrs
-from ._regrid import rebuild_grid
+from ..units import is_voltage_unit
+from ._common import checked_voltage_scale, decode_attrs
+from ._regrid import rebuild_grid, warn_incomplete
 
 __all__ = ["flat_point_map", "iq_pair", "is_setpoint_grid", "with_gate_dimensions"]
 
@@ -259,15 +259,9 @@ def flat_point_map(ds: xr.Dataset, src: str, var: str | None, x: str | None, y: 
                 f"several measured variables along the point list ({', '.join(rest)}); choose one with var=",
             )
         sv = rest[0]
-    units = []
-    for k in (gx, gy):
-        unit = str(ds[k].attrs.get("units", "V"))
-        try:
-            voltage_scale(unit)
-        except KeyError:
-            raise InputError(src, f"unknown unit {unit!r} on gate variable {k!r}; accepted voltage units: "
-                                  "V, mV, uV (µV), nV") from None
-        units.append(unit)
+    units = [str(ds[k].attrs.get("units", "V")) for k in (gx, gy)]
+    for k, unit in zip((gx, gy), units):
+        checked_voltage_scale(src, unit, f"on gate variable {k!r}")
     grid = rebuild_grid(src, np.asarray(ds[gx].values, float), np.asarray(ds[gy].values, float),
                         np.asarray(ds[sv].values, float), names=(gx, gy))
     attrs = decode_attrs({**ds.attrs, **ds[sv].attrs})
@@ -275,12 +269,6 @@ def flat_point_map(ds: xr.Dataset, src: str, var: str | None, x: str | None, y: 
     attrs.pop("source", None)
     if grid.snapped:
         attrs["setpoints_snapped"] = 1
-    if grid.n_missing:
-        import warnings
-
-        from ..errors import PartialSweepWarning
-
-        warnings.warn(f"{src}: the sweep is incomplete: {grid.n_missing} of {grid.signal.size} points "
-                      "(in the final sweep line) are missing and kept as NaN", PartialSweepWarning, stacklevel=3)
+    warn_incomplete(src, grid, stacklevel=3)
     return make_map(grid.signal, grid.x, grid.y, x_gate=gx, y_gate=gy, name=sv, units=unit,
                     x_units=units[0], y_units=units[1], source=src, attrs=attrs)

@@ -26,7 +26,7 @@ import numpy as np
 
 from ..errors import InputError
 
-__all__ = ["MAX_JITTER", "MIN_GAP_RATIO", "Grid", "rebuild_grid"]
+__all__ = ["MAX_JITTER", "MIN_GAP_RATIO", "Grid", "rebuild_grid", "warn_incomplete"]
 
 #: Smallest ratio between the grid step and the largest within-cluster gap.
 MIN_GAP_RATIO = 4.0
@@ -245,3 +245,18 @@ def rebuild_grid(
             "the set-points scatter and do not form a clean grid even after snapping them to "
             f"their clusters ({second_error.fault})",
         ) from None
+
+
+def warn_incomplete(source: str, grid: Grid, *, stacklevel: int) -> None:
+    """A :class:`~stabtool.errors.PartialSweepWarning` when the rebuilt grid has cells without a point."""
+    if grid.n_missing:
+        import warnings
+
+        from ..errors import PartialSweepWarning
+
+        warnings.warn(
+            f"{source}: the sweep is incomplete: {grid.n_missing} of {grid.signal.size} points "
+            "(in the final sweep line) are missing and kept as NaN",
+            PartialSweepWarning,
+            stacklevel=stacklevel + 1,
+        )

@@ -34,10 +34,10 @@ import xarray as xr
 
 from ..errors import InputError, PartialSweepWarning
 from ..mapdata import make_map
-from ..units import from_volts, voltage_scale
-from ._common import decode_attrs, fmt_number
+from ..units import from_volts
+from ._common import checked_voltage_scale, decode_attrs, fmt_number
 from ._headers import format_label, parse_label
-from ._regrid import rebuild_grid
+from ._regrid import rebuild_grid, warn_incomplete
 from ._select import pick
 from ._text import TextTable, parse_body
 
@@ -49,14 +49,7 @@ ATTRS_META = "stabtool-attrs"
 def gate_unit(source: str, label: Any) -> str:
     """Voltage unit of a gate label (``V`` when none); unknown units raise."""
     unit = label.unit or "V"
-    try:
-        voltage_scale(unit)
-    except KeyError:
-        raise InputError(
-            source,
-            f"unknown unit {unit!r} in gate column {label.text!r}; accepted voltage "
-            "units: V, mV, uV (µV), nV",
-        ) from None
+    checked_voltage_scale(source, unit, f"in gate column {label.text!r}")
     return unit
 
 
@@ -111,13 +104,7 @@ def read_long(
     grid = rebuild_grid(
         src, values[:, ix], values[:, iy], values[:, iv], names=(labels[ix].name, labels[iy].name)
     )
-    if grid.n_missing:
-        warnings.warn(
-            f"{src}: the sweep is incomplete: {grid.n_missing} of {grid.signal.size} points "
-            "(in the final sweep line) are missing and kept as NaN",
-            PartialSweepWarning,
-            stacklevel=2,
-        )
+    warn_incomplete(src, grid, stacklevel=2)
     attrs = meta_attrs(table)
     attrs.pop("source", None)
     attrs.pop("units", None)

@@ -38,24 +38,29 @@ import xarray as xr
 
 from ..errors import InputError
 from ..mapdata import make_map
-from ..units import voltage_scale
-from ._common import decode_attrs, encode_attrs, principal_projection
+from ._common import checked_voltage_scale, decode_attrs, encode_attrs, principal_projection
 from ._nc_layouts import flat_point_map, iq_pair, is_setpoint_grid, with_gate_dimensions
 from ._select import pick
 from .stacks import TIME_KEYS, slice_time
 
-__all__ = ["MAP_VARIABLE_ATTR", "open_netcdf", "read_netcdf", "write_netcdf"]
+__all__ = ["MAP_VARIABLE_ATTR", "open_lazily", "open_netcdf", "read_netcdf", "write_netcdf"]
 
 #: Global attribute naming the map variable of a file written by stabtool.
 MAP_VARIABLE_ATTR = "stabtool_map_variable"
 
 
-def open_netcdf(path: str, *, kind: str = "netcdf") -> xr.Dataset:
-    """Open and load a NetCDF file fully (the file is closed afterwards)."""
+def open_lazily(path: str, *, kind: str = "netcdf") -> xr.Dataset:
+    """Open a NetCDF file without reading its arrays (times not decoded; HDF5 arrays without
+    dimension scales get phony dimensions). Use as a context manager."""
     engine = "scipy" if kind == "netcdf3" else "h5netcdf"
     kwargs: dict[str, Any] = {"phony_dims": "sort"} if engine == "h5netcdf" else {}
+    return xr.open_dataset(path, engine=engine, decode_times=False, **kwargs)
+
+
+def open_netcdf(path: str, *, kind: str = "netcdf") -> xr.Dataset:
+    """Open and load a NetCDF file fully (the file is closed afterwards)."""
     try:
-        with xr.open_dataset(path, engine=engine, decode_times=False, **kwargs) as ds:
+        with open_lazily(path, kind=kind) as ds:
             return ds.load()
     except Exception as exc:  # noqa: BLE001 - any reader failure is a bad file
         reason = " ".join(str(exc).split())[:160] or type(exc).__name__
@@ -111,13 +116,7 @@ def _coord_volts(ds: xr.Dataset, src: str, dim: str, values: np.ndarray) -> tupl
     attrs = ds[dim].attrs if dim in ds.variables else {}
     unit = attrs.get("units")
     unit = None if unit is None else str(unit)
-    try:
-        scale = voltage_scale(unit)
-    except KeyError:
-        raise InputError(
-            src,
-            f"unknown unit {unit!r} on coordinate {dim!r}; accepted voltage units: V, mV, uV (µV), nV",
-        ) from None
+    scale = checked_voltage_scale(src, unit, f"on coordinate {dim!r}")
     original = str(attrs.get("original_units") or unit or "V") if scale == 1.0 else str(unit)
     return np.asarray(values, dtype=np.float64) * scale, original
 

@@ -34,8 +34,7 @@ import xarray as xr
 
 from ..errors import InputError
 from ..mapdata import make_map
-from ..units import voltage_scale
-from ._common import decode_attrs, principal_projection
+from ._common import checked_voltage_scale, decode_attrs, principal_projection
 from ._headers import parse_label
 from ._select import pick
 
@@ -68,10 +67,7 @@ def _meta(path: str, arrays: dict[str, np.ndarray]) -> dict[str, Any]:
 
 
 def _unit(path: str, key: str, unit: str | None) -> str:
-    try:
-        voltage_scale(unit)
-    except KeyError:
-        raise InputError(path, f"unknown unit {unit!r} for gate array {key!r}; accepted voltage units: V, mV, uV (µV), nV") from None
+    checked_voltage_scale(path, unit, f"for gate array {key!r}")
     return unit or "V"
 
 

@@ -97,10 +97,10 @@ def stack_selections(path: str | os.PathLike[str], *, var: str | None = None, x:
         return []
     if kind not in ("netcdf", "netcdf3"):
         return []
-    engine = "scipy" if kind == "netcdf3" else "h5netcdf"
-    kwargs: dict[str, Any] = {"phony_dims": "sort"} if engine == "h5netcdf" else {}
+    from .netcdf import open_lazily
+
     try:
-        with xr.open_dataset(src, engine=engine, decode_times=False, **kwargs) as ds:
+        with open_lazily(src, kind=kind) as ds:
             name = _map_variable(ds, var)
             if name is None:
                 return []
