@@ -857,6 +857,12 @@ def _scale(
 LAG_WIDTH_FRACTION = 0.4
 
 
+def _across_profiles(fit: DiagramFit) -> tuple[float, float]:
+    """How far a smear along x reaches across each family's width profile: dot1 lines are cut along
+    x (1), dot2 lines along y, which a shift along x moves by the dot2 slope (``|s2|``)."""
+    return 1.0, abs(fit.slopes.get("dot2", np.nan))
+
+
 def _lag_broadened(ws: np.ndarray, fit: DiagramFit, lag_V: float, q: Quality) -> tuple[np.ndarray, Quality]:
     """Leave out the widths that a fast-axis read-out lag of ``lag_V`` (V along x) broadens.
 
@@ -868,7 +874,7 @@ def _lag_broadened(ws: np.ndarray, fit: DiagramFit, lag_V: float, q: Quality) ->
     if not lag_V > 0:
         return ws, q
     ws = ws.copy()
-    smear = (lag_V, abs(fit.slopes.get("dot2", np.nan)) * lag_V)
+    smear = tuple(k * lag_V for k in _across_profiles(fit))
     for i in range(2):
         if np.isfinite(ws[i]) and not smear[i] <= LAG_WIDTH_FRACTION * ws[i]:
             q = q.with_warning(
@@ -895,7 +901,7 @@ def _with_undo_error(ws: np.ndarray, es: np.ndarray, fit: DiagramFit, tau_V: flo
     if not (tau_V > 0 or lag_V > 0):
         return es
     es = es.copy()
-    scale = (1.0, abs(fit.slopes.get("dot2", np.nan)))
+    scale = _across_profiles(fit)
     for i in range(2):
         if np.isfinite(ws[i]) and ws[i] > 0 and np.isfinite(scale[i]):
             var = width_variance_error(scale[i] * tau_V, scale[i] * lag_V)
