@@ -11,7 +11,9 @@ was not tuned on:
 * sensor transfer of the ideal charge read-out ``q = Σ w_i ⟨N_i⟩``
   (``readout="charge"``): a peak ``g(d)`` of the detuning
   ``d = d0 + a·x + b·y ± 0.35·q`` whose operating point drifts linearly over
-  the map (the response sign is random):
+  the map (the response sign is random); with ``--response states`` the
+  transfer is averaged over the charge states, ``Σ_s p_s g(d(q_s))``, instead
+  of taken at the mean charge:
 
   - ``lorentz``: ``1/(1 + d²)``;
   - ``gauss``: ``exp(−d²/2)``;
@@ -59,6 +61,7 @@ Usage::
     python scripts/probe_heldout.py --seeds 0:12 --sensors rf --noise pink,drift
     python scripts/probe_heldout.py --seeds 0:24 --start-e=-3:-2.2   # empty corner: absolute labels checked
     python scripts/probe_heldout.py --seeds 0:48 --lockin            # derivative read-out (lines as peaks)
+    python scripts/probe_heldout.py --seeds 0:64 --response states   # the sensor averages over charge states
 
 The map factory :func:`make_map` and :func:`evaluate` are importable (for
 scratch experiments that patch the analysis).
@@ -138,11 +141,30 @@ def _transfer(kind: str, d: np.ndarray, phi: float) -> np.ndarray:
     raise ValueError(f"sensor kind {kind!r}: expected one of {ALL_SENSORS}")
 
 
+def _state_averaged(sig: np.ndarray, read: Any, sm: Any, X: np.ndarray, Y: np.ndarray, sensor: Any) -> np.ndarray:
+    """``sig`` with the mixed pixels read state by state: ``Σ_s p_s read(q_s)``."""
+    from stabtool.simulate.sensor import SensorModel
+
+    st = sm.states
+    w = (sensor or SensorModel()).couplings(2)
+    w = w / w.max()
+    pix = st.pixels
+    ground = sm.truth.charge_state.reshape(-1, 2)[pix].astype(float)
+    xv, yv = X.reshape(-1)[pix], Y.reshape(-1)[pix]
+    total = np.zeros(pix.size)
+    for k in range(st.moves.shape[0]):
+        total += st.probability[:, k] * read((ground + st.moves[k]) @ w, xv, yv)
+    out = sig.copy()
+    out.reshape(-1)[pix] = total
+    return out
+
+
 def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[str, ...] = SENSORS,
              noise: tuple[str, ...] | None = None, tunnel_coupling_ueV: float = 0.0,
              mutual_fraction: tuple[float, float] | None = None,
              start_e: tuple[float, float] | None = None,
-             coupling_ratio: tuple[float, float] | None = None, lockin: bool = False) -> ProbeMap:
+             coupling_ratio: tuple[float, float] | None = None, lockin: bool = False,
+             response: str = "mean") -> ProbeMap:
     """Build held-out map ``seed`` (deterministic in all arguments).
 
     Parameters
@@ -169,6 +191,10 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
         dot 1 log-uniformly in this range (default 0.65, the generator's): a
         sensor nearer one dot shows that dot's lines strongly and the other
         dot's faintly; near 1 the interdot transition hardly moves the sensor.
+    response : {"mean", "states"}
+        ``"mean"``: the sensor transfer of the mean charge ``g(q(⟨N⟩))``;
+        ``"states"``: the transfer averaged over the charge states,
+        ``Σ_s p_s g(q(N_s))`` (a sensor that follows every switch).
     """
     from stabtool.simulate import simulate_map
     from stabtool.simulate.quick import double_dot_window
@@ -201,20 +227,28 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
     if kind == "transport":
         sig = q / max(np.nanpercentile(np.abs(q), 99.9), 1e-300)
         h = 1.0
-    elif kind == "comb":
-        period = r.uniform(3, 6)
-        span = r.uniform(1, 2.5) * period
-        ang = r.uniform(0, 2 * np.pi)
-        detune = (r.uniform(0, period) + span * (math.cos(ang) * X + math.sin(ang) * Y)
-                  + r.choice([-1, 1]) * 0.35 * q)
-        ks = np.arange(np.floor(detune.min() / period) - 1, np.ceil(detune.max() / period) + 2)
-        sig = sum(1.0 / np.cosh(detune - k * period) ** 2 for k in ks)
-        dq = np.abs(np.diff(q, axis=1)) > 0.5
-        h = float(np.median(np.abs(np.diff(sig, axis=1))[dq])) if dq.any() else 0.1
     else:
-        detune = (r.uniform(-1.5, 1.5) + r.uniform(-2, 2) * X + r.uniform(-2, 2) * Y
-                  + r.choice([-1, 1]) * 0.35 * q)
-        sig = _transfer(kind, detune, phi)
+        if kind == "comb":
+            period = r.uniform(3, 6)
+            span = r.uniform(1, 2.5) * period
+            ang = r.uniform(0, 2 * np.pi)
+            d0, gx, gy = r.uniform(0, period), span * math.cos(ang), span * math.sin(ang)
+        else:
+            d0, gx, gy = r.uniform(-1.5, 1.5), r.uniform(-2, 2), r.uniform(-2, 2)
+        dsign = r.choice([-1, 1])
+
+        def read(qv, xv, yv):
+            detune = d0 + gx * xv + gy * yv + dsign * 0.35 * qv
+            if kind != "comb":
+                return _transfer(kind, detune, phi)
+            return sum(1.0 / np.cosh(detune - k * period) ** 2 for k in ks)
+
+        if kind == "comb":
+            full = d0 + gx * X + gy * Y + dsign * 0.35 * q
+            ks = np.arange(np.floor(full.min() / period) - 1, np.ceil(full.max() / period) + 2)
+        sig = read(q, X, Y)
+        if response == "states" and sm.states is not None and sm.states.pixels.size:
+            sig = _state_averaged(sig, read, sm, X, Y, kw.get("sensor"))
         # step height: median signal change at the x-neighbour charge changes
         dq = np.abs(np.diff(q, axis=1)) > 0.5
         h = float(np.median(np.abs(np.diff(sig, axis=1))[dq])) if dq.any() else 0.1
@@ -394,6 +428,9 @@ def main(argv: list[str] | None = None) -> int:
                    help="'A:B': draw the sensor's dot-2/dot-1 coupling ratio log-uniformly in [A, B] (default 0.65)")
     p.add_argument("--lockin", action="store_true",
                    help="read every sensor through a lock-in on the x gate: the maps are dS/dx (lines as peaks)")
+    p.add_argument("--response", default="mean", choices=("mean", "states"),
+                   help="sensor response to a fluctuating charge: at the mean charge (default) or averaged over "
+                        "the charge states")
     p.add_argument("--out", default=None, help="folder for one PNG per map (the analysis plot)")
     p.add_argument("--verbose", action="store_true", help="print every warning of every map")
     a = p.parse_args(argv)
@@ -418,7 +455,7 @@ def main(argv: list[str] | None = None) -> int:
     for s in _parse_seeds(a.seeds):
         pm = make_map(s, size=(lo, hi), sensors=sensors, noise=noise, tunnel_coupling_ueV=a.tunnel_ueV,
                       mutual_fraction=_range(a.mutual), start_e=_range(a.start_e), coupling_ratio=_range(a.coupling),
-                      lockin=a.lockin)
+                      lockin=a.lockin, response=a.response)
         t0 = time.perf_counter()
         try:
             res = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data)

@@ -154,3 +154,46 @@ def test_cli_writes_a_map_with_truth(tmp_path, capsys):
     assert CONVENTION_KEYS <= set(d) and d["device"]["name"] == "gaas-double"
     assert main(["simulate", "--preset", "nope", "--out", str(out)]) == 2
     assert "unknown preset" in capsys.readouterr().err
+
+
+
+
+def test_state_averaged_sensor_mixes_the_levels_and_mean_field_reads_the_mean_charge():
+    # A sensor that follows every charge switch reads the time average of its levels,
+    # S = Σ_s p_s S(N_s), linear in the state probabilities (common practice, no source); a sensor
+    # at the mean charge reads S(Σ_s p_s N_s). On a hot map the two differ where the response curves.
+    from stabtool.simulate import SensorModel
+    from stabtool.simulate.sensor import sensor_detuning_mV, sensor_signal
+
+    sensor = {r: SensorModel(compensation=0.85, response=r) for r in ("states", "mean")}
+    maps = {r: quick_double_dot("gaas-double", shape=(64, 64), temperature_K=1.0, snr=None, sensor=s, rng=2)
+            for r, s in sensor.items()}
+    sm = maps["states"]
+    st = sm.states
+    assert st.pixels.size > 500
+    pix = st.pixels
+    dev, t = sm.truth.device, sm.truth
+    x = np.asarray(sm.data[sm.data.dims[-1]].values)
+    y = np.asarray(sm.data[sm.data.dims[0]].values)
+    gates = np.zeros((y.size, x.size, dev.n_gates))
+    gates[..., dev.gate_index(t.x_gate)] = (x - 0.5 * (x[0] + x[-1]))[None, :]
+    gates[..., dev.gate_index(t.y_gate)] = (y - 0.5 * (y[0] + y[-1]))[:, None]
+    gates = gates.reshape(-1, dev.n_gates)[pix]
+    ref = t.charge_state[32, 32].astype(float)
+    ground = t.charge_state.reshape(-1, 2)[pix].astype(float)
+
+    def level(n):
+        return sensor_signal(sensor["states"], sensor_detuning_mV(sensor["states"], n, ref, gates))
+
+    mixed = sum(st.probability[:, k] * level(ground + st.moves[k]) for k in range(st.moves.shape[0]))
+    at_mean = level(ground + st.probability @ st.moves)
+    np.testing.assert_allclose(maps["states"].clean.reshape(-1)[pix], mixed, rtol=0, atol=1e-12)
+    np.testing.assert_allclose(maps["mean"].clean.reshape(-1)[pix], at_mean, rtol=0, atol=1e-12)
+    assert np.max(np.abs(mixed - at_mean)) > 0.05 * t.extra["step_height"]
+
+
+def test_unknown_sensor_response_is_named():
+    from stabtool.simulate import SensorModel
+
+    with pytest.raises(InputError, match="response"):
+        SensorModel(response="instant")

@@ -40,7 +40,7 @@ import numpy as np
 
 from .ground_state import basic_moves, excitation_energies, row_min
 
-__all__ = ["candidate_moves", "Occupations", "occupations", "averaging_cut", "near_transition_mask"]
+__all__ = ["candidate_moves", "Occupations", "StateMixture", "occupations", "averaging_cut", "near_transition_mask"]
 
 _N_QUANTUM = 8
 
@@ -182,10 +182,35 @@ class Occupations:
         Thermal (and tunnel-coupled) expectation of N_i, electrons.
     ground : ndarray, shape (..., n_dots), int
         Ground state.
+    states : StateMixture or None
+        The probability of each charge state ``G + d`` at the pixels that
+        are averaged (``occupations(..., with_states=True)``); the other
+        pixels are in their ground state.
     """
 
     mean: np.ndarray
     ground: np.ndarray
+    states: StateMixture | None = None
+
+
+@dataclass(frozen=True)
+class StateMixture:
+    """Charge-state probabilities at the averaged pixels of a map.
+
+    Attributes
+    ----------
+    pixels : ndarray of int, shape (P,)
+        Flat indices of the averaged pixels (the others are in their ground
+        state with probability 1).
+    moves : ndarray of int, shape (K, n_dots)
+        The states ``G + moves[k]`` (:func:`candidate_moves`; ``moves[0] = 0``).
+    probability : ndarray, shape (P, K)
+        Probability of state ``G + moves[k]`` at each pixel (rows sum to 1).
+    """
+
+    pixels: np.ndarray
+    moves: np.ndarray
+    probability: np.ndarray
 
 
 def occupations(
@@ -197,6 +222,7 @@ def occupations(
     tunnel_eV: float = 0.0,
     tunnel_pairs: tuple[tuple[int, int], ...] = (),
     near: np.ndarray | None = None,
+    with_states: bool = False,
 ) -> Occupations:
     """Mean occupations at temperature ``kT_eV`` with interdot tunnel coupling ``tunnel_eV``.
 
@@ -217,15 +243,24 @@ def occupations(
         Pixels that may lie within :func:`averaging_cut` of a transition
         (:func:`near_transition_mask`); the others are taken as proven
         far and keep their ground state. Default: every pixel is tested.
+    with_states : bool
+        Also return the probability of each charge state at the averaged
+        pixels (:class:`StateMixture`), e.g. for a sensor read-out that
+        averages over the states rather than responding to ``⟨N⟩``.
     """
     shape = np.shape(n0)
     nd = shape[-1]
     g = np.asarray(ground).reshape(-1, nd)
+    moves = candidate_moves(nd)
+
+    def mixture(pix: np.ndarray, prob: np.ndarray) -> StateMixture | None:
+        return StateMixture(pixels=pix, moves=moves, probability=prob) if with_states else None
+
+    no_states = mixture(np.zeros(0, np.int64), np.zeros((0, moves.shape[0])))
     if kT_eV <= 0 and tunnel_eV <= 0:
-        return Occupations(mean=g.reshape(shape).astype(float), ground=g.reshape(shape))
+        return Occupations(mean=g.reshape(shape).astype(float), ground=g.reshape(shape), states=no_states)
     ec = np.asarray(ec_eV, float)
     flat = np.asarray(n0, float).reshape(-1, nd)
-    moves = candidate_moves(nd)
     mf = moves.astype(float)
     # only pixels with an excited state within 30 kT (+ 40 t) need averaging:
     # exp(-30) ≈ 1e-13 of a charge is below any read-out resolution
@@ -239,7 +274,7 @@ def occupations(
     near = cand[keep]
     mean = g.astype(float)
     if near.size == 0:
-        return Occupations(mean=mean.reshape(shape), ground=g.reshape(shape))
+        return Occupations(mean=mean.reshape(shape), ground=g.reshape(shape), states=no_states)
     if tunnel_eV <= 0 or not tunnel_pairs:
         # classical Boltzmann average over the moves below the cut (the others
         # weigh < exp(−30) each): ⟨N⟩ = G + Σ_d w_d d / (1 + Σ_d w_d)
@@ -253,7 +288,13 @@ def occupations(
             nz = di != 0
             out[:, i] += np.bincount(pix[nz], weights=w[nz] * di[nz], minlength=near.size) / z
         mean[near] = out
-        return Occupations(mean=mean.reshape(shape), ground=g.reshape(shape))
+        states = None
+        if with_states:
+            prob = np.zeros((near.size, moves.shape[0]))
+            prob[:, 0] = 1.0
+            prob[pix, mv + 1] = w
+            states = mixture(near, prob / z[:, None])
+        return Occupations(mean=mean.reshape(shape), ground=g.reshape(shape), states=states)
     du = np.zeros((near.size, moves.shape[0]))
     du[:, 1:] = du_all[keep]
     gn = g[near]
@@ -268,10 +309,13 @@ def occupations(
         ka, kb = np.nonzero(np.triu(coupled))
         for a, b in zip(ka, kb):
             quantum |= np.maximum(du[:, a], du[:, b]) < cut
-        if quantum.any():
-            mean[near[quantum]] = _quantum_mean(
-                gn[quantum], du[quantum], moves, coupled, kT_eV=kT_eV, tunnel_eV=tunnel_eV
-            )
+    prob_all = np.zeros((near.size, moves.shape[0])) if with_states else None
+    if quantum.any():
+        mean[near[quantum]], prob_q = _quantum_mean(
+            gn[quantum], du[quantum], moves, coupled, kT_eV=kT_eV, tunnel_eV=tunnel_eV
+        )
+        if prob_all is not None:
+            prob_all[quantum] = prob_q
     classical = ~quantum
     if kT_eV > 0 and classical.any():
         # Boltzmann weights relative to the ground state (weight 1, move 0):
@@ -281,17 +325,28 @@ def occupations(
         np.exp(w, out=w)
         z = w.sum(axis=1)
         z += 1.0
+        if prob_all is not None:
+            prob_all[classical, 0] = 1.0 / z
+            prob_all[classical, 1:] = w / z[:, None]
         shift = w @ mf[1:]
         shift /= z[:, None]
         shift += gn if classical.all() else gn[classical]
         mean[near if classical.all() else near[classical]] = shift
-    return Occupations(mean=mean.reshape(shape), ground=g.reshape(shape))
+    elif prob_all is not None and classical.any():
+        prob_all[classical, 0] = 1.0  # (no temperature: the ground state)
+    states = mixture(near, prob_all) if prob_all is not None else None
+    return Occupations(mean=mean.reshape(shape), ground=g.reshape(shape), states=states)
 
 
 def _quantum_mean(
     g: np.ndarray, du: np.ndarray, moves: np.ndarray, coupled: np.ndarray, *, kT_eV: float, tunnel_eV: float
-) -> np.ndarray:
-    """Thermal expectation of N in the lowest candidate states with tunnelling."""
+) -> tuple[np.ndarray, np.ndarray]:
+    """Thermal expectation of N in the lowest candidate states with tunnelling, and the states' probabilities.
+
+    Returns ``(mean (P, n_dots), probability (P, K))``: the probability of each
+    candidate charge state is the diagonal of the thermal density matrix in the
+    charge basis.
+    """
     k = min(_N_QUANTUM, moves.shape[0])
     if k < moves.shape[0]:
         sel = np.argpartition(du, k - 1, axis=1)[:, :k]
@@ -314,4 +369,6 @@ def _quantum_mean(
     w /= w.sum(axis=1, keepdims=True)
     prob = np.einsum("pk,psk->ps", w, evecs**2)  # probability of each charge state
     dn = moves[sel].astype(float)  # (P, k, nd)
-    return g + np.einsum("ps,psi->pi", prob, dn)
+    full = np.zeros((g.shape[0], moves.shape[0]))
+    np.put_along_axis(full, sel, prob, axis=1)
+    return g + np.einsum("ps,psi->pi", prob, dn), full

@@ -34,7 +34,7 @@ from .artefacts import Artefacts, pink_noise, telegraph_series
 from .cells import ground_state_plane
 from .device import Device
 from .ground_state import _descend, basic_moves, ground_state_from_induced, ground_state_rows, state_keys
-from .occupation import averaging_cut, near_transition_mask, occupations
+from .occupation import StateMixture, averaging_cut, near_transition_mask, occupations
 from .sensor import SensorModel, sensor_signal
 from .transport import double_dot_current
 from .truth import TRUTH_ATTR, Truth, double_dot_truth, line_segments, select_dots
@@ -56,11 +56,17 @@ class SyntheticMap:
     truth : Truth
     clean : ndarray, shape (ny, nx)
         The noiseless render without artefacts (stored order).
+    states : StateMixture or None
+        Probabilities of the charge states around the ground state
+        (``truth.charge_state``) at the pixels of the clean render that are
+        not in their ground state with certainty (stored order), e.g. to
+        render another read-out of the same charge configuration.
     """
 
     data: xr.DataArray
     truth: Truth
     clean: np.ndarray
+    states: StateMixture | None = None
 
     def __repr__(self) -> str:
         ny, nx = self.data.shape
@@ -324,7 +330,8 @@ def simulate_map(
     near = None
     if kT > 0 or t_eV > 0:
         near = near_transition_mask(n0, ground, ec, cut_eV=averaging_cut(kT, t_eV), finest=4)
-    occ = occupations(n0, ec, ground, kT_eV=kT, tunnel_eV=t_eV, tunnel_pairs=pairs, near=near)
+    by_states = readout == "sensor" and sens.response == "states"
+    occ = occupations(n0, ec, ground, kT_eV=kT, tunnel_eV=t_eV, tunnel_pairs=pairs, near=near, with_states=True)
     xc, yc = 0.5 * (x[0] + x[-1]), 0.5 * (y[0] + y[-1])
     ref_n = ground[ny // 2, nx // 2].astype(float)
     kappa = sens.couplings(nd)
@@ -335,10 +342,14 @@ def simulate_map(
     )  # (ny, nx)
     weights = kappa / np.max(kappa)
 
-    def render(mean: np.ndarray, *, extra_phi: Any = 0.0, amp: Any = 1.0, n0_: np.ndarray = n0, g_: np.ndarray = ground) -> np.ndarray:
+    def render(mean: np.ndarray, *, extra_phi: Any = 0.0, amp: Any = 1.0, n0_: np.ndarray = n0, g_: np.ndarray = ground,
+               states: StateMixture | None = occ.states) -> np.ndarray:
         if readout == "sensor":
             phi = phi_gate - (mean - ref_n) @ kappa + extra_phi
-            return sensor_signal(sens, phi, amplitude_scale=amp)
+            out = sensor_signal(sens, phi, amplitude_scale=amp)
+            if by_states and states is not None:
+                _average_over_states(out, sens, phi_gate + extra_phi, g_, ref_n, kappa, states, amp)
+            return out
         if readout == "charge":
             return mean @ weights
         return double_dot_current(
@@ -392,20 +403,26 @@ def simulate_map(
                 dq[:, [i1, i2] if nd > 1 else [0]] += art.telegraph_dot_e * tel[:, None]
         n0p = n0 + dq.reshape(ny, nx, nd)
         groundp = ground_state_from_induced(n0p, ec)
-        occp = occupations(n0p, ec, groundp, kT_eV=kT, tunnel_eV=t_eV, tunnel_pairs=pairs)
+        occp = occupations(n0p, ec, groundp, kT_eV=kT, tunnel_eV=t_eV, tunnel_pairs=pairs, with_states=by_states)
         mean = occp.mean
         state_used = groundp
+        mixture = occp.states
         if 0 < art.latching < 1 and nd > 1:
             slow = i2 if art.latching_dot is None else device.dot_names.index(art.latching_dot)  # type: ignore[union-attr]
             latched = _latch(groundp, n0p, ec, slow, art.latching, rng_art)
             lag = np.any(latched != groundp, axis=-1)
             mean = np.where(lag[..., None], latched.astype(float), mean)
             state_used = latched
+            if mixture is not None:
+                # a latched pixel is in its latched state with certainty
+                keep = ~lag.reshape(-1)[mixture.pixels]
+                mixture = StateMixture(pixels=mixture.pixels[keep], moves=mixture.moves,
+                                       probability=mixture.probability[keep])
             applied["latching_pixels"] = int(lag.sum())
             applied["latching_dot_name"] = device.dot_names[slow]
         if tel is not None:
             extra_phi = -art.telegraph * step * _phi_per_signal(sens, phi_gate) * tel.reshape(ny, nx)
-        signal = render(mean, extra_phi=extra_phi, n0_=n0p, g_=state_used)
+        signal = render(mean, extra_phi=extra_phi, n0_=n0p, g_=state_used, states=mixture)
     elif art.telegraph > 0:
         tel = telegraph_series(npx, art.telegraph_dwell_px, rng_art)
         extra_phi = -art.telegraph * step * _phi_per_signal(sens, phi_gate) * tel.reshape(ny, nx)
@@ -509,7 +526,34 @@ def simulate_map(
             "temperature_K": float(temperature_K),
         },
     )
-    return SyntheticMap(data=da, truth=truth, clean=np.asarray(clean))
+    return SyntheticMap(data=da, truth=truth, clean=np.asarray(clean), states=occ.states)
+
+
+def _average_over_states(out: np.ndarray, sens: SensorModel, phi_gate: np.ndarray, ground: np.ndarray,
+                         ref_n: np.ndarray, kappa: np.ndarray, states: StateMixture, amp: Any) -> None:
+    """Overwrite ``out`` at the mixed pixels with the sensor signal averaged over the charge states.
+
+    ``Σ_k p_k S(φ_gate − (G + d_k − N_ref)·κ)`` (:attr:`SensorModel.response`
+    ``"states"``); ``phi_gate`` (ny, nx) the detuning without the dots,
+    ``ground`` (ny, nx, n_dots) the state ``G`` the moves ``d_k`` start from.
+    """
+    pix = states.pixels
+    if pix.size == 0:
+        return
+    nd = kappa.size
+    flat_out = out.reshape(-1)
+    phi0 = np.broadcast_to(phi_gate, out.shape).reshape(-1)[pix]
+    g = ground.reshape(-1, nd)[pix].astype(float)
+    a = np.broadcast_to(np.asarray(amp, float), out.shape).reshape(-1)[pix]
+    base = phi0 - (g - ref_n) @ kappa
+    total = np.zeros(pix.size)
+    shift = states.moves.astype(float) @ kappa
+    for k in range(states.moves.shape[0]):
+        p = states.probability[:, k]
+        used = p > 0
+        if used.any():
+            total[used] += p[used] * sensor_signal(sens, base[used] - shift[k], amplitude_scale=a[used])
+    flat_out[pix] = total
 
 
 def _peak_height(derivative: np.ndarray, ground: np.ndarray, axis: int) -> float:

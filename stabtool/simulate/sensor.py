@@ -30,7 +30,10 @@ import numpy as np
 from ..errors import InputError
 from ..physics.lineshape import _SECH2_HALF, coulomb_peak
 
-__all__ = ["SensorModel", "sensor_signal"]
+__all__ = ["SENSOR_RESPONSES", "SensorModel", "sensor_signal"]
+
+#: How the sensor reads fluctuating charges (:attr:`SensorModel.response`).
+SENSOR_RESPONSES = ("mean", "states")
 
 
 @dataclass(frozen=True)
@@ -63,6 +66,16 @@ class SensorModel:
         Fraction of the linear gate crosstalk compensated (0..1).
     shape : {"sech2", "lorentzian"}
         Peak line shape (:func:`stabtool.physics.lineshape.coulomb_peak`).
+    response : {"mean", "states"}
+        How the sensor reads a dot that fluctuates between charge states.
+        ``"mean"``: the sensor sits at the mean occupation,
+        ``S(φ(⟨N⟩))`` (a slow, mean-field response). ``"states"``: the
+        signal is the time average over the charge states,
+        ``Σ_s p_s S(φ(N_s))``, which is linear in the state probabilities:
+        the sensor follows each switch and the read-out integrates over
+        many (common practice, no source). The two differ only where the
+        occupation is fractional (on thermally or tunnel-broadened lines) and
+        the sensor response is curved over one charge step.
     name, units : str
         Name and unit of the measured quantity.
     """
@@ -76,6 +89,7 @@ class SensorModel:
     baseline: float = 0.05
     compensation: float = 0.0
     shape: str = "sech2"
+    response: str = "mean"
     name: str = "sensor_current"
     units: str = "nA"
 
@@ -92,6 +106,8 @@ class SensorModel:
             raise InputError("compensation", f"must be within 0..1, got {self.compensation}")
         if self.shape not in ("sech2", "lorentzian"):
             raise InputError("shape", f"expected 'sech2' or 'lorentzian', got {self.shape!r}")
+        if self.response not in SENSOR_RESPONSES:
+            raise InputError("response", f"expected one of {', '.join(SENSOR_RESPONSES)}, got {self.response!r}")
 
     def couplings(self, n_dots: int) -> np.ndarray:
         """Per-dot peak shift per electron, shape (n_dots,), mV."""
