@@ -514,3 +514,55 @@ def test_an_unconverged_refinement_makes_the_map_doubtful():
     assert not cut_short.ok and not cut_short.quality.ok
     assert any("did not converge in 1 steps" in w for w in cut_short.quality.warnings)
     assert refine_model(da, fit).converged  # the same map with the usual step budget
+
+
+def test_state_lookup_over_a_huge_label_range_matches_the_table():
+    # a wild trial step of the fit may spread the charge states over 10⁹ labels: the lookup then
+    # searches sorted keys instead of allocating a table (a held-out map once asked for 20 GiB)
+    from stabtool.fit.refine import _States
+
+    rng = np.random.default_rng(0)
+    states = np.unique(np.column_stack([rng.integers(0, 6, 40), rng.integers(-3, 3, 40)]), axis=0)
+    colmap = np.zeros((6, states.shape[0]), np.int64)
+    small = _States(states.astype(float), colmap)
+    far = states.copy()
+    far[0, 0] = 900_000_000  # one state far away
+    huge = _States(far.astype(float), colmap)
+    assert huge._table.size == 0
+    q1, q2 = rng.integers(-2, 8, 500), rng.integers(-5, 5, 500)
+    q1 = np.r_[q1, far[:, 0]]
+    q2 = np.r_[q2, far[:, 1]]
+    want = np.array([next((i for i, s in enumerate(far) if s[0] == a and s[1] == b), far.shape[0])
+                     for a, b in zip(q1, q2)])
+    np.testing.assert_array_equal(huge.index(q1.astype(float), q2.astype(float)), want)
+    # the table form gives the same answers on its own states
+    ref = np.array([next((i for i, s in enumerate(states) if s[0] == a and s[1] == b), states.shape[0])
+                    for a, b in zip(q1, q2)])
+    np.testing.assert_array_equal(small.index(q1.astype(float), q2.astype(float)), ref)
+
+
+def test_a_line_based_start_with_unresolved_addition_voltages_is_not_refined():
+    # lines closer than two pixels are no lattice of the map: the fit is skipped with a reason, and the
+    # lattice predicts no lines (instead of walking through millions of charge cells)
+    from dataclasses import replace
+
+    from stabtool.fit.model import fit_diagram, predicted_lines
+    from stabtool.fit.refine import refine_model
+    from stabtool.lines import detect_lines
+    from stabtool.simulate import quick_double_dot
+
+    sm = quick_double_dot("gaas-double", snr=30.0, shape=(96, 96), rng=1)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        det = detect_lines(sm.data)
+        fit = fit_diagram(det, data=sm.data)
+    assert fit.ok
+    pitch = float(abs(sm.data[sm.data.dims[-1]].values[1] - sm.data[sm.data.dims[-1]].values[0]))
+    tiny = replace(fit, addition_V=np.array([0.5 * pitch, fit.addition_V[1]]))
+    ref = refine_model(sm.data, tiny)
+    assert not ref.ok and not ref.params
+    assert any("below 2 pixels" in w for w in ref.quality.warnings)
+    lat = fit.lattice
+    wide = replace(fit, lattice=replace(lat, labels1=lat.labels1 * 100_000))
+    assert predicted_lines(wide, det.axes) == {"dot1": (), "dot2": ()}
+    assert len(predicted_lines(fit, det.axes)["dot1"]) >= 2

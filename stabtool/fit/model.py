@@ -564,6 +564,10 @@ def _clip_segment(p0: np.ndarray, p1: np.ndarray, box: tuple[float, float, float
     return (x0 + t0 * dx, y0 + t0 * dy), (x0 + t1 * dx, y0 + t1 * dy), t1 - t0
 
 
+#: Most charge cells (label range of dot1 × dot2) :func:`predicted_lines` walks through
+MAX_PREDICTED_CELLS = 10_000
+
+
 def predicted_lines(fit: DiagramFit, axes: Any, *, min_fraction: float = 0.4) -> dict[str, tuple[TransitionLine, ...]]:
     """Every dot1 / dot2 segment the fitted lattice predicts inside the map window.
 
@@ -579,6 +583,10 @@ def predicted_lines(fit: DiagramFit, axes: Any, *, min_fraction: float = 0.4) ->
     box = (float(np.min(axes.x)), float(np.max(axes.x)), float(np.min(axes.y)), float(np.max(axes.y)))
     labels = np.vstack([lat.labels1, lat.labels2])
     lo, hi = labels.min(axis=0) - 1, labels.max(axis=0) + 1
+    if float(np.prod(hi - lo + 1.0)) > MAX_PREDICTED_CELLS:
+        # a lattice whose labels span that many cells is no map's (e.g. an addition voltage of a
+        # fraction of a pixel from lines it could not order): nothing to predict
+        return {"dot1": (), "dot2": ()}
     out: dict[str, list[TransitionLine]] = {"dot1": [], "dot2": []}
     for n1 in range(int(lo[0]), int(hi[0]) + 1):
         for n2 in range(int(lo[1]), int(hi[1]) + 1):
