@@ -46,7 +46,9 @@ was not tuned on:
   direction: the lines shift and broaden along x) and ``stripes`` (the mains pickup of ``hum`` with a
   wait of 2–50 point times before each row, so that the tone's phase steps from row to row by an
   arbitrary amount: straight stripes at any angle) and ``rowhum`` (the same tone on rows started at
-  random moments: its phase is random from row to row).
+  random moments: its phase is random from row to row) and ``charge`` (1/f charge noise: both dots'
+  offset charges fluctuate in measurement time with an rms of 0.003–0.03 e, so the lines wander and
+  jitter from row to row).
 
 Every map prints one line (errors against the truth, the verdict, the first
 warnings); the summary gives coverage (fraction reported ok), silent failures
@@ -83,7 +85,7 @@ import numpy as np
 SENSORS = ("lorentz", "gauss", "sech2", "rf")
 ALL_SENSORS = SENSORS + ("comb", "transport")
 NOISES = ("pink", "walk", "spikes", "drift")
-OPT_NOISES = ("telegraph", "hum", "lag", "filter", "stripes", "rowhum")  # only when asked for by --noise (the default draws stay as they were)
+OPT_NOISES = ("telegraph", "hum", "lag", "filter", "stripes", "rowhum", "charge")  # only when asked for by --noise (the default draws stay as they were)
 SNRS = (4.0, 8.0, 20.0, 60.0)
 
 # issue bounds of the fitter (same numbers as stabtool.bench.bounds.FITTER_BOUNDS)
@@ -218,6 +220,16 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
         lo_c, hi_c = np.log(coupling_ratio[0]), np.log(coupling_ratio[1])
         ratio = float(np.exp(np.random.default_rng([seed, 29]).uniform(lo_c, hi_c)))
         kw["sensor"] = SensorModel(coupling_mV=[0.6, 0.6 * ratio])
+    if "charge" in extras:
+        from stabtool.simulate import Artefacts
+
+        if response == "states":
+            raise ValueError("--noise charge with --response states: the state probabilities are those of the "
+                             "map without the charge noise")
+
+        # 1/f charge noise on both dots, rms 0.003–0.03 e over the sweep (drawn apart from the map's
+        # other draws, so that the rest of the map is the one without it)
+        kw["artefacts"] = Artefacts(charge_noise_e=float(np.random.default_rng([seed, 31]).uniform(0.003, 0.03)))
     sm = simulate_map(dev, x_gate="GX", y_gate="GY", x_range_V=xr_, y_range_V=yr_, shape=(ny, nx),
                       temperature_K=T, readout=readout, tunnel_coupling_ueV=tunnel_coupling_ueV,
                       rng=seed, **kw)

@@ -197,3 +197,20 @@ def test_unknown_sensor_response_is_named():
 
     with pytest.raises(InputError, match="response"):
         SensorModel(response="instant")
+
+
+def test_charge_noise_moves_the_lines_in_proportion_to_its_rms():
+    # 1/f offset-charge noise shifts each line by (charge offset) × (its spacing per electron): at
+    # T = 0 the pixels that change state are those the lines swept over, ∝ the mean |offset|, so
+    # about proportional to the rms (common practice, no source)
+    kw = dict(shape=(120, 200), temperature_K=0.0, snr=None, readout="charge", rng=4)
+    base = quick_double_dot("gaas-double", **kw).data.values
+    moved = {}
+    for rms in (0.01, 0.03):
+        sm = quick_double_dot("gaas-double", charge_noise_e=rms, **kw)
+        assert sm.truth.artefacts["charge_noise_e"] == rms
+        moved[rms] = float(np.mean(sm.data.values != base))
+    assert 0.0 < moved[0.01] < 0.05
+    assert 2.0 <= moved[0.03] / moved[0.01] <= 4.5
+    with pytest.raises(InputError, match="charge_noise_e"):
+        Artefacts(charge_noise_e=-0.1)

@@ -64,6 +64,12 @@ class Artefacts:
     drift_e : float
         Slow drift of the offset charges over the whole sweep, e (0: off);
         each dot drifts by a random fraction of it.
+    charge_noise_e : float
+        1/f charge noise: each dot's offset charge fluctuates in measurement
+        time (row-major pixel order) with this rms, e (0: off); independent
+        per dot, power ∝ 1/f, so the lines wander slowly and jitter from
+        row to row. Typical 1/f charge noise of gate-defined dots is of the
+        order of 1 µeV/√Hz at 1 Hz, i.e. a few 1e-3 e over a night (from memory).
     latching : float
         Probability per pixel that a pending dot–reservoir transition of the
         latching dot happens (0: off, 1: no latching). The mean lag is
@@ -89,6 +95,7 @@ class Artefacts:
     charge_jumps: int = 0
     jump_size_e: float = 0.25
     drift_e: float = 0.0
+    charge_noise_e: float = 0.0
     latching: float = 0.0
     latching_dot: str | None = None
     sensitivity_loss: float = 0.0
@@ -100,7 +107,7 @@ class Artefacts:
     def __post_init__(self) -> None:
         if self.snr is not None and not self.snr > 0:
             raise InputError("snr", f"must be > 0 (or None for no white noise), got {self.snr}")
-        for name in ("row_noise", "telegraph", "drift_e", "jump_size_e", "telegraph_dot_e"):
+        for name in ("row_noise", "telegraph", "drift_e", "charge_noise_e", "jump_size_e", "telegraph_dot_e"):
             if getattr(self, name) < 0:
                 raise InputError(name, f"must be >= 0, got {getattr(self, name)}")
         for name in ("latching", "sensitivity_loss", "sensitivity_factor", "interrupted"):
@@ -119,6 +126,7 @@ class Artefacts:
         """True when an artefact moves the dots themselves (needs a second render)."""
         return bool(
             self.drift_e > 0
+            or self.charge_noise_e > 0
             or self.charge_jumps > 0
             or (self.telegraph > 0 and self.telegraph_dot_e > 0)
             or 0 < self.latching < 1

@@ -396,6 +396,10 @@ def simulate_map(
                 dq[t0:, dot] += size
                 jumps.append({"pixel": t0, "row": t0 // nx, "column": t0 % nx, "dot": device.dot_names[dot], "size_e": size})
             applied["charge_jump_list"] = jumps
+        if art.charge_noise_e > 0:
+            dots = [i1, i2] if nd > 1 else [0]
+            for dot in dots:
+                dq[:, dot] += art.charge_noise_e * pink_noise(npx, rng_art)
         tel = None
         if art.telegraph > 0:
             tel = telegraph_series(npx, art.telegraph_dwell_px, rng_art)
