@@ -1,13 +1,15 @@
 """Sensor curvature in the global refinement (stabtool.fit.refine): tilted mixing of the state levels.
 
-A charge sensor reads ``g(d)`` of its operating point ``d = d_V − κ·⟨N⟩``, so
-across a thermally broadened transition the signal is ``g`` of the *mean*
-charge, not the probability-weighted mix of the states' levels; to second
+A charge sensor that sits at the *mean* charge reads ``g(d_V − κ·⟨N⟩)`` across
+a thermally broadened transition; one that follows every charge switch reads
+the probability-weighted mix of the states' levels, ``Σ p_N g(d_N)``. To second
 order ``g(⟨d⟩) = ⟨g(d)⟩ − ½ g'' Var(d)`` (Taylor expansion about the mean;
-standard, e.g. the delta method, from memory). These tests check the
-analytic Jacobian of the tilted model, and that on a map read through a
-curved sensor the refined addition voltages lose the bias the linear mix
-leaves, while a linear read-out is left as it was.
+standard, e.g. the delta method, from memory). These tests check the analytic
+Jacobian of the tilted model; that on a map read at the mean charge through a
+curved sensor the tilted fit loses the bias the linear mix leaves, and on a
+state-averaged map the linear mix is unbiased; that the reported estimate is
+half-way between the two with the truth inside its stated errors either way;
+and that a linear read-out is left as it was.
 """
 
 from __future__ import annotations
