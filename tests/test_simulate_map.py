@@ -156,6 +156,17 @@ def test_cli_writes_a_map_with_truth(tmp_path, capsys):
     assert "unknown preset" in capsys.readouterr().err
 
 
+def test_cli_passes_the_sensor_response_and_the_charge_noise(tmp_path, capsys):
+    from stabtool.cli.main import main
+
+    out, truth = tmp_path / "hot.nc", tmp_path / "hot.json"
+    code = main(["simulate", "--preset", "gaas-double", "--shape", "40", "48", "--temperature", "1.0",
+                 "--sensor-response", "states", "--charge-noise", "0.01", "--out", str(out), "--truth", str(truth)])
+    assert code == 0
+    d = json.loads(truth.read_text())
+    assert d["sensor"]["response"] == "states" and d["artefacts"]["charge_noise_e"] == 0.01
+    assert main(["simulate", "--preset", "gaas-double", "--charge-noise", "-1", "--out", str(out)]) == 2
+    assert "charge_noise_e" in capsys.readouterr().err
 
 
 def test_state_averaged_sensor_mixes_the_levels_and_mean_field_reads_the_mean_charge():

@@ -95,6 +95,7 @@ def run(args: argparse.Namespace) -> int:
         telegraph=args.telegraph,
         charge_jumps=args.jumps,
         drift_e=args.drift,
+        charge_noise_e=args.charge_noise,
         latching=args.latching,
         sensitivity_loss=args.sensitivity_loss,
         interrupted=args.interrupted,
@@ -111,7 +112,7 @@ def run(args: argparse.Namespace) -> int:
         temperature_K=temperature,
         tunnel_coupling_ueV=args.tunnel,
         readout=args.readout,
-        sensor=SensorModel(compensation=args.compensation),
+        sensor=SensorModel(compensation=args.compensation, response=args.sensor_response),
         artefacts=art,
         fixed_V=fixed,
         bias_mV=args.bias,
@@ -178,11 +179,16 @@ def register(subparsers: Any) -> None:
     p.add_argument("--bias-mV", "--bias", dest="bias", type=float, default=0.0, metavar="MV",
                    help="source-drain bias for transport, mV (the name analyze takes too)")
     p.add_argument("--compensation", type=float, default=0.0, help="sensor crosstalk compensation 0..1")
+    p.add_argument("--sensor-response", choices=("mean", "states"), default="mean",
+                   help="how the sensor reads a fluctuating charge: at the mean charge (default) or averaged "
+                        "over the charge states (a sensor that follows every switch)")
     p.add_argument("--snr", type=float, default=None, help="white noise: charge-step height / noise std")
     p.add_argument("--row-noise", type=float, default=0.0, help="1/f row offsets, std in step heights")
     p.add_argument("--telegraph", type=float, default=0.0, help="telegraph trap amplitude in step heights")
     p.add_argument("--jumps", type=int, default=0, help="number of sudden charge-offset jumps")
     p.add_argument("--drift", type=float, default=0.0, metavar="E", help="offset-charge drift over the sweep, e")
+    p.add_argument("--charge-noise", type=float, default=0.0, metavar="E",
+                   help="1/f offset-charge noise on both dots in measurement time, rms e")
     p.add_argument("--latching", type=float, default=0.0, help="per-pixel catch-up probability of dot2 (0 off)")
     p.add_argument("--sensitivity-loss", type=float, default=0.0, help="fraction of columns with a weak sensor")
     p.add_argument("--interrupted", type=float, default=0.0, help="fraction of trailing rows lost (NaN)")
