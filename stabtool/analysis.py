@@ -656,10 +656,10 @@ def _widths_from_map(da: xr.DataArray, fit: DiagramFit, which: int, *, max_lines
     width and its standard error (V). With ``clearance_V``, only cuts whose
     window stays that far from every line of the other dot (along the other
     dot's gate) are used (:func:`stabtool.fit.linewidth.clear_of_lines`).
-    With ``with_shape``, returns ``(width, error, dchi2)``: ``dchi2`` the sum
-    over the fitted cuts of the χ² of the Fermi step minus that of a
+    With ``with_shape``, returns ``(width, error, shape)``: ``shape()`` gives
+    the sum over the fitted cuts of the χ² of the Fermi step minus that of a
     Gaussian-broadened step (:func:`stabtool.fit.line_shape.fermi_minus_gauss_chi2`;
-    NaN without a cut).
+    NaN without a cut), fitted when called: only a width that is used needs it.
     """
     from .fit.fermi import fit_fermi_step, fit_fermi_steps
     from .fit.line_shape import fermi_minus_gauss_chi2
@@ -682,10 +682,16 @@ def _widths_from_map(da: xr.DataArray, fit: DiagramFit, which: int, *, max_lines
                                   clearance_V=float(clearance_V))
 
     cuts = [c for c in (_cuts_along_line(x, y, z, ln, which, half, clear=clear) for ln in lines) if c is not None]
+    fitted: list[tuple[np.ndarray, np.ndarray, float, float]] = []  # (v, s, centre, width) of each kept cut
+
+    def shape() -> float:
+        d = np.array([fermi_minus_gauss_chi2(v, s, centre_V=c0, width_V=w) for v, s, c0, w in fitted], float)
+        return float(np.sum(d[np.isfinite(d)])) if np.any(np.isfinite(d)) else float("nan")
+
     if not cuts:
-        return (float("nan"), float("nan"), float("nan")) if with_shape else (float("nan"), float("nan"))
+        return (float("nan"), float("nan"), shape) if with_shape else (float("nan"), float("nan"))
     batch = fit_fermi_steps([c[0] for c in cuts], [c[1] for c in cuts], centre_guess_V=0.0)
-    ws, es, dchi = [], [], []
+    ws, es = [], []
     for i, (v, s) in enumerate(cuts):
         if batch.converged[i] or batch.n_points[i] < 10:
             ok, w, e, c0 = bool(batch.success[i]), batch.width_V[i], batch.width_stderr_V[i], batch.centre_V[i]
@@ -698,22 +704,19 @@ def _widths_from_map(da: xr.DataArray, fit: DiagramFit, which: int, *, max_lines
         if ok and np.isfinite(w) and w > 0 and np.isfinite(e):
             ws.append(float(w))
             es.append(float(e))
-            if with_shape:
-                dchi.append(fermi_minus_gauss_chi2(v, s, centre_V=float(c0), width_V=float(w)))
+            fitted.append((v, s, float(c0), float(w)))
     w_mean, e_mean = _weighted(ws, es)
-    if not with_shape:
-        return w_mean, e_mean
-    d = np.asarray(dchi, float)
-    return w_mean, e_mean, float(np.sum(d[np.isfinite(d)])) if np.any(np.isfinite(d)) else float("nan")
+    return (w_mean, e_mean, shape) if with_shape else (w_mean, e_mean)
 
 
-def _non_thermal_shape(ws: np.ndarray, shape_chi2: np.ndarray, details: dict[str, Any],
+def _non_thermal_shape(ws: np.ndarray, shape_of: list[Any], details: dict[str, Any],
                        q: Quality) -> tuple[np.ndarray, Quality]:
     """Doubt the temperature scale where a Gaussian-broadened step fits the lines better than Fermi's.
 
-    ``shape_chi2`` per dot: the summed χ² of the Fermi step minus that of a
-    Gaussian-broadened one over the stacked cuts clear of the other dot's
-    lines (:mod:`stabtool.fit.line_shape`). Beyond
+    ``shape_of`` per dot (None when not measured): a callable giving the
+    summed χ² of the Fermi step minus that of a Gaussian-broadened one over
+    the stacked cuts clear of the other dot's lines (:mod:`stabtool.fit.line_shape`),
+    called only for a width in use (finite ``ws``). Beyond
     :data:`~stabtool.fit.line_shape.NON_THERMAL_DCHI2` the lines are broader
     than the temperature makes them, so ``α = k_B T_e/(e w)`` is too small
     (a lower bound); the widths are kept and the scale is doubtful.
@@ -723,10 +726,12 @@ def _non_thermal_shape(ws: np.ndarray, shape_chi2: np.ndarray, details: dict[str
     from .fit.line_shape import NON_THERMAL_DCHI2
 
     for i in range(2):
-        d = float(shape_chi2[i])
+        if shape_of[i] is None or not np.isfinite(ws[i]):
+            continue
+        d = float(shape_of[i]())
         if np.isfinite(d):
             details[f"shape_dchi2_fermi_minus_gauss_dot{i + 1}"] = d
-        if np.isfinite(d) and np.isfinite(ws[i]) and d > NON_THERMAL_DCHI2:
+        if np.isfinite(d) and d > NON_THERMAL_DCHI2:
             q = q.with_warning(
                 f"dot{i + 1} lines are not thermally broadened: a Gaussian-broadened step fits them better "
                 f"than the Fermi step (χ² lower by {d:.0f}): the lever arm from the electron temperature is "
@@ -774,13 +779,13 @@ def _scale(
         from .fit.linewidth import CLEARANCE_WIDTHS, choose_clear_width
 
         first = [_widths_from_map(da, fit, i) for i in range(2)]
-        shape_chi2 = np.full(2, np.nan)  # Fermi minus Gaussian step, cuts clear of the other dot's lines
+        shape_of: list[Any] = [None, None]  # Fermi minus Gaussian step, cuts clear of the other dot's lines
         for i in range(2):
             lines = fit.lines1 if i == 0 else fit.lines2
             w, e = first[i]
             if np.isfinite(w) and np.isfinite(first[1 - i][0]):
-                w_c, e_c, shape_chi2[i] = _widths_from_map(da, fit, i, clearance_V=CLEARANCE_WIDTHS * first[1 - i][0],
-                                                           with_shape=True)
+                w_c, e_c, shape_of[i] = _widths_from_map(da, fit, i, clearance_V=CLEARANCE_WIDTHS * first[1 - i][0],
+                                                         with_shape=True)
                 cw = choose_clear_width(w, e, w_c, e_c)
                 w, e = cw.width_V, cw.error_V
                 details[f"width_dot{i + 1}_cuts"] = cw.choice
@@ -808,7 +813,7 @@ def _scale(
                 details[f"width_dot{i + 1}_V"] = w
                 details[f"width_dot{i + 1}_V_error"] = e
                 details["width_source"] = source
-        ws, q = _non_thermal_shape(ws, shape_chi2, details, q)
+        ws, q = _non_thermal_shape(ws, shape_of, details, q)
         ws, q = _lag_broadened(ws, fit, fast_axis_lag_V, q)
         es = _with_undo_error(ws, es, fit, fast_axis_tau_V, fast_axis_lag_V, details)
         ws, q = _thermal_consistency(ws, es, details, ratio, ratio_err, ax_steps, q)

@@ -36,6 +36,9 @@ import numpy as np
 from scipy.optimize import least_squares
 from scipy.special import erf
 
+from .fermi import _step as fermi_step
+from .fermi import estimate_noise
+
 __all__ = ["NON_THERMAL_DCHI2", "fermi_minus_gauss_chi2"]
 
 #: Summed χ² advantage of the Gaussian-broadened step above which the lines are called non-thermal
@@ -47,8 +50,10 @@ _GAUSS_PER_FERMI_WIDTH = 4.0 / np.sqrt(2.0 * np.pi)
 
 
 def _residual(v: np.ndarray, s: np.ndarray, kind: str, centre: float, scale: float) -> np.ndarray:
-    u = (v - centre) / scale
-    step = 0.5 * (1.0 + np.tanh(0.5 * u)) if kind == "fermi" else 0.5 * (1.0 + erf(u / np.sqrt(2.0)))
+    if kind == "fermi":
+        step = fermi_step(v, centre, scale)
+    else:
+        step = 0.5 * (1.0 + erf((v - centre) / (np.sqrt(2.0) * scale)))
     a = np.stack([np.ones_like(v), v - centre, step], axis=1)
     coef, *_ = np.linalg.lstsq(a, s, rcond=None)
     return s - a @ coef
@@ -82,7 +87,8 @@ def fermi_minus_gauss_chi2(v: np.ndarray, signal: np.ndarray, *, centre_V: float
     -------
     float
         ``(SSR_Fermi − SSR_Gauss)/σ²`` with σ the white noise from
-        point-to-point differences of the sorted cut (positive: the Gaussian
+        point-to-point differences of the sorted cut
+        (:func:`stabtool.fit.fermi.estimate_noise`; positive: the Gaussian
         step fits better); NaN with fewer than 10 finite points or no
         usable start.
     """
@@ -94,7 +100,7 @@ def fermi_minus_gauss_chi2(v: np.ndarray, signal: np.ndarray, *, centre_V: float
         return float("nan")
     order = np.argsort(v, kind="stable")
     v, s = v[order], s[order]
-    noise = float(np.median(np.abs(np.diff(s)))) / (0.6745 * np.sqrt(2.0))
+    noise = estimate_noise(s)
     if not noise > 0:
         return float("nan")
     ssr_f = _best_ssr(v, s, "fermi", centre_V, width_V)
