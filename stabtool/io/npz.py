@@ -66,6 +66,11 @@ def _meta(path: str, arrays: dict[str, np.ndarray]) -> dict[str, Any]:
     return meta
 
 
+def _meta_attrs(meta: dict[str, Any]) -> dict[str, Any]:
+    """The map attributes stored under ``meta["attrs"]`` (decoded), or none."""
+    return decode_attrs(meta["attrs"]) if isinstance(meta.get("attrs"), dict) else {}
+
+
 def _unit(path: str, key: str, unit: str | None) -> str:
     checked_voltage_scale(path, unit, f"for gate array {key!r}")
     return unit or "V"
@@ -156,7 +161,7 @@ def read_npz(path: str, *, var: str | None = None, x: str | None = None, y: str 
     xlab, ylab = labels[xkey], labels[ykey]
     xunit = _unit(path, xkey, meta.get("x_units") or xlab.unit)
     yunit = _unit(path, ykey, meta.get("y_units") or ylab.unit)
-    attrs = decode_attrs(meta.get("attrs") or {}) if isinstance(meta.get("attrs"), dict) else {}
+    attrs = _meta_attrs(meta)
     attrs.pop("source", None)
     if projection is not None:
         attrs["iq_projection_deg"] = round(projection, 3)
@@ -197,7 +202,7 @@ def _flat_point_list(path: str, arrays: dict[str, np.ndarray], labels: dict[str,
         return None
     ds = xr.Dataset({labels[k].name: ("point", a, {"units": labels[k].unit} if labels[k].unit else {})
                      for k, a in ones.items()})
-    attrs = decode_attrs(meta.get("attrs") or {}) if isinstance(meta.get("attrs"), dict) else {}
+    attrs = _meta_attrs(meta)
     ds.attrs.update({k: v for k, v in attrs.items() if k != "source"})
     return flat_point_map(ds, path, var, x, y)
 

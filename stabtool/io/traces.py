@@ -266,7 +266,7 @@ def _load_netcdf(path: Path, temp_kind: str | None, temp_name: str | None) -> li
         # the gate dimension: the one whose coordinate has a voltage unit, else the last
         gdim = da.dims[-1]
         for d in da.dims:
-            if d in ds.coords and _is_voltage(ds[d].attrs.get("units")):
+            if d in ds.coords and is_voltage_unit(ds[d].attrs.get("units")):
                 gdim = d
         if gdim not in ds.coords:
             raise InputError(path, f"variable {name!r}: dimension {gdim!r} has no coordinate; the gate voltages are unknown")
@@ -297,10 +297,6 @@ def _load_netcdf(path: Path, temp_kind: str | None, temp_name: str | None) -> li
     if not traces:
         raise InputError(path, "no numeric data variable; expected a 1-D trace along a gate coordinate")
     return traces
-
-
-def _is_voltage(unit) -> bool:
-    return is_voltage_unit(unit)
 
 
 def _nc_temperature(path, vattrs, fattrs, kind, name) -> tuple[float, str]:
