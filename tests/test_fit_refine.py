@@ -566,3 +566,25 @@ def test_a_line_based_start_with_unresolved_addition_voltages_is_not_refined():
     wide = replace(fit, lattice=replace(lat, labels1=lat.labels1 * 100_000))
     assert predicted_lines(wide, det.axes) == {"dot1": (), "dot2": ()}
     assert len(predicted_lines(fit, det.axes)["dot1"]) >= 2
+
+
+@pytest.mark.regression
+def test_weak_steps_are_reported_but_leave_the_verdict_to_the_error_rules():
+    # generator map at SNR 2.5 (step / noise σ): the steps are weak, which the fit says; the
+    # model fit is then not used as a cross-check (Refinement.ok False), but weak steps alone do
+    # not make the analysis doubtful: on the held-out probe that doubt stood alone only on maps
+    # within the fitter bounds (DEVELOPERS.md, "Seventeenth session")
+    from stabtool.fit.model import fit_diagram
+    from stabtool.fit.refine import WEAK_STEP_SNR, refine_model
+    from stabtool.lines import detect_lines
+
+    bm = _bench_map("gaas-double", 2.5, 0)
+    fit = fit_diagram(detect_lines(bm.data), data=bm.data)
+    assert fit.ok
+    ref = refine_model(bm.data, fit)
+    assert ref.converged and ref.weak_steps and not ref.ok
+    weak = [w for w in ref.quality.warnings if w.startswith("charge steps are weak")]
+    assert len(weak) == 1
+    snr = float(weak[0].rsplit("SNR ", 1)[1].rstrip(")"))
+    assert snr < WEAK_STEP_SNR
+    assert ref.quality.ok  # the warning is kept, not a doubt
