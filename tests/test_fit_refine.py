@@ -569,11 +569,9 @@ def test_a_line_based_start_with_unresolved_addition_voltages_is_not_refined():
 
 
 @pytest.mark.regression
-def test_weak_steps_are_reported_but_leave_the_verdict_to_the_error_rules():
-    # generator map at SNR 2.5 (step / noise σ): the steps are weak, which the fit says; the
-    # model fit is then not used as a cross-check (Refinement.ok False), but weak steps alone do
-    # not make the analysis doubtful: on the held-out probe that doubt stood alone only on maps
-    # within the fitter bounds (DEVELOPERS.md, "Seventeenth session")
+def test_weak_typical_steps_make_the_fit_doubtful():
+    # generator map at SNR 2.5 (step / noise σ): the typical step is weak, and that is a doubt
+    # (DEVELOPERS.md, "Seventeenth session": half of such held-out maps were beyond the bounds)
     from stabtool.fit.model import fit_diagram
     from stabtool.fit.refine import WEAK_STEP_SNR, refine_model
     from stabtool.lines import detect_lines
@@ -583,8 +581,30 @@ def test_weak_steps_are_reported_but_leave_the_verdict_to_the_error_rules():
     assert fit.ok
     ref = refine_model(bm.data, fit)
     assert ref.converged and ref.weak_steps and not ref.ok
-    weak = [w for w in ref.quality.warnings if w.startswith("charge steps are weak")]
+    weak = [w for w in ref.quality.warnings if w.startswith("charge steps are weak: typical step")]
     assert len(weak) == 1
-    snr = float(weak[0].rsplit("SNR ", 1)[1].rstrip(")"))
-    assert snr < WEAK_STEP_SNR
-    assert ref.quality.ok  # the warning is kept, not a doubt
+    assert float(weak[0].rsplit("SNR ", 1)[1].rstrip(")")) < WEAK_STEP_SNR
+    assert not ref.quality.ok
+
+
+@pytest.mark.regression
+def test_a_weak_quarter_of_the_steps_is_a_note_not_a_doubt():
+    # held-out probe map (scripts/probe_heldout.py seed 40: sech² sensor, pink noise, SNR 8): a
+    # quarter of the steps are below 2 σ (the sensor's peak sits in the map), the numbers are
+    # within the fitter bounds; the weak quarter is said but leaves the verdict to the error rules
+    from _probe import make_map
+
+    from stabtool.analysis import Analyzer
+
+    pm = make_map(40)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        res = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data)
+    j = res.to_json()
+    first, flags = res.quality.doubts_first_flagged()
+    weak = [f for w, f in zip(first, flags) if w.startswith("charge steps are weak: a quarter")]
+    assert weak == [False]
+    err = np.abs(np.array(j["virtual_gate_matrix"], float) - np.array(pm.truth["virtual_gate_matrix"], float))
+    assert float(err.max()) <= 0.02  # the bound below SNR 10
+    cdg = np.array(j["gate_capacitance_aF"], float)
+    assert np.all(np.abs(cdg / np.array(pm.truth["gate_capacitance_aF"], float) - 1) <= 0.02)
