@@ -24,8 +24,8 @@ from .errors import InputError, PartialSweepWarning
 from .units import to_volts
 
 __all__ = ["PLAUSIBLE_GATE_V", "SIGNAL_RANGE_BAND", "MapAxes", "implausible_gate_voltages", "infinities_as_missing",
-           "make_map", "map_axes", "signal_gain", "signal_range", "validate_map", "without_infinities", "x_gate",
-           "y_gate"]
+           "make_map", "map_axes", "share_of_points", "signal_gain", "signal_range", "validate_map",
+           "without_infinities", "x_gate", "y_gate"]
 
 
 @dataclass(frozen=True)
@@ -165,12 +165,19 @@ def without_infinities(da: xr.DataArray, *, source: str | None = None) -> xr.Dat
         return da
     src = source if source is not None else da.attrs.get("source")
     warnings.warn(
-        f"{src or 'map'}: {100 * np.isinf(values).mean():.1f} % of the points are infinite (overflow or a failed "
+        f"{src or 'map'}: {share_of_points(np.isinf(values))} are infinite (overflow or a failed "
         "read-out); treated as missing",
         PartialSweepWarning,
         stacklevel=2,
     )
     return da.copy(data=finite_or_nan)
+
+
+def share_of_points(mask: np.ndarray) -> str:
+    """``"12 of 4096 points (0.29 %)"``: how many of a map's points ``mask`` marks, readable for a few too."""
+    n, total = int(np.count_nonzero(mask)), int(np.size(mask))
+    pct = 100.0 * n / max(total, 1)
+    return f"{n} of {total} points ({pct:.2g} %)" if pct < 1 else f"{n} of {total} points ({pct:.1f} %)"
 
 
 def infinities_as_missing(values: np.ndarray) -> np.ndarray:
@@ -204,10 +211,9 @@ def validate_map(da: xr.DataArray, *, source: str | None = None) -> xr.DataArray
         raise InputError(src, "the map holds no finite values (all NaN or infinite)")
     if np.nanmax(values) == np.nanmin(values):
         raise InputError(src, "the map is constant; there is nothing to analyse")
-    missing = float((~finite).mean())
-    if missing > 0:
+    if not finite.all():
         warnings.warn(
-            f"{src or 'map'}: {100 * missing:.1f} % of the points are missing (NaN)",
+            f"{src or 'map'}: {share_of_points(~finite)} are missing (NaN)",
             PartialSweepWarning,
             stacklevel=2,
         )

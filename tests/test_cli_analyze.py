@@ -180,3 +180,15 @@ def test_a_stack_of_repeats_is_analysed_one_slice_at_a_time_with_isel(tmp_path, 
     assert sliced["slopes"] == direct["slopes"]
     assert main(["analyze", str(path), "--isel", "rep"]) == 2
     assert "expected DIM=INDEX" in capsys.readouterr().err
+
+
+def test_a_single_infinite_point_is_counted_not_rounded_away():
+    # one overflowed point of 4096 once read "0.0 % of the points are infinite"
+    import numpy as np
+
+    from stabtool.mapdata import share_of_points
+
+    one = np.zeros((64, 64), bool)
+    one[3, 4] = True
+    assert share_of_points(one) == "1 of 4096 points (0.024 %)"
+    assert share_of_points(np.ones((10, 10), bool)) == "100 of 100 points (100.0 %)"

@@ -8,7 +8,7 @@ import numpy as np
 import xarray as xr
 
 from ..errors import InputError
-from ..mapdata import infinities_as_missing
+from ..mapdata import infinities_as_missing, share_of_points
 from ..preprocess._checks import check_map
 from ..preprocess.background import _row_offsets_core
 from ..preprocess.noise import MAX_NOISE_SAMPLES, _noise_core
@@ -255,9 +255,10 @@ def _drop_weak_lines(refined: list[RefinedLine], names: list[str]) -> list[Refin
 def _detect_core(values: np.ndarray, axes, cfg: LineDetector) -> LineDetection:
     ny = values.shape[0]
     quality = Quality()
-    missing = float((~np.isfinite(values)).mean())
+    gone = ~np.isfinite(values)
+    missing = float(gone.mean())
     if missing > 0:
-        quality = quality.with_warning(f"{100 * missing:.1f} % of the points are missing (NaN); analysed the rest",
+        quality = quality.with_warning(f"{share_of_points(gone)} are missing (NaN); analysed the rest",
                                        doubtful=missing > 0.5)
     noise = _noise_core(values, MAX_NOISE_SAMPLES)
     if not (np.isfinite(noise) and noise > 0):
