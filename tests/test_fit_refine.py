@@ -145,16 +145,23 @@ def _bench_map(preset, snr, seed, size=112):
     return make_case_map(BenchCase(index=0, snr=snr, preset=preset, artefact="none", seed=seed, size_px=size))
 
 
+def _line_fit(preset, snr, seed):
+    """A bench map and its line-based diagram fit (which must succeed)."""
+    from stabtool.fit.model import fit_diagram
+    from stabtool.lines import detect_lines
+
+    bm = _bench_map(preset, snr, seed)
+    fit = fit_diagram(detect_lines(bm.data), data=bm.data)
+    assert fit.ok
+    return bm, fit
+
+
 @pytest.mark.regression
 def test_refined_parameters_agree_with_the_truth_within_their_errors():
     # generator truth (stabtool.simulate); thermally broadened lines 3-4 px wide
-    from stabtool.fit.model import fit_diagram
     from stabtool.fit.refine import refine_model
-    from stabtool.lines import detect_lines
 
-    bm = _bench_map("ge-double", 30.0, 21)
-    fit = fit_diagram(detect_lines(bm.data), data=bm.data)
-    assert fit.ok
+    bm, fit = _line_fit("ge-double", 30.0, 21)
     ref = refine_model(bm.data, fit)
     assert ref.converged and ref.ok, ref.quality.warnings
     tr = bm.truth.to_json()
@@ -199,12 +206,9 @@ def test_refinement_converges_on_sharp_lines():
 def test_refinement_is_adopted_only_when_it_agrees_with_the_lines():
     from dataclasses import replace
 
-    from stabtool.fit.model import fit_diagram
     from stabtool.fit.refine import adopt_refinement, refine_model
-    from stabtool.lines import detect_lines
 
-    bm = _bench_map("si-sige-double", 30.0, 22)
-    fit = fit_diagram(detect_lines(bm.data), data=bm.data)
+    bm, fit = _line_fit("si-sige-double", 30.0, 22)
     ref = refine_model(bm.data, fit)
     good = adopt_refinement(fit, ref)
     assert good.adopted
@@ -451,17 +455,14 @@ def test_adopted_error_of_m_carries_the_disagreement_with_the_lines():
     # quadrature (sum of independent variances: common practice, no source)
     from dataclasses import replace
 
-    from stabtool.fit.model import fit_diagram
     from stabtool.fit.refine import (
         DISAGREEMENT_SHARE,
         adopt_refinement,
         refine_model,
         systematic_floor_m,
     )
-    from stabtool.lines import detect_lines
 
-    bm = _bench_map("si-sige-double", 30.0, 22)
-    fit = fit_diagram(detect_lines(bm.data), data=bm.data)
+    bm, fit = _line_fit("si-sige-double", 30.0, 22)
     ref = refine_model(bm.data, fit)
     vec, cov = ref.vector()
     floor = systematic_floor_m(vec[:2], min(max(ref.params["width_px1"], 0.1), 1.0))[0]
@@ -572,13 +573,9 @@ def test_a_line_based_start_with_unresolved_addition_voltages_is_not_refined():
 def test_weak_typical_steps_make_the_fit_doubtful():
     # generator map at SNR 2.5 (step / noise σ): the typical step is weak, and that is a doubt
     # (DEVELOPERS.md, "Seventeenth session": half of such held-out maps were beyond the bounds)
-    from stabtool.fit.model import fit_diagram
     from stabtool.fit.refine import WEAK_STEP_SNR, refine_model
-    from stabtool.lines import detect_lines
 
-    bm = _bench_map("gaas-double", 2.5, 0)
-    fit = fit_diagram(detect_lines(bm.data), data=bm.data)
-    assert fit.ok
+    bm, fit = _line_fit("gaas-double", 2.5, 0)
     ref = refine_model(bm.data, fit)
     assert ref.converged and ref.weak_steps and not ref.ok
     weak = [w for w in ref.quality.warnings if w.startswith("charge steps are weak: typical step")]
