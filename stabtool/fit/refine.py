@@ -181,8 +181,8 @@ WEAK_STEP_SNR = 3.0
 WEAK_QUARTILE_SNR = 2.0
 #: A weak quarter alone does not make the analysis doubtful (the warning is kept, ``Refinement.ok``
 #: is False, and no absolute charge labels are given); the verdict is left to the error rules.
-#: Held-out probe sets 0:64 and 64:128: of 14 maps with a weak quarter, the 10 within the fitter
-#: bounds had it as their only doubt, the 4 beyond them carried stated-error doubts too. A weak
+#: Held-out probe sets 0:64 and 64:128: of 14 maps with a weak quarter, 10 were within the fitter
+#: bounds (7 with no other doubt), and the 4 beyond them carried stated-error doubts too. A weak
 #: typical step stays a doubt: 4 of 8 such maps were beyond the bounds, and without it a coupling-
 #: probe map (typical step 2.8 σ, a Cdg element 2.4 % off at a stated 0.8 %) was reported ok.
 #: See DEVELOPERS.md, "Seventeenth session".
