@@ -709,8 +709,7 @@ def _widths_from_map(da: xr.DataArray, fit: DiagramFit, which: int, *, max_lines
     return (w_mean, e_mean, shape) if with_shape else (w_mean, e_mean)
 
 
-def _non_thermal_shape(ws: np.ndarray, shape_of: list[Any], details: dict[str, Any],
-                       q: Quality) -> tuple[np.ndarray, Quality]:
+def _non_thermal_shape(ws: np.ndarray, shape_of: list[Any], details: dict[str, Any], q: Quality) -> Quality:
     """Doubt the temperature scale where a Gaussian-broadened step fits the lines better than Fermi's.
 
     ``shape_of`` per dot (None when not measured): a callable giving the
@@ -719,7 +718,8 @@ def _non_thermal_shape(ws: np.ndarray, shape_of: list[Any], details: dict[str, A
     called only for a width in use (finite ``ws``). Beyond
     :data:`~stabtool.fit.line_shape.NON_THERMAL_DCHI2` the lines are broader
     than the temperature makes them, so ``α = k_B T_e/(e w)`` is too small
-    (a lower bound); the widths are kept and the scale is doubtful.
+    (a lower bound); the widths are kept (``ws`` is only read) and the
+    returned quality makes the scale doubtful.
     Generator maps at a quarter of their temperature, blurred by a 1.5 px
     Gaussian: lever arms 72–96 % low, and no lever-arm doubt before this test.
     """
@@ -737,7 +737,7 @@ def _non_thermal_shape(ws: np.ndarray, shape_of: list[Any], details: dict[str, A
                 f"than the Fermi step (χ² lower by {d:.0f}): the lever arm from the electron temperature is "
                 "a lower bound"
             )
-    return ws, q
+    return q
 
 
 def _scale(
@@ -813,7 +813,7 @@ def _scale(
                 details[f"width_dot{i + 1}_V"] = w
                 details[f"width_dot{i + 1}_V_error"] = e
                 details["width_source"] = source
-        ws, q = _non_thermal_shape(ws, shape_of, details, q)
+        q = _non_thermal_shape(ws, shape_of, details, q)
         ws, q = _lag_broadened(ws, fit, fast_axis_lag_V, q)
         es = _with_undo_error(ws, es, fit, fast_axis_tau_V, fast_axis_lag_V, details)
         ws, q = _thermal_consistency(ws, es, details, ratio, ratio_err, ax_steps, q)

@@ -1573,13 +1573,14 @@ def refine_model(
             f"charge steps are weak: a quarter of the steps are below {step_min:.3g} vs noise {sig:.3g} "
             f"(SNR {step_min / sig:.1f}; a peak-shaped sensor near its maximum)",
             doubtful=WEAK_QUARTER_DOUBTFUL)
-    return Refinement(ok=q.ok and converged and not (weak_typical or weak_quarter), params=params, errors=errors,
+    weak = weak_typical or weak_quarter
+    return Refinement(ok=q.ok and converged and not weak, params=params, errors=errors,
                       cov=cov, residual_ratio=ratio,
                       noise=noise, step=(g1, g2), width_resolved=width_resolved, stride=(sy, sx), n_min=n_min,
                       quality=q, n_points=int(pz.size), iterations=it, converged=converged, snr=snr,
                       structure=structure,
                       curvature=({**curvature.to_json(), "response": response} if curvature is not None else None),
-                      model=full, weak_steps=weak_typical or weak_quarter, tunnel_score=score)
+                      model=full, weak_steps=weak, tunnel_score=score)
 
 
 def _hedged_response(theta_mean: np.ndarray, cov: np.ndarray, theta_states: np.ndarray, delta_chi2: float,
