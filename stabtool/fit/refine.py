@@ -345,6 +345,9 @@ class Refinement:
     weak_steps: bool = False
     #: score test of an interdot tunnel coupling at this fit (:func:`_tunnel_score`; NaN when not computed)
     tunnel_score: float = float("nan")
+    #: pixel boxes ``(y0, y1, x0, x1)`` (half-open) left out of this fit for sharp residual structure
+    #: (``stabtool.analysis._without_local_structure``)
+    left_out_px: tuple[tuple[int, int, int, int], ...] = ()
 
     def __bool__(self) -> bool:
         return self.ok
@@ -379,6 +382,7 @@ class Refinement:
             "snr": self.snr,
             "structure_test": self.structure.to_json() if self.structure is not None else None,
             "sensor_curvature": self.curvature,
+            "left_out_px_boxes": [list(b) for b in self.left_out_px],
         }
 
 
@@ -515,6 +519,8 @@ class StructureTest:
         The worst tile's ``tile``-th largest ``|residual difference|`` (NaN unless significant).
     step : float
         Charge step the amplitude is compared with.
+    hits : tuple of (int, int, int, int)
+        Pixel box ``(y0, y1, x0, x1)`` (half-open) of every significant tile, worst first.
     """
 
     flagged: bool
@@ -527,11 +533,13 @@ class StructureTest:
     lags: tuple[int, int]
     amplitude: float = float("nan")
     step: float = float("nan")
+    hits: tuple[tuple[int, int, int, int], ...] = ()
 
     def to_json(self) -> dict[str, Any]:
         return {"flagged": bool(self.flagged), "excess": self.excess, "z": self.z, "z_crit": self.z_crit,
                 "where_px": list(self.where), "n_tiles": int(self.n_tiles), "global_excess": self.global_excess,
-                "lags_px": list(self.lags), "amplitude": self.amplitude, "step": self.step}
+                "lags_px": list(self.lags), "amplitude": self.amplitude, "step": self.step,
+                "significant_tiles": len(self.hits)}
 
 
 def _mad_scale(v: np.ndarray) -> float:
@@ -670,8 +678,12 @@ def residual_structure_test(
     k = np.unravel_index(int(np.argmax(pick)), pick.shape)
     glob = float(sums[use].sum() / counts[use].sum() - mu)
     where = (int(min(ny - 1, k[0] * tile + tile // 2)), int(min(nx - 1, k[1] * tile + tile // 2)))
+    # the pixels of each significant tile's differences (a difference at lag l also reads l pixels on)
+    order = np.flatnonzero(hit.ravel())[np.argsort(-excess.ravel()[hit.ravel()], kind="stable")]
+    boxes = tuple((int(ty * tile), int(min(ny, (ty + 1) * tile + ly)), int(tx * tile), int(min(nx, (tx + 1) * tile + lx)))
+                  for ty, tx in zip(*np.unravel_index(order, hit.shape)))
     return StructureTest(bool(hit.any()), float(excess[k]), float(zt[k]), z_crit, where, n_tiles, glob, (ly, lx),
-                         float(amp[k]), float(abs(step)))
+                         float(amp[k]), float(abs(step)), boxes)
 
 
 #: States below this probability at a pixel are left out of the model there (their share of the
