@@ -303,3 +303,47 @@ def test_every_output_of_a_matrix_carries_the_caution(result, tmp_path, capsys):
     assert main(["analyze", str(path), "--json", "--quiet", "--save", str(tmp_path / "out.nc")]) == 0
     assert json.loads(capsys.readouterr().out)["caution"] == MATRIX_CAUTION
     assert load_dataset(tmp_path / "out.nc").attrs["caution"] == MATRIX_CAUTION
+
+
+def test_the_text_summary_tells_a_missing_reference_from_one_that_could_not_set_the_scale(result):
+    # no reference given: the summary says which options give one; a reference given whose lines
+    # could not set the scale (too sharp for the temperature): it points to the notes instead
+    from stabtool.analysis import EnergyScale
+    from stabtool.quality import Quality
+    from stabtool.report.text import summary_text
+
+    bare = replace(result, scale=EnergyScale())
+    assert "give --electron-temperature or --lever-arm" in summary_text(bare)
+    refused = replace(result, scale=EnergyScale(quality=Quality().with_warning(
+        "dot1 lines are 0.8 px wide (FWHM): resolution-limited, no lever arm from the temperature", doubtful=False)))
+    text = summary_text(refused)
+    assert "the energy reference given could not set the scale" in text
+    assert "give --electron-temperature" not in text
+
+
+def test_areas_left_out_of_the_model_fit_are_hatched_and_in_the_legend(result):
+    # an area the model fit left out (sharp residual structure) is drawn as its box in volts; a
+    # result without one draws nothing of the kind
+    import matplotlib.pyplot as plt
+    from matplotlib.colors import to_rgb
+
+    from stabtool.fit.refine import Refinement
+    from stabtool.report.plot import LEFT_OUT_COLOUR
+
+    ref = Refinement(ok=True, params={}, errors={}, cov=np.zeros((9, 9)), residual_ratio=1.0, noise=1.0,
+                     step=(1.0, 1.0), width_resolved=False, stride=(1, 1), left_out_px=((0, 24, 10, 34),))
+    fig = plot_result(replace(result, refinement=ref))
+    ax = fig.axes[0]
+    hatched = [c for c in ax.collections if c.get_label() == "left out of the model fit"]
+    assert len(hatched) == 1 and "left out of the model fit" in _labels(ax)[1]
+    (path,) = hatched[0].get_paths()
+    box = path.get_extents()
+    x = 1e3 * result.data[result.data.dims[-1]].values
+    y = 1e3 * result.data[result.data.dims[0]].values
+    assert box.x0 == pytest.approx(min(x[10], x[33])) and box.x1 == pytest.approx(max(x[10], x[33]))
+    assert box.y0 == pytest.approx(min(y[0], y[23])) and box.y1 == pytest.approx(max(y[0], y[23]))
+    assert np.allclose(hatched[0].get_edgecolor()[0][:3], to_rgb(LEFT_OUT_COLOUR))
+    plt.close(fig)
+    fig = plot_result(result)
+    assert not [c for c in fig.axes[0].collections if c.get_label() == "left out of the model fit"]
+    plt.close(fig)

@@ -99,6 +99,8 @@ def _key_numbers(res: Any) -> str:
             rows.append(f"t = {fmt_pm(tc.value_ueV, tc.error_ueV, digits=3)} µeV (gap 2t)")
         elif tc is not None and np.isfinite(tc.upper_limit_ueV):
             rows.append(f"t < {tc.upper_limit_ueV:.3g} µeV (2σ)")
+    elif res.scale.quality.warnings:
+        rows.append("energy scale: n/a (see notes)")
     else:
         rows.append("no energy reference")
     rows.append("quality: " + ("ok" if res.quality.ok else "DOUBTFUL"))
@@ -230,6 +232,29 @@ def _image(ax: Any, x: np.ndarray, y: np.ndarray, z: np.ndarray, lo: float, hi: 
     return im
 
 
+def _left_out_areas(res: Any, ax: Any) -> None:
+    """Hatch the areas left out of the model fit for sharp residual structure (none: nothing drawn)."""
+    boxes = getattr(getattr(res, "refinement", None), "left_out_px", ())
+    if not boxes:
+        return
+    from matplotlib.collections import PatchCollection
+    from matplotlib.patches import Rectangle
+
+    x = 1e3 * np.asarray(res.data[res.data.dims[-1]].values, float)
+    y = 1e3 * np.asarray(res.data[res.data.dims[0]].values, float)
+    rects = []
+    for y0, y1, x0, x1 in boxes:
+        xa, xb = sorted((x[x0], x[min(x1, x.size) - 1]))
+        ya, yb = sorted((y[y0], y[min(y1, y.size) - 1]))
+        rects.append(Rectangle((xa, ya), xb - xa, yb - ya))
+    ax.add_collection(PatchCollection(rects, facecolor="none", edgecolor=LEFT_OUT_COLOUR, hatch="///",
+                                      linewidth=0.8, label="left out of the model fit"), autolim=False)
+
+
+#: Edge and hatch colour of the areas left out of the model fit.
+LEFT_OUT_COLOUR = "#c05000"
+
+
 def _overlays(res: Any, ax: Any, *, n_pixels: int, max_labels: int, texts: _TextPool | None = None) -> None:
     """Everything on top of the map: families, triple points, labels, legend, boxes, axis texts.
 
@@ -265,6 +290,7 @@ def _overlays(res: Any, ax: Any, *, n_pixels: int, max_labels: int, texts: _Text
     if aside:
         ax.add_collection(LineCollection(aside, colors="0.6", linewidths=0.8, linestyles=":", alpha=0.8,
                                          label="set aside"), autolim=False)
+    _left_out_areas(res, ax)
     tp = res.triple_points
     if tp.size:
         ax.add_line(Line2D(1e3 * tp[:, 0], 1e3 * tp[:, 1], marker="o", ms=3.5, mfc="white", mec="k", mew=0.6,

@@ -60,6 +60,10 @@ def summary_text(res: Any) -> str:
         lines.append(
             "charging energies: " + ", ".join(f"{k} {fmt_pm(ec[k], ece[k], unit='meV')}" for k in ("dot1", "dot2", "mutual"))
         )
+    elif res.scale.quality.warnings:
+        # a reference was given but could not set the scale (e.g. lines too sharp for the temperature)
+        lines.append("lever arms, charging energies: n/a (the energy reference given could not set the scale: "
+                     "see the quality notes)")
     else:
         lines.append("lever arms, charging energies: n/a (no energy reference; give --electron-temperature or --lever-arm)")
     tc = getattr(res, "tunnel", None)
