@@ -1222,9 +1222,10 @@ def _without_local_structure(fit_map: xr.DataArray, fit: DiagramFit, states: Cha
     iy, ix = where
     x = fit_map[fit_map.dims[-1]].values
     y = fit_map[fit_map.dims[0]].values
-    return replace(last, left_out_px=tuple(boxes)), (f"the constant-interaction model does not describe the map near ({x[ix]:.4g}, {y[iy]:.4g}) V: "
-                  f"{share_of_points(left_out)} with sharp residual structure were left out of the model fit "
-                  f"(the lattice parameters moved by up to {np.nanmax(shifts):.1f} σ without them)")
+    note = (f"the constant-interaction model does not describe the map near ({x[ix]:.4g}, {y[iy]:.4g}) V: "
+            f"{share_of_points(left_out)} with sharp residual structure were left out of the model fit "
+            f"(the lattice parameters moved by up to {np.nanmax(shifts):.1f} σ without them)")
+    return replace(last, left_out_px=tuple(boxes)), note
 
 
 def _row_corrected_map(da: xr.DataArray, detection: LineDetection | None) -> xr.DataArray:
