@@ -1218,13 +1218,16 @@ def _without_local_structure(fit_map: xr.DataArray, fit: DiagramFit, states: Cha
             break
     else:
         return refinement, ""
-    shifts = [abs(last.params[k] - refinement.params[k]) / last.errors[k] for k in PARAM_NAMES[:6]]
+    with np.errstate(divide="ignore", invalid="ignore"):  # (an error of 0 or NaN: an infinite or NaN shift)
+        shifts = np.abs(np.array([last.params[k] - refinement.params[k] for k in PARAM_NAMES[:6]]) /
+                        np.array([last.errors[k] for k in PARAM_NAMES[:6]], float))
+    moved = f"{np.nanmax(shifts):.1f} σ" if np.any(np.isfinite(shifts)) else "an unknown number of σ"
     iy, ix = where
     x = fit_map[fit_map.dims[-1]].values
     y = fit_map[fit_map.dims[0]].values
     note = (f"the constant-interaction model does not describe the map near ({x[ix]:.4g}, {y[iy]:.4g}) V: "
             f"{share_of_points(left_out)} with sharp residual structure were left out of the model fit "
-            f"(the lattice parameters moved by up to {np.nanmax(shifts):.1f} σ without them)")
+            f"(the lattice parameters moved by up to {moved} without them)")
     return replace(last, left_out_px=tuple(boxes)), note
 
 

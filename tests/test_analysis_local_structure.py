@@ -84,3 +84,46 @@ def test_structure_along_a_whole_line_is_not_left_out():
     assert not res.quality.ok
     assert any("does not describe the map" in w for w in res.quality.warnings)
     assert not any("were left out of the model fit" in w for w in res.quality.warnings)
+
+
+def _refinement(params, errors, structure):
+    from stabtool.fit.refine import Refinement
+
+    return Refinement(ok=not structure.flagged, params=params, errors=errors, cov=np.zeros((9, 9)), residual_ratio=1.0,
+                      noise=1.0, step=(1.0, 1.0), width_resolved=False, stride=(1, 1), converged=True,
+                      structure=structure)
+
+
+def test_the_left_out_area_is_within_the_share_and_a_zero_error_does_not_break_the_note(monkeypatch):
+    # a stub model fit: the first flags three tiles of a 48×48 map, the refit flags none and states a
+    # zero error on one parameter; with half the map as the share the two worst tiles fit (576 + 576
+    # of 2304 pixels), not the third, and the note still reads
+    import xarray as xr
+
+    from stabtool import analysis
+    from stabtool.fit.refine import PARAM_NAMES, StructureTest
+
+    boxes = ((0, 24, 0, 24), (24, 48, 24, 48), (0, 24, 24, 48))
+    flagged = StructureTest(True, 2.0, 9.0, 4.0, (12, 12), 4, 0.5, (1, 1), hits=boxes)
+    clean = StructureTest(False, 0.0, 0.0, 4.0, (0, 0), 4, 0.0, (1, 1))
+    first = _refinement(dict.fromkeys(PARAM_NAMES, 1.0), dict.fromkeys(PARAM_NAMES, 0.1), flagged)
+    seen = []
+
+    def stub(da, fit, **kw):
+        seen.append(np.isnan(da.values))
+        return _refinement({**dict.fromkeys(PARAM_NAMES, 1.0), "M12": 1.2},
+                           {**dict.fromkeys(PARAM_NAMES, 0.1), "M21": 0.0}, clean)
+
+    monkeypatch.setattr("stabtool.fit.refine.refine_model", stub)
+    monkeypatch.setattr(analysis, "LOCAL_STRUCTURE_MAX_SHARE", 0.5)
+    v = np.linspace(0, 1, 48)
+    da = xr.DataArray(np.zeros((48, 48)), coords={"y": v, "x": v}, dims=("y", "x"))
+    ref, note = analysis._without_local_structure(da, None, None, first, width_guess_V=None)
+    assert len(seen) == 1 and seen[0].sum() == 2 * 576
+    assert seen[0][:24, :24].all() and seen[0][24:, 24:].all() and not seen[0][:24, 24:].any()
+    assert ref.left_out_px == boxes[:2]
+    assert "1152 of 2304 points" in note and "2.0 σ" in note
+    # a first fit without sharp structure is returned as it is, without a refit
+    plain = _refinement(dict.fromkeys(PARAM_NAMES, 1.0), dict.fromkeys(PARAM_NAMES, 0.1), clean)
+    assert analysis._without_local_structure(da, None, None, plain, width_guess_V=None) == (plain, "")
+    assert len(seen) == 1
