@@ -1166,6 +1166,46 @@ LOCAL_STRUCTURE_REFIT = True
 LOCAL_STRUCTURE_MAX_SHARE = 0.10
 #: Rounds of :func:`_without_local_structure` (each leaves out the tiles the last fit flagged).
 LOCAL_STRUCTURE_ROUNDS = 3
+#: Rounds of its second try, one tile (the worst the last fit flagged) per round.
+LOCAL_STRUCTURE_SINGLE_ROUNDS = 6
+
+
+def _refit_without_tiles(fit_map: xr.DataArray, fit: DiagramFit, states: ChargeStates, refinement: Any, *,
+                         width_guess_V: float | None, rounds: int, per_round: int | None):
+    """Fits of ``fit_map`` leaving out the tiles each fit flags: ``(fit, boxes, left_out)`` or None.
+
+    Each round sets the flagged tiles (worst first, at most ``per_round`` of
+    them, all within :data:`LOCAL_STRUCTURE_MAX_SHARE` of the map) to NaN and
+    fits again from the last fit; the first fit that converges and flags
+    nothing is returned with the boxes left out and their pixel mask.
+    """
+    from .fit.refine import refine_model
+
+    z = np.array(fit_map.values, float)
+    finite = np.isfinite(z)
+    budget = LOCAL_STRUCTURE_MAX_SHARE * np.count_nonzero(finite)
+    boxes: list[tuple[int, int, int, int]] = []
+    last = refinement
+    for _ in range(rounds):
+        added = 0
+        for box in last.structure.hits:  # (worst first) while within the budget
+            if per_round is not None and added >= per_round:
+                break
+            y0, y1, x0, x1 = box
+            trial = z.copy()
+            trial[y0:y1, x0:x1] = np.nan
+            if np.count_nonzero(finite & ~np.isfinite(trial)) <= budget:
+                z, added = trial, added + 1
+                boxes.append(box)
+        if not added:
+            return None
+        last = refine_model(fit_map.copy(data=z), fit, charge_states=states, width_guess_V=width_guess_V,
+                            start=last)
+        if not last.params or last.structure is None:
+            return None
+        if last.converged and not last.structure.flagged:
+            return last, tuple(boxes), finite & ~np.isfinite(z)
+    return None
 
 
 def _without_local_structure(fit_map: xr.DataArray, fit: DiagramFit, states: ChargeStates, refinement: Any, *,
@@ -1179,56 +1219,39 @@ def _without_local_structure(fit_map: xr.DataArray, fit: DiagramFit, states: Cha
     from the last fit; tiles that fit flags are added, for up to
     :data:`LOCAL_STRUCTURE_ROUNDS` fits. The tiles are taken worst first
     while all of them stay within :data:`LOCAL_STRUCTURE_MAX_SHARE` of the
-    map (a strong defect pulls the whole first fit, which then flags tiles
-    far from it too). The structure counts as
+    map. A strong defect pulls the whole first fit, which then flags tiles
+    far from it too and fills the share; so when that fails, the same is
+    tried with only the worst flagged tile per fit, for up to
+    :data:`LOCAL_STRUCTURE_SINGLE_ROUNDS` fits. The structure counts as
     local when a fit converges and leaves no sharp structure on the rest
     of the map: that fit is returned, with a note naming the area and how
     far the lattice parameters (M12, M21, ΔV1, ΔV2, δ1, δ1/δ2) moved, in
     standard errors, when it was left out (a defect pulls the fit that
     includes it). Otherwise the first fit and an empty note.
     """
-    from .fit.refine import PARAM_NAMES, refine_model
+    from .fit.refine import PARAM_NAMES
 
     st = refinement.structure
     if st is None or not st.flagged or not st.hits or not refinement.params:
         return refinement, ""
-    z = np.array(fit_map.values, float)
-    finite = np.isfinite(z)
-    where = st.where
-    last = refinement
-    budget = LOCAL_STRUCTURE_MAX_SHARE * np.count_nonzero(finite)
-    boxes: list[tuple[int, int, int, int]] = []
-    for _ in range(LOCAL_STRUCTURE_ROUNDS):
-        added = False
-        for box in last.structure.hits:  # (worst first) while within the budget
-            y0, y1, x0, x1 = box
-            trial = z.copy()
-            trial[y0:y1, x0:x1] = np.nan
-            if np.count_nonzero(finite & ~np.isfinite(trial)) <= budget:
-                z, added = trial, True
-                boxes.append(box)
-        if not added:
-            return refinement, ""
-        left_out = finite & ~np.isfinite(z)
-        last = refine_model(fit_map.copy(data=z), fit, charge_states=states, width_guess_V=width_guess_V,
-                            start=last)
-        if not last.params or last.structure is None:
-            return refinement, ""
-        if last.converged and not last.structure.flagged:
-            break
-    else:
+    found = (_refit_without_tiles(fit_map, fit, states, refinement, width_guess_V=width_guess_V,
+                                  rounds=LOCAL_STRUCTURE_ROUNDS, per_round=None)
+             or _refit_without_tiles(fit_map, fit, states, refinement, width_guess_V=width_guess_V,
+                                     rounds=LOCAL_STRUCTURE_SINGLE_ROUNDS, per_round=1))
+    if found is None:
         return refinement, ""
+    last, boxes, left_out = found
     with np.errstate(divide="ignore", invalid="ignore"):  # (an error of 0 or NaN: an infinite or NaN shift)
         shifts = np.abs(np.array([last.params[k] - refinement.params[k] for k in PARAM_NAMES[:6]]) /
                         np.array([last.errors[k] for k in PARAM_NAMES[:6]], float))
     moved = f"{np.nanmax(shifts):.1f} σ" if np.any(np.isfinite(shifts)) else "an unknown number of σ"
-    iy, ix = where
+    iy, ix = st.where
     x = fit_map[fit_map.dims[-1]].values
     y = fit_map[fit_map.dims[0]].values
     note = (f"the constant-interaction model does not describe the map near ({x[ix]:.4g}, {y[iy]:.4g}) V: "
             f"{share_of_points(left_out)} with sharp residual structure were left out of the model fit "
             f"(the lattice parameters moved by up to {moved} without them)")
-    return replace(last, left_out_px=tuple(boxes)), note
+    return replace(last, left_out_px=boxes), note
 
 
 def _row_corrected_map(da: xr.DataArray, detection: LineDetection | None) -> xr.DataArray:

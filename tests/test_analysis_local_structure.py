@@ -65,6 +65,22 @@ def test_a_local_defect_is_left_out_of_the_model_fit():
 
 
 @pytest.mark.regression
+def test_a_strong_defect_is_left_out_one_tile_at_a_time():
+    # a spot of 0.6 of the signal range pulls the first fit so far that 16 tiles flag, and the
+    # worst ones that fit in the share do not cover the spot; left out one flagged tile per fit,
+    # the spot's tiles go and the fit is within 0.001 of the truth (with 0.2: see above)
+    da, truth = _sensor_map(4)
+    res = _analyse(_with_spot(da, amplitude=0.6))
+    j = res.to_json()
+    assert any("were left out of the model fit" in w for w in res.quality.warnings), res.quality.warnings
+    assert j["quality"]["ok"], res.quality.warnings
+    dm = np.abs(np.array(j["virtual_gate_matrix"]) - np.array(truth["virtual_gate_matrix"]))
+    assert dm.max() <= 0.001
+    # the boxes left out hold the spot's centre
+    assert any(y0 <= 20 < y1 and x0 <= 115 < x1 for y0, y1, x0, x1 in res.refinement.left_out_px)
+
+
+@pytest.mark.regression
 def test_without_the_refit_the_same_defect_keeps_the_map_doubtful(monkeypatch):
     from stabtool import analysis
 
