@@ -605,3 +605,36 @@ def test_a_weak_quarter_of_the_steps_is_a_note_not_a_doubt():
     assert float(err.max()) <= 0.02  # the bound below SNR 10
     cdg = np.array(j["gate_capacitance_aF"], float)
     assert np.all(np.abs(cdg / np.array(pm.truth["gate_capacitance_aF"], float) - 1) <= 0.02)
+
+
+def test_a_step_larger_than_the_whole_signal_range_is_not_physical():
+    # both levels of a charge step are seen in the map, so no step can exceed the signal's span
+    # (common practice, no source): a two-level map 0 → 1 with noise 0.02 holds a step of 1, not of 74
+    from stabtool.fit.refine import steps_beyond_signal_range
+
+    rng = np.random.default_rng(0)
+    values = np.r_[np.zeros(500), np.ones(500)] + rng.normal(0, 0.02, 1000)
+    assert steps_beyond_signal_range(np.array([1.0, 0.6]), values) is None
+    assert steps_beyond_signal_range(np.array([np.nan, np.nan]), values) is None
+    msg = steps_beyond_signal_range(np.array([29.7, 74.2]), values)
+    assert msg is not None and "74.2" in msg and "exceed the whole signal range" in msg
+
+
+@pytest.mark.regression
+def test_a_model_fit_with_unphysical_sensor_levels_is_not_adopted():
+    # held-out probe map read by a sensor with several Coulomb peaks across it (scripts/probe_heldout.py
+    # --sensors comb, seed 12, SNR 20): the model fit's levels ran apart to steps 80× the map's range
+    # (its "SNR" read 8970) and the fit counted as sound; the line-based numbers are reported instead
+    from _probe import make_map
+
+    from stabtool.analysis import Analyzer
+
+    pm = make_map(12, sensors=("comb",))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        res = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data)
+    assert res.refinement is not None and not res.refinement.ok
+    assert any("exceed the whole signal range" in w for w in res.quality.warnings)
+    assert not res.quality.ok
+    # the SNR quoted by the verdicts is no longer the unphysical fit's
+    assert not any("SNR 8970" in w for w in res.quality.warnings)

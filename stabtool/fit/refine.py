@@ -187,6 +187,14 @@ WEAK_QUARTILE_SNR = 2.0
 #: probe map (typical step 2.8 σ, a Cdg element 2.4 % off at a stated 0.8 %) was reported ok.
 #: See DEVELOPERS.md, "Seventeenth session".
 WEAK_QUARTER_DOUBTFUL = False
+#: A model fit whose typical charge step (either dot's median step size on its lines) exceeds this
+#: share of the fitted pixels' signal span (0.5th to 99.5th percentile) has sensor levels that the
+#: data do not hold: two neighbouring states' levels are both seen in the map, so a step between
+#: them cannot be larger than its whole range. It happens when broad thermal mixing lets two state
+#: levels run far apart with opposite signs (a sensor with several Coulomb peaks across the map).
+#: Held-out probe: 0.003–0.3 on ordinary maps; 1.5–79 on ten maps whose refined "SNR" read
+#: 140–9000 at a generator SNR of 4–60, all with numbers beyond the fitter bounds.
+MAX_STEP_SPAN_RATIO = 1.0
 #: Largest difference lag (pixels) of the structure test.
 MAX_LAG_PX = 8
 #: Pixels within this many Fermi widths (or pixels, whichever is larger) of a transition are fitted.
@@ -1586,6 +1594,9 @@ def refine_model(
             f"(SNR {step_min / sig:.1f}; a peak-shaped sensor near its maximum)",
             doubtful=WEAK_QUARTER_DOUBTFUL)
     weak = weak_typical or weak_quarter
+    oversized = steps_beyond_signal_range(st_[:, 1], pz)
+    if oversized:
+        q = q.with_warning(oversized)
     return Refinement(ok=q.ok and converged and not weak, params=params, errors=errors,
                       cov=cov, residual_ratio=ratio,
                       noise=noise, step=(g1, g2), width_resolved=width_resolved, stride=(sy, sx), n_min=n_min,
@@ -1593,6 +1604,35 @@ def refine_model(
                       structure=structure,
                       curvature=({**curvature.to_json(), "response": response} if curvature is not None else None),
                       model=full, weak_steps=weak, tunnel_score=score)
+
+
+def steps_beyond_signal_range(typical_steps: np.ndarray, values: np.ndarray) -> str | None:
+    """The warning when a model fit's typical charge step is larger than the data's whole range, else None.
+
+    Parameters
+    ----------
+    typical_steps : ndarray
+        Median step size of each dot on its lines, in signal units (NaN: not measured).
+    values : ndarray
+        The signal values the model was fitted to.
+
+    Notes
+    -----
+    Both levels of a step are seen in the map, so a real step cannot exceed the
+    span of the signal (0.5th to 99.5th percentile); a larger one comes from
+    sensor levels the data do not hold (see :data:`MAX_STEP_SPAN_RATIO`).
+    """
+    v = np.asarray(values, float)
+    v = v[np.isfinite(v)]
+    steps = np.asarray(typical_steps, float)
+    if v.size == 0 or not np.any(np.isfinite(steps)):
+        return None
+    span = float(np.percentile(v, 99.5) - np.percentile(v, 0.5))
+    big = float(np.nanmax(steps))
+    if not big > MAX_STEP_SPAN_RATIO * span:
+        return None
+    return (f"the model fit's charge steps ({big:.3g}) exceed the whole signal range of the map ({span:.3g}): "
+            "its sensor levels are not physical, the fit does not describe the map")
 
 
 def _hedged_response(theta_mean: np.ndarray, cov: np.ndarray, theta_states: np.ndarray, delta_chi2: float,
