@@ -44,9 +44,11 @@ def _id(case):
 #: Cases that miss the fitter bounds today (reported doubtful, so not silent).
 #: Strict: when one starts passing, the marker must go.
 KNOWN_OUT_OF_BOUNDS = {
-    3: "1/f row offsets with weak dot2 steps: broken dot2 segments with failed width fits (VG error ≈ 0.2)",
+    3: "1/f row offsets with weak dot2 steps on a hot map (1.03 K, t = 0): broken dot2 segments (slopes scatter "
+    "by 47 %), and a model fit with an interdot tunnel coupling of 115 ± 15 µeV is adopted: M21 0.019 off "
+    "(stated 0.020), Cdg 5.5 % off",
     4: "SNR 3 with broad lines: the scale-selected edge map finds the dot2 lines, but slopes of single "
-    "15–25 px segments are 10–60 % off (dot2 family ≈ 30 %): no two dot1 lines bound a band, no virtual-gate result",
+    "15–25 px segments are 10–60 % off (dot2 family ≈ 30 %): no two dot2 lines bound a band, no virtual-gate result",
 }
 
 

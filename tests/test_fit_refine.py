@@ -120,7 +120,7 @@ def test_change_points_on_a_flat_background_are_the_mean_shift_ones():
 
 
 def test_relocation_on_a_curved_sensor_background_recovers_the_slope(monkeypatch):
-    import stabtool.fit.relocate as relocate
+    from stabtool.fit import relocate
     from stabtool.fit.relocate import relocate_family
 
     # the three parallel steps of test_relocation_recovers_a_common_slope under a sensor response
