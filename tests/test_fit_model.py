@@ -128,7 +128,6 @@ def test_error_checks_are_those_of_error_verdict():
     from dataclasses import replace as _replace
 
     from stabtool.fit.model import MAX_CDG_REL_ERROR
-
     from stabtool.fit.uncertainty import error_verdict
 
     t = truth_from_capacitances(**WORKED)
@@ -141,6 +140,27 @@ def test_error_checks_are_those_of_error_verdict():
     worse = _replace(fit, cdg_aF_error=cdg_err)
     msgs = [w for w in error_verdict(worse).warnings if w.startswith("gate capacitances uncertain")]
     assert msgs and f"{100 * (MAX_CDG_REL_ERROR + 3.7e-4):.2f} %" in msgs[0]
+
+
+def test_a_significantly_negative_gate_capacitance_makes_the_fit_doubtful():
+    # a gate's capacitance to a dot is positive (constant-interaction model, van der Wiel et al.,
+    # RMP 75, 1 (2003)): an element below −3 stated σ means a mislabelled lattice; one within its
+    # errors of zero (a weak cross-coupling) is not flagged
+    from dataclasses import replace as _replace
+
+    from stabtool.fit.uncertainty import error_verdict
+
+    t = truth_from_capacitances(**WORKED)
+    fit = fit_diagram(honeycomb_detection(t, x=AXIS, y=AXIS, offset_V=(0.01, 0.012), slope_noise=0.01,
+                                         pos_noise_V=1e-4, rng=3))
+    assert fit.ok and not any("is negative" in w for w in fit.quality.warnings)
+    cdg, err = fit.cdg_aF.copy(), fit.cdg_aF_error.copy()
+    cdg[1, 0], err[1, 0] = -1.39, 0.017
+    q = error_verdict(_replace(fit, cdg_aF=cdg, cdg_aF_error=err))
+    neg = [w for w in q.warnings if "is negative" in w]
+    assert len(neg) == 1 and neg[0].startswith("gate capacitance Cdg21 (dot 2, the x gate) = -1.39") and not q.ok
+    cdg[1, 0], err[1, 0] = -0.02, 0.017  # within its errors of zero
+    assert not any("is negative" in w for w in error_verdict(_replace(fit, cdg_aF=cdg, cdg_aF_error=err)).warnings)
 
 
 @pytest.mark.parametrize("size", [1, 2, 3, 8, 11, 40])

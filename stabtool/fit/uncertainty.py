@@ -72,6 +72,7 @@ def propagate(
 #: (re-evaluated by :func:`error_verdict` whenever the errors change).
 _ERROR_WARNING_PREFIXES = (
     "gate capacitances uncertain",
+    "gate capacitance Cdg",
     "virtual-gate matrix uncertain",
     "dot1 addition voltage uncertain",
     "dot2 addition voltage uncertain",
@@ -92,6 +93,32 @@ def relative_cdg_errors(fit: Any) -> np.ndarray:
     cdg, err = np.asarray(fit.cdg_aF, float), np.asarray(fit.cdg_aF_error, float)
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.abs(err / np.where(cdg != 0, np.abs(cdg), np.nan))
+
+
+#: A gate capacitance below ``−NEGATIVE_CDG_SIGMAS`` stated errors is reported as unphysical.
+NEGATIVE_CDG_SIGMAS = 3.0
+
+
+def negative_capacitances(cdg_aF: np.ndarray, cdg_err_aF: np.ndarray) -> list[str]:
+    """One warning for every gate capacitance significantly below zero.
+
+    A gate's capacitance to a dot is positive (the constant-interaction model,
+    van der Wiel et al., Rev. Mod. Phys. 75, 1 (2003)); a diagram that gives
+    ``Cdg_ij < −3σ`` has its charge lattice mislabelled (seen on held-out maps:
+    a mutual shift taken as half the addition voltage, strongly coupled dots
+    labelled with the wrong cell; 12 of 579 probe maps with a Cdg, every one
+    of them 150–700 % off on some element).
+    """
+    cdg, err = np.asarray(cdg_aF, float), np.asarray(cdg_err_aF, float)
+    out = []
+    for (i, j), v in np.ndenumerate(cdg):
+        e = err[i, j]
+        if np.isfinite(v) and np.isfinite(e) and v < -NEGATIVE_CDG_SIGMAS * e:
+            gate = f"the {('x', 'y')[j]} gate" if j < 2 else f"gate {j + 1}"
+            out.append(f"gate capacitance Cdg{i + 1}{j + 1} (dot {i + 1}, {gate}) = {v:.3g} ± {e:.2g} aF is "
+                       "negative (a gate's capacitance to a dot is positive): the charge lattice is probably "
+                       "mislabelled")
+    return out
 
 
 def error_verdict(fit: Any) -> Any:
@@ -128,6 +155,8 @@ def error_verdict(fit: Any) -> Any:
             f"gate capacitances uncertain (up to {_pct(worst, MAX_CDG_REL_ERROR)} % on an element; "
             f"ok needs ≤ {100 * MAX_CDG_REL_ERROR:g} % on every element)"
         )
+    for msg in negative_capacitances(fit.cdg_aF, fit.cdg_aF_error):
+        q = q.with_warning(msg)
     vg = float(np.nanmax(fit.vg_matrix_error))
     if not vg <= MAX_VG_ERROR:
         q = q.with_warning(f"virtual-gate matrix uncertain (error up to {vg:.4f}; ok needs ≤ {MAX_VG_ERROR:g})")
