@@ -5,7 +5,6 @@ known σ; the step of each line is then known in units of σ, so the verdicts
 follow from the rule's own constants.
 """
 
-import warnings
 
 import numpy as np
 import pytest
@@ -77,14 +76,10 @@ def test_a_map_whose_sensor_fades_across_it_gets_its_cell():
     # With the fraction rule alone no two dot1 lines bound one band and the map had no cell; the
     # lines kept as clear on their own give the truth's addition voltages (constant-interaction
     # model, van der Wiel et al., RMP 75, 1 (2003)) within 0.5 % and Cdg within the 2 % bound
-    from _probe import make_map
-
-    from stabtool.analysis import Analyzer
+    from _probe import analysed, make_map
 
     pm = make_map(55)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        j = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data).to_json()
+    j = analysed(pm).to_json()
     assert any("sensitivity varies over the map" in w for w in j["quality"]["warnings"])
     t = pm.truth
     for dot in ("dot1", "dot2"):

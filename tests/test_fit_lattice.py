@@ -249,16 +249,10 @@ def test_a_peak_shaped_sensor_blind_to_most_of_the_map_keeps_the_true_cell():
     # elsewhere are cut short and the band steps' δ came out at −0.41 ΔV. The lattice taken then was
     # a sub-lattice (ΔV1 3.35 mV for 13.38, Cdg 300 % off), and on the re-measured lines one with
     # δ1 = ΔV1/2 (Cdg12 negative, stated to 1 %).
-    import warnings
-
-    from _probe import make_map
-
-    from stabtool.analysis import Analyzer
+    from _probe import analysed, make_map
 
     pm = make_map(29)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        j = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data).to_json()
+    j = analysed(pm).to_json()
     t = pm.truth
     for dot in ("dot1", "dot2"):
         assert j["addition_voltages_V"][dot] == pytest.approx(t["addition_voltages_V"][dot], rel=0.01)

@@ -625,14 +625,9 @@ def test_a_model_fit_with_unphysical_sensor_levels_is_not_adopted():
     # held-out probe map read by a sensor with several Coulomb peaks across it (scripts/probe_heldout.py
     # --sensors comb, seed 12, SNR 20): the model fit's levels ran apart to steps 80× the map's range
     # (its "SNR" read 8970) and the fit counted as sound; the line-based numbers are reported instead
-    from _probe import make_map
+    from _probe import analysed, make_map
 
-    from stabtool.analysis import Analyzer
-
-    pm = make_map(12, sensors=("comb",))
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        res = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data)
+    res = analysed(make_map(12, sensors=("comb",)))
     assert res.refinement is not None and not res.refinement.ok
     assert any("exceed the whole signal range" in w for w in res.quality.warnings)
     assert not res.quality.ok
