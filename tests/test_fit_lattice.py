@@ -246,7 +246,7 @@ def test_a_negative_mutual_shift_from_the_band_steps_starts_at_zero():
 def test_a_peak_shaped_sensor_blind_to_most_of_the_map_keeps_the_true_cell():
     # held-out probe map (scripts/probe_heldout.py seed 29: Lorentzian sensor near its top, SNR 60,
     # weakly coupled dots, δ ≈ 0.004 ΔV): only a corner of the map shows strong steps, the segments
-    # elsewhere are cut short and the band steps' δ came out at −0.41 ΔV. The lattice taken then was
+    # elsewhere are cut short and the band steps' δ1 came out at −0.46 ΔV1. The lattice taken then was
     # a sub-lattice (ΔV1 3.35 mV for 13.38, Cdg 300 % off), and on the re-measured lines one with
     # δ1 = ΔV1/2 (Cdg12 negative, stated to 1 %).
     from _probe import analysed, make_map

@@ -590,13 +590,13 @@ def _physical_start(a: np.ndarray, b: np.ndarray) -> list[tuple[np.ndarray, np.n
 
     ``a = (ΔV1, δ2)``, ``b = (ΔV2, δ1)`` as in :func:`fit_lattice`. The
     constant-interaction model has ``δ_i/ΔV_i = E_Cm/E_Ci ≥ 0`` (van der Wiel
-    et al., Rev. Mod. Phys. 75, 1 (2003), Eq. 3). A band step's δ comes from
+    et al., Rev. Mod. Phys. 75, 1 (2003)). A band step's δ comes from
     the midpoints of the segments' extents; where a sensor is blind to part of
     a band (a peak-shaped sensor near its top) the segments are cut short and
     that δ can come out far below zero, so the labels of the first cell slip
     and only a finer sub-lattice (which predicts lines that are not there)
     explains the lines. Held-out probe seed 29 (Lorentzian sensor, SNR 60,
-    true δ ≈ 0.01 ΔV): δ2 started at −0.41 ΔV1, the lattice taken had a cell
+    true δ ≈ 0.004 ΔV): δ1 started at −0.46 ΔV1 (δ2 at −0.12 ΔV2), the lattice taken had a cell
     8× too small (ΔV1 3.35 mV for 13.4, Cdg 300 % off); in a second pass on
     the re-measured lines both δ started near −0.45 ΔV and the first cell was
     consistent with δ1 = 0.497 ΔV1 (true 0.004): Cdg12 came out negative.
