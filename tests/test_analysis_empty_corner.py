@@ -11,7 +11,7 @@ import warnings
 
 import numpy as np
 import pytest
-from _probe import make_map
+from _probe import analysed, make_map
 
 from stabtool.analysis import Analyzer
 from stabtool.physics.constants import E_AC
@@ -97,9 +97,7 @@ def test_only_interdot_segments_along_a_pair_of_triple_points_count_as_interdot(
 
 def _claimed_labels_off_the_ground_state(pm) -> list:
     """Regions whose occupation, claimed absolute for a dot, is not the ground state at the region's centroid."""
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        res = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data)
+    res = analysed(pm)
     cs = res.to_json()["charge_states"]
     dev = pm.truth["device"]
     cdg, inv = np.asarray(dev["cdg_aF"], float), np.linalg.inv(np.asarray(dev["cdd_aF"], float))
@@ -156,9 +154,7 @@ def test_an_empty_corner_map_whose_two_mutual_shifts_disagree_is_not_ok():
     # under the correlation their mean assumes; the mean (2.33 mV) was reported ok with a gate
     # capacitance 3.5 % off at a stated 0.9 %. An ok map keeps Cdg within the 2 % bound.
     pm = make_map(16, start_e=(-3.0, -2.2))
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        res = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data)
+    res = analysed(pm)
     cdg = np.asarray(res.to_json()["gate_capacitance_aF"], float)
     worst = float(np.max(np.abs(cdg / np.asarray(pm.truth["gate_capacitance_aF"], float) - 1)))
     assert not res.quality.ok or worst <= 0.02, f"ok with Cdg {100 * worst:.1f} % off"

@@ -184,12 +184,10 @@ def test_tunnel_coupled_map_is_not_ok_beyond_the_clean_bound(preset, t_ueV):
 def test_a_detuning_cut_sampled_in_descending_order_does_not_break_the_analysis():
     # held-out probe map (scripts/probe_heldout.py seed 40, 40–90 px maps: 47×59, sech² sensor, SNR 8):
     # its interdot cut ran against the detuning axis and the polarisation fit raised out of the analysis
-    from _probe import make_map
+    from _probe import analysed, make_map
 
     pm = make_map(40, size=(40, 90))
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        j = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data).to_json()
+    j = analysed(pm).to_json()
     assert j["quality"]["ok"] is False  # (a 47×59 map with a line labelling that failed)
     assert "tunnel_coupling_ueV" in j
 
@@ -200,12 +198,10 @@ def test_tunnel_coupled_model_fit_is_not_left_in_a_local_minimum():
     # that averages over the charge states, SNR 60): started at t = w1 only, the coupled model fit
     # stopped at t ≈ 1.3 w1 with δ1 13 % high and reported ok with M12 0.0088 off (stated 0.0020);
     # started also at 2 and 4 w1 it keeps the fit of least residual (M12 0.0019 off)
-    from _probe import make_map
+    from _probe import analysed, make_map
 
     pm = make_map(4, tunnel_coupling_ueV=25.0, response="states")
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        j = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data).to_json()
+    j = analysed(pm).to_json()
     err = np.abs(np.array(j["virtual_gate_matrix"], float) - np.array(pm.truth["virtual_gate_matrix"], float))
     assert any("interdot tunnel coupling t/(e α11)" in w for w in j["quality"]["warnings"])
     assert float(err.max()) <= 0.005, err

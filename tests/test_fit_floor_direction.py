@@ -8,8 +8,6 @@ one) needs the larger floor in M that a small one does not.
 
 from __future__ import annotations
 
-import warnings
-
 import numpy as np
 import pytest
 
@@ -37,14 +35,10 @@ def test_strongly_cross_coupled_map_states_an_m_error_that_covers_the_truth():
     # operating point biases the refined M12 by ≈ −0.005 while its sandwich error is ≈ 0.0005.
     # The reported M must hold the truth within 3 stated σ (it does not yet satisfy the 2σ clean-map
     # rule: the map is still ok with |ΔM12| = 0.0051 against the 0.005 bound, 2.7 stated σ)
-    from _probe import make_map
-
-    from stabtool.analysis import Analyzer
+    from _probe import analysed, make_map
 
     pm = make_map(38, mutual_fraction=(0.25, 0.45))
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        res = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data)
+    res = analysed(pm)
     m, e = res.diagram.vg_matrix, res.diagram.vg_matrix_error
     mt = np.array(pm.truth["virtual_gate_matrix"])
     assert mt[0, 1] > 1.5  # the case this guards: a strongly cross-coupled dot1

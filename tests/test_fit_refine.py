@@ -589,14 +589,10 @@ def test_a_weak_quarter_of_the_steps_is_a_note_not_a_doubt():
     # held-out probe map (scripts/probe_heldout.py seed 40: sech² sensor, pink noise, SNR 8): a
     # quarter of the steps are below 2 σ (the sensor's peak sits in the map), the numbers are
     # within the fitter bounds; the weak quarter is said but leaves the verdict to the error rules
-    from _probe import make_map
-
-    from stabtool.analysis import Analyzer
+    from _probe import analysed, make_map
 
     pm = make_map(40)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        res = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data)
+    res = analysed(pm)
     j = res.to_json()
     first, flags = res.quality.doubts_first_flagged()
     weak = [f for w, f in zip(first, flags) if w.startswith("charge steps are weak: a quarter")]

@@ -157,14 +157,10 @@ def test_an_undone_low_pass_states_the_lever_arm_error_it_may_leave():
     # (1.50 ± 0.13 points, rows left 0.43 px apart) is undone and the dot1 width comes out 4.4 %
     # narrow, the temperature lever arms 4.8–5.2 % high, at a stated 0.45–2.9 %. With the
     # variance the undone filter may leave, the stated error covers the truth within 2σ.
-    from _probe import make_map
-
-    from stabtool.analysis import Analyzer
+    from _probe import analysed, make_map
 
     pm = make_map(37, noise=("lag",))
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        res = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data)
+    res = analysed(pm)
     j = res.to_json()
     if j["lever_arm"] is None:
         return  # withheld: nothing claimed

@@ -8,8 +8,6 @@ IEEE Trans. Inf. Theory 20, 591 (1974)).
 
 from __future__ import annotations
 
-import warnings
-
 import numpy as np
 import pytest
 from _readout import charge_step
@@ -62,14 +60,10 @@ def test_analysis_removes_the_row_tone_and_keeps_the_virtual_gates():
     # held-out probe map with mains pickup on rows started at random moments (probe --noise rowhum,
     # seed 33, SNR 20): removed row by row, the virtual gates within the clean-map bound 0.005
     # (measured 0.0009 off, and ok); before, the map was doubtful and 0.18 off
-    from _probe import make_map
-
-    from stabtool.analysis import Analyzer
+    from _probe import analysed, make_map
 
     pm = make_map(33, noise=("rowhum",))
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        j = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data).to_json()
+    j = analysed(pm).to_json()
     assert any(w.startswith("periodic pickup removed row by row") for w in j["quality"]["warnings"])
     m, mt = np.array(j["virtual_gate_matrix"]), np.array(pm.truth["virtual_gate_matrix"])
     assert np.max(np.abs(m - mt)) <= 0.005

@@ -114,16 +114,11 @@ def test_lag_smeared_lines_give_no_temperature_lever_arm():
     # with the rows only aligned, the smear broadened the dot1 lines to 9× their thermal width and
     # the temperature gave α11 = 0.031 against a true 0.28 with a stated 8.5 %. With the low-pass
     # undone the lines are resolution-limited (0.6 px FWHM, measured), as the truth's are: no lever arm.
-    import warnings
 
-    from _probe import make_map
-
-    from stabtool.analysis import Analyzer
+    from _probe import analysed, make_map
 
     pm = make_map(10, noise=("lag",))
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        j = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data).to_json()
+    j = analysed(pm).to_json()
     assert j["lever_arm"] is None
     ws = j["quality"]["warnings"]
     assert any(w.startswith("read-out low-pass") for w in ws)

@@ -8,8 +8,6 @@ dimensions; amplitude and phase follow by linear least squares.
 
 from __future__ import annotations
 
-import warnings
-
 import numpy as np
 import pytest
 from _readout import charge_step, staircase
@@ -78,14 +76,10 @@ def test_analysis_removes_stripes_and_keeps_the_virtual_gates():
     # 33, SNR 20): found and removed, the virtual gates within the clean-map bound 0.005 (measured
     # 0.0001 off, and the map is ok); before the plane-wave search it was doubtful (the model fit
     # did not describe the map) and 0.0009 off
-    from _probe import make_map
-
-    from stabtool.analysis import Analyzer
+    from _probe import analysed, make_map
 
     pm = make_map(33, noise=("stripes",))
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        j = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data).to_json()
+    j = analysed(pm).to_json()
     assert any(w.startswith("periodic pickup removed (straight stripes") for w in j["quality"]["warnings"])
     m, mt = np.array(j["virtual_gate_matrix"]), np.array(pm.truth["virtual_gate_matrix"])
     assert np.max(np.abs(m - mt)) <= 0.005
