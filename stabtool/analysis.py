@@ -431,6 +431,28 @@ class AnalysisResult:
         out.flags.writeable = False
         return out
 
+    @functools.cached_property
+    def lines_used(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Per detected line of dot1, dot2 and interdot: does the result rest on it (not set aside)?
+
+        Dot lines are set aside when the lattice fit left them out
+        (``diagram.line_groups`` −1); interdot segments when they join no
+        predicted pair of triple points (:attr:`interdot_on_pairs`). Without a
+        lattice every dot line counts.
+        """
+        d = self.diagram
+        used = []
+        for i_fam, lines in enumerate((d.lines1, d.lines2)):
+            k = len(lines)
+            groups = np.asarray(d.line_groups[i_fam]) if d.lattice is not None else None
+            use = np.ones(k, bool)
+            if groups is not None:
+                use[: min(k, groups.size)] = groups[:k] >= 0
+            used.append(use)
+        on_pairs = np.asarray(self.interdot_on_pairs, bool)
+        used.append(on_pairs.copy() if on_pairs.size == len(d.interdot) else np.ones(len(d.interdot), bool))
+        return used[0], used[1], used[2]
+
     # ------------------------------------------------------------------ output
     def to_json(self) -> dict:
         """The JSON object of ``stabtool analyze --json`` (NaN → null)."""

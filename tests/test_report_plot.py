@@ -290,6 +290,27 @@ def test_the_text_summary_lists_the_doubts_first_and_marks_them(result):
     assert tail[0].startswith("quality: DOUBTFUL") and tail[1:] == ["  ! the doubt", "  · a note"]
 
 
+def test_the_text_summary_counts_the_lines_set_aside_as_the_figure_does(result):
+    # the count line names the detected lines and how many the result does not rest on: dot lines the
+    # lattice left out, interdot segments on no pair of triple points (the figure draws those dotted)
+    from stabtool.report.text import summary_text
+
+    d = result.diagram
+    aside = [int(np.sum(d.line_groups[i] < 0)) for i in range(2)]
+    aside.append(int(np.sum(~np.asarray(result.interdot_on_pairs))))
+    counts = next(t for t in summary_text(result).splitlines() if t.startswith("lines: "))
+    for fam, lines, n_aside in zip(("dot1", "dot2", "interdot"), (d.lines1, d.lines2, d.interdot), aside):
+        assert f"{fam} {len(lines)}" + (f" ({n_aside} set aside)" if n_aside else "") in counts
+    # and one that leaves nothing aside says nothing of the kind
+    kept = replace(result, diagram=replace(d, line_groups=(np.zeros(len(d.lines1), int), np.zeros(len(d.lines2), int)),
+                                           interdot=[]))
+    assert "set aside" not in next(t for t in summary_text(kept).splitlines() if t.startswith("lines: "))
+    _fig, ax, cax = _fixed_layout_figure(PLOT_DPI)
+    _draw(result, ax, cax=cax)
+    _, legend = _labels(ax)
+    assert f"dot1 ({len(d.lines1) - aside[0]})" in legend
+
+
 def test_every_output_of_a_matrix_carries_the_caution(result, tmp_path, capsys):
     # virtual gates go to real devices: the text, the JSON of analyze and its saved file say so
     from stabtool.cli.main import main

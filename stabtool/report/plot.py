@@ -269,17 +269,15 @@ def _overlays(res: Any, ax: Any, *, n_pixels: int, max_labels: int, texts: _Text
     da = res.data
     d = res.diagram
     aside: list[np.ndarray] = []
-    # interdot segments that join no predicted pair of triple points are shown set aside
-    on_pairs = np.asarray(getattr(res, "interdot_on_pairs", np.ones(len(d.interdot), bool)), bool)
+    # lines the result does not rest on are shown set aside (AnalysisResult.lines_used)
+    used_by_family = res.lines_used if hasattr(res, "lines_used") else None
     for i_fam, (fam, lines) in enumerate((("dot1", d.lines1), ("dot2", d.lines2), ("interdot", d.interdot))):
-        groups = d.line_groups[i_fam] if i_fam < 2 and d.lattice is not None else None
-        if i_fam == 2 and on_pairs.size == len(lines):
-            groups = np.where(on_pairs, 0, -1)
-        n_used = int(np.sum(groups >= 0)) if groups is not None else len(lines)
+        used = used_by_family[i_fam] if used_by_family is not None else np.ones(len(lines), bool)
+        n_used = int(np.sum(used))
         segs = []
         for k, ln in enumerate(lines):
             seg = 1e3 * np.array([ln.start, ln.end], float)
-            if groups is not None and k < groups.size and groups[k] < 0:
+            if k < used.size and not used[k]:
                 aside.append(seg)
             else:
                 segs.append(seg)

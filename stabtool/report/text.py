@@ -21,12 +21,19 @@ def fmt_pm(value: float | None, error: float | None, *, scale: float = 1.0, unit
     return f"{v:.{digits}g} ± {error * scale:.2g}{(' ' + unit) if unit else ''}"
 
 
+def _line_count(family: str, used: np.ndarray) -> str:
+    """``"dot1 21 (1 set aside)"``: the detected lines of a family and how many the result does not use."""
+    aside = int(np.size(used) - np.count_nonzero(used))
+    return f"{family} {np.size(used)}" + (f" ({aside} set aside)" if aside else "")
+
+
 def summary_text(res: Any) -> str:
     """Multi-line summary of an :class:`~stabtool.analysis.AnalysisResult`."""
     j = res.to_json()
     d = res.diagram
     lines = [f"map: {res.data.attrs.get('source', res.data.name or 'map')}  (x = {res.x_gate}, y = {res.y_gate})"]
-    lines.append(f"lines: dot1 {len(d.lines1)}, dot2 {len(d.lines2)}, interdot {len(d.interdot)}")
+    lines.append("lines: " + ", ".join(_line_count(fam, used) for fam, used in zip(("dot1", "dot2", "interdot"),
+                                                                             res.lines_used)))
     for fam in ("dot1", "dot2", "interdot"):
         lines.append(f"  slope {fam:8s} {fmt_pm(d.slopes[fam], d.slope_errors[fam])}")
     m, me = d.vg_matrix, d.vg_matrix_error
