@@ -1694,7 +1694,8 @@ class Analyzer:
                 allow = (refinement.converged and not adoption.disagreed and not refinement.weak_steps
                          and not (refinement.structure is not None and refinement.structure.flagged)
                          and not local_note)
-                fit = adoption.fit if adopted else fit
+                # (not adopted: the line-based fit, with the errors widened where the refinement disagreed)
+                fit = adoption.fit
                 timings["refine"] = time.perf_counter() - t2
         if fit.ok:
             from .fit.uncertainty import error_verdict
