@@ -166,7 +166,7 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
              mutual_fraction: tuple[float, float] | None = None,
              start_e: tuple[float, float] | None = None,
              coupling_ratio: tuple[float, float] | None = None, lockin: bool = False,
-             response: str = "mean") -> ProbeMap:
+             response: str = "mean", electrons: tuple[float, float] | None = None) -> ProbeMap:
     """Build held-out map ``seed`` (deterministic in all arguments).
 
     Parameters
@@ -197,15 +197,21 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
         ``"mean"``: the sensor transfer of the mean charge ``g(q(⟨N⟩))``;
         ``"states"``: the transfer averaged over the charge states,
         ``Σ_s p_s g(q(N_s))`` (a sensor that follows every switch).
+    electrons : (float, float), optional
+        Draw the number of transitions of each dot across the window in this
+        range (default 3.5–6); 10–16 on a 200-pixel axis gives dense maps
+        with cells of 12–20 pixels.
     """
     from stabtool.simulate import simulate_map
     from stabtool.simulate.quick import double_dot_window
 
     r = np.random.default_rng([seed, 7919])
     dev = _device(r, mutual_fraction)
-    electrons = r.uniform(3.5, 6)
+    n_e = r.uniform(3.5, 6)
+    if electrons is not None:  # (the default draw stays, so every other draw of the seed is unchanged)
+        n_e = float(np.random.default_rng([seed, 29]).uniform(*electrons))
     e0 = 0.35 if start_e is None else float(np.random.default_rng([seed, 17]).uniform(*start_e))
-    xr_, yr_ = double_dot_window(dev, x_gate="GX", y_gate="GY", electrons=electrons + 0.35 - e0, start_e=e0)
+    xr_, yr_ = double_dot_window(dev, x_gate="GX", y_gate="GY", electrons=n_e + 0.35 - e0, start_e=e0)
     T = float(r.uniform(0.03, 0.25))
     ny, nx = (int(v) for v in r.integers(size[0], size[1] + 1, 2))
     kind = str(r.choice(list(sensors)))
@@ -438,6 +444,8 @@ def main(argv: list[str] | None = None) -> int:
                         "maps with the empty (0,0) region well below the first lines")
     p.add_argument("--coupling", default=None,
                    help="'A:B': draw the sensor's dot-2/dot-1 coupling ratio log-uniformly in [A, B] (default 0.65)")
+    p.add_argument("--electrons", default=None,
+                   help="'A:B': transitions of each dot across the window (default 3.5:6); e.g. 10:16 for dense maps")
     p.add_argument("--lockin", action="store_true",
                    help="read every sensor through a lock-in on the x gate: the maps are dS/dx (lines as peaks)")
     p.add_argument("--response", default="mean", choices=("mean", "states"),
@@ -467,7 +475,7 @@ def main(argv: list[str] | None = None) -> int:
     for s in _parse_seeds(a.seeds):
         pm = make_map(s, size=(lo, hi), sensors=sensors, noise=noise, tunnel_coupling_ueV=a.tunnel_ueV,
                       mutual_fraction=_range(a.mutual), start_e=_range(a.start_e), coupling_ratio=_range(a.coupling),
-                      lockin=a.lockin, response=a.response)
+                      lockin=a.lockin, response=a.response, electrons=_range(a.electrons))
         t0 = time.perf_counter()
         try:
             res = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data)
