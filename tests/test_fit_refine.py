@@ -244,7 +244,7 @@ def test_kept_line_numbers_that_the_map_contradicts_state_errors_that_cover_the_
     # a window of about 1.6 transitions per dot (one charge cell): the line-based mutual shifts come
     # from short segments near the triple points and are about 60 % low; the model fit disagrees
     # (about 5 σ) and the line-based numbers are kept. Their stated Cdg errors must cover the truth:
-    # the off-diagonal elements were 72 % and 132 % off at a stated 7 % and 12 % (pulls ≈ 10 and 11)
+    # the off-diagonal elements were 72 % and 132 % off at a stated 9 % and 12 % (pulls 4.6 and 4.8)
     # before the disagreement was put into the errors. Generator truth; 3σ: common practice, no source.
     from stabtool.analysis import Analyzer
     from stabtool.simulate import quick_double_dot
