@@ -1761,7 +1761,8 @@ def _with_kept_disagreement(fit: DiagramFit, refined: np.ndarray, which: list[in
     diff = np.zeros(6)
     idx = np.asarray(which, int)
     diff[idx] = KEPT_DISAGREEMENT_SHARE * np.abs(np.asarray(refined, float)[idx] - fit.params[idx])
-    if not np.all(np.isfinite(diff)) or not np.any(diff > 0):
+    diff = np.where(np.isfinite(diff), diff, 0.0)  # (a number the refinement did not determine: no term)
+    if not np.any(diff > 0):
         return fit
     return _fit_with_params(fit, fit.params.copy(), fit.param_cov + np.diag(diff**2))
 
