@@ -449,8 +449,7 @@ class AnalysisResult:
             if groups is not None:
                 use[: min(k, groups.size)] = groups[:k] >= 0
             used.append(use)
-        on_pairs = np.asarray(self.interdot_on_pairs, bool)
-        used.append(on_pairs.copy() if on_pairs.size == len(d.interdot) else np.ones(len(d.interdot), bool))
+        used.append(np.array(self.interdot_on_pairs, bool))  # (one per segment; a writable copy)
         return used[0], used[1], used[2]
 
     # ------------------------------------------------------------------ output

@@ -269,15 +269,13 @@ def _overlays(res: Any, ax: Any, *, n_pixels: int, max_labels: int, texts: _Text
     da = res.data
     d = res.diagram
     aside: list[np.ndarray] = []
-    # lines the result does not rest on are shown set aside (AnalysisResult.lines_used)
-    used_by_family = res.lines_used if hasattr(res, "lines_used") else None
-    for i_fam, (fam, lines) in enumerate((("dot1", d.lines1), ("dot2", d.lines2), ("interdot", d.interdot))):
-        used = used_by_family[i_fam] if used_by_family is not None else np.ones(len(lines), bool)
+    # lines the result does not rest on are shown set aside (AnalysisResult.lines_used: one flag per line)
+    for (fam, lines), used in zip((("dot1", d.lines1), ("dot2", d.lines2), ("interdot", d.interdot)), res.lines_used):
         n_used = int(np.sum(used))
         segs = []
         for k, ln in enumerate(lines):
             seg = 1e3 * np.array([ln.start, ln.end], float)
-            if k < used.size and not used[k]:
+            if not used[k]:
                 aside.append(seg)
             else:
                 segs.append(seg)
