@@ -204,6 +204,36 @@ def _segments(lines, m: np.ndarray, which: int) -> FamilySegments:
     return FamilySegments(pos=pos, pos_err=pe * fac, lo=lo, hi=hi, lever=lever.copy())
 
 
+def _line_angle(line: TransitionLine, *, steep: bool) -> tuple[float, float]:
+    """Direction of a line in degrees and its standard error (degrees; 0 when unknown).
+
+    Steep families are measured from dx/dy (finite for vertical lines).
+    """
+    if steep:
+        val, err = _inv_slope(line)
+        ang = np.degrees(np.arctan(1.0 / val)) if val != 0 else 90.0
+    else:
+        val, err = line.slope, line.slope_stderr
+        ang = np.degrees(np.arctan(val))
+    d_ang = np.degrees(err / (1 + val**2)) if np.isfinite(err) else 0.0
+    return float(ang), float(d_ang)
+
+
+def _angle_diff(a: float, b: float) -> float:
+    """|a − b| for directions in degrees, modulo 180°."""
+    return abs((a - b + 90.0) % 180.0 - 90.0)
+
+
+def _off_slope(lines, fam_value: float, *, steep: bool) -> np.ndarray:
+    """Per line: is its direction off the family's by more than 3 of its own standard errors plus 1°?"""
+    fam_angle = np.degrees(np.arctan(1.0 / fam_value)) if steep else np.degrees(np.arctan(fam_value))
+    out = np.zeros(len(lines), bool)
+    for i, ln in enumerate(lines):
+        ang, d_ang = _line_angle(ln, steep=steep)
+        out[i] = _angle_diff(ang, fam_angle) > 3 * d_ang + 1.0
+    return out
+
+
 def _reliable(lines, fam_value: float, *, steep: bool) -> tuple[np.ndarray, int]:
     """Indices of the lines to use: well fitted and on the family slope.
 
@@ -219,22 +249,162 @@ def _reliable(lines, fam_value: float, *, steep: bool) -> tuple[np.ndarray, int]
     keep = np.ones(k, bool)
     if np.all(np.isfinite(pe)) and np.all(pe > 0):
         keep &= pe <= 5.0 * np.percentile(pe, 25)
-    fam_angle = np.degrees(np.arctan(1.0 / fam_value)) if steep else np.degrees(np.arctan(fam_value))
-    for i, ln in enumerate(lines):
-        if steep:
-            val, err = _inv_slope(ln)
-            ang = np.degrees(np.arctan(1.0 / val)) if val != 0 else 90.0
-            d_ang = np.degrees(err / (1 + val**2)) if np.isfinite(err) else 0.0
-        else:
-            val, err = ln.slope, ln.slope_stderr
-            ang = np.degrees(np.arctan(val))
-            d_ang = np.degrees(err / (1 + val**2)) if np.isfinite(err) else 0.0
-        diff = abs((ang - fam_angle + 90.0) % 180.0 - 90.0)
-        if diff > 3 * d_ang + 1.0:
-            keep[i] = False
+    keep &= ~_off_slope(lines, fam_value, steep=steep)
     if keep.sum() < 2:
         return idx, 0
     return idx[keep], int(k - keep.sum())
+
+
+@dataclass(frozen=True)
+class StrayLines:
+    """Segments of one family that share a direction of their own, off the family's.
+
+    Attributes
+    ----------
+    indices : tuple of int
+        The segments (positions in the family's line list).
+    slope, slope_stderr : float
+        Their common slope dV_y/dV_x and its standard error.
+    """
+
+    indices: tuple[int, ...]
+    slope: float
+    slope_stderr: float
+
+
+def parallel_stray_lines(lines, fam_value: float, *, steep: bool) -> StrayLines | None:
+    """The largest set of at least two off-slope segments that are parallel to one another, or None.
+
+    Off-slope as in :func:`_reliable`. Two segments are parallel when their
+    directions differ by at most 3 combined standard errors plus 0.5°
+    (common practice, no source). On a map of a dot array, the lines of a
+    third dot cross the window of two plungers at a slope of their own (its
+    own ratio of the two gates' capacitances) and are found as such a set;
+    a charge sensor's own peaks can be too.
+    """
+    off = np.flatnonzero(_off_slope(lines, fam_value, steep=steep))
+    cand = [int(i) for i in off if np.isfinite(lines[i].slope_stderr) and lines[i].slope_stderr > 0]
+    if len(cand) < 2:
+        return None
+    ang = {i: _line_angle(lines[i], steep=steep) for i in cand}
+    best: list[int] = []
+    for c in cand:
+        members = [i for i in cand
+                   if _angle_diff(ang[i][0], ang[c][0]) <= 3 * np.hypot(ang[i][1], ang[c][1]) + 0.5]
+        if len(members) > len(best):
+            best = members
+    if len(best) < 2:
+        return None
+    a = np.array([ang[i][0] for i in best])
+    a = ang[best[0]][0] + (a - ang[best[0]][0] + 90.0) % 180.0 - 90.0  # (one branch of the angle)
+    w = 1.0 / np.maximum(np.array([ang[i][1] for i in best]), 1e-6) ** 2
+    mean = float(np.sum(w * a) / np.sum(w))
+    err = float(1.0 / np.sqrt(np.sum(w)))
+    slope = float(np.tan(np.radians(mean)))
+    return StrayLines(indices=tuple(best), slope=slope, slope_stderr=float(np.radians(err) * (1 + slope**2)))
+
+
+def dot_lines_used(fit: DiagramFit) -> tuple[np.ndarray, np.ndarray]:
+    """Per line of ``fit.lines1`` and ``fit.lines2``: does the result rest on it?
+
+    Lines the lattice fit left out (``line_groups`` −1) are set aside;
+    without a lattice every line counts.
+    """
+    used = []
+    for i_fam, lines in enumerate((fit.lines1, fit.lines2)):
+        k = len(lines)
+        use = np.ones(k, bool)
+        if fit.lattice is not None:
+            groups = np.asarray(fit.line_groups[i_fam])
+            use[: min(k, groups.size)] = groups[:k] >= 0
+        used.append(use)
+    return used[0], used[1]
+
+
+#: A stray segment is a line of its own when at least half of it lies farther than this from
+#: every line the result rests on, px (twice the detector's 1.5 px Hough tolerance: a chord the
+#: Hough transform draws through a staircase of line pieces lies within that tolerance of them)
+STRAY_CLEARANCE_PX = 3.0
+
+
+def _distance_px(points: np.ndarray, line: TransitionLine, scale: np.ndarray) -> np.ndarray:
+    """Distance (px) from ``points`` (k, 2) in volts to the segment of ``line``, axes scaled by ``scale``."""
+    a = np.asarray(line.start, float) / scale
+    b = np.asarray(line.end, float) / scale
+    p = points / scale
+    ab = b - a
+    den = float(ab @ ab)
+    t = np.clip((p - a) @ ab / den, 0.0, 1.0) if den > 0 else np.zeros(len(p))
+    return np.hypot(*(p - (a + t[:, None] * ab)).T)
+
+
+def _own_line(line: TransitionLine, used: list[TransitionLine], scale: np.ndarray) -> bool:
+    """Is at least half of ``line`` clear (> STRAY_CLEARANCE_PX) of every line in ``used``?"""
+    t = np.linspace(0.0, 1.0, 21)[:, None]
+    pts = (1 - t) * np.asarray(line.start, float) + t * np.asarray(line.end, float)
+    if not used:
+        return True
+    d = np.min([_distance_px(pts, u, scale) for u in used], axis=0)
+    return bool(np.mean(d > STRAY_CLEARANCE_PX) >= 0.5)
+
+
+def stray_line_warnings(detection: LineDetection, fit: DiagramFit) -> list[str]:
+    """Warnings for the dot families whose detected segments hold the lines of another dot.
+
+    Parameters
+    ----------
+    detection : LineDetection
+    fit : DiagramFit
+        The final diagram fit; its slopes are the reference (the detector's
+        family slopes may be staircase means), and the lines it rests on
+        (:func:`dot_lines_used`) are those a stray line must keep clear of.
+
+    Returns
+    -------
+    list of str
+
+    Notes
+    -----
+    A set of at least two detected segments parallel to one another and off
+    the family slope (:func:`parallel_stray_lines`), at least two of them
+    lying mostly clear of the lines the result rests on. Chords that the
+    Hough transform draws through the staircase of a family's line pieces
+    are off the slope too but run along those pieces. On a map of two
+    plungers of a dot array, a third dot's lines cross the window at a
+    slope of their own (−α_k1/α_k2); where they do, that dot's charge
+    changes and shifts the double dot's lattice by the mutual charging
+    energy, which the double-dot model does not hold.
+    """
+    ax = detection.axes
+    scale = np.array([abs(ax.dx), abs(ax.dy)], float)
+    if not (np.all(np.isfinite(scale)) and np.all(scale > 0)):
+        return []
+    kept = [ln for lines, u in zip((fit.lines1, fit.lines2), dot_lines_used(fit)) for ln, k in zip(lines, u) if k]
+    out = []
+    for name, steep in (("dot1", True), ("dot2", False)):
+        fam = detection.family(name)
+        lines = tuple(fam.lines)
+        if len(lines) < 3:
+            continue
+        slope = fit.slopes.get(name, np.nan)
+        if not np.isfinite(slope):
+            slope = fam.slope
+        fam_value = (1.0 / slope if slope != 0 else np.inf) if steep else slope
+        if not np.isfinite(fam_value):
+            continue
+        stray = parallel_stray_lines(lines, fam_value, steep=steep)
+        if stray is None:
+            continue
+        own = [i for i in stray.indices if _own_line(lines[i], kept, scale)]
+        if len(own) < 2:
+            continue
+        out.append(
+            f"{len(stray.indices)} {name} segments share a slope of their own ({stray.slope:.3g} ± "
+            f"{stray.slope_stderr:.2g}; the family's {slope:.3g}), {len(own)} of them clear of the lines used: "
+            "lines the double-dot model does not hold (another dot of an array, the sensor's own peaks or an "
+            "artefact); where another dot's charge changes, the lattice shifts"
+        )
+    return out
 
 
 def _full_groups(groups: np.ndarray, used: np.ndarray, k: int) -> np.ndarray:
