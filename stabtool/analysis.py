@@ -33,8 +33,8 @@ from .fit.model import (
     VG_FROM_SLOPES_NOTE,
     DiagramFit,
     dot_lines_used,
+    find_stray_sets,
     fit_diagram,
-    stray_line_warnings,
 )
 from .lines.result import LineDetection
 from .mapdata import (
@@ -256,6 +256,9 @@ class AnalysisResult:
     coupling : CouplingRatio or None
         Scale-free t/E_Cm from the interdot line width and the virtual-gate
         bias it implies.
+    stray_lines : tuple of StraySet
+        Parallel segments off a dot family's slope, clear of the lines used:
+        most likely another dot's lines (:func:`stabtool.fit.model.find_stray_sets`).
     """
 
     data: xr.DataArray
@@ -269,6 +272,7 @@ class AnalysisResult:
     tunnel: Any = None
     coupling: Any = None
     transport: Any = None  # TransportLattice of a transport map without dot lines, else None
+    stray_lines: tuple = ()  # StraySet per dot family holding another dot's lines (fit.model.find_stray_sets)
 
     # ----------------------------------------------------------------- numbers
     @property
@@ -496,6 +500,7 @@ class AnalysisResult:
             "energy_reference_details": self.scale.details,
             "cell_spread_V": self._spreads(),
             "lines": self._lines_json(),
+            "stray_lines": [st.to_json() for st in self.stray_lines],
             "triple_points_V": self.triple_points,
             "charge_states": self.charge_states.to_json() if self.charge_states is not None else None,
             "refinement": self.refinement.to_json() if self.refinement is not None else None,
@@ -1717,9 +1722,9 @@ class Analyzer:
                                    "may have been missed: charge states are relative", doubtful=False)
         # lines of another dot: read last, on the final slopes and lines used, so that it changes the
         # verdict only (none of 1340 held-out double-dot maps that were ok turned doubtful with it)
-        if detection is not None:
-            for w in stray_line_warnings(detection, fit):
-                q = q.with_warning(w)
+        stray = find_stray_sets(detection, fit) if detection is not None else ()
+        for st in stray:
+            q = q.with_warning(st.warning())
         q = q.merge(fit.quality)
         # the detector's SNR (edge contrast) runs about half the step-height SNR of the refinement
         # (median step / noise std, the generator's definition): the larger one decides
@@ -1866,7 +1871,7 @@ class Analyzer:
         timings["total"] = time.perf_counter() - t0
         return AnalysisResult(data=measured, detection=detection, diagram=fit, scale=scale, charge_states=states,
                               refinement=refinement, quality=q, timings_s=timings, tunnel=tunnel, coupling=coupling,
-                              transport=transport)
+                              transport=transport, stray_lines=stray)
 
 
 def analyze(da_or_path: xr.DataArray | str | os.PathLike[str], **kwargs: Any) -> AnalysisResult | DiamondAnalysisResult:

@@ -77,11 +77,16 @@ def _third_dot_slope(preset: str) -> float:
     return float(-alpha[2, 0] / alpha[2, 1])
 
 
-def test_a_third_dots_lines_in_an_array_window_are_named_with_their_slope():
+@pytest.fixture(scope="module")
+def array_result():
     # linear-array-4 swept on P1–P2: D3's lines (slope −0.390) run beside D2's (−0.449) and are sorted into dot2
     sm = quick_double_dot("linear-array-4", shape=(150, 150), snr=30, rng=0)
     with pytest.warns(Warning):
-        res = analyze(sm.data)
+        return analyze(sm.data)
+
+
+def test_a_third_dots_lines_in_an_array_window_are_named_with_their_slope(array_result):
+    res = array_result
     stray = [w for w in res.quality.warnings if "share a slope of their own" in w]
     assert len(stray) == 1 and stray[0].startswith("3 dot2 segments")
     value, err = (float(v) for v in stray[0].split("(", 1)[1].split(";", 1)[0].split(" ± "))
@@ -89,6 +94,28 @@ def test_a_third_dots_lines_in_an_array_window_are_named_with_their_slope():
     assert truth == pytest.approx(-0.390, abs=1e-3)
     assert abs(value - truth) <= 3 * err + 0.002
     assert not res.quality.ok
+    # the JSON carries the set with its segments in volts
+    (js,) = res.to_json()["stray_lines"]
+    assert js["family"] == "dot2" and js["n_segments"] == 3 and js["n_clear"] == 3
+    assert js["slope"] == pytest.approx(value, abs=1e-3) and js["slope_error"] == pytest.approx(err, rel=0.05)
+    seg = np.array(js["segments_V"])
+    assert seg.shape == (3, 4)
+    assert np.allclose((seg[:, 3] - seg[:, 1]) / (seg[:, 2] - seg[:, 0]), truth, atol=0.01)
+
+
+def test_the_figure_draws_the_named_set_in_its_own_colour_and_legend_entry(array_result):
+    import matplotlib.pyplot as plt
+    from matplotlib.colors import to_rgb
+
+    from stabtool.report.plot import STRAY_COLOUR, plot_result
+
+    fig = plot_result(array_result)
+    ax = fig.axes[0]
+    drawn = [c for c in ax.collections if c.get_label().startswith("another dot?")]
+    assert len(drawn) == 1 and len(drawn[0].get_segments()) == 3
+    assert np.allclose(drawn[0].get_edgecolor()[0][:3], to_rgb(STRAY_COLOUR))
+    assert any(t.get_text() == "another dot? (slope -0.391)" for t in ax.get_legend().get_texts())
+    plt.close(fig)
 
 
 @pytest.mark.parametrize("seed", [0, 1, 2])
@@ -96,3 +123,4 @@ def test_a_double_dot_without_other_dots_has_no_stray_lines(seed):
     sm = quick_double_dot("si-sige-double", shape=(150, 150), snr=30, rng=seed)
     res = analyze(sm.data)
     assert not [w for w in res.quality.warnings if "share a slope of their own" in w]
+    assert res.to_json()["stray_lines"] == []

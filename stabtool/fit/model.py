@@ -348,8 +348,54 @@ def _own_line(line: TransitionLine, used: list[TransitionLine], scale: np.ndarra
     return bool(np.mean(d > STRAY_CLEARANCE_PX) >= 0.5)
 
 
-def stray_line_warnings(detection: LineDetection, fit: DiagramFit) -> list[str]:
-    """Warnings for the dot families whose detected segments hold the lines of another dot.
+@dataclass(frozen=True)
+class StraySet:
+    """A set of parallel stray segments named in one dot family (:func:`find_stray_sets`).
+
+    Attributes
+    ----------
+    family : {"dot1", "dot2"}
+        The family the detector sorted them into.
+    slope, slope_stderr : float
+        Their common slope dV_y/dV_x and its standard error.
+    family_slope : float
+        The family's final slope, for comparison.
+    segments : tuple of TransitionLine
+        The detected segments of the set.
+    n_clear : int
+        How many of them lie mostly clear of the lines the result rests on.
+    """
+
+    family: str
+    slope: float
+    slope_stderr: float
+    family_slope: float
+    segments: tuple[TransitionLine, ...]
+    n_clear: int
+
+    def warning(self) -> str:
+        """The verdict's line for this set."""
+        return (
+            f"{len(self.segments)} {self.family} segments share a slope of their own ({self.slope:.3g} ± "
+            f"{self.slope_stderr:.2g}; the family's {self.family_slope:.3g}), {self.n_clear} of them clear of "
+            "the lines used: lines the double-dot model does not hold (another dot of an array, the sensor's "
+            "own peaks or an artefact); where another dot's charge changes, the lattice shifts"
+        )
+
+    def to_json(self) -> dict[str, Any]:
+        return {
+            "family": self.family,
+            "slope": self.slope,
+            "slope_error": self.slope_stderr,
+            "family_slope": self.family_slope,
+            "n_segments": len(self.segments),
+            "n_clear": self.n_clear,
+            "segments_V": [[*map(float, ln.start), *map(float, ln.end)] for ln in self.segments],
+        }
+
+
+def find_stray_sets(detection: LineDetection, fit: DiagramFit) -> tuple[StraySet, ...]:
+    """The dot families whose detected segments hold the lines of another dot.
 
     Parameters
     ----------
@@ -361,7 +407,7 @@ def stray_line_warnings(detection: LineDetection, fit: DiagramFit) -> list[str]:
 
     Returns
     -------
-    list of str
+    tuple of StraySet
 
     Notes
     -----
@@ -378,7 +424,7 @@ def stray_line_warnings(detection: LineDetection, fit: DiagramFit) -> list[str]:
     ax = detection.axes
     scale = np.array([abs(ax.dx), abs(ax.dy)], float)
     if not (np.all(np.isfinite(scale)) and np.all(scale > 0)):
-        return []
+        return ()
     kept = [ln for lines, u in zip((fit.lines1, fit.lines2), dot_lines_used(fit)) for ln, k in zip(lines, u) if k]
     out = []
     for name, steep in (("dot1", True), ("dot2", False)):
@@ -398,13 +444,9 @@ def stray_line_warnings(detection: LineDetection, fit: DiagramFit) -> list[str]:
         own = [i for i in stray.indices if _own_line(lines[i], kept, scale)]
         if len(own) < 2:
             continue
-        out.append(
-            f"{len(stray.indices)} {name} segments share a slope of their own ({stray.slope:.3g} ± "
-            f"{stray.slope_stderr:.2g}; the family's {slope:.3g}), {len(own)} of them clear of the lines used: "
-            "lines the double-dot model does not hold (another dot of an array, the sensor's own peaks or an "
-            "artefact); where another dot's charge changes, the lattice shifts"
-        )
-    return out
+        out.append(StraySet(family=name, slope=stray.slope, slope_stderr=stray.slope_stderr, family_slope=slope,
+                            segments=tuple(lines[i] for i in stray.indices), n_clear=len(own)))
+    return tuple(out)
 
 
 def _full_groups(groups: np.ndarray, used: np.ndarray, k: int) -> np.ndarray:

@@ -46,6 +46,8 @@ __all__ = ["FAMILY_COLOURS", "plot_result", "render_png", "save_plot"]
 
 #: Colours of the line families (colour-blind-safe Okabe–Ito palette).
 FAMILY_COLOURS = {"dot1": "#E69F00", "dot2": "#56B4E9", "interdot": "#CC79A7"}
+#: Colour of the segments named as another dot's lines (Okabe–Ito bluish green).
+STRAY_COLOUR = "#009E73"
 #: Characters per line of the warnings box (6.5 pt text across the map's width).
 WARNING_LINE_CHARS = 150
 #: Figure size (inches) and resolution of the per-map plots.
@@ -286,6 +288,13 @@ def _overlays(res: Any, ax: Any, *, n_pixels: int, max_labels: int, texts: _Text
     if aside:
         ax.add_collection(LineCollection(aside, colors="0.6", linewidths=0.8, linestyles=":", alpha=0.8,
                                          label="set aside"), autolim=False)
+    # segments named as another dot's lines (AnalysisResult.stray_lines), over the greyed ones
+    stray = getattr(res, "stray_lines", ())
+    if stray:
+        segs = [1e3 * np.array([ln.start, ln.end], float) for st in stray for ln in st.segments]
+        slopes = ", ".join(f"{st.slope:.3g}" for st in stray)
+        ax.add_collection(LineCollection(segs, colors=STRAY_COLOUR, linewidths=1.2, linestyles="--", alpha=0.9,
+                                         label=f"another dot? (slope {slopes})"), autolim=False)
     _left_out_areas(res, ax)
     tp = res.triple_points
     if tp.size:
