@@ -342,6 +342,35 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
     return ProbeMap(data=da, truth=sm.truth.to_json(), meta=meta)
 
 
+def gates_exchanged(pm: ProbeMap) -> ProbeMap:
+    """The same map with its two gates exchanged (x ↔ y, so the slow axis is x), the truth mirrored.
+
+    Mirroring swaps the gates and the dots: M, Cdg and α become P·A·P with
+    P = [[0, 1], [1, 0]], the charging energies of dot1 and dot2 swap, and so
+    do the device's dots and gates (for the charge labels).
+    """
+    P = np.array([[0.0, 1.0], [1.0, 0.0]])
+    t = dict(pm.truth)
+    for key in ("virtual_gate_matrix", "gate_capacitance_aF", "lever_arm"):
+        if t.get(key) is not None:
+            t[key] = (P @ np.asarray(t[key], float) @ P).tolist()
+    if t.get("charging_energy_meV"):
+        ec = dict(t["charging_energy_meV"])
+        ec["dot1"], ec["dot2"] = ec.get("dot2"), ec.get("dot1")
+        t["charging_energy_meV"] = ec
+    dev = dict(t.get("device") or {})
+    if dev.get("cdg_aF") is not None and np.shape(dev["cdg_aF"]) == (2, 2):
+        dev["cdg_aF"] = (P @ np.asarray(dev["cdg_aF"], float) @ P).tolist()
+        dev["cdd_aF"] = (P @ np.asarray(dev["cdd_aF"], float) @ P).tolist()
+        if dev.get("offset_charge_e") is not None:
+            dev["offset_charge_e"] = list(dev["offset_charge_e"])[::-1]
+        t["device"] = dev
+    else:
+        t.pop("device", None)  # (no charge labels checked)
+    da = pm.data.transpose(pm.data.dims[1], pm.data.dims[0])
+    return ProbeMap(data=da, truth=t, meta=dict(pm.meta))
+
+
 def _rel(a: Any, b: Any) -> float:
     if a is None or b is None:
         return math.nan
@@ -451,6 +480,8 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--response", default="mean", choices=("mean", "states"),
                    help="sensor response to a fluctuating charge: at the mean charge (default) or averaged over "
                         "the charge states")
+    p.add_argument("--gates-exchanged", action="store_true",
+                   help="exchange each map's two gates (x ↔ y: the slow axis on x), the truth mirrored")
     p.add_argument("--out", default=None, help="folder for one PNG per map (the analysis plot)")
     p.add_argument("--verbose", action="store_true", help="print every warning of every map")
     a = p.parse_args(argv)
@@ -476,6 +507,8 @@ def main(argv: list[str] | None = None) -> int:
         pm = make_map(s, size=(lo, hi), sensors=sensors, noise=noise, tunnel_coupling_ueV=a.tunnel_ueV,
                       mutual_fraction=_range(a.mutual), start_e=_range(a.start_e), coupling_ratio=_range(a.coupling),
                       lockin=a.lockin, response=a.response, electrons=_range(a.electrons))
+        if a.gates_exchanged:
+            pm = gates_exchanged(pm)
         t0 = time.perf_counter()
         try:
             res = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data)

@@ -1576,6 +1576,14 @@ class Analyzer:
                                f"{signal_range(measured):.3g} {measured.attrs.get('units', 'a.u.')}, is far from "
                                "order one); signal values in these notes are in that unit", doubtful=False)
         da, lag_V, tau_V, q = corrected_readout(da, q)
+        from .preprocess.background import correct_column_offsets, slow_axis_is_x
+
+        if slow_axis_is_x(np.asarray(da.values, float)):
+            # the analysis corrects offsets per row (y slow); a sweep stepped along x carries them per column
+            da = da.copy(data=correct_column_offsets(np.asarray(da.values, float)))
+            q = q.with_warning(f"offsets common to whole columns beyond the white noise: x ({x_gate(da)}) looks like "
+                               "the slow axis of the sweep; an offset per column was removed before the analysis "
+                               "(charge jumps are looked for between rows only)", doubtful=False)
         return _Prepared(measured=measured, corrected=da, lag_V=lag_V, quality=q,
                          seconds=time.perf_counter() - t0, tau_V=tau_V)
 

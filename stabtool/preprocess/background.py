@@ -289,3 +289,44 @@ def row_offset_test(values: np.ndarray, noise: float) -> RowOffsetTest:
     sharp = z - median_filter(z, SHARP_WINDOW_ROWS, mode="nearest")
     n_sharp = int(np.count_nonzero(np.abs(sharp) > SHARP_STEP_Z))
     return RowOffsetTest(scatter, n_sharp, bool(scatter > ROW_SCATTER_Z or n_sharp >= MIN_SHARP_STEPS))
+
+
+def slow_axis_is_x(values: np.ndarray) -> bool:
+    """Do the map's sweep offsets run along columns (x the slow axis) rather than rows?
+
+    Parameters
+    ----------
+    values : ndarray, shape (ny, nx)
+        The map (NaN allowed), rows along y as everywhere in the package.
+
+    Returns
+    -------
+    bool
+        True when :func:`row_offset_test` finds offsets common to whole
+        columns (the map transposed, the noise σ from differences along y)
+        and none common to whole rows (the noise σ from differences along x).
+
+    Notes
+    -----
+    The pipeline takes y for the slow axis (one sweep per row) and corrects
+    offsets per row. A map whose gate on x was stepped in the outer loop
+    carries its 1/f offsets per column instead: each test's noise comes from
+    differences along the other test's offsets, which those offsets inflate,
+    so a map with offsets along one axis passes the other test.
+    """
+    from .noise import _noise_from_diffs
+
+    values = np.asarray(values, dtype=np.float64)
+    if values.ndim != 2 or min(values.shape) < 4:
+        return False
+    noise_x = _noise_from_diffs(np.diff(values, axis=1))
+    noise_y = _noise_from_diffs(np.diff(values, axis=0))
+    if not (np.isfinite(noise_x) and np.isfinite(noise_y) and noise_x > 0 and noise_y > 0):
+        return False
+    return row_offset_test(values.T, noise_y).significant and not row_offset_test(values, noise_x).significant
+
+
+def correct_column_offsets(values: np.ndarray) -> np.ndarray:
+    """``values`` minus an offset per column (medians of consecutive-column differences, as per row)."""
+    values = np.asarray(values, dtype=np.float64)
+    return values - _row_offsets_core(values.T)[None, :]
