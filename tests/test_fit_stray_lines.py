@@ -35,7 +35,7 @@ def test_two_parallel_off_slope_segments_are_one_stray_set_with_their_mean_slope
 def test_one_off_slope_segment_or_two_that_are_not_parallel_are_no_stray_set():
     base = [_line(-0.45, 0.003, x) for x in range(5)]
     assert parallel_stray_lines(base + [_line(-0.39, 0.003)], -0.45, steep=False) is None
-    # −0.39 and −0.30 differ by ~4.4°, far beyond 3 combined errors (0.24°) + 0.5°
+    # −0.39 and −0.30 differ by 4.6°, far beyond 3 combined errors (0.65°) + 0.5°
     assert parallel_stray_lines(base + [_line(-0.39, 0.003), _line(-0.30, 0.003)], -0.45, steep=False) is None
     # nor segments on the family slope, however many
     assert parallel_stray_lines(base, -0.45, steep=False) is None
