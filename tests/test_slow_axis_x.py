@@ -16,6 +16,7 @@ import warnings
 
 import numpy as np
 import pytest
+from scipy import ndimage as ndi
 
 from stabtool.analysis import analyze
 from stabtool.preprocess.background import slow_axis_is_x
@@ -42,6 +43,17 @@ def test_offsets_per_column_are_told_from_offsets_per_row(offset_rows):
     for seed in range(3):
         plain = quick_double_dot("si-sige-double", shape=(150, 150), snr=20, rng=seed).data.values
         assert not slow_axis_is_x(plain) and not slow_axis_is_x(plain.T)
+
+
+@pytest.mark.parametrize("pixel_slope", [-60.0, -200.0, -1e9])
+def test_sharp_lines_within_a_degree_of_vertical_are_not_column_offsets(pixel_slope):
+    # a honeycomb of steps (6 cells per side), the steep family within 1° of vertical and 0.7 px wide:
+    # it steps whole columns at a few places, as a column offset would (sparse, not dense jitter)
+    rng = np.random.default_rng(0)
+    iy, ix = np.mgrid[0:150, 0:150].astype(float)
+    occ = 0.6 * np.floor((ix - iy / pixel_slope) / 25.0) + 0.4 * np.floor((iy + 0.3 * ix) / 25.0)
+    v = ndi.gaussian_filter(occ, 0.7) + rng.normal(0.0, 0.05, occ.shape)
+    assert not slow_axis_is_x(v)
 
 
 def test_a_map_whose_slow_gate_is_on_x_gives_the_mirrored_numbers(offset_rows):
