@@ -64,6 +64,7 @@ Usage::
     python scripts/probe_heldout.py --seeds 0:24 --start-e=-3:-2.2   # empty corner: absolute labels checked
     python scripts/probe_heldout.py --seeds 0:48 --lockin            # derivative read-out (lines as peaks)
     python scripts/probe_heldout.py --seeds 0:64 --response states   # the sensor averages over charge states
+    python scripts/probe_heldout.py --seeds 0:64 --gates-exchanged   # x ↔ y: the slow axis on x, truth mirrored
 
 The map factory :func:`make_map` and :func:`evaluate` are importable (for
 scratch experiments that patch the analysis).
