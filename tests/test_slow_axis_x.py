@@ -27,7 +27,7 @@ P = np.array([[0.0, 1.0], [1.0, 0.0]])
 
 @pytest.fixture(scope="module")
 def offset_rows():
-    # 1/f offsets of 3 white-noise σ per row (the generator's slow axis is y)
+    # 1/f offsets of 3 step heights per row (the generator's slow axis is y)
     return quick_double_dot("si-sige-double", shape=(150, 150), snr=20, row_noise=3.0, rng=4)
 
 
