@@ -1578,9 +1578,10 @@ class Analyzer:
         da, lag_V, tau_V, q = corrected_readout(da, q)
         from .preprocess.background import correct_column_offsets, slow_axis_is_x
 
-        if slow_axis_is_x(np.asarray(da.values, float)):
+        values = np.asarray(da.values, float)
+        if slow_axis_is_x(values):
             # the analysis corrects offsets per row (y slow); a sweep stepped along x carries them per column
-            da = da.copy(data=correct_column_offsets(np.asarray(da.values, float)))
+            da = da.copy(data=correct_column_offsets(values))
             q = q.with_warning(f"offsets common to whole columns beyond the white noise: x ({x_gate(da)}) looks like "
                                "the slow axis of the sweep; an offset per column was removed before the analysis "
                                "(charge jumps are looked for between rows only)", doubtful=False)

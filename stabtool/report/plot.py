@@ -289,10 +289,9 @@ def _overlays(res: Any, ax: Any, *, n_pixels: int, max_labels: int, texts: _Text
         ax.add_collection(LineCollection(aside, colors="0.6", linewidths=0.8, linestyles=":", alpha=0.8,
                                          label="set aside"), autolim=False)
     # segments named as another dot's lines (AnalysisResult.stray_lines), over the greyed ones
-    stray = getattr(res, "stray_lines", ())
-    if stray:
-        segs = [1e3 * np.array([ln.start, ln.end], float) for st in stray for ln in st.segments]
-        slopes = ", ".join(f"{st.slope:.3g}" for st in stray)
+    if res.stray_lines:
+        segs = [1e3 * np.array([ln.start, ln.end], float) for st in res.stray_lines for ln in st.segments]
+        slopes = ", ".join(f"{st.slope:.3g}" for st in res.stray_lines)
         ax.add_collection(LineCollection(segs, colors=STRAY_COLOUR, linewidths=1.2, linestyles="--", alpha=0.9,
                                          label=f"another dot? (slope {slopes})"), autolim=False)
     _left_out_areas(res, ax)
