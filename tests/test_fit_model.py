@@ -269,3 +269,27 @@ def test_without_a_cell_a_doubtful_detection_gives_no_virtual_gates():
     fit = fit_diagram(doubtful)
     assert not fit.ok and np.all(np.isnan(fit.vg_matrix))
     assert np.isfinite(fit.slopes["dot1"]) and np.isfinite(fit.slopes["dot2"])
+
+
+def test_a_line_known_to_within_a_pixel_is_used_beside_far_more_precise_ones():
+    # a sensor fading across the map: the first dot1 line's segments are known to 0.05 px, the
+    # second's (on the weak side) to 0.8 px. With two dot1 lines in the window, the second is the
+    # only one that bounds a charge band with the first: setting it aside for its error relative to
+    # the first line's (5× their lower quartile) left no cell. Known to under a pixel, it is used.
+    t = truth_from_capacitances(**WORKED)
+    ax_x = np.linspace(0.0, 0.028, 140)  # two dot1 lines (ΔV1 ≈ 15.3 mV, 2 and 3 segments) ...
+    ax_y = np.linspace(0.0, 0.05, 200)  # ... and three dot2 lines
+    det = honeycomb_detection(t, x=ax_x, y=ax_y, offset_V=(0.006, 0.004))
+    px = ax_x[1] - ax_x[0]
+    d1 = det.families["dot1"]
+    # V'_1 = x + M12 y of each segment: the segments of one line differ by δ1 ≪ ΔV1 (a staircase)
+    v1 = np.array([ln.x0 + t.m[0, 1] * ln.y0 for ln in d1.lines])
+    assert 0.5 * t.addition_V[0] < np.ptp(v1) < 1.5 * t.addition_V[0], "the window must hold two dot1 lines"
+    far = list(v1 > v1.min() + 0.5 * t.addition_V[0])
+    assert sum(far) >= 2 and sum(not f for f in far) >= 2
+    lines = tuple(replace(ln, position_stderr=(0.8 if f else 0.05) * px) for ln, f in zip(d1.lines, far))
+    det = replace(det, families={**det.families, "dot1": replace(d1, lines=lines)})
+    fit = fit_diagram(det)
+    assert fit.ok, fit.quality
+    assert fit.addition_V[0] == pytest.approx(t.addition_V[0], rel=1e-3)
+    np.testing.assert_allclose(fit.cdg_aF, t.cdg, rtol=1e-3)
