@@ -167,7 +167,8 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
              mutual_fraction: tuple[float, float] | None = None,
              start_e: tuple[float, float] | None = None,
              coupling_ratio: tuple[float, float] | None = None, lockin: bool = False,
-             response: str = "mean", electrons: tuple[float, float] | None = None) -> ProbeMap:
+             response: str = "mean", electrons: tuple[float, float] | None = None,
+             aspect: tuple[float, float] | None = None) -> ProbeMap:
     """Build held-out map ``seed`` (deterministic in all arguments).
 
     Parameters
@@ -202,6 +203,11 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
         Draw the number of transitions of each dot across the window in this
         range (default 3.5–6); 10–16 on a 200-pixel axis gives dense maps
         with cells of 12–20 pixels.
+    aspect : (float, float), optional
+        Draw a factor ``f`` log-uniformly in this range and sweep ``f`` times
+        the x span and ``1/f`` times the y span (from the same low corner):
+        about ``f²`` times as many dot1 transitions as dot2 ones (default 1,
+        a window tuned to show as many of each).
     """
     from stabtool.simulate import simulate_map
     from stabtool.simulate.quick import double_dot_window
@@ -213,6 +219,10 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
         n_e = float(np.random.default_rng([seed, 29]).uniform(*electrons))
     e0 = 0.35 if start_e is None else float(np.random.default_rng([seed, 17]).uniform(*start_e))
     xr_, yr_ = double_dot_window(dev, x_gate="GX", y_gate="GY", electrons=n_e + 0.35 - e0, start_e=e0)
+    if aspect is not None:  # (its own draw: every other draw of the seed is unchanged)
+        f = float(np.exp(np.random.default_rng([seed, 37]).uniform(np.log(aspect[0]), np.log(aspect[1]))))
+        xr_ = (xr_[0], xr_[0] + f * (xr_[1] - xr_[0]))
+        yr_ = (yr_[0], yr_[0] + (yr_[1] - yr_[0]) / f)
     T = float(r.uniform(0.03, 0.25))
     ny, nx = (int(v) for v in r.integers(size[0], size[1] + 1, 2))
     kind = str(r.choice(list(sensors)))
@@ -481,6 +491,8 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--response", default="mean", choices=("mean", "states"),
                    help="sensor response to a fluctuating charge: at the mean charge (default) or averaged over "
                         "the charge states")
+    p.add_argument("--aspect", default=None,
+                   help="stretch the window: x span × f, y span ÷ f, f log-uniform in 'LO:HI' (e.g. 0.4:2.5)")
     p.add_argument("--gates-exchanged", action="store_true",
                    help="exchange each map's two gates (x ↔ y: the slow axis on x), the truth mirrored")
     p.add_argument("--out", default=None, help="folder for one PNG per map (the analysis plot)")
@@ -507,7 +519,8 @@ def main(argv: list[str] | None = None) -> int:
     for s in _parse_seeds(a.seeds):
         pm = make_map(s, size=(lo, hi), sensors=sensors, noise=noise, tunnel_coupling_ueV=a.tunnel_ueV,
                       mutual_fraction=_range(a.mutual), start_e=_range(a.start_e), coupling_ratio=_range(a.coupling),
-                      lockin=a.lockin, response=a.response, electrons=_range(a.electrons))
+                      lockin=a.lockin, response=a.response, electrons=_range(a.electrons),
+                      aspect=_range(a.aspect))
         if a.gates_exchanged:
             pm = gates_exchanged(pm)
         t0 = time.perf_counter()
