@@ -78,3 +78,41 @@ def test_orientation_references_pool_neighbouring_bins_and_keep_the_map_referenc
     np.testing.assert_allclose(out[2:5], np.percentile(ms[200:], 95))
     assert np.all(out[[0, 1, 5, 6, 11]] == ref)  # the strong bin, bins pooling it, and empty bins
     assert np.all(out >= ORIENTATION_FLOOR * ref) and FAINT_RATIO * ref > out[3]
+
+
+@pytest.mark.regression
+def test_a_line_on_the_faded_side_of_the_sensor_is_kept_when_the_cell_needs_it():
+    # held-out probe map (scripts/probe_heldout.py --aspect 0.4:2.5, seed 4): a sech² sensor whose
+    # operating point drifts off its peak across a window stretched along x (eight dot1 lines, two
+    # dot2 lines). The second dot2 line runs into the faded half; its refined step is 0.22 of the
+    # map's median step, and the detector drops it as texture (below a quarter): one dot2 line, no
+    # cell. The analysis then detects again keeping lines down to a tenth of the median
+    from _probe import analysed, make_map
+
+    from stabtool.analysis import FADED_LINE_RATIO, Analyzer
+    from stabtool.lines.detector import LineDetector
+
+    pm = make_map(4, aspect=(0.4, 2.5))
+    res = analysed(pm)
+    t = pm.truth
+    assert res.diagram.ok, res.quality.warnings
+    assert any(f"steps of {100 * FADED_LINE_RATIO:.0f}–25 %" in w for w in res.quality.warnings)
+    m = np.asarray(res.to_json()["virtual_gate_matrix"])
+    assert np.abs(m - np.asarray(t["virtual_gate_matrix"])).max() <= 0.005
+    cdg, cdg_t = np.asarray(res.to_json()["gate_capacitance_aF"]), np.asarray(t["gate_capacitance_aF"])
+    assert np.abs(cdg / cdg_t - 1).max() <= 0.02
+    # the first detection alone (a detector given by the caller is used as it is) has no cell
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        first = Analyzer(electron_temperature_K=pm.meta["T"], detector=LineDetector())(pm.data)
+    assert not first.diagram.ok
+
+
+def test_the_weak_line_ratio_is_a_fraction():
+    from stabtool.errors import InputError
+    from stabtool.lines.detector import LineDetector
+
+    with pytest.raises(InputError):
+        LineDetector(weak_line_ratio=1.0)
+    with pytest.raises(InputError):
+        LineDetector(weak_line_ratio=0.0)

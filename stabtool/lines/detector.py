@@ -63,6 +63,10 @@ class LineDetector:
         smoothed copy.
     max_sigma_px : float
         Largest Gaussian σ the scale selection may choose, pixels.
+    weak_line_ratio : float
+        Dot lines whose fitted step is below this fraction of their
+        reference step (the median over all dot lines, or a faint family's
+        own) are dropped as sensor texture (:func:`_drop_weak_lines`).
 
     Examples
     --------
@@ -84,6 +88,7 @@ class LineDetector:
     min_snr: float = 3.0
     scale_selection: bool = True
     max_sigma_px: float = 4.0
+    weak_line_ratio: float = 0.25
 
     def __post_init__(self) -> None:
         for f in fields(self):
@@ -94,6 +99,8 @@ class LineDetector:
                 continue
             if not (isinstance(v, (int, float)) and np.isfinite(v) and v > 0):
                 raise InputError(f.name, f"must be a positive number, got {v!r}")
+        if self.weak_line_ratio >= 1:
+            raise InputError("weak_line_ratio", f"must be below 1, got {self.weak_line_ratio!r}")
         if self.low_sigmas > self.high_sigmas:
             raise InputError("low_sigmas", f"must not exceed high_sigmas ({self.high_sigmas}), got {self.low_sigmas}")
 
@@ -228,14 +235,21 @@ def _smoothed(values: np.ndarray, sigma_px: float) -> np.ndarray:
     return sm
 
 
-def _drop_weak_lines(refined: list[RefinedLine], names: list[str]) -> list[RefinedLine]:
-    """Drop dot lines (negative slope) whose fitted step is below a quarter of the median step.
+def _drop_weak_lines(refined: list[RefinedLine], names: list[str], ratio: float = 0.25) -> list[RefinedLine]:
+    """Drop dot lines (negative slope) whose fitted step is below ``ratio`` times the median step.
 
     Weak lines among strong ones are sensor texture, not transitions. The
     median is over all dot lines, except for a first-pass family (``names``)
     whose own median is below ``FAINT_RATIO`` of it: a sensor that sees one
     dot much more weakly than the other gives that dot's whole family small
     steps, and they are kept (measured against their own median).
+
+    A charge sensor's sensitivity also varies across a map: on a Lorentzian
+    peak ``1/(1 + d²)`` the slope at two half-widths from the top (d = 2) is
+    a quarter of the largest (at d = 1/√3), at three half-widths a tenth, so
+    real lines on the weak side can have steps below a quarter of the
+    median. The analysis detects again with a tenth when the lines of the
+    first detection give no charge cell (``analysis.FADED_LINE_RATIO``).
     """
     dot = [(r, n) for r, n in zip(refined, names) if r.refined and r.line.slope < 0]
     if len(dot) < 4:
@@ -249,7 +263,7 @@ def _drop_weak_lines(refined: list[RefinedLine], names: list[str]) -> list[Refin
         own = float(np.median(hs)) if len(hs) >= 4 else np.inf
         ref_h[n] = own if own < FAINT_RATIO * ref_all else ref_all
     return [r for r, n in zip(refined, names)
-            if not (r.line.slope < 0 and (not r.refined or r.step_height < 0.25 * ref_h[n]))]
+            if not (r.line.slope < 0 and (not r.refined or r.step_height < ratio * ref_h[n]))]
 
 
 def _detect_core(values: np.ndarray, axes, cfg: LineDetector) -> LineDetection:
@@ -318,7 +332,7 @@ def _detect_core(values: np.ndarray, axes, cfg: LineDetector) -> LineDetection:
         # broad lines whose edges needed a larger scale: rescue the segments whose profiles fail
         refined = _rescue_broad(refined, segs, work, axes, names, along, edges, scale.width_px, cfg)
     # weak lines among strong ones of their family are sensor texture, not transitions
-    refined = _drop_weak_lines(refined, names)
+    refined = _drop_weak_lines(refined, names, cfg.weak_line_ratio)
     # second pass: classify again with the refined slopes
     lines = [r.line for r in refined]
     names2 = classify_lines(lines, axes)
