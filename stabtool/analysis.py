@@ -1649,9 +1649,12 @@ class Analyzer:
             faded = _with_faded_lines(da, detection)
             if faded is not None:
                 detection, fit_map, fit, n_more = faded
-                q = q.with_warning(f"{n_more} dot line(s) with steps of {100 * FADED_LINE_RATIO:.0f}–25 % of the "
-                                   "median kept (a sensor whose sensitivity fades across the map): without them "
-                                   "the lines gave no charge cell", doubtful=False)
+                from .lines.detector import LineDetector
+
+                q = q.with_warning(f"{n_more} dot line(s) with steps of {100 * FADED_LINE_RATIO:.0f}–"
+                                   f"{100 * LineDetector.weak_line_ratio:.0f} % of the median kept (a sensor whose "
+                                   "sensitivity fades across the map): without them the lines gave no charge cell",
+                                   doubtful=False)
         if fit_map is not da:
             q = q.with_warning("row offsets (slow-axis noise) beyond the white noise: lines measured on the "
                                "row-corrected map", doubtful=False)
