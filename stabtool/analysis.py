@@ -220,6 +220,10 @@ STREAK_M = 0.02
 #: ok −2; bench regression case gaas-double SNR 30, Cdg12 1.93 → 2.04 % off) and let the random walk
 #: of a derivative map's sum leave a streak family in (lock-in maps within the bounds 8 → 6).
 FADED_LINE_RATIO = 0.1
+#: The edge map's contrast floor of that second detection (0.2 in the first, ``lines.edges.CONTRAST_FLOOR``):
+#: a line in the faded part of the map has weak edges too. On every map it changed many maps either way
+#: (held-out probe sets 0:64, 64:128, states 0:64, stretched 0:64: within the bounds +3, −4, +1, 0)
+FADED_CONTRAST_FLOOR = 0.1
 #: what a map measures (``Analyzer(readout=...)``, ``stabtool analyze --readout``)
 READOUTS = ("auto", "charge", "derivative-x", "derivative-y")
 #: the reason a derivative map's sum is never ok (followed by the axis)
@@ -1338,7 +1342,7 @@ def _with_faded_lines(da: xr.DataArray, detection: LineDetection) -> tuple[LineD
     """
     from .lines import detect_lines
 
-    again = detect_lines(da, weak_line_ratio=FADED_LINE_RATIO)
+    again = detect_lines(da, weak_line_ratio=FADED_LINE_RATIO, contrast_floor=FADED_CONTRAST_FLOOR)
     n_dot = [len(d.family(f)) for d in (detection, again) for f in ("dot1", "dot2")]
     n_more = n_dot[2] + n_dot[3] - n_dot[0] - n_dot[1]
     if n_more <= 0:
@@ -1649,12 +1653,10 @@ class Analyzer:
             faded = _with_faded_lines(da, detection)
             if faded is not None:
                 detection, fit_map, fit, n_more = faded
-                from .lines.detector import LineDetector
-
-                q = q.with_warning(f"{n_more} dot line(s) with steps of {100 * FADED_LINE_RATIO:.0f}–"
-                                   f"{100 * LineDetector.weak_line_ratio:.0f} % of the median kept (a sensor whose "
-                                   "sensitivity fades across the map): without them the lines gave no charge cell",
-                                   doubtful=False)
+                q = q.with_warning(f"{n_more} more dot line(s) found with steps down to {FADED_LINE_RATIO:g} of the "
+                                   f"median and edges down to {FADED_CONTRAST_FLOOR:g} of the strong ones (a sensor "
+                                   "whose sensitivity fades across the map): without them the lines gave no charge "
+                                   "cell", doubtful=False)
         if fit_map is not da:
             q = q.with_warning("row offsets (slow-axis noise) beyond the white noise: lines measured on the "
                                "row-corrected map", doubtful=False)

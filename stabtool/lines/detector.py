@@ -15,7 +15,7 @@ from ..preprocess.noise import MAX_NOISE_SAMPLES, _noise_core
 from ..quality import Quality
 from ._geometry import steps
 from ._merge import drop_duplicates, merge_collinear
-from .edges import (DEFAULT_HIGH_SIGMAS, DEFAULT_LOW_SIGMAS, FAINT_RATIO, EdgeScale, _edge_core, _select_scale,
+from .edges import (CONTRAST_FLOOR, DEFAULT_HIGH_SIGMAS, DEFAULT_LOW_SIGMAS, FAINT_RATIO, EdgeScale, _edge_core, _select_scale,
                     dot_line_bins)
 from ._family import family_fit
 from .families import classify_lines, pixel_angle_deg
@@ -67,6 +67,10 @@ class LineDetector:
         Dot lines whose fitted step is below this fraction of their
         reference step (the median over all dot lines, or a faint family's
         own) are dropped as sensor texture (:func:`_drop_weak_lines`).
+    contrast_floor : float
+        Edges weaker than this fraction of the strong edges of their
+        orientation are left out of the edge map
+        (:data:`stabtool.lines.edges.CONTRAST_FLOOR`).
 
     Examples
     --------
@@ -89,6 +93,7 @@ class LineDetector:
     scale_selection: bool = True
     max_sigma_px: float = 4.0
     weak_line_ratio: float = 0.25
+    contrast_floor: float = CONTRAST_FLOOR
 
     def __post_init__(self) -> None:
         for f in fields(self):
@@ -99,8 +104,9 @@ class LineDetector:
                 continue
             if not (isinstance(v, (int, float)) and np.isfinite(v) and v > 0):
                 raise InputError(f.name, f"must be a positive number, got {v!r}")
-        if self.weak_line_ratio >= 1:
-            raise InputError("weak_line_ratio", f"must be below 1, got {self.weak_line_ratio!r}")
+        for name in ("weak_line_ratio", "contrast_floor"):
+            if getattr(self, name) >= 1:
+                raise InputError(name, f"must be below 1, got {getattr(self, name)!r}")
         if self.low_sigmas > self.high_sigmas:
             raise InputError("low_sigmas", f"must not exceed high_sigmas ({self.high_sigmas}), got {self.low_sigmas}")
 
@@ -126,7 +132,8 @@ def _select_edges(work: np.ndarray, noise: float, cfg: LineDetector,
                   faint_bins: np.ndarray | None = None) -> tuple[np.ndarray, EdgeScale]:
     """Edge map at the scale selected from the width of the map's edges."""
     edges, scale = _select_scale(work, noise, sigma_px=cfg.sigma_px, max_sigma_px=cfg.max_sigma_px,
-                                 low=cfg.low_sigmas, high=cfg.high_sigmas, faint_bins=faint_bins)
+                                 low=cfg.low_sigmas, high=cfg.high_sigmas, faint_bins=faint_bins,
+                                 contrast_floor=cfg.contrast_floor)
     return edges, scale
 
 
@@ -307,7 +314,8 @@ def _detect_core(values: np.ndarray, axes, cfg: LineDetector) -> LineDetection:
     if cfg.scale_selection:
         edges, scale = _select_edges(work, noise, cfg, faint_bins)
     else:
-        edges, *_ = _edge_core(work, cfg.sigma_px, noise, cfg.low_sigmas, cfg.high_sigmas, faint_bins=faint_bins)
+        edges, *_ = _edge_core(work, cfg.sigma_px, noise, cfg.low_sigmas, cfg.high_sigmas, cfg.contrast_floor,
+                               faint_bins=faint_bins)
         scale = None
     if ROW_OFFSETS_CLEAR_OF_LINES:
         work = _offsets_clear_of_lines(values, work, edges, scale, excluded_rows, noise, plain_offsets)

@@ -405,8 +405,13 @@ def _percentile_linear(x: np.ndarray, q: float) -> float:
     return float(b - d * (1 - g) if g >= 0.5 else a + d * g)
 
 
+#: Edges weaker than this fraction of the strong edges of their orientation are not kept (see
+#: :func:`_edge_core`).
+CONTRAST_FLOOR = 0.2
+
+
 def _edge_core(values: np.ndarray, sigma_px: float, noise: float, low: float, high: float,
-               contrast_floor: float = 0.2, *, with_gradient: bool = False, faint_bins: np.ndarray | None = None):
+               contrast_floor: float = CONTRAST_FLOOR, *, with_gradient: bool = False, faint_bins: np.ndarray | None = None):
     """Edge map of ``values`` at one scale (see :func:`edge_map`).
 
     Returns ``(edges, gradient_noise, low, high, valid)``; with
@@ -584,10 +589,11 @@ PROBE_MAX_PIXELS = 128 * 128
 
 
 def _select_scale(values: np.ndarray, noise: float, *, sigma_px: float, max_sigma_px: float, low: float,
-                  high: float, faint_bins: np.ndarray | None = None) -> tuple[np.ndarray, EdgeScale]:
+                  high: float, faint_bins: np.ndarray | None = None,
+                  contrast_floor: float = CONTRAST_FLOOR) -> tuple[np.ndarray, EdgeScale]:
     """Edge map at the selected scale and the :class:`EdgeScale` (core of :func:`edge_scale`)."""
     sa, sb = float(sigma_px), PROBE_FACTOR * float(sigma_px)
-    ra = _edge_core(values, sa, noise, low, high, with_gradient=True, faint_bins=faint_bins)
+    ra = _edge_core(values, sa, noise, low, high, contrast_floor, with_gradient=True, faint_bins=faint_bins)
     # the width is a property of the lines, not of every pixel: on a large map the
     # larger probe scale runs on a central window of at most PROBE_MAX_PIXELS
     ny, nx = values.shape
@@ -595,7 +601,7 @@ def _select_scale(values: np.ndarray, noise: float, *, sigma_px: float, max_sigm
     wy, wx = min(ny, int(np.ceil(ny * f))), min(nx, int(np.ceil(nx * f)))
     y0, x0 = (ny - wy) // 2, (nx - wx) // 2
     win = (slice(y0, y0 + wy), slice(x0, x0 + wx))
-    rb = _edge_core(values[win], sb, noise, low, high, with_gradient=True, faint_bins=faint_bins)
+    rb = _edge_core(values[win], sb, noise, low, high, contrast_floor, with_gradient=True, faint_bins=faint_bins)
     edges_b = rb[0]
     if f < 1.0:
         # away from the window's border (its smoothing sees a replicated edge there)
@@ -615,7 +621,7 @@ def _select_scale(values: np.ndarray, noise: float, *, sigma_px: float, max_sigm
         return ra[0], replace(scale, sigma_px=sa)
     if abs(sel - sb) <= 0.1 and f == 1.0:
         return rb[0], replace(scale, sigma_px=sb)
-    return _edge_core(values, sel, noise, low, high, faint_bins=faint_bins)[0], scale
+    return _edge_core(values, sel, noise, low, high, contrast_floor, faint_bins=faint_bins)[0], scale
 
 
 def edge_scale(
