@@ -1334,11 +1334,14 @@ def _jumps_as_lattice(da: xr.DataArray, detection: LineDetection) -> tuple[LineD
     return again, fit_map, fit
 
 
-def _with_faded_lines(da: xr.DataArray, detection: LineDetection) -> tuple[LineDetection, xr.DataArray, DiagramFit, int] | None:
-    """Detection, fit map and fit with weak dot lines kept (:data:`FADED_LINE_RATIO`), or None.
+def _with_faded_lines(
+    da: xr.DataArray, detection: LineDetection
+) -> tuple[LineDetection, xr.DataArray, DiagramFit, int] | None:
+    """Detection, fit map, fit and the number of dot lines gained with weak lines kept, or None.
 
-    None unless the second detection has more dot lines than ``detection``
-    and its lines give a charge cell.
+    The map is detected again with :data:`FADED_LINE_RATIO` and
+    :data:`FADED_CONTRAST_FLOOR`; None unless that detection has more dot
+    lines than ``detection`` and its lines give a charge cell.
     """
     from .lines import detect_lines
 
