@@ -242,7 +242,7 @@ def _smoothed(values: np.ndarray, sigma_px: float) -> np.ndarray:
     return sm
 
 
-def _drop_weak_lines(refined: list[RefinedLine], names: list[str], ratio: float = 0.25) -> list[RefinedLine]:
+def _drop_weak_lines(refined: list[RefinedLine], names: list[str], ratio: float) -> list[RefinedLine]:
     """Drop dot lines (negative slope) whose fitted step is below ``ratio`` times the median step.
 
     Weak lines among strong ones are sensor texture, not transitions. The
