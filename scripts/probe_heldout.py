@@ -7,7 +7,7 @@ was not tuned on:
 * devices: random double dots built from capacitances (gate couplings
   2–30 aF, cross-couplings 5–50 % of the opposite plunger, mutual capacitance
   5–40 % of 2·min(C_g), total capacitances +5–120 aF), random electron
-  temperature 30–250 mK, random map shape;
+  temperature 30–250 mK (or a range given), random map shape;
 * sensor transfer of the ideal charge read-out ``q = Σ w_i ⟨N_i⟩``
   (``readout="charge"``): a peak ``g(d)`` of the detuning
   ``d = d0 + a·x + b·y ± 0.35·q`` whose operating point drifts linearly over
@@ -168,7 +168,8 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
              start_e: tuple[float, float] | None = None,
              coupling_ratio: tuple[float, float] | None = None, lockin: bool = False,
              response: str = "mean", electrons: tuple[float, float] | None = None,
-             aspect: tuple[float, float] | None = None) -> ProbeMap:
+             aspect: tuple[float, float] | None = None,
+             temperature: tuple[float, float] | None = None) -> ProbeMap:
     """Build held-out map ``seed`` (deterministic in all arguments).
 
     Parameters
@@ -208,6 +209,10 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
         the x span and ``1/f`` times the y span (from the same low corner):
         about ``f²`` times as many dot1 transitions as dot2 ones (default 1,
         a window tuned to show as many of each).
+    temperature : (float, float), optional
+        Draw the electron temperature (K) uniformly in this range instead
+        of 30–250 mK (e.g. 0.3–1 K: hot maps whose lines are several pixels
+        broad).
     """
     from stabtool.simulate import simulate_map
     from stabtool.simulate.quick import double_dot_window
@@ -224,6 +229,8 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
         xr_ = (xr_[0], xr_[0] + f * (xr_[1] - xr_[0]))
         yr_ = (yr_[0], yr_[0] + (yr_[1] - yr_[0]) / f)
     T = float(r.uniform(0.03, 0.25))
+    if temperature is not None:  # (its own draw: every other draw of the seed is unchanged)
+        T = float(np.random.default_rng([seed, 41]).uniform(*temperature))
     ny, nx = (int(v) for v in r.integers(size[0], size[1] + 1, 2))
     kind = str(r.choice(list(sensors)))
     extras = tuple(n for n in NOISES if r.random() < 0.5) if noise is None else tuple(noise)
@@ -493,6 +500,8 @@ def main(argv: list[str] | None = None) -> int:
                         "the charge states")
     p.add_argument("--aspect", default=None,
                    help="stretch the window: x span × f, y span ÷ f, f log-uniform in 'LO:HI' (e.g. 0.4:2.5)")
+    p.add_argument("--temperature", default=None,
+                   help="'A:B': electron temperature in K, uniform (default 0.03:0.25); e.g. 0.3:1 for broad lines")
     p.add_argument("--gates-exchanged", action="store_true",
                    help="exchange each map's two gates (x ↔ y: the slow axis on x), the truth mirrored")
     p.add_argument("--out", default=None, help="folder for one PNG per map (the analysis plot)")
@@ -520,7 +529,7 @@ def main(argv: list[str] | None = None) -> int:
         pm = make_map(s, size=(lo, hi), sensors=sensors, noise=noise, tunnel_coupling_ueV=a.tunnel_ueV,
                       mutual_fraction=_range(a.mutual), start_e=_range(a.start_e), coupling_ratio=_range(a.coupling),
                       lockin=a.lockin, response=a.response, electrons=_range(a.electrons),
-                      aspect=_range(a.aspect))
+                      aspect=_range(a.aspect), temperature=_range(a.temperature))
         if a.gates_exchanged:
             pm = gates_exchanged(pm)
         t0 = time.perf_counter()
