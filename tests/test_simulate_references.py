@@ -132,6 +132,38 @@ def test_thermal_line_has_the_fermi_width_of_the_lever_arm(temperature):
     assert 4 * np.log(1 + np.sqrt(2)) == pytest.approx(3.5255, abs=1e-4)
 
 
+def test_hot_occupations_are_the_boltzmann_average_over_every_charge_state():
+    # Grand-canonical ensemble of the constant-interaction energies (dots exchanging electrons with
+    # leads at μ = 0; van der Wiel et al. 2003): ⟨N⟩ = Σ_N N e^{−U(N)/kT} / Σ_N e^{−U(N)/kT}, summed
+    # here by brute force over N1, N2 = 0…7. At 1 K (kT = 86 µeV) the mutual charging energy
+    # (0.39 meV) is only 4.5 kT: at a triple point a fourth state (one electron more or less on
+    # each dot) holds about 1 % of the weight (a generator that averaged over ±e_i and e_i − e_j
+    # only was off by up to 0.0022 electrons on 16 % of these pixels), while states two electrons
+    # away (≥ 2 meV, 23 kT) weigh < 1e-9.
+    dev = vdw_device(cross=True)
+    temperature = 1.0
+    kT = constants.k * temperature / constants.e  # eV
+    x, y = np.linspace(0.0, 0.03, 61), np.linspace(0.0, 0.03, 57)
+    mean = []
+    for coupling in ((1.0, 0.0), (0.0, 1.0)):  # a linear read-out of one dot's charge
+        sm = simulate_map(dev, x_gate="PA", y_gate="PB", x_range_V=(x[0], x[-1]), y_range_V=(y[0], y[-1]),
+                          shape=(y.size, x.size), temperature_K=temperature, readout="charge",
+                          sensor=SensorModel(coupling_mV=coupling))
+        mean.append(sm.data.values)
+    X, Y = np.meshgrid(x, y)
+    n0 = induced_charge(dev.cdg, np.stack([X.ravel(), Y.ravel()], axis=1), dev.offsets)
+    states = np.array([(a, b) for a in range(8) for b in range(8)], float)
+    u = np.stack([ci_energy(s, n0, dev.ec_eV) for s in states])  # (64, pixels)
+    w = np.exp(-(u - u.min(axis=0)) / kT)
+    p = w / w.sum(axis=0)
+    assert n0.max() < 6.0  # the box of states holds every state within 20 kT of each pixel's lowest
+    for i in range(2):
+        np.testing.assert_allclose(mean[i].ravel(), states[:, i] @ p, atol=1e-6)
+    # (the check has teeth: at a triple point, beside its three degenerate states, a fourth carries
+    # more than 0.5 % of the weight)
+    assert np.sort(p, axis=0)[-4].max() > 0.005
+
+
 @pytest.mark.parametrize("t_ueV,temperature", [(10.0, 0.05), (20.0, 0.1), (10.0, 0.0)])
 def test_interdot_polarisation_follows_the_two_level_formula(t_ueV, temperature):
     dev = vdw_device(cross=True)

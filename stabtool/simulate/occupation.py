@@ -2,8 +2,11 @@
 
 At electron temperature ``T_e > 0`` each pixel's occupations are averaged
 over the charge states near the ground state ``G`` (``G`` itself and
-``G + d`` for the moves ``d = ±e_i, e_i − e_j``; these include every state
-that is degenerate with ``G`` on a line or at a triple point) with Boltzmann weights ``exp(−(U − U_G)/k_B T_e)``. The dots
+``G + d`` for the moves ``d = ±e_i, e_i − e_j, ±(e_i + e_j)``: every state
+that is degenerate with ``G`` on a line or at a triple point, and the one
+a mutual charging energy above a triple point's three, which a hot map
+(``k_B T_e`` a fifth of ``E_Cm`` or more) needs; states further away cost
+a charging energy) with Boltzmann weights ``exp(−(U − U_G)/k_B T_e)``. The dots
 exchange electrons with reservoirs at electrochemical potential 0, so ``U`` is
 the grand-canonical energy and a dot–reservoir line has exactly the
 Fermi–Dirac profile ``f = 1/(1 + exp(μ_i/k_B T_e))`` with
@@ -111,6 +114,8 @@ def near_transition_mask(
     ec = np.asarray(ec_eV, float)
     n0f = np.asarray(n0, float).reshape(-1, nd)
     gf = ground.reshape(-1, nd)
+    # (the moves ±(e_i + e_j) of candidate_moves need no test of their own: U(G ± (e_i + e_j)) − U(G)
+    # is the sum of the excitations ±e_i and ±e_j plus the mutual charging energy E_C,ij ≥ 0)
     moves = basic_moves(nd)
     dmin = np.full(ny * nx, np.nan)
 
@@ -168,8 +173,11 @@ def near_transition_mask(
 
 
 def candidate_moves(n_dots: int) -> np.ndarray:
-    """Moves to the states averaged over: ``0``, ``±e_i`` and ``e_i − e_j``, shape (K, n_dots)."""
-    return np.concatenate([np.zeros((1, n_dots), np.int64), basic_moves(n_dots)], axis=0)
+    """Moves to the states averaged over: ``0``, ``±e_i``, ``e_i − e_j`` and ``±(e_i + e_j)``, shape (K, n_dots)."""
+    eye = np.eye(n_dots, dtype=np.int64)
+    i, j = np.triu_indices(n_dots, 1)
+    pairs = eye[i] + eye[j]
+    return np.concatenate([np.zeros((1, n_dots), np.int64), basic_moves(n_dots), pairs, -pairs], axis=0)
 
 
 @dataclass(frozen=True)
