@@ -203,6 +203,29 @@ def test_refinement_converges_on_sharp_lines():
 
 
 @pytest.mark.regression
+def test_a_fit_does_not_run_into_a_lattice_of_far_more_charge_states_than_the_lines():
+    # The sensor level of every charge state seen is a linear unknown of the fit: a lattice with cells
+    # a third of the size (addition voltages at their 0.3× bound) and the lattice turned by a large M
+    # needs over MAX_LEVEL_GROWTH times the lines' levels, which the fit refuses as a start and as a
+    # step (held-out lock-in seed 36 ran to 5900 levels on 3004 pixels, 176 s for one fit).
+    from dataclasses import replace
+
+    from stabtool.fit.refine import MAX_LEVEL_GROWTH, refine_model
+
+    bm, fit = _line_fit("ge-double", 30.0, 21)
+    ref = refine_model(bm.data, fit)
+    assert ref.converged and ref.ok
+    crowded = dict(ref.params, addition_V1=0.3 * fit.addition_V[0], addition_V2=0.3 * fit.addition_V[1],
+                   M12=ref.params["M12"] + 3.0, M21=ref.params["M21"] + 3.0)
+    bad = refine_model(bm.data, fit, start=replace(ref, params=crowded))
+    assert not bad.params and not bad.ok
+    assert any("sensor levels" in w and f"{MAX_LEVEL_GROWTH:g}×" in w for w in bad.quality.warnings), bad.quality.warnings
+    # an ordinary start (the refined lattice itself) is not refused
+    again = refine_model(bm.data, fit, start=ref)
+    assert again.ok and again.converged
+
+
+@pytest.mark.regression
 def test_refinement_is_adopted_only_when_it_agrees_with_the_lines():
     from dataclasses import replace
 

@@ -818,6 +818,14 @@ class _Problem:
 
 #: Smallest line-based addition voltage the model fit starts from, pixels of its gate's axis
 MIN_START_SPACING_PX = 2.0
+#: Most linear coefficients (sensor levels of the charge states seen) a step of the model fit may
+#: need, as a multiple of those of the line-based lattice on the same pixels. A step that shrinks the
+#: cells (addition voltages down to 0.3×) or turns the lattice (M is not bounded) multiplies the
+#: states; the levels then outnumber the pixels and every step costs a dense solve of thousands of
+#: unknowns. Held-out lock-in seed 36 (the map's sum along x, refitted without a tile of structure):
+#: 119 coefficients at the start, 5900 on 3004 pixels after a few steps, 176 s for one fit of 16
+#: steps (over 20 minutes for the map). Such a step is rejected like one that raises the residual.
+MAX_LEVEL_GROWTH = 4.0
 #: Largest lookup table of charge states (entries) :class:`_States` builds; beyond it, a binary search
 MAX_STATE_TABLE = 4_000_000
 
@@ -1414,6 +1422,7 @@ def refine_model(
                       fit.offsets_V[0], fit.offsets_V[1], w0])
     lo = np.array([-np.inf, -np.inf, 0.3 * dv1, 0.3 * dv2, 0.0, 0.05 * r0, -np.inf, -np.inf, w_lo])
     hi = np.array([np.inf, np.inf, 3 * dv1, 3 * dv2, 0.9 * dv1, 20 * r0, np.inf, np.inf, 0.5 * dv1])
+    theta_lines = theta.copy()
     if start is not None and start.params:
         theta = np.clip(np.array([start.params[k] for k in PARAM_NAMES]), lo, hi)
         w0 = float(theta[8])  # the pixel band and the width's step scale follow the start
@@ -1456,6 +1465,9 @@ def refine_model(
     if n_par > 9:
         scale = np.r_[scale, max(theta[9], w0)]
         prob_.fd_step = 1e-3 * scale
+    # the levels the line-based lattice needs on these pixels (MAX_LEVEL_GROWTH bounds the steps')
+    max_levels = MAX_LEVEL_GROWTH * prob_.design(theta_lines)[0].shape[1]
+
     def solve_lm(theta: np.ndarray, n_iter: int) -> tuple:
         """Levenberg–Marquardt from ``theta`` with the problem's current curvature term."""
         lam = 1e-3
@@ -1463,6 +1475,9 @@ def refine_model(
         it = 0
         rel = 1.0
         a, states = prob_.design(theta)
+        if a.shape[1] > max_levels:
+            raise ValueError(f"the start needs {a.shape[1]} sensor levels, over {MAX_LEVEL_GROWTH:g}× the "
+                             "line-based lattice's")
         ata = prob_.gram(a)
         coef = prob_.solve(ata, a, pz)
         res = pz - a @ coef
@@ -1479,6 +1494,9 @@ def refine_model(
                 step = np.linalg.solve(hmat + lam * np.diag(np.diag(hmat) + 1e-12), g) * scale
                 cand = np.clip(theta + step, lo, hi)
                 a_c, st_c = prob_.design(cand)
+                if a_c.shape[1] > max_levels:  # (a lattice of far smaller or turned cells: MAX_LEVEL_GROWTH)
+                    lam *= 8
+                    continue
                 ata_c = prob_.gram(a_c)
                 coef_c = prob_.solve(ata_c, a_c, pz)
                 res_c = pz - a_c @ coef_c
