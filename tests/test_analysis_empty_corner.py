@@ -135,7 +135,7 @@ def test_no_absolute_labels_from_a_lattice_known_to_worse_than_ten_percent():
 
 
 def test_no_absolute_labels_while_lines_of_a_slope_of_their_own_are_set_aside():
-    # A hot probe map (seed 35 at 0.3–1 K: 0.72 K, gauss sensor, SNR 60, lines 2.6 px broad). Its
+    # A hot probe map (seed 35 at 0.3–1 K: 0.46 K, gauss sensor, SNR 60, lines 2.6 px broad). Its
     # first dot-1 line, next to the empty corner, is 9 % steeper than the family's others and was
     # named with another as a stray set ("another dot?"); without it the dots were called empty one
     # line too early and 17 regions were labelled one dot-1 electron short. An empty corner means
