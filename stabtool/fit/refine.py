@@ -1465,16 +1465,18 @@ def refine_model(
     if n_par > 9:
         scale = np.r_[scale, max(theta[9], w0)]
         prob_.fd_step = 1e-3 * scale
-    # the levels the line-based lattice needs on these pixels (MAX_LEVEL_GROWTH bounds the steps')
-    max_levels = MAX_LEVEL_GROWTH * prob_.design(theta_lines)[0].shape[1]
+    # the levels the line-based lattice needs on these pixels (MAX_LEVEL_GROWTH bounds the steps');
+    # its design is the first one's when the fit starts there
+    design_lines = prob_.design(theta_lines)
+    max_levels = MAX_LEVEL_GROWTH * design_lines[0].shape[1]
 
-    def solve_lm(theta: np.ndarray, n_iter: int) -> tuple:
-        """Levenberg–Marquardt from ``theta`` with the problem's current curvature term."""
+    def solve_lm(theta: np.ndarray, n_iter: int, first: tuple | None = None) -> tuple:
+        """Levenberg–Marquardt from ``theta`` (``first``: its design, when known) with the current curvature term."""
         lam = 1e-3
         converged = False
         it = 0
         rel = 1.0
-        a, states = prob_.design(theta)
+        a, states = first if first is not None else prob_.design(theta)
         if a.shape[1] > max_levels:
             raise ValueError(f"the start needs {a.shape[1]} sensor levels, over {MAX_LEVEL_GROWTH:g}× the "
                              "line-based lattice's")
@@ -1524,7 +1526,9 @@ def refine_model(
     curvature = None
     linear: tuple[np.ndarray, float] | None = None
     try:
-        theta, a, ata, states, coef, res, cost, it, converged = solve_lm(theta, max_iter)
+        at_lines = theta.shape == theta_lines.shape and np.array_equal(theta, theta_lines)
+        theta, a, ata, states, coef, res, cost, it, converged = solve_lm(
+            theta, max_iter, design_lines if at_lines else None)
         if sensor_curvature and converged:
             # the sensor's curvature along the charges, from the levels just fitted; then refit with it
             curvature = _curvature_field(prob_, theta, coef, states, band_w)
