@@ -52,10 +52,18 @@ class StandInAnalyzer:
 
     delay_s: float = 0.0
     crash_on: str = ""  # a file-name fragment that makes the worker process die
+    hang_on: str = ""  # a file-name fragment whose analysis runs for two minutes, swallowing exceptions
 
     def analyze_file(self, path: str) -> StandInResult:
         if self.crash_on and self.crash_on in os.path.basename(path):
             os._exit(13)  # simulate a segfault in a worker: no exception, the process is gone
+        if self.hang_on and self.hang_on in os.path.basename(path):
+            end = time.monotonic() + 120.0
+            while time.monotonic() < end:  # a fit that does not stop, with a catch-all fallback inside
+                try:
+                    time.sleep(0.01)
+                except Exception:  # noqa: BLE001, S110 - what a careless fallback in an analysis does
+                    pass
         if self.delay_s:
             time.sleep(self.delay_s)
         import warnings

@@ -95,6 +95,15 @@ def test_workers_must_be_positive(small_night, tmp_path, capsys):
     assert not (tmp_path / "o").exists()  # refused before anything is written
 
 
+def test_time_limit_must_be_a_non_negative_number_of_seconds(small_night, tmp_path, capsys):
+    for bad in ("-5", "soon", "inf"):
+        with pytest.raises(SystemExit) as exc:
+            main(["batch", str(small_night), "--out", str(tmp_path / "o"), "--time-limit", bad])
+        assert exc.value.code == 2
+        assert "--time-limit" in capsys.readouterr().err
+    assert not (tmp_path / "o").exists()
+
+
 @pytest.mark.slow
 def test_sample_night_end_to_end_with_kill_and_resume(tmp_path):
     """The README command on the sample night, killed with SIGKILL, then resumed."""

@@ -124,6 +124,28 @@ def test_retry_failed_reruns_only_failed_maps(night, tmp_path):
     assert again.n_run == 1  # truncated.nc only; the corrupt file is no longer an input
 
 
+@pytest.mark.parametrize("workers", [1, 2])
+def test_a_map_past_the_time_limit_is_given_up_and_the_batch_goes_on(night, tmp_path, workers):
+    # the stand-in runs two minutes on map002 and swallows every Exception on the way: only a
+    # limit that raises something an `except Exception` cannot catch stops it
+    out = tmp_path / "out"
+    t0 = time.monotonic()
+    report = run_batch([night], StandInAnalyzer(hang_on="map002"), out, workers=workers,
+                       progress=False, time_limit_s=0.5)
+    rows = {Path(r["file"]).name: r for r in _rows(out)}
+    hung = rows["map002.npz"]
+    assert hung["status"] == "failed" and "time limit of 0.5 s" in hung["reason"]
+    assert all(r["status"] == "ok" for n, r in rows.items() if n.startswith("map") and n != "map002.npz")
+    assert report.n_ok == 5 and report.exit_code == 1
+    assert time.monotonic() - t0 < 60  # far less than the two minutes the map would have taken
+
+
+def test_a_negative_time_limit_is_refused(night, tmp_path):
+    with pytest.raises(InputError, match="--time-limit"):
+        run_batch([night], StandInAnalyzer(), tmp_path / "out", workers=1, progress=False, time_limit_s=-1)
+    assert not (tmp_path / "out").exists()
+
+
 @pytest.mark.slow
 def test_local_process_pool_gives_the_same_table_and_survives_a_dying_worker(night, tmp_path):
     serial = run_batch([night], StandInAnalyzer(), tmp_path / "serial", workers=1, progress=False)

@@ -31,7 +31,7 @@ from ..errors import InputError
 from ..io.stacks import split_slice_ref
 from .inputs import discover_inputs
 from .store import BatchRecord, ResultStore, content_hash
-from .worker import FileAnalyzer, analyze_one, one_line_reason
+from .worker import DEFAULT_TIME_LIMIT_S, FileAnalyzer, analyze_one, one_line_reason
 
 __all__ = ["BatchItem", "BatchReport", "run_batch", "default_workers"]
 
@@ -136,15 +136,17 @@ def _init_worker(analyzer: Any) -> None:
         pass
 
 
-def _pool_task(path: str, plot: bool, drift_feature: bool = False) -> dict:
-    return analyze_one(_WORKER_ANALYZER, path, plot=plot, drift_feature=drift_feature)
+def _pool_task(path: str, plot: bool, drift_feature: bool = False, time_limit_s: float | None = None) -> dict:
+    return analyze_one(_WORKER_ANALYZER, path, plot=plot, drift_feature=drift_feature, time_limit_s=time_limit_s)
 
 
 def _run_serial(
-    analyzer: Any, items: Sequence[BatchItem], plot: bool, drift_feature: bool = False
+    analyzer: Any, items: Sequence[BatchItem], plot: bool, drift_feature: bool = False,
+    time_limit_s: float | None = None,
 ) -> Iterator[tuple[BatchItem, dict]]:
     for item in items:
-        yield item, analyze_one(analyzer, item.path, plot=plot, drift_feature=drift_feature)
+        yield item, analyze_one(analyzer, item.path, plot=plot, drift_feature=drift_feature,
+                                time_limit_s=time_limit_s)
 
 
 def _crashed(reason: str) -> dict:
@@ -154,7 +156,7 @@ def _crashed(reason: str) -> dict:
 
 def _run_pool(
     analyzer: Any, items: Sequence[BatchItem], plot: bool, workers: int, keep: dict | None = None,
-    drift_feature: bool = False,
+    drift_feature: bool = False, time_limit_s: float | None = None,
 ) -> Iterator[tuple[BatchItem, dict]]:
     """Local process pool with a bounded queue; survives worker crashes.
 
@@ -169,7 +171,7 @@ def _run_pool(
     """
     with _single_threaded_children():
         ctx = _pool_context()
-        yield from _pool_loop(ctx, analyzer, items, plot, workers, keep, drift_feature)
+        yield from _pool_loop(ctx, analyzer, items, plot, workers, keep, drift_feature, time_limit_s)
 
 
 _THREAD_VARS = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
@@ -226,7 +228,7 @@ def _single_threaded_children() -> Iterator[None]:
 
 def _pool_loop(
     ctx: Any, analyzer: Any, items: Sequence[BatchItem], plot: bool, workers: int, keep: dict | None = None,
-    drift_feature: bool = False,
+    drift_feature: bool = False, time_limit_s: float | None = None,
 ) -> Iterator[tuple[BatchItem, dict]]:
     pending = list(reversed(items))  # pop() from the end keeps input order
     suspects: list[BatchItem] = []
@@ -246,7 +248,7 @@ def _pool_loop(
                 while queue and len(in_flight) < window and not broken:
                     item = queue.pop()
                     try:
-                        in_flight[pool.submit(_pool_task, item.path, plot, drift_feature)] = item
+                        in_flight[pool.submit(_pool_task, item.path, plot, drift_feature, time_limit_s)] = item
                     except cf.process.BrokenProcessPool:
                         queue.append(item)
                         broken = True
@@ -335,6 +337,7 @@ def run_batch(
     netcdf: bool = True,
     table_interval_s: float = 5.0,
     load_options: Mapping[str, Any] | None = None,
+    time_limit_s: float | None = DEFAULT_TIME_LIMIT_S,
 ) -> BatchReport:
     """Analyse every map in ``inputs``; write the table, plots and summary to ``out_dir``.
 
@@ -374,6 +377,14 @@ def run_batch(
     load_options : mapping, optional
         ``var``, ``x``, ``y`` of :func:`stabtool.io.load` for every file (the
         measured quantity and the gates when a file holds several).
+    time_limit_s : float or None
+        A map whose analysis runs longer than this (s) is given up as failed
+        with that reason, and the batch goes on (default
+        :data:`~stabtool.batch.worker.DEFAULT_TIME_LIMIT_S`; None or 0: no
+        limit). Applied in the local worker processes and with ``workers=1``
+        when called from the main thread; not on a dask cluster, whose tasks
+        run in worker threads. ``resume`` with ``retry_failed`` and a larger
+        limit analyses such maps again.
 
     Returns
     -------
@@ -388,6 +399,8 @@ def run_batch(
     t0 = time.perf_counter()
     if workers is not None and int(workers) < 1:
         raise InputError("--workers", f"must be at least 1, got {workers}")
+    if time_limit_s is not None and not (time_limit_s >= 0 and math.isfinite(time_limit_s)):
+        raise InputError("--time-limit", f"must be a number of seconds ≥ 0 (0: no limit), got {time_limit_s}")
     out = Path(out_dir)
     if out.exists() and not out.is_dir():
         raise InputError(out, "--out must be a folder, but a file of that name exists")
@@ -435,8 +448,8 @@ def run_batch(
     else:
         n = default_workers() if workers is None else int(workers)
         n = min(n, max(1, len(todo)))
-        stream = (_run_serial(analyzer, todo, plots, drift) if n == 1
-                  else _run_pool(analyzer, todo, plots, n, kept, drift))
+        stream = (_run_serial(analyzer, todo, plots, drift, time_limit_s) if n == 1
+                  else _run_pool(analyzer, todo, plots, n, kept, drift, time_limit_s))
         workers_used = n
 
     features: dict[str, Any] = {}  # path -> PreparedSweep (drift feature images saved by this run)

@@ -19,6 +19,7 @@ import argparse
 import sys
 from typing import Any
 
+from ..batch.worker import DEFAULT_TIME_LIMIT_S
 from ._options import READOUT_CHOICES, READOUT_HELP, add_load_options, load_options
 
 __all__ = ["add_analysis_options", "make_analyzer", "register", "run"]
@@ -37,6 +38,16 @@ def add_analysis_options(p: argparse.ArgumentParser) -> None:
                      help="lever-arm calibration file")
     p.add_argument("--no-refine", action="store_true", help="skip the global model fit to each map")
     p.add_argument("--readout", choices=READOUT_CHOICES, default="auto", help=READOUT_HELP)
+
+
+def _seconds(text: str) -> float:
+    try:
+        t = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number of seconds, got {text!r}") from None
+    if not (t >= 0 and t < float("inf")):
+        raise argparse.ArgumentTypeError(f"expected a number of seconds ≥ 0 (0: no limit), got {text!r}")
+    return t
 
 
 def make_analyzer(args: argparse.Namespace) -> Any:
@@ -67,6 +78,7 @@ def run(args: argparse.Namespace) -> int:
         retry_failed=args.retry_failed,
         progress=not args.quiet,
         load_options=load_options(args),
+        time_limit_s=args.time_limit,
     )
     if not args.quiet:
         print(report.summary_line(), file=sys.stderr)
@@ -103,6 +115,9 @@ def register(subparsers: Any) -> None:
                    help="finish an interrupted batch in DIR; finished maps are not redone")
     p.add_argument("--retry-failed", action="store_true",
                    help="with --resume, analyse the maps that failed before once more")
+    p.add_argument("--time-limit", type=_seconds, default=DEFAULT_TIME_LIMIT_S, metavar="S",
+                   help=f"give a map up as failed when its analysis runs longer than S seconds and go on "
+                   f"(default {DEFAULT_TIME_LIMIT_S:g}; 0: no limit; local workers only, not on a dask cluster)")
     p.add_argument("--quiet", action="store_true",
                    help="no progress bar, no summary line, no warnings (for cron jobs)")
     p.set_defaults(func=run)
