@@ -687,3 +687,28 @@ def test_a_model_fit_with_unphysical_sensor_levels_is_not_adopted():
     # the SNR quoted by the verdicts is not the unphysical fit's
     assert not any(f"SNR {res.refinement.snr:.1f}" in w for w in res.quality.warnings)
     assert any("SNR" in w for w in res.quality.warnings)
+
+
+def test_normal_matrix_solves_match_numpy_and_survive_a_singular_matrix():
+    # the model fit factorises each design's AᵀA once (Cholesky) for the data and the Jacobian's
+    # columns; reference: numpy.linalg.solve on the same system, and the pseudo-inverse's
+    # least-norm solution where the matrix is singular
+    from stabtool.fit.refine import _Gram
+
+    g = np.random.default_rng(3)
+    a = g.normal(size=(200, 12))
+    ata = a.T @ a
+    rhs = g.normal(size=(12, 4))
+    np.testing.assert_allclose(_Gram(ata).solve(rhs), np.linalg.solve(ata, rhs), rtol=1e-10)
+    np.testing.assert_allclose(_Gram(ata).solve(rhs[:, 0]), np.linalg.solve(ata, rhs[:, 0]), rtol=1e-10)
+    # indefinite but regular (Cholesky fails, LU holds)
+    m = ata.copy()
+    m[0, 0] = -m[0, 0]
+    np.testing.assert_allclose(_Gram(m).solve(rhs), np.linalg.solve(m, rhs), rtol=1e-8)
+    # exactly singular: a column of zeros (a state no pixel sees)
+    a0 = a.copy()
+    a0[:, 5] = 0.0
+    s = a0.T @ a0
+    out = _Gram(s).solve(rhs)
+    np.testing.assert_allclose(out, np.linalg.pinv(s) @ rhs, rtol=1e-8, atol=1e-12)
+    assert np.all(np.isfinite(out))

@@ -159,6 +159,7 @@ from functools import lru_cache
 from typing import Any
 
 import numpy as np
+import scipy.linalg
 import scipy.sparse as sp
 import xarray as xr
 
@@ -712,6 +713,38 @@ CURVATURE_LINEAR_BLOCKS = 6
 CURVATURE_QUADRATIC_BLOCKS = 12
 
 
+class _Gram:
+    """A symmetric positive (semi-)definite normal matrix ``AᵀA``, factorised on first use.
+
+    Every design of the model fit is solved against the data and then against
+    the Jacobian's columns (variable projection): one Cholesky factorisation
+    serves both (LU, then the pseudo-inverse, where it fails).
+    """
+
+    def __init__(self, matrix: np.ndarray) -> None:
+        self.matrix = matrix
+        self._factor: Any = None
+
+    def solve(self, rhs: np.ndarray) -> np.ndarray:
+        """``(AᵀA)⁻¹ rhs``."""
+        rhs = np.asarray(rhs)
+        if self._factor is None:
+            try:
+                self._factor = ("cho", scipy.linalg.cho_factor(self.matrix, check_finite=False))
+            except np.linalg.LinAlgError:
+                with warnings.catch_warnings():  # (a singular matrix: the pseudo-inverse below)
+                    warnings.simplefilter("ignore", scipy.linalg.LinAlgWarning)
+                    lu = scipy.linalg.lu_factor(self.matrix, check_finite=False)
+                singular = not np.all(np.abs(np.diag(lu[0])) > 0)
+                self._factor = ("pinv", np.linalg.pinv(self.matrix)) if singular else ("lu", lu)
+        kind, f = self._factor
+        if kind == "cho":
+            return scipy.linalg.cho_solve(f, rhs, check_finite=False)
+        if kind == "lu":
+            return scipy.linalg.lu_solve(f, rhs, check_finite=False)
+        return f @ rhs
+
+
 class _Problem:
     """The separable least-squares problem on a fixed set of pixels.
 
@@ -763,19 +796,16 @@ class _Problem:
         return a, _States(states, colmap, self.tilt)
 
     @staticmethod
-    def gram(a: sp.csr_matrix) -> np.ndarray:
-        """``AᵀA`` (dense) with a tiny ridge for states seen at very few pixels."""
+    def gram(a: sp.csr_matrix) -> _Gram:
+        """``AᵀA`` (dense) with a tiny ridge for states seen at very few pixels, factorised once."""
         ata = (a.T @ a).toarray()
         d = np.diag(ata).copy()
         ata[np.diag_indices_from(ata)] += 1e-9 * np.maximum(d, d.max() * 1e-6)
-        return ata
+        return _Gram(ata)
 
     @staticmethod
-    def solve(ata: np.ndarray, a: sp.csr_matrix, z: np.ndarray) -> np.ndarray:
-        try:
-            return np.linalg.solve(ata, a.T @ z)
-        except np.linalg.LinAlgError:
-            return np.linalg.pinv(ata) @ (a.T @ z)
+    def solve(ata: _Gram, a: sp.csr_matrix, z: np.ndarray) -> np.ndarray:
+        return ata.solve(a.T @ z)
 
     def thermal(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         """:func:`_thermal` at the fitted pixels (the last evaluation is kept: the Jacobian follows the design)."""
@@ -1300,7 +1330,7 @@ def _model_and_jacobian(
 
 
 def _tunnel_score(prob_: _Problem, theta: np.ndarray, coef: np.ndarray, states: _States, a: sp.csr_matrix,
-                  ata: np.ndarray, jp: np.ndarray, res: np.ndarray) -> float:
+                  ata: _Gram, jp: np.ndarray, res: np.ndarray) -> float:
     """Score test (Rao 1948) for an interdot tunnel coupling at a converged fit without one.
 
     The model depends on the coupling through ``s = t²`` (the thermal density matrix is even in
@@ -1320,7 +1350,7 @@ def _tunnel_score(prob_: _Problem, theta: np.ndarray, coef: np.ndarray, states: 
     up = _model_and_jacobian(prob_.px, prob_.py, prob_.phi, th, coef, states, prob_.n_min,
                              thermal=_thermal(prob_.px, prob_.py, th, prob_.n_min))[0]
     js = (up - base) / (t * t)
-    js = js - a @ np.linalg.solve(ata, np.asarray(a.T @ js))
+    js = js - a @ ata.solve(a.T @ js)
     js = js - jp @ np.linalg.lstsq(jp, js, rcond=None)[0]
     contrib = js * res
     order, starts = _cluster_runs(prob_.rows)
@@ -1487,7 +1517,7 @@ def refine_model(
         for it in range(1, n_iter + 1):
             jac = prob_.jacobian(theta, coef, states)
             # Kaufman's variable-projection Jacobian: the linear coefficients follow the step
-            jac = jac - a @ np.linalg.solve(ata, np.asarray(a.T @ jac))
+            jac = jac - a @ ata.solve(a.T @ jac)
             js = jac * scale
             g = js.T @ res
             hmat = js.T @ js
@@ -1548,7 +1578,7 @@ def refine_model(
     # ------------------------------------------------------------- covariance
     jac = prob_.jacobian(theta, coef, states, central=True)
     # variable projection: remove the part of J the linear coefficients can absorb
-    jp = jac - a @ np.linalg.solve(ata, np.asarray(a.T @ jac))
+    jp = jac - a @ ata.solve(a.T @ jac)
     n_lin = a.shape[1]
     dof = max(pz.size - n_par - n_lin, 1)
     chi2 = float(cost / dof) / sig**2
