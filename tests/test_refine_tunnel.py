@@ -167,6 +167,21 @@ def test_a_coupling_beyond_the_mutual_charging_energy_below_thermal_or_unresolve
 
 
 @pytest.mark.regression
+def test_the_coupled_fit_is_never_stated_more_precise_than_the_plain_one():
+    # nested least squares on the same pixels: one more parameter cannot make the others better
+    # known, so the adopted errors are at least the plain fit's (with its systematic floor)
+    from stabtool.fit.refine import _with_floor
+
+    _, plain, coupled, fit = _fits(40.0, seed=0)
+    for p in (plain, replace(plain, cov=25.0 * plain.cov)):  # as fitted; and a plain fit 5× less sure
+        adopted = adopt_tunnel_refinement(fit, coupled, plain=p)
+        assert adopted.adopted
+        floor_plain = np.sqrt(np.diag(_with_floor(fit, p)[1]))
+        stated = np.sqrt(np.diag(adopted.fit.param_cov))
+        assert np.all(stated >= floor_plain * (1 - 1e-9))
+
+
+@pytest.mark.regression
 def test_model_fit_coupling_in_microelectronvolts_with_a_known_lever_arm():
     """t = e α11 t' within the specification's 10 % when α11 is given (the truth's)."""
     a = np.asarray(quick_double_dot("gaas-double", rng=2, shape=(8, 8)).truth.lever_arm)  # the preset's α
