@@ -26,9 +26,10 @@ from .store import _jsonable
 __all__ = ["DEFAULT_TIME_LIMIT_S", "FileAnalyzer", "MapTimeLimit", "analyze_one", "one_line_reason", "sweep_time",
            "map_info", "time_limit"]
 
-#: Default wall-clock limit of one map's analysis in a batch, s. Maps of the held-out probe take
-#: 0.1–9 s (median 0.4 s) and 1024² maps about a minute; a map still running after ten minutes has
-#: met a case the analysis does not bound, and holding the night's queue for it helps nobody.
+#: Default wall-clock limit of one map's analysis in a batch, s. Maps of the held-out probe (120–260
+#: px a side) take about 0.5–10 s alone (median ≈ 3 s) and up to 70–80 s with other runs sharing the
+#: machine; a map still running after ten minutes has met a case the analysis does not bound, and
+#: holding the night's queue for it helps nobody.
 DEFAULT_TIME_LIMIT_S = 600.0
 
 

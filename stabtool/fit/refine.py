@@ -2084,7 +2084,8 @@ def adopt_tunnel_refinement(fit: DiagramFit, ref: Refinement, plain: Refinement 
     test and the mean of :func:`adopt_refinement` do not apply. The refined
     ``(M12, M21, ΔV1, δ1, ΔV2, δ2)`` are adopted with their own covariance
     plus :data:`SYSTEMATIC_FLOOR` and, given the ``plain`` fit without the coupling,
-    :data:`TUNNEL_SHIFT_SHARE` of the change the coupling made, when the refinement is sound (``ref.ok``:
+    :data:`TUNNEL_SHIFT_SHARE` of the change the coupling made, each variance at least the plain
+    fit's (:data:`TUNNEL_ERRORS_AT_LEAST_PLAIN`), when the refinement is sound (``ref.ok``:
     converged, no sharp residual structure, steps not weak), the coupling
     is resolved (at least :data:`TUNNEL_MIN_SIGMA` standard errors), below
     :data:`TUNNEL_MAX_OVER_MUTUAL` times the mutual charging energy and at least
