@@ -203,7 +203,7 @@ BAND_WIDTHS = 5.0
 #: Largest number of fitted pixels (band pixels are thinned evenly above it). The band holds most
 #: of a map (13 500–38 000 of 20 000–52 000 pixels on held-out probe maps): at 2500 the fit saw
 #: 7–18 % of it. At 10 000 (twenty-fourth session) the probe's sets 0:64, 64:128 and row walk gave
-#: ok 53 → 63 with none silent and smaller errors against the truth, for about three times the
+#: ok 53 → 63 with none silent and smaller errors against the truth, for about 2.5 times the
 #: analysis time (median 1.1 → 2.8 s per map; the tunnel-coupled refits take most of it). Pixels
 #: nearest the lines first (60 %, the rest thinned) was tried too and was less accurate.
 MAX_POINTS = 10000
