@@ -65,6 +65,7 @@ Usage::
     python scripts/probe_heldout.py --seeds 0:48 --lockin            # derivative read-out (lines as peaks)
     python scripts/probe_heldout.py --seeds 0:64 --response states   # the sensor averages over charge states
     python scripts/probe_heldout.py --seeds 0:64 --gates-exchanged   # x ↔ y: the slow axis on x, truth mirrored
+    python scripts/probe_heldout.py --seeds 0:48 --virtual 0.05      # swept along virtual gates (lines along the axes)
 
 The map factory :func:`make_map` and :func:`evaluate` are importable (for
 scratch experiments that patch the analysis).
@@ -169,7 +170,8 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
              coupling_ratio: tuple[float, float] | None = None, lockin: bool = False,
              response: str = "mean", electrons: tuple[float, float] | None = None,
              aspect: tuple[float, float] | None = None,
-             temperature: tuple[float, float] | None = None) -> ProbeMap:
+             temperature: tuple[float, float] | None = None,
+             virtual: float | None = None) -> ProbeMap:
     """Build held-out map ``seed`` (deterministic in all arguments).
 
     Parameters
@@ -213,6 +215,13 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
         Draw the electron temperature (K) uniformly in this range instead
         of 30–250 mK (e.g. 0.3–1 K: hot maps whose lines are several pixels
         broad).
+    virtual : float, optional
+        Sweep two virtual gates ``VX``, ``VY`` instead of ``GX``, ``GY``: the
+        directions of a virtual-gate matrix that is the true one plus an
+        error drawn uniformly in ``±virtual`` on each off-diagonal element
+        (0: the lines run along the axes). The truth is that of the virtual
+        gates (its Cdg off-diagonals are then near minus the mutual
+        capacitance times the lever arm, i.e. negative).
     """
     from stabtool.simulate import simulate_map
     from stabtool.simulate.quick import double_dot_window
@@ -223,7 +232,20 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
     if electrons is not None:  # (the default draw stays, so every other draw of the seed is unchanged)
         n_e = float(np.random.default_rng([seed, 29]).uniform(*electrons))
     e0 = 0.35 if start_e is None else float(np.random.default_rng([seed, 17]).uniform(*start_e))
-    xr_, yr_ = double_dot_window(dev, x_gate="GX", y_gate="GY", electrons=n_e + 0.35 - e0, start_e=e0)
+    x_name, y_name, directions = "GX", "GY", {}
+    if virtual is not None:  # (its own draw: every other draw of the seed is unchanged)
+        a_ = dev.lever_arm
+        m_ = a_ / np.diag(a_)[:, None]
+        off = np.random.default_rng([seed, 43]).uniform(-virtual, virtual, 2)
+        minv = np.linalg.inv(m_ + np.array([[0.0, off[0]], [off[1], 0.0]]))
+        directions = {"x_direction": {"GX": float(minv[0, 0]), "GY": float(minv[1, 0])},
+                      "y_direction": {"GX": float(minv[0, 1]), "GY": float(minv[1, 1])}}
+        x_name, y_name = "VX", "VY"
+        xr_, yr_ = double_dot_window(dev.with_virtual_gates({"VX": directions["x_direction"],
+                                                            "VY": directions["y_direction"]}),
+                                     x_gate=x_name, y_gate=y_name, electrons=n_e + 0.35 - e0, start_e=e0)
+    else:
+        xr_, yr_ = double_dot_window(dev, x_gate=x_name, y_gate=y_name, electrons=n_e + 0.35 - e0, start_e=e0)
     if aspect is not None:  # (its own draw: every other draw of the seed is unchanged)
         f = float(np.exp(np.random.default_rng([seed, 37]).uniform(np.log(aspect[0]), np.log(aspect[1]))))
         xr_ = (xr_[0], xr_[0] + f * (xr_[1] - xr_[0]))
@@ -254,9 +276,9 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
         # 1/f charge noise on both dots, rms 0.003–0.03 e over the sweep (drawn apart from the map's
         # other draws, so that the rest of the map is the one without it)
         kw["artefacts"] = Artefacts(charge_noise_e=float(np.random.default_rng([seed, 31]).uniform(0.003, 0.03)))
-    sm = simulate_map(dev, x_gate="GX", y_gate="GY", x_range_V=xr_, y_range_V=yr_, shape=(ny, nx),
+    sm = simulate_map(dev, x_gate=x_name, y_gate=y_name, x_range_V=xr_, y_range_V=yr_, shape=(ny, nx),
                       temperature_K=T, readout=readout, tunnel_coupling_ueV=tunnel_coupling_ueV,
-                      rng=seed, **kw)
+                      rng=seed, **directions, **kw)
     da = sm.data.copy()
     q = np.asarray(da.values, float)
     X, Y = np.meshgrid(np.linspace(0, 1, nx), np.linspace(0, 1, ny))
@@ -357,7 +379,14 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
     sensor = kind + ("+lockin" if lockin and kind != "transport" else "")
     meta = dict(seed=seed, sensor=sensor, noise="+".join(("white",) + extras), snr=snr, T=round(T, 3),
                 shape=(ny, nx))
-    return ProbeMap(data=da, truth=sm.truth.to_json(), meta=meta)
+    truth = sm.truth.to_json()
+    if virtual is not None and truth.get("device"):
+        # the charge-label check reads the capacitances to the two swept gates
+        dev_t = dict(truth["device"])
+        cols = [list(dev_t["gate_names"]).index(g) for g in (x_name, y_name)]
+        dev_t["cdg_aF"] = np.asarray(dev_t["cdg_aF"], float)[:, cols].tolist()
+        truth["device"] = dev_t
+    return ProbeMap(data=da, truth=truth, meta=meta)
 
 
 def gates_exchanged(pm: ProbeMap) -> ProbeMap:
@@ -504,6 +533,9 @@ def main(argv: list[str] | None = None) -> int:
                    help="'A:B': electron temperature in K, uniform (default 0.03:0.25); e.g. 0.3:1 for broad lines")
     p.add_argument("--gates-exchanged", action="store_true",
                    help="exchange each map's two gates (x ↔ y: the slow axis on x), the truth mirrored")
+    p.add_argument("--virtual", type=float, default=None,
+                   help="sweep virtual gates VX, VY made from the true virtual-gate matrix with each off-diagonal "
+                        "element off by up to ± this (e.g. 0.05; 0: lines along the axes)")
     p.add_argument("--out", default=None, help="folder for one PNG per map (the analysis plot)")
     p.add_argument("--verbose", action="store_true", help="print every warning of every map")
     a = p.parse_args(argv)
@@ -529,7 +561,7 @@ def main(argv: list[str] | None = None) -> int:
         pm = make_map(s, size=(lo, hi), sensors=sensors, noise=noise, tunnel_coupling_ueV=a.tunnel_ueV,
                       mutual_fraction=_range(a.mutual), start_e=_range(a.start_e), coupling_ratio=_range(a.coupling),
                       lockin=a.lockin, response=a.response, electrons=_range(a.electrons),
-                      aspect=_range(a.aspect), temperature=_range(a.temperature))
+                      aspect=_range(a.aspect), temperature=_range(a.temperature), virtual=a.virtual)
         if a.gates_exchanged:
             pm = gates_exchanged(pm)
         t0 = time.perf_counter()

@@ -77,6 +77,7 @@ def test_error_messages_print_enough_digits():
     fit = SimpleNamespace(ok=True, quality=old, addition_V=np.array([0.02, 0.02]),
                           addition_V_error=np.array([1e-4, 1e-4]), cdg_aF=cdg,
                           cdg_aF_error=cdg * np.array([[MAX_CDG_REL_ERROR + 4e-5, 0.005], [0.005, 0.005]]),
+                          vg_matrix=np.array([[1.0, 0.3], [0.25, 1.0]]),
                           vg_matrix_error=np.array([[0, 0.001], [0.001, 0]]))
     q = error_verdict(fit)
     assert not q.ok

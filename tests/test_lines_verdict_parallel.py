@@ -9,6 +9,7 @@ one of its lines is exactly vertical or has a vanishing stated error.
 from __future__ import annotations
 
 import numpy as np
+import pytest
 
 from stabtool.lines.result import LineFamily, TransitionLine
 from stabtool.lines.verdict import assess_quality
@@ -42,3 +43,41 @@ def test_a_vertical_line_does_not_hide_the_scatter_of_the_others():
 
 def test_parallel_steep_family_with_a_vertical_line_is_not_flagged():
     assert not _not_parallel(_families([-50.0, -50.5, -49.6, -np.inf], [2.0, 2.0, 2.0, np.inf]))
+
+
+def _warnings(fams):
+    return assess_quality(fams, (), snr=30.0, min_snr=3.0, excluded_fraction=0.0).warnings
+
+
+def _along_the_y_axis(inverse_slopes, inverse_error, family_inverse_error):
+    """dot1 lines within a fraction of a degree of vertical (a map swept along virtual gates)."""
+    s = 1.0 / np.asarray(inverse_slopes, float)
+    dot1 = tuple(_line("dot1", v, inverse_error * v**2) for v in s)
+    m = float(np.mean(inverse_slopes))
+    fams = _families([-5.0] * 3, [0.01] * 3)
+    fams["dot1"] = LineFamily("dot1", 1.0 / m, family_inverse_error / m**2, dot1)
+    return fams
+
+
+def test_a_family_along_an_axis_is_judged_on_its_absolute_cross_talk_error():
+    # virtual gates: M12 = −1/slope ≈ 0.001 and the lines scatter by 0.0007 about it (0.0005 each):
+    # relative to 0.001 that is 70 % and an error of 50 %, but the virtual-gate bounds are absolute
+    # (issue bounds: 0.005 on a clean map); the checks divide by MIN_SLOPE_SCALE = 0.1 instead
+    fams = _along_the_y_axis([0.001, 0.0018, 0.0004, 0.0012], 0.0005, 0.0005)
+    ws = _warnings(fams)
+    assert not [w for w in ws if w.startswith("dot1")], ws
+    # the same family, its slope known only to 0.002 in M12 (2 % of the floor): doubtful
+    fams = _along_the_y_axis([0.001, 0.0018, 0.0004, 0.0012], 0.0005, 0.002)
+    assert [w for w in _warnings(fams) if w.startswith("dot1 slope") and "large error" in w]
+    # and lines 0.02 apart in M12 with errors of 0.0005 are not parallel
+    fams = _along_the_y_axis([0.001, 0.03, -0.02, 0.012], 0.0005, 0.0005)
+    assert [w for w in _warnings(fams) if "dot1 lines are not parallel" in w]
+
+
+def test_above_the_floor_the_relative_checks_are_unchanged():
+    from stabtool.lines.verdict import relative_slope_error
+
+    assert relative_slope_error(-0.45, 0.0045) == pytest.approx(0.01)
+    assert relative_slope_error(-2.2, 0.022) == pytest.approx(0.01)  # 1/s: error 0.022/2.2²
+    assert relative_slope_error(-0.02, 0.0005) == pytest.approx(0.005)  # 0.0005 / 0.1
+    assert relative_slope_error(np.inf, 0.0) == 0.0

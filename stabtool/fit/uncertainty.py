@@ -97,27 +97,55 @@ def relative_cdg_errors(fit: Any) -> np.ndarray:
 
 #: A gate capacitance below ``−NEGATIVE_CDG_SIGMAS`` stated errors is reported as unphysical.
 NEGATIVE_CDG_SIGMAS = 3.0
+#: ... unless both off-diagonal virtual-gate elements ``|M_ij|`` are below this: the gates look virtual
+#: (plungers of neighbouring dots have cross-talk of 0.1–0.5; the held-out probe draws 0.05–0.5 for each)
+VIRTUAL_GATE_CROSSTALK = 0.1
+#: ... and ``|Cdg_ij|`` is below this fraction of the other dot's own ``Cdg_jj`` (on virtual gates it is
+#: about ``C_m/C_j`` of it; the probe's most strongly coupled dots have ``C_m/C_j`` up to 0.45)
+VIRTUAL_GATE_MAX_CROSS = 0.5
 
 
-def negative_capacitances(cdg_aF: np.ndarray, cdg_err_aF: np.ndarray) -> list[str]:
-    """One warning for every gate capacitance significantly below zero.
+def negative_capacitances(cdg_aF: np.ndarray, cdg_err_aF: np.ndarray,
+                          vg_matrix: np.ndarray | None = None) -> list[tuple[str, bool]]:
+    """One warning (text, doubtful) for every gate capacitance significantly below zero.
 
-    A gate's capacitance to a dot is positive (the constant-interaction model,
-    van der Wiel et al., Rev. Mod. Phys. 75, 1 (2003)); a diagram that gives
-    ``Cdg_ij < −3σ`` has its charge lattice mislabelled (seen on held-out maps:
-    a mutual shift taken as half the addition voltage, strongly coupled dots
-    labelled with the wrong cell; 12 of 579 probe maps with a Cdg, every one
-    of them 150–700 % off on some element).
+    A physical gate's capacitance to a dot is positive (the constant-interaction
+    model, van der Wiel et al., Rev. Mod. Phys. 75, 1 (2003)); a diagram that
+    gives ``Cdg_ij < −3σ`` on such gates has its charge lattice mislabelled
+    (seen on held-out maps: a mutual shift taken as half the addition
+    voltage, strongly coupled dots labelled with the wrong cell; 12 of 579
+    probe maps with a Cdg, every one of them 150–700 % off on some element).
+
+    A virtual gate (a combination of physical gates, swept so that it moves
+    its own dot only) has ``Cdg = Cdd·α`` with the cross lever arm ``α_ij``
+    near zero: ``Cdg_ij = C_i α_ij − C_m α_jj`` is then negative, by about
+    the mutual capacitance times ``α_jj``. Physical gates give
+    ``M_ij = α_ij/α_ii ≥ C_m α_jj/(C_i α_ii) > 0``; a negative element on a
+    map whose two cross-talks ``|M_12|``, ``|M_21|`` are both below
+    ``VIRTUAL_GATE_CROSSTALK`` (``vg_matrix`` given: both families along
+    their axes, the signature of virtual gates) and with a
+    size below ``VIRTUAL_GATE_MAX_CROSS`` of ``Cdg_jj`` (about ``C_m/C_j`` of
+    it) is therefore a note that the gates look virtual, not a doubt.
     """
     cdg, err = np.asarray(cdg_aF, float), np.asarray(cdg_err_aF, float)
+    m = None if vg_matrix is None else np.asarray(vg_matrix, float)
+    virtual = m is not None and m.shape == (2, 2) and bool(np.all(np.abs(m[[0, 1], [1, 0]]) < VIRTUAL_GATE_CROSSTALK))
     out = []
     for (i, j), v in np.ndenumerate(cdg):
         e = err[i, j]
         if np.isfinite(v) and np.isfinite(e) and v < -NEGATIVE_CDG_SIGMAS * e:
             gate = f"the {('x', 'y')[j]} gate" if j < 2 else f"gate {j + 1}"
-            out.append(f"gate capacitance Cdg{i + 1}{j + 1} (dot {i + 1}, {gate}) = {v:.3g} ± {e:.2g} aF is "
-                       "negative (a gate's capacitance to a dot is positive): the charge lattice is probably "
-                       "mislabelled")
+            head = f"gate capacitance Cdg{i + 1}{j + 1} (dot {i + 1}, {gate}) = {v:.3g} ± {e:.2g} aF is negative"
+            own = cdg[j, j] if j < cdg.shape[0] else np.nan
+            if m is not None and virtual and i != j and -v < VIRTUAL_GATE_MAX_CROSS * own:
+                note = (f"{head}, as on virtual gates: with the cross-talk M{i + 1}{j + 1} = {m[i, j]:.3g} "
+                        "near zero it is minus the mutual capacitance times the other dot's lever arm "
+                        "(a physical gate's capacitance is positive)")
+                out.append((note, False))
+            else:
+                doubt = (f"{head} (a gate's capacitance to a dot is positive): the charge lattice is "
+                         "probably mislabelled")
+                out.append((doubt, True))
     return out
 
 
@@ -155,8 +183,8 @@ def error_verdict(fit: Any) -> Any:
             f"gate capacitances uncertain (up to {_pct(worst, MAX_CDG_REL_ERROR)} % on an element; "
             f"ok needs ≤ {100 * MAX_CDG_REL_ERROR:g} % on every element)"
         )
-    for msg in negative_capacitances(fit.cdg_aF, fit.cdg_aF_error):
-        q = q.with_warning(msg)
+    for msg, doubtful in negative_capacitances(fit.cdg_aF, fit.cdg_aF_error, fit.vg_matrix):
+        q = q.with_warning(msg, doubtful=doubtful)
     vg = float(np.nanmax(fit.vg_matrix_error))
     if not vg <= MAX_VG_ERROR:
         q = q.with_warning(f"virtual-gate matrix uncertain (error up to {vg:.4f}; ok needs ≤ {MAX_VG_ERROR:g})")

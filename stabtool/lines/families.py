@@ -151,10 +151,50 @@ def classify_lines(lines: Sequence[TransitionLine], axes: MapAxes, *, tolerance_
             join = pos & (np.abs(_wrapped(ang - ref)) <= tolerance_deg)
             names[join] = fam
             pos &= ~join
+        pos &= ~_axis_families(names, ang, length_px, pos, tolerance_deg)
         if pos.any():
             mem = _members(a, length_px, pos, tolerance_deg)
             names[mem] = "interdot"
     return [str(v) for v in names]
+
+
+#: A dot family missing among the negative slopes may be a family of positive ones within this angle
+#: (pixel frame, degrees) of its axis: dot1 of the y axis, dot2 of the x axis. On a map swept along
+#: virtual gates the dot lines run along the axes, and an estimate of the virtual-gate matrix that is
+#: off by a few per cent tilts them either way (common practice, no source).
+AXIS_FAMILY_DEG = 8.0
+#: ... and it takes at least this many such lines
+AXIS_FAMILY_MIN_LINES = 2
+
+
+def _axis_families(names: np.ndarray, ang: np.ndarray, length_px: np.ndarray, pos: np.ndarray,
+                   tolerance_deg: float) -> np.ndarray:
+    """Positive-slope lines named as a dot family that is missing, in place; returns those named.
+
+    The dot lines of a map swept along virtual gates run along the axes
+    (dot1 vertical, dot2 horizontal: each virtual plunger moves its own dot
+    only). Where the matrix used for the sweep is a little off, a family
+    tilts to positive slopes and the sign test takes it for interdot lines.
+    A missing dot family (fewer than two lines) takes the positive lines
+    within ``AXIS_FAMILY_DEG`` of its axis, when at least
+    ``AXIS_FAMILY_MIN_LINES`` of them are parallel. Interdot segments run
+    between the two axes (on a virtual map near 45°) and are not taken.
+    """
+    named = np.zeros(names.shape, bool)
+    for fam, axis_deg in (("dot1", 90.0), ("dot2", 0.0)):
+        if (names == fam).sum() >= AXIS_FAMILY_MIN_LINES:
+            continue
+        near = pos & ~named & (np.abs(_wrapped(ang - axis_deg)) <= AXIS_FAMILY_DEG)
+        if near.sum() < AXIS_FAMILY_MIN_LINES:
+            continue
+        # angles about the axis (wrapped: a vertical family holds lines at +89° and −89°)
+        about = _wrapped(ang - axis_deg)
+        mem = _members(about, length_px, near, tolerance_deg)
+        if mem.sum() >= AXIS_FAMILY_MIN_LINES:
+            # the family's own negative members, if any, stay with it
+            names[mem] = fam
+            named |= mem
+    return named
 
 
 def _wrapped(d: np.ndarray) -> np.ndarray:

@@ -17,6 +17,12 @@ __all__ = ["family_slope", "assess_quality"]
 MAX_REL_SLOPE_ERROR = 0.01
 #: Relative spread of slopes within a family above this (and significant) is doubtful.
 MAX_REL_SLOPE_SPREAD = 0.05
+#: The two relative checks divide by the family's cross-talk term, ``|1/slope|`` (dot1, steep) or
+#: ``|slope|`` (dot2), in volts: its virtual-gate matrix element. Below this value they divide by
+#: it instead: on a map swept along virtual gates the lines run along the axes, the element is near 0
+#: and a relative error means nothing (the virtual-gate bounds are absolute). Above it, as on every
+#: map of physical plungers, the checks are unchanged.
+MIN_SLOPE_SCALE = 0.1
 
 
 def family_slope(lines: Sequence[TransitionLine]) -> tuple[float, float, float]:
@@ -57,6 +63,20 @@ def family_slope(lines: Sequence[TransitionLine]) -> tuple[float, float, float]:
     return m, err, chi2r
 
 
+def relative_slope_error(slope: float, stderr: float) -> float:
+    """Error of a family slope relative to its cross-talk term (at least ``MIN_SLOPE_SCALE``).
+
+    For a shallow family (|slope| ≤ 1) the term is the slope; for a steep
+    one ``1/slope``, whose error is ``stderr/slope²``: above the floor both
+    give ``stderr/|slope|``.
+    """
+    if abs(slope) > 1.0:
+        v, ve = 1.0 / slope, stderr / slope**2
+    else:
+        v, ve = slope, stderr
+    return float(ve / max(abs(v), MIN_SLOPE_SCALE))
+
+
 def assess_quality(
     families: dict[str, LineFamily],
     unassigned: Sequence[TransitionLine],
@@ -84,7 +104,7 @@ def assess_quality(
         if n < 2:
             q = q.with_warning(f"only {n} {name} line found; need at least 2 for a reliable slope")
         if np.isfinite(fam.slope) and np.isfinite(fam.slope_stderr):
-            rel = fam.slope_stderr / abs(fam.slope)
+            rel = relative_slope_error(fam.slope, fam.slope_stderr)
             if rel > MAX_REL_SLOPE_ERROR:
                 q = q.with_warning(f"{name} slope {fam.slope:.4g} has a large error ({100 * rel:.1f} %)")
         if n >= 3:
@@ -101,7 +121,8 @@ def assess_quality(
             m = (w * v).sum() / w.sum() if v.size else np.nan
             chi2 = float((w * (v - m) ** 2).sum())
             p = float(chdtrc(v.size - 1, chi2)) if v.size >= 3 else 1.0
-            spread = 1.4826 * np.median(np.abs(v - np.median(v))) / abs(np.median(v)) if v.size >= 3 else 0.0
+            scale = max(abs(float(np.median(v))), MIN_SLOPE_SCALE) if v.size >= 3 else 1.0
+            spread = 1.4826 * np.median(np.abs(v - np.median(v))) / scale if v.size >= 3 else 0.0
             if p < 1e-3 and spread > MAX_REL_SLOPE_SPREAD:
                 q = q.with_warning(f"{name} lines are not parallel: slopes scatter by {100 * spread:.1f} % "
                                    f"(χ² p = {p:.1g})")
