@@ -230,6 +230,45 @@ READOUTS = ("auto", "charge", "derivative-x", "derivative-y")
 SUM_DOUBT = "derivative map summed along"
 
 
+#: An empty region whose crossing lines of the other dot are seen on less than this fraction of their
+#: predicted length is not called empty (:func:`stabtool.fit.charge_states.lines_seen_where_empty`)
+MIN_SEEN_WHERE_EMPTY = 0.3
+
+
+def _blind_where_empty(states: ChargeStates, detection: LineDetection | None, x: np.ndarray, y: np.ndarray,
+                       valid: np.ndarray) -> str | None:
+    """The note when a dot is called empty where the other dot's lines vanish too (else None).
+
+    Held-out probe map (``--sensors comb`` seed 4: a sensor between two of its
+    own Coulomb peaks over the lower third of the map, SNR 16): no dot-2 line
+    below the lowest one, two cells of it, and dot 2 was called empty there,
+    wrong on 19 regions; the dot-1 lines that cross that region were not seen
+    either.
+    """
+    from .fit.charge_states import SEEN_MIN_PIXELS, lines_seen_where_empty
+
+    if detection is None or not any(states.absolute):
+        return None
+
+    def to_px(v: np.ndarray, axis: np.ndarray) -> np.ndarray:
+        idx = np.arange(axis.size, dtype=float)
+        return np.interp(v, axis, idx) if axis[-1] >= axis[0] else np.interp(v, axis[::-1], idx[::-1])
+
+    for dot in (0, 1):
+        if not states.absolute[dot]:
+            continue
+        other = ("dot1", "dot2")[1 - dot]
+        lines = detection.family(other).lines
+        seg = np.array([(ln.start[0], ln.start[1], ln.end[0], ln.end[1]) for ln in lines], float).reshape(-1, 4)
+        seg_px = np.stack([to_px(seg[:, 0], x), to_px(seg[:, 1], y), to_px(seg[:, 2], x), to_px(seg[:, 3], y)], 1)
+        n, seen = lines_seen_where_empty(states.labels, valid, dot, seg_px)
+        if n >= SEEN_MIN_PIXELS and seen < MIN_SEEN_WHERE_EMPTY:
+            return (f"no dot{dot + 1} line below the lowest one, but the {other} lines that cross that region are "
+                    f"seen on {100 * seen:.0f} % of their length there: the sensor may be blind in that part of "
+                    "the map: charge states are relative")
+    return None
+
+
 def _integral_rank(res: AnalysisResult, order: int) -> tuple:
     """Sort key of a derivative map's integral analyses: ok first, then with a charge lattice, then
     the smaller stated virtual-gate error, then the axis the peaks' areas pointed to (``order`` 0)."""
@@ -1774,7 +1813,11 @@ class Analyzer:
             allow = allow and not stray
             if adopted or (states.absolute != (False, False) and (not allow or too_uncertain or weak)):
                 states = self._states(da, fit, detection, x, y, allow_absolute=allow and not too_uncertain)
-            if states.withheld and stray:
+            blind = _blind_where_empty(states, detection, x, y, np.isfinite(np.asarray(da.values)))
+            if blind is not None:
+                states = self._states(da, fit, detection, x, y, allow_absolute=False)
+                q = q.with_warning(blind, doubtful=False)
+            elif states.withheld and stray:
                 q = q.with_warning("the map reaches below the lowest lines far enough to call the dots empty, but "
                                    "some lines have a slope of their own (another dot's, or a line of these dots "
                                    "set aside): charge states are relative", doubtful=False)

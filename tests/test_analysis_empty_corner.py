@@ -134,6 +134,18 @@ def test_no_absolute_labels_from_a_lattice_known_to_worse_than_ten_percent():
     assert _claimed_labels_off_the_ground_state(make_map(9, noise=("hum",))) == []
 
 
+def test_no_absolute_labels_where_the_sensor_is_blind_to_the_other_dot_too():
+    # Probe map with a sensor swept across its own Coulomb peaks (--sensors comb, seed 4, SNR 8): over the
+    # lower third of the map the sensor sits between two peaks and shows no line. Two cells below the
+    # lowest dot-2 line were line-free, and dot 2 was called empty there, wrong on 19 regions; the dot-1
+    # lines crossing that region vanish as well, which a working sensor in a true empty corner shows.
+    pm = make_map(4, sensors=("comb",))
+    res = analysed(pm)
+    assert not any(res.to_json()["charge_states"]["absolute"].values())
+    assert [w for w in res.quality.warnings if "the sensor may be blind in that part of the map" in w]
+    assert _claimed_labels_off_the_ground_state(pm) == []
+
+
 def test_no_absolute_labels_while_lines_of_a_slope_of_their_own_are_set_aside():
     # A hot probe map (seed 35 at 0.3–1 K: 0.46 K, gauss sensor, SNR 60, lines 2.6 px broad). Its
     # first dot-1 line, next to the empty corner, is 9 % steeper than the family's others and was

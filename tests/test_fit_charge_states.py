@@ -107,3 +107,36 @@ def test_a_low_snr_keeps_the_occupations_relative():
     assert low.absolute == (False, False) and low.withheld
     high = label_charge_states(x, y, t.m, snr=10.0 * MIN_ABSOLUTE_CONFIDENCE + 2.0, **kw)
     assert high.absolute == (True, True) and all(c > MIN_ABSOLUTE_CONFIDENCE for c in high.confidence)
+
+
+def _stripe_labels(ny=90, nx=120):
+    """Labels of a map whose lower 60 rows hold no dot-2 electron, with dot-1 lines at columns 30, 60, 90."""
+    lab = np.zeros((ny, nx, 2), int)
+    lab[..., 0] = np.searchsorted([30, 60, 90], np.arange(nx), side="right")[None, :]
+    lab[60:, :, 1] = 1
+    return lab
+
+
+def test_the_other_dots_lines_seen_across_an_empty_region_count_as_seen():
+    # an empty region is read from missing lines; where the sensor works the other dot's lines cross it
+    # (constant-interaction honeycomb: dot-1 transitions continue at N2 = 0), and they are detected
+    from stabtool.fit.charge_states import lines_seen_where_empty
+
+    lab = _stripe_labels()
+    valid = np.ones(lab.shape[:2], bool)
+    full = np.array([[c - 0.5, 0.0, c - 0.5, 59.0] for c in (30, 60, 90)])
+    n, seen = lines_seen_where_empty(lab, valid, 1, full)
+    assert n > 30 and seen == 1.0
+
+
+def test_lines_that_fade_before_the_deeper_half_of_an_empty_region_are_not_seen_there():
+    # a sensor blind in the lower part of the map: the dot-1 segments stop 15 rows below the lowest
+    # dot-2 line (rows 45-59 of the 60-row region); the deeper half (rows 0-29) shows no line at all
+    from stabtool.fit.charge_states import lines_seen_where_empty
+
+    lab = _stripe_labels()
+    valid = np.ones(lab.shape[:2], bool)
+    faded = np.array([[c - 0.5, 45.0, c - 0.5, 89.0] for c in (30, 60, 90)])
+    n, seen = lines_seen_where_empty(lab, valid, 1, faded)
+    assert n > 30 and seen == 0.0
+    assert lines_seen_where_empty(lab, valid, 1, np.empty((0, 4))) == (n, 0.0)

@@ -22,7 +22,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-__all__ = ["EMPTY_MARGIN_CELLS", "ChargeStates", "ground_state_labels", "label_charge_states"]
+__all__ = ["EMPTY_MARGIN_CELLS", "ChargeStates", "ground_state_labels", "label_charge_states", "lines_seen_where_empty"]
 
 #: Cells (addition voltages) of line-free map needed below the lowest line to call a dot empty.
 EMPTY_MARGIN_CELLS = 2.0
@@ -250,3 +250,74 @@ def label_charge_states(
     few = bool(all(absolute) and flat.size and np.any(np.all(flat == 0, axis=-1)))
     return ChargeStates(labels=labels, absolute=(absolute[0], absolute[1]), confidence=(conf[0], conf[1]),
                         few_electron=few, regions=tuple(regions), withheld=withheld)
+
+
+#: A transition of the other dot counts as seen in a dot's empty region when a detected segment of its
+#: family passes within this many pixels.
+SEEN_WITHIN_PX = 2.5
+#: The other dot's transitions must cross at least this many pixels of the empty region for the check.
+SEEN_MIN_PIXELS = 8
+
+
+def lines_seen_where_empty(labels: np.ndarray, valid: np.ndarray, dot: int,
+                           segments_px: np.ndarray) -> tuple[int, float]:
+    """How much of the other dot's transitions in ``dot``'s empty region the detected lines cover.
+
+    An empty corner is read from the absence of lines below a dot's lowest
+    one. A sensor blind in that part of the map (a peak-shaped sensor on its
+    flat top, a sensor between two of its own Coulomb peaks) shows no lines
+    there either; but then the other dot's lines, which cross the region
+    where ``dot`` holds no electron, vanish too. This counts the pixels of the
+    other dot's predicted transitions inside the deeper half of the region
+    (``labels[..., dot] == 0``, farther from the occupied part than half the
+    region's largest depth; the other dot's label changes along x for dot1's
+    steep lines and along y for dot2's) and the fraction of them within
+    ``SEEN_WITHIN_PX`` of a detected segment of its family.
+
+    Parameters
+    ----------
+    labels : ndarray of int, shape (ny, nx, 2)
+        Absolute labels for ``dot`` (0 = empty).
+    valid : ndarray of bool, shape (ny, nx)
+    dot : int
+        0 (dot1) or 1 (dot2).
+    segments_px : ndarray, shape (k, 4)
+        The other dot's detected segments as (x0, y0, x1, y1) in pixel indices.
+
+    Returns
+    -------
+    (int, float)
+        Predicted transition pixels in the region, and the fraction seen
+        (NaN when there are none).
+    """
+    from scipy.ndimage import distance_transform_edt
+
+    other = 1 - dot
+    empty = valid & (labels[..., dot] == 0)
+    if empty.any():
+        # the deeper half of the region (farther from the occupied part than half its largest depth): the
+        # part the empty call rests on (next to the lowest line a fading sensor still shows some lines)
+        depth = distance_transform_edt(empty)
+        empty &= depth > 0.5 * depth.max()
+    lab = labels[..., other]
+    if other == 0:  # dot1 lines: changes between x-neighbours, at (row, col + ½)
+        change = (lab[:, 1:] != lab[:, :-1]) & empty[:, 1:] & empty[:, :-1]
+        r, c = np.nonzero(change)
+        px, py = c + 0.5, r.astype(float)
+    else:  # dot2 lines: changes between y-neighbours, at (row + ½, col)
+        change = (lab[1:, :] != lab[:-1, :]) & empty[1:, :] & empty[:-1, :]
+        r, c = np.nonzero(change)
+        px, py = c.astype(float), r + 0.5
+    n = int(px.size)
+    if n == 0:
+        return 0, float("nan")
+    seg = np.asarray(segments_px, float).reshape(-1, 4)
+    if seg.shape[0] == 0:
+        return n, 0.0
+    a, b = seg[:, :2], seg[:, 2:]
+    d = b - a
+    dd = np.maximum((d * d).sum(axis=1), 1e-12)
+    p = np.stack([px, py], axis=1)[:, None, :]
+    t = np.clip(((p - a) * d).sum(axis=2) / dd, 0.0, 1.0)
+    dist = np.hypot(*np.moveaxis(p - (a + t[..., None] * d), 2, 0)).min(axis=1)
+    return n, float(np.mean(dist <= SEEN_WITHIN_PX))
