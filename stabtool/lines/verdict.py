@@ -106,7 +106,9 @@ def assess_quality(
         if np.isfinite(fam.slope) and np.isfinite(fam.slope_stderr):
             rel = relative_slope_error(fam.slope, fam.slope_stderr)
             if rel > MAX_REL_SLOPE_ERROR:
-                q = q.with_warning(f"{name} slope {fam.slope:.4g} has a large error ({100 * rel:.1f} %)")
+                near_axis = abs(fam.slope if abs(fam.slope) <= 1.0 else 1.0 / fam.slope) < MIN_SLOPE_SCALE
+                what = f"{100 * rel:.1f} %" + (f" of {MIN_SLOPE_SCALE:g} in its cross-talk term" if near_axis else "")
+                q = q.with_warning(f"{name} slope {fam.slope:.4g} has a large error ({what})")
         if n >= 3:
             s = np.array([l.slope for l in fam.lines])
             e = np.array([l.slope_stderr for l in fam.lines])
