@@ -117,26 +117,17 @@ def _stripe_labels(ny=90, nx=120):
     return lab
 
 
-def test_the_other_dots_lines_seen_across_an_empty_region_count_as_seen():
-    # an empty region is read from missing lines; where the sensor works the other dot's lines cross it
-    # (constant-interaction honeycomb: dot-1 transitions continue at N2 = 0), and they are detected
+@pytest.mark.parametrize("first_row, seen_expected", [(0.0, 1.0), (45.0, 0.0)])
+def test_the_other_dots_lines_must_be_seen_in_the_deeper_half_of_an_empty_region(first_row, seen_expected):
+    # An empty region is read from missing lines. Where the sensor works, the other dot's lines cross it
+    # (constant-interaction honeycomb: dot-1 transitions continue at N2 = 0) and are detected down to
+    # row 0 (all seen). A sensor blind in the lower part of the map shows dot-1 segments only down to
+    # row 45, 15 rows below the lowest dot-2 line; the deeper half of the region (rows 0-29) shows none.
     from stabtool.fit.charge_states import lines_seen_where_empty
 
     lab = _stripe_labels()
     valid = np.ones(lab.shape[:2], bool)
-    full = np.array([[c - 0.5, 0.0, c - 0.5, 59.0] for c in (30, 60, 90)])
-    n, seen = lines_seen_where_empty(lab, valid, 1, full)
-    assert n > 30 and seen == 1.0
-
-
-def test_lines_that_fade_before_the_deeper_half_of_an_empty_region_are_not_seen_there():
-    # a sensor blind in the lower part of the map: the dot-1 segments stop 15 rows below the lowest
-    # dot-2 line (rows 45-59 of the 60-row region); the deeper half (rows 0-29) shows no line at all
-    from stabtool.fit.charge_states import lines_seen_where_empty
-
-    lab = _stripe_labels()
-    valid = np.ones(lab.shape[:2], bool)
-    faded = np.array([[c - 0.5, 45.0, c - 0.5, 89.0] for c in (30, 60, 90)])
-    n, seen = lines_seen_where_empty(lab, valid, 1, faded)
-    assert n > 30 and seen == 0.0
+    segments = np.array([[c - 0.5, first_row, c - 0.5, 89.0] for c in (30, 60, 90)])
+    n, seen = lines_seen_where_empty(lab, valid, 1, segments)
+    assert n > 30 and seen == seen_expected
     assert lines_seen_where_empty(lab, valid, 1, np.empty((0, 4))) == (n, 0.0)
