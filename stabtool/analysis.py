@@ -240,7 +240,7 @@ def _blind_where_empty(states: ChargeStates, detection: LineDetection | None, x:
     """The note when a dot is called empty where the other dot's lines vanish too (else None).
 
     Held-out probe map (``--sensors comb`` seed 4: a sensor between two of its
-    own Coulomb peaks over the lower third of the map, SNR 16): no dot-2 line
+    own Coulomb peaks over the lower third of the map, SNR 8): no dot-2 line
     below the lowest one, two cells of it, and dot 2 was called empty there,
     wrong on 19 regions; the dot-1 lines that cross that region were not seen
     either.

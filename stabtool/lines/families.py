@@ -191,7 +191,7 @@ def _axis_families(names: np.ndarray, ang: np.ndarray, length_px: np.ndarray, po
         about = _wrapped(ang - axis_deg)
         mem = _members(about, length_px, near, tolerance_deg)
         if mem.sum() >= AXIS_FAMILY_MIN_LINES:
-            # the family's own negative members, if any, stay with it
+            # (the family's own negative member, if it has one, keeps its name)
             names[mem] = fam
             named |= mem
     return named
