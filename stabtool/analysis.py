@@ -246,14 +246,10 @@ def _blind_where_empty(states: ChargeStates, detection: LineDetection | None, x:
     either.
     """
     from .fit.charge_states import SEEN_MIN_PIXELS, lines_seen_where_empty
+    from .fit.relocate import _to_idx as to_px
 
     if detection is None or not any(states.absolute):
         return None
-
-    def to_px(v: np.ndarray, axis: np.ndarray) -> np.ndarray:
-        idx = np.arange(axis.size, dtype=float)
-        return np.interp(v, axis, idx) if axis[-1] >= axis[0] else np.interp(v, axis[::-1], idx[::-1])
-
     for dot in (0, 1):
         if not states.absolute[dot]:
             continue

@@ -311,13 +311,10 @@ def lines_seen_where_empty(labels: np.ndarray, valid: np.ndarray, dot: int,
     n = int(px.size)
     if n == 0:
         return 0, float("nan")
+    from ..lines._geometry import segment_distances
+
     seg = np.asarray(segments_px, float).reshape(-1, 4)
     if seg.shape[0] == 0:
         return n, 0.0
-    a, b = seg[:, :2], seg[:, 2:]
-    d = b - a
-    dd = np.maximum((d * d).sum(axis=1), 1e-12)
-    p = np.stack([px, py], axis=1)[:, None, :]
-    t = np.clip(((p - a) * d).sum(axis=2) / dd, 0.0, 1.0)
-    dist = np.hypot(*np.moveaxis(p - (a + t[..., None] * d), 2, 0)).min(axis=1)
+    dist = segment_distances(np.stack([px, py], axis=1), seg[:, :2], seg[:, 2:]).min(axis=1)
     return n, float(np.mean(dist <= SEEN_WITHIN_PX))

@@ -343,13 +343,11 @@ STRAY_CLEARANCE_PX = 3.0
 
 def _distance_px(points: np.ndarray, line: TransitionLine, scale: np.ndarray) -> np.ndarray:
     """Distance (px) from ``points`` (k, 2) in volts to the segment of ``line``, axes scaled by ``scale``."""
+    from ..lines._geometry import segment_distances
+
     a = np.asarray(line.start, float) / scale
     b = np.asarray(line.end, float) / scale
-    p = points / scale
-    ab = b - a
-    den = float(ab @ ab)
-    t = np.clip((p - a) @ ab / den, 0.0, 1.0) if den > 0 else np.zeros(len(p))
-    return np.hypot(*(p - (a + t[:, None] * ab)).T)
+    return segment_distances(points / scale, a, b)[:, 0]
 
 
 def _own_line(line: TransitionLine, used: list[TransitionLine], scale: np.ndarray) -> bool:

@@ -50,6 +50,23 @@ def tls_fit(px: np.ndarray, py: np.ndarray, w: np.ndarray | None = None):
     return cx, cy, u, float(np.sqrt(max(evals[0], 0.0)))
 
 
+def segment_distances(points: np.ndarray, starts: np.ndarray, ends: np.ndarray) -> np.ndarray:
+    """Distance of each point (k, 2) to each segment (starts, ends: (m, 2)), shape (k, m).
+
+    The nearest point of a segment is its end beyond either end; a segment
+    of zero length is its start.
+    """
+    p = np.asarray(points, float)[:, None, :]
+    a, b = np.asarray(starts, float).reshape(-1, 2), np.asarray(ends, float).reshape(-1, 2)
+    ab = b - a
+    den = (ab * ab).sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        t = np.where(den > 0, ((p - a) * ab).sum(axis=2) / den, 0.0)
+    t = np.clip(t, 0.0, 1.0)
+    d = p - (a + t[..., None] * ab)
+    return np.hypot(d[..., 0], d[..., 1])
+
+
 def steps(axes: MapAxes) -> tuple[float, float]:
     """Mean signed steps (dx, dy) of the axes, V (cheap; equals the median for uniform sweeps)."""
     return (float((axes.x[-1] - axes.x[0]) / (axes.x.size - 1)), float((axes.y[-1] - axes.y[0]) / (axes.y.size - 1)))

@@ -63,6 +63,13 @@ def family_slope(lines: Sequence[TransitionLine]) -> tuple[float, float, float]:
     return m, err, chi2r
 
 
+def _crosstalk_term(slope: float, stderr: float) -> tuple[float, float]:
+    """A family's cross-talk term and its error: the slope if shallow (|slope| ≤ 1), else ``1/slope``."""
+    if abs(slope) > 1.0:
+        return 1.0 / slope, stderr / slope**2
+    return slope, stderr
+
+
 def relative_slope_error(slope: float, stderr: float) -> float:
     """Error of a family slope relative to its cross-talk term (at least ``MIN_SLOPE_SCALE``).
 
@@ -70,10 +77,7 @@ def relative_slope_error(slope: float, stderr: float) -> float:
     one ``1/slope``, whose error is ``stderr/slope²``: above the floor both
     give ``stderr/|slope|``.
     """
-    if abs(slope) > 1.0:
-        v, ve = 1.0 / slope, stderr / slope**2
-    else:
-        v, ve = slope, stderr
+    v, ve = _crosstalk_term(slope, stderr)
     return float(ve / max(abs(v), MIN_SLOPE_SCALE))
 
 
@@ -106,7 +110,7 @@ def assess_quality(
         if np.isfinite(fam.slope) and np.isfinite(fam.slope_stderr):
             rel = relative_slope_error(fam.slope, fam.slope_stderr)
             if rel > MAX_REL_SLOPE_ERROR:
-                near_axis = abs(fam.slope if abs(fam.slope) <= 1.0 else 1.0 / fam.slope) < MIN_SLOPE_SCALE
+                near_axis = abs(_crosstalk_term(fam.slope, fam.slope_stderr)[0]) < MIN_SLOPE_SCALE
                 what = f"{100 * rel:.1f} %" + (f" of {MIN_SLOPE_SCALE:g} in its cross-talk term" if near_axis else "")
                 q = q.with_warning(f"{name} slope {fam.slope:.4g} has a large error ({what})")
         if n >= 3:
