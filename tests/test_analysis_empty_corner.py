@@ -146,6 +146,7 @@ def test_no_absolute_labels_where_the_sensor_is_blind_to_the_other_dot_too():
     assert _claimed_labels_off_the_ground_state(pm) == []
 
 
+@pytest.mark.slow  # about 15 s: the hot map's model fit
 def test_no_absolute_labels_while_lines_of_a_slope_of_their_own_are_set_aside():
     # A hot probe map (seed 35 at 0.3–1 K: 0.46 K, gauss sensor, SNR 60, lines 2.6 px broad). Its
     # first dot-1 line, next to the empty corner, is 9 % steeper than the family's others and was
