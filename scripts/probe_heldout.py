@@ -502,6 +502,21 @@ def _parse_seeds(text: str) -> list[int]:
     return out
 
 
+def _pulls(j: dict, truth: dict) -> tuple[list[float], list[float]]:
+    """(estimate − truth)/stated error of M12, M21 and of the four Cdg elements (finite ones only)."""
+    out = []
+    for key, idx in (("virtual_gate_matrix", ((0, 1), (1, 0))), ("gate_capacitance_aF", ((0, 0), (0, 1), (1, 0), (1, 1)))):
+        val, err, true = j.get(key), j.get(key + "_error"), truth.get(key)
+        if val is None or err is None or true is None:
+            out.append([])
+            continue
+        v, e, t = (np.asarray(a, float) for a in (val, err, true))
+        with np.errstate(invalid="ignore", divide="ignore"):
+            pulls = [(v[i] - t[i]) / e[i] for i in idx]
+        out.append([float(q) for q in pulls if np.isfinite(q)])
+    return out[0], out[1]
+
+
 def main(argv: list[str] | None = None) -> int:
     p = argparse.ArgumentParser(description=__doc__.split("\n\n")[0],
                                 formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -575,6 +590,7 @@ def main(argv: list[str] | None = None) -> int:
         absolute = (j.get("charge_states") or {}).get("absolute") or {}
         ev.update(pm.meta, time=dt, absolute=any(bool(v) for v in absolute.values()))
         ev["crashed"] = res is None
+        ev["pulls_m"], ev["pulls_cdg"] = _pulls(j, pm.truth)
         rows.append(ev)
         ws = list(j["quality"]["warnings"])
         if res is not None:
@@ -585,11 +601,13 @@ def main(argv: list[str] | None = None) -> int:
         doubt = ws if a.verbose else [w for w in ws if w.startswith("! ")][:2]
         m = pm.meta
         tag = " SILENT-FAIL(" + ",".join(ev["beyond"]) + ")" if ev["silent"] else ""
+        worst = [max(np.abs(ev[k]), default=np.nan) for k in ("pulls_m", "pulls_cdg")]
+        pulls = f"  [worst |pull| M {worst[0]:.1f}, Cdg {worst[1]:.1f}]" if np.isfinite(worst).any() else ""
         if ev["wrong_labels"]:
             tag += f" WRONG-ABSOLUTE-LABELS({ev['wrong_labels']} regions)"
         print(f"{s:4d} {m['sensor']:14} {m['noise']:26} {m['snr']:4.0f} {m['shape'][0]:4d}x{m['shape'][1]:<4d} "
               f"{'OK ' if ev['ok'] else 'no '} {_fmt(ev['vg'])} {_fmt(ev['cdg'])} {_fmt(ev['la'])} {_fmt(ev['ec'])} "
-              f"{dt:5.1f}{tag}  | " + ("\n      - ".join([""] + doubt) if a.verbose else "; ".join(w[:60] for w in doubt)),
+              f"{dt:5.1f}{tag}  | " + ("\n      - ".join([""] + doubt) if a.verbose else "; ".join(w[:60] for w in doubt)) + pulls,
               flush=True)
         if a.out and res is not None:
             try:
@@ -616,6 +634,12 @@ def main(argv: list[str] | None = None) -> int:
     within = [r for r in rows if not r["beyond"] and np.isfinite(r["vg"]) and np.isfinite(r["cdg"])]
     print(f"maps whose reported vg and Cdg are within the bounds: {len(within)}/{n} "
           f"(of which ok: {sum(r['ok'] for r in within)})")
+    for key, name in (("pulls_m", "virtual-gate off-diagonals"), ("pulls_cdg", "Cdg elements")):
+        for label, sub in (("all", rows), ("ok", [r for r in rows if r["ok"]])):
+            p_ = np.concatenate([np.asarray(r[key], float) for r in sub] + [np.zeros(0)])
+            if p_.size:
+                print(f"stated errors, {name} [{label}]: (estimate − truth)/σ median |p| {np.median(np.abs(p_)):.2f}, "
+                      f"rms {np.sqrt(np.mean(p_**2)):.2f}, |p| > 3 on {np.sum(np.abs(p_) > 3)}/{p_.size}")
     n_abs = sum(1 for r in rows if r["absolute"])
     bad = [str(r["seed"]) for r in rows if r["wrong_labels"]]
     print(f"absolute charge states claimed on {n_abs}/{n} maps; wrong on {len(bad)} ({', '.join(bad) or 'none'})")

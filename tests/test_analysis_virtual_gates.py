@@ -94,6 +94,21 @@ def test_a_family_tilted_to_positive_slopes_by_a_matrix_a_few_percent_off_is_fou
     assert np.all(np.abs(cdg - np.array(t["gate_capacitance_aF"])) <= 3 * cerr)
 
 
+def test_lines_sharper_than_a_pixel_along_the_axes_state_the_pixel_limited_error():
+    # si-sige-double on a coarse grid (2 mV per pixel, lines far sharper): each band piece of a dot
+    # line is ~20 px tall and leans by under a pixel, so it fixes its cross-talk only to ±1/20.
+    # Read as independent points, the pieces gave M12 = −0.0041 ± 0.0012 and M21 = 0.0085 ± 0.0023
+    # against the truth −0.043 and 0.045 (pulls 33 and 16).
+    sm = virtual_gate_map("si-sige-double", (0.04, -0.04))
+    res = _analysed(sm)
+    j, t = res.to_json(), sm.truth.quantities
+    m, err = np.array(j["virtual_gate_matrix"]), np.array(j["virtual_gate_matrix_error"])
+    true = np.array(t["virtual_gate_matrix"])
+    assert np.all(np.abs(true[[0, 1], [1, 0]]) > 0.04)
+    assert np.all(np.abs(m - true)[[0, 1], [1, 0]] <= 3 * err[[0, 1], [1, 0]])
+    assert not j["quality"]["ok"]
+
+
 @pytest.mark.parametrize("m12, m21, doubtful", [(0.002, 0.05, False), (-0.04, -0.01, False), (0.3, 0.05, True),
                                                 (0.002, 0.25, True), (None, None, True)])
 def test_a_negative_cross_capacitance_is_a_doubt_unless_both_cross_talks_are_near_zero(m12, m21, doubtful):

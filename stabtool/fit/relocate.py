@@ -18,6 +18,12 @@ also tests whether one offset per piece describes the points significantly
 better than one offset per original segment (F-test, nested least-squares
 models).
 
+Lines sharper than a pixel that stay within a pixel or two along their
+length (a map swept along virtual gates, where the lines run almost along the
+axes) are read as quantised (:func:`pixel_limited`): a point a whole sample
+off its line is kept (the line moved on by a pixel there), and the points'
+scatter is taken as at least the quantisation rms of a sample, 1/√12.
+
 Notes
 -----
 Joint linear fit of parallel lines (common practice, no source). F-test of
@@ -39,7 +45,8 @@ from scipy.special import fdtrc  # F survival function, = scipy.stats.f.sf(x, df
 from ..lines.joint import _median, clustered_slope_variance
 from ..lines.result import TransitionLine
 
-__all__ = ["RelocatedFamily", "SplitFamily", "clustered_slope_error", "relocate_family", "split_at_crossings"]
+__all__ = ["RelocatedFamily", "SplitFamily", "clustered_slope_error", "pixel_limited", "quantised_crossings",
+           "relocate_family", "split_at_crossings"]
 
 #: Smallest band piece kept by :func:`split_at_crossings`, pixels along the cross axis.
 MIN_PIECE_PX = 8.0
@@ -393,6 +400,55 @@ def _change_points(profs: np.ndarray, noise: float) -> np.ndarray:
     return pos0
 
 
+#: A family's crossing points are read as quantised when at least this share of them lies within
+#: :data:`QUANTISED_BAND` of the midpoint between two samples (a fifth of them would by chance).
+QUANTISED_SHARE = 0.5
+#: Half-width of the band around the midpoint between two samples, pixels.
+QUANTISED_BAND = 0.1
+#: Quantised points limit the slope when the lines move on by fewer than this many pixels along
+#: their length (median over the lines, at the current slope): with more, the pixel steps are
+#: many and spread along each line, and the independent-point error holds (a digital straight
+#: line fixes its slope well: A. Rosenfeld, IEEE Trans. Comput. C-23, 1264 (1974),
+#: doi:10.1109/T-C.1974.223845).
+QUANTISED_MAX_STEPS = 2.0
+
+
+def quantised_crossings(s: np.ndarray, scan_axis: np.ndarray) -> bool:
+    """True when the crossing points ``s`` (V) sit midway between samples: steps sharper than a pixel.
+
+    A step narrower than the sample spacing, sampled at points, is located
+    only to within the pixel: its change point falls midway between the two
+    samples around it (:func:`_located`), whatever its true position. Such
+    points are not independent measurements scattered about the line: along
+    a line that stays within one pixel they all carry the same error, and
+    where the line moves on by a pixel they jump by a whole sample. The
+    share of points within :data:`QUANTISED_BAND` of a midpoint tells the
+    two cases apart (a uniform share of 20 % for steps resolved by the
+    sampling; on sharp-line generator maps about 70 %).
+    """
+    s = np.asarray(s, float)
+    if s.size == 0:
+        return False
+    idx = _to_idx(s, scan_axis)
+    frac = idx - np.floor(idx)
+    return bool(np.mean(np.abs(frac - 0.5) < QUANTISED_BAND) >= QUANTISED_SHARE)
+
+
+def pixel_limited(s: np.ndarray, scan_axis: np.ndarray, spans, b: float) -> bool:
+    """True when quantised crossing points (:func:`quantised_crossings`) limit a family's slope.
+
+    ``spans`` are the lines' extents along the cross axis (V) and ``b`` the
+    family's slope (scan per cross, V/V): the lines move on by ``|b|·span``
+    along their length, fewer than :data:`QUANTISED_MAX_STEPS` samples (median
+    over the lines) for the limit to apply.
+    """
+    step = abs(median(np.diff(scan_axis)))
+    extent = np.array([abs(sp[1] - sp[0]) for sp in spans], float)
+    if extent.size == 0 or not step > 0:
+        return False
+    return bool(median(abs(b) * extent / step) < QUANTISED_MAX_STEPS) and quantised_crossings(s, scan_axis)
+
+
 def _crossings(zz, scan_axis, cross_axis, spans, mids, b, *, trim, half_px, noise):
     """Sub-pixel crossing points of every line, flat: (scan V, cross V, line index) arrays.
 
@@ -694,6 +750,11 @@ def _fit_window(z: np.ndarray, x: np.ndarray, y: np.ndarray, lines: list[Transit
         # all crossing points of the family in flat arrays, ``lid`` = line index of each point
         s_all, c_all, lid = _crossings(zz, scan_axis, cross_axis, spans, mids, b, trim=trim, half_px=half_px,
                                        noise=max(noise, 1e-30))
+        # quantised points (steps sharper than a pixel) on lines that stay within a pixel or two
+        # are a whole sample off where a line moves on by a pixel: not outliers; and their scatter
+        # about the line understates their error
+        limited = pixel_limited(s_all, scan_axis, spans, b)
+        reject_floor, sigma_floor = (1.0, 1.0 / np.sqrt(12.0)) if limited else (0.05, 0.02)
         mask = np.ones(s_all.size, bool)
         for _rej in range(3):
             cnt, cm, sm = _line_means(lid, n_lines_in, mask, s_all, c_all)
@@ -708,7 +769,7 @@ def _fit_window(z: np.ndarray, x: np.ndarray, y: np.ndarray, lines: list[Transit
             rr = ds - b * dc
             r = rr[good_pt]
             mad = 1.4826 * median(np.abs(r)) if r.size else 0.0
-            new_mask = np.where(good_pt, np.abs(rr) <= max(3 * mad, 0.05 * step), mask)
+            new_mask = np.where(good_pt, np.abs(rr) <= max(3 * mad, reject_floor * step), mask)
             if np.array_equal(new_mask, mask):
                 break  # no point changed: further rounds repeat these numbers exactly
             mask = new_mask
@@ -727,7 +788,7 @@ def _fit_window(z: np.ndarray, x: np.ndarray, y: np.ndarray, lines: list[Transit
         rr = ds - b * dc
         ss = float(np.sum(rr[use] ** 2))
         sigma = float(np.sqrt(ss / dof))
-        sigma = max(sigma, 0.02 * step)
+        sigma = max(sigma, sigma_floor * step)
         # crossing points along one line share slow noise (1/f, row walks, drifts): their errors are
         # correlated, and the per-line clustered sandwich error says so where the i.i.d. one cannot
         b_iid = sigma / np.sqrt(den)
