@@ -43,6 +43,7 @@ import numpy as np
 from scipy.special import fdtrc  # F survival function, = scipy.stats.f.sf(x, dfn, dfd)
 
 from ..lines.joint import _median, clustered_slope_variance
+from ..lines.refine import QUANTISED_MAX_STEPS, QUANTISED_SHARE, midway
 from ..lines.result import TransitionLine
 
 __all__ = ["RelocatedFamily", "SplitFamily", "clustered_slope_error", "pixel_limited", "quantised_crossings",
@@ -400,19 +401,6 @@ def _change_points(profs: np.ndarray, noise: float) -> np.ndarray:
     return pos0
 
 
-#: A family's crossing points are read as quantised when at least this share of them lies within
-#: :data:`QUANTISED_BAND` of the midpoint between two samples (a fifth of them would by chance).
-QUANTISED_SHARE = 0.5
-#: Half-width of the band around the midpoint between two samples, pixels.
-QUANTISED_BAND = 0.1
-#: Quantised points limit the slope when the lines move on by fewer than this many pixels along
-#: their length (median over the lines, at the current slope): with more, the pixel steps are
-#: many and spread along each line, and the independent-point error holds (a digital straight
-#: line fixes its slope well: A. Rosenfeld, IEEE Trans. Comput. C-23, 1264 (1974),
-#: doi:10.1109/T-C.1974.223845).
-QUANTISED_MAX_STEPS = 2.0
-
-
 def quantised_crossings(s: np.ndarray, scan_axis: np.ndarray) -> bool:
     """True when the crossing points ``s`` (V) sit midway between samples: steps sharper than a pixel.
 
@@ -422,16 +410,15 @@ def quantised_crossings(s: np.ndarray, scan_axis: np.ndarray) -> bool:
     points are not independent measurements scattered about the line: along
     a line that stays within one pixel they all carry the same error, and
     where the line moves on by a pixel they jump by a whole sample. The
-    share of points within :data:`QUANTISED_BAND` of a midpoint tells the
-    two cases apart (a uniform share of 20 % for steps resolved by the
-    sampling; on sharp-line generator maps about 70 %).
+    share of points near a midpoint (``lines.refine.midway``) tells the two
+    cases apart: at least ``lines.refine.QUANTISED_SHARE`` of them (a uniform
+    share of 20 % for steps resolved by the sampling; on sharp-line generator
+    maps about 70 %).
     """
     s = np.asarray(s, float)
     if s.size == 0:
         return False
-    idx = _to_idx(s, scan_axis)
-    frac = idx - np.floor(idx)
-    return bool(np.mean(np.abs(frac - 0.5) < QUANTISED_BAND) >= QUANTISED_SHARE)
+    return bool(np.mean(midway(_to_idx(s, scan_axis))) >= QUANTISED_SHARE)
 
 
 def pixel_limited(s: np.ndarray, scan_axis: np.ndarray, spans, b: float) -> bool:
@@ -439,8 +426,12 @@ def pixel_limited(s: np.ndarray, scan_axis: np.ndarray, spans, b: float) -> bool
 
     ``spans`` are the lines' extents along the cross axis (V) and ``b`` the
     family's slope (scan per cross, V/V): the lines move on by ``|b|·span``
-    along their length, fewer than :data:`QUANTISED_MAX_STEPS` samples (median
-    over the lines) for the limit to apply.
+    along their length, fewer than ``lines.refine.QUANTISED_MAX_STEPS``
+    samples (median over the lines) for the limit to apply. With more, the
+    sample steps are many and spread along each line, and the
+    independent-point error holds (a digital straight line fixes its slope
+    well: A. Rosenfeld, IEEE Trans. Comput. C-23, 1264 (1974),
+    doi:10.1109/T-C.1974.223845).
     """
     step = abs(median(np.diff(scan_axis)))
     extent = np.array([abs(sp[1] - sp[0]) for sp in spans], float)

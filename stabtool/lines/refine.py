@@ -518,6 +518,27 @@ def refine_segments(
 
 #: fewest usable profiles (rows with the line's centre samples on the map) a segment is fitted with
 MIN_LINE_PROFILES = 4
+#: A line's crossings are read as quantised when at least this share of them lies within
+#: :data:`QUANTISED_BAND` of the midpoint between two samples (a fifth of them would by chance):
+#: a step sharper than a sample, sampled at points, is located only to within the pixel, and its
+#: crossing falls midway between the two samples around it whatever its true position.
+QUANTISED_SHARE = 0.5
+#: Half-width of the band around the midpoint between two samples, samples.
+QUANTISED_BAND = 0.1
+#: A line of quantised crossings that moves on by fewer than this many samples along its length
+#: fixes its slope only to about ±1 sample over that length: its slope error is floored at the rms
+#: of that range, 1/(length·√3) samples per unit length. With more, the sample steps are many and
+#: spread along the line, and the digital straight line fixes the slope well (A. Rosenfeld, IEEE
+#: Trans. Comput. C-23, 1264 (1974), doi:10.1109/T-C.1974.223845). Also used by the fitter's
+#: re-measurement (``stabtool.fit.relocate``).
+QUANTISED_MAX_STEPS = 2.0
+
+
+def midway(idx: np.ndarray) -> np.ndarray:
+    """True where a crossing (fractional sample index) lies within :data:`QUANTISED_BAND` of a midpoint."""
+    idx = np.asarray(idx, float)
+    with np.errstate(invalid="ignore"):
+        return np.abs(idx - np.floor(idx) - 0.5) < QUANTISED_BAND
 
 
 def _end_trims(segs, end_trim: float) -> list[float]:
@@ -626,6 +647,9 @@ def _refine_once(segs, values, axes, *, families, along_x, halfwidth_px, max_poi
     T, P, S, V = pad(t_v, np.nan), pad(p_v, np.nan), pad(sig_v, np.nan), pad(ok, False)
     nok = V.sum(1)
     beta, cov, keep, tm, fit_ok = _robust_line_fits(T, P, S, V)
+    # (a sharp step's crossing, by the Fermi fit or by interpolating a step without smearing, falls
+    # midway between two samples)
+    midway_share = (pad(midway(cu), False) & keep).sum(1) / np.maximum(keep.sum(1), 1)
     fit_ok &= nok >= 4
     bend = _bend_chi2s(T - tm[:, None], P, S, keep & fit_ok[:, None])
     Wpx, H = pad(width, np.nan), pad(height, np.nan)
@@ -643,6 +667,10 @@ def _refine_once(segs, values, axes, *, families, along_x, halfwidth_px, max_poi
         sA, sC = float(np.sqrt(cov[j, 0, 0])), float(np.sqrt(cov[j, 1, 1]))
         along = bool(along_x[k])
         step_p = sx_ if along else sy_
+        run = float(t_hi[j] - t_lo[j])
+        if midway_share[j] >= QUANTISED_SHARE and run > 0 and abs(C) * run < QUANTISED_MAX_STEPS * abs(step_p):
+            # quantised crossings within a sample or two: independent points understate the error
+            sC = float(np.fmax(sC, abs(step_p) / (run * np.sqrt(3.0))))
         if along:
             slope = 1.0 / C if C != 0 else np.inf
             slope_err = sC / C**2 if C != 0 else np.inf
