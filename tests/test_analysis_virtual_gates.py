@@ -108,6 +108,9 @@ def test_lines_sharper_than_a_pixel_along_the_axes_state_the_pixel_limited_error
     assert np.all(np.abs(true[[0, 1], [1, 0]]) > 0.04)
     assert np.all(np.abs(m - true)[[0, 1], [1, 0]] <= 3 * err[[0, 1], [1, 0]])
     assert not j["quality"]["ok"]
+    # and the user is told why, and what would resolve it
+    assert any(w.startswith("dot1 lines are sharper than a pixel") and "finer steps along the x gate" in w
+               for w in res.quality.warnings)
 
 
 def test_detected_segments_sharper_than_a_pixel_along_the_axes_state_the_pixel_limit():

@@ -138,6 +138,12 @@ class DiagramFit:
         return np.array([[self.addition_V[0], self.mutual_V[0]], [self.mutual_V[1], self.addition_V[1]]])
 
 
+#: note on a family whose lines are sharper than a pixel and lean by under two (``fit.relocate.pixel_limited``)
+PIXEL_LIMITED_NOTE = ("{name} lines are sharper than a pixel and lean by under two pixels along their length: "
+                      "their cross-talk is known only to about ±1 pixel over a line's length (finer steps along "
+                      "the {gate} gate would resolve it)")
+
+
 def _inv_slope(line: TransitionLine) -> tuple[float, float]:
     """dx/dy of a line and its standard error."""
     s = line.slope
@@ -620,6 +626,9 @@ def _fit_once(
             used1, used2 = new_used
             inv1, inv1_err = results[0].inv_or_slope, results[0].stderr
             s2, s2_err = results[1].inv_or_slope, results[1].stderr
+            for name, gate, rel in (("dot1", "x", results[0]), ("dot2", "y", results[1])):
+                if rel.pixel_limited:
+                    q = q.with_warning(PIXEL_LIMITED_NOTE.format(name=name, gate=gate), doubtful=False)
         else:
             q = q.with_warning("lines could not be re-measured on the map; slopes from the detector", doubtful=False)
             remeasured = False

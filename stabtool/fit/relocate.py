@@ -89,6 +89,10 @@ class RelocatedFamily:
     staircase_jump_V : float
         With ``groups``: rms offset of the pieces from their group's offset
         along the scan axis, V (≈ δ/2 for a staircase); NaN when not tested.
+    pixel_limited : bool
+        The lines are sharper than a pixel and move on by fewer than two
+        samples along their length: the slope is known only to about ±1
+        sample over a line's length (:func:`pixel_limited`).
     """
 
     ok: bool
@@ -102,6 +106,7 @@ class RelocatedFamily:
     bend_stderr_V: float = float("nan")
     staircase_p: float = float("nan")
     staircase_jump_V: float = float("nan")
+    pixel_limited: bool = False
 
 
 @dataclass(frozen=True)
@@ -685,6 +690,7 @@ class _WindowFit:
     stair_p: float = float("nan")
     stair_jump: float = float("nan")
     stderr_iid: float = float("nan")  # slope error for independent points (window choice)
+    pixel_limited: bool = False  # quantised points of lines within a sample or two (see pixel_limited)
 
 
 def _relocated(lines: list[TransitionLine], fit: _WindowFit, *, which: int, initial: float) -> RelocatedFamily:
@@ -716,7 +722,7 @@ def _relocated(lines: list[TransitionLine], fit: _WindowFit, *, which: int, init
         out.append(replace(ln, x0=float(x0), y0=float(y0), slope=float(slope), slope_stderr=float(slope_err),
                            position_stderr=float(perp), start=start, end=end, n_points=n))
     return RelocatedFamily(fit.ok, tuple(out), float(b), float(b_err), fit.n_used, float(sigma), fit.between,
-                           float(fit.bend), float(fit.bend_err), fit.stair_p, fit.stair_jump)
+                           float(fit.bend), float(fit.bend_err), fit.stair_p, fit.stair_jump, fit.pixel_limited)
 
 
 def _fit_window(z: np.ndarray, x: np.ndarray, y: np.ndarray, lines: list[TransitionLine], *, which: int,
@@ -737,6 +743,7 @@ def _fit_window(z: np.ndarray, x: np.ndarray, y: np.ndarray, lines: list[Transit
     b_err = b_iid = np.nan
     n_used = 0
     bend = bend_err = between = float("nan")
+    limited = False
     for it in range(n_iter):
         # all crossing points of the family in flat arrays, ``lid`` = line index of each point
         s_all, c_all, lid = _crossings(zz, scan_axis, cross_axis, spans, mids, b, trim=trim, half_px=half_px,
@@ -804,4 +811,4 @@ def _fit_window(z: np.ndarray, x: np.ndarray, y: np.ndarray, lines: list[Transit
                                               lid, n_lines_in, b)
     ok = n_used >= 6 and np.isfinite(b_err)
     return _WindowFit(bool(ok), False, float(b), float(b_err), n_used, float(sigma), tuple(offsets), between,
-                      float(bend), float(bend_err), stair_p, stair_jump, float(b_iid))
+                      float(bend), float(bend_err), stair_p, stair_jump, float(b_iid), limited)
