@@ -108,6 +108,12 @@ def test_lines_sharper_than_a_pixel_along_the_axes_state_the_pixel_limited_error
     assert np.all(np.abs(true[[0, 1], [1, 0]]) > 0.04)
     assert np.all(np.abs(m - true)[[0, 1], [1, 0]] <= 3 * err[[0, 1], [1, 0]])
     assert not j["quality"]["ok"]
+    # the charge lattice stands: every Cdg within 3 stated errors and the 2 % bound (keeping the
+    # points past a pixel step let stray segments into the lattice: ΔV1 half the truth, Cdg11 75 % off)
+    cdg, cerr = np.array(j["gate_capacitance_aF"]), np.array(j["gate_capacitance_aF_error"])
+    true_cdg = np.array(t["gate_capacitance_aF"])
+    assert np.all(np.abs(cdg - true_cdg) <= 3 * cerr)
+    assert np.all(np.abs(cdg / true_cdg - 1) <= 0.02)
     # and the user is told why, and what would resolve it
     assert any(w.startswith("dot1 lines are sharper than a pixel") and "finer steps along the x gate" in w
                for w in res.quality.warnings)
