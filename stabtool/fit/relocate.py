@@ -44,7 +44,7 @@ import numpy as np
 from scipy.special import fdtrc  # F survival function, = scipy.stats.f.sf(x, dfn, dfd)
 
 from ..lines.joint import _median, clustered_slope_variance
-from ..lines.refine import QUANTISED_MAX_STEPS, QUANTISED_SHARE, midway
+from ..lines.refine import QUANTISED_MAX_STEPS, QUANTISED_SHARE, midway, pixel_slope_error
 from ..lines.result import TransitionLine
 
 __all__ = ["RelocatedFamily", "SplitFamily", "clustered_slope_error", "pixel_limited", "quantised_crossings",
@@ -457,14 +457,20 @@ def _pixel_limit(lid: np.ndarray, c: np.ndarray, n_lines: int, step: float) -> f
     """
     if lid.size == 0:
         return float("nan")
+    lo, hi = _line_ranges(lid, c, n_lines)
+    ext = (hi - lo)[np.isfinite(hi - lo) & (hi > lo)]
+    if ext.size == 0:
+        return float("nan")
+    return float(1.0 / np.sqrt(np.sum(pixel_slope_error(ext, step) ** -2)))
+
+
+def _line_ranges(lid: np.ndarray, c: np.ndarray, n_lines: int) -> tuple[np.ndarray, np.ndarray]:
+    """Per line, the smallest and largest ``c`` of its points (inf and −inf for lines without points)."""
     lo = np.full(n_lines, np.inf)
     hi = np.full(n_lines, -np.inf)
     np.minimum.at(lo, lid, c)
     np.maximum.at(hi, lid, c)
-    ext = (hi - lo)[np.isfinite(hi - lo) & (hi > lo)]
-    if ext.size == 0:
-        return float("nan")
-    return float(1.0 / np.sqrt(np.sum((ext * np.sqrt(3.0) / step) ** 2)))
+    return lo, hi
 
 
 def _crossings(zz, scan_axis, cross_axis, spans, mids, b, *, trim, half_px, noise):
@@ -577,10 +583,7 @@ def _common_bend(lid: np.ndarray, n: int, use: np.ndarray, c: np.ndarray, r: np.
     """
     if not np.any(use):
         return float("nan"), float("nan")
-    lo = np.full(n, np.inf)
-    hi = np.full(n, -np.inf)
-    np.minimum.at(lo, lid[use], c[use])
-    np.maximum.at(hi, lid[use], c[use])
+    lo, hi = _line_ranges(lid[use], c[use], n)
     half = 0.5 * (hi - lo)
     ok_line = np.isfinite(half) & (half > 0)
     use = use & ok_line[lid]

@@ -534,6 +534,16 @@ QUANTISED_BAND = 0.1
 QUANTISED_MAX_STEPS = 2.0
 
 
+def pixel_slope_error(run: np.ndarray | float, step: float) -> np.ndarray | float:
+    """Slope error of a line of quantised crossings that moves on by under a sample along ``run``.
+
+    Such a line bounds its slope (across per along) to ``±step/run``: the rms
+    of that uniform range, ``|step|/(run·√3)`` (``run`` along the line and
+    ``step`` across it, in the same units as the slope's).
+    """
+    return np.abs(step) / (np.asarray(run, float) * np.sqrt(3.0))
+
+
 def midway(idx: np.ndarray) -> np.ndarray:
     """True where a crossing (fractional sample index) lies within :data:`QUANTISED_BAND` of a midpoint."""
     idx = np.asarray(idx, float)
@@ -670,7 +680,7 @@ def _refine_once(segs, values, axes, *, families, along_x, halfwidth_px, max_poi
         run = float(t_hi[j] - t_lo[j])
         if midway_share[j] >= QUANTISED_SHARE and run > 0 and abs(C) * run < QUANTISED_MAX_STEPS * abs(step_p):
             # quantised crossings within a sample or two: independent points understate the error
-            sC = float(np.fmax(sC, abs(step_p) / (run * np.sqrt(3.0))))
+            sC = float(np.fmax(sC, pixel_slope_error(run, step_p)))
         if along:
             slope = 1.0 / C if C != 0 else np.inf
             slope_err = sC / C**2 if C != 0 else np.inf
