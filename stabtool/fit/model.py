@@ -948,13 +948,59 @@ def _fit_passes(detection: LineDetection, cuts: tuple[LineDetection, list[str]] 
         # case 80, si-sige SNR 3 with 1/f rows, seen with an intermediate detector)
         if second.ok and second.remeasured:
             cands.append(second)
-    # among the unbiased passes, the one with the smaller virtual-gate error
+    # among the unbiased passes, the one with the smaller virtual-gate error; the choice is
+    # only as good as every pass's stated error, so passes that contradict each other say so
     best = min(cands, key=lambda f: float(np.nanmax(f.vg_matrix_error)))
+    z, worst = max(((pass_disagreement(best.vg_matrix, best.vg_matrix_error, f.vg_matrix, f.vg_matrix_error), f)
+                    for f in cands if f is not best),
+                   key=lambda t: t[0], default=(0.0, None))
+    if worst is not None and z > PASS_DISAGREEMENT_Z:
+        best = replace(best, quality=best.quality.with_warning(_disagreement_message(best, worst, z)))
     if stair:
         best = replace(best, staircase_families=tuple(stair), quality=best.quality.with_warning(
             f"{', '.join(stair)} segments merge several charge bands (staircase of unresolved mutual shifts): "
             "re-measured piecewise between the other family's lines", doubtful=False))
     return best
+
+
+#: Largest disagreement between two of the fitter's passes on an off-diagonal virtual-gate
+#: element, in units of their stated errors combined as if independent, for an ok verdict. The
+#: passes measure the same lines, so their estimates are positively correlated and this
+#: z understates the true significance: beyond 3 one pass's error is not honest, and the pass
+#: with the smaller stated error (the one kept) may be that one. On held-out probe seeds
+#: 0–63 (ordinary maps) and 0–47 (swept along virtual gates) no ok map exceeded 2.5; the
+#: virtual-gate maps beyond 3 (8 of 48) were all doubtful already, and in 4 of them the kept pass was
+#: the one 8–42σ from the truth (DEVELOPERS.md, "Twenty-seventh session").
+PASS_DISAGREEMENT_Z = 3.0
+
+
+def pass_disagreement(ma: np.ndarray, ea: np.ndarray, mb: np.ndarray, eb: np.ndarray) -> float:
+    """Largest |M_a − M_b| / √(σ_a² + σ_b²) over the off-diagonal elements of two virtual-gate matrices.
+
+    The standard score of the difference of two estimates with independent
+    errors (common practice, no source). ``ea``, ``eb``: the elements'
+    standard errors. 0 when no element has a finite score.
+    """
+    z = _element_scores(ma, ea, mb, eb)
+    return float(np.nanmax(z)) if np.isfinite(z).any() else 0.0
+
+
+def _element_scores(ma, ea, mb, eb) -> np.ndarray:
+    """The scores of :func:`pass_disagreement` per element (NaN on the diagonal and where undefined)."""
+    ma, mb, ea, eb = (np.asarray(v, float) for v in (ma, mb, ea, eb))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        z = np.abs(ma - mb) / np.hypot(ea, eb)
+    z[~np.isfinite(z) | np.eye(z.shape[0], dtype=bool)] = np.nan
+    return z
+
+
+def _disagreement_message(best: DiagramFit, other: DiagramFit, z: float) -> str:
+    """Warning text for two passes whose virtual-gate matrices disagree beyond their errors."""
+    ma, mb, ea, eb = best.vg_matrix, other.vg_matrix, best.vg_matrix_error, other.vg_matrix_error
+    i, j = np.unravel_index(int(np.nanargmax(_element_scores(ma, ea, mb, eb))), np.shape(ma))
+    return (f"the fitter's passes disagree on the virtual-gate matrix: M{i + 1}{j + 1} = {ma[i, j]:.4g} ± "
+            f"{ea[i, j]:.2g} (kept) against {mb[i, j]:.4g} ± {eb[i, j]:.2g}, {z:.1f}σ of their errors combined: "
+            "one of them states too small an error")
 
 
 def _piecewise_detection(detection: LineDetection) -> tuple[LineDetection, tuple[SplitFamily, SplitFamily] | None]:
