@@ -48,15 +48,19 @@ def test_offsets_of_whole_rows_of_the_derivative_add_no_ramps():
     assert np.abs(d - d[:, :1]).max() < 1e-4
 
 
-def test_a_derivative_without_row_offsets_gets_no_ramps_from_their_estimates():
-    # white noise only: no row offsets to take off, and taking off the estimates would add ramps of
-    # their own errors, σ·√(π/n) from one row to the next (asymptotic variance of a sample median of n
-    # differences, π/2·2σ²/n; common practice, no source); only their smooth course may go
-    rng = np.random.default_rng(5)
+def _noisy_derivative(rng):
+    """The x-derivative of three Fermi steps (slope −2.5 px/px, width 0.7 px) on 90 × 120 points, white noise 0.01."""
     x = np.arange(120, dtype=float)
     y = np.arange(90, dtype=float)[:, None]
     v = sum(1.0 - fermi_occupation(x + 0.4 * y, c, 0.7) for c in (20.0, 55.0, 90.0))
-    p = np.gradient(v, axis=1) + rng.normal(0.0, 0.01, (90, 120))
+    return np.gradient(v, axis=1) + rng.normal(0.0, 0.01, (90, 120))
+
+
+def test_a_derivative_without_row_offsets_gets_no_ramps_from_their_estimates():
+    # white noise only: no row offsets to take off, and taking off the estimates would add ramps of
+    # their own errors, σ·√(π/n) from one row to the next (asymptotic variance of a sample median of n
+    # differences, π/2·2σ²/n; common practice, no source)
+    p = _noisy_derivative(np.random.default_rng(5))
     s = integral_along(_map(p), "x").values
     d = s - (cumulative_trapezoid(p, axis=1, initial=0.0) + 0.5 * p[:, :1])
     ramp = (d[:, -1] - d[:, 0]) / 119.0  # per-row slope added by the sum's corrections
@@ -69,10 +73,7 @@ def test_a_row_random_walk_in_the_derivative_is_taken_off_before_the_sum():
     # summed as it is, row r would carry a ramp of its offset times the column index; taken off, what
     # is left is the median estimates' error, σ·√(π/n) ≈ 0.16 σ per row step at n = 120
     rng = np.random.default_rng(5)
-    x = np.arange(120, dtype=float)
-    y = np.arange(90, dtype=float)[:, None]
-    v = sum(1.0 - fermi_occupation(x + 0.4 * y, c, 0.7) for c in (20.0, 55.0, 90.0))
-    p = np.gradient(v, axis=1) + rng.normal(0.0, 0.01, (90, 120))
+    p = _noisy_derivative(rng)
     walk = np.cumsum(rng.normal(0.0, 0.003, 90))[:, None]
     s = integral_along(_map(p + walk), "x").values
     clean = cumulative_trapezoid(p, axis=1, initial=0.0) + 0.5 * p[:, :1]
