@@ -776,9 +776,10 @@ def _fit_window(z: np.ndarray, x: np.ndarray, y: np.ndarray, lines: list[Transit
         # quantised points (steps sharper than a pixel) on lines that stay within a pixel or two:
         # their scatter about the line understates their error (the points past a line's pixel
         # step stay outliers: kept, they let stray segments through, and the lattice broke on
-        # a si-sige map swept along virtual gates: ΔV1 51.7 → 28.4 mV)
-        limited = pixel_limited(s_all, scan_axis, spans, b)
-        sigma_floor = 1.0 / np.sqrt(12.0) if limited else 0.02
+        # a si-sige map swept along virtual gates: ΔV1 51.7 → 28.4 mV); only the last pass's
+        # errors are kept, so only it asks (at the slope its crossings were cut with)
+        if it == n_iter - 1:
+            limited = pixel_limited(s_all, scan_axis, spans, b)
         mask = np.ones(s_all.size, bool)
         for _rej in range(3):
             cnt, cm, sm = _line_means(lid, n_lines_in, mask, s_all, c_all)
@@ -812,7 +813,7 @@ def _fit_window(z: np.ndarray, x: np.ndarray, y: np.ndarray, lines: list[Transit
         rr = ds - b * dc
         ss = float(np.sum(rr[use] ** 2))
         sigma = float(np.sqrt(ss / dof))
-        sigma = max(sigma, sigma_floor * step)
+        sigma = max(sigma, (1.0 / np.sqrt(12.0) if limited else 0.02) * step)
         # crossing points along one line share slow noise (1/f, row walks, drifts): their errors are
         # correlated, and the per-line clustered sandwich error says so where the i.i.d. one cannot
         b_iid = sigma / np.sqrt(den)

@@ -244,7 +244,7 @@ class RowOffsetTest:
     significant: bool
 
 
-def row_offset_test(values: np.ndarray, noise: float) -> RowOffsetTest:
+def row_offset_test(values: np.ndarray, noise: float, *, offsets: np.ndarray | None = None) -> RowOffsetTest:
     """Test a map for row offsets (steps common to a whole row) beyond its white noise.
 
     Parameters
@@ -254,6 +254,8 @@ def row_offset_test(values: np.ndarray, noise: float) -> RowOffsetTest:
     noise : float
         White-noise σ of a pixel (e.g. from differences along the fast axis,
         which row offsets do not reach).
+    offsets : ndarray, shape (ny,), optional
+        ``_row_offsets_core(values)``, when the caller has it already.
 
     Returns
     -------
@@ -279,7 +281,7 @@ def row_offset_test(values: np.ndarray, noise: float) -> RowOffsetTest:
     values = np.asarray(values, dtype=np.float64)
     if values.ndim != 2 or values.shape[0] < 4 or not (np.isfinite(noise) and noise > 0):
         return RowOffsetTest(float("nan"), 0, False)
-    st = np.diff(_row_offsets_core(values))
+    st = np.diff(_row_offsets_core(values) if offsets is None else np.asarray(offsets, float))
     n = np.isfinite(np.diff(values, axis=0)).sum(axis=1)
     z = np.where(n >= 3, st / (float(noise) * np.sqrt(np.pi / np.maximum(n, 1))), 0.0)
     # consecutive steps share a row (with opposite signs): correlation −1/2, so a change of two

@@ -119,9 +119,11 @@ def integral_along(da: xr.DataArray, axis: str = "x") -> xr.DataArray:
     # offsets of whole rows (columns) of the derivative, which the sum would turn into ramps: taken
     # off only where the map has them (each estimate's own error becomes a ramp in the sum too)
     # (on a noiseless map the estimates carry no error: always taken off)
-    test = row_offset_test(p if axis == "x" else p.T, noise)
+    rows = p if axis == "x" else p.T
+    off = _row_offsets_core(rows)
+    test = row_offset_test(rows, noise, offsets=off)
     if not (np.isfinite(noise) and noise > 0) or test.significant or test.scatter_z > SUM_OFFSET_SCATTER_Z:
-        p = p - _row_offsets_core(p)[:, None] if axis == "x" else p - _row_offsets_core(p.T)[None, :]
+        p = p - off[:, None] if axis == "x" else p - off[None, :]
     p = np.where(finite, p, 0.0)
     ax = 1 if axis == "x" else 0
     s = np.cumsum(p, axis=ax) - 0.5 * p
