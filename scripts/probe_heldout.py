@@ -76,6 +76,7 @@ from __future__ import annotations
 import argparse
 import math
 import os
+import re
 import sys
 import time
 import warnings
@@ -491,6 +492,31 @@ def _range(text: str | None) -> tuple[float, float] | None:
     return lo, hi
 
 
+def blocker_kind(warning: str) -> str:
+    """A warning with its numbers blanked (``#``), cut at the first colon or parenthesis, to count alike doubts.
+
+    The detector's warnings keep their ``detector:`` prefix and are cut after it.
+    """
+    prefix = "detector: " if warning.startswith("detector: ") else ""
+    head = prefix + re.split(r"[:(]", warning[len(prefix):], maxsplit=1)[0]
+    return re.sub(r"[-+]?\d+(\.\d+)?(e[-+]?\d+)?", "#", head).strip()
+
+
+def blocker_census(blockers: list[list[str]]) -> list[tuple[str, tuple[int, int]]]:
+    """For maps that were doubtful: each kind of doubt with the number of maps it blocked and of those it blocked alone.
+
+    Most frequent first.
+    """
+    count: dict[str, list[int]] = {}
+    for ws in blockers:
+        kinds = {blocker_kind(w) for w in ws}
+        for k in kinds:
+            c = count.setdefault(k, [0, 0])
+            c[0] += 1
+            c[1] += len(kinds) == 1
+    return sorted(((k, (c[0], c[1])) for k, c in count.items()), key=lambda kv: -kv[1][0])
+
+
 def _parse_seeds(text: str) -> list[int]:
     out: list[int] = []
     for part in text.split(","):
@@ -593,11 +619,13 @@ def main(argv: list[str] | None = None) -> int:
         ev["pulls_m"], ev["pulls_cdg"] = _pulls(j, pm.truth)
         rows.append(ev)
         ws = list(j["quality"]["warnings"])
+        ev["blockers"] = []
         if res is not None:
             # what blocks ok first (marked "!"), then the notes
             first, flags = res.quality.doubts_first_flagged()
             if flags is not None:
                 ws = [("! " if f else "") + w for w, f in zip(first, flags)]
+                ev["blockers"] = [w for w, f in zip(first, flags) if f]
         doubt = ws if a.verbose else [w for w in ws if w.startswith("! ")][:2]
         m = pm.meta
         tag = " SILENT-FAIL(" + ",".join(ev["beyond"]) + ")" if ev["silent"] else ""
@@ -634,6 +662,11 @@ def main(argv: list[str] | None = None) -> int:
     within = [r for r in rows if not r["beyond"] and np.isfinite(r["vg"]) and np.isfinite(r["cdg"])]
     print(f"maps whose reported vg and Cdg are within the bounds: {len(within)}/{n} "
           f"(of which ok: {sum(r['ok'] for r in within)})")
+    census = blocker_census([r["blockers"] for r in within if not r["ok"]])
+    if census:
+        print("what keeps those within the bounds from ok (maps; alone = the only doubt):")
+        for kind, (count, alone) in census:
+            print(f"  {count:4d} ({alone} alone)  {kind}")
     for key, name in (("pulls_m", "virtual-gate off-diagonals"), ("pulls_cdg", "Cdg elements")):
         for label, sub in (("all", rows), ("ok", [r for r in rows if r["ok"]])):
             p_ = np.concatenate([np.asarray(r[key], float) for r in sub] + [np.zeros(0)])
