@@ -495,7 +495,7 @@ def _range(text: str | None) -> tuple[float, float] | None:
 def blocker_kind(warning: str) -> str:
     """A warning with its numbers blanked (``#``), cut at the first colon or parenthesis, to count alike doubts.
 
-    The detector's warnings keep their ``detector:`` prefix and are cut after it.
+    The detector's warnings keep their ``detector:`` prefix; the cut is made in the rest.
     """
     prefix = "detector: " if warning.startswith("detector: ") else ""
     head = prefix + re.split(r"[:(]", warning[len(prefix):], maxsplit=1)[0]
