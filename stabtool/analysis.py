@@ -246,7 +246,7 @@ def _blind_where_empty(states: ChargeStates, detection: LineDetection | None, x:
     either.
     """
     from .fit.charge_states import SEEN_MIN_PIXELS, lines_seen_where_empty
-    from .fit.relocate import _to_idx as to_px
+    from .fit.relocate import volts_to_index as to_px
 
     if detection is None or not any(states.absolute):
         return None

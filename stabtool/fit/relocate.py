@@ -47,8 +47,8 @@ from ..lines.joint import _median, clustered_slope_variance
 from ..lines.refine import QUANTISED_MAX_STEPS, QUANTISED_SHARE, midway, pixel_slope_error
 from ..lines.result import TransitionLine
 
-__all__ = ["RelocatedFamily", "SplitFamily", "clustered_slope_error", "pixel_limited", "quantised_crossings",
-           "relocate_family", "split_at_crossings"]
+__all__ = ["RelocatedFamily", "SplitFamily", "clustered_slope_error", "index_to_volts", "mean_shift_stats",
+           "pixel_limited", "quantised_crossings", "relocate_family", "split_at_crossings", "volts_to_index"]
 
 #: Smallest band piece kept by :func:`split_at_crossings`, pixels along the cross axis.
 MIN_PIECE_PX = 8.0
@@ -72,9 +72,6 @@ class RelocatedFamily:
         Crossing points used.
     residual_V : float
         Robust rms distance of the points from their lines (along the scan axis), V.
-    between_lines_stderr : float
-        Standard error of the common slope from the scatter of the lines' own
-        slopes (inverse-variance mean of per-line slopes; NaN with < 3 lines).
     bend_V, bend_stderr_V : float
         Common S-shaped bend of the lines (coefficient of ``u³ − 3u/5``,
         ``u`` ∈ [−1, 1] along each segment, orthogonal to offset and slope),
@@ -102,7 +99,6 @@ class RelocatedFamily:
     stderr: float
     n_points: int
     residual_V: float
-    between_lines_stderr: float = float("nan")
     bend_V: float = float("nan")
     bend_stderr_V: float = float("nan")
     staircase_p: float = float("nan")
@@ -252,11 +248,13 @@ def median(a: np.ndarray) -> float:
     return float("nan") if a.size == 0 else float(_median(a))
 
 
-def _to_v(idx: np.ndarray | float, axis: np.ndarray) -> np.ndarray:
+def index_to_volts(idx: np.ndarray | float, axis: np.ndarray) -> np.ndarray:
+    """Fractional sample index → volts on ``axis`` (linear interpolation, clamped at the ends)."""
     return np.asarray(np.interp(idx, np.arange(axis.size), axis))
 
 
-def _to_idx(v: np.ndarray | float, axis: np.ndarray) -> np.ndarray:
+def volts_to_index(v: np.ndarray | float, axis: np.ndarray) -> np.ndarray:
+    """Volts → fractional sample index on ``axis`` (increasing or decreasing; clamped at the ends)."""
     if axis[0] <= axis[-1]:
         return np.asarray(np.interp(v, axis, np.arange(axis.size)))
     return np.asarray(np.interp(v, axis[::-1], np.arange(axis.size)[::-1]))
@@ -281,10 +279,10 @@ def _split_rows(profs: np.ndarray, noise: float) -> np.ndarray:
     m, n = profs.shape
     if m == 0 or n < 2:
         return np.full(m, np.nan)
-    return _located(_mean_shift_stats(profs), noise)
+    return _located(mean_shift_stats(profs), noise)
 
 
-def _mean_shift_stats(profs: np.ndarray) -> np.ndarray:
+def mean_shift_stats(profs: np.ndarray) -> np.ndarray:
     """``|mean(left) − mean(right)| · sqrt(k (n − k) / n)`` for every split k = 1 … n−1, shape (m, n − 1).
 
     The square is the residual-sum reduction of one mean shift at the split.
@@ -305,7 +303,7 @@ def _sloped_shift_stats(profs: np.ndarray) -> np.ndarray:
     at split k is ``R_k² / D_k``, ``R_k = Σ_{u≥k} r_u`` and ``D_k`` the squared
     norm of the step regressor after projecting out ``1`` and ``u`` (nested
     least squares; Draper and Smith, ch. 6). The statistic is its square
-    root, on the scale of :func:`_mean_shift_stats`. Splits next to the ends
+    root, on the scale of :func:`mean_shift_stats`. Splits next to the ends
     (one sample on a side) cannot be told from the slope and are left out.
     """
     n = profs.shape[1]
@@ -424,7 +422,7 @@ def quantised_crossings(s: np.ndarray, scan_axis: np.ndarray) -> bool:
     s = np.asarray(s, float)
     if s.size == 0:
         return False
-    return bool(np.mean(midway(_to_idx(s, scan_axis))) >= QUANTISED_SHARE)
+    return bool(np.mean(midway(volts_to_index(s, scan_axis))) >= QUANTISED_SHARE)
 
 
 def pixel_limited(s: np.ndarray, scan_axis: np.ndarray, spans, b: float) -> bool:
@@ -497,7 +495,7 @@ def _crossings(zz, scan_axis, cross_axis, spans, mids, b, *, trim, half_px, nois
     lid, rows_a = np.nonzero(inside)
     mids_a = np.asarray(mids, float).reshape(n_lines, 2)
     cval_a = np.asarray(cross_axis[rows_a], float)
-    p_idx = _to_idx(mids_a[lid, 0] + b * (cval_a - mids_a[lid, 1]), scan_axis)
+    p_idx = volts_to_index(mids_a[lid, 0] + b * (cval_a - mids_a[lid, 1]), scan_axis)
     fin = np.isfinite(p_idx)
     p_safe = np.where(fin, p_idx, -1e9)
     i0 = np.floor(p_safe - half_px).astype(np.int64)
@@ -514,7 +512,7 @@ def _crossings(zz, scan_axis, cross_axis, spans, mids, b, *, trim, half_px, nois
         centre[sel] = _change_points(profs, noise) + i0[sel]
     ok = np.isfinite(centre)
     s_all = np.full(rows_a.size, np.nan)
-    s_all[ok] = _to_v(centre[ok], scan_axis)
+    s_all[ok] = index_to_volts(centre[ok], scan_axis)
     return s_all[ok], cval_a[ok], lid[ok]
 
 
@@ -709,7 +707,6 @@ class _WindowFit:
     n_used: int
     sigma: float
     offsets: tuple = ()
-    between: float = float("nan")
     bend: float = float("nan")
     bend_err: float = float("nan")
     stair_p: float = float("nan")
@@ -746,7 +743,7 @@ def _relocated(lines: list[TransitionLine], fit: _WindowFit, *, which: int, init
             perp = sigma / np.sqrt(n) / np.sqrt(1 + b * b)
         out.append(replace(ln, x0=float(x0), y0=float(y0), slope=float(slope), slope_stderr=float(slope_err),
                            position_stderr=float(perp), start=start, end=end, n_points=n))
-    return RelocatedFamily(fit.ok, tuple(out), float(b), float(b_err), fit.n_used, float(sigma), fit.between,
+    return RelocatedFamily(fit.ok, tuple(out), float(b), float(b_err), fit.n_used, float(sigma),
                            float(fit.bend), float(fit.bend_err), fit.stair_p, fit.stair_jump, fit.pixel_limited)
 
 
@@ -767,7 +764,7 @@ def _fit_window(z: np.ndarray, x: np.ndarray, y: np.ndarray, lines: list[Transit
     sigma = np.nan
     b_err = b_iid = np.nan
     n_used = 0
-    bend = bend_err = between = float("nan")
+    bend = bend_err = float("nan")
     limited = False
     for it in range(n_iter):
         # all crossing points of the family in flat arrays, ``lid`` = line index of each point
@@ -820,17 +817,8 @@ def _fit_window(z: np.ndarray, x: np.ndarray, y: np.ndarray, lines: list[Transit
         b_err = max(b_iid, clustered_slope_error(lid[use], dc[use], rr[use], den, n_lines_in))
         if limited:
             b_err = max(b_err, _pixel_limit(lid[use], c_all[use], n_lines_in, step))
-        # the lines' own slopes: their scatter is an independent check of b_err
-        d_i = np.bincount(lid[use], dc[use] ** 2, n_lines_in)
-        sxy = np.bincount(lid[use], dc[use] * ds[use], n_lines_in)
-        own = (cnt >= 5) & (d_i > 0)
-        b_i, w_i = sxy[own] / d_i[own], d_i[own] / sigma**2
         bend, bend_err = _common_bend(lid, n_lines_in, mask & (cnt >= 8)[lid], c_all, rr)
         bend, bend_err = bend * 0.4, bend_err * sigma * 0.4
-        between = float("nan")
-        if b_i.size >= 3:
-            mean_i = float(np.sum(w_i * b_i) / np.sum(w_i))
-            between = float(np.sqrt(np.sum(w_i * (b_i - mean_i) ** 2) / (b_i.size - 1) / np.sum(w_i)))
         offsets = [(float(sm[i]), float(cm[i]), int(cnt[i])) if good[i] else None for i in range(n_lines_in)]
         # next pass: predicted positions from the common slope
         mids = [(off[0], off[1]) if off is not None else mid for off, mid in zip(offsets, mids0)]
@@ -839,5 +827,5 @@ def _fit_window(z: np.ndarray, x: np.ndarray, y: np.ndarray, lines: list[Transit
         stair_p, stair_jump = _staircase_test(np.asarray(groups, int)[lid], use, s_all, c_all, ss, n_used - n_lines - 1,
                                               lid, n_lines_in, b)
     ok = n_used >= 6 and np.isfinite(b_err)
-    return _WindowFit(bool(ok), False, float(b), float(b_err), n_used, float(sigma), tuple(offsets), between,
+    return _WindowFit(bool(ok), False, float(b), float(b_err), n_used, float(sigma), tuple(offsets),
                       float(bend), float(bend_err), stair_p, stair_jump, float(b_iid), limited)

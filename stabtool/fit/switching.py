@@ -15,7 +15,7 @@ from itertools import pairwise
 
 import numpy as np
 
-from .relocate import _mean_shift_stats
+from .relocate import mean_shift_stats
 
 __all__ = ["SwitchingOffsets", "switching_offsets"]
 
@@ -56,7 +56,7 @@ def _cusum_split(r: np.ndarray, sigma: float) -> tuple[int, float]:
     """Best split of ``r`` (finite, 1-D) into two constant pieces: ``(index, statistic in σ)``.
 
     The statistic is the mean-shift statistic of the line re-measurement
-    (:func:`stabtool.fit.relocate._mean_shift_stats`) of the clipped values,
+    (:func:`stabtool.fit.relocate.mean_shift_stats`) of the clipped values,
     ``|m₂ − m₁| √(n₁ n₂ / n) / σ``, over splits leaving ``MIN_PIECE_PX`` on
     each side.
     """
@@ -65,7 +65,7 @@ def _cusum_split(r: np.ndarray, sigma: float) -> tuple[int, float]:
         return 0, 0.0
     c = np.clip(r, -CLIP_SIGMAS * sigma, CLIP_SIGMAS * sigma)
     # (entry k − 1 of the statistics is the split after k samples)
-    t = _mean_shift_stats(c[None, :])[0, MIN_PIECE_PX - 1 : n - MIN_PIECE_PX] / sigma
+    t = mean_shift_stats(c[None, :])[0, MIN_PIECE_PX - 1 : n - MIN_PIECE_PX] / sigma
     k = int(np.argmax(t))
     return MIN_PIECE_PX + k, float(t[k])
 
