@@ -254,7 +254,10 @@ def index_to_volts(idx: np.ndarray | float, axis: np.ndarray) -> np.ndarray:
 
 
 def volts_to_index(v: np.ndarray | float, axis: np.ndarray) -> np.ndarray:
-    """Volts → fractional sample index on ``axis`` (increasing or decreasing; clamped at the ends)."""
+    """Volts → fractional sample index on ``axis`` (increasing or decreasing; clamped at the ends).
+
+    ``stabtool.lines._geometry.volts_to_idx`` is the same map with NaN outside the axis.
+    """
     if axis[0] <= axis[-1]:
         return np.asarray(np.interp(v, axis, np.arange(axis.size)))
     return np.asarray(np.interp(v, axis[::-1], np.arange(axis.size)[::-1]))
