@@ -78,6 +78,11 @@ def test_batch_over_a_folder_writes_table_plots_summary_and_exit_1_for_the_corru
     assert "Caution" in page and "lab" in page and "<script>" in page
     assert 'href="plots/' in page and "<table id=\"results\">" in page
     assert "http://" not in page and "https://" not in page  # self-contained
+    # the table's key numbers start with the virtual-gate elements, as the row of the map has them
+    head = page.split("<thead>")[1].split("</thead>")[0]
+    assert head.index("<th>M12</th>") < head.index("<th>M21</th>") < head.index("<th>ΔV dot1 (mV)</th>")
+    m12 = rows["kestrel-7_1.csv"]["virtual_gate_matrix.0.1"]
+    assert m12 and f'data-v="{float(m12)!r}"' in page
 
 
 def test_bad_usage_is_exit_2_with_one_line(tmp_path, capsys):

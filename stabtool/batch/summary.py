@@ -27,10 +27,12 @@ from .store import CAUTION, BatchRecord, atomic_write_text
 
 __all__ = ["KEY_QUANTITIES", "drift_for_batch", "find_repeated_series", "series_of_files", "write_summary"]
 
-#: (column of the flat table, label, scale to display unit, unit) of the trend plots and table.
+#: (column of the flat table, label, scale to display unit, unit) of the trend plots and table. The
+#: virtual-gate elements are what the control stack takes (the slopes they come from, ``M12 = −1/s1``,
+#: ``M21 = −s2``, are in ``results.csv``).
 KEY_QUANTITIES: tuple[tuple[str, str, float, str], ...] = (
-    ("slopes.dot1", "slope dot1", 1.0, ""),
-    ("slopes.dot2", "slope dot2", 1.0, ""),
+    ("virtual_gate_matrix.0.1", "M12", 1.0, ""),
+    ("virtual_gate_matrix.1.0", "M21", 1.0, ""),
     ("addition_voltages_V.dot1", "ΔV dot1", 1e3, "mV"),
     ("addition_voltages_V.dot2", "ΔV dot2", 1e3, "mV"),
     ("lever_arm.0.0", "α11", 1.0, ""),
@@ -42,8 +44,8 @@ KEY_QUANTITIES: tuple[tuple[str, str, float, str], ...] = (
 
 #: Where the one-standard-error of a key quantity is looked for (first found wins).
 _ERROR_COLUMNS = {
-    "slopes.dot1": ("slope_errors.dot1",),
-    "slopes.dot2": ("slope_errors.dot2",),
+    "virtual_gate_matrix.0.1": ("virtual_gate_matrix_error.0.1",),
+    "virtual_gate_matrix.1.0": ("virtual_gate_matrix_error.1.0",),
     "addition_voltages_V.dot1": ("addition_voltages_V_error.dot1",),
     "addition_voltages_V.dot2": ("addition_voltages_V_error.dot2",),
     "lever_arm.0.0": ("lever_arm_error.0.0",),
