@@ -31,7 +31,7 @@ from .lattice import FamilySegments, LatticeFit, fit_lattice, merge_fragments
 from .relocate import SplitFamily, relocate_family, split_at_crossings
 from .uncertainty import error_verdict, propagate
 
-__all__ = ["DiagramFit", "fit_diagram", "predicted_lines", "to_virtual"]
+__all__ = ["DiagramFit", "fit_diagram", "predicted_lines", "to_virtual", "with_params"]
 
 #: Relative per-cell spread of ΔV or δ above which spacings count as inconsistent.
 MAX_CELL_SPREAD = 0.10
@@ -908,11 +908,12 @@ def fit_diagram(
         "cell (the sensor's sensitivity varies over the map)", doubtful=False))
 
 
-def _fit_passes(detection: LineDetection, cuts: tuple[LineDetection, list[str]] | None, *, data: Any,
+def _fit_passes(detection: LineDetection, cuts: tuple[LineDetection, dict[str, float]] | None, *, data: Any,
                 relocate: bool, err_floor_px: float, noise: float | None, keep_clear: bool = False) -> DiagramFit:
     """The passes of :func:`fit_diagram` (``keep_clear`` in every one), the best one chosen.
 
-    ``cuts``: the piecewise detection and the staircase families (None when nothing is cut).
+    ``cuts``: the piecewise detection and the staircase families with their band pieces' virtual-gate
+    element (:func:`_staircases`; None when nothing is cut).
     """
     first = _fit_once(detection, data=data, relocate=relocate, err_floor_px=err_floor_px, noise=noise,
                       keep_clear=keep_clear)
@@ -921,8 +922,10 @@ def _fit_passes(detection: LineDetection, cuts: tuple[LineDetection, list[str]] 
     # piecewise pass; a significant staircase rules out the first pass
     piece: DiagramFit | None = None
     stair: list[str] = []
+    stair_m: dict[str, float] = {}
     if cuts is not None:
-        pieces, stair = cuts
+        pieces, stair_m = cuts
+        stair = list(stair_m)
         if stair or not first.ok:
             # the piecewise pass only where it is needed: a staircase, or a failed first pass
             piece = _fit_once(pieces, data=data, relocate=True, err_floor_px=err_floor_px,
@@ -930,9 +933,9 @@ def _fit_passes(detection: LineDetection, cuts: tuple[LineDetection, list[str]] 
     cands = [f for f in ((first if not stair else None), piece) if f is not None and f.ok]
     if not cands:
         if stair and first.ok:
-            return replace(first, quality=first.quality.with_warning(
+            return replace(_with_staircase_bias(first, stair_m), quality=first.quality.with_warning(
                 f"{', '.join(stair)} segments merge several charge bands (staircase) and the piecewise fit "
-                "failed: slopes biased"))
+                "failed: slopes biased (their virtual-gate errors include the band pieces' difference)"))
         return first if piece is None or not stair else piece
     base = min(cands, key=lambda f: float(np.nanmax(f.vg_matrix_error)))
     pred = predicted_lines(base, detection.axes)
@@ -1003,6 +1006,74 @@ def _disagreement_message(best: DiagramFit, other: DiagramFit, z: float) -> str:
             "one of them states too small an error")
 
 
+def _with_staircase_bias(fit: DiagramFit, stair_m: dict[str, float]) -> DiagramFit:
+    """``fit`` with ``|M − M_pieces|`` of each staircase family added in quadrature to that element's error.
+
+    A dot line merged across charge bands is a staircase: its straight fit
+    has the mean slope ``1/s_eff = 1/s + δ/Δ_band``, not the line's. When
+    the piecewise pass (one offset per band piece) gives no charge cell,
+    the numbers stay those of the straight fit, but the band pieces' own
+    common slope (:func:`_staircases`) says how far off its element of M
+    is: that difference is a measured systematic error, counted in full (it
+    is known which estimate is biased). Held-out probe, the three maps of
+    552 where this happens: M12 of seed 21 with a tunnel coupling of 25 µeV
+    and a state-averaging sensor (SNR 4) was 0.056 off at a stated 0.0031
+    (pull 18) before (DEVELOPERS.md, "Twenty-ninth session").
+    """
+    diff = np.zeros(6)
+    for name, m_piece in stair_m.items():
+        i = 0 if name == "dot1" else 1
+        d = float(m_piece) - float(fit.params[i])
+        if np.isfinite(d):
+            diff[i] = abs(d)
+    if not np.any(diff > 0):
+        return fit
+    return with_params(fit, fit.params.copy(), fit.param_cov + np.diag(diff**2))
+
+
+def with_params(fit: DiagramFit, p: np.ndarray, new_cov: np.ndarray) -> DiagramFit:
+    """``fit`` with the parameters ``p = (M12, M21, ΔV1, δ1, ΔV2, δ2)`` and their covariance.
+
+    Every derived number (slopes, Cdg, α11/α22) and the offsets (which
+    follow the new M) are propagated and the error verdict is redone.
+    ``fit`` must have a lattice (``fit.ok``).
+    """
+    assert fit.lattice is not None  # (every caller returns earlier without one)
+    lam, vecs = np.linalg.eigh(0.5 * (new_cov + new_cov.T))
+    if lam.min() < 0:
+        new_cov = (vecs * np.abs(lam)) @ vecs.T
+    err = np.sqrt(np.clip(np.diag(new_cov), 0, None))
+    resolved = fit.mutual_resolved and bool(np.all(np.abs(p[[3, 5]]) > MUTUAL_SIGMAS * err[[3, 5]]))
+    values, errors = propagate(_derived, p, new_cov)
+    slopes = dict(fit.slopes)
+    slope_errors = dict(fit.slope_errors)
+    slopes["dot1"], slope_errors["dot1"] = float(values[5]), float(errors[5])
+    slopes["dot2"], slope_errors["dot2"] = float(values[6]), float(errors[6])
+    if resolved and np.isfinite(values[7]) and not (np.isfinite(fit.slope_errors.get("interdot", np.nan))
+                                                    and fit.slope_errors["interdot"] <= errors[7]):
+        slopes["interdot"], slope_errors["interdot"] = float(values[7]), float(errors[7])
+    new = replace(
+        fit,
+        slopes=slopes,
+        slope_errors=slope_errors,
+        params=p,
+        param_cov=new_cov,
+        vg_matrix=np.array([[1.0, p[0]], [p[1], 1.0]]),
+        vg_matrix_error=np.array([[0.0, err[0]], [err[1], 0.0]]),
+        addition_V=p[[2, 4]].copy(),
+        addition_V_error=err[[2, 4]].copy(),
+        mutual_V=p[[3, 5]].copy(),
+        mutual_V_error=err[[3, 5]].copy(),
+        offsets_V=fit.offsets_V + np.nan_to_num(fit.lattice.grad_m[[2, 5]]) @ (p[:2] - fit.params[:2]),
+        cdg_aF=values[:4].reshape(2, 2),
+        cdg_aF_error=errors[:4].reshape(2, 2),
+        alpha_ratio=float(values[4]) if resolved else float("nan"),
+        alpha_ratio_error=float(errors[4]) if resolved else float("nan"),
+        mutual_resolved=resolved,
+    )
+    return replace(new, quality=error_verdict(new))
+
+
 def _piecewise_detection(detection: LineDetection) -> tuple[LineDetection, tuple[SplitFamily, SplitFamily] | None]:
     """The detection with every dot segment cut at the other family's (extended) lines; None if nothing is cut."""
     f1, f2 = detection.family("dot1"), detection.family("dot2")
@@ -1023,16 +1094,20 @@ def _piecewise_detection(detection: LineDetection) -> tuple[LineDetection, tuple
 
 
 def _staircases(data: Any, detection: LineDetection, splits: tuple[SplitFamily, SplitFamily], *,
-                noise: float | None = None) -> list[str]:
+                noise: float | None = None) -> dict[str, float]:
     """Families whose cut segments are staircases: one offset per band piece fits significantly better.
 
-    ``noise``: the map's noise standard deviation (default: :func:`stabtool.fit.contrast.map_noise`).
+    Returns each such family's name and the virtual-gate element its band
+    pieces give (their common slope, one offset per piece: ``M12 = −dx/dy``
+    of dot1, ``M21 = −dy/dx`` of dot2), the slope a straight fit across the
+    steps misses. ``noise``: the map's noise standard deviation (default:
+    :func:`stabtool.fit.contrast.map_noise`).
     """
     z = np.asarray(data.values, float)
     xa = np.asarray(data[data.dims[-1]].values, float)
     ya = np.asarray(data[data.dims[0]].values, float)
     noise = map_noise(z) if noise is None else float(noise)
-    out = []
+    out: dict[str, float] = {}
     for which, (name, sp) in enumerate((("dot1", splits[0]), ("dot2", splits[1]))):
         if not sp.n_cut:
             continue
@@ -1042,5 +1117,5 @@ def _staircases(data: Any, detection: LineDetection, splits: tuple[SplitFamily, 
             continue
         rel = relocate_family(z, xa, ya, sp.lines, which=which, initial=init, noise=noise, groups=sp.source)
         if rel.ok and np.isfinite(rel.staircase_p) and rel.staircase_p < STAIRCASE_P:
-            out.append(name)
+            out[name] = -float(rel.inv_or_slope)
     return out

@@ -164,7 +164,7 @@ import scipy.sparse as sp
 import xarray as xr
 
 from ..quality import Quality
-from .model import DiagramFit
+from .model import DiagramFit, with_params
 
 __all__ = ["PARAM_NAMES", "TUNNEL_PARAM", "Adoption", "Refinement", "StructureTest", "adopt_refinement",
            "adopt_tunnel_refinement", "clustered_covariance", "model_occupations", "refine_model",
@@ -1823,7 +1823,7 @@ def _with_kept_disagreement(fit: DiagramFit, refined: np.ndarray, which: list[in
     diff = np.where(np.isfinite(diff), diff, 0.0)  # (a number the refinement did not determine: no term)
     if not np.any(diff > 0):
         return fit
-    return _fit_with_params(fit, fit.params.copy(), fit.param_cov + np.diag(diff**2))
+    return with_params(fit, fit.params.copy(), fit.param_cov + np.diag(diff**2))
 
 
 def systematic_floor_m(m: np.ndarray, smear: float) -> np.ndarray:
@@ -2034,7 +2034,7 @@ def adopt_refinement(fit: DiagramFit, ref: Refinement) -> Adoption:
     new_cov[2:, :2] = cov_md.T
     # the assumed correlation of the two estimates need not be consistent with the rest of the joint
     # covariance: a negative direction of the result is turned positive (never understates an error)
-    new = _fit_with_params(fit, p, new_cov)
+    new = with_params(fit, p, new_cov)
     q = q.with_warning("virtual gates refined by the model fit to the map", doubtful=False)
     return Adoption(new, True, z, q, disagreement_term=sys_m, weight_refined=_weights(
         np.sqrt(np.diag(cov_line)), np.sqrt(np.diag(cov_ref)), fit.mutual_resolved), addition_mutual_term=sys_d)
@@ -2114,58 +2114,13 @@ def adopt_tunnel_refinement(fit: DiagramFit, ref: Refinement, plain: Refinement 
             short[~np.isfinite(short)] = 0.0
             cov = cov + np.diag(short)
             shift_term = np.sqrt(shift_term**2 + short)
-    new = _fit_with_params(fit, vec.copy(), cov)
+    new = with_params(fit, vec.copy(), cov)
     q = q.with_warning(
         f"virtual gates from the model fit to the map with interdot tunnel coupling t/(e α11) = "
         f"{1e3 * t:.3g} ± {1e3 * st:.2g} mV of the x gate: the dot lines bend towards the triple points, "
         "the line-based numbers are biased and not used", doubtful=False)
     return Adoption(new, True, z, q, disagreement_term=shift_term[:2], weight_refined=np.ones(4),
                     addition_mutual_term=shift_term[2:], tunnel=True)
-
-
-def _fit_with_params(fit: DiagramFit, p: np.ndarray, new_cov: np.ndarray) -> DiagramFit:
-    """``fit`` with the parameters ``p = (M12, M21, ΔV1, δ1, ΔV2, δ2)`` and their covariance, every derived
-    number (slopes, Cdg, α11/α22) and the offsets (which follow the new M) propagated and the error
-    verdict redone."""
-    from dataclasses import replace
-
-    from .model import MUTUAL_SIGMAS, _derived
-    from .uncertainty import error_verdict, propagate
-
-    assert fit.lattice is not None  # (both callers return earlier without one)
-    lam, vecs = np.linalg.eigh(0.5 * (new_cov + new_cov.T))
-    if lam.min() < 0:
-        new_cov = (vecs * np.abs(lam)) @ vecs.T
-    err = np.sqrt(np.clip(np.diag(new_cov), 0, None))
-    resolved = fit.mutual_resolved and bool(np.all(np.abs(p[[3, 5]]) > MUTUAL_SIGMAS * err[[3, 5]]))
-    values, errors = propagate(_derived, p, new_cov)
-    slopes = dict(fit.slopes)
-    slope_errors = dict(fit.slope_errors)
-    slopes["dot1"], slope_errors["dot1"] = float(values[5]), float(errors[5])
-    slopes["dot2"], slope_errors["dot2"] = float(values[6]), float(errors[6])
-    if resolved and np.isfinite(values[7]) and not (np.isfinite(fit.slope_errors.get("interdot", np.nan))
-                                                    and fit.slope_errors["interdot"] <= errors[7]):
-        slopes["interdot"], slope_errors["interdot"] = float(values[7]), float(errors[7])
-    new = replace(
-        fit,
-        slopes=slopes,
-        slope_errors=slope_errors,
-        params=p,
-        param_cov=new_cov,
-        vg_matrix=np.array([[1.0, p[0]], [p[1], 1.0]]),
-        vg_matrix_error=np.array([[0.0, err[0]], [err[1], 0.0]]),
-        addition_V=p[[2, 4]].copy(),
-        addition_V_error=err[[2, 4]].copy(),
-        mutual_V=p[[3, 5]].copy(),
-        mutual_V_error=err[[3, 5]].copy(),
-        offsets_V=fit.offsets_V + np.nan_to_num(fit.lattice.grad_m[[2, 5]]) @ (p[:2] - fit.params[:2]),
-        cdg_aF=values[:4].reshape(2, 2),
-        cdg_aF_error=errors[:4].reshape(2, 2),
-        alpha_ratio=float(values[4]) if resolved else float("nan"),
-        alpha_ratio_error=float(errors[4]) if resolved else float("nan"),
-        mutual_resolved=resolved,
-    )
-    return replace(new, quality=error_verdict(new))
 
 
 def _weights(s_line: np.ndarray, s_ref: np.ndarray, mutual: bool) -> np.ndarray:
