@@ -933,7 +933,9 @@ def _fit_passes(detection: LineDetection, cuts: tuple[LineDetection, dict[str, f
     cands = [f for f in ((first if not stair else None), piece) if f is not None and f.ok]
     if not cands:
         if stair and first.ok:
-            return replace(_with_staircase_bias(first, stair_m), quality=first.quality.with_warning(
+            # (the error checks of the verdict redone on the widened errors, the note added to it)
+            biased = _with_staircase_bias(first, stair_m)
+            return replace(biased, quality=biased.quality.with_warning(
                 f"{', '.join(stair)} segments merge several charge bands (staircase) and the piecewise fit "
                 "failed: slopes biased (their virtual-gate errors include the band pieces' difference)"))
         return first if piece is None or not stair else piece
