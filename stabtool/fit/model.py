@@ -31,7 +31,7 @@ from .lattice import FamilySegments, LatticeFit, fit_lattice, merge_fragments
 from .relocate import SplitFamily, relocate_family, split_at_crossings
 from .uncertainty import error_verdict, propagate
 
-__all__ = ["DiagramFit", "fit_diagram", "predicted_lines", "to_virtual", "with_params"]
+__all__ = ["DiagramFit", "fit_diagram", "predicted_lines", "to_virtual", "with_added_errors", "with_params"]
 
 #: Relative per-cell spread of ΔV or δ above which spacings count as inconsistent.
 MAX_CELL_SPREAD = 0.10
@@ -1025,12 +1025,21 @@ def _with_staircase_bias(fit: DiagramFit, stair_m: dict[str, float]) -> DiagramF
     diff = np.zeros(6)
     for name, m_piece in stair_m.items():
         i = 0 if name == "dot1" else 1
-        d = float(m_piece) - float(fit.params[i])
-        if np.isfinite(d):
-            diff[i] = abs(d)
-    if not np.any(diff > 0):
+        diff[i] = abs(float(m_piece) - float(fit.params[i]))
+    return with_added_errors(fit, diff)
+
+
+def with_added_errors(fit: DiagramFit, extra: np.ndarray) -> DiagramFit:
+    """``fit`` with ``extra`` (one per ``(M12, M21, ΔV1, δ1, ΔV2, δ2)``) added in quadrature to their errors.
+
+    Non-finite terms count as none; ``fit`` itself when no term is positive.
+    Every derived number is propagated anew (:func:`with_params`).
+    """
+    extra = np.asarray(extra, float)
+    extra = np.where(np.isfinite(extra), extra, 0.0)
+    if not np.any(extra > 0):
         return fit
-    return with_params(fit, fit.params.copy(), fit.param_cov + np.diag(diff**2))
+    return with_params(fit, fit.params.copy(), fit.param_cov + np.diag(extra**2))
 
 
 def with_params(fit: DiagramFit, p: np.ndarray, new_cov: np.ndarray) -> DiagramFit:

@@ -164,7 +164,7 @@ import scipy.sparse as sp
 import xarray as xr
 
 from ..quality import Quality
-from .model import DiagramFit, with_params
+from .model import DiagramFit, with_added_errors, with_params
 
 __all__ = ["PARAM_NAMES", "TUNNEL_PARAM", "Adoption", "Refinement", "StructureTest", "adopt_refinement",
            "adopt_tunnel_refinement", "clustered_covariance", "model_occupations", "refine_model",
@@ -1820,10 +1820,7 @@ def _with_kept_disagreement(fit: DiagramFit, refined: np.ndarray, which: list[in
     diff = np.zeros(6)
     idx = np.asarray(which, int)
     diff[idx] = KEPT_DISAGREEMENT_SHARE * np.abs(np.asarray(refined, float)[idx] - fit.params[idx])
-    diff = np.where(np.isfinite(diff), diff, 0.0)  # (a number the refinement did not determine: no term)
-    if not np.any(diff > 0):
-        return fit
-    return with_params(fit, fit.params.copy(), fit.param_cov + np.diag(diff**2))
+    return with_added_errors(fit, diff)  # (a number the refinement did not determine: NaN, no term)
 
 
 def systematic_floor_m(m: np.ndarray, smear: float) -> np.ndarray:
