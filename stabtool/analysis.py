@@ -224,6 +224,18 @@ FADED_LINE_RATIO = 0.1
 #: a line in the faded part of the map has weak edges too. On every map it changed many maps either way
 #: (held-out probe sets 0:64, 64:128, states 0:64, stretched 0:64: within the bounds +3, −4, +1, 0)
 FADED_CONTRAST_FLOOR = 0.1
+#: Shortest segment (pixels) of a detection tried when the lines of the first ones (segments of at
+#: least ``LineDetector.min_length_px``, 8 px) give no charge cell: a map whose charge cells are only a
+#: few pixels across (small or coarse maps, many electrons) has dot line pieces between the other dot's
+#: lines shorter than that. Only then: shorter segments let more noise through on every map. Held-out
+#: probe, 712 maps of 13 sets (among them 96 maps of 40–90 px and 32 with 10–16 transitions per dot):
+#: 6 maps without a virtual-gate matrix get one, all doubtful, M within the bounds on 5, M pulls ≤ 1.4,
+#: Cdg pulls ≤ 2.5; no other map changes (DEVELOPERS.md, "Thirtieth session"). Tried only on maps whose edges are
+#: at most half that broad (``LineDetection.edge_width_px``): a piece of a broad line shorter than twice its
+#: width has no direction of its own (a 1 K map with 10-px edges got 12 such pieces and M12 0.40 off);
+#: and only on clean maps (detection SNR ≥ ``CLEAN_SNR``): of six maps below it that got a matrix this way,
+#: three were 0.06–0.15 off, one of them at 16 of its stated errors.
+SHORT_SEGMENT_PX = 5.0
 #: what a map measures (``Analyzer(readout=...)``, ``stabtool analyze --readout``)
 READOUTS = ("auto", "charge", "derivative-x", "derivative-y")
 #: the reason a derivative map's sum is never ok (followed by the axis)
@@ -1369,18 +1381,18 @@ def _jumps_as_lattice(da: xr.DataArray, detection: LineDetection) -> tuple[LineD
     return again, fit_map, fit
 
 
-def _with_faded_lines(
-    da: xr.DataArray, detection: LineDetection
+def _detected_again(
+    da: xr.DataArray, detection: LineDetection, **options: Any
 ) -> tuple[LineDetection, xr.DataArray, DiagramFit, int] | None:
-    """Detection, fit map, fit and the number of dot lines gained with weak lines kept, or None.
+    """Detection, fit map, fit and the number of dot lines gained by a detection with ``options``, or None.
 
-    The map is detected again with :data:`FADED_LINE_RATIO` and
-    :data:`FADED_CONTRAST_FLOOR`; None unless that detection has more dot
-    lines than ``detection`` and its lines give a charge cell.
+    The map is detected again with the detector ``options``; None unless
+    that detection has more dot lines than ``detection`` and its lines give
+    a charge cell.
     """
     from .lines import detect_lines
 
-    again = detect_lines(da, weak_line_ratio=FADED_LINE_RATIO, contrast_floor=FADED_CONTRAST_FLOOR)
+    again = detect_lines(da, **options)
     n_dot = [len(d.family(f)) for d in (detection, again) for f in ("dot1", "dot2")]
     n_more = n_dot[2] + n_dot[3] - n_dot[0] - n_dot[1]
     if n_more <= 0:
@@ -1390,6 +1402,27 @@ def _with_faded_lines(
     if not fit.ok:
         return None
     return again, fit_map, fit, n_more
+
+
+def _with_faded_lines(
+    da: xr.DataArray, detection: LineDetection
+) -> tuple[LineDetection, xr.DataArray, DiagramFit, int] | None:
+    """:func:`_detected_again` with weak lines kept (:data:`FADED_LINE_RATIO`, :data:`FADED_CONTRAST_FLOOR`)."""
+    return _detected_again(da, detection, weak_line_ratio=FADED_LINE_RATIO, contrast_floor=FADED_CONTRAST_FLOOR)
+
+
+def _with_short_segments(
+    da: xr.DataArray, detection: LineDetection
+) -> tuple[LineDetection, xr.DataArray, DiagramFit, int] | None:
+    """:func:`_detected_again` with segments down to :data:`SHORT_SEGMENT_PX` pixels (small charge cells).
+
+    None without a try when the edges of ``detection`` are broader than
+    half that length or their width was not measured, and on maps that are
+    not clean (``detection.snr`` below :data:`CLEAN_SNR`).
+    """
+    if not (detection.edge_width_px <= SHORT_SEGMENT_PX / 2 and detection.snr >= CLEAN_SNR):
+        return None
+    return _detected_again(da, detection, min_length_px=SHORT_SEGMENT_PX)
 
 
 def _default_detector(da: xr.DataArray) -> LineDetection:
@@ -1695,6 +1728,14 @@ class Analyzer:
                                    f"median and edges down to {FADED_CONTRAST_FLOOR:g} of the strong ones (a sensor "
                                    "whose sensitivity fades across the map): without them the lines gave no charge "
                                    "cell", doubtful=False)
+        if (fit is not None and not fit.ok and detection is not None and self.detector is None
+                and integrate is None):
+            short = _with_short_segments(da, detection)
+            if short is not None:
+                detection, fit_map, fit, n_more = short
+                q = q.with_warning(f"{n_more} more dot line(s) found with segments down to {SHORT_SEGMENT_PX:g} px "
+                                   "(charge cells a few pixels across): without them the lines gave no charge cell",
+                                   doubtful=False)
         if fit_map is not da:
             q = q.with_warning("row offsets (slow-axis noise) beyond the white noise: lines measured on the "
                                "row-corrected map", doubtful=False)

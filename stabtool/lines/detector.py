@@ -385,7 +385,8 @@ def _detect_core(values: np.ndarray, axes, cfg: LineDetector) -> LineDetection:
                              excluded_fraction=excluded_rows.size / ny, quality=quality)
     return LineDetection(axes=axes, families=families, unassigned=tuple(unassigned), jumps=tuple(jumps),
                          excluded_rows=excluded_rows, noise_level=float(noise), snr=snr, quality=quality,
-                         processed=work, edges=edges)
+                         processed=work, edges=edges,
+                         edge_width_px=float(scale.width_px) if scale is not None else float("nan"))
 
 
 def detect_lines(da: xr.DataArray, **options) -> LineDetection:

@@ -129,7 +129,10 @@ class ChargeJump:
 class LineDetection:
     """Everything the line-detection pipeline found in one map.
 
-    An empty family has zero lines, never ``None``.
+    An empty family has zero lines, never ``None``. ``edge_width_px`` is the
+    measured width of the map's edges (:class:`stabtool.lines.edges.EdgeScale`
+    ``width_px``: σ of the derivative profile across the lines, pixels; NaN
+    when not measured).
     """
 
     axes: MapAxes
@@ -142,6 +145,7 @@ class LineDetection:
     quality: Quality
     processed: np.ndarray | None = None
     edges: np.ndarray | None = None
+    edge_width_px: float = float("nan")
 
     def family(self, name: str) -> LineFamily:
         """The family called ``name`` (empty if none was found)."""
