@@ -206,7 +206,7 @@ STAIRCASE_FAILED_MAPS = [(21, {"response": "states", "tunnel_coupling_ueV": 25.0
 
 @pytest.mark.regression
 @pytest.mark.parametrize("seed, options, snr", STAIRCASE_FAILED_MAPS, ids=["tunnel-states-21", "noise-free-2"])
-def test_a_staircase_the_piecewise_pass_cannot_fit_states_its_bias(seed, options, snr, monkeypatch):
+def test_a_staircase_the_piecewise_pass_cannot_fit_takes_the_band_pieces_slopes(seed, options, snr, monkeypatch):
     # a stated error must cover the truth (3σ, common practice, no source) even on a doubtful map
     import _probe  # (puts scripts/ on the path for probe_heldout)
     import probe_heldout
@@ -217,10 +217,16 @@ def test_a_staircase_the_piecewise_pass_cannot_fit_states_its_bias(seed, options
     res = _probe.analysed(pm)
     j = res.to_json()
     assert not j["quality"]["ok"]
-    assert any("piecewise fit failed: slopes biased" in w for w in j["quality"]["warnings"])
+    assert any("piecewise fit failed: virtual gates from the band pieces' common slopes" in w
+               for w in j["quality"]["warnings"])
     m, e = np.asarray(j["virtual_gate_matrix"], float), np.asarray(j["virtual_gate_matrix_error"], float)
     t = np.asarray(pm.truth["virtual_gate_matrix"], float)
     off = [(0, 1), (1, 0)]
-    assert max(abs(m[i] - t[i]) for i in off) > 0.02  # the straight fit is off by far more than 0.005 …
+    bound = 0.005 if pm.meta["snr"] >= 10 else 0.02  # the fitter's bounds (clean, SNR 3)
     for i in off:
-        assert abs(m[i] - t[i]) <= 3 * e[i], (i, m[i] - t[i], e[i])  # … and now says so
+        assert abs(m[i] - t[i]) <= bound, (i, m[i] - t[i])  # the straight fit was 0.056 and 0.064 off
+        assert abs(m[i] - t[i]) <= 3 * e[i], (i, m[i] - t[i], e[i])
+    # the lattice numbers follow the new M, with its difference from the straight fit in their errors
+    c, ce = np.asarray(j["gate_capacitance_aF"], float), np.asarray(j["gate_capacitance_aF_error"], float)
+    ct = np.asarray(pm.truth["gate_capacitance_aF"], float)
+    assert np.all(np.abs(c - ct) <= 3 * ce), ((c - ct) / ce).tolist()

@@ -934,10 +934,11 @@ def _fit_passes(detection: LineDetection, cuts: tuple[LineDetection, dict[str, f
     if not cands:
         if stair and first.ok:
             # (the error checks of the verdict redone on the widened errors, the note added to it)
-            biased = _with_staircase_bias(first, stair_m)
-            return replace(biased, quality=biased.quality.with_warning(
+            pieces_m = _at_band_pieces_slopes(first, stair_m)
+            return replace(pieces_m, quality=pieces_m.quality.with_warning(
                 f"{', '.join(stair)} segments merge several charge bands (staircase) and the piecewise fit "
-                "failed: slopes biased (their virtual-gate errors include the band pieces' difference)"))
+                "failed: virtual gates from the band pieces' common slopes, their difference from the straight "
+                "fit's counted in their errors"))
         return first if piece is None or not stair else piece
     base = min(cands, key=lambda f: float(np.nanmax(f.vg_matrix_error)))
     pred = predicted_lines(base, detection.axes)
@@ -1008,25 +1009,45 @@ def _disagreement_message(best: DiagramFit, other: DiagramFit, z: float) -> str:
             "one of them states too small an error")
 
 
-def _with_staircase_bias(fit: DiagramFit, stair_m: dict[str, float]) -> DiagramFit:
-    """``fit`` with ``|M − M_pieces|`` of each staircase family added in quadrature to that element's error.
+def _at_band_pieces_slopes(fit: DiagramFit, stair_m: dict[str, float]) -> DiagramFit:
+    """``fit`` at the band pieces' M of each staircase family, with ``|M − M_pieces|`` added to its error.
 
     A dot line merged across charge bands is a staircase: its straight fit
     has the mean slope ``1/s_eff = 1/s + δ/Δ_band``, not the line's. When
     the piecewise pass (one offset per band piece) gives no charge cell,
-    the numbers stay those of the straight fit, but the band pieces' own
-    common slope (:func:`_staircases`) says how far off its element of M
-    is: that difference is a measured systematic error, counted in full (it
-    is known which estimate is biased). Held-out probe, the three maps of
-    552 where this happens: M12 of seed 21 with a tunnel coupling of 25 µeV
-    and a state-averaging sensor (SNR 4) was 0.056 off at a stated 0.0031
-    (pull 18) before (DEVELOPERS.md, "Twenty-ninth session").
+    the band pieces' own common slope (:func:`_staircases`) is the
+    unbiased element of M: it is reported, ``(ΔV1, δ1, ΔV2, δ2)`` follow it
+    through the lattice's ``grad_m`` (first order), and the difference from
+    the straight fit is added in quadrature to that element's error and
+    carried into the numbers that follow M (the lattice itself was fitted
+    to the straight segments).
+
+    Held-out probe, the seven maps of 712 that take this path: the element
+    was 0.024–0.29 off (M12 of seed 21 with a tunnel coupling of 25 µeV and
+    a state-averaging sensor, SNR 4, 0.056 off at a stated 0.0031 before
+    its errors had the difference), and is 0.0009–0.021 off. Cdg comes out
+    less accurate (e.g. 1.0 → 5.1 %, 3.0 → 13 % off), its pulls ≤ 2.4: a
+    straight line across the staircase has the bare slope ``−Cdg11/Cdg12``
+    (in the constant-interaction model the dot-2 steps average out along it:
+    ``Q1 = Cdg11 Vx + Cdg12 Vy`` is constant), so with the mutual shifts
+    unresolved the straight fit's Cdg was the better one (DEVELOPERS.md,
+    "Thirtieth session").
     """
-    diff = np.zeros(6)
+    p = fit.params.copy()
+    dm = np.zeros(2)
     for name, m_piece in stair_m.items():
         i = 0 if name == "dot1" else 1
-        diff[i] = abs(float(m_piece) - float(fit.params[i]))
-    return with_added_errors(fit, diff)
+        if np.isfinite(m_piece):
+            dm[i] = float(m_piece) - float(fit.params[i])
+    g = fit.lattice.grad_m[[0, 1, 3, 4]] if fit.lattice is not None else np.full((4, 2), np.nan)
+    if not np.any(dm) or not np.all(np.isfinite(g)):
+        return with_added_errors(fit, np.r_[np.abs(dm), np.zeros(4)])
+    jac = np.vstack([np.eye(2), g])  # ∂(M12, M21, ΔV1, δ1, ΔV2, δ2)/∂(M12, M21)
+    if not fit.mutual_resolved:  # unresolved mutual shifts keep their values
+        jac[[3, 5]] = 0.0
+    p += jac @ dm
+    # the difference as an error of M, carried into the lattice numbers that follow M
+    return with_params(fit, p, fit.param_cov + jac @ np.diag(dm**2) @ jac.T)
 
 
 def with_added_errors(fit: DiagramFit, extra: np.ndarray) -> DiagramFit:
