@@ -229,7 +229,7 @@ FADED_CONTRAST_FLOOR = 0.1
 #: few pixels across (small or coarse maps, many electrons) has dot line pieces between the other dot's
 #: lines shorter than that. Only then: shorter segments let more noise through on every map. Held-out
 #: probe, 712 maps of 13 sets (among them 96 maps of 40–90 px and 32 with 10–16 transitions per dot):
-#: 6 maps without a virtual-gate matrix get one, all doubtful, M within the bounds on 5, M pulls ≤ 1.4,
+#: 6 maps without a virtual-gate matrix get one, all doubtful, M within the bounds on 4, M pulls ≤ 1.8,
 #: Cdg pulls ≤ 2.5; no other map changes (DEVELOPERS.md, "Thirtieth session"). Tried only on maps whose edges are
 #: at most half that broad (``LineDetection.edge_width_px``): a piece of a broad line shorter than twice its
 #: width has no direction of its own (a 1 K map with 10-px edges got 12 such pieces and M12 0.40 off);

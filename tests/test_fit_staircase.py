@@ -226,7 +226,11 @@ def test_a_staircase_the_piecewise_pass_cannot_fit_takes_the_band_pieces_slopes(
     for i in off:
         assert abs(m[i] - t[i]) <= bound, (i, m[i] - t[i])  # the straight fit was 0.056 and 0.064 off
         assert abs(m[i] - t[i]) <= 3 * e[i], (i, m[i] - t[i], e[i])
-    # the lattice numbers follow the new M, with its difference from the straight fit in their errors
+    # the other numbers follow the new M, with its difference from the straight fit in their errors
     c, ce = np.asarray(j["gate_capacitance_aF"], float), np.asarray(j["gate_capacitance_aF_error"], float)
     ct = np.asarray(pm.truth["gate_capacitance_aF"], float)
     assert np.all(np.abs(c - ct) <= 3 * ce), ((c - ct) / ce).tolist()
+    if snr is not None:
+        # without noise, the staircase's own mutual shift keeps the dot1 row of Cdg (the bare ratio of the
+        # straight line) within the fitter's 2 %: it was 6 % off with the lattice's δ1 moved along with M
+        assert np.all(np.abs(c[0] / ct[0] - 1) <= 0.02), (c[0] / ct[0] - 1).tolist()

@@ -29,12 +29,14 @@ from stabtool.physics import (
     lever_arm_from_bias_triangle,
     lever_arm_from_fwhm,
     lever_arm_matrix,
+    mutual_shift_from_staircase,
     mutual_shifts,
     polarisation,
     polarisation_derivative,
     polarisation_fwhm_eV,
     saturated_temperature,
     simple_double_dot,
+    staircase_mean_element,
     thermal_fwhm_V,
     ueV_to_ghz,
     virtual_gate_matrix,
@@ -111,6 +113,26 @@ def test_virtual_gate_worked_example():
 # (2001)): C_G = 10, C_S = 30, C_D = 40 aF → m₊ = 0.2, m₋ = −0.333, α = 0.125, E_C = 2.003 meV,
 # ΔV_G = 16.02 mV.
 # ---------------------------------------------------------------------------------------------
+
+
+def test_a_straight_line_through_a_staircase_has_the_bare_gate_capacitance_ratio():
+    # the virtual-gate worked example's device (Cdg = [[10, 3], [2.5, 9]] aF, C11 = C22 = 80 aF,
+    # Cm = 15 aF): the mean of a dot-i line over the other dot's steps is Q_i = Σ_j Cdg_ij V_j = const,
+    # so its element of M is Cdg_ij/Cdg_ii, from the identity Cdg = e D⁻¹ M of the CI model
+    cdg = np.array([[10.0, 3.0], [2.5, 9.0]])
+    cdd = np.array([[80.0, -15.0], [-15.0, 80.0]])
+    ec = charging_energy_matrix_meV(cdd)
+    alpha = lever_arm_matrix(cdg, cdd)
+    m = virtual_gate_matrix(alpha)
+    dv, dm = addition_voltages(ec, alpha), mutual_shifts(ec, alpha)
+    straight12 = staircase_mean_element(m[0, 1], m[1, 0], dv[1], dm[0])
+    straight21 = staircase_mean_element(m[1, 0], m[0, 1], dv[0], dm[1])
+    assert straight12 == pytest.approx(cdg[0, 1] / cdg[0, 0], rel=1e-12)
+    assert straight21 == pytest.approx(cdg[1, 0] / cdg[1, 1], rel=1e-12)
+    assert abs(straight12 - m[0, 1]) > 0.01  # (the lines' own element differs: δ1 is not small)
+    # and the band pieces' element with the straight line's gives the mutual shift back
+    assert mutual_shift_from_staircase(m[0, 1], straight12, m[1, 0], dv[1]) == pytest.approx(dm[0], rel=1e-12)
+    assert mutual_shift_from_staircase(m[1, 0], straight21, m[0, 1], dv[0]) == pytest.approx(dm[1], rel=1e-12)
 
 
 def test_coulomb_diamond_example_from_memory():

@@ -24,12 +24,12 @@ from typing import Any
 import numpy as np
 
 from ..lines.result import LineDetection, LineFamily, TransitionLine
-from ..physics import cdg_from_diagram
+from ..physics import cdg_from_diagram, mutual_shift_from_staircase
 from ..quality import Quality
 from .contrast import line_contrast, map_noise
 from .lattice import FamilySegments, LatticeFit, fit_lattice, merge_fragments
 from .relocate import SplitFamily, relocate_family, split_at_crossings
-from .uncertainty import error_verdict, propagate
+from .uncertainty import error_verdict, numeric_jacobian, propagate
 
 __all__ = ["DiagramFit", "fit_diagram", "predicted_lines", "to_virtual", "with_added_errors", "with_params"]
 
@@ -908,12 +908,13 @@ def fit_diagram(
         "cell (the sensor's sensitivity varies over the map)", doubtful=False))
 
 
-def _fit_passes(detection: LineDetection, cuts: tuple[LineDetection, dict[str, float]] | None, *, data: Any,
+def _fit_passes(detection: LineDetection, cuts: tuple[LineDetection, dict[str, tuple[float, float]]] | None, *,
+                data: Any,
                 relocate: bool, err_floor_px: float, noise: float | None, keep_clear: bool = False) -> DiagramFit:
     """The passes of :func:`fit_diagram` (``keep_clear`` in every one), the best one chosen.
 
     ``cuts``: the piecewise detection and the staircase families with their band pieces' virtual-gate
-    element (:func:`_staircases`; None when nothing is cut).
+    element and its standard error (:func:`_staircases`; None when nothing is cut).
     """
     first = _fit_once(detection, data=data, relocate=relocate, err_floor_px=err_floor_px, noise=noise,
                       keep_clear=keep_clear)
@@ -922,7 +923,7 @@ def _fit_passes(detection: LineDetection, cuts: tuple[LineDetection, dict[str, f
     # piecewise pass; a significant staircase rules out the first pass
     piece: DiagramFit | None = None
     stair: list[str] = []
-    stair_m: dict[str, float] = {}
+    stair_m: dict[str, tuple[float, float]] = {}
     if cuts is not None:
         pieces, stair_m = cuts
         stair = list(stair_m)
@@ -1009,45 +1010,80 @@ def _disagreement_message(best: DiagramFit, other: DiagramFit, z: float) -> str:
             "one of them states too small an error")
 
 
-def _at_band_pieces_slopes(fit: DiagramFit, stair_m: dict[str, float]) -> DiagramFit:
+#: How far a straight fit through a staircase may sit from the staircase's mean line, as a share of
+#: its difference from the band pieces' element (an error term of the straight element when the mutual
+#: shifts come from the staircase, :func:`_at_band_pieces_slopes`). A fit spanning parts of bands
+#: is not the mean: on five probe maps (seven elements), δ from the staircase was 0–42 % off the truth
+#: (median 19 %).
+STAIRCASE_MEAN_SHARE = 0.5
+
+
+def _at_band_pieces_slopes(fit: DiagramFit, stair_m: dict[str, tuple[float, float]]) -> DiagramFit:
     """``fit`` at the band pieces' M of each staircase family, with ``|M − M_pieces|`` added to its error.
 
-    A dot line merged across charge bands is a staircase: its straight fit
-    has the mean slope ``1/s_eff = 1/s + δ/Δ_band``, not the line's. When
-    the piecewise pass (one offset per band piece) gives no charge cell,
-    the band pieces' own common slope (:func:`_staircases`) is the
-    unbiased element of M: it is reported, ``(ΔV1, δ1, ΔV2, δ2)`` follow it
-    through the lattice's ``grad_m`` (first order), and the difference from
-    the straight fit is added in quadrature to that element's error and
-    carried into the numbers that follow M (the lattice itself was fitted
-    to the straight segments).
+    A dot line merged across charge bands is a staircase: a straight fit
+    through it has the mean element of M, the bare ratio ``Cdg_ij/Cdg_ii``
+    (:func:`stabtool.physics.ci.staircase_mean_element`), not the lines'
+    own. When the piecewise pass (one offset per band piece) gives no
+    charge cell, the band pieces' common slope (:func:`_staircases`) is
+    the lines' element of M: it is reported, with the difference from the
+    straight fit added in quadrature to its error.
 
-    Held-out probe, the seven maps of 712 that take this path: the element
-    was 0.024–0.29 off (M12 of seed 21 with a tunnel coupling of 25 µeV and
-    a state-averaging sensor, SNR 4, 0.056 off at a stated 0.0031 before
-    its errors had the difference), and is 0.0009–0.021 off. Cdg comes out
-    less accurate (e.g. 1.0 → 5.1 %, 3.0 → 13 % off), its pulls ≤ 2.4: a
-    straight line across the staircase has the bare slope ``−Cdg11/Cdg12``
-    (in the constant-interaction model the dot-2 steps average out along it:
-    ``Q1 = Cdg11 Vx + Cdg12 Vy`` is constant), so with the mutual shifts
-    unresolved the straight fit's Cdg was the better one (DEVELOPERS.md,
+    The other numbers follow. With the mutual shifts unresolved by the
+    lattice (no line in two bands, no interdot segment), the staircase
+    itself gives ``δ_i`` (:func:`stabtool.physics.ci.mutual_shift_from_staircase`:
+    the two elements' difference), and ΔV stays (the mean lines of one
+    family are spaced as the lines are); ``Cdg = e D⁻¹ M`` then keeps the
+    straight fit's bare ratio. With resolved mutual shifts,
+    ``(ΔV1, δ1, ΔV2, δ2)`` follow M through the lattice's ``grad_m``.
+    Errors are propagated from the straight fit's covariance and the band
+    pieces' errors (numerical Jacobian).
+
+    Held-out probe, the six maps of 712 that take this path (all with
+    unresolved mutual shifts): the element was 0.021–0.11 off (M12 of seed
+    21 with a tunnel coupling of 25 µeV and a state-averaging sensor, SNR
+    4, 0.056 off at a stated 0.0031 before its errors had the difference)
+    and is 0.0009–0.059 off, M pulls ≤ 1.8, Cdg pulls ≤ 2.5; Cdg moved from
+    0.97 to 0.68 % and from 2.95 to 0.45 % off on two of them (DEVELOPERS.md,
     "Thirtieth session").
     """
-    p = fit.params.copy()
-    dm = np.zeros(2)
-    for name, m_piece in stair_m.items():
+    p0 = fit.params.copy()
+    m_new = p0[:2].copy()
+    m_err = np.zeros(2)
+    for name, (m_piece, m_piece_err) in stair_m.items():
         i = 0 if name == "dot1" else 1
         if np.isfinite(m_piece):
-            dm[i] = float(m_piece) - float(fit.params[i])
+            m_new[i] = float(m_piece)
+            m_err[i] = float(np.hypot(np.nan_to_num(m_piece_err), m_piece - p0[i]))
+    moved = m_new != p0[:2]
     g = fit.lattice.grad_m[[0, 1, 3, 4]] if fit.lattice is not None else np.full((4, 2), np.nan)
-    if not np.any(dm) or not np.all(np.isfinite(g)):
-        return with_added_errors(fit, np.r_[np.abs(dm), np.zeros(4)])
-    jac = np.vstack([np.eye(2), g])  # ∂(M12, M21, ΔV1, δ1, ΔV2, δ2)/∂(M12, M21)
-    if not fit.mutual_resolved:  # unresolved mutual shifts keep their values
-        jac[[3, 5]] = 0.0
-    p += jac @ dm
-    # the difference as an error of M, carried into the lattice numbers that follow M
-    return with_params(fit, p, fit.param_cov + jac @ np.diag(dm**2) @ jac.T)
+    if not np.any(moved) or not np.all(np.isfinite(g)):
+        return with_added_errors(fit, np.r_[np.abs(m_new - p0[:2]), np.zeros(4)])
+    resolved = fit.mutual_resolved
+
+    def new_params(q: np.ndarray) -> np.ndarray:
+        # q = (M12, M21, ΔV1, δ1, ΔV2, δ2) of the straight fit, then the band pieces' (M12, M21)
+        p, m_p = q[:6].copy(), q[6:]
+        if resolved:
+            p[2:] += g @ np.where(moved, m_p - q[:2], 0.0)
+        for i in np.flatnonzero(moved):
+            p[i] = m_p[i]
+        if not resolved:
+            for i in np.flatnonzero(moved):
+                j = 1 - i
+                # δ_i from the staircase: ΔV_j (M_pieces − M_straight)/(1 − M_straight M_ji)
+                p[3 + 2 * i] = mutual_shift_from_staircase(m_p[i], q[i], p[j], q[4 - 2 * i])
+        return p
+
+    q = np.r_[p0, m_new]
+    cov_q = np.zeros((8, 8))
+    cov_q[:6, :6] = fit.param_cov
+    cov_q[6:, 6:] = np.diag(m_err**2)
+    if not resolved:
+        # the straight fit is the staircase's mean line only as far as it spans whole bands
+        cov_q[:2, :2] += np.diag((STAIRCASE_MEAN_SHARE * np.abs(m_new - p0[:2])) ** 2)
+    jac = numeric_jacobian(new_params, q)
+    return with_params(fit, new_params(q), jac @ cov_q @ jac.T)
 
 
 def with_added_errors(fit: DiagramFit, extra: np.ndarray) -> DiagramFit:
@@ -1126,11 +1162,11 @@ def _piecewise_detection(detection: LineDetection) -> tuple[LineDetection, tuple
 
 
 def _staircases(data: Any, detection: LineDetection, splits: tuple[SplitFamily, SplitFamily], *,
-                noise: float | None = None) -> dict[str, float]:
+                noise: float | None = None) -> dict[str, tuple[float, float]]:
     """Families whose cut segments are staircases: one offset per band piece fits significantly better.
 
     Returns each such family's name and the virtual-gate element its band
-    pieces give (their common slope, one offset per piece: ``M12 = −dx/dy``
+    pieces give, with its standard error (their common slope, one offset per piece: ``M12 = −dx/dy``
     of dot1, ``M21 = −dy/dx`` of dot2), the slope a straight fit across the
     steps misses. ``noise``: the map's noise standard deviation (default:
     :func:`stabtool.fit.contrast.map_noise`).
@@ -1139,7 +1175,7 @@ def _staircases(data: Any, detection: LineDetection, splits: tuple[SplitFamily, 
     xa = np.asarray(data[data.dims[-1]].values, float)
     ya = np.asarray(data[data.dims[0]].values, float)
     noise = map_noise(z) if noise is None else float(noise)
-    out: dict[str, float] = {}
+    out: dict[str, tuple[float, float]] = {}
     for which, (name, sp) in enumerate((("dot1", splits[0]), ("dot2", splits[1]))):
         if not sp.n_cut:
             continue
@@ -1149,5 +1185,5 @@ def _staircases(data: Any, detection: LineDetection, splits: tuple[SplitFamily, 
             continue
         rel = relocate_family(z, xa, ya, sp.lines, which=which, initial=init, noise=noise, groups=sp.source)
         if rel.ok and np.isfinite(rel.staircase_p) and rel.staircase_p < STAIRCASE_P:
-            out[name] = -float(rel.inv_or_slope)
+            out[name] = (-float(rel.inv_or_slope), float(rel.stderr))
     return out

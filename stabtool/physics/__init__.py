@@ -11,8 +11,10 @@ from .ci import (
     diagram_matrix,
     double_dot_slopes,
     lever_arm_matrix,
+    mutual_shift_from_staircase,
     mutual_shifts,
     simple_double_dot,
+    staircase_mean_element,
     virtual_gate_matrix,
 )
 from .diamonds import (
@@ -56,7 +58,9 @@ __all__ = [
     "diagram_matrix",
     "double_dot_slopes",
     "lever_arm_matrix",
+    "mutual_shift_from_staircase",
     "mutual_shifts",
+    "staircase_mean_element",
     "simple_double_dot",
     "virtual_gate_matrix",
     "FERMI_FWHM_FACTOR",

@@ -34,6 +34,8 @@ __all__ = [
     "mutual_shifts",
     "diagram_matrix",
     "cdg_from_diagram",
+    "staircase_mean_element",
+    "mutual_shift_from_staircase",
     "SimpleDoubleDot",
     "simple_double_dot",
 ]
@@ -141,6 +143,38 @@ def cdg_from_diagram(
     """
     d = diagram_matrix(addition_V, mutual_V)
     return E_AC * np.linalg.solve(d, np.asarray(vg_matrix, float))
+
+
+def staircase_mean_element(m_own: float, m_other: float, addition_other_V: float, mutual_own_V: float) -> float:
+    """The virtual-gate element of a straight line through a dot's staircase of band pieces.
+
+    A dot-i line shifts by ``δ_i`` (in its virtual coordinate) each time
+    ``N_j`` steps up by one, every ``ΔV_j`` of the other coordinate; a
+    straight line across many bands takes the mean, ``u_i − k v_j = const``
+    with ``k = δ_i/ΔV_j`` (``u = M V``), i.e. the element
+    ``(M_ij − k)/(1 − k M_ji)``. It is the bare ratio ``Cdg_ij/Cdg_ii`` of
+    ``Cdg = e · D⁻¹ · M`` (row i of ``D⁻¹ M`` is proportional to
+    ``[1 − k M_ji, M_ij − k]``): along the mean line the dot-j steps cancel
+    the mutual charging term (constant-interaction model, van der Wiel et
+    al., Rev. Mod. Phys. 75, 1 (2003); the identity of the conventions).
+
+    Parameters
+    ----------
+    m_own, m_other : float
+        ``M_ij`` of this dot's lines and ``M_ji`` of the other dot's.
+    addition_other_V, mutual_own_V : float
+        ``ΔV_j`` of the other dot and ``δ_i`` of this one, V.
+    """
+    k = mutual_own_V / addition_other_V
+    return (m_own - k) / (1.0 - k * m_other)
+
+
+def mutual_shift_from_staircase(m_pieces: float, m_straight: float, m_other: float, addition_other_V: float) -> float:
+    """``δ_i`` from a staircase's band pieces and a straight line through it (inverse of :func:`staircase_mean_element`).
+
+    ``δ_i = ΔV_j (M_pieces − M_straight)/(1 − M_straight M_ji)``, V.
+    """
+    return addition_other_V * (m_pieces - m_straight) / (1.0 - m_straight * m_other)
 
 
 @dataclass(frozen=True)
