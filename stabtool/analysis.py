@@ -1719,23 +1719,19 @@ class Analyzer:
                 detection, fit_map, fit = lattice
                 q = q.with_warning(f"the pattern shifts at row(s) {rows} are the charge lattice's (dot1 lines "
                                    "stepping where dot2 lines run along the rows), not charge jumps", doubtful=False)
-        if (fit is not None and not fit.ok and detection is not None and self.detector is None
-                and integrate is None):
-            faded = _with_faded_lines(da, detection)
-            if faded is not None:
-                detection, fit_map, fit, n_more = faded
-                q = q.with_warning(f"{n_more} more dot line(s) found with steps down to {FADED_LINE_RATIO:g} of the "
-                                   f"median and edges down to {FADED_CONTRAST_FLOOR:g} of the strong ones (a sensor "
-                                   "whose sensitivity fades across the map): without them the lines gave no charge "
-                                   "cell", doubtful=False)
-        if (fit is not None and not fit.ok and detection is not None and self.detector is None
-                and integrate is None):
-            short = _with_short_segments(da, detection)
-            if short is not None:
-                detection, fit_map, fit, n_more = short
-                q = q.with_warning(f"{n_more} more dot line(s) found with segments down to {SHORT_SEGMENT_PX:g} px "
-                                   "(charge cells a few pixels across): without them the lines gave no charge cell",
-                                   doubtful=False)
+        # further detections while the lines give no charge cell (a detector given by the caller is used as it is)
+        faded_kept = (f"steps down to {FADED_LINE_RATIO:g} of the median and edges down to {FADED_CONTRAST_FLOOR:g} "
+                      "of the strong ones (a sensor whose sensitivity fades across the map)")
+        short_kept = f"segments down to {SHORT_SEGMENT_PX:g} px (charge cells a few pixels across)"
+        retries = ((_with_faded_lines, faded_kept), (_with_short_segments, short_kept))
+        for detect_again, kept in retries:
+            if fit is None or fit.ok or detection is None or self.detector is not None or integrate is not None:
+                break
+            found = detect_again(da, detection)
+            if found is not None:
+                detection, fit_map, fit, n_more = found
+                q = q.with_warning(f"{n_more} more dot line(s) found with {kept}: without them the lines gave no "
+                                   "charge cell", doubtful=False)
         if fit_map is not da:
             q = q.with_warning("row offsets (slow-axis noise) beyond the white noise: lines measured on the "
                                "row-corrected map", doubtful=False)

@@ -909,8 +909,8 @@ def fit_diagram(
 
 
 def _fit_passes(detection: LineDetection, cuts: tuple[LineDetection, dict[str, tuple[float, float]]] | None, *,
-                data: Any,
-                relocate: bool, err_floor_px: float, noise: float | None, keep_clear: bool = False) -> DiagramFit:
+                data: Any, relocate: bool, err_floor_px: float, noise: float | None,
+                keep_clear: bool = False) -> DiagramFit:
     """The passes of :func:`fit_diagram` (``keep_clear`` in every one), the best one chosen.
 
     ``cuts``: the piecewise detection and the staircase families with their band pieces' virtual-gate
@@ -936,10 +936,11 @@ def _fit_passes(detection: LineDetection, cuts: tuple[LineDetection, dict[str, t
         if stair and first.ok:
             # (the error checks of the verdict redone on the widened errors, the note added to it)
             pieces_m = _at_band_pieces_slopes(first, stair_m)
+            delta = "" if first.mutual_resolved else "; the mutual shift from the staircase itself"
             return replace(pieces_m, quality=pieces_m.quality.with_warning(
                 f"{', '.join(stair)} segments merge several charge bands (staircase) and the piecewise fit "
                 "failed: virtual gates from the band pieces' common slopes, their difference from the straight "
-                "fit's counted in their errors"))
+                f"fit's counted in their errors{delta}"))
         return first if piece is None or not stair else piece
     base = min(cands, key=lambda f: float(np.nanmax(f.vg_matrix_error)))
     pred = predicted_lines(base, detection.axes)
