@@ -934,7 +934,7 @@ def _fit_passes(detection: LineDetection, cuts: tuple[LineDetection, dict[str, t
     cands = [f for f in ((first if not stair else None), piece) if f is not None and f.ok]
     if not cands:
         if stair and first.ok:
-            # (the error checks of the verdict redone on the widened errors, the note added to it)
+            # (with_params redoes the error checks of the verdict; the note is added to it)
             pieces_m = _at_band_pieces_slopes(first, stair_m)
             delta = "" if first.mutual_resolved else "; the mutual shift from the staircase itself"
             return replace(pieces_m, quality=pieces_m.quality.with_warning(
@@ -1065,15 +1065,13 @@ def _at_band_pieces_slopes(fit: DiagramFit, stair_m: dict[str, tuple[float, floa
     def new_params(q: np.ndarray) -> np.ndarray:
         # q = (M12, M21, ΔV1, δ1, ΔV2, δ2) of the straight fit, then the band pieces' (M12, M21)
         p, m_p = q[:6].copy(), q[6:]
+        p[:2] = np.where(moved, m_p, q[:2])
         if resolved:
-            p[2:] += g @ np.where(moved, m_p - q[:2], 0.0)
-        for i in np.flatnonzero(moved):
-            p[i] = m_p[i]
-        if not resolved:
+            p[2:] += g @ (p[:2] - q[:2])
+        else:
             for i in np.flatnonzero(moved):
-                j = 1 - i
-                # δ_i from the staircase: ΔV_j (M_pieces − M_straight)/(1 − M_straight M_ji)
-                p[3 + 2 * i] = mutual_shift_from_staircase(m_p[i], q[i], p[j], q[4 - 2 * i])
+                # δ_i from the staircase: ΔV_j (M_pieces − M_straight)/(1 − M_straight M_ji), j = 1 − i
+                p[3 + 2 * i] = mutual_shift_from_staircase(m_p[i], q[i], p[1 - i], q[4 - 2 * i])
         return p
 
     q = np.r_[p0, m_new]
