@@ -96,10 +96,36 @@ def test_a_lockin_on_the_y_gate_is_summed_along_y_and_stays_doubtful(preset):
 @pytest.mark.regression
 def test_a_family_along_the_sum_is_taken_for_the_summed_noises_streaks():
     # probe seed 10 (SNR 20, 208 × 242 points): the x-sum's "dot2" family is horizontal streaks of the
-    # summed noise (M21 ≈ 0.001, truth 1.37 away); it must say so and stay doubtful
+    # summed noise (M21 ≈ 0.001, truth 1.37 away). Before: its matrix reported, doubtful. Now the sum
+    # with the streaks ranks last, the y-sum has no lattice, and neither matrix is reported; the
+    # note says why
     pm = probe_map(10, lockin=True)
     j = _analyse(pm.data, electron_temperature_K=pm.meta["T"])
-    assert any(w.startswith("dot2 lines run along the sum (x)") for w in j["quality"]["warnings"])
+    assert not j["quality"]["ok"]
+    vg = j["virtual_gate_matrix"]
+    assert vg is None or (vg[0][1] is None and vg[1][0] is None) or _vg_error(j, pm.truth) <= 0.02
+    assert any("M21 = 0.0013) looks like the summed noise's streaks" in w for w in j["quality"]["warnings"])
+
+
+@pytest.mark.regression
+@pytest.mark.parametrize("seed", [23, 63])
+def test_the_family_measured_along_the_sum_states_the_summed_noises_walk(seed):
+    # the x-sum's dot2 lines are measured column after column, and the summed noise at one column holds
+    # all the noise before it: neighbouring crossing points share their error. Seed 23 (SNR 60): M21
+    # 0.0085 off at a stated 0.0020 before (4.3σ), now at the walk model's 0.013. Seed 63 (SNR 60):
+    # the raised error must not hand the choice to the y-sum, whose "dot1" family runs along it (M12
+    # 0.65 off); the x-sum's M is 0.0007 off. Lock-in probe seeds 0:64 at SNR ≥ 20: M21 pulls rms
+    # 3.6 → 0.8, none beyond 3σ (4 before)
+    pm = probe_map(seed, lockin=True)
+    j = _analyse(pm.data, electron_temperature_K=pm.meta["T"])
+    m = np.array(j["virtual_gate_matrix"], float)
+    e = np.array(j["virtual_gate_matrix_error"], float)
+    t = np.array(pm.truth["virtual_gate_matrix"], float)
+    assert any("analysed its integral along x" in w for w in j["quality"]["warnings"])
+    assert any(w.startswith("dot2 crossing points are measured one after the next along the sum")
+               for w in j["quality"]["warnings"])
+    assert abs(m[1, 0] - t[1, 0]) <= 2.0 * e[1, 0]
+    assert abs(m[0, 1] - t[0, 1]) <= 0.005
     assert not j["quality"]["ok"]
 
 

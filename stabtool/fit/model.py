@@ -100,6 +100,16 @@ class DiagramFit:
     remeasured : bool
         The lines were re-measured on the map (False: the slopes are the
         given lines' own, e.g. the detector's).
+    walk_slope_errors : (float, float)
+        On a derivative map's sum (:func:`stabtool.preprocess.integral.summed_axis`):
+        the errors of dot1's dx/dy and dot2's dy/dx if the crossing points
+        carry the summed noise's random walk (NaN where they do not;
+        :func:`stabtool.fit.relocate.walk_slope_error`). :func:`fit_diagram`
+        counts them in ``vg_matrix_error`` once the passes are chosen.
+    vg_error_before_walk : ndarray, shape (2, 2), or None
+        ``vg_matrix_error`` before those were counted (what the passes and
+        a derivative map's two sums were compared by); None when nothing
+        was counted.
     """
 
     ok: bool
@@ -128,6 +138,8 @@ class DiagramFit:
     staircase_families: tuple[str, ...] = ()
     labels_consistent: bool = True
     remeasured: bool = True
+    walk_slope_errors: tuple[float, float] = (float("nan"), float("nan"))
+    vg_error_before_walk: np.ndarray | None = None
 
     def __bool__(self) -> bool:
         return self.ok
@@ -520,6 +532,19 @@ ERR_FLOOR_PX = 0.05
 VG_FROM_SLOPES_NOTE = "virtual-gate matrix from the line slopes alone (no charge cell checks them)"
 
 
+def _walk_across(data: Any, which: int) -> bool:
+    """Whether family ``which``'s crossing points on ``data`` carry a random walk from point to point.
+
+    A derivative map summed along x (y) holds the summed noise as a walk along
+    x (y); the family whose crossings are measured one column (row) after the
+    next along that axis, dot2 (dot1), sees it as correlated errors along the
+    line (:func:`stabtool.fit.relocate.walk_slope_error`).
+    """
+    from ..preprocess.integral import summed_axis
+
+    return summed_axis(data) == ("y" if which == 0 else "x")
+
+
 def _fit_once(
     detection: LineDetection, *, data: Any = None, relocate: bool = True, err_floor_px: float = ERR_FLOOR_PX,
     merge_tol_px: float = 1.5, noise: float | None = None, keep_clear: bool = False,
@@ -588,6 +613,7 @@ def _fit_once(
     used1, n_drop1 = _reliable(lines1, inv1, steep=True, px=abs(detection.axes.dx))
     used2, n_drop2 = _reliable(lines2, s2, steep=False, px=abs(detection.axes.dy))
     remeasured = True
+    walk_errors = (float("nan"), float("nan"))
     if data is not None:
         z = np.asarray(data.values, float)
         xa = np.asarray(data[data.dims[-1]].values, float)
@@ -610,7 +636,7 @@ def _fit_once(
         results = []
         for which, (used, init) in enumerate(((used1, inv1), (used2, s2))):
             rel = relocate_family(z, xa, ya, [new_lines[which][i] for i in used], which=which, initial=init,
-                                  noise=noise_map)
+                                  noise=noise_map, walk=_walk_across(data, which))
             results.append(rel)
             if rel.ok:
                 keep = []
@@ -626,6 +652,7 @@ def _fit_once(
             used1, used2 = new_used
             inv1, inv1_err = results[0].inv_or_slope, results[0].stderr
             s2, s2_err = results[1].inv_or_slope, results[1].stderr
+            walk_errors = (results[0].stderr_walk, results[1].stderr_walk)
             for name, gate, rel in (("dot1", "x", results[0]), ("dot2", "y", results[1])):
                 if rel.pixel_limited:
                     q = q.with_warning(PIXEL_LIMITED_NOTE.format(name=name, gate=gate), doubtful=False)
@@ -679,7 +706,7 @@ def _fit_once(
         if vg is not None:
             q = q.with_warning(VG_FROM_SLOPES_NOTE, doubtful=False)
         return replace(_empty_fit(lat.reason, slopes, slope_errors, lines1, lines2, inter, q, vg=vg),
-                       remeasured=remeasured)
+                       remeasured=remeasured, walk_slope_errors=walk_errors)
     p = np.array([m12, m21, lat.addition_V[0], lat.mutual_V[0], lat.addition_V[1], lat.mutual_V[1]])
     cov = np.zeros((6, 6))
     cov_m = np.diag([np.nan_to_num(inv1_err) ** 2, np.nan_to_num(s2_err) ** 2])
@@ -773,6 +800,7 @@ def _fit_once(
         remeasured=remeasured,
         quality=q,
         labels_consistent=consistent,
+        walk_slope_errors=walk_errors,
     )
     return replace(result, quality=error_verdict(result))
 
@@ -898,14 +926,52 @@ def fit_diagram(
             cuts = (pieces, _staircases(data, detection, splits, noise=noise))
     fit = _fit_passes(detection, cuts, data=data, relocate=relocate, err_floor_px=err_floor_px, noise=noise)
     if fit.ok or data is None:
-        return fit
+        return with_walk_errors(fit)
     clear = _fit_passes(detection, cuts, data=data, relocate=relocate, err_floor_px=err_floor_px, noise=noise,
                         keep_clear=True)
     if not clear.ok:
-        return fit
-    return replace(clear, quality=clear.quality.with_warning(
+        return with_walk_errors(fit)
+    return with_walk_errors(replace(clear, quality=clear.quality.with_warning(
         "lines with clear steps that are weak beside their family's strongest were kept to find the charge "
-        "cell (the sensor's sensitivity varies over the map)", doubtful=False))
+        "cell (the sensor's sensitivity varies over the map)", doubtful=False)))
+
+
+#: Note of a fit whose slope error was raised to the random-walk model's (a derivative map's sum).
+WALK_NOTE = ("{name} crossing points are measured one after the next along the sum, where the summed noise is a "
+             "random walk: M{el} error raised from {before:.2g} to that model's {after:.2g}")
+
+
+def with_walk_errors(fit: DiagramFit) -> DiagramFit:
+    """``fit`` with each virtual-gate element's error at least its slope's random-walk error.
+
+    On a derivative map's sum the family whose crossing points are measured
+    one after the next along the sum shares the summed noise from point to
+    point (:func:`stabtool.fit.relocate.walk_slope_error`): their scatter
+    about the line understates the slope's error. The larger error is
+    added (in quadrature, so that the total is the walk model's) after the
+    passes were compared on the errors without it, and every derived number
+    is propagated anew (:func:`with_added_errors`); without a lattice only
+    the matrix's error is raised. ``fit`` itself when no walk error exceeds
+    the stated one.
+    """
+    walk = np.asarray(fit.walk_slope_errors, float)
+    stated = np.array([fit.vg_matrix_error[0, 1], fit.vg_matrix_error[1, 0]], float)
+    raise_ = np.isfinite(walk) & np.isfinite(stated) & (walk > stated)
+    if not raise_.any():
+        return fit
+    extra = np.where(raise_, np.sqrt(np.clip(walk**2 - stated**2, 0.0, None)), 0.0)
+    before = np.array(fit.vg_matrix_error, float)
+    if fit.ok:
+        new = with_added_errors(fit, np.r_[extra, np.zeros(4)])
+    else:
+        err = before.copy()
+        err[0, 1], err[1, 0] = np.where(raise_, walk, stated)
+        new = replace(fit, vg_matrix_error=err)
+    q = new.quality
+    for k in np.nonzero(raise_)[0]:
+        q = q.with_warning(WALK_NOTE.format(name=f"dot{k + 1}", el="12" if k == 0 else "21", before=stated[k],
+                                            after=walk[k]), doubtful=False)
+    return replace(new, quality=q, vg_error_before_walk=before)
 
 
 def _fit_passes(detection: LineDetection, cuts: tuple[LineDetection, dict[str, tuple[float, float]]] | None, *,

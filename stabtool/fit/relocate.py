@@ -48,7 +48,8 @@ from ..lines.refine import QUANTISED_MAX_STEPS, QUANTISED_SHARE, midway, pixel_s
 from ..lines.result import TransitionLine
 
 __all__ = ["RelocatedFamily", "SplitFamily", "clustered_slope_error", "index_to_volts", "mean_shift_stats",
-           "pixel_limited", "quantised_crossings", "relocate_family", "split_at_crossings", "volts_to_index"]
+           "pixel_limited", "quantised_crossings", "relocate_family", "split_at_crossings", "volts_to_index",
+           "walk_slope_error"]
 
 #: Smallest band piece kept by :func:`split_at_crossings`, pixels along the cross axis.
 MIN_PIECE_PX = 8.0
@@ -91,6 +92,10 @@ class RelocatedFamily:
         The lines are sharper than a pixel and move on by fewer than two
         samples along their length: the slope is known only to about ±1
         sample over a line's length (:func:`pixel_limited`).
+    stderr_walk : float
+        With ``walk``: the common slope's standard error when each line's
+        crossing errors are a random walk (:func:`walk_slope_error`); NaN
+        otherwise.
     """
 
     ok: bool
@@ -104,6 +109,7 @@ class RelocatedFamily:
     staircase_p: float = float("nan")
     staircase_jump_V: float = float("nan")
     pixel_limited: bool = False
+    stderr_walk: float = float("nan")
 
 
 @dataclass(frozen=True)
@@ -519,6 +525,66 @@ def _crossings(zz, scan_axis, cross_axis, spans, mids, b, *, trim, half_px, nois
     return s_all[ok], cval_a[ok], lid[ok]
 
 
+def walk_slope_error(lid: np.ndarray, c: np.ndarray, s: np.ndarray, b: float) -> float:
+    """Standard error of the common least-squares slope ``b`` when each line's crossing errors are a random walk.
+
+    On a derivative map summed along an axis, the summed noise at one point
+    holds all the noise before it along that axis: the crossing points that
+    a family measures point by point along that axis (dot2 lines on a sum
+    along x, column by column) share nearly all their error with their
+    neighbours, and their scatter about the line says little about where
+    the line is. In the random-walk model ``s_k = a_l + b c_k + W_l(c_k)``
+    (one walk per line ``l``) the increments between neighbouring points
+    of a line are independent, ``Δs − b Δc ~ N(0, q Δc)``, and ``q`` is
+    estimated from them (``Σ r²/Δc / (n − 1)``; white errors on top of the
+    walk only raise it: the estimate errs on the safe side). The pooled
+    least-squares slope ``b = Σ d_k s_k / Σ d_k²`` (``d`` the points'
+    distances from their line's mean ``c``) then has the variance
+    ``q Σ_l V_l / (Σ d²)²`` with ``V_l = Σ_jk d_j d_k min(c_j, c_k)
+    = Σ_m Δc_m (Σ_{k≥m} d_k)²`` over the line's sorted points. NaN with
+    fewer than three increments.
+
+    Parameters
+    ----------
+    lid : ndarray of int
+        Line of each point.
+    c, s : ndarray
+        Cross and scan coordinates of the points (the slope is ``ds/dc``).
+    b : float
+        The common slope.
+
+    Notes
+    -----
+    Increments of a Wiener process are independent with variance
+    proportional to the step, and its covariance is ``q min(c_j, c_k)``
+    (its definition; e.g. C. W. Gardiner, Handbook of Stochastic Methods,
+    Springer). The variance of a linear estimate under a known covariance
+    is common practice, no source.
+    """
+    order = np.lexsort((c, lid))
+    lo, cs, ss = lid[order], c[order], s[order]
+    same = lo[1:] == lo[:-1]
+    dc, ds = np.diff(cs), np.diff(ss)
+    inc = same & (dc > 0)
+    if int(inc.sum()) < 3:
+        return float("nan")
+    r = ds[inc] - b * dc[inc]
+    q = float(np.sum(r * r / dc[inc])) / (int(inc.sum()) - 1)
+    # per line: d = c − mean, T_m = Σ_{k≥m} d_k (suffix sums), V = Σ_{m≥2} Δc_m T_m²
+    starts = np.r_[0, np.nonzero(~same)[0] + 1]
+    counts = np.diff(np.r_[starts, lo.size])
+    mean = np.add.reduceat(cs, starts) / counts
+    d = cs - np.repeat(mean, counts)
+    total = np.add.reduceat(d, starts)
+    prefix = np.cumsum(d) - np.repeat(np.cumsum(total) - total, counts)  # Σ_{k≤m} d_k within the line
+    suffix = np.repeat(total, counts) - prefix + d  # Σ_{k≥m} d_k
+    v = float(np.sum(dc[same] * suffix[1:][same] ** 2))
+    sxx = float(np.sum(d * d))
+    if sxx <= 0:
+        return float("nan")
+    return float(np.sqrt(q * v) / sxx)
+
+
 def clustered_slope_error(lid: np.ndarray, dc: np.ndarray, r: np.ndarray, den: float, n_groups: int) -> float:
     """Cluster-robust (sandwich) standard error of a shared slope, one cluster per line.
 
@@ -659,6 +725,7 @@ def relocate_family(
     n_iter: int = 2,
     half_window_px: float | None = None,
     groups: np.ndarray | None = None,
+    walk: bool = False,
 ) -> RelocatedFamily:
     """Re-measure a family's lines on the map with one common slope.
 
@@ -687,11 +754,18 @@ def relocate_family(
         F-test of one offset per group against one offset per line
         (``staircase_p``, ``staircase_jump_V``); the fit itself keeps one
         offset per line.
+    walk : bool
+        The crossing points' errors may be a random walk along the cross
+        axis: the map is a derivative summed along that axis
+        (:func:`stabtool.preprocess.integral.summed_axis`), so neighbouring
+        points share nearly all their noise. The common slope's error in the
+        random-walk model is then given as well (``stderr_walk``,
+        :func:`walk_slope_error`); ``stderr`` and every choice stay as without.
     """
     lines = list(lines)
     windows = (5.0, 12.0) if half_window_px is None else (float(half_window_px),)
     tries = [_fit_window(z, x, y, lines, which=which, initial=initial, noise=noise, trim=trim, n_iter=n_iter,
-                         half_px=h, groups=groups) for h in windows]
+                         half_px=h, groups=groups, walk=walk) for h in windows]
     good = [t for t in tries if t.ok]
     # the window is chosen by the independent-point error (the smoother measure of precision: the
     # clustered one is itself noisy with few lines, and the smaller of two noisy errors understates)
@@ -716,6 +790,7 @@ class _WindowFit:
     stair_jump: float = float("nan")
     stderr_iid: float = float("nan")  # slope error for independent points (window choice)
     pixel_limited: bool = False  # quantised points of lines within a sample or two (see pixel_limited)
+    stderr_walk: float = float("nan")  # slope error in the random-walk model (see walk_slope_error)
 
 
 def _relocated(lines: list[TransitionLine], fit: _WindowFit, *, which: int, initial: float) -> RelocatedFamily:
@@ -747,12 +822,13 @@ def _relocated(lines: list[TransitionLine], fit: _WindowFit, *, which: int, init
         out.append(replace(ln, x0=float(x0), y0=float(y0), slope=float(slope), slope_stderr=float(slope_err),
                            position_stderr=float(perp), start=start, end=end, n_points=n))
     return RelocatedFamily(fit.ok, tuple(out), float(b), float(b_err), fit.n_used, float(sigma),
-                           float(fit.bend), float(fit.bend_err), fit.stair_p, fit.stair_jump, fit.pixel_limited)
+                           float(fit.bend), float(fit.bend_err), fit.stair_p, fit.stair_jump, fit.pixel_limited,
+                           fit.stderr_walk)
 
 
 def _fit_window(z: np.ndarray, x: np.ndarray, y: np.ndarray, lines: list[TransitionLine], *, which: int,
                 initial: float, noise: float, trim: float, n_iter: int, half_px: float,
-                groups: np.ndarray | None) -> _WindowFit:
+                groups: np.ndarray | None, walk: bool = False) -> _WindowFit:
     """Common slope and per-line offsets with cuts of ``± half_px`` pixels (see :func:`relocate_family`)."""
     z = np.asarray(z, float)
     n_lines_in = len(lines)
@@ -765,7 +841,7 @@ def _fit_window(z: np.ndarray, x: np.ndarray, y: np.ndarray, lines: list[Transit
     mids0 = [(ln.x0, ln.y0) if which == 0 else (ln.y0, ln.x0) for ln in lines]  # (scan, cross)
     mids = mids0
     sigma = np.nan
-    b_err = b_iid = np.nan
+    b_err = b_iid = b_walk = np.nan
     n_used = 0
     bend = bend_err = float("nan")
     limited = False
@@ -820,6 +896,8 @@ def _fit_window(z: np.ndarray, x: np.ndarray, y: np.ndarray, lines: list[Transit
         b_err = max(b_iid, clustered_slope_error(lid[use], dc[use], rr[use], den, n_lines_in))
         if limited:
             b_err = max(b_err, _pixel_limit(lid[use], c_all[use], n_lines_in, step))
+        if walk:
+            b_walk = walk_slope_error(lid[use], c_all[use], s_all[use], b)
         bend, bend_err = _common_bend(lid, n_lines_in, mask & (cnt >= 8)[lid], c_all, rr)
         bend, bend_err = bend * 0.4, bend_err * sigma * 0.4
         offsets = [(float(sm[i]), float(cm[i]), int(cnt[i])) if good[i] else None for i in range(n_lines_in)]
@@ -831,4 +909,4 @@ def _fit_window(z: np.ndarray, x: np.ndarray, y: np.ndarray, lines: list[Transit
                                               lid, n_lines_in, b)
     ok = n_used >= 6 and np.isfinite(b_err)
     return _WindowFit(bool(ok), False, float(b), float(b_err), n_used, float(sigma), tuple(offsets),
-                      float(bend), float(bend_err), stair_p, stair_jump, float(b_iid), limited)
+                      float(bend), float(bend_err), stair_p, stair_jump, float(b_iid), limited, float(b_walk))

@@ -61,6 +61,8 @@ SPIKE_NEIGHBOUR_SHARE = 0.25
 #: (left in, the walk broke seeds 1 and 5: the dot2 family lost); 1.2 lies between. Seeds 0:48:
 #: median M error 0.21 → 0.11, Cdg 173 % → 94 %, M pulls beyond 3σ on 35 of 82 → 27 of 78 elements.
 SUM_OFFSET_SCATTER_Z = 1.2
+#: Attribute of a summed map naming the axis it was summed along (:func:`summed_axis`).
+SUMMED_ALONG_ATTR = "stabtool_summed_along"
 
 
 def without_spikes(values: np.ndarray, noise: float) -> np.ndarray:
@@ -108,7 +110,10 @@ def integral_along(da: xr.DataArray, axis: str = "x") -> xr.DataArray:
     Returns
     -------
     xarray.DataArray
-        The same coordinates and attributes, the integrated signal.
+        The same coordinates and attributes, the integrated signal, and the
+        attribute :data:`SUMMED_ALONG_ATTR` = ``axis``: the summed noise is a
+        random walk along that axis, which the line fits must know
+        (:func:`summed_axis`).
     """
     if axis not in ("x", "y"):
         raise ValueError(f"axis must be 'x' or 'y', got {axis!r}")
@@ -130,5 +135,15 @@ def integral_along(da: xr.DataArray, axis: str = "x") -> xr.DataArray:
     s[~finite] = np.nan
     if axis == "y":
         s = s - _row_offsets_core(s.T)[None, :]
-    return da.copy(data=s)
+    out = da.copy(data=s)
+    out.attrs[SUMMED_ALONG_ATTR] = axis
+    return out
+
+
+def summed_axis(da: xr.DataArray | None) -> str | None:
+    """The axis ``da`` was summed along by :func:`integral_along` ("x" or "y"), or None."""
+    if da is None:
+        return None
+    axis = getattr(da, "attrs", {}).get(SUMMED_ALONG_ATTR)
+    return axis if axis in ("x", "y") else None
 
