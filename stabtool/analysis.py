@@ -1681,9 +1681,10 @@ class Analyzer:
         # stated errors were too small (probe lock-in maps on the x gate: rms pull ≈ 2, one map ok with
         # |ΔM| = 0.0085 at a stated 0.0020; summed along y, M21 off by 3.6 stated σ). The slope of the
         # family measured along the sum now counts the walk (fit.model.with_walk_errors; on the probe it
-        # errs on the safe side: median |pull| 0.4); the line positions, and so ΔV, δ and Cdg, do not
+        # errs on the safe side: median |pull| 0.4), or is measured on the sum along the other axis
+        # (fit.model.with_slope_across); the line positions, and so ΔV, δ and Cdg, still leave it out
         q = q.with_warning(f"{SUM_DOUBT} {axis}: the line positions' stated errors leave out the summed noise's "
-                           "random walk (ΔV, δ and Cdg; the slope measured along the sum counts it)")
+                           "random walk (ΔV, δ and Cdg; the slopes' errors count it)")
         return replace(again, timings_s=timings, quality=q)
 
     @staticmethod
@@ -1738,7 +1739,10 @@ class Analyzer:
         timings["detect"] = time.perf_counter() - t0
         t1 = time.perf_counter()
         fit_map = _row_corrected_map(da, detection)
-        fit = fit_diagram(detection, data=fit_map) if detection is not None else None
+        # a sum's family measured along it carries the summed walk; the sum along the other axis measures its
+        # slope across the lines (fit.model.with_slope_across)
+        across = integral_along(prepared.corrected, "y" if integrate == "x" else "x") if integrate else None
+        fit = fit_diagram(detection, data=fit_map, across=across) if detection is not None else None
         if fit is not None and not fit.ok and detection is not None and detection.jumps and self.detector is None:
             # the pattern shifts the detector took for charge jumps may be the honeycomb's own: dot1
             # lines step by δ1 where they cross a dot2 line that runs along the rows

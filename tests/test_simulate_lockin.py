@@ -59,8 +59,13 @@ def test_the_analysis_of_a_generated_lockin_map_sums_it_and_stays_doubtful(tmp_p
         warnings.simplefilter("ignore")
         j = Analyzer()(load(path)).to_json()
     assert any(w.startswith(f"{SUM_DOUBT} x") for w in j["quality"]["warnings"]) and not j["quality"]["ok"]
-    err = np.max(np.abs(np.array(j["virtual_gate_matrix"], float) - np.array(truth["virtual_gate_matrix"])))
-    assert err <= 0.005  # noiseless: measured 0.0013
+    dm = np.abs(np.array(j["virtual_gate_matrix"], float) - np.array(truth["virtual_gate_matrix"]))
+    # the doubtful map's numbers lie within three of their stated errors. M was within 0.0013 while M21 came
+    # from the x-sum alone; that measurement is now 0.0020 off at the walk model's 0.013, and the one on the sum
+    # along y, which is kept, 0.0079 off at 0.0038 (2.1σ). On 23 generator lock-in maps (noiseless and SNR
+    # 30) the slope across was as close to the truth as the x-sum's (SNR 30: median 0.0045 against 0.0046)
+    assert np.all(dm <= 3.0 * np.array(j["virtual_gate_matrix_error"], float) + 1e-12)
+    assert dm.max() <= 0.01
 
 
 @pytest.mark.regression
