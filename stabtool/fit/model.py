@@ -948,6 +948,16 @@ ACROSS_NOTE = ("{name} slope measured on the derivative summed along {axis}, acr
                "crossings): M{el} = {m:.4g} ± {after:.2g}, against {m0:.4g} ± {before:.2g} with the walk along the sum")
 
 
+#: Largest disagreement (in their errors combined) between the slope across the sum and the sum's own
+#: for the one across to replace it. On the probe's lock-in maps (x and y gate, 32 maps where it replaced
+#: one) the two agreed within 1.6; a serpentine sweep with a read-out lag (lock-in with lag, seed 4,
+#: SNR 60, M21 = 0.135: weak steps across the sum) gave 4.6, the slope across 0.017 off at 0.0021.
+ACROSS_AGREEMENT_Z = 3.0
+ACROSS_DISAGREES = ("{name} slope measured on the derivative summed along {axis}, across the lines: M{el} = "
+                    "{m:.4g} ± {after:.2g} disagrees with the sum's own {m0:.4g} ± {before:.2g} ({z:.1f}σ); the sum's "
+                    "own kept")
+
+
 def with_slope_across(fit: DiagramFit, across: Any) -> DiagramFit:
     """``fit`` with the along-sum family's slope from ``across`` when that states the smaller error.
 
@@ -959,7 +969,8 @@ def with_slope_across(fit: DiagramFit, across: Any) -> DiagramFit:
     the lines' slope (a dot2 step's derivative along x, summed over y, is its
     height times ``|dy/dx|``). The lines the fit used are re-measured there
     (:func:`stabtool.fit.relocate.relocate_family`, its scatter's error), and
-    when that error is below the walk-counted one, the element of M is
+    when that error is below the walk-counted one and the two agree
+    (``ACROSS_AGREEMENT_Z``; a note otherwise), the element of M is
     replaced and ``(ΔV1, δ1, ΔV2, δ2)`` follow it through the lattice's
     ``grad_m`` (numerical Jacobian, as in :func:`_at_band_pieces_slopes`).
     The positions stay the sum's own: on ``across`` the other family's
@@ -1000,6 +1011,11 @@ def with_slope_across(fit: DiagramFit, across: Any) -> DiagramFit:
     if not rel.ok or not np.isfinite(rel.stderr) or rel.stderr >= before:
         return fit
     m_new, m_err = -float(rel.inv_or_slope), float(rel.stderr)
+    z = abs(m_new - p0[i]) / float(np.hypot(m_err, before))
+    if z > ACROSS_AGREEMENT_Z:
+        return replace(fit, quality=fit.quality.with_warning(ACROSS_DISAGREES.format(
+            name=f"dot{which + 1}", axis=axis, el="12" if which == 0 else "21", m=m_new, after=m_err, m0=p0[i],
+            before=before, z=z), doubtful=False))
     g = fit.lattice.grad_m[[0, 1, 3, 4]][:, i]
 
     def new_params(q: np.ndarray) -> np.ndarray:
