@@ -901,7 +901,7 @@ def fit_diagram(
         the same derivative summed along the other axis. The slope of the
         family whose crossings ``data`` measures one after the next along its
         sum (dot2 on a sum along x) is measured on it too, and kept when its
-        error is the smaller (:func:`with_slope_across`).
+        error is the smaller and the two agree (:func:`with_slope_across`).
 
     Returns
     -------
