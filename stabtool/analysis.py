@@ -1657,13 +1657,13 @@ class Analyzer:
             transport = first.transport is not None and first.transport.consistent
             if not again.diagram.ok or (transport and not again.quality.ok):
                 why = "gave no charge lattice" if not again.diagram.ok else "was doubtful too"
-                streaky = [(a, _along_sum(r.diagram, a)) for r, a in zip(runs, axes)
-                           if abs(_along_sum(r.diagram, a)[1]) < STREAK_M]
+                along_sums = [(a, *_along_sum(r.diagram, a)) for r, a in zip(runs, axes)]
+                streaky = [(a, el, m) for a, el, m in along_sums if abs(m) < STREAK_M]
                 if not again.diagram.ok and streaky:
                     # (the sum with a lattice ranked last: its family along the sum is the noise's streaks)
                     why = "gave no charge lattice but " + " and ".join(
                         f"one whose family along the sum (along {a}: M{el[0] + 1}{el[1] + 1} = {m:.3g}) looks like "
-                        "the summed noise's streaks" for a, (el, m) in streaky)
+                        "the summed noise's streaks" for a, el, m in streaky)
                 # a lattice of the step analysis on peaks rests on the peaks' flanks (each line twice)
                 return replace(first, quality=first.quality.with_warning(
                     f"{what}; their integrals along x and y {why}", doubtful=first.diagram.ok and not transport))

@@ -18,6 +18,7 @@ T. Hensgens et al., Nature 548, 70 (2017), doi:10.1038/nature23022
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, field, replace
 from typing import Any
 
@@ -972,7 +973,7 @@ def with_slope_across(fit: DiagramFit, across: Any) -> DiagramFit:
     when that error is below the walk-counted one and the two agree
     (``ACROSS_AGREEMENT_Z``; a note otherwise), the element of M is
     replaced and ``(ΔV1, δ1, ΔV2, δ2)`` follow it through the lattice's
-    ``grad_m`` (numerical Jacobian, as in :func:`_at_band_pieces_slopes`).
+    ``grad_m`` (:func:`_following_m`, errors by :func:`_with_new_m`).
     The positions stay the sum's own: on ``across`` the other family's
     lines cross each cut near the triple points (held-out lock-in seed 29:
     δ2 from there 11 mV against a true 0.16). Keeping ``(ΔV, δ)`` as they
@@ -1016,21 +1017,9 @@ def with_slope_across(fit: DiagramFit, across: Any) -> DiagramFit:
         return replace(fit, quality=fit.quality.with_warning(ACROSS_DISAGREES.format(
             name=f"dot{which + 1}", axis=axis, el="12" if which == 0 else "21", m=m_new, after=m_err, m0=p0[i],
             before=before, z=z), doubtful=False))
-    g = fit.lattice.grad_m[[0, 1, 3, 4]][:, i]
-
-    def new_params(q: np.ndarray) -> np.ndarray:
-        p = q[:6].copy()
-        p[i] = q[6]
-        if np.all(np.isfinite(g)):
-            p[2:] += g * (q[6] - q[i])
-        return p
-
-    q = np.r_[p0, m_new]
-    cov_q = np.zeros((7, 7))
-    cov_q[:6, :6] = fit.param_cov
-    cov_q[6, 6] = m_err**2
-    jac = numeric_jacobian(new_params, q)
-    new = with_params(fit, new_params(q), jac @ cov_q @ jac.T)
+    moved = np.arange(2) == i
+    m_at, m_var = np.where(moved, m_new, p0[:2]), np.where(moved, m_err**2, 0.0)
+    new = _with_new_m(fit, m_at, np.diag(m_var), _following_m(fit.lattice.grad_m[[0, 1, 3, 4]], moved))
     walks = list(fit.walk_slope_errors)
     walks[which] = float("nan")  # (this element no longer rests on the walk)
     note = ACROSS_NOTE.format(name=f"dot{which + 1}", axis=axis, el="12" if which == 0 else "21", m=m_new,
@@ -1228,29 +1217,61 @@ def _at_band_pieces_slopes(fit: DiagramFit, stair_m: dict[str, tuple[float, floa
     g = fit.lattice.grad_m[[0, 1, 3, 4]] if fit.lattice is not None else np.full((4, 2), np.nan)
     if not np.any(moved) or not np.all(np.isfinite(g)):
         return with_added_errors(fit, np.r_[np.abs(m_new - p0[:2]), np.zeros(4)])
-    resolved = fit.mutual_resolved
+    if fit.mutual_resolved:
+        return _with_new_m(fit, m_new, np.diag(m_err**2), _following_m(g, moved))
 
     def new_params(q: np.ndarray) -> np.ndarray:
         # q = (M12, M21, ΔV1, δ1, ΔV2, δ2) of the straight fit, then the band pieces' (M12, M21)
         p, m_p = q[:6].copy(), q[6:]
         p[:2] = np.where(moved, m_p, q[:2])
-        if resolved:
-            p[2:] += g @ (p[:2] - q[:2])
-        else:
-            for i in np.flatnonzero(moved):
-                # δ_i from the staircase: ΔV_j (M_pieces − M_straight)/(1 − M_straight M_ji), j = 1 − i
-                p[3 + 2 * i] = mutual_shift_from_staircase(m_p[i], q[i], p[1 - i], q[4 - 2 * i])
+        for i in np.flatnonzero(moved):
+            # δ_i from the staircase: ΔV_j (M_pieces − M_straight)/(1 − M_straight M_ji), j = 1 − i
+            p[3 + 2 * i] = mutual_shift_from_staircase(m_p[i], q[i], p[1 - i], q[4 - 2 * i])
         return p
 
-    q = np.r_[p0, m_new]
+    # the straight fit is the staircase's mean line only as far as it spans whole bands
+    straight = np.diag((STAIRCASE_MEAN_SHARE * np.abs(m_new - p0[:2])) ** 2)
+    return _with_new_m(fit, m_new, np.diag(m_err**2), new_params, straight_m_cov=straight)
+
+
+def _following_m(g: np.ndarray, moved: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
+    """The parameters at new elements of M, ``(ΔV1, δ1, ΔV2, δ2)`` following them through ``g``.
+
+    For :func:`_with_new_m`: ``q = (M12, M21, ΔV1, δ1, ΔV2, δ2, M12', M21')``;
+    the ``moved`` elements take their new values, and the lattice numbers
+    move by ``g ΔM`` (``g`` the lattice's ``grad_m`` at ``(ΔV1, δ1, ΔV2, δ2)``,
+    shape (4, 2)), where its columns of the moved elements are finite.
+    """
+    follow = bool(np.all(np.isfinite(g[:, moved])))
+
+    def params(q: np.ndarray) -> np.ndarray:
+        p = q[:6].copy()
+        p[:2] = np.where(moved, q[6:], q[:2])
+        if follow:
+            p[2:] += g[:, moved] @ (p[:2] - q[:2])[moved]
+        return p
+
+    return params
+
+
+def _with_new_m(fit: DiagramFit, m_new: np.ndarray, m_cov: np.ndarray,
+                params_of: Callable[[np.ndarray], np.ndarray], *,
+                straight_m_cov: np.ndarray | None = None) -> DiagramFit:
+    """``fit`` at ``params_of(q)``, ``q = (params, m_new)``: new elements (M12, M21) of M and what follows them.
+
+    The covariance of ``q`` is the fit's (plus ``straight_m_cov`` on its own
+    M) beside ``m_cov`` of the new elements; it is carried to the new
+    parameters by a numerical Jacobian, and every derived number is
+    propagated anew (:func:`with_params`).
+    """
+    q = np.r_[fit.params, m_new]
     cov_q = np.zeros((8, 8))
     cov_q[:6, :6] = fit.param_cov
-    cov_q[6:, 6:] = np.diag(m_err**2)
-    if not resolved:
-        # the straight fit is the staircase's mean line only as far as it spans whole bands
-        cov_q[:2, :2] += np.diag((STAIRCASE_MEAN_SHARE * np.abs(m_new - p0[:2])) ** 2)
-    jac = numeric_jacobian(new_params, q)
-    return with_params(fit, new_params(q), jac @ cov_q @ jac.T)
+    cov_q[6:, 6:] = m_cov
+    if straight_m_cov is not None:
+        cov_q[:2, :2] += straight_m_cov
+    jac = numeric_jacobian(params_of, q)
+    return with_params(fit, params_of(q), jac @ cov_q @ jac.T)
 
 
 def with_added_errors(fit: DiagramFit, extra: np.ndarray) -> DiagramFit:
