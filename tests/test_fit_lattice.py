@@ -261,3 +261,56 @@ def test_a_peak_shaped_sensor_blind_to_most_of_the_map_keeps_the_true_cell():
     assert np.all(cdg > 0)
     # every element within 3 stated errors of the truth (the unresolved δ are stated as such)
     assert np.all(np.abs(cdg - true) <= 3 * err)
+
+
+def test_dot1_pieces_spanning_two_bands_keep_the_exact_cell():
+    # A dot1 line re-measured piecewise between the dot2 lines, where every other dot2 line was not cut
+    # at: the dot1 pieces span two dot2 bands (held-out probe, maps of 60–110 px, seed 7; its cell in mV
+    # below), and the longest one's extent centre lies on a dot2 line, half a band from any band centre.
+    # A label origin taken there put the dot2 lines between two labels (there ΔV1 15 % low, δ2 8 times
+    # the true value). Segments stop short of the triple points by 5 % of a band.
+    dv, dm, c = np.array([6.85e-3, 18.95e-3]), np.array([0.37e-3, 1.08e-3]), np.array([1e-3, 2e-3])
+    n = 5
+    d1, d2 = _honeycomb_segments(dv, dm, c, n=n)
+    n1, n2 = (a.ravel() for a in np.meshgrid(np.arange(n), np.arange(n), indexing="ij"))
+    # the pieces of bands N2 = (0, 1), (2, 3), (4) in even and (0), (1, 2), (3, 4) in odd N1 columns
+    # joined: position the mean of the pieces', extent the union
+    pos, lo, hi = [], [], []
+    for a in range(n):
+        for group in ([(0, 1), (2, 3), (4,)] if a % 2 == 0 else [(0,), (1, 2), (3, 4)]):
+            k = [int(np.flatnonzero((n1 == a) & (n2 == b))[0]) for b in group]
+            pos.append(d1.pos[k].mean())
+            lo.append(d1.lo[k].min())
+            hi.append(d1.hi[k].max())
+    m = len(pos)
+    joined = FamilySegments(pos=np.array(pos), pos_err=np.full(m, 1e-7), lo=np.array(lo) + 0.05 * dv[1],
+                            hi=np.array(hi) - 0.05 * dv[1], lever=np.zeros(m))
+    short2 = FamilySegments(pos=d2.pos, pos_err=d2.pos_err, lo=d2.lo + 0.05 * dv[0], hi=d2.hi - 0.05 * dv[0],
+                            lever=d2.lever)
+    lat = fit_lattice(joined, short2)
+    assert lat.ok
+    # the dot2 lines are exact, so ΔV2 and δ2 are; ΔV1 is the mean pieces' and δ1 within half itself
+    np.testing.assert_allclose(lat.addition_V, dv, rtol=1e-6)
+    np.testing.assert_allclose(lat.mutual_V[1], dm[1], rtol=1e-6)
+    assert abs(lat.mutual_V[0] - dm[0]) < 0.5 * dm[0]
+    assert np.max(np.abs(lat.residuals2)) < 1e-9
+
+
+@pytest.mark.regression
+def test_a_small_map_whose_staircase_pieces_span_two_bands_keeps_its_cell():
+    # held-out probe map (scripts/probe_heldout.py seed 7 at 60–110 px: Lorentzian sensor, SNR 60,
+    # 90 × 83 px, δ ≈ 0.05 ΔV, about a pixel): the dot1 lines are re-measured piecewise and their pieces
+    # span two dot2 bands. The lattice of those pieces was labelled from a band edge: ΔV1 5.83 mV for
+    # 6.84, δ2 8.45 mV for 1.08, Cdg21 −7.3 aF for +4.7 (the truth 4.7 stated errors away).
+    from _probe import analysed, make_map
+
+    pm = make_map(7, size=(60, 110))
+    j = analysed(pm).to_json()
+    t = pm.truth
+    for dot in ("dot1", "dot2"):
+        assert j["addition_voltages_V"][dot] == pytest.approx(t["addition_voltages_V"][dot], rel=0.01)
+        assert j["mutual_shifts_V"][dot] == pytest.approx(t["mutual_shifts_V"][dot], rel=0.25)
+    cdg, err, true = (np.array(v, float) for v in (j["gate_capacitance_aF"], j["gate_capacitance_aF_error"],
+                                                    t["gate_capacitance_aF"]))
+    assert np.all(cdg > 0)
+    assert np.all(np.abs(cdg - true) <= 3 * err)

@@ -20,7 +20,9 @@ integer pair that best explains its position and extent; labels and cell are
 refined alternately. When that lattice does not explain every line, the cell is
 retried from other candidate steps, among them the mutual shifts read from the
 positions of a family's segments in neighbouring bands (robust to segments cut
-short where a charge sensor is insensitive). The position fit is iteratively
+short where a charge sensor is insensitive), and with the label origin set by
+both families' line positions rather than one line's extent (robust to a
+segment that spans two bands). The position fit is iteratively
 reweighted least squares with Huber weights (P. J. Huber, "Robust estimation of a location parameter",
 Ann. Math. Statist. 35, 73 (1964), doi:10.1214/aoms/1177703732).
 
@@ -489,9 +491,13 @@ def fit_lattice(
     best, best_key = first, None
     # segments cut short where the sensor is insensitive move the extent midpoints that gave the first
     # δ: the same steps with δ from the line positions (_staircase_mutual) are one more candidate
-    for a2, b2 in _staircase_steps(dot1, dot2, a0, b0) + ([(a0, b0)] if phys else []) + _alternative_steps(a0, b0):
+    # the same steps with the label origin set by both families' positions (_origin) are candidates too
+    steps_tried = _staircase_steps(dot1, dot2, a0, b0) + ([(a0, b0)] if phys else []) + _alternative_steps(a0, b0)
+    candidates = [(a2, b2, False) for a2, b2 in steps_tried]
+    candidates += [(a2, b2, True) for a2, b2 in [(a, b)] + _staircase_steps(dot1, dot2, a0, b0)]
+    for a2, b2, by_positions in candidates:
         alt = _lattice_from_steps(dot1, dot2, a2, b2, interdot_extent=interdot_extent, err_floor_V=err_floor_V,
-                                  n_iter=n_iter)
+                                  n_iter=n_iter, origin_by_positions=by_positions)
         m = _misfit(alt)
         if m > CONSISTENT_MISFIT:
             continue
@@ -640,6 +646,37 @@ def _alternative_steps(a: np.ndarray, b: np.ndarray) -> list[tuple[np.ndarray, n
     return out
 
 
+def _longest(fam: FamilySegments) -> int:
+    """Index of a family's longest segment; lengths equal to 1e-9 relative (rounding noise of their
+    computation) count as equal and the first such segment wins (deterministic choice)."""
+    ext = np.asarray(fam.hi - fam.lo, float)
+    top = float(np.max(np.abs(ext))) if ext.size else 0.0
+    return int(np.argmax(np.round(ext / top * 1e9) if top > 0 else ext))
+
+
+def _origin(dot1: FamilySegments, dot2: FamilySegments, dv: np.ndarray, dm: np.ndarray, *,
+            by_positions: bool = False) -> np.ndarray:
+    """Label origin ``(c1, c2)`` of the cell equations (module docstring).
+
+    The longest dot1 line is labelled ``N1 = 0``: ``c1`` comes from its
+    position. By default it is ``N2 = 0`` too, and ``c2`` comes from the
+    centre of its extent, which is half a band off when the segment spans
+    two bands (a staircase piece not cut at one of the other family's lines:
+    held-out probe, maps of 60–110 px, seed 7). With ``by_positions`` ``c2``
+    comes from a position too: the longest dot2 line is labelled ``N2 = 0``,
+    and its ``N1`` is read from its extent relative to ``c1`` (an error there moves ``c2``
+    by ``δ2``, less than half a band, instead of by half a band).
+    """
+    r1 = _longest(dot1)
+    c1 = dot1.pos[r1] + 0.5 * dv[0]
+    if not by_positions:
+        return np.array([c1, dot1.mid[r1] + 0.5 * dm[1]])
+    r2 = _longest(dot2)
+    # dot2 line of band N1, N2 = 0: extent centre ΔV1 N1 − δ1/2 + c1, position −ΔV2/2 + δ2 N1 + c2
+    n1 = float(np.rint((dot2.mid[r2] + 0.5 * dm[0] - c1) / dv[0]))
+    return np.array([c1, dot2.pos[r2] + 0.5 * dv[1] - dm[1] * n1])
+
+
 def _cell_usable(dv: np.ndarray, dm: np.ndarray) -> bool:
     """True when the cell ``[[ΔV1, δ1], [δ2, ΔV2]]`` has finite, positive addition voltages and can be inverted."""
     if not (np.all(np.isfinite(dv)) and np.all(np.isfinite(dm)) and np.all(dv > 0)):
@@ -650,8 +687,12 @@ def _cell_usable(dv: np.ndarray, dm: np.ndarray) -> bool:
 def _lattice_from_steps(
     dot1: FamilySegments, dot2: FamilySegments, a: np.ndarray, b: np.ndarray, *,
     interdot_extent: tuple[float, float] | None, err_floor_V: float, n_iter: int, long_by_end: bool = False,
+    origin_by_positions: bool = False,
 ) -> LatticeFit:
-    """Labels and cell from the band steps ``a = (ΔV1, δ2)``, ``b = (ΔV2, δ1)`` as the first cell."""
+    """Labels and cell from the band steps ``a = (ΔV1, δ2)``, ``b = (ΔV2, δ1)`` as the first cell.
+
+    The label origin is set by the longest lines (:func:`_origin`, ``origin_by_positions``).
+    """
     k1, k2 = len(dot1), len(dot2)
     dv = np.array([a[0], b[0]])
     dm = np.array([b[1], a[1]])
@@ -660,12 +701,7 @@ def _lattice_from_steps(
             if not np.isfinite(dm[i]) or abs(dm[i]) < 1e-12:
                 dm[i] = interdot_extent[i]
     dm = np.where(np.abs(dm) < 0.5 * dv, dm, 0.1 * dv)  # δ/ΔV = E_Cm/E_C: below ½ (see _fold_mutual)
-    # label origin: the longest dot1 line; lengths equal to 1e-9 relative (rounding noise of
-    # their computation) count as equal and the first such line wins (deterministic choice)
-    ext = np.asarray(dot1.hi - dot1.lo, float)
-    top = float(np.max(np.abs(ext))) if ext.size else 0.0
-    ref = int(np.argmax(np.round(ext / top * 1e9) if top > 0 else ext))
-    c = np.array([dot1.pos[ref] + 0.5 * dv[0], dot1.mid[ref] + 0.5 * dm[1]])
+    c = _origin(dot1, dot2, dv, dm, by_positions=origin_by_positions)
     fits: list[_FamilyFit | None] = [None, None]
     labels = [np.zeros((k1, 2), int), np.zeros((k2, 2), int)]
     prev: list[np.ndarray] | None = None
