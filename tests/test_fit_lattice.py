@@ -115,13 +115,23 @@ def test_a_mutual_shift_slipped_by_one_addition_voltage_is_folded_back():
     np.testing.assert_array_equal(labs[1], labels)
 
 
-def test_a_mutual_shift_below_half_the_addition_voltage_is_kept():
-    from stabtool.fit.lattice import _fit_family, _fold_mutual
+@pytest.mark.parametrize("share, strong", [(0.4, False), (0.4, True), (0.7, True)])
+def test_a_physical_mutual_shift_is_kept(share, strong):
+    # strongly coupled: δ2/ΔV2 = E_Cm/E_C2 = C_m/C_1 in [0, 1) (van der Wiel et al., RMP 75, 1 (2003)),
+    # above ½ for a small dot 1 coupled strongly to a larger dot 2: kept by the second search's branch
+    from stabtool.fit.lattice import (
+        MUTUAL_FOLD_MARGIN,
+        STRONG_FOLD_MARGIN,
+        _fit_family,
+        _fold_mutual,
+    )
 
-    dv2, d2 = 0.006, 0.0024  # strongly coupled: E_Cm/E_C2 = 0.4 (common practice, no source: < ½)
+    dv2 = 0.006
+    d2 = share * dv2
     seg, labels = _dot2_segments(dv2, d2, np.arange(4), np.arange(3))
     fit = _fit_family(seg, labels, 1, 0.0)
-    fits, labs = _fold_mutual([None, fit], [None, labels], (seg, seg), 0.0)
+    margin = STRONG_FOLD_MARGIN if strong else MUTUAL_FOLD_MARGIN
+    fits, labs = _fold_mutual([None, fit], [None, labels], (seg, seg), 0.0, margin)
     assert fits[1] is fit and labs[1] is labels
 
 
@@ -138,22 +148,39 @@ def test_strongly_coupled_dots_give_the_exact_cell(cm):
     np.testing.assert_allclose(fit.cdg_aF, t.cdg, rtol=1e-9)
 
 
-def test_a_mutual_shift_above_half_the_addition_voltage_is_reported_doubtful():
-    # δ_i/ΔV_i = E_Cm/E_Ci (van der Wiel et al., RMP 75, 1 (2003)); at 0.6 the positions cannot tell
-    # it from a labelling slipped by one electron per band (δ − ΔV = −0.4 ΔV): the fit folds δ into
-    # (−ΔV/2, ΔV/2], and the lines then miss that lattice by more than a fifth of ΔV. The result is
-    # doubtful instead of wrong: no charge cell (nor ΔV, δ, Cdg), the virtual gates from the slopes
+def test_a_mutual_shift_above_half_the_addition_voltage_gives_the_exact_cell():
+    # δ_1/ΔV_1 = E_Cm/E_C1 = C_m/C_2 lies in [0, 1) (van der Wiel et al., RMP 75, 1 (2003)); the positions
+    # fix δ only modulo ΔV (a labelling slipped by one electron per band of the other dot gives δ − ΔV),
+    # and the physical branch is the one in [0, ΔV). At δ/ΔV = 0.6 (strongly coupled dots) a fold into
+    # (−ΔV/2, ΔV/2], used before, gave δ = −0.4 ΔV and no cell; held-out maps with one dot above ½ lost
+    # their cell the same way (probe --mutual 0.25:0.45: 16 of 40 maps)
     t = truth_from_capacitances(**{**WORKED, "cm": 48.0})
     np.testing.assert_allclose(t.mutual_V / t.addition_V, 0.6)
     fit = fit_diagram(honeycomb_detection(t, x=AXIS, y=AXIS, offset_V=(0.01, 0.012)))
-    assert not fit.quality.ok
-    assert any("do not fit one charge lattice" in w and "not determined" in w for w in fit.quality.warnings)
-    assert np.all(np.isnan(fit.cdg_aF)) and np.all(np.isnan(fit.addition_V)) and fit.lattice is None
-    np.testing.assert_allclose(fit.vg_matrix, t.m, atol=1e-6)
-    # the weakly coupled honeycomb of the same gates is not flagged
+    assert fit.ok and fit.labels_consistent
+    np.testing.assert_allclose(fit.addition_V, t.addition_V, rtol=1e-6)
+    np.testing.assert_allclose(fit.mutual_V, t.mutual_V, rtol=1e-6)
+    np.testing.assert_allclose(fit.cdg_aF, t.cdg, rtol=1e-6)
+    assert not any("negative" in w for w in fit.quality.warnings)
+    # the weakly coupled honeycomb of the same gates as well
     good = fit_diagram(honeycomb_detection(truth_from_capacitances(**WORKED), x=AXIS, y=AXIS, offset_V=(0.01, 0.012)))
     assert good.quality.ok and not any("negative" in w for w in good.quality.warnings)
     assert good.labels_consistent
+
+
+def test_a_mutual_shift_slipped_below_zero_by_noise_is_not_folded_up():
+    # a small δ measured a little below zero (noise) stays there in the second search's branch too: it
+    # reaches STRONG_FOLD_MARGIN·ΔV below zero, so the δ is not read as ≈ ΔV (a δ farther below zero is
+    # left to the consistency checks)
+    from stabtool.fit.lattice import STRONG_FOLD_MARGIN, _fit_family, _fold_mutual
+
+    dv2, d2 = 7e-3, -0.03 * 7e-3
+    assert STRONG_FOLD_MARGIN > 0.03
+    fam, labels = _dot2_segments(dv2, d2, np.arange(4), np.arange(3))
+    fit = _fit_family(fam, labels, 1, 1e-9)
+    assert fit is not None and fit.params[1] == pytest.approx(d2, abs=1e-9)
+    folded, _ = _fold_mutual([None, fit], [labels, labels], (fam, fam), 1e-9, STRONG_FOLD_MARGIN)
+    assert folded[1].params[1] == pytest.approx(d2, abs=1e-9)
 
 
 def _honeycomb_segments(dv, dm, c, n=5, keep2=None):
@@ -316,3 +343,52 @@ def test_a_small_map_whose_staircase_pieces_span_two_bands_keeps_its_cell():
                                                     t["gate_capacitance_aF"]))
     assert np.all(cdg > 0)
     assert np.all(np.abs(cdg - true) <= 3 * err)
+
+
+@pytest.mark.regression
+def test_strongly_coupled_dots_with_one_share_above_half_keep_their_cell():
+    # held-out probe map (scripts/probe_heldout.py --mutual 0.25:0.45 seed 11: sech2 sensor, SNR 20,
+    # 252 × 212 px): δ1/ΔV1 = C_m/C_2 = 0.57, δ2/ΔV2 = 0.39 (van der Wiel et al., RMP 75, 1 (2003)). The
+    # fold into (−ΔV/2, ΔV/2] made δ1 negative, and the map had no cell (M right to 0.0014)
+    from _probe import analysed, make_map
+
+    pm = make_map(11, mutual_fraction=(0.25, 0.45))
+    j = analysed(pm).to_json()
+    t = pm.truth
+    for dot in ("dot1", "dot2"):
+        assert j["addition_voltages_V"][dot] == pytest.approx(t["addition_voltages_V"][dot], rel=0.01)
+        assert j["mutual_shifts_V"][dot] == pytest.approx(t["mutual_shifts_V"][dot], rel=0.02)
+    cdg, err, true = (np.array(v, float) for v in (j["gate_capacitance_aF"], j["gate_capacitance_aF_error"],
+                                                    t["gate_capacitance_aF"]))
+    assert np.all(np.abs(cdg / true - 1) <= 0.02) and np.all(np.abs(cdg - true) <= 3 * err)
+
+
+def test_a_wide_branch_cell_must_look_like_strongly_coupled_dots():
+    # the positions fix the lattice only up to its basis; a cell of the second search is taken only when
+    # its shares are those of two strongly coupled dots (they share C_m: δ1/ΔV1 = C_m/C_2,
+    # δ2/ΔV2 = C_m/C_1) and the interdot segments point along (δ1, δ2), where the two triple points of a
+    # cell lie apart in virtual coordinates (van der Wiel et al., RMP 75, 1 (2003))
+    from stabtool.fit.lattice import _strongly_coupled
+
+    def cell(d1, d2, dv=(10e-3, 10e-3)):
+        dv, dm = np.array(dv), np.array([d1, d2])
+        return _lattice_from_steps_free(dv, dm)
+
+    good = cell(5.7e-3, 3.9e-3)
+    assert _strongly_coupled(good, (2.0e-3, 1.37e-3))  # interdot ratio 1.46 for δ1/δ2 = 1.46
+    assert not _strongly_coupled(good, (2.0e-3, 0.5e-3))  # interdot segments along another direction
+    assert not _strongly_coupled(good, None)  # no interdot segment
+    assert not _strongly_coupled(cell(5.9e-3, -0.03e-3), (1.0e-3, 1.0e-3))  # one share above ½, the other ~0
+    assert not _strongly_coupled(cell(8.3e-3, 6.9e-3), (1.2e-3, 1.0e-3))  # a share above 0.8
+    assert not _strongly_coupled(cell(3.0e-3, 4.0e-3), (0.75e-3, 1.0e-3))  # no share above ½
+
+
+def _lattice_from_steps_free(dv, dm):
+    """A LatticeFit holding only a cell (the fields _strongly_coupled reads)."""
+    from stabtool.fit.lattice import LatticeFit
+
+    return LatticeFit(ok=True, reason="", addition_V=dv, mutual_V=dm, offsets_V=np.zeros(2), cov=np.zeros((6, 6)),
+                      grad_m=np.zeros((6, 2)), labels1=np.zeros((0, 2), int), labels2=np.zeros((0, 2), int),
+                      residuals1=np.zeros(0), residuals2=np.zeros(0), addition_spread_V=np.full(2, np.nan),
+                      mutual_spread_V=np.full(2, np.nan), cells_addition=(np.zeros(0), np.zeros(0)),
+                      cells_mutual=(np.zeros(0), np.zeros(0)), mutual_from_lines=(True, True), chi2_red=np.ones(2))

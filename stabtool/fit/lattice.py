@@ -376,20 +376,40 @@ def _fit_family(fam: FamilySegments, labels: np.ndarray, which: int, err_floor: 
     return _FamilyFit(params, cov3, g3, resid, chi2, resolved)
 
 
+#: The mutual shifts are first taken in ``[−MUTUAL_FOLD_MARGIN, 1 − MUTUAL_FOLD_MARGIN)`` of their
+#: addition voltage (:func:`_fold_mutual`), i.e. ``[−½, ½)``: weakly to moderately coupled dots.
+MUTUAL_FOLD_MARGIN = 0.5
+#: When no lattice of that branch explains the lines, :func:`fit_lattice` searches again with the
+#: branch ``[−STRONG_FOLD_MARGIN, 1 − STRONG_FOLD_MARGIN)``: the physical ``[0, 1)`` with room below
+#: zero for a small δ measured with noise. Strongly coupled dots of unequal size reach ``δ/ΔV > ½``.
+#: Not the first search: with the wide branch from the start, lattices with half the cell and a δ
+#: above ½ explained the lines of ordinary maps (probe: 11 maps left the bounds, aspect seed 9 ΔV1
+#: 3.54 mV for 6.95, Cdg 93 % off).
+STRONG_FOLD_MARGIN = 0.1
+#: Most label / fit alternations of that second search.
+STRONG_N_ITER = 8
+
+
 def _fold_mutual(
     fits: list[_FamilyFit | None], labels: list[np.ndarray], fams: tuple[FamilySegments, FamilySegments],
-    err_floor_V: float,
+    err_floor_V: float, margin: float = MUTUAL_FOLD_MARGIN,
 ) -> tuple[list[_FamilyFit | None], list[np.ndarray]]:
-    """Relabel a family whose mutual shift left ``(−ΔV/2, ΔV/2]``, and refit it.
+    """Relabel a family whose mutual shift left ``[−m ΔV, (1 − m) ΔV)``, and refit it.
 
-    The position model ``ΔV (N − ½) + δ N_other + c`` is unchanged by
-    ``N → N + k N_other, δ → δ − k ΔV``: the positions alone fix δ only modulo
-    ΔV. In the constant-interaction model ``δ_i/ΔV_i = E_Cm/E_Ci`` lies in
-    ``[0, 1)`` and well below ½ for two dots (``Cm`` a fraction of a dot's
-    total capacitance); a δ near ΔV is the labelling slipping by one electron
-    per band of the other dot, which turns Cdg of that dot nonsensical
-    (common practice, no source). A folded δ that comes out significantly
-    negative is left to the caller's consistency checks.
+    ``m`` is ``margin`` (:data:`MUTUAL_FOLD_MARGIN`, ½, or :data:`STRONG_FOLD_MARGIN`). The position model
+    ``ΔV (N − ½) + δ N_other + c`` is unchanged by ``N → N + k N_other,
+    δ → δ − k ΔV``: the positions alone fix δ only modulo ΔV (the labelling
+    slips by ``k`` electrons per band of the other dot, which turns Cdg of
+    that dot nonsensical). In the constant-interaction model
+    ``δ_1/ΔV_1 = E_Cm/E_C1 = C_m/C_2`` (and ``δ_2/ΔV_2 = C_m/C_1``) lies in
+    ``[0, 1)`` (van der Wiel et al., Rev. Mod. Phys. 75, 1 (2003)): the
+    physical branch is the one in ``[0, ΔV)``, widened below zero for a small
+    δ measured with noise. The first search takes ``[−ΔV/2, ΔV/2)``, which
+    turns a δ above ½ negative; strongly coupled dots of unequal size reach
+    ``C_m/C_2 > ½`` (held-out probe ``--mutual 0.25:0.45``: 16 of 40 maps,
+    each without a cell from that branch), which the second search's branch
+    holds. A folded δ that comes out significantly negative is left to the
+    caller's consistency checks.
     """
     out_fits, out_labels = list(fits), list(labels)
     for i, fit in enumerate(fits):
@@ -398,7 +418,7 @@ def _fold_mutual(
         dv, dm = fit.params[0], fit.params[1]
         if not (np.isfinite(dv) and np.isfinite(dm) and dv > 0):
             continue
-        k = int(np.floor(dm / dv + 0.5))  # the branch with δ − k ΔV in [−ΔV/2, ΔV/2)
+        k = int(np.floor(dm / dv + margin))  # the branch with δ − k ΔV in [−m ΔV, (1 − m) ΔV)
         if k == 0:
             continue
         lab = labels[i].copy()
@@ -446,13 +466,80 @@ def fit_lattice(
     err_floor_V : float
         Added in quadrature to every position error (e.g. a fraction of a pixel).
     n_iter : int
-        Label / fit alternations.
+        Most label / fit alternations (they stop when the labels repeat) of the first search;
+        the second takes at least :data:`STRONG_N_ITER`.
 
     Returns
     -------
     LatticeFit
         Tests false (with a reason) when the cell cannot be determined.
+
+    Notes
+    -----
+    The mutual shifts are searched in ``[−ΔV/2, ΔV/2)`` first; when no lattice
+    there explains every line, again in ``[−0.1 ΔV, 0.9 ΔV)``
+    (:data:`STRONG_FOLD_MARGIN`; strongly coupled dots, ``δ/ΔV = C_m/C_other``
+    above ½), whose result replaces the first only when it explains every
+    line. The honeycomb with δ/ΔV = 0.6 (``tests/test_fit_lattice.py``)
+    settles at the fourth label / fit alternation of that search.
     """
+    first = _search(dot1, dot2, interdot_extent=interdot_extent, err_floor_V=err_floor_V, n_iter=n_iter,
+                    margin=MUTUAL_FOLD_MARGIN)
+    if not first or _misfit(first) <= CONSISTENT_MISFIT:
+        return first
+    strong = _search(dot1, dot2, interdot_extent=interdot_extent, err_floor_V=err_floor_V,
+                     n_iter=max(n_iter, STRONG_N_ITER), margin=STRONG_FOLD_MARGIN)
+    if strong and _misfit(strong) <= CONSISTENT_MISFIT and _strongly_coupled(strong, interdot_extent):
+        return strong
+    return first
+
+
+#: A cell from the second search (:func:`fit_lattice`) is taken only as strongly coupled dots: one
+#: ``δ/ΔV`` above ½, both at least ``STRONG_SHARE_RANGE[0]`` and at most ``STRONG_SHARE_RANGE[1]``,
+#: and the interdot segments' direction ``ΔV'_1/ΔV'_2`` within this factor of ``δ1/δ2``.
+STRONG_SHARE_RANGE = (0.05, 0.8)
+STRONG_INTERDOT_FACTOR = 1.5
+
+
+def _strongly_coupled(lat: LatticeFit, interdot_extent: tuple[float, float] | None) -> bool:
+    """Whether a cell's mutual shifts are those of strongly coupled dots (one ``δ/ΔV`` above ½).
+
+    ``δ1/ΔV1 = C_m/C_2`` and ``δ2/ΔV2 = C_m/C_1`` (van der Wiel et al., Rev.
+    Mod. Phys. 75, 1 (2003)) share ``C_m``: one above ½ and the other near
+    zero is no pair of dots. The positions fix the lattice only up to its
+    basis, and the second search's wide branch also holds other bases of
+    the same lines: held-out probe ``--mutual 0.25:0.45`` seed 19 (true
+    shares 0.30, 0.50) gave 0.59 and −0.003 (Cdg 800 % off, stated to a
+    fraction of a percent), seed 32 (true 0.33, 0.69, a wrong dot1 slope)
+    0.83 and 0.69. The eight maps it gave right cells had shares of
+    0.32–0.60.
+
+    In virtual coordinates the two triple points of a cell lie ``(δ1, δ2)``
+    apart, so the interdot line between them runs along ``(δ1, δ2)``; dots
+    coupled that strongly show it. The detected interdot segments (their
+    median virtual extent ``interdot_extent``) must point that way: on those
+    eight maps their ratio was within 10 % of ``δ1/δ2`` (the segments
+    themselves 0.2–0.5 of δ long: they stop short of the triple points),
+    while a lock-in map (probe ``--lockin`` seed 37) had 0.77 against 84 and
+    a dense map without interdot segments took half a cell and δ2/ΔV2 = 0.53
+    for 0.06.
+    """
+    share = lat.mutual_V / lat.addition_V
+    lo, hi = STRONG_SHARE_RANGE
+    if not (np.all(np.isfinite(share)) and np.all(share >= lo) and np.all(share <= hi) and np.any(share > 0.5)):
+        return False
+    if interdot_extent is None:
+        return False
+    e1, e2 = (float(v) for v in interdot_extent)
+    if not (np.isfinite(e1) and np.isfinite(e2) and e1 > 0 and e2 > 0):
+        return False
+    ratio = (e1 / e2) / (lat.mutual_V[0] / lat.mutual_V[1])
+    return bool(1.0 / STRONG_INTERDOT_FACTOR <= ratio <= STRONG_INTERDOT_FACTOR)
+
+
+def _search(dot1: FamilySegments, dot2: FamilySegments, *, interdot_extent: tuple[float, float] | None,
+            err_floor_V: float, n_iter: int, margin: float) -> LatticeFit:
+    """:func:`fit_lattice` with the mutual shifts in ``[−margin ΔV, (1 − margin) ΔV)``."""
     k1, k2 = len(dot1), len(dot2)
     if k1 < 2 or k2 < 2:
         return _failed(f"too few lines to fit a cell (dot1: {k1}, dot2: {k2}; need at least 2 each)", k1, k2)
@@ -473,13 +560,13 @@ def fit_lattice(
     if phys:
         a, b = phys[0]
     first = _lattice_from_steps(dot1, dot2, a, b, interdot_extent=interdot_extent, err_floor_V=err_floor_V,
-                                n_iter=n_iter)
+                                n_iter=n_iter, margin=margin)
     if (np.any(dot1.hi - dot1.lo > LONG_SEGMENT_BANDS * abs(b[0]))
             or np.any(dot2.hi - dot2.lo > LONG_SEGMENT_BANDS * abs(a[0]))):
         # segments longer than a band: labelled by their closed end instead (see _label), kept when
         # the lines fit that lattice clearly better
         by_end = _lattice_from_steps(dot1, dot2, a, b, interdot_extent=interdot_extent, err_floor_V=err_floor_V,
-                                     n_iter=n_iter, long_by_end=True)
+                                     n_iter=n_iter, long_by_end=True, margin=margin)
         if _misfit(by_end) < LONG_SEGMENT_GAIN * _misfit(first):
             first = by_end
     miss = _misfit(first)
@@ -492,12 +579,13 @@ def fit_lattice(
     # segments cut short where the sensor is insensitive move the extent midpoints that gave the first
     # δ: the same steps with δ from the line positions (_staircase_mutual) are one more candidate
     # the same steps with the label origin set by both families' positions (_origin) are candidates too
-    steps_tried = _staircase_steps(dot1, dot2, a0, b0) + ([(a0, b0)] if phys else []) + _alternative_steps(a0, b0)
+    stair = _staircase_steps(dot1, dot2, a0, b0, margin)
+    steps_tried = stair + ([(a0, b0)] if phys else []) + _alternative_steps(a0, b0, margin)
     candidates = [(a2, b2, False) for a2, b2 in steps_tried]
-    candidates += [(a2, b2, True) for a2, b2 in [(a, b)] + _staircase_steps(dot1, dot2, a0, b0)]
+    candidates += [(a2, b2, True) for a2, b2 in [(a, b)] + stair]
     for a2, b2, by_positions in candidates:
         alt = _lattice_from_steps(dot1, dot2, a2, b2, interdot_extent=interdot_extent, err_floor_V=err_floor_V,
-                                  n_iter=n_iter, origin_by_positions=by_positions)
+                                  n_iter=n_iter, origin_by_positions=by_positions, margin=margin)
         m = _misfit(alt)
         if m > CONSISTENT_MISFIT:
             continue
@@ -528,7 +616,8 @@ def _misfit(lat: LatticeFit) -> float:
     return float(max(terms)) if terms else 0.0
 
 
-def _staircase_mutual(fam: FamilySegments, dv_own: float, dv_other: float) -> float | None:
+def _staircase_mutual(fam: FamilySegments, dv_own: float, dv_other: float,
+                      margin: float = MUTUAL_FOLD_MARGIN) -> float | None:
     """Mutual shift of one family from the positions of its segments in consecutive bands, or None.
 
     A dot1 line of band ``N2`` ends (along ``V'_2``) where the dot1 line of
@@ -536,7 +625,8 @@ def _staircase_mutual(fam: FamilySegments, dv_own: float, dv_other: float) -> fl
     by ``δ1`` modulo ``ΔV1`` (for ``N1``, ``N1 ± 1`` alike); likewise for dot2
     with the roles swapped. Pairs of segments that do not overlap and whose
     ends are within ``ΔV_other/4`` of each other give the position differences
-    wrapped into ``[−ΔV/2, ΔV/2)``; their median is returned.
+    wrapped into ``[−m ΔV, (1 − m) ΔV)`` (``m`` = ``margin``, as in
+    :func:`_fold_mutual`); their median is returned.
 
     Notes
     -----
@@ -566,25 +656,26 @@ def _staircase_mutual(fam: FamilySegments, dv_own: float, dv_other: float) -> fl
     if not np.any(pair):
         return None
     dp = (fam.pos[None, :] - fam.pos[:, None])[pair]
-    return float(median(dp - dv_own * np.rint(dp / dv_own)))
+    return float(median(dp - dv_own * np.floor(dp / dv_own + margin)))
 
 
 def _staircase_steps(dot1: FamilySegments, dot2: FamilySegments, a: np.ndarray,
-                     b: np.ndarray) -> list[tuple[np.ndarray, np.ndarray]]:
+                     b: np.ndarray, margin: float = MUTUAL_FOLD_MARGIN) -> list[tuple[np.ndarray, np.ndarray]]:
     """The band steps with the mutual shifts from :func:`_staircase_mutual` (empty if it gives none).
 
     ``a = (ΔV1, δ2)``, ``b = (ΔV2, δ1)`` as in :func:`fit_lattice`; only a
-    physical shift, ``0 ≤ δ/ΔV < ½`` (a little below 0 allowed, as in
+    physical shift, ``0 ≤ δ/ΔV < 1 − margin`` (a little below 0 allowed, as in
     :func:`_alternative_steps`), replaces the midpoint value: a band step that
     is not ``ΔV`` itself wraps the differences into nonsense (seen: δ1 = −0.41
     of a band step 1.7 ΔV1 on a strongly coupled held-out map).
     """
-    d1 = _staircase_mutual(dot1, a[0], b[0])
-    d2 = _staircase_mutual(dot2, b[0], a[0])
+    d1 = _staircase_mutual(dot1, a[0], b[0], margin)
+    d2 = _staircase_mutual(dot2, b[0], a[0], margin)
     a2, b2 = np.array(a, float), np.array(b, float)
-    if d1 is not None and -0.05 * a[0] <= d1 < 0.5 * a[0]:
+    top = 1.0 - margin
+    if d1 is not None and -0.05 * a[0] <= d1 < top * a[0]:
         b2[1] = d1
-    if d2 is not None and -0.05 * b[0] <= d2 < 0.5 * b[0]:
+    if d2 is not None and -0.05 * b[0] <= d2 < top * b[0]:
         a2[1] = d2
     if np.array_equal(a2, a) and np.array_equal(b2, b):
         return []
@@ -623,25 +714,27 @@ def _physical_start(a: np.ndarray, b: np.ndarray) -> list[tuple[np.ndarray, np.n
 PHYSICAL_START_TOLERANCE = 0.05
 
 
-def _alternative_steps(a: np.ndarray, b: np.ndarray) -> list[tuple[np.ndarray, np.ndarray]]:
+def _alternative_steps(a: np.ndarray, b: np.ndarray,
+                       margin: float = MUTUAL_FOLD_MARGIN) -> list[tuple[np.ndarray, np.ndarray]]:
     """Other candidate band steps in the lattice spanned by the two found ones.
 
     ``a = (ΔV1, δ2)`` is the dot1 step ``A`` in ``(V'1, V'2)``; ``b = (ΔV2, δ1)``
     the dot2 step ``B = (δ1, ΔV2)``. When the dots are strongly coupled, pairs
     of neighbouring bands overlap and a band step can come out as ``k B − j A``:
     the candidates are ``(B + j A)/k`` and ``(A + j B)/k`` (``k`` = 1, 2) whose
-    mutual shift is physical, ``0 ≤ δ/ΔV < ½`` (a little below 0 allowed).
+    mutual shift is physical, ``0 ≤ δ/ΔV < 1 − margin`` (a little below 0 allowed).
     """
     A = np.array([a[0], a[1]], float)
     B = np.array([b[1], b[0]], float)
     out = []
     combos = [(1, j) for j in (-2, -1, 1, 2)] + [(2, j) for j in (-1, 1)]
+    top = 1.0 - margin
     for k, j in combos:
         Bn = (B + j * A) / k  # new dot2 step, (δ1, ΔV2)
-        if Bn[1] > 0 and A[0] > 0 and -0.05 * A[0] <= Bn[0] < 0.5 * A[0]:
+        if Bn[1] > 0 and A[0] > 0 and -0.05 * A[0] <= Bn[0] < top * A[0]:
             out.append((a, np.array([Bn[1], Bn[0]])))
         An = (A + j * B) / k  # new dot1 step, (ΔV1, δ2)
-        if An[0] > 0 and B[1] > 0 and -0.05 * B[1] <= An[1] < 0.5 * B[1]:
+        if An[0] > 0 and B[1] > 0 and -0.05 * B[1] <= An[1] < top * B[1]:
             out.append((np.array([An[0], An[1]]), b))
     return out
 
@@ -687,7 +780,7 @@ def _cell_usable(dv: np.ndarray, dm: np.ndarray) -> bool:
 def _lattice_from_steps(
     dot1: FamilySegments, dot2: FamilySegments, a: np.ndarray, b: np.ndarray, *,
     interdot_extent: tuple[float, float] | None, err_floor_V: float, n_iter: int, long_by_end: bool = False,
-    origin_by_positions: bool = False,
+    origin_by_positions: bool = False, margin: float = MUTUAL_FOLD_MARGIN,
 ) -> LatticeFit:
     """Labels and cell from the band steps ``a = (ΔV1, δ2)``, ``b = (ΔV2, δ1)`` as the first cell.
 
@@ -700,7 +793,8 @@ def _lattice_from_steps(
         for i in range(2):
             if not np.isfinite(dm[i]) or abs(dm[i]) < 1e-12:
                 dm[i] = interdot_extent[i]
-    dm = np.where(np.abs(dm) < 0.5 * dv, dm, 0.1 * dv)  # δ/ΔV = E_Cm/E_C: below ½ (see _fold_mutual)
+    # δ/ΔV = E_Cm/E_C: in [0, 1) (see _fold_mutual); a start outside is replaced
+    dm = np.where((dm > -0.5 * dv) & (dm < (1.0 - margin) * dv), dm, 0.1 * dv)
     c = _origin(dot1, dot2, dv, dm, by_positions=origin_by_positions)
     fits: list[_FamilyFit | None] = [None, None]
     labels = [np.zeros((k1, 2), int), np.zeros((k2, 2), int)]
@@ -724,7 +818,7 @@ def _lattice_from_steps(
     if fits[0] is None or fits[1] is None:
         bad = "dot1" if fits[0] is None else "dot2"
         return _failed(f"{bad} lines span fewer than two transitions of their dot: cell undetermined", k1, k2)
-    fits, labels = _fold_mutual(fits, labels, (dot1, dot2), err_floor_V)
+    fits, labels = _fold_mutual(fits, labels, (dot1, dot2), err_floor_V, margin)
     f1, f2 = fits
     assert f1 is not None and f2 is not None
     mutual = np.array([f1.params[1], f2.params[1]])
