@@ -331,16 +331,7 @@ def test_a_small_map_whose_staircase_pieces_span_two_bands_keeps_its_cell():
     # 90 × 83 px, δ ≈ 0.05 ΔV, about a pixel): the dot1 lines are re-measured piecewise and their pieces
     # span two dot2 bands. The lattice of those pieces was labelled from a band edge: ΔV1 5.83 mV for
     # 6.84, δ2 8.45 mV for 1.08, Cdg21 −7.3 aF for +4.7 (the truth 4.7 stated errors away).
-    from _probe import analysed, make_map
-
-    pm = make_map(7, size=(60, 110))
-    j = analysed(pm).to_json()
-    t = pm.truth
-    for dot in ("dot1", "dot2"):
-        assert j["addition_voltages_V"][dot] == pytest.approx(t["addition_voltages_V"][dot], rel=0.01)
-        assert j["mutual_shifts_V"][dot] == pytest.approx(t["mutual_shifts_V"][dot], rel=0.25)
-    cdg, err, true = (np.array(v, float) for v in (j["gate_capacitance_aF"], j["gate_capacitance_aF_error"],
-                                                    t["gate_capacitance_aF"]))
+    cdg, err, true = _probe_cell({"seed": 7, "size": (60, 110)}, mutual_rel=0.25)
     assert np.all(cdg > 0)
     assert np.all(np.abs(cdg - true) <= 3 * err)
 
@@ -350,17 +341,25 @@ def test_strongly_coupled_dots_with_one_share_above_half_keep_their_cell():
     # held-out probe map (scripts/probe_heldout.py --mutual 0.25:0.45 seed 11: sech2 sensor, SNR 20,
     # 252 × 212 px): δ1/ΔV1 = C_m/C_2 = 0.57, δ2/ΔV2 = 0.39 (van der Wiel et al., RMP 75, 1 (2003)). The
     # fold into (−ΔV/2, ΔV/2] made δ1 negative, and the map had no cell (M right to 0.0014)
+    cdg, err, true = _probe_cell({"seed": 11, "mutual_fraction": (0.25, 0.45)}, mutual_rel=0.02)
+    assert np.all(np.abs(cdg / true - 1) <= 0.02) and np.all(np.abs(cdg - true) <= 3 * err)
+
+
+def _probe_cell(args, *, mutual_rel):
+    """Analyse probe map ``make_map(**args)``; check ΔV to 1 % and δ to ``mutual_rel`` of the truth.
+
+    Returns the reported Cdg, its stated error and the truth (aF).
+    """
     from _probe import analysed, make_map
 
-    pm = make_map(11, mutual_fraction=(0.25, 0.45))
+    pm = make_map(**args)
     j = analysed(pm).to_json()
     t = pm.truth
     for dot in ("dot1", "dot2"):
         assert j["addition_voltages_V"][dot] == pytest.approx(t["addition_voltages_V"][dot], rel=0.01)
-        assert j["mutual_shifts_V"][dot] == pytest.approx(t["mutual_shifts_V"][dot], rel=0.02)
-    cdg, err, true = (np.array(v, float) for v in (j["gate_capacitance_aF"], j["gate_capacitance_aF_error"],
-                                                    t["gate_capacitance_aF"]))
-    assert np.all(np.abs(cdg / true - 1) <= 0.02) and np.all(np.abs(cdg - true) <= 3 * err)
+        assert j["mutual_shifts_V"][dot] == pytest.approx(t["mutual_shifts_V"][dot], rel=mutual_rel)
+    return tuple(np.array(v, float) for v in (j["gate_capacitance_aF"], j["gate_capacitance_aF_error"],
+                                              t["gate_capacitance_aF"]))
 
 
 def test_a_wide_branch_cell_must_look_like_strongly_coupled_dots():
