@@ -511,14 +511,14 @@ def _strongly_coupled(lat: LatticeFit, interdot_extent: tuple[float, float] | No
     the same lines: held-out probe ``--mutual 0.25:0.45`` seed 19 (true
     shares 0.30, 0.50) gave 0.59 and −0.003 (Cdg 800 % off, stated to a
     fraction of a percent), seed 32 (true 0.33, 0.69, a wrong dot1 slope)
-    0.83 and 0.69. The eight maps it gave right cells had shares of
-    0.32–0.60.
+    0.83 and 0.69. The seven maps it gave right cells had shares of
+    0.32–0.59.
 
     In virtual coordinates the two triple points of a cell lie ``(δ1, δ2)``
     apart, so the interdot line between them runs along ``(δ1, δ2)``; dots
     coupled that strongly show it. The detected interdot segments (their
     median virtual extent ``interdot_extent``) must point that way: on those
-    eight maps their ratio was within 10 % of ``δ1/δ2`` (the segments
+    seven maps their ratio was within 10 % of ``δ1/δ2`` (the segments
     themselves 0.2–0.5 of δ long: they stop short of the triple points),
     while a lock-in map (probe ``--lockin`` seed 37) had 0.77 against 84 and
     a dense map without interdot segments took half a cell and δ2/ΔV2 = 0.53
