@@ -1645,12 +1645,17 @@ class Analyzer:
         """
         lines_only = copy.copy(self)
         lines_only.refine = INTEGRAL_MODEL_FIT
+        # both sums, each once: a run analyses one and measures a family's slope across the lines on the
+        # other (fit.model.with_slope_across)
+        t_sums = time.perf_counter()
+        sums = {a: integral_along(prepared.corrected, a) for a in ("x", "y")}
+        t_sums = time.perf_counter() - t_sums
         # the axis given (or the one the peaks' areas point to) first, and the better analysis wins
-        runs = [lines_only._stability(prepared, integrate=a) for a in axes]
+        runs = [lines_only._stability(prepared, integrate=a, sums=sums) for a in axes]
         k = min(range(len(runs)), key=lambda i: _integral_rank(runs[i], i, axes[i]))
         again, axis = runs[k], axes[k]
         # (each run's total holds the one preparation of the map: counted once)
-        spent = sum(r.timings_s.get("total", 0.0) - prepared.seconds for r in runs)
+        spent = t_sums + sum(r.timings_s.get("total", 0.0) - prepared.seconds for r in runs)
         timings = {**again.timings_s,
                    "total": (first.timings_s.get("total", 0.0) if first else prepared.seconds) + spent}
         if first is not None:
@@ -1720,14 +1725,20 @@ class Analyzer:
         return _Prepared(measured=measured, corrected=da, lag_V=lag_V, quality=q,
                          seconds=time.perf_counter() - t0, tau_V=tau_V)
 
-    def _stability(self, prepared: _Prepared, *, integrate: str | None = None) -> AnalysisResult:
-        """The analysis of a charge-stability map (``integrate``: of its corrected map's integral along that axis)."""
+    def _stability(self, prepared: _Prepared, *, integrate: str | None = None,
+                   sums: dict[str, xr.DataArray] | None = None) -> AnalysisResult:
+        """The analysis of a charge-stability map (``integrate``: of its corrected map's integral along that axis).
+
+        ``sums``: the corrected map's integrals along "x" and "y" (:func:`integral_along`), needed with
+        ``integrate``.
+        """
         timings: dict[str, float] = {}
         t0 = time.perf_counter() - prepared.seconds  # (the preparation counts as part of the detection)
         detector = self.detector or _default_detector
         measured, da, lag_V, q = prepared.measured, prepared.corrected, prepared.lag_V, prepared.quality
         if integrate is not None:
-            da = integral_along(da, integrate)
+            assert sums is not None
+            da = sums[integrate]
         detection: LineDetection | None
         try:
             detection = detector(da)
@@ -1741,7 +1752,7 @@ class Analyzer:
         fit_map = _row_corrected_map(da, detection)
         # a sum's family measured along it carries the summed walk; the sum along the other axis measures its
         # slope across the lines (fit.model.with_slope_across)
-        across = integral_along(prepared.corrected, "y" if integrate == "x" else "x") if integrate else None
+        across = sums["y" if integrate == "x" else "x"] if integrate and sums is not None else None
         fit = fit_diagram(detection, data=fit_map, across=across) if detection is not None else None
         if fit is not None and not fit.ok and detection is not None and detection.jumps and self.detector is None:
             # the pattern shifts the detector took for charge jumps may be the honeycomb's own: dot1

@@ -953,15 +953,14 @@ def fit_diagram(
         if splits is not None:
             cuts = (pieces, _staircases(data, detection, splits, noise=noise))
     fit = _fit_passes(detection, cuts, data=data, relocate=relocate, err_floor_px=err_floor_px, noise=noise)
-    if fit.ok or data is None:
-        return with_walk_errors(with_slope_across(fit, across))
-    clear = _fit_passes(detection, cuts, data=data, relocate=relocate, err_floor_px=err_floor_px, noise=noise,
-                        keep_clear=True)
-    if not clear.ok:
-        return with_walk_errors(with_slope_across(fit, across))
-    return with_walk_errors(with_slope_across(replace(clear, quality=clear.quality.with_warning(
-        "lines with clear steps that are weak beside their family's strongest were kept to find the charge "
-        "cell (the sensor's sensitivity varies over the map)", doubtful=False)), across))
+    if not fit.ok and data is not None:
+        clear = _fit_passes(detection, cuts, data=data, relocate=relocate, err_floor_px=err_floor_px, noise=noise,
+                            keep_clear=True)
+        if clear.ok:
+            fit = replace(clear, quality=clear.quality.with_warning(
+                "lines with clear steps that are weak beside their family's strongest were kept to find the "
+                "charge cell (the sensor's sensitivity varies over the map)", doubtful=False))
+    return with_walk_errors(with_slope_across(fit, across))
 
 
 #: Note of a fit whose along-sum family's slope was measured on the derivative's sum along the other axis.
@@ -1032,11 +1031,11 @@ def with_slope_across(fit: DiagramFit, across: Any) -> DiagramFit:
     if not rel.ok or not np.isfinite(rel.stderr) or rel.stderr >= before:
         return fit
     m_new, m_err = -float(rel.inv_or_slope), float(rel.stderr)
-    z = abs(m_new - p0[i]) / float(np.hypot(m_err, before))
-    if z > ACROSS_AGREEMENT_Z:
+    score = abs(m_new - p0[i]) / float(np.hypot(m_err, before))
+    if score > ACROSS_AGREEMENT_Z:
         return replace(fit, quality=fit.quality.with_warning(ACROSS_DISAGREES.format(
             name=f"dot{which + 1}", axis=axis, el="12" if which == 0 else "21", m=m_new, after=m_err, m0=p0[i],
-            before=before, z=z), doubtful=False))
+            before=before, z=score), doubtful=False))
     moved = np.arange(2) == i
     m_at, m_var = np.where(moved, m_new, p0[:2]), np.where(moved, m_err**2, 0.0)
     new = _with_new_m(fit, m_at, np.diag(m_var), _following_m(fit.lattice.grad_m[[0, 1, 3, 4]], moved))
