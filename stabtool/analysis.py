@@ -286,6 +286,24 @@ def _along_sum(diagram: DiagramFit, axis: str) -> tuple[tuple[int, int], float]:
     return along, (float(diagram.vg_matrix[along]) if diagram.ok else float("nan"))
 
 
+def _sums_failed_reason(diagrams: list[DiagramFit], axes: tuple[str, ...], lattice: bool) -> str:
+    """Why a derivative map's sums did not stand in for its ordinary analysis (the end of a note).
+
+    ``diagrams`` are the fits of the sums along ``axes``; ``lattice`` whether the one chosen has a
+    charge lattice. A sum whose family along the sum has ``|M| < STREAK_M`` ranks last even when it
+    has a lattice (see :func:`_integral_rank`); the note then names it.
+    """
+    if lattice:
+        return "was doubtful too"
+    streaky = [(a, *_along_sum(d, a)) for d, a in zip(diagrams, axes)]
+    streaky = [(a, el, m) for a, el, m in streaky if abs(m) < STREAK_M]
+    if not streaky:
+        return "gave no charge lattice"
+    return "gave no charge lattice but " + " and ".join(
+        f"one whose family along the sum (along {a}: M{el[0] + 1}{el[1] + 1} = {m:.3g}) looks like "
+        "the summed noise's streaks" for a, el, m in streaky)
+
+
 def _integral_rank(res: AnalysisResult, order: int, axis: str) -> tuple:
     """Sort key of a derivative map's integral analyses: without a family along the sum first
     (``STREAK_M``: the summed noise's streaks look the same), then ok, then with a charge lattice,
@@ -1661,14 +1679,7 @@ class Analyzer:
         if first is not None:
             transport = first.transport is not None and first.transport.consistent
             if not again.diagram.ok or (transport and not again.quality.ok):
-                why = "gave no charge lattice" if not again.diagram.ok else "was doubtful too"
-                along_sums = [(a, *_along_sum(r.diagram, a)) for r, a in zip(runs, axes)]
-                streaky = [(a, el, m) for a, el, m in along_sums if abs(m) < STREAK_M]
-                if not again.diagram.ok and streaky:
-                    # (the sum with a lattice ranked last: its family along the sum is the noise's streaks)
-                    why = "gave no charge lattice but " + " and ".join(
-                        f"one whose family along the sum (along {a}: M{el[0] + 1}{el[1] + 1} = {m:.3g}) looks like "
-                        "the summed noise's streaks" for a, el, m in streaky)
+                why = _sums_failed_reason([r.diagram for r in runs], axes, again.diagram.ok)
                 # a lattice of the step analysis on peaks rests on the peaks' flanks (each line twice)
                 return replace(first, quality=first.quality.with_warning(
                     f"{what}; their integrals along x and y {why}", doubtful=first.diagram.ok and not transport))

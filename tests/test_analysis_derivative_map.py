@@ -109,6 +109,29 @@ def test_a_family_along_the_sum_is_taken_for_the_summed_noises_streaks():
                or "looks like the summed noise's streaks" in w for w in j["quality"]["warnings"])
 
 
+def _fit(ok, m12=0.3, m21=0.2):
+    """A stand-in for a sum's diagram fit: only what the note reads (a lattice or not, and M)."""
+    from types import SimpleNamespace
+
+    return SimpleNamespace(ok=ok, vg_matrix=np.array([[1.0, m12], [m21, 1.0]]))
+
+
+def test_the_note_names_a_sum_whose_lattice_was_ranked_last_for_its_streaks():
+    # the branch the held-out seed 10 no longer reaches: the chosen sum (along y) has no lattice, the
+    # other (along x) has one whose dot2 family runs along the sum (M21 = 0.004 < STREAK_M)
+    from stabtool.analysis import STREAK_M, _sums_failed_reason
+
+    assert 0.004 < STREAK_M
+    why = _sums_failed_reason([_fit(True, m21=0.004), _fit(False)], ("x", "y"), lattice=False)
+    assert why == ("gave no charge lattice but one whose family along the sum (along x: M21 = 0.004) "
+                   "looks like the summed noise's streaks")
+    # a family clear of the sum's direction is no streak; a chosen sum with a lattice was doubtful
+    assert _sums_failed_reason([_fit(True, m21=0.2), _fit(False)], ("x", "y"), lattice=False) == "gave no charge lattice"
+    assert _sums_failed_reason([_fit(True, m12=-0.01), _fit(False)], ("y", "x"), lattice=False).endswith(
+        "(along y: M12 = -0.01) looks like the summed noise's streaks")
+    assert _sums_failed_reason([_fit(True, m21=0.004)], ("x",), lattice=True) == "was doubtful too"
+
+
 def _lockin_probe(seed):
     """The analysis of probe seed ``seed`` read through a lock-in on x: its warnings, M − truth and M's errors."""
     pm = probe_map(seed, lockin=True)
