@@ -81,3 +81,14 @@ def test_above_the_floor_the_relative_checks_are_unchanged():
     assert relative_slope_error(-2.2, 0.022) == pytest.approx(0.01)  # 1/s: error 0.022/2.2²
     assert relative_slope_error(-0.02, 0.0005) == pytest.approx(0.005)  # 0.0005 / 0.1
     assert relative_slope_error(np.inf, 0.0) == 0.0
+
+
+def test_a_bend_note_near_an_axis_compares_the_virtual_gate_elements():
+    # a family along the y axis: slopes 1169 and 1114 are 4.8 % apart, but M12 = −1/slope moves by
+    # 4e-5 (the bounds on M are absolute); the note prints the two elements there, percentages above
+    from stabtool.lines.detector import _slopes_apart
+
+    assert _slopes_apart(1169.0, 1114.0, "dot1") == "M12 -0.000855 against -0.000898"
+    assert _slopes_apart(-0.0016, 0.0012, "dot2") == "M21 0.0016 against -0.0012"
+    assert _slopes_apart(-9.634, -3.873, "dot1") == "59.8 % apart"
+    assert _slopes_apart(-0.45, -0.5, "dot2") == "11.1 % apart"

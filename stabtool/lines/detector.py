@@ -13,17 +13,25 @@ from ..preprocess._checks import check_map
 from ..preprocess.background import _row_offsets_core
 from ..preprocess.noise import MAX_NOISE_SAMPLES, _noise_core
 from ..quality import Quality
+from ._family import family_fit
 from ._geometry import steps
 from ._merge import drop_duplicates, merge_collinear
-from .edges import (CONTRAST_FLOOR, DEFAULT_HIGH_SIGMAS, DEFAULT_LOW_SIGMAS, FAINT_RATIO, EdgeScale, _edge_core, _select_scale,
-                    dot_line_bins)
-from ._family import family_fit
+from .edges import (
+    CONTRAST_FLOOR,
+    DEFAULT_HIGH_SIGMAS,
+    DEFAULT_LOW_SIGMAS,
+    FAINT_RATIO,
+    EdgeScale,
+    _edge_core,
+    _select_scale,
+    dot_line_bins,
+)
 from .families import classify_lines, pixel_angle_deg
 from .hough import _segments_core, _segments_to_lines
 from .jumps import _jumps_core
 from .refine import RefinedLine, refine_segments
 from .result import ChargeJump, LineDetection, LineFamily, TransitionLine
-from .verdict import assess_quality, family_slope
+from .verdict import MIN_SLOPE_SCALE, _crosstalk_term, assess_quality, family_slope
 
 __all__ = ["LineDetector", "detect_lines"]
 
@@ -135,6 +143,21 @@ def _select_edges(work: np.ndarray, noise: float, cfg: LineDetector,
                                  low=cfg.low_sigmas, high=cfg.high_sigmas, faint_bins=faint_bins,
                                  contrast_floor=cfg.contrast_floor)
     return edges, scale
+
+
+def _slopes_apart(straight: float, bent: float, family: str) -> str:
+    """How far two slopes of a family lie apart: relative, or in the virtual-gate element near an axis.
+
+    On a map swept along virtual gates the lines run along the axes, where a relative difference
+    of slopes means nothing (1169 against 1114 is M12 −0.00086 against −0.00090); the element
+    itself is printed there, as the slope-error check does (``verdict.MIN_SLOPE_SCALE``).
+    """
+    v_straight, _ = _crosstalk_term(straight, 0.0)
+    v_bent, _ = _crosstalk_term(bent, 0.0)
+    if max(abs(v_straight), abs(v_bent)) >= MIN_SLOPE_SCALE:
+        return f"{100 * abs(bent / straight - 1):.1f} % apart"
+    element = "M12" if family == "dot1" else "M21"
+    return f"{element} {-v_straight:.3g} against {-v_bent:.3g}"
 
 
 def _rescue_broad(refined, segs, work, axes, names, along, edges, width_px: float, cfg: LineDetector):
@@ -360,11 +383,10 @@ def _detect_core(values: np.ndarray, axes, cfg: LineDetector) -> LineDetection:
         fits[fam] = family_fit(mem, oth, axes, steep=fam == "dot1")
         f = fits[fam]
         if f is not None and f.bend_used:
-            shift = abs(f.slope / f.straight_slope - 1)
             quality = quality.with_warning(
                 f"{fam} lines bend towards the triple points (strong interdot tunnel coupling?): the "
                 f"straight-line slope {f.straight_slope:.4g} is biased; reporting {f.slope:.4g} from a fit "
-                f"with 1/distance bending terms ({100 * shift:.1f} % apart), itself uncertain")
+                f"with 1/distance bending terms ({_slopes_apart(f.straight_slope, f.slope, fam)}), itself uncertain")
     for fam in ("dot1", "dot2", "interdot"):
         members = [l for l, n in zip(lines, names2) if n == fam]  # (their family is already set)
         key = (lambda l: l.y0) if fam == "dot2" else (lambda l: l.x0)
