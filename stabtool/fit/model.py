@@ -29,6 +29,7 @@ from ..physics import cdg_from_diagram, mutual_shift_from_staircase
 from ..quality import Quality
 from .contrast import line_contrast, map_noise
 from .lattice import FamilySegments, LatticeFit, fit_lattice, merge_fragments
+from .midway import midway_steps
 from .relocate import SplitFamily, relocate_family, split_at_crossings
 from .uncertainty import error_verdict, numeric_jacobian, propagate
 
@@ -540,6 +541,8 @@ def _empty_fit(reason: str, slopes: dict, slope_errors: dict, lines1, lines2, in
     )
 
 
+#: Test the map for charge steps midway between a family's lines (fit.midway) before a cell is taken.
+MIDWAY_TEST = True
 #: Per-line position error floor (pixels, in quadrature) of the lattice fit.
 #: The line refinement already carries 1/√12 px per crossing of a sharp step,
 #: and along a tilted line the sub-pixel phase sweeps, so the former 0.1 px
@@ -721,6 +724,11 @@ def _fit_once(
     seg1, seg2 = merged
     lat = fit_lattice(seg1, seg2, interdot_extent=inter_ext, err_floor_V=err_floor_px * px)
     misfit = _lattice_misfit(lat) if lat else None
+    if lat and not misfit and data is not None and MIDWAY_TEST:
+        # every other transition missed: the lattice is twice the true cell (see fit.midway)
+        missed = [t for t in midway_steps(z, xa, ya, lat, m, ([lines1[i] for i in used1], [lines2[i] for i in used2]),
+                                          noise=noise_map) if t.missed]
+        misfit = missed[0].note() if missed else misfit
     if not lat or misfit:
         # no cell, but the slopes fix the virtual gates: M is reported with the slopes' errors (the
         # fit stays doubtful) when the detection is sound and the lines were re-measured on the map
