@@ -159,24 +159,29 @@ def test_split_ignores_parallel_other_lines():
     assert sp.lines == (d1,)
 
 
-def _wandering_lines_image(rng, *, wander_px, n_lines=6, ny=120, nx=200, slope_inv=0.25):
-    """Parallel dot1 steps x = x_k + slope_inv·y whose positions wander slowly (a random walk along y,
-    as slow charge noise moves a line), with white noise of 0.1 step: image, axes, lines, true dx/dy."""
-    g = np.random.default_rng(rng)
+def _shifted_lines_image(g, shifts_px, *, nx=200, slope_inv=0.25):
+    """Parallel dot1 steps x = x_k + slope_inv·y, line k moved by ``shifts_px[k]`` (pixels, one per row),
+    with white noise of 0.1 step drawn from ``g``: image, axes, lines, true dx/dy."""
+    n_lines, ny = shifts_px.shape
     x, y = np.arange(nx) * 1e-3, np.arange(ny) * 1e-3
     z = np.zeros((ny, nx))
     lines = []
+    ym = float(y.mean())
     for k in range(n_lines):
         xk = (15 + 30 * k) * 1e-3
-        walk = np.cumsum(g.normal(0, wander_px, ny)) * 1e-3
-        walk -= walk.mean()
-        xb = xk + slope_inv * (y - y.mean()) + walk
-        z += (x[None, :] > xb[:, None])
-        ym = float(y.mean())
+        z += x[None, :] > (xk + slope_inv * (y - ym) + shifts_px[k] * 1e-3)[:, None]
         lines.append(_line("dot1", xk, ym, 1 / slope_inv, (xk + slope_inv * (y[0] - ym), y[0]),
                            (xk + slope_inv * (y[-1] - ym), y[-1])))
     z += 0.1 * g.normal(size=z.shape)
     return z, x, y, lines, slope_inv
+
+
+def _wandering_lines_image(rng, *, wander_px, n_lines=6, ny=120):
+    """Lines whose positions wander slowly, each on its own (a random walk along y, as slow charge
+    noise moves a line)."""
+    g = np.random.default_rng(rng)
+    walks = np.array([np.cumsum(g.normal(0, wander_px, ny)) for _ in range(n_lines)])
+    return _shifted_lines_image(g, walks - walks.mean(axis=1, keepdims=True))
 
 
 def test_relocated_slope_error_covers_slow_wander_of_the_lines():
@@ -196,27 +201,16 @@ def test_relocated_slope_error_covers_slow_wander_of_the_lines():
     assert np.sqrt(np.mean(np.square(naive))) > 1.8
 
 
-def _lines_moving_together_image(rng, *, shift_px=0.3, memory=0.5, n_lines=6, ny=120, nx=200, slope_inv=0.25):
-    """Parallel dot1 steps that all move by the same amount in each row (a dot's offset charge in
-    measurement time: an AR(1) sequence over the rows with correlation ``memory`` and rms
-    ``shift_px``), white noise of 0.1 step: image, axes, lines, true dx/dy."""
+def _lines_moving_together_image(rng, *, shift_px=0.3, memory=0.5, n_lines=6, ny=120):
+    """Lines that all move by the same amount in each row (a dot's offset charge in measurement time:
+    an AR(1) sequence over the rows with correlation ``memory`` and rms ``shift_px``)."""
     g = np.random.default_rng(rng)
-    x, y = np.arange(nx) * 1e-3, np.arange(ny) * 1e-3
     shift = np.empty(ny)
     shift[0] = g.normal(0, shift_px)
     kicks = g.normal(0, shift_px * np.sqrt(1 - memory**2), ny)
     for k in range(1, ny):
         shift[k] = memory * shift[k - 1] + kicks[k]
-    z = np.zeros((ny, nx))
-    lines = []
-    ym = float(y.mean())
-    for k in range(n_lines):
-        xk = (15 + 30 * k) * 1e-3
-        z += x[None, :] > (xk + slope_inv * (y - ym) + shift * 1e-3)[:, None]
-        lines.append(_line("dot1", xk, ym, 1 / slope_inv, (xk + slope_inv * (y[0] - ym), y[0]),
-                           (xk + slope_inv * (y[-1] - ym), y[-1])))
-    z += 0.1 * g.normal(size=z.shape)
-    return z, x, y, lines, slope_inv
+    return _shifted_lines_image(g, np.tile(shift, (n_lines, 1)))
 
 
 def test_relocated_slope_error_covers_lines_that_move_together_row_by_row():
