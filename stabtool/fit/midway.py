@@ -29,12 +29,12 @@ MIDWAY_STEP_FRACTION = 0.5
 MIN_MIDWAY_PLACES = 2
 #: Each midway line keeps this fraction of its band's extent (centred: clear of the triple points).
 MIDWAY_EXTENT = 0.6
-#: The signal is sampled this many pixels on each side of a line (``line_contrast``'s offset), and
-#: a test needs half the lines' spacing along the scan axis to be at least this many offsets (so
-#: that a midway sample never reaches the next line).
+#: The signal is sampled this many pixels on each side of a cut (``line_contrast``'s offset), and
+#: a test needs a quarter of the lines' spacing along the scan axis (the cuts lie a quarter, half
+#: and three quarters of the way) to be at least this many offsets, so that no sample reaches a line.
 MIDWAY_OFFSET_PX = 2.0
 MIN_SPACING_OFFSETS = 4.0
-#: …and half a spacing must also hold an offset and this many Fermi widths of the lines (their
+#: …and a quarter spacing must also hold an offset and this many Fermi widths of the lines (their
 #: occupation is within 1/(1 + e⁴) ≈ 2 % of its plateau there).
 MIDWAY_CLEAR_WIDTHS = 4.0
 
