@@ -34,9 +34,13 @@ MIDWAY_EXTENT = 0.6
 #: and three quarters of the way) to be at least this many offsets, so that no sample reaches a line.
 MIDWAY_OFFSET_PX = 2.0
 MIN_SPACING_OFFSETS = 4.0
-#: …and a quarter spacing must also hold an offset and this many Fermi widths of the lines (their
-#: occupation is within 1/(1 + e⁴) ≈ 2 % of its plateau there).
+#: …and a quarter spacing must also hold twice the offset (the second sampling) and this many Fermi
+#: widths of the lines (their occupation is within 1/(1 + e⁴) ≈ 2 % of its plateau there).
 MIDWAY_CLEAR_WIDTHS = 4.0
+#: The excess step sampled at twice the offset over the one at the offset: a step keeps it near 1
+#: (up to ≈ 1.7 for a Fermi width of 2 px); the flank of a sensor peak between the lines does not
+#: (probe comb sensor seed 604: medians 8.1, −4.8 and −0.8; missed generator lines 0.98–1.04).
+PERSISTENCE_RANGE = (0.6, 2.5)
 
 
 @dataclass(frozen=True)
@@ -55,7 +59,10 @@ class MidwaySteps:
     z : float
         Median significance of the excess steps (standard errors).
     missed : bool
-        Whether the midway steps look like transitions (``MIDWAY_STEP_FRACTION``, ``MIN_STEP_SIGMAS``).
+        Whether the midway steps look like transitions (``MIDWAY_STEP_FRACTION``, ``MIN_STEP_SIGMAS``,
+        ``PERSISTENCE_RANGE``).
+    persistence : float
+        Median ratio of the excess step sampled at twice the offset to the one at the offset.
     """
 
     family: str
@@ -63,6 +70,7 @@ class MidwaySteps:
     step_ratio: float
     z: float
     missed: bool
+    persistence: float = float("nan")
 
     def note(self) -> str:
         """The doubt, naming the addition voltage that is likely twice its true size."""
@@ -142,7 +150,8 @@ def midway_steps(z: np.ndarray, x: np.ndarray, y: np.ndarray, lat: Any, m: np.nd
     own means the lines used are every other transition. The sensor's smooth background changes
     the signal across any cut; the cuts a quarter and three quarters of the way measure that, and
     only the excess halfway counts (held-out probe, a sensor that barely sees dot2: 71 % of a dot2
-    step across the halfway cut, 1–3 % beyond the quarters).
+    step across the halfway cut, 1–3 % beyond the quarters). A step keeps its excess when sampled
+    twice as far out; the flank of a sensor's own peak running between the lines does not.
     """
     out = []
     step_x = abs(float(np.median(np.diff(x))))
@@ -158,7 +167,7 @@ def midway_steps(z: np.ndarray, x: np.ndarray, y: np.ndarray, lat: Any, m: np.nd
         # Fermi widths
         widths = np.array([ln.width_V for ln in fam_lines], float) / (step_x if which == 0 else step_y)
         w_px = float(np.median(widths[np.isfinite(widths)])) if np.isfinite(widths).any() else 0.0
-        if 0.25 * spacing_px < max(MIN_SPACING_OFFSETS * MIDWAY_OFFSET_PX, MIDWAY_OFFSET_PX + MIDWAY_CLEAR_WIDTHS * w_px):
+        if 0.25 * spacing_px < max(MIN_SPACING_OFFSETS * MIDWAY_OFFSET_PX, 2 * MIDWAY_OFFSET_PX + MIDWAY_CLEAR_WIDTHS * w_px):
             continue
         cuts = [_midway_lines(lat, m, which, fam_lines[0], f) for f in (0.25, 0.5, 0.75)]
         if len(cuts[1]) < MIN_MIDWAY_PLACES:
@@ -176,6 +185,14 @@ def midway_steps(z: np.ndarray, x: np.ndarray, y: np.ndarray, lat: Any, m: np.nd
             continue
         ratio = float(np.median(np.abs(excess[fin]))) / ref
         zm = float(np.median(np.abs(excess[fin]) / se[fin]))
+        # a step keeps its size when sampled twice as far out; the flank of a narrow peak there
+        # (a sensor peak running between the lines) does not
+        wide = [line_contrast(z, x, y, c, which=which, noise=noise, offset_px=2 * MIDWAY_OFFSET_PX) for c in cuts]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            kept = (wide[1].step - 0.5 * (wide[0].step + wide[2].step))[fin] / excess[fin]
+        kept_med = float(np.median(kept)) if np.isfinite(kept).all() else float("nan")
+        step_like = PERSISTENCE_RANGE[0] <= kept_med <= PERSISTENCE_RANGE[1]
         out.append(MidwaySteps(name, int(fin.sum()), ratio, zm,
-                               bool(ratio >= MIDWAY_STEP_FRACTION and zm >= MIN_STEP_SIGMAS)))
+                               bool(ratio >= MIDWAY_STEP_FRACTION and zm >= MIN_STEP_SIGMAS and step_like),
+                               kept_med))
     return out
