@@ -28,6 +28,7 @@ import xarray as xr
 
 from .errors import InputError, PartialSweepWarning, QualityWarning
 from .fit.charge_states import MIN_ABSOLUTE_CONFIDENCE, ChargeStates, label_charge_states
+from .fit.lattice import transition_line
 from .fit.model import (
     MAX_VG_ERROR,
     VG_FROM_SLOPES_NOTE,
@@ -492,7 +493,8 @@ class AnalysisResult:
         pairs, inside = [], []
         for n1 in range(int(lo[0]), int(hi[0]) + 1):
             for n2 in range(int(lo[1]), int(hi[1]) + 1):
-                a = np.array([dv[0] * (n1 - 0.5) + dm[0] * n2 + c[0], dv[1] * (n2 + 0.5) + dm[1] * (n1 - 1) + c[1]])
+                u, _, v_hi = transition_line(0, n1, n2, dv, dm, c)  # the upper end of the dot1 line: a triple point
+                a = np.array([u, v_hi])
                 ends = np.array([minv @ a, minv @ (a + dm)])
                 ok = ((x.min() <= ends[:, 0]) & (ends[:, 0] <= x.max()) & (y.min() <= ends[:, 1])
                       & (ends[:, 1] <= y.max()))

@@ -35,12 +35,13 @@ doi:10.1103/RevModPhys.75.1 (the honeycomb of the constant-interaction model).
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
 from .relocate import median
 
-__all__ = ["FamilySegments", "LatticeFit", "fit_lattice", "merge_fragments"]
+__all__ = ["FamilySegments", "LatticeFit", "fit_lattice", "merge_fragments", "transition_line"]
 
 
 @dataclass(frozen=True)
@@ -263,6 +264,27 @@ LONG_SEGMENT_BANDS = 1.3
 LONG_SEGMENT_GAIN = 0.5
 
 
+def transition_line(which: int, n1: Any, n2: Any, dv: Any, dm: Any, c: Any) -> tuple[Any, Any, Any]:
+    """Position and extent, in virtual coordinates (V), of the transition line labelled ``(N1, N2)``.
+
+    The cell equations (module docstring): a dot1 line (``which`` 0) lies at
+    ``V'_1 = ΔV1 (N1 − ½) + δ1 N2 + c1`` and runs along ``V'_2`` from
+    ``ΔV2 (N2 − ½) + δ2 N1 + c2`` to ``ΔV2 (N2 + ½) + δ2 (N1 − 1) + c2``, its
+    triple points; a dot2 line (``which`` 1) likewise with the roles of the
+    dots exchanged. ``dv = (ΔV1, ΔV2)``, ``dm = (δ1, δ2)``, ``c = (c1, c2)``;
+    the labels may be arrays (elementwise). Returns ``(position, lo, hi)``.
+    """
+    if which == 0:
+        pos = dv[0] * (n1 - 0.5) + dm[0] * n2 + c[0]
+        lo = dv[1] * (n2 - 0.5) + dm[1] * n1 + c[1]
+        hi = dv[1] * (n2 + 0.5) + dm[1] * (n1 - 1) + c[1]
+    else:
+        pos = dv[1] * (n2 - 0.5) + dm[1] * n1 + c[1]
+        lo = dv[0] * (n1 - 0.5) + dm[0] * n2 + c[0]
+        hi = dv[0] * (n1 + 0.5) + dm[0] * (n2 - 1) + c[0]
+    return pos, lo, hi
+
+
 def _label(fam: FamilySegments, which: int, dv: np.ndarray, dm: np.ndarray, c: np.ndarray, *,
            long_by_end: bool = False) -> np.ndarray:
     """Best integer (N1, N2) for every segment of a family given the cell.
@@ -292,16 +314,8 @@ def _label(fam: FamilySegments, which: int, dv: np.ndarray, dm: np.ndarray, c: n
     cand = (_NEIGHBOURS_DOT1 if which == 0 else _NEIGHBOURS_DOT2) if long_by_end else _NEIGHBOURS
     n1 = n0[:, 0, None] + cand[None, :, 0]
     n2 = n0[:, 1, None] + cand[None, :, 1]
-    if which == 0:
-        pred = dv[0] * (n1 - 0.5) + dm[0] * n2 + c[0]
-        blo = dv[1] * (n2 - 0.5) + dm[1] * n1 + c[1]
-        bhi = dv[1] * (n2 + 0.5) + dm[1] * (n1 - 1) + c[1]
-        scale_p, scale_o = dv[0], dv[1]
-    else:
-        pred = dv[1] * (n2 - 0.5) + dm[1] * n1 + c[1]
-        blo = dv[0] * (n1 - 0.5) + dm[0] * n2 + c[0]
-        bhi = dv[0] * (n1 + 0.5) + dm[0] * (n2 - 1) + c[0]
-        scale_p, scale_o = dv[1], dv[0]
+    pred, blo, bhi = transition_line(which, n1, n2, dv, dm, c)
+    scale_p, scale_o = (dv[0], dv[1]) if which == 0 else (dv[1], dv[0])
     outside = np.maximum(blo - fam.lo[:, None], 0.0) + np.maximum(fam.hi[:, None] - bhi, 0.0)
     # such a long segment may be closed by a line of the other family at one end only: that end, not
     # the centre, then marks its band (held-out maps reaching the empty corner: the band-centred label

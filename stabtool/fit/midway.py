@@ -19,6 +19,7 @@ import numpy as np
 
 from ..lines.result import TransitionLine
 from .contrast import MIN_STEP_SIGMAS, line_contrast
+from .lattice import transition_line
 
 __all__ = ["MidwaySteps", "midway_steps"]
 
@@ -100,14 +101,10 @@ def _midway_lines(lat: Any, m: np.ndarray, which: int, template: TransitionLine,
         nxt = (n1 + 1, n2) if which == 0 else (n1, n2 + 1)
         if nxt not in have:
             continue
-        if which == 0:
-            pos = dv[0] * (n1 - 0.5 + fraction) + dm[0] * n2 + c[0]  # (the line of n1 lies at fraction 0)
-            lo = dv[1] * (n2 - 0.5) + dm[1] * (n1 + 0.5) + c[1]
-            hi = dv[1] * (n2 + 0.5) + dm[1] * (n1 - 0.5) + c[1]
-        else:
-            pos = dv[1] * (n2 - 0.5 + fraction) + dm[1] * n1 + c[1]
-            lo = dv[0] * (n1 - 0.5) + dm[0] * (n2 + 0.5) + c[0]
-            hi = dv[0] * (n1 + 0.5) + dm[0] * (n2 - 0.5) + c[0]
+        p0, lo0, hi0 = transition_line(which, n1, n2, dv, dm, c)
+        p1, lo1, hi1 = transition_line(which, *nxt, dv, dm, c)
+        pos = p0 + fraction * (p1 - p0)
+        lo, hi = 0.5 * (lo0 + lo1), 0.5 * (hi0 + hi1)
         mid, half = 0.5 * (lo + hi), 0.5 * MIDWAY_EXTENT * abs(hi - lo)
         ends = np.array([mid - half, mid + half])
         u, v = (np.full(2, pos), ends) if which == 0 else (ends, np.full(2, pos))

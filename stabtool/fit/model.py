@@ -28,7 +28,7 @@ from ..lines.result import LineDetection, LineFamily, TransitionLine
 from ..physics import cdg_from_diagram, mutual_shift_from_staircase
 from ..quality import Quality
 from .contrast import line_contrast, map_noise
-from .lattice import FamilySegments, LatticeFit, fit_lattice, merge_fragments
+from .lattice import FamilySegments, LatticeFit, fit_lattice, merge_fragments, transition_line
 from .midway import midway_steps
 from .relocate import SplitFamily, relocate_family, split_at_crossings
 from .uncertainty import error_verdict, numeric_jacobian, propagate
@@ -880,12 +880,8 @@ def predicted_lines(fit: DiagramFit, axes: Any, *, min_fraction: float = 0.4) ->
     out: dict[str, list[TransitionLine]] = {"dot1": [], "dot2": []}
     for n1 in range(int(lo[0]), int(hi[0]) + 1):
         for n2 in range(int(lo[1]), int(hi[1]) + 1):
-            u = dv[0] * (n1 - 0.5) + dm[0] * n2 + c[0]
-            v_lo = dv[1] * (n2 - 0.5) + dm[1] * n1 + c[1]
-            v_hi = dv[1] * (n2 + 0.5) + dm[1] * (n1 - 1) + c[1]
-            v = dv[1] * (n2 - 0.5) + dm[1] * n1 + c[1]
-            u_lo = dv[0] * (n1 - 0.5) + dm[0] * n2 + c[0]
-            u_hi = dv[0] * (n1 + 0.5) + dm[0] * (n2 - 1) + c[0]
+            u, v_lo, v_hi = transition_line(0, n1, n2, dv, dm, c)
+            v, u_lo, u_hi = transition_line(1, n1, n2, dv, dm, c)
             for name, a, b in (("dot1", (u, v_lo), (u, v_hi)), ("dot2", (u_lo, v), (u_hi, v))):
                 pa, pb = minv @ np.asarray(a), minv @ np.asarray(b)
                 seg = _clip_segment(pa, pb, box)

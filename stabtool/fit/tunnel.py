@@ -43,6 +43,7 @@ from ..errors import InputError
 from ..physics.constants import KB_EV_PER_K
 from ..physics.polarisation import polarisation_fwhm_eV
 from ..quality import Quality
+from .lattice import transition_line
 from .model import DiagramFit
 from .polarisation import detuning_profile
 
@@ -118,7 +119,8 @@ def interdot_segments(fit: DiagramFit, x: np.ndarray, y: np.ndarray) -> np.ndarr
     segs = []
     for n1 in range(int(lo[0]), int(hi[0]) + 1):
         for n2 in range(int(lo[1]), int(hi[1]) + 1):
-            a = np.array([dv[0] * (n1 - 0.5) + dm[0] * n2 + c[0], dv[1] * (n2 + 0.5) + dm[1] * (n1 - 1) + c[1]])
+            u, _, v_hi = transition_line(0, n1, n2, dv, dm, c)  # the upper end of the dot1 line: a triple point
+            a = np.array([u, v_hi])
             pa, pb = minv @ a, minv @ (a + dm)
             if all(x.min() <= p[0] <= x.max() and y.min() <= p[1] <= y.max() for p in (pa, pb)):
                 segs.append((pa, pb))
