@@ -247,6 +247,70 @@ def test_lowest_band_segments_running_into_the_empty_region_keep_the_exact_cell(
     assert slipped.ok and slipped.mutual_V[1] < 0.85 * dm[1]
 
 
+@pytest.mark.parametrize("k", [2, 3, 4])
+def test_a_cell_a_whole_number_of_times_too_small_is_coarsened(k):
+    # A finer lattice that labels the dot1 lines 0, k, 2k, … explains their positions exactly but
+    # predicts k − 1 transitions between neighbouring lines (CI model, van der Wiel et al., RMP 75, 1
+    # (2003): one per added electron). Held-out probe, dense dots seed 29: dot1 labels 0, 4, …, 20 and
+    # ΔV1 0.25× the truth. The coarsest cell with the same positions is the true one.
+    from stabtool.fit.lattice import CONSISTENT_MISFIT, _lattice_from_steps, _misfit, coarsest_cell
+
+    dv, dm, c = np.array([6e-3, 7e-3]), np.array([0.3e-3, 0.4e-3]), np.array([1e-3, 2e-3])
+    d1, d2 = _honeycomb_segments(dv, dm, c)
+    opts = {"interdot_extent": None, "err_floor_V": 0.0, "n_iter": 3}
+    fine = _lattice_from_steps(d1, d2, np.array([dv[0] / k, dm[1] / k]), np.array([dv[1], dm[0]]), **opts)
+    # the premise: a consistent lattice of 1/k the cell, its dot1 labels one residue modulo k
+    assert fine.ok and _misfit(fine) <= CONSISTENT_MISFIT
+    assert fine.addition_V[0] == pytest.approx(dv[0] / k, rel=1e-6)
+    assert np.unique(fine.labels1[:, 0] % k).size == 1 and np.unique(np.diff(np.unique(fine.labels1[:, 0]))) == [k]
+    lat = coarsest_cell(fine, d1, d2, **opts)
+    np.testing.assert_allclose(lat.addition_V, dv, rtol=1e-9)
+    np.testing.assert_allclose(lat.mutual_V, dm, rtol=1e-6)
+    assert lat.finer is fine
+    # the true cell's labels are consecutive: nothing coarser, and fit_lattice leaves it as it is
+    assert coarsest_cell(lat, d1, d2, **opts) is lat
+    assert fit_lattice(d1, d2).finer is None
+
+
+def test_two_lines_of_a_coarsened_cell_keep_their_labels(monkeypatch):
+    # Two dot1 lines only (held-out probe, dense dots seed 20: labels −1 and 1, ΔV1 0.5× the truth): the
+    # first runs on across two bands, the second is cut to the lower 60 % of its own. Labelled afresh
+    # from the coarse cell, the pair slips; their labels carried over (N1 → (N1 − r)/k) give the exact cell.
+    from stabtool.fit import lattice
+    from stabtool.fit.lattice import _lattice_from_steps, coarsest_cell
+
+    dv, dm, c = np.array([6e-3, 7e-3]), np.array([0.3e-3, 0.4e-3]), np.array([1e-3, 2e-3])
+    d1, d2 = _honeycomb_segments(dv, dm, c, n=3)  # index n1 * 3 + n2
+
+    def pick(f, idx):
+        return FamilySegments(pos=f.pos[idx], pos_err=f.pos_err[idx], lo=f.lo[idx], hi=f.hi[idx], lever=f.lever[idx])
+
+    d1, d2 = pick(d1, [0, 3]), pick(d2, [0, 1, 2, 4])
+    lo, hi = d1.lo - np.array([dv[1], 0.0]), d1.hi.copy()
+    hi[1] = lo[1] + 0.6 * (hi[1] - lo[1])
+    d1 = FamilySegments(pos=d1.pos, pos_err=d1.pos_err, lo=lo, hi=hi, lever=d1.lever)
+    opts = {"interdot_extent": None, "err_floor_V": 0.0, "n_iter": 3}
+    fine = _lattice_from_steps(d1, d2, np.array([dv[0] / 2, dm[1] / 2]), np.array([dv[1], dm[0]]), **opts)
+    assert fine.ok and fine.addition_V[0] == pytest.approx(dv[0] / 2, rel=1e-6)
+    np.testing.assert_allclose(coarsest_cell(fine, d1, d2, **opts).addition_V, dv, rtol=1e-9)
+    # the premise: without the carried labels the finer cell stays
+    monkeypatch.setattr(lattice, "_coarse_labels", lambda lat, k: None)
+    assert coarsest_cell(fine, d1, d2, **opts) is fine
+
+
+@pytest.mark.regression
+def test_a_small_map_with_the_empty_corner_takes_the_coarsest_cell():
+    # held-out probe, maps of 60–110 px reaching the empty corner (--start-e=-3:-2.2), seed 620 (87 × 93 px,
+    # Gaussian sensor): a pass labelled the dot1 lines of one residue modulo 2, and its ΔV1 was 0.49×
+    # the truth (Cdg11 107 % off, stated to 1.2 %). The coarsest cell of those labels is the true one.
+    from _probe import analysed, make_map
+
+    pm = make_map(620, size=(60, 110), start_e=(-3.0, -2.2))
+    j = analysed(pm).to_json()
+    for dot in ("dot1", "dot2"):
+        assert j["addition_voltages_V"][dot] == pytest.approx(pm.truth["addition_voltages_V"][dot], rel=0.05)
+
+
 def test_a_band_step_of_zero_fails_with_a_reason_instead_of_raising():
     # held-out probe seed 135 (rf sensor, SNR 8): the dot1 band step came out 0 and inverting the
     # cell [[ΔV1, δ1], [δ2, ΔV2]] raised LinAlgError out of the whole analysis

@@ -102,3 +102,32 @@ def test_a_sensor_peak_running_between_the_lines_is_no_missed_line():
     assert not any(MIDWAY_NOTE in w for w in j["quality"]["warnings"])
     for name in ("dot1", "dot2"):
         assert j["addition_voltages_V"][name] == pytest.approx(pm.truth["addition_voltages_V"][name], rel=0.02)
+
+
+def test_a_coarsened_cell_goes_back_to_the_finer_one_where_the_map_steps_between(monkeypatch):
+    # fit.lattice.coarsest_cell replaces a cell whose dot1 labels all share a residue modulo k by the
+    # k-times larger cell, keeping the first as ``finer``. Here every other dot1 line is dropped from a
+    # correct detection, and the lattice fit is given the half cell of the same segments as that finer
+    # one: the map steps where it predicts the dropped lines, so the finer cell is taken
+    from stabtool.fit.lattice import _lattice_from_steps
+
+    sm, det, full = _map_and_fit("si-mos-double", 0)
+    truth = sm.truth.to_json()["addition_voltages_V"]["dot1"]
+    half = _every_other_line(det, full, "dot1")
+    real = fm.fit_lattice
+
+    def with_finer(seg1, seg2, **kw):
+        coarse = real(seg1, seg2, **kw)
+        dv, dm = coarse.addition_V, coarse.mutual_V
+        fine = _lattice_from_steps(seg1, seg2, np.array([dv[0] / 2, dm[1] / 2]), np.array([dv[1], dm[0]]),
+                                   interdot_extent=kw["interdot_extent"], err_floor_V=kw["err_floor_V"], n_iter=3)
+        assert fine.ok and fine.addition_V[0] == pytest.approx(truth, rel=0.02)
+        return replace(coarse, finer=fine)
+
+    monkeypatch.setattr(fm, "fit_lattice", with_finer)
+    got = fm._fit_once(half, data=sm.data)
+    assert got.ok and got.addition_V[0] == pytest.approx(truth, rel=0.02)
+    assert not any(MIDWAY_NOTE in w for w in got.quality.warnings)
+    # without the finer cell the same lines give no cell (the drop test above)
+    monkeypatch.setattr(fm, "fit_lattice", real)
+    assert not fm._fit_once(half, data=sm.data).ok

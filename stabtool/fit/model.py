@@ -726,8 +726,17 @@ def _fit_once(
     misfit = _lattice_misfit(lat) if lat else None
     if lat and not misfit and data is not None and MIDWAY_TEST:
         # every other transition missed: the lattice is twice the true cell (see fit.midway)
-        missed = [t for t in midway_steps(z, xa, ya, lat, m, ([lines1[i] for i in used1], [lines2[i] for i in used2]),
-                                          noise=noise_map) if t.missed]
+        dot_lines = ([lines1[i] for i in used1], [lines2[i] for i in used2])
+
+        def missed_by(cell: LatticeFit) -> list:
+            steps = midway_steps(z, xa, ya, cell, m, dot_lines, noise=noise_map)
+            return [t for t in steps if t.missed]
+
+        missed = missed_by(lat)
+        if missed and lat.finer is not None and not _lattice_misfit(lat.finer) and not missed_by(lat.finer):
+            # the map shows the transitions between that the coarser cell left out: the finer cell
+            # it replaced (fit.lattice.coarsest_cell) predicts them
+            lat, missed = lat.finer, []
         misfit = missed[0].note() if missed else misfit
     if not lat or misfit:
         # no cell, but the slopes fix the virtual gates: M is reported with the slopes' errors (the
