@@ -36,7 +36,8 @@ def _vg_error(j, truth):
 
 
 @pytest.mark.regression
-@pytest.mark.parametrize("preset,seed", [("gaas-double", 1), ("ge-double", 1), ("si-mos-double", 2)])
+@pytest.mark.parametrize("preset,seed", [("gaas-double", 1), ("ge-double", 1),
+                                         pytest.param("si-mos-double", 2, marks=pytest.mark.slow)])  # about 8 s
 def test_a_noiseless_lockin_map_gives_the_virtual_gates(preset, seed):
     # before: no charge lattice on these maps (the step analysis found each peak's two flanks)
     sm = quick_double_dot(preset, snr=None, rng=seed)
@@ -154,7 +155,7 @@ def test_the_family_measured_along_the_sum_states_the_summed_noises_walk(seed):
 
 
 @pytest.mark.regression
-@pytest.mark.parametrize("seed", [23, 63])
+@pytest.mark.parametrize("seed", [pytest.param(23, marks=pytest.mark.slow), 63])  # seed 23: about 14 s
 def test_the_family_along_the_sum_takes_its_slope_from_the_sum_across_it(seed):
     # the same x-derivative summed along y: each column's cut runs along that sum, so the dot2 crossings
     # are independent. Seed 23 (SNR 60): M21 0.0085 off at a stated 0.0020 before (4.3σ), 0.0013 off at
