@@ -563,8 +563,10 @@ def coarsest_cell(lat: LatticeFit, dot1: FamilySegments, dot2: FamilySegments, *
     carried over, :func:`_coarse_labels`) and returned, with ``lat`` as its
     ``finer``, when it is larger along each multiplied axis
     (:data:`COARSER_FACTOR`) and explains the lines as well: a misfit
-    (:func:`_misfit`) within :data:`CONSISTENT_MISFIT` or ``lat``'s own.
-    Otherwise ``lat`` is returned unchanged.
+    (:func:`_misfit`) within :data:`CONSISTENT_MISFIT`. Otherwise, and when
+    ``lat`` itself does not explain the lines (the misfit is in units of ΔV,
+    so a coarser cell would look better by that alone), ``lat`` is returned
+    unchanged.
 
     Whether the transitions between are really missing is the map's to say
     (every other line missed by the detector gives the same labels: see
@@ -580,7 +582,7 @@ def coarsest_cell(lat: LatticeFit, dot1: FamilySegments, dot2: FamilySegments, *
     0, 4, …, 20 with ΔV1 0.25× the truth, Cdg 300 % off at a stated
     0.8 %; ordinary seed 31 had dot1 labels −7, −1, 5 and ΔV1 0.17×.
     """
-    if not lat:
+    if not lat or _misfit(lat) > CONSISTENT_MISFIT:
         return lat
     k = np.array([_label_period(lat.labels1[:, 0]), _label_period(lat.labels2[:, 1])])
     if np.all(k == 1):
@@ -599,7 +601,7 @@ def coarsest_cell(lat: LatticeFit, dot1: FamilySegments, dot2: FamilySegments, *
                                     * lat.addition_V)
         if coarser and (best is None or _misfit(alt) < _misfit(best)):
             best = alt
-    if best is None or _misfit(best) > max(CONSISTENT_MISFIT, _misfit(lat)):
+    if best is None or _misfit(best) > CONSISTENT_MISFIT:
         return lat
     return replace(best, finer=lat)
 
