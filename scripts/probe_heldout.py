@@ -583,6 +583,11 @@ def main(argv: list[str] | None = None) -> int:
 
     warnings.simplefilter("ignore")
     from stabtool.analysis import Analyzer
+    from stabtool.cli.main import _single_threaded_blas
+
+    # one BLAS thread, as `stabtool analyze` runs: the model fit's small matrices gain nothing from
+    # threads, and on a busy 2-core machine the threads' waiting took a dense map from 17 s to 70 s
+    _single_threaded_blas()
 
     lo, hi = (int(v) for v in a.size.split(":"))
     sensors = tuple(s for s in a.sensors.split(",") if s)
