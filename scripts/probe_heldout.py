@@ -66,6 +66,8 @@ Usage::
     python scripts/probe_heldout.py --seeds 0:64 --response states   # the sensor averages over charge states
     python scripts/probe_heldout.py --seeds 0:64 --gates-exchanged   # x ↔ y: the slow axis on x, truth mirrored
     python scripts/probe_heldout.py --seeds 0:48 --virtual 0.05      # swept along virtual gates (lines along the axes)
+    python scripts/probe_heldout.py --seeds 0:64 --jsonl base.jsonl  # one JSON line per map; then, after a change,
+    python scripts/probe_compare.py base.jsonl new.jsonl             # the maps whose verdict or numbers changed
 
 The map factory :func:`make_map` and :func:`evaluate` are importable (for
 scratch experiments that patch the analysis).
@@ -74,6 +76,8 @@ scratch experiments that patch the analysis).
 from __future__ import annotations
 
 import argparse
+import contextlib
+import json
 import math
 import os
 import re
@@ -517,6 +521,26 @@ def blocker_census(blockers: list[list[str]]) -> list[tuple[str, tuple[int, int]
     return sorted(((k, (c[0], c[1])) for k, c in count.items()), key=lambda kv: -kv[1][0])
 
 
+#: Numbers of the analysis JSON copied into a --jsonl record beside their truth.
+RECORD_KEYS = ("virtual_gate_matrix", "gate_capacitance_aF", "addition_voltages_V", "mutual_shifts_V")
+
+
+def _plain(v: Any) -> Any:
+    """JSON form of NumPy scalars and arrays (NaN stays NaN, as Python's json writes it)."""
+    return v.tolist() if hasattr(v, "tolist") else str(v)
+
+
+def _record(ev: dict, j: dict, pm: ProbeMap) -> dict:
+    """One --jsonl line: the evaluation of a map, its warnings, and the main numbers with errors and truth."""
+    rec = {k: v for k, v in ev.items() if k not in ("pulls_m", "pulls_cdg")}
+    rec["warnings"] = list(j["quality"]["warnings"])
+    for k in RECORD_KEYS:
+        rec[k] = j.get(k)
+        rec[k + "_error"] = j.get(k + "_error")
+        rec["true_" + k] = pm.truth.get(k)
+    return rec
+
+
 def _parse_seeds(text: str) -> list[int]:
     out: list[int] = []
     for part in text.split(","):
@@ -579,6 +603,9 @@ def main(argv: list[str] | None = None) -> int:
                         "element off by up to ± this (e.g. 0.05; 0: lines along the axes)")
     p.add_argument("--out", default=None, help="folder for one PNG per map (the analysis plot)")
     p.add_argument("--verbose", action="store_true", help="print every warning of every map")
+    p.add_argument("--jsonl", default=None,
+                   help="also write one JSON line per map (errors, verdict, blockers, warnings, the matrices "
+                        "and their truth) to this file, for scripts/probe_compare.py")
     a = p.parse_args(argv)
 
     warnings.simplefilter("ignore")
@@ -603,50 +630,54 @@ def main(argv: list[str] | None = None) -> int:
     t_all = time.perf_counter()
     print(f"{'seed':>4} {'sensor':14} {'noise':26} {'snr':>4} {'shape':>9}  ok    vg      cdg     la      ec    "
           f"  t/s  first doubts (warnings that clear ok are marked '!')")
-    for s in _parse_seeds(a.seeds):
-        pm = make_map(s, size=(lo, hi), sensors=sensors, noise=noise, tunnel_coupling_ueV=a.tunnel_ueV,
-                      mutual_fraction=_range(a.mutual), start_e=_range(a.start_e), coupling_ratio=_range(a.coupling),
-                      lockin=a.lockin, response=a.response, electrons=_range(a.electrons),
-                      aspect=_range(a.aspect), temperature=_range(a.temperature), virtual=a.virtual)
-        if a.gates_exchanged:
-            pm = gates_exchanged(pm)
-        t0 = time.perf_counter()
-        try:
-            res = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data)
-            j = res.to_json()
-        except Exception as exc:  # a crash is an outcome of the probe, not an error of the script
-            res, j = None, {"quality": {"ok": False, "warnings": [f"CRASH {type(exc).__name__}: {exc}"]}}
-        dt = time.perf_counter() - t0
-        ev = evaluate(j, pm.truth, snr=pm.meta["snr"])
-        absolute = (j.get("charge_states") or {}).get("absolute") or {}
-        ev.update(pm.meta, time=dt, absolute=any(bool(v) for v in absolute.values()))
-        ev["crashed"] = res is None
-        ev["pulls_m"], ev["pulls_cdg"] = _pulls(j, pm.truth)
-        rows.append(ev)
-        ws = list(j["quality"]["warnings"])
-        ev["blockers"] = []
-        if res is not None:
-            # what blocks ok first (marked "!"), then the notes
-            first, flags = res.quality.doubts_first_flagged()
-            if flags is not None:
-                ws = [("! " if f else "") + w for w, f in zip(first, flags)]
-                ev["blockers"] = [w for w, f in zip(first, flags) if f]
-        doubt = ws if a.verbose else [w for w in ws if w.startswith("! ")][:2]
-        m = pm.meta
-        tag = " SILENT-FAIL(" + ",".join(ev["beyond"]) + ")" if ev["silent"] else ""
-        worst = [max(np.abs(ev[k]), default=np.nan) for k in ("pulls_m", "pulls_cdg")]
-        pulls = f"  [worst |pull| M {worst[0]:.1f}, Cdg {worst[1]:.1f}]" if np.isfinite(worst).any() else ""
-        if ev["wrong_labels"]:
-            tag += f" WRONG-ABSOLUTE-LABELS({ev['wrong_labels']} regions)"
-        print(f"{s:4d} {m['sensor']:14} {m['noise']:26} {m['snr']:4.0f} {m['shape'][0]:4d}x{m['shape'][1]:<4d} "
-              f"{'OK ' if ev['ok'] else 'no '} {_fmt(ev['vg'])} {_fmt(ev['cdg'])} {_fmt(ev['la'])} {_fmt(ev['ec'])} "
-              f"{dt:5.1f}{tag}  | " + ("\n      - ".join([""] + doubt) if a.verbose else "; ".join(w[:60] for w in doubt)) + pulls,
-              flush=True)
-        if a.out and res is not None:
+    with open(a.jsonl, "w", encoding="utf-8") if a.jsonl else contextlib.nullcontext() as jsonl:
+        for s in _parse_seeds(a.seeds):
+            pm = make_map(s, size=(lo, hi), sensors=sensors, noise=noise, tunnel_coupling_ueV=a.tunnel_ueV,
+                          mutual_fraction=_range(a.mutual), start_e=_range(a.start_e), coupling_ratio=_range(a.coupling),
+                          lockin=a.lockin, response=a.response, electrons=_range(a.electrons),
+                          aspect=_range(a.aspect), temperature=_range(a.temperature), virtual=a.virtual)
+            if a.gates_exchanged:
+                pm = gates_exchanged(pm)
+            t0 = time.perf_counter()
             try:
-                res.save_plot(os.path.join(a.out, f"probe_{s:03d}.png"))
-            except Exception as exc:
-                print(f"      (plot failed: {type(exc).__name__}: {exc})")
+                res = Analyzer(electron_temperature_K=pm.meta["T"])(pm.data)
+                j = res.to_json()
+            except Exception as exc:  # a crash is an outcome of the probe, not an error of the script
+                res, j = None, {"quality": {"ok": False, "warnings": [f"CRASH {type(exc).__name__}: {exc}"]}}
+            dt = time.perf_counter() - t0
+            ev = evaluate(j, pm.truth, snr=pm.meta["snr"])
+            absolute = (j.get("charge_states") or {}).get("absolute") or {}
+            ev.update(pm.meta, time=dt, absolute=any(bool(v) for v in absolute.values()))
+            ev["crashed"] = res is None
+            ev["pulls_m"], ev["pulls_cdg"] = _pulls(j, pm.truth)
+            rows.append(ev)
+            ws = list(j["quality"]["warnings"])
+            ev["blockers"] = []
+            if res is not None:
+                # what blocks ok first (marked "!"), then the notes
+                first, flags = res.quality.doubts_first_flagged()
+                if flags is not None:
+                    ws = [("! " if f else "") + w for w, f in zip(first, flags)]
+                    ev["blockers"] = [w for w, f in zip(first, flags) if f]
+            if jsonl is not None:
+                jsonl.write(json.dumps(_record(ev, j, pm), default=_plain) + "\n")
+                jsonl.flush()
+            doubt = ws if a.verbose else [w for w in ws if w.startswith("! ")][:2]
+            m = pm.meta
+            tag = " SILENT-FAIL(" + ",".join(ev["beyond"]) + ")" if ev["silent"] else ""
+            worst = [max(np.abs(ev[k]), default=np.nan) for k in ("pulls_m", "pulls_cdg")]
+            pulls = f"  [worst |pull| M {worst[0]:.1f}, Cdg {worst[1]:.1f}]" if np.isfinite(worst).any() else ""
+            if ev["wrong_labels"]:
+                tag += f" WRONG-ABSOLUTE-LABELS({ev['wrong_labels']} regions)"
+            print(f"{s:4d} {m['sensor']:14} {m['noise']:26} {m['snr']:4.0f} {m['shape'][0]:4d}x{m['shape'][1]:<4d} "
+                  f"{'OK ' if ev['ok'] else 'no '} {_fmt(ev['vg'])} {_fmt(ev['cdg'])} {_fmt(ev['la'])} {_fmt(ev['ec'])} "
+                  f"{dt:5.1f}{tag}  | " + ("\n      - ".join([""] + doubt) if a.verbose else "; ".join(w[:60] for w in doubt)) + pulls,
+                  flush=True)
+            if a.out and res is not None:
+                try:
+                    res.save_plot(os.path.join(a.out, f"probe_{s:03d}.png"))
+                except Exception as exc:
+                    print(f"      (plot failed: {type(exc).__name__}: {exc})")
     n = len(rows)
     if not n:
         return 0
