@@ -20,16 +20,13 @@ import json
 import math
 import sys
 
+from probe_heldout import within_bounds
+
 
 def load(path: str) -> dict[int, dict]:
     """The records of a --jsonl file by seed."""
     with open(path, encoding="utf-8") as fh:
         return {r["seed"]: r for r in map(json.loads, filter(str.strip, fh))}
-
-
-def within(r: dict) -> bool:
-    """Virtual gates and Cdg reported and every reported number within the fitter's bounds."""
-    return not r["beyond"] and all(isinstance(r.get(k), float) and math.isfinite(r[k]) for k in ("vg", "cdg"))
 
 
 def _same(a: float, b: float) -> bool:
@@ -44,7 +41,7 @@ def changed(a: dict, b: dict) -> bool:
 
 def counts(rows: list[dict]) -> tuple[int, int, int]:
     """Maps reported ok, silent failures (ok beyond a bound), maps within the bounds."""
-    return sum(r["ok"] for r in rows), sum(r["silent"] for r in rows), sum(within(r) for r in rows)
+    return sum(r["ok"] for r in rows), sum(r["silent"] for r in rows), sum(within_bounds(r) for r in rows)
 
 
 def compare(base: dict[int, dict], new: dict[int, dict]) -> list[str]:

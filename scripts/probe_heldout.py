@@ -459,6 +459,12 @@ def evaluate(result_json: dict, truth: dict, *, snr: float) -> dict:
                 wrong_labels=wrong_labels)
 
 
+def within_bounds(ev: dict) -> bool:
+    """Virtual gates and Cdg reported, and every reported number within the fitter's bounds (an :func:`evaluate`
+    result, or a --jsonl record of one)."""
+    return not ev["beyond"] and bool(np.isfinite(ev["vg"]) and np.isfinite(ev["cdg"]))
+
+
 def _wrong_absolute_labels(j: dict, t: dict) -> int:
     """Charge-state regions whose occupation, claimed absolute for a dot, is not the ground state there.
 
@@ -695,7 +701,7 @@ def main(argv: list[str] | None = None) -> int:
     for label, sub in (("all", rows), ("ok", [r for r in rows if r["ok"]])):
         print(f"median errors [{label}]: vg {med('vg', sub)}, cdg {med('cdg', sub)}, la {med('la', sub)}, "
               f"ec {med('ec', sub)}")
-    within = [r for r in rows if not r["beyond"] and np.isfinite(r["vg"]) and np.isfinite(r["cdg"])]
+    within = [r for r in rows if within_bounds(r)]
     print(f"maps whose reported vg and Cdg are within the bounds: {len(within)}/{n} "
           f"(of which ok: {sum(r['ok'] for r in within)})")
     census = blocker_census([r["blockers"] for r in within if not r["ok"]])
