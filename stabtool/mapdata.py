@@ -14,8 +14,9 @@ Conventions (shared by every module):
 from __future__ import annotations
 
 import warnings
+from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import Any, Mapping
+from typing import Any
 
 import numpy as np
 import xarray as xr
@@ -117,9 +118,9 @@ def make_map(
     """
     if x_gate == y_gate:
         raise InputError(source, f"x and y gates have the same name {x_gate!r}")
-    data = np.asarray(signal, dtype=np.float64)
-    xv = to_volts(x, x_units)
-    yv = to_volts(y, y_units)
+    data = require_real_numbers(signal, f"variable {name!r}", source)
+    xv = to_volts(require_real_numbers(x, f"axis {x_gate!r}", source), x_units)
+    yv = to_volts(require_real_numbers(y, f"axis {y_gate!r}", source), y_units)
     da = xr.DataArray(
         data,
         dims=(y_gate, x_gate),
@@ -133,6 +134,30 @@ def make_map(
     if source is not None:
         da.attrs["source"] = str(source)
     return da
+
+
+def require_real_numbers(values: Any, what: str, source: str | None) -> np.ndarray:
+    """``values`` as float64, or :class:`~stabtool.errors.InputError` when they are not real numbers.
+
+    Integers and booleans are read as numbers. Complex values (I + iQ) are refused rather than
+    silently losing their imaginary part (the file readers project an I/Q map onto its principal
+    axis before this), and so are text, dates and objects.
+    ``what`` names the array in the message (``"axis 'PA'"``, ``"variable 'sensor'"``).
+    """
+    arr = np.asarray(values)
+    kind = arr.dtype
+    if np.issubdtype(kind, np.integer) or np.issubdtype(kind, np.floating) or np.issubdtype(kind, np.bool_):
+        return arr.astype(np.float64)
+    if np.issubdtype(kind, np.complexfloating):
+        raise InputError(source, f"{what} holds complex values (I + iQ); take one real quantity first "
+                         "(stabtool.load projects an I/Q map onto its principal axis)")
+    if np.issubdtype(kind, np.str_) or np.issubdtype(kind, np.bytes_):
+        held = "text"
+    elif np.issubdtype(kind, np.datetime64) or np.issubdtype(kind, np.timedelta64):
+        held = "times or dates"
+    else:
+        held = f"values of type {kind}"
+    raise InputError(source, f"{what} holds {held}, not numbers")
 
 
 def _check_axis(values: np.ndarray, gate: str, source: str | None) -> None:
@@ -204,8 +229,9 @@ def validate_map(da: xr.DataArray, *, source: str | None = None) -> xr.DataArray
     for dim in da.dims:
         if dim not in da.coords:
             raise InputError(src, f"dimension {dim!r} has no voltage coordinate")
-        _check_axis(np.asarray(da[dim].values, dtype=np.float64), str(dim), src)
-    values = np.asarray(da.values, dtype=np.float64)
+        axis = require_real_numbers(da[dim].values, f"axis {dim!r}", src)
+        _check_axis(axis, str(dim), src)
+    values = require_real_numbers(da.values, f"variable {da.name!r}" if da.name is not None else "the map", src)
     finite = np.isfinite(values)
     if not finite.any():
         raise InputError(src, "the map holds no finite values (all NaN or infinite)")

@@ -13,6 +13,6 @@ from stabtool.cli.main import _single_threaded_blas
 
 _single_threaded_blas()
 
-import matplotlib  # noqa: E402
+import matplotlib
 
 matplotlib.use("Agg")

@@ -125,6 +125,24 @@ def saved_nc(p):
     return p / "v.nc"
 
 
+def text_variable(p):
+    xr.Dataset({"sensor": (("PB", "PA"), np.array([["a", "b"], ["c", "d"]]))},
+               coords={"PA": [0.0, 1.0], "PB": [0.0, 1.0]}).to_netcdf(p / "s.nc", engine="h5netcdf")
+    return p / "s.nc"
+
+
+def text_coordinate(p):
+    xr.Dataset({"sensor": (("PB", "PA"), [[1.0, 2.0], [3.0, 4.0]])},
+               coords={"PA": ["left", "right"], "PB": [0.0, 1.0]}).to_netcdf(p / "sc.nc", engine="h5netcdf")
+    return p / "sc.nc"
+
+
+def dates_as_gate_array(p):
+    np.savez(p / "dt.npz", signal=np.arange(12.0).reshape(3, 4), x=np.arange(4).astype("datetime64[s]"),
+             y=np.linspace(0.0, 0.01, 3))
+    return p / "dt.npz"
+
+
 def unknown_format(p):
     (p / "m.bin").write_bytes(bytes(range(256)) * 4)
     return p / "m.bin"
@@ -149,6 +167,9 @@ CASES = [
     (constant, {}, r"c\.csv: the map is constant"),
     (unknown_unit_csv, {}, r"u\.csv: unknown unit 'mA' in gate column 'PA \(mA\)'; accepted voltage units: V, mV, uV"),
     (unknown_unit_nc, {}, r"u\.nc: unknown unit 'furlong' on coordinate 'PA'; accepted voltage units"),
+    (text_variable, {}, r"s\.nc: variable 'sensor' holds text, not numbers$"),
+    (text_coordinate, {}, r"sc\.nc: coordinate 'PA' holds text, not numbers$"),
+    (dates_as_gate_array, {}, r"dt\.npz: gate array 'x' holds times or dates, not numbers$"),
     (unknown_format, {}, r"m\.bin: unknown format \(suffix '\.bin'\); accepted: \.nc"),
     (binary_csv, {}, r"bin\.csv: binary content in a \.csv file: not a text table"),
     (saved_nc, {"var": "sensr"},
@@ -207,3 +228,16 @@ def test_bad_isel_is_explained(tmp_path):
         load(path, isel={"rep": 5})
     with pytest.raises(InputError, match=r"no dimension 'repp'"):
         load(path, isel={"repp": 0})
+
+
+def test_a_complex_map_handed_to_the_analysis_is_refused_not_cut_to_its_real_part():
+    # numpy drops the imaginary part of a complex array cast to float (with only a warning);
+    # the analysis must say so instead (the file readers project I/Q maps before this point)
+    from stabtool.analysis import Analyzer
+
+    rng = np.random.default_rng(0)
+    iq = rng.normal(size=(40, 40)) + 1j * rng.normal(size=(40, 40))
+    da = xr.DataArray(iq, dims=("PB", "PA"), name="iq",
+                      coords={"PB": np.linspace(0, 0.1, 40), "PA": np.linspace(0, 0.1, 40)})
+    with pytest.raises(InputError, match=r"variable 'iq' holds complex values \(I \+ iQ\)"):
+        Analyzer()(da)

@@ -37,7 +37,7 @@ import numpy as np
 import xarray as xr
 
 from ..errors import InputError
-from ..mapdata import make_map
+from ..mapdata import make_map, require_real_numbers
 from ._common import checked_voltage_scale, decode_attrs, encode_attrs, principal_projection
 from ._nc_layouts import flat_point_map, iq_pair, is_setpoint_grid, with_gate_dimensions
 from ._select import pick
@@ -118,7 +118,7 @@ def _coord_volts(ds: xr.Dataset, src: str, dim: str, values: np.ndarray) -> tupl
     unit = None if unit is None else str(unit)
     scale = checked_voltage_scale(src, unit, f"on coordinate {dim!r}")
     original = str(attrs.get("original_units") or unit or "V") if scale == 1.0 else str(unit)
-    return np.asarray(values, dtype=np.float64) * scale, original
+    return require_real_numbers(values, f"coordinate {dim!r}", src) * scale, original
 
 
 def read_netcdf(

@@ -33,7 +33,7 @@ import numpy as np
 import xarray as xr
 
 from ..errors import InputError
-from ..mapdata import make_map
+from ..mapdata import make_map, require_real_numbers
 from ._common import checked_voltage_scale, decode_attrs, principal_projection
 from ._headers import parse_label
 from ._select import pick
@@ -152,7 +152,8 @@ def read_npz(path: str, *, var: str | None = None, x: str | None = None, y: str 
             )
     xv, yv = np.asarray(arrays[xkey]), np.asarray(arrays[ykey])
     for key, arr, n, axis in ((xkey, xv, nx, "x"), (ykey, yv, ny, "y")):
-        if arr.ndim != 1 or arr.size != n or arr.dtype.kind not in "iuf":
+        require_real_numbers(arr, f"gate array {key!r}", path)
+        if arr.ndim != 1 or arr.size != n:
             raise InputError(
                 path,
                 f"gate array {key!r} has shape {arr.shape}, expected ({n},) numbers to match "
