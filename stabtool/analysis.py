@@ -1956,6 +1956,15 @@ class Analyzer:
             scale = replace(scale, details={**scale.details, "alpha11_from_refined_width": a11,
                                             "alpha11_from_refined_width_error": a11 * sw1 / w1})
         q = q.merge(scale.quality)
+        if np.any(np.isfinite(scale.alpha_diag)):
+            # a dot's lever arms cannot add up to more than 1 eV/V (an energy reference in the wrong unit)
+            from .fit.scale_verdict import impossible_lever_arms
+
+            alpha, alpha_err = (lever_arm_matrix(scale, fit) if fit.ok
+                                else (scale.alpha_diag, scale.alpha_diag_error))
+            # (first among the warnings: it makes every energy in the result meaningless)
+            q = impossible_lever_arms(alpha, alpha_err, reference=scale.reference,
+                                      temperature_K=self.electron_temperature_K).merge(q)
         if fit.ok and np.any(np.isfinite(scale.alpha_diag)):
             # an ok map promises α and E_C within 5 %: their own stated errors must allow it
             from .fit.scale_verdict import scale_error_verdict

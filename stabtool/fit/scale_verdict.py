@@ -31,12 +31,73 @@ import numpy as np
 from ..quality import Quality
 from .uncertainty import _pct
 
-__all__ = ["SCALE_GOAL", "SCALE_SIGMAS", "scale_error_verdict"]
+__all__ = ["MAX_LEVER_ARM_SUM", "SCALE_GOAL", "SCALE_SIGMAS", "impossible_lever_arms", "scale_error_verdict"]
 
 #: Relative goal of lever arms and charging energies (the fitter's bounds).
 SCALE_GOAL = 0.05
 #: An ok number must have the goal at this many stated standard errors.
 SCALE_SIGMAS = 2.0
+#: The most one dot's lever arms to all gates can add up to, eV/V. Shifting every gate and lead by
+#: ΔV shifts the dot's electrochemical potential by exactly e·ΔV, and α = Cdd⁻¹ Cdg has no negative
+#: element (Cdd has a positive diagonal and non-positive off-diagonal elements and is diagonally
+#: dominant, so its inverse is non-negative; Cdg ≥ 0): any subset of the gates gives at most 1
+#: (constant-interaction model, van der Wiel et al., Rev. Mod. Phys. 75, 1 (2003)).
+MAX_LEVER_ARM_SUM = 1.0
+#: Standard errors beyond :data:`MAX_LEVER_ARM_SUM` before a sum counts as impossible.
+IMPOSSIBLE_SIGMAS = 3.0
+
+
+def impossible_lever_arms(
+    alpha: np.ndarray,
+    alpha_error: np.ndarray,
+    *,
+    reference: str | None,
+    temperature_K: float | None = None,
+) -> Quality:
+    """Doubtful when a dot's lever arms add up to more than 1 eV/V beyond their errors.
+
+    Such a scale is impossible whatever the map (:data:`MAX_LEVER_ARM_SUM`); the usual cause is an
+    energy reference in the wrong unit, e.g. an electron temperature given in mK where K is meant,
+    which makes every lever arm and charging energy 1000 times too large.
+
+    Parameters
+    ----------
+    alpha, alpha_error : array of shape (2,) or (2, 2)
+        Lever arms (eV/V) and standard errors: the diagonal or the whole matrix (rows = dots);
+        NaN elements are left out of the sums.
+    reference : str or None
+        The energy reference that set the scale (named in the warning).
+    temperature_K : float, optional
+        The electron temperature given, quoted when it set the scale.
+
+    Returns
+    -------
+    Quality
+        One doubtful warning per dot whose lever arms are impossible.
+    """
+    a, sa = np.asarray(alpha, float), np.asarray(alpha_error, float)
+    if a.ndim == 1:
+        a, sa = a[:, None], sa[:, None]
+    q = Quality()
+    for i in range(a.shape[0]):
+        keep = np.isfinite(a[i])
+        if not keep.any():
+            continue
+        total = float(np.sum(a[i][keep]))
+        err = float(np.sqrt(np.sum(np.where(np.isfinite(sa[i][keep]), sa[i][keep], 0.0) ** 2)))
+        if total - IMPOSSIBLE_SIGMAS * err <= MAX_LEVER_ARM_SUM:
+            continue
+        what = (f"lever arm α{i + 1}{i + 1} = {total:.4g} ± {err:.2g} eV/V is" if keep.sum() == 1
+                else f"lever arms of dot {i + 1} add up to {total:.4g} ± {err:.2g} eV/V,")
+        hint = (f"is the electron temperature in kelvin? ({temperature_K:g} K given)"
+                if reference == "electron_temperature" and temperature_K is not None
+                else f"check the energy reference ({reference or 'unknown'}) and its units")
+        q = q.with_warning(
+            f"{what} above {MAX_LEVER_ARM_SUM:g} eV/V (impossible: all "
+            f"gates and leads together give 1): the energy scale is wrong — {hint}; lever arms and charging "
+            "energies are not usable"
+        )
+    return q
 
 
 def scale_error_verdict(
