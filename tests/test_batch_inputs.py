@@ -39,6 +39,28 @@ def test_glob_patterns_expand_and_the_output_folder_is_excluded(tmp_path):
     assert [p.name for p in found] == ["m1.nc", "m2.nc"]
 
 
+def test_a_folder_named_inside_the_output_folder_is_read_as_given(tmp_path):
+    # `stabtool batch data/night1 --out data`: the results land beside night1, not among its maps
+    _touch(tmp_path / "data" / "night1" / "m1.nc")
+    _touch(tmp_path / "data" / "night1" / "m2.nc")
+    _touch(tmp_path / "data" / "results.nc")  # a result of the output folder itself stays out
+    found = discover_inputs([tmp_path / "data" / "night1"], exclude=[tmp_path / "data"])
+    assert [p.name for p in found] == ["m1.nc", "m2.nc"]
+    assert discover_inputs([tmp_path / "data"], exclude=[tmp_path / "data" / "night1"])[0].name == "results.nc"
+
+
+def test_the_output_folder_may_not_be_an_input_folder(tmp_path, capsys):
+    from stabtool.cli.main import main
+
+    night = tmp_path / "night"
+    _touch(night / "m1.nc")
+    for out in (night, tmp_path / "night" / "."):
+        assert main(["batch", str(night), "--out", str(out)]) == 2
+        err = capsys.readouterr().err
+        assert err.count("\n") == 1 and "--out is an input folder" in err
+    assert sorted(p.name for p in night.iterdir()) == ["m1.nc"]
+
+
 @pytest.mark.parametrize("bad, fault", [("missing.nc", "no such file or folder"),
                                         ("nothing*.nc", "matches no map file")])
 def test_missing_paths_and_empty_globs_are_input_errors_naming_them(tmp_path, bad, fault):

@@ -55,6 +55,41 @@ def test_bad_lever_arm_option_is_a_usage_error(map_file, capsys):
     assert exc.value.code == 2
 
 
+def test_infinite_or_missing_temperature_is_a_usage_error(map_file, capsys):
+    for text in ("inf", "nan", "-0.1"):
+        with pytest.raises(SystemExit) as exc:
+            main(["analyze", str(map_file), "--electron-temperature", text])
+        assert exc.value.code == 2
+        assert "expected a positive temperature in K" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("option", ["--save", "--plot"])
+def test_an_output_onto_the_input_map_or_a_folder_is_refused_before_the_analysis(map_file, tmp_path, capsys,
+                                                                                  monkeypatch, option):
+    import shutil
+
+    import stabtool.analysis
+
+    def no_analysis(*args, **kwargs):
+        raise AssertionError("the analysis ran although its output path was bad")
+
+    monkeypatch.setattr(stabtool.analysis.Analyzer, "__call__", no_analysis)
+    measured = tmp_path / "measured.nc"
+    shutil.copy(map_file, measured)
+    before = measured.read_bytes()
+    folder = tmp_path / "results.nc"
+    folder.mkdir()
+    for target, fault in ((measured, "is the input map"), (folder, "cannot write: it is a folder, not a file"),
+                          (tmp_path / "absent" / "r.nc", "does not exist")):
+        assert main(["analyze", str(measured), option, str(target)]) == 2
+        err = capsys.readouterr().err
+        assert err.count("\n") == 1 and err.startswith(f"stabtool: error: {target}: ") and fault in err
+    # the measurement is untouched and nothing was left beside it
+    assert measured.read_bytes() == before
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["measured.nc", "results.nc"]
+    assert not any(folder.iterdir())
+
+
 def _saved(tmp_path, name, values, x=None, y=None):
     import numpy as np
     import xarray as xr

@@ -114,7 +114,7 @@ def discover_inputs(
         resolved = path.resolve()
         if resolved in seen:
             return
-        if any(resolved == ex or ex in resolved.parents for ex in excluded):
+        if any(resolved == ex or ex in resolved.parents for ex in within):
             return
         seen.add(resolved)
         out.append(path)
@@ -122,6 +122,10 @@ def discover_inputs(
     for item in inputs:
         text = os.fspath(item)
         path = Path(text)
+        # an excluded folder counts below a named input only: a folder named inside it (the results
+        # folder of another night above this one, say) is read as given
+        named = path.resolve()
+        within = [ex for ex in excluded if not (ex == named or ex in named.parents)]
         if path.is_dir():
             for p in _walk_folder(path, sfx):
                 add(p)

@@ -404,6 +404,10 @@ def run_batch(
     out = Path(out_dir)
     if out.exists() and not out.is_dir():
         raise InputError(out, "--out must be a folder, but a file of that name exists")
+    for item in inputs:
+        if Path(item).is_dir() and Path(item).resolve() == out.resolve():
+            raise InputError(out, "--out is an input folder: results among the maps would be read as maps; "
+                             "choose another folder (one inside it works)")
     options = {k: v for k, v in (load_options or {}).items() if v is not None}
     paths = discover_inputs(inputs, exclude=[out], load_options=options)
     if options:

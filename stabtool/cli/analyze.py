@@ -10,6 +10,7 @@ verdict is false; exit 2 with one line for input that cannot be read.
 from __future__ import annotations
 
 import argparse
+import math
 from typing import Any
 
 from ..report.caution import MATRIX_CAUTION
@@ -33,7 +34,7 @@ def _temperature(text: str) -> float:
         t = float(text)
     except ValueError:
         raise argparse.ArgumentTypeError(f"expected a temperature in K, got {text!r}") from None
-    if not t > 0:
+    if not (math.isfinite(t) and t > 0):
         raise argparse.ArgumentTypeError(f"expected a positive temperature in K, got {text!r}")
     return t
 
@@ -42,7 +43,13 @@ def run(args: argparse.Namespace) -> int:
     """Analyse ``args.file``; return the exit code."""
     from ..analysis import Analyzer
     from ..io import dumps, load
+    from ..io.atomic import check_target
+    from ..io.stacks import split_slice_ref
 
+    source = split_slice_ref(args.file)[0]
+    for target in (args.plot, args.save):
+        if target:  # before the analysis: a bad output path should not cost its run
+            check_target(target, inputs=(source,))
     da = load(args.file, var=args.var, x=args.x, y=args.y, isel=parse_isel(args.isel))
     analyzer = Analyzer(
         electron_temperature_K=args.electron_temperature,

@@ -28,6 +28,30 @@ def _file_mode() -> int:
     return 0o666 & ~umask
 
 
+def check_target(path: str | os.PathLike[str], *, inputs: tuple[str | os.PathLike[str], ...] = ()) -> None:
+    """Refuse an output path before any work is done for it.
+
+    Raises
+    ------
+    InputError
+        When the folder does not exist, the path is a folder, or it names one of ``inputs`` (a
+        result written over the measured map it came from would lose the measurement).
+    """
+    target = Path(path)
+    folder = target.parent if str(target.parent) else Path(".")
+    if not folder.is_dir():
+        raise InputError(path, f"cannot write: folder {str(folder)!r} does not exist")
+    if target.is_dir():
+        raise InputError(path, "cannot write: it is a folder, not a file")
+    for source in inputs:
+        src = Path(source)
+        same = (target.exists() and src.exists() and os.path.samefile(target, src)) or (
+            target.resolve() == src.resolve())
+        if same:
+            raise InputError(path, "is the input map: writing there would replace the measurement; choose "
+                             "another name")
+
+
 @contextlib.contextmanager
 def atomic_write(
     path: str | os.PathLike[str], *, mode: str = "w", fsync: bool = True
@@ -41,12 +65,11 @@ def atomic_write(
     Raises
     ------
     InputError
-        When the folder does not exist or cannot be written.
+        When the folder does not exist or cannot be written, or the path is a folder.
     """
     target = Path(path)
     folder = target.parent if str(target.parent) else Path(".")
-    if not folder.is_dir():
-        raise InputError(path, f"cannot write: folder {str(folder)!r} does not exist")
+    check_target(target)
     try:
         fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp" + target.suffix, dir=folder)
     except OSError as exc:
