@@ -203,6 +203,16 @@ def test_cli_bad_input_exit_2(pair_files, extra, fault, capsys) -> None:
     assert err.startswith("stabtool: error: ") and fault in err and "Traceback" not in err
 
 
+@pytest.mark.parametrize("option", ["--out", "--csv"])
+def test_cli_output_onto_an_input_is_refused_and_the_input_kept(pair_files, option, capsys) -> None:
+    before = Path(pair_files[0]).read_text()
+    code = main(["virtual-gates", *pair_files, "--sensor", "SG", option, pair_files[0]])
+    err = capsys.readouterr().err
+    assert code == 2 and err.count("\n") == 1
+    assert err.startswith(f"stabtool: error: {pair_files[0]}: is an input of this run")
+    assert Path(pair_files[0]).read_text() == before
+
+
 def test_cli_missing_file(tmp_path: Path, capsys) -> None:
     code = main(["virtual-gates", str(tmp_path / "nope.json")])
     assert code == 2 and "nope.json: file not found" in capsys.readouterr().err

@@ -79,7 +79,7 @@ def test_an_output_onto_the_input_map_or_a_folder_is_refused_before_the_analysis
     before = measured.read_bytes()
     folder = tmp_path / "results.nc"
     folder.mkdir()
-    for target, fault in ((measured, "is the input map"), (folder, "cannot write: it is a folder, not a file"),
+    for target, fault in ((measured, "is an input of this run"), (folder, "cannot write: it is a folder, not a file"),
                           (tmp_path / "absent" / "r.nc", "does not exist")):
         assert main(["analyze", str(measured), option, str(target)]) == 2
         err = capsys.readouterr().err

@@ -156,6 +156,19 @@ def test_cli_writes_a_map_with_truth(tmp_path, capsys):
     assert "unknown preset" in capsys.readouterr().err
 
 
+def test_cli_does_not_replace_an_existing_file_without_overwrite(tmp_path, capsys):
+    from stabtool.cli.main import main
+
+    measured = tmp_path / "cooldown3_PA_PB.nc"
+    measured.write_bytes(b"a measurement")
+    args = ["simulate", "--preset", "gaas-double", "--shape", "40", "48", "--out", str(measured)]
+    assert main(args) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "exists; simulate replaces a file only with --overwrite" in err
+    assert measured.read_bytes() == b"a measurement"
+    assert main([*args, "--overwrite"]) == 0 and measured.read_bytes() != b"a measurement"
+
+
 def test_cli_passes_the_sensor_response_and_the_charge_noise(tmp_path, capsys):
     from stabtool.cli.main import main
 

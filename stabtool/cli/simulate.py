@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import sys
 from typing import Any
 
@@ -52,6 +53,7 @@ def _direction(text: str | None, flag: str) -> dict[str, float] | None:
 def run(args: argparse.Namespace) -> int:
     """Build the device, render, write; return 0."""
     from ..io import save_map
+    from ..io.atomic import atomic_write_text, check_target
     from ..simulate import Artefacts, Device, SensorModel, presets, simulate_map
     from ..simulate.quick import double_dot_window
 
@@ -121,15 +123,16 @@ def run(args: argparse.Namespace) -> int:
         lockin=args.lockin,
         rng=args.seed,
     )
+    for target in (args.out, args.truth):
+        if target:
+            check_target(target)
+            if os.path.exists(target) and not args.overwrite:
+                # a synthetic map written over a file may destroy a measurement
+                raise InputError(target, "exists; simulate replaces a file only with --overwrite")
     save_map(sm.data, args.out)
     truth = sm.truth.to_json()
     if args.truth:
-        try:
-            with open(args.truth, "w", encoding="utf-8") as fh:
-                json.dump(truth, fh, indent=2)
-                fh.write("\n")
-        except OSError as exc:
-            raise InputError(args.truth, f"cannot write the truth file ({exc.strerror})") from None
+        atomic_write_text(args.truth, json.dumps(truth, indent=2) + "\n")
     if args.json:
         print(json.dumps(truth))
     else:
@@ -158,6 +161,7 @@ def register(subparsers: Any) -> None:
     p.add_argument("--list-presets", action="store_true", help="list the presets and exit")
     p.add_argument("--out", metavar="PATH", help="output map (.nc, .csv, .tsv, .npz)")
     p.add_argument("--truth", metavar="PATH", help="also write the truth as JSON")
+    p.add_argument("--overwrite", action="store_true", help="replace --out and --truth files that exist")
     p.add_argument("--json", action="store_true", help="print the truth as JSON on stdout")
     p.add_argument("--x", metavar="GATE", help="gate on x (fast axis)")
     p.add_argument("--y", metavar="GATE", help="gate on y (slow axis)")

@@ -298,6 +298,13 @@ def run(args: argparse.Namespace) -> int:
     """Run the command; return the exit code."""
     if (args.origin or args.limits or args.sweep_csv) and not args.sweep:
         raise InputError("--sweep", "--origin, --limits and --sweep-csv need a --sweep")
+    from ..io.atomic import check_target
+    from ..io.stacks import split_slice_ref
+
+    sources = tuple(split_slice_ref(item)[0] for item in args.inputs)
+    for target in (args.out, args.csv, args.sweep_csv):
+        if target:  # an output over an input (an analysis JSON, a map) would lose it
+            check_target(target, inputs=sources)
     vgm = _read_inputs(args)
     if args.out:
         write_matrix_json(vgm, args.out)

@@ -48,8 +48,7 @@ def check_target(path: str | os.PathLike[str], *, inputs: tuple[str | os.PathLik
         same = (target.exists() and src.exists() and os.path.samefile(target, src)) or (
             target.resolve() == src.resolve())
         if same:
-            raise InputError(path, "is the input map: writing there would replace the measurement; choose "
-                             "another name")
+            raise InputError(path, "is an input of this run: writing there would replace it; choose another name")
 
 
 @contextlib.contextmanager
