@@ -49,15 +49,26 @@ def test_a_folder_named_inside_the_output_folder_is_read_as_given(tmp_path):
     assert discover_inputs([tmp_path / "data"], exclude=[tmp_path / "data" / "night1"])[0].name == "results.nc"
 
 
+def test_an_earlier_batchs_results_inside_the_folder_are_not_read_as_maps(tmp_path):
+    _touch(tmp_path / "night" / "m1.nc")
+    _touch(tmp_path / "night" / "m2.csv")
+    for name in ("results.csv", "results.nc", ".records/batch.json"):
+        _touch(tmp_path / "night" / "res" / name)
+    _touch(tmp_path / "night" / "other" / "m3.nc")  # a folder without records is searched
+    found = [p.relative_to(tmp_path / "night").as_posix() for p in discover_inputs([tmp_path / "night"])]
+    assert found == ["m1.nc", "m2.csv", "other/m3.nc"]
+
+
 def test_the_output_folder_may_not_be_an_input_folder(tmp_path, capsys):
     from stabtool.cli.main import main
 
     night = tmp_path / "night"
     _touch(night / "m1.nc")
-    for out in (night, tmp_path / "night" / "."):
-        assert main(["batch", str(night), "--out", str(out)]) == 2
-        err = capsys.readouterr().err
-        assert err.count("\n") == 1 and "--out is an input folder" in err
+    for command in ("batch", "drift"):
+        for out in (night, tmp_path / "night" / "."):
+            assert main([command, str(night), "--out", str(out)]) == 2
+            err = capsys.readouterr().err
+            assert err.count("\n") == 1 and "--out is an input folder" in err
     assert sorted(p.name for p in night.iterdir()) == ["m1.nc"]
 
 

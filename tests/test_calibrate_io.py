@@ -182,6 +182,19 @@ def test_cli_bad_trace_file_exits_2_with_one_line(tmp_path, capsys):
     assert err.count("\n") == 1 and str(bad) in err and "not a number" in err
 
 
+@pytest.mark.parametrize("option", ["--out", "--plot"])
+def test_cli_output_onto_a_trace_file_is_refused_and_the_trace_kept(tmp_path, capsys, option):
+    v = np.linspace(-0.3015, -0.2985, 200)
+    path = tmp_path / "t.csv"
+    path.write_text("PA (V),s (nA)\n" + "\n".join(f"{a},{b}" for a, b in zip(v, render_trace(v, TraceTruth()))))
+    before = path.read_text()
+    args = ["calibrate", str(path), "--temperature", "0.1", "--out", str(tmp_path / "l.json"), option, str(path)]
+    assert main(args) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and f"{path}: is an input of this run" in err
+    assert path.read_text() == before
+
+
 def test_cli_needs_a_temperature(tmp_path, capsys):
     v = np.linspace(-0.3015, -0.2985, 200)
     path = tmp_path / "t.csv"

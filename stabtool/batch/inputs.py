@@ -21,7 +21,7 @@ from typing import Any, Iterable, Sequence
 from ..errors import InputError
 from ..io.stacks import expand_stacks, split_slice_ref
 
-__all__ = ["SUPPORTED_SUFFIXES", "discover_inputs", "natural_key"]
+__all__ = ["SUPPORTED_SUFFIXES", "check_output_folder", "discover_inputs", "natural_key"]
 
 #: File suffixes a folder search picks up (the formats :func:`stabtool.io.load` reads).
 SUPPORTED_SUFFIXES: tuple[str, ...] = (".nc", ".h5", ".hdf5", ".csv", ".tsv", ".npz")
@@ -53,12 +53,33 @@ def _is_hidden(path: Path, root: Path) -> bool:
 
 
 def _walk_folder(folder: Path, suffixes: tuple[str, ...]) -> list[Path]:
+    from .store import ResultStore
+
+    # a folder below holding a batch's records is an earlier batch's output (results.csv, results.nc)
+    results = [m.parent for m in folder.rglob(ResultStore.RECORDS) if m.is_dir() and m.parent != folder]
     found = [
         p
         for p in folder.rglob("*")
         if p.is_file() and p.suffix.lower() in suffixes and not _is_hidden(p, folder)
+        and not any(r in p.parents for r in results)
     ]
     return sorted(found, key=lambda p: natural_key(str(p.relative_to(folder))))
+
+
+def check_output_folder(out: str | os.PathLike[str], inputs: Sequence[str | os.PathLike[str]]) -> Path:
+    """``out`` as a Path, or :class:`InputError` when it cannot be the output folder of a run over ``inputs``.
+
+    It may not be an existing file, nor one of the input folders (results among the maps would be
+    read as maps; a folder inside an input folder is fine, it is left out of the search).
+    """
+    folder = Path(out)
+    if folder.exists() and not folder.is_dir():
+        raise InputError(out, "--out must be a folder, but a file of that name exists")
+    for item in inputs:
+        if Path(item).is_dir() and Path(item).resolve() == folder.resolve():
+            raise InputError(out, "--out is an input folder: results among the maps would be read as maps; "
+                             "choose another folder (one inside it works)")
+    return folder
 
 
 def discover_inputs(

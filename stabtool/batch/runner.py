@@ -29,7 +29,7 @@ from typing import Any, Callable, Iterator, Mapping, Sequence
 
 from ..errors import InputError
 from ..io.stacks import split_slice_ref
-from .inputs import discover_inputs
+from .inputs import check_output_folder, discover_inputs
 from .store import BatchRecord, ResultStore, content_hash
 from .worker import DEFAULT_TIME_LIMIT_S, FileAnalyzer, analyze_one, one_line_reason
 
@@ -401,13 +401,7 @@ def run_batch(
         raise InputError("--workers", f"must be at least 1, got {workers}")
     if time_limit_s is not None and not (time_limit_s >= 0 and math.isfinite(time_limit_s)):
         raise InputError("--time-limit", f"must be a number of seconds ≥ 0 (0: no limit), got {time_limit_s}")
-    out = Path(out_dir)
-    if out.exists() and not out.is_dir():
-        raise InputError(out, "--out must be a folder, but a file of that name exists")
-    for item in inputs:
-        if Path(item).is_dir() and Path(item).resolve() == out.resolve():
-            raise InputError(out, "--out is an input folder: results among the maps would be read as maps; "
-                             "choose another folder (one inside it works)")
+    out = check_output_folder(out_dir, inputs)
     options = {k: v for k, v in (load_options or {}).items() if v is not None}
     paths = discover_inputs(inputs, exclude=[out], load_options=options)
     if options:

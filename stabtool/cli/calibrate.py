@@ -57,6 +57,11 @@ def run(args: argparse.Namespace) -> int:
 
     if args.temperature is not None and not (np.isfinite(args.temperature) and args.temperature > 0):
         raise InputError("--temperature", f"expected a positive temperature in K, got {args.temperature}")
+    from ..io.atomic import check_target
+
+    for target in (args.out, args.plot):
+        if target:  # an output over a trace file would lose it
+            check_target(target, inputs=tuple(args.traces))
     traces = []
     for path in args.traces:
         for tr in load_traces(path, temperature_K=args.temperature, temperatures_from=args.temperatures_from):

@@ -30,13 +30,9 @@ __all__ = ["register", "run"]
 def run(args: argparse.Namespace) -> int:
     """Measure the drift; print the verdict; return 0 (or 2 via InputError)."""
     from ..batch.drift import measure_drift
-    from ..batch.inputs import discover_inputs
+    from ..batch.inputs import check_output_folder, discover_inputs
 
-    out = Path(args.out)
-    if out.exists() and not out.is_dir():
-        from ..errors import InputError
-
-        raise InputError(args.out, "--out must be a folder, but a file of that name exists")
+    out = check_output_folder(args.out, args.inputs)
     opts = load_options(args)
     paths = [str(p) for p in discover_inputs(args.inputs, exclude=[out], load_options=opts)]
     with tempfile.TemporaryDirectory(prefix="stabtool-drift-") as features:
