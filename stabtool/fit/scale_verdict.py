@@ -73,12 +73,12 @@ def impossible_lever_arms(
     Returns
     -------
     Quality
-        One doubtful warning per dot whose lever arms are impossible.
+        One doubtful warning naming every dot whose lever arms are impossible.
     """
     a, sa = np.asarray(alpha, float), np.asarray(alpha_error, float)
     if a.ndim == 1:
         a, sa = a[:, None], sa[:, None]
-    q = Quality()
+    found = []
     for i in range(a.shape[0]):
         keep = np.isfinite(a[i])
         if not keep.any():
@@ -87,17 +87,17 @@ def impossible_lever_arms(
         err = float(np.sqrt(np.sum(np.where(np.isfinite(sa[i][keep]), sa[i][keep], 0.0) ** 2)))
         if total - IMPOSSIBLE_SIGMAS * err <= MAX_LEVER_ARM_SUM:
             continue
-        what = (f"lever arm α{i + 1}{i + 1} = {total:.4g} ± {err:.2g} eV/V is" if keep.sum() == 1
-                else f"lever arms of dot {i + 1} add up to {total:.4g} ± {err:.2g} eV/V,")
-        hint = (f"is the electron temperature in kelvin? ({temperature_K:g} K given)"
-                if reference == "electron_temperature" and temperature_K is not None
-                else f"check the energy reference ({reference or 'unknown'}) and its units")
-        q = q.with_warning(
-            f"{what} above {MAX_LEVER_ARM_SUM:g} eV/V (impossible: all "
-            f"gates and leads together give 1): the energy scale is wrong — {hint}; lever arms and charging "
-            "energies are not usable"
-        )
-    return q
+        found.append(f"lever arm α{i + 1}{i + 1} = {total:.4g} ± {err:.2g} eV/V" if keep.sum() == 1
+                     else f"lever arms of dot {i + 1} add up to {total:.4g} ± {err:.2g} eV/V")
+    if not found:
+        return Quality()
+    hint = (f"is the electron temperature in kelvin? ({temperature_K:g} K given)"
+            if reference == "electron_temperature" and temperature_K is not None
+            else f"check the energy reference ({reference or 'unknown'}) and its units")
+    return Quality().with_warning(
+        f"{'; '.join(found)}: above {MAX_LEVER_ARM_SUM:g} eV/V, impossible (all gates and leads together "
+        f"give 1): the energy scale is wrong — {hint}; lever arms and charging energies are not usable"
+    )
 
 
 def scale_error_verdict(
