@@ -109,11 +109,15 @@ class ProbeMap:
     meta: dict = field(default_factory=dict)
 
 
-def _device(r: np.random.Generator, mutual_fraction: tuple[float, float] | None = None):
+def _device(r: np.random.Generator, mutual_fraction: tuple[float, float] | None = None,
+            cross_fraction: tuple[float, float] | None = None, seed: int = 0):
     from stabtool.simulate.device import Device
 
     cg = r.uniform(2, 30, 2)  # aF
-    cx = cg[::-1] * r.uniform(0.05, 0.5, 2)
+    u = r.uniform(0.05, 0.5, 2)
+    if cross_fraction is not None:  # (the default draw stays, so every other draw of the seed is unchanged)
+        u = np.random.default_rng([seed, 31]).uniform(*cross_fraction, 2)
+    cx = cg[::-1] * u  # M12·M21 = u1·u2: the two families' slopes approach each other as it nears 1
     cm = r.uniform(0.05, 0.4) * min(cg) * 2
     rest = r.uniform(5, 120, 2)
     if mutual_fraction is not None:
@@ -171,6 +175,7 @@ def _state_averaged(sig: np.ndarray, read: Any, sm: Any, X: np.ndarray, Y: np.nd
 def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[str, ...] = SENSORS,
              noise: tuple[str, ...] | None = None, tunnel_coupling_ueV: float = 0.0,
              mutual_fraction: tuple[float, float] | None = None,
+             cross_fraction: tuple[float, float] | None = None,
              start_e: tuple[float, float] | None = None,
              coupling_ratio: tuple[float, float] | None = None, lockin: bool = False,
              response: str = "mean", electrons: tuple[float, float] | None = None,
@@ -194,6 +199,11 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
     mutual_fraction : (float, float), optional
         Draw ``Cm`` so that ``Cm / C_total`` of the larger dot (``E_Cm/E_C``
         of the smaller one) lies in this range: strongly coupled dots.
+    cross_fraction : (float, float), optional
+        Draw each gate's coupling to the other dot as this fraction (times the
+        ratio of the direct couplings) instead of 0.05–0.5: ``M12·M21`` is the
+        product of the two fractions, so 0.5–0.85 gives strong cross-talk with
+        the two families' slopes closer together.
     start_e : (float, float), optional
         Draw the induced charge of both dots at the window's low corner in this
         range (default 0.35): below −1 the map shows the empty (0, 0) region
@@ -232,7 +242,7 @@ def make_map(seed: int, *, size: tuple[int, int] = (120, 260), sensors: tuple[st
     from stabtool.simulate.quick import double_dot_window
 
     r = np.random.default_rng([seed, 7919])
-    dev = _device(r, mutual_fraction)
+    dev = _device(r, mutual_fraction, cross_fraction, seed)
     n_e = r.uniform(3.5, 6)
     if electrons is not None:  # (the default draw stays, so every other draw of the seed is unchanged)
         n_e = float(np.random.default_rng([seed, 29]).uniform(*electrons))
@@ -586,6 +596,9 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--tunnel-ueV", type=float, default=0.0, help="interdot tunnel coupling of the truth (µeV)")
     p.add_argument("--mutual", default=None,
                    help="'A:B': draw Cm / C_total of the larger dot in [A, B] (strongly coupled dots)")
+    p.add_argument("--cross", default=None,
+                   help="'A:B': draw each gate's coupling to the other dot as a fraction in [A, B] (default "
+                        "0.05:0.5; M12·M21 is the product), e.g. 0.5:0.85 for strong cross-talk")
     p.add_argument("--start-e", default=None,
                    help="'A:B': induced charge of both dots at the low corner (default 0.35); e.g. --start-e=-3:-2.2 for "
                         "maps with the empty (0,0) region well below the first lines")
@@ -639,7 +652,7 @@ def main(argv: list[str] | None = None) -> int:
     with open(a.jsonl, "w", encoding="utf-8") if a.jsonl else contextlib.nullcontext() as jsonl:
         for s in _parse_seeds(a.seeds):
             pm = make_map(s, size=(lo, hi), sensors=sensors, noise=noise, tunnel_coupling_ueV=a.tunnel_ueV,
-                          mutual_fraction=_range(a.mutual), start_e=_range(a.start_e), coupling_ratio=_range(a.coupling),
+                          mutual_fraction=_range(a.mutual), cross_fraction=_range(a.cross), start_e=_range(a.start_e), coupling_ratio=_range(a.coupling),
                           lockin=a.lockin, response=a.response, electrons=_range(a.electrons),
                           aspect=_range(a.aspect), temperature=_range(a.temperature), virtual=a.virtual)
             if a.gates_exchanged:

@@ -233,6 +233,59 @@ def _band_step(fam: FamilySegments) -> np.ndarray | None:
     dp_a, dm_a = dp[pair], (mid[None, :] - mid[:, None])[pair]
     if dp_a.size == 1:
         return np.array([dp_a[0], dm_a[0]])
+    found = _comb_period(dp_a)
+    if found is None:
+        return None
+    k1 = found[1]
+    return np.array([median(dp_a[k1]), median(dm_a[k1])])
+
+
+#: Positions closer than this share of the largest gap between neighbours are pieces of one
+#: transition seen in different bands (they differ by multiples of δ, not of ΔV).
+SAME_LINE_GAP_SHARE = 0.25
+#: Distinct transitions (clusters of positions) a family needs for a cell step across bands.
+MIN_ACROSS_TRANSITIONS = 3
+
+
+def _across_step(fam: FamilySegments) -> float | None:
+    """Addition voltage from the positions alone, when no two segments share a charge band.
+
+    With strong cross-talk (``M12·M21`` well above ¼) a window of a few transitions each way is a
+    strongly sheared parallelogram in virtual coordinates: the next transition of the same band
+    lies ``ΔV1/(1 − M12 M21)`` along x and ``M21`` times that along y, often outside the window
+    (held-out probe ``--cross 0.5:0.85``: 27 of 48 maps had no such pair). The segments then sit
+    in different bands, at ``ΔV (N − ½) + δ N_other + c``: positions closer than
+    :data:`SAME_LINE_GAP_SHARE` of the largest neighbour gap are one transition (pieces in
+    neighbouring bands, ``δ`` apart), and the comb of :func:`_comb_period` over the differences
+    of the transitions' median positions gives ``ΔV`` (needs :data:`MIN_ACROSS_TRANSITIONS`, whose
+    extents must move monotonically with their positions, as a shear makes them).
+    Only a starting step: labels and the cell are then fitted to every line and kept only when
+    they explain them (:func:`_search`).
+    """
+    order = np.argsort(fam.pos)
+    pos, mid = np.asarray(fam.pos, float)[order], np.asarray(fam.mid, float)[order]
+    if pos.size < MIN_ACROSS_TRANSITIONS:
+        return None
+    gaps = np.diff(pos)
+    cut = np.nonzero(gaps > SAME_LINE_GAP_SHARE * gaps.max())[0] + 1
+    centres = np.array([median(c) for c in np.split(pos, cut)])
+    if centres.size < MIN_ACROSS_TRANSITIONS:
+        return None
+    # the shear puts each next transition in later bands: the extents move one way with the positions.
+    # Pieces of transitions that share their bands (one transition's staircase over several bands, δ
+    # apart, taken for transitions) do not (a generator map at SNR 2.5: δ1 = 0.19 ΔV1, mids back and
+    # forth)
+    band = np.diff([median(m) for m in np.split(mid, cut)])
+    if not (np.all(band > 0) or np.all(band < 0)):
+        return None
+    dp = (centres[None, :] - centres[:, None])[np.triu_indices(centres.size, 1)]
+    found = _comb_period(dp)
+    return None if found is None else float(median(dp[found[1]]))
+
+
+def _comb_period(dp_a: np.ndarray) -> tuple[float, np.ndarray] | None:
+    """The largest period ``P`` explaining (nearly) as many differences as the best, and the
+    differences within 15 % of ``P`` (or of ``2P``, ``3P`` when none is), or None."""
     p_max = float(dp_a.max())
     p_min = max(p_max / 200.0, float(np.min(dp_a)) * 0.5)
     grid = np.geomspace(p_min, p_max, 600)
@@ -253,7 +306,7 @@ def _band_step(fam: FamilySegments) -> np.ndarray | None:
         k1 = np.abs(dp_a - m * period) < 0.15 * m * period
     if not np.any(k1):
         return None
-    return np.array([median(dp_a[k1]), median(dm_a[k1])])
+    return period, k1
 
 
 #: Label offsets tried around the rounded solution, in the order (−1, −1), (−1, 0), …, (1, 1).
@@ -657,6 +710,10 @@ def _search(dot1: FamilySegments, dot2: FamilySegments, *, interdot_extent: tupl
         return _failed(f"too few lines to fit a cell (dot1: {k1}, dot2: {k2}; need at least 2 each)", k1, k2)
     a = _band_step(dot1)  # (ΔV1, δ2)
     b = _band_step(dot2)  # (ΔV2, δ1)
+    if a is None and b is None:
+        # a shear separates the bands of both families; one family without a pair is more often
+        # lines missed or merged (probe --mutual 0.25:0.45 seeds 2, 9, 21: wrong cells stated tightly)
+        a, b = _steps_across_bands(dot1, dot2, margin)
     if a is None:
         return _failed("no two dot1 lines bound the same charge band: ΔV1 undetermined", k1, k2)
     if b is None:
@@ -769,6 +826,23 @@ def _staircase_mutual(fam: FamilySegments, dv_own: float, dv_other: float,
         return None
     dp = (fam.pos[None, :] - fam.pos[:, None])[pair]
     return float(median(dp - dv_own * np.floor(dp / dv_own + margin)))
+
+
+def _steps_across_bands(dot1: FamilySegments, dot2: FamilySegments,
+                        margin: float) -> tuple[np.ndarray | None, np.ndarray | None]:
+    """The band steps ``a = (ΔV1, δ2)``, ``b = (ΔV2, δ1)`` from :func:`_across_step`, when no two
+    lines of either family share a band.
+
+    The mutual shifts start at zero, or at the staircase values of the line positions
+    (:func:`_staircase_steps`) when there are some; both are fitted afterwards.
+    """
+    p1, p2 = _across_step(dot1), _across_step(dot2)
+    a = None if p1 is None else np.array([p1, 0.0])
+    b = None if p2 is None else np.array([p2, 0.0])
+    if a is None or b is None:
+        return a, b
+    stair = _staircase_steps(dot1, dot2, a, b, margin)
+    return stair[0] if stair else (a, b)
 
 
 def _staircase_steps(dot1: FamilySegments, dot2: FamilySegments, a: np.ndarray,
