@@ -51,3 +51,17 @@ def test_a_new_silent_failure_is_counted_and_marked(records, tmp_path):
     assert "silent 0 → 1" in lines[0]
     assert lines[1].startswith("  seed 3:") and lines[1].endswith("SILENT")
     assert lines[2] == "      + a new note"
+
+
+def test_the_cross_talk_option_draws_strong_cross_talk_and_leaves_the_rest_of_the_seed_alone():
+    import numpy as np
+
+    plain, strong = probe_heldout.make_map(3), probe_heldout.make_map(3, cross_fraction=(0.5, 0.85))
+    m_plain = np.asarray(plain.truth["virtual_gate_matrix"], float)
+    m_strong = np.asarray(strong.truth["virtual_gate_matrix"], float)
+    # the default draw puts each fraction in 0.05–0.5, so M12·M21 = u1·u2 ≤ ¼; the option in 0.25–0.72
+    assert m_plain[0, 1] * m_plain[1, 0] <= 0.25
+    assert 0.25 <= m_strong[0, 1] * m_strong[1, 0] <= 0.85**2
+    # the sensor, noise and temperature of the seed are drawn as without the option
+    assert {k: plain.meta[k] for k in ("sensor", "noise", "snr", "T")} == \
+        {k: strong.meta[k] for k in ("sensor", "noise", "snr", "T")}
