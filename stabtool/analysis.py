@@ -1145,6 +1145,20 @@ def _thermal_consistency(ws: np.ndarray, es: np.ndarray, details: dict[str, Any]
     return ws, q
 
 
+def _warn_if_doubtful(da: xr.DataArray, q: Quality) -> None:
+    """A :class:`QualityWarning` with the reasons (at most three; the notes are in the result) of a
+    doubtful verdict, naming the map's file."""
+    if q.ok:
+        return
+    ws, flags = q.doubts_first_flagged()
+    reasons = [w for w, f in zip(ws, flags) if f] if flags is not None else list(ws)
+    warnings.warn(
+        f"{da.attrs.get('source', 'map')}: analysis doubtful: {'; '.join((reasons or list(ws))[:3])}"
+        + (f" (and {len(reasons) - 3} more)" if len(reasons) > 3 else ""),
+        QualityWarning, stacklevel=3,
+    )
+
+
 def _lever_arm_from_file(path: str, da: xr.DataArray) -> tuple[np.ndarray, np.ndarray]:
     try:
         from .calibrate import read_lever_arm_file  # type: ignore[attr-defined]
@@ -1604,7 +1618,9 @@ class Analyzer:
         from .fit.diamond_map import analyze_diamond_map, is_bias_axis
 
         if self.mode == "diamonds" or (self.mode == "auto" and is_bias_axis(da)):
-            return analyze_diamond_map(da)
+            diamonds = analyze_diamond_map(da)
+            _warn_if_doubtful(da, diamonds.quality)
+            return diamonds
         prepared = self._prepared(da)
         if self.readout.startswith("derivative-"):
             axis = self.readout[-1]
@@ -1619,16 +1635,7 @@ class Analyzer:
                     raise
                 res = replace(res, quality=res.quality.with_warning(
                     f"the check for a derivative read-out failed ({type(exc).__name__}: {exc})", doubtful=False))
-        q = res.quality
-        if not q.ok:
-            # the reasons only (the notes are in the result): at most three
-            ws, flags = q.doubts_first_flagged()
-            reasons = [w for w, f in zip(ws, flags) if f] if flags is not None else list(ws)
-            warnings.warn(
-                f"{da.attrs.get('source', 'map')}: analysis doubtful: {'; '.join((reasons or list(ws))[:3])}"
-                + (f" (and {len(reasons) - 3} more)" if len(reasons) > 3 else ""),
-                QualityWarning, stacklevel=2,
-            )
+        _warn_if_doubtful(da, res.quality)
         return res
 
     def _as_derivative_map(self, prepared: _Prepared, res: AnalysisResult) -> AnalysisResult:

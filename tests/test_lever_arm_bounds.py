@@ -80,3 +80,21 @@ def test_an_electron_temperature_in_millikelvin_makes_the_analysis_doubtful_and_
     assert np.diag(slip["lever_arm"]).min() > 10
     assert slip["quality"]["ok"] is False
     assert "(500 K given)" in slip["quality"]["warnings"][0]
+
+
+def test_a_diamond_map_whose_bias_is_in_millivolts_read_as_volts_is_doubtful_and_says_why():
+    # Coulomb diamonds of the references' worked example (α = C_G/C_Σ = 0.125, m₊ = 0.2, m₋ = −1/3):
+    # the bias axis scaled by 1000 (a bias in mV stored without its unit) makes α 125 eV/V
+    from stabtool.analysis import Analyzer
+    from stabtool.errors import QualityWarning
+    from stabtool.simulate.diamonds import coulomb_diamonds
+
+    dm = coulomb_diamonds(snr=30, rng=0, shape=(101, 201))
+    bias = dm.data.dims[0]
+    right = Analyzer()(dm.data)
+    assert right.quality.ok and right.fit.lever_arm == pytest.approx(0.125, rel=0.03)
+    slip = dm.data.assign_coords({bias: dm.data[bias] * 1000}).assign_attrs(source="diamonds_PG.nc")
+    with pytest.warns(QualityWarning, match=r"diamonds_PG\.nc: analysis doubtful: lever arm α11 = 12\d"):
+        res = Analyzer()(slip)
+    assert not res.quality.ok
+    assert "is the bias axis in volts?" in res.quality.warnings[0]

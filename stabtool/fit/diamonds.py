@@ -325,6 +325,12 @@ def fit_coulomb_diamonds(data: xr.DataArray, *, threshold: float | None = None) 
         q = q.with_warning(f"few edges: {len(plus)} with slope m+ and {len(minus)} with slope m-")
     if alpha_err / alpha > 0.03:
         q = q.with_warning(f"lever-arm uncertainty {100 * alpha_err / alpha:.1f} % exceeds 3 %")
+    # α = C_G/C_Σ ≤ 1: more is a bias axis in the wrong unit (mV read as V gives 1000 times α and E_add)
+    from .scale_verdict import impossible_lever_arms
+
+    q = impossible_lever_arms(np.array([alpha]), np.array([alpha_err]), reference="coulomb_diamonds",
+                              hint="is the bias axis in volts? (a bias in mV read as V gives 1000 times "
+                                   "the lever arm)").merge(q)
     return CoulombDiamondFit(
         slope_plus=float(mp), slope_plus_stderr=float(mp_err),
         slope_minus=float(mm), slope_minus_stderr=float(mm_err),

@@ -53,6 +53,7 @@ def impossible_lever_arms(
     *,
     reference: str | None,
     temperature_K: float | None = None,
+    hint: str | None = None,
 ) -> Quality:
     """Doubtful when a dot's lever arms add up to more than 1 eV/V beyond their errors.
 
@@ -69,6 +70,8 @@ def impossible_lever_arms(
         The energy reference that set the scale (named in the warning).
     temperature_K : float, optional
         The electron temperature given, quoted when it set the scale.
+    hint : str, optional
+        What to check, in place of the default (the temperature's unit, or the reference's units).
 
     Returns
     -------
@@ -91,9 +94,10 @@ def impossible_lever_arms(
                      else f"lever arms of dot {i + 1} add up to {total:.4g} ± {err:.2g} eV/V")
     if not found:
         return Quality()
-    hint = (f"is the electron temperature in kelvin? ({temperature_K:g} K given)"
-            if reference == "electron_temperature" and temperature_K is not None
-            else f"check the energy reference ({reference or 'unknown'}) and its units")
+    if hint is None:
+        hint = (f"is the electron temperature in kelvin? ({temperature_K:g} K given)"
+                if reference == "electron_temperature" and temperature_K is not None
+                else f"check the energy reference ({reference or 'unknown'}) and its units")
     return Quality().with_warning(
         f"{'; '.join(found)}: above {MAX_LEVER_ARM_SUM:g} eV/V, impossible (all gates and leads together "
         f"give 1): the energy scale is wrong — {hint}; lever arms and charging energies are not usable"
