@@ -98,3 +98,31 @@ def test_a_diamond_map_whose_bias_is_in_millivolts_read_as_volts_is_doubtful_and
         res = Analyzer()(slip)
     assert not res.quality.ok
     assert "is the bias axis in volts?" in res.quality.warnings[0]
+
+
+def test_gate_voltages_in_millivolts_read_as_volts_below_the_loaders_limit_are_named():
+    # plungers of 35–40 aF put the transitions 4–5 mV apart (ΔV = e/Cdg): four of them span under
+    # 20 mV, so the same map read as volts stays below the loader's 20 V check; its capacitances are
+    # 1000 times too small, below the 0.1 aF (1.6 V per electron) of any plunger (common practice,
+    # no source)
+    from stabtool.analysis import Analyzer
+    from stabtool.simulate import simulate_map
+    from stabtool.simulate.device import Device
+    from stabtool.simulate.quick import double_dot_window
+
+    dev = Device(cdg_aF=[[40.0, 8.0], [6.0, 35.0]], cdd_aF=[[120.0, -8.0], [-8.0, 110.0]],
+                 gate_names=["PA", "PB"], dot_names=["L", "R"])
+    xr_, yr_ = double_dot_window(dev, x_gate="PA", y_gate="PB", electrons=4.0)
+    sm = simulate_map(dev, x_gate="PA", y_gate="PB", x_range_V=xr_, y_range_V=yr_, shape=(100, 100),
+                      temperature_K=0.05, readout="charge", rng=0)
+    da = sm.data
+    slip = da.assign_coords({d: da[d] * 1000 for d in da.dims})
+    assert max(float(abs(slip[d]).max()) for d in slip.dims) < 20.0
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        right = Analyzer(refine=False)(da).to_json()
+        wrong = Analyzer(refine=False)(slip).to_json()
+    named = [w for w in wrong["quality"]["warnings"] if "are the gate voltages in volts?" in w]
+    assert wrong["quality"]["ok"] is False and len(named) == 2 and named[0].startswith("gate capacitance Cdg11")
+    assert not any("are the gate voltages in volts?" in w for w in right["quality"]["warnings"])
+    assert np.asarray(right["gate_capacitance_aF"], float)[0, 0] == pytest.approx(40.0, rel=0.02)

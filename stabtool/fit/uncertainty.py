@@ -17,7 +17,10 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["error_verdict", "numeric_jacobian", "propagate", "relative_cdg_errors"]
+from ..physics.constants import E_AC
+
+__all__ = ["MIN_PLUNGER_CDG_AF", "error_verdict", "implausible_capacitances", "numeric_jacobian", "propagate",
+           "relative_cdg_errors"]
 
 
 def numeric_jacobian(
@@ -105,6 +108,28 @@ VIRTUAL_GATE_CROSSTALK = 0.1
 VIRTUAL_GATE_MAX_CROSS = 0.5
 
 
+#: The smallest capacitance a dot has to the gate that moves it most, aF: e / 0.1 aF = 1.6 V between
+#: its transitions. Plungers of gate-defined dots give 1–100 aF, lines tens to a few hundred mV apart
+#: (common practice, no source); gate voltages in mV read as V make every capacitance 1000× smaller.
+MIN_PLUNGER_CDG_AF = 0.1
+
+
+def implausible_capacitances(cdg_aF: np.ndarray, cdg_err_aF: np.ndarray) -> list[str]:
+    """One doubtful warning per dot whose capacitance to its own gate is below :data:`MIN_PLUNGER_CDG_AF`
+    by more than 3 stated errors (a gate axis in mV read as V, below the loader's 20 V check)."""
+    cdg, err = np.asarray(cdg_aF, float), np.asarray(cdg_err_aF, float)
+    out = []
+    for i in range(min(cdg.shape)):
+        v, e = float(cdg[i, i]), float(err[i, i])
+        if np.isfinite(v) and v > 0 and v + 3 * (e if np.isfinite(e) else 0.0) < MIN_PLUNGER_CDG_AF:
+            out.append(
+                f"gate capacitance Cdg{i + 1}{i + 1} = {v:.3g} aF (transitions {E_AC / v:.3g} V apart) is "
+                f"below the {MIN_PLUNGER_CDG_AF:g} aF of any gate that moves a dot: are the gate voltages in "
+                "volts? (mV read as V makes every capacitance 1000 times smaller)"
+            )
+    return out
+
+
 def negative_capacitances(cdg_aF: np.ndarray, cdg_err_aF: np.ndarray,
                           vg_matrix: np.ndarray | None = None) -> list[tuple[str, bool]]:
     """One warning (text, doubtful) for every gate capacitance significantly below zero.
@@ -185,6 +210,8 @@ def error_verdict(fit: Any) -> Any:
         )
     for msg, doubtful in negative_capacitances(fit.cdg_aF, fit.cdg_aF_error, fit.vg_matrix):
         q = q.with_warning(msg, doubtful=doubtful)
+    for msg in implausible_capacitances(fit.cdg_aF, fit.cdg_aF_error):
+        q = q.with_warning(msg)
     vg = float(np.nanmax(fit.vg_matrix_error))
     if not vg <= MAX_VG_ERROR:
         q = q.with_warning(f"virtual-gate matrix uncertain (error up to {vg:.4f}; ok needs ≤ {MAX_VG_ERROR:g})")
