@@ -20,3 +20,17 @@ def random_device(n: int, rng: np.random.Generator) -> tuple[np.ndarray, np.ndar
     cg[np.arange(n), np.arange(n)] = rng.uniform(5, 15, n)
     ctot = cg.sum(1) + cm.sum(1) + rng.uniform(5, 60, n)
     return cg, np.diag(ctot) - cm
+
+
+def double_dot_charge_map(cdg_aF, cdd_aF, *, electrons: float, shape: tuple[int, int], temperature_K: float,
+                          rng: int = 0):
+    """A generator map (charge read-out, gates PA on x and PB on y) of a double dot given by its
+    capacitances, over a window of about ``electrons`` transitions of each dot."""
+    from stabtool.simulate import simulate_map
+    from stabtool.simulate.device import Device
+    from stabtool.simulate.quick import double_dot_window
+
+    dev = Device(cdg_aF=cdg_aF, cdd_aF=cdd_aF, gate_names=["PA", "PB"], dot_names=["L", "R"])
+    xr_, yr_ = double_dot_window(dev, x_gate="PA", y_gate="PB", electrons=electrons)
+    return simulate_map(dev, x_gate="PA", y_gate="PB", x_range_V=xr_, y_range_V=yr_, shape=shape,
+                        temperature_K=temperature_K, readout="charge", rng=rng)

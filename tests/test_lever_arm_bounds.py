@@ -105,17 +105,12 @@ def test_gate_voltages_in_millivolts_read_as_volts_below_the_loaders_limit_are_n
     # 20 mV, so the same map read as volts stays below the loader's 20 V check; its capacitances are
     # 1000 times too small, below the 0.1 aF (1.6 V per electron) of any plunger (common practice,
     # no source)
-    from stabtool.analysis import Analyzer
-    from stabtool.simulate import simulate_map
-    from stabtool.simulate.device import Device
-    from stabtool.simulate.quick import double_dot_window
+    from _simulate import double_dot_charge_map
 
-    dev = Device(cdg_aF=[[40.0, 8.0], [6.0, 35.0]], cdd_aF=[[120.0, -8.0], [-8.0, 110.0]],
-                 gate_names=["PA", "PB"], dot_names=["L", "R"])
-    xr_, yr_ = double_dot_window(dev, x_gate="PA", y_gate="PB", electrons=4.0)
-    sm = simulate_map(dev, x_gate="PA", y_gate="PB", x_range_V=xr_, y_range_V=yr_, shape=(100, 100),
-                      temperature_K=0.05, readout="charge", rng=0)
-    da = sm.data
+    from stabtool.analysis import Analyzer
+
+    da = double_dot_charge_map([[40.0, 8.0], [6.0, 35.0]], [[120.0, -8.0], [-8.0, 110.0]], electrons=4.0,
+                               shape=(100, 100), temperature_K=0.05).data
     slip = da.assign_coords({d: da[d] * 1000 for d in da.dims})
     assert max(float(abs(slip[d]).max()) for d in slip.dims) < 20.0
     with warnings.catch_warnings():

@@ -50,17 +50,13 @@ def test_one_transitions_staircase_over_shared_bands_is_not_taken_for_a_cell_ste
 
 @pytest.mark.regression
 def test_a_strongly_cross_coupled_double_dot_gets_its_cell_from_lines_in_different_bands():
+    from _simulate import double_dot_charge_map
+
     from stabtool.analysis import Analyzer
-    from stabtool.simulate import simulate_map
-    from stabtool.simulate.device import Device
-    from stabtool.simulate.quick import double_dot_window
 
     # M12 = 0.62, M21 = 0.91 (product 0.57); four transitions of each dot across the window
-    dev = Device(cdg_aF=[[10.0, 6.0], [8.0, 9.0]], cdd_aF=[[63.0, -3.0], [-3.0, 58.0]],
-                 gate_names=["PA", "PB"], dot_names=["L", "R"])
-    xr_, yr_ = double_dot_window(dev, x_gate="PA", y_gate="PB", electrons=4.0)
-    sm = simulate_map(dev, x_gate="PA", y_gate="PB", x_range_V=xr_, y_range_V=yr_, shape=(140, 140),
-                      temperature_K=0.1, readout="charge", rng=1)
+    sm = double_dot_charge_map([[10.0, 6.0], [8.0, 9.0]], [[63.0, -3.0], [-3.0, 58.0]], electrons=4.0,
+                               shape=(140, 140), temperature_K=0.1, rng=1)
     q = np.asarray(sm.data.values, float)
     da = sm.data.copy(data=q + np.random.default_rng(2).normal(0, 1 / 30, q.shape))  # SNR 30
     da.attrs.pop("stabtool_truth", None)
