@@ -147,7 +147,7 @@ def require_real_numbers(values: Any, what: str, source: str | None) -> np.ndarr
     arr = np.asarray(values)
     kind = arr.dtype
     if np.issubdtype(kind, np.integer) or np.issubdtype(kind, np.floating) or np.issubdtype(kind, np.bool_):
-        return arr.astype(np.float64)
+        return arr.astype(np.float64, copy=False)  # (no copy of a float64 map, as np.asarray before)
     if np.issubdtype(kind, np.complexfloating):
         raise InputError(source, f"{what} holds complex values (I + iQ); take one real quantity first "
                          "(stabtool.load projects an I/Q map onto its principal axis)")
